@@ -1,0 +1,102 @@
+//! The answers file (interface.md, "Answers file"), written by `answer`, read by `grade`.
+//!
+//! JSONL, one object a question in the set's order: `id`, `answer` (decoded text, special tokens
+//! skipped, surrounding whitespace trimmed), `finish`, `prompt_tokens`, `new_tokens`, `ms`.
+//! Beside it, `<out>.run.json` records what produced it (see `crate::generate::RunInfo`).
+
+use crate::error::{Error, Result};
+use crate::fsutil;
+use crate::questions::QuestionSet;
+use serde::{Deserialize, Serialize};
+use std::path::Path;
+
+/// Why generation stopped for one answer.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Finish {
+    /// An end-of-sequence token was produced.
+    Eos,
+    /// `--max-new-tokens` was reached.
+    Length,
+    /// A stop string was produced.
+    Stop,
+}
+
+/// One row of an answers file.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct AnswerRecord {
+    pub id: String,
+    pub answer: String,
+    pub finish: Finish,
+    pub prompt_tokens: usize,
+    pub new_tokens: usize,
+    /// Wall-clock milliseconds spent on this answer (excluded from determinism guarantees).
+    pub ms: u64,
+}
+
+/// Reads an answers file and checks it matches the question set id for id, in order.
+pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>> {
+    let lines = fsutil::read_jsonl_lines(path)?;
+    let mut rows = Vec::with_capacity(lines.len());
+    for (line, text) in &lines {
+        let row: AnswerRecord = serde_json::from_str(text)
+            .map_err(|e| Error::line(path, *line, format!("not a valid answer row: {e}")))?;
+        rows.push((*line, row));
+    }
+    check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
+    Ok(rows.into_iter().map(|(_, r)| r).collect())
+}
+
+/// Checks that a file's rows carry exactly the set's ids in the set's order, naming the first
+/// line that differs.
+pub fn check_ids<'a>(
+    path: &Path,
+    set: &QuestionSet,
+    ids: impl Iterator<Item = (usize, &'a str)>,
+) -> Result<()> {
+    let mut count = 0usize;
+    for (i, (line, id)) in ids.enumerate() {
+        count = i + 1;
+        match set.questions.get(i) {
+            None => {
+                return Err(Error::field(
+                    path,
+                    Some(line),
+                    "id",
+                    format!(
+                        "extra row {id:?}: the question set {} has only {} questions",
+                        set.path.display(),
+                        set.len()
+                    ),
+                ))
+            }
+            Some(q) if q.id != id => {
+                return Err(Error::field(
+                    path,
+                    Some(line),
+                    "id",
+                    format!(
+                        "expected {:?} (question {} of {}), found {id:?}; the file does not match the question set (missing, extra or reordered rows)",
+                        q.id,
+                        i + 1,
+                        set.path.display()
+                    ),
+                ))
+            }
+            Some(_) => {}
+        }
+    }
+    if count < set.len() {
+        return Err(Error::file(
+            path,
+            format!(
+                "has {count} rows but the question set {} has {} questions; first missing id {:?}",
+                set.path.display(),
+                set.len(),
+                set.questions[count].id
+            ),
+        ));
+    }
+    Ok(())
+}

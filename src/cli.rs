@@ -1,0 +1,150 @@
+//! Command-line definition (interface.md, "Flags that must exist"). Parsing only: each command
+//! turns its arguments into validated settings in its own module under `commands`.
+
+use clap::{Args, Parser, Subcommand};
+use std::path::PathBuf;
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "liftgate",
+    version,
+    about = "Shows, on held-out questions, whether a LoRA fine-tune answers better than its base model, and gives a go/no-go verdict.",
+    propagate_version = true
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Answer every question of a set with one model variant (base, or base + adapter), on CPU.
+    Answer(AnswerArgs),
+    /// Score an answers file against the set's references: one row of scores per question.
+    Grade(GradeArgs),
+    /// Compare a baseline's grades with a candidate's: paired statistics, gate checks, verdict.
+    Weigh(WeighArgs),
+    /// The whole job: answer with base and with base + adapter, grade both, weigh.
+    /// With no arguments it runs the bundled demo.
+    Vet(VetArgs),
+}
+
+/// Generation settings shared by `answer` and `vet`.
+#[derive(Debug, Args, Clone)]
+pub struct GenerationArgs {
+    /// System message given to the chat template.
+    #[arg(long, value_name = "TEXT")]
+    pub system: Option<String>,
+    /// Stop each answer after this many new tokens.
+    #[arg(long, value_name = "N", default_value_t = 128)]
+    pub max_new_tokens: usize,
+    /// Questions decoded together.
+    #[arg(long, value_name = "N", default_value_t = 8)]
+    pub batch: usize,
+    /// Compute threads (default: all cores).
+    #[arg(long, value_name = "N")]
+    pub threads: Option<usize>,
+    /// Generate exactly --max-new-tokens tokens, ignoring end-of-sequence (for benchmarks).
+    #[arg(long)]
+    pub ignore_eos: bool,
+}
+
+#[derive(Debug, Args)]
+pub struct AnswerArgs {
+    /// Hugging Face-layout model directory (config.json, *.safetensors, tokenizer.json, ...).
+    #[arg(long, value_name = "DIR")]
+    pub model: PathBuf,
+    /// LoRA adapter directory written by peft (adapter_config.json, adapter_model.safetensors).
+    #[arg(long, value_name = "DIR")]
+    pub adapter: Option<PathBuf>,
+    /// Question set (JSONL).
+    #[arg(long, value_name = "FILE")]
+    pub questions: PathBuf,
+    /// Answers file to write (JSONL); `<FILE>.run.json` is written beside it.
+    #[arg(long, value_name = "FILE")]
+    pub out: PathBuf,
+    #[command(flatten)]
+    pub generation: GenerationArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct GradeArgs {
+    /// Question set (JSONL) the answers belong to.
+    #[arg(long, value_name = "FILE")]
+    pub questions: PathBuf,
+    /// Answers file written by `liftgate answer`.
+    #[arg(long, value_name = "FILE")]
+    pub answers: PathBuf,
+    /// Grades file to write (JSONL).
+    #[arg(long, value_name = "FILE")]
+    pub out: PathBuf,
+    /// Gate policy (TOML); only its `[refusal]` phrase settings are used here.
+    #[arg(long, value_name = "FILE")]
+    pub policy: Option<PathBuf>,
+}
+
+/// Statistics settings shared by `weigh` and `vet`.
+#[derive(Debug, Args, Clone)]
+pub struct StatsArgs {
+    /// Gate policy (TOML); the built-in default is documented in the README.
+    #[arg(long, value_name = "FILE")]
+    pub policy: Option<PathBuf>,
+    /// Bootstrap resamples.
+    #[arg(long, value_name = "N", default_value_t = 10_000)]
+    pub resamples: usize,
+    /// Seed for the bootstrap and permutation tests.
+    #[arg(long, value_name = "N", default_value_t = 7)]
+    pub seed: u64,
+    /// Confidence level of the intervals.
+    #[arg(long, value_name = "C", default_value_t = 0.95)]
+    pub confidence: f64,
+}
+
+#[derive(Debug, Args)]
+pub struct WeighArgs {
+    /// Question set (JSONL) both grades files belong to.
+    #[arg(long, value_name = "FILE")]
+    pub questions: PathBuf,
+    /// Grades of the baseline (usually the base model).
+    #[arg(long, value_name = "GRADES")]
+    pub baseline: PathBuf,
+    /// Grades of the candidate (usually base + adapter).
+    #[arg(long, value_name = "GRADES")]
+    pub candidate: PathBuf,
+    /// Report directory for summary.json and report.md.
+    #[arg(long, value_name = "DIR", default_value = "reports/latest")]
+    pub report: PathBuf,
+    #[command(flatten)]
+    pub stats: StatsArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct VetArgs {
+    /// Base model directory (omit all three of --model/--adapter/--questions to run the demo).
+    #[arg(long, value_name = "DIR", requires_all = ["adapter", "questions"])]
+    pub model: Option<PathBuf>,
+    /// LoRA adapter directory.
+    #[arg(long, value_name = "DIR", requires_all = ["model", "questions"])]
+    pub adapter: Option<PathBuf>,
+    /// Held-out question set (JSONL).
+    #[arg(long, value_name = "FILE", requires_all = ["model", "adapter"])]
+    pub questions: Option<PathBuf>,
+    /// Report directory (default: reports/<date>-<set name>, never overwriting an earlier run).
+    #[arg(long, value_name = "DIR")]
+    pub report: Option<PathBuf>,
+    #[command(flatten)]
+    pub stats: StatsArgs,
+    #[command(flatten)]
+    pub generation: GenerationArgs,
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use clap::CommandFactory;
+
+    #[test]
+    fn cli_definition_is_consistent() {
+        Cli::command().debug_assert();
+    }
+}

@@ -1,0 +1,28 @@
+//! Command glue: each subcommand validates its arguments, calls the library modules and writes
+//! its outputs atomically.
+
+pub mod answer;
+pub mod grade;
+pub mod vet;
+pub mod weigh;
+
+use crate::cli::Command;
+use crate::error::Result;
+
+/// What a successful command run means for the exit code.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Outcome {
+    /// Exit 0: done; for `weigh` and `vet`, the verdict is GO.
+    Success,
+    /// Exit 1: `weigh` / `vet` only, the verdict is NO-GO.
+    NoGo,
+}
+
+pub fn run(command: Command) -> Result<Outcome> {
+    match command {
+        Command::Answer(args) => answer::run(&args),
+        Command::Grade(args) => grade::run(&args),
+        Command::Weigh(args) => weigh::run(&args),
+        Command::Vet(args) => vet::run(&args),
+    }
+}

@@ -1,0 +1,163 @@
+//! File helpers shared by every command: atomic writes, reading JSONL with line numbers, and
+//! content fingerprints.
+//!
+//! Nothing half-written (interface.md, exit code 2): every output goes to a temporary file in the
+//! destination directory and is renamed into place only when complete.
+
+use crate::error::{Error, Result};
+use sha2::{Digest, Sha256};
+use std::io::{BufRead, BufReader, Read, Write};
+use std::path::Path;
+
+/// Writes `bytes` to `path` atomically: a temporary file beside it, fsync, rename.
+pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
+    let dir = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
+    };
+    std::fs::create_dir_all(dir)
+        .map_err(|e| Error::file(dir, format!("cannot create the output directory: {e}")))?;
+    let mut tmp = tempfile::Builder::new()
+        .prefix(".liftgate-")
+        .suffix(".tmp")
+        .tempfile_in(dir)
+        .map_err(|e| Error::file(dir, format!("cannot create a temporary file: {e}")))?;
+    tmp.write_all(bytes)
+        .and_then(|_| tmp.as_file().sync_all())
+        .map_err(|e| Error::file(path, format!("cannot write: {e}")))?;
+    tmp.persist(path)
+        .map_err(|e| Error::file(path, format!("cannot rename into place: {e}")))?;
+    Ok(())
+}
+
+/// Serialises `rows` as JSONL (one compact object a line) and writes the file atomically.
+pub fn write_jsonl_atomic<T: serde::Serialize>(path: &Path, rows: &[T]) -> Result<()> {
+    let mut out = Vec::new();
+    for row in rows {
+        serde_json::to_writer(&mut out, row)
+            .map_err(|e| Error::internal(format!("cannot serialise a row: {e}")))?;
+        out.push(b'\n');
+    }
+    write_atomic(path, &out)
+}
+
+/// Longest accepted line in a JSONL input. A question set is text; a line past this is a
+/// corrupted or wrong file, and reading it whole would waste memory.
+pub const MAX_LINE_BYTES: usize = 1 << 20;
+
+/// Reads a JSONL file into `(line_number, text)` pairs, 1-based, skipping blank lines.
+/// Fails on non-UTF-8 bytes and on over-long lines, naming the line.
+pub fn read_jsonl_lines(path: &Path) -> Result<Vec<(usize, String)>> {
+    let file =
+        std::fs::File::open(path).map_err(|e| Error::file(path, format!("cannot open: {e}")))?;
+    let mut reader = BufReader::new(file);
+    let mut out = Vec::new();
+    let mut buf = Vec::new();
+    let mut line_no = 0usize;
+    loop {
+        buf.clear();
+        line_no += 1;
+        let n = (&mut reader)
+            .take(MAX_LINE_BYTES as u64 + 1)
+            .read_until(b'\n', &mut buf)
+            .map_err(|e| Error::line(path, line_no, format!("cannot read: {e}")))?;
+        if n == 0 {
+            break;
+        }
+        if buf.len() > MAX_LINE_BYTES && !buf.ends_with(b"\n") {
+            return Err(Error::line(
+                path,
+                line_no,
+                format!(
+                    "line is longer than {} bytes; is this a JSONL file?",
+                    MAX_LINE_BYTES
+                ),
+            ));
+        }
+        let text = std::str::from_utf8(&buf).map_err(|e| {
+            Error::line(
+                path,
+                line_no,
+                format!("not valid UTF-8 (byte {}): {e}", e.valid_up_to()),
+            )
+        })?;
+        let text = text.trim();
+        if !text.is_empty() {
+            out.push((line_no, text.to_string()));
+        }
+    }
+    Ok(out)
+}
+
+/// SHA-256 of bytes, hex.
+pub fn sha256_hex(bytes: &[u8]) -> String {
+    hex(&Sha256::digest(bytes))
+}
+
+/// SHA-256 of a file's content, streamed, hex.
+pub fn sha256_file(path: &Path) -> Result<String> {
+    let mut file =
+        std::fs::File::open(path).map_err(|e| Error::file(path, format!("cannot open: {e}")))?;
+    let mut hasher = Sha256::new();
+    let mut buf = vec![0u8; 1 << 20];
+    loop {
+        let n = file
+            .read(&mut buf)
+            .map_err(|e| Error::file(path, format!("cannot read: {e}")))?;
+        if n == 0 {
+            break;
+        }
+        hasher.update(&buf[..n]);
+    }
+    Ok(hex(&hasher.finalize()))
+}
+
+fn hex(bytes: &[u8]) -> String {
+    bytes.iter().map(|b| format!("{b:02x}")).collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn atomic_write_replaces_whole_file() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("x.txt");
+        write_atomic(&p, b"one").unwrap();
+        write_atomic(&p, b"two").unwrap();
+        assert_eq!(std::fs::read(&p).unwrap(), b"two");
+        // No temporary files are left behind.
+        assert_eq!(std::fs::read_dir(dir.path()).unwrap().count(), 1);
+    }
+
+    #[test]
+    fn jsonl_lines_are_numbered_and_blank_lines_skipped() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("q.jsonl");
+        std::fs::write(&p, "{\"a\":1}\n\n  \n{\"b\":2}").unwrap();
+        let lines = read_jsonl_lines(&p).unwrap();
+        assert_eq!(
+            lines,
+            vec![(1, "{\"a\":1}".to_string()), (4, "{\"b\":2}".to_string())]
+        );
+    }
+
+    #[test]
+    fn non_utf8_names_the_line() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("q.jsonl");
+        std::fs::write(&p, b"{}\n{\"a\":\"\xff\"}\n").unwrap();
+        let err = read_jsonl_lines(&p).unwrap_err().to_string();
+        assert!(err.contains(":2:"), "{err}");
+    }
+
+    #[test]
+    fn sha256_of_known_string() {
+        // FIPS 180-2 example: SHA-256("abc").
+        assert_eq!(
+            sha256_hex(b"abc"),
+            "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+        );
+    }
+}

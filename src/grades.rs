@@ -1,0 +1,76 @@
+//! The grades file (interface.md, "Grades file"), written by `grade`, read by `weigh`.
+//!
+//! JSONL, one object a question: `id`, `category`, `expect`, `exact_match` (0 or 1), `token_f1`,
+//! `rouge_l`, `refused`. The three reference scores are null where the question has no
+//! references (typically `expect: refuse` questions).
+
+use crate::answers::check_ids;
+use crate::error::{Error, Result};
+use crate::fsutil;
+use crate::questions::{Expect, QuestionSet};
+use serde::{Deserialize, Serialize};
+use std::path::Path;
+
+/// One row of a grades file.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct GradeRecord {
+    pub id: String,
+    pub category: String,
+    pub expect: Expect,
+    /// 1 when the normalised answer equals a normalised reference, else 0.
+    pub exact_match: Option<u8>,
+    pub token_f1: Option<f64>,
+    pub rouge_l: Option<f64>,
+    /// Whether the answer declines to answer (refusal detector).
+    pub refused: bool,
+}
+
+/// Reads a grades file and checks it matches the question set id for id, in order.
+pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<GradeRecord>> {
+    let lines = fsutil::read_jsonl_lines(path)?;
+    let mut rows = Vec::with_capacity(lines.len());
+    for (line, text) in &lines {
+        let row: GradeRecord = serde_json::from_str(text)
+            .map_err(|e| Error::line(path, *line, format!("not a valid grade row: {e}")))?;
+        if let Some(em) = row.exact_match {
+            if em > 1 {
+                return Err(Error::field(
+                    path,
+                    Some(*line),
+                    "exact_match",
+                    "must be 0 or 1",
+                ));
+            }
+        }
+        for (name, v) in [("token_f1", row.token_f1), ("rouge_l", row.rouge_l)] {
+            if let Some(v) = v {
+                if !(0.0..=1.0).contains(&v) {
+                    return Err(Error::field(
+                        path,
+                        Some(*line),
+                        name,
+                        format!("must be in [0, 1], found {v}"),
+                    ));
+                }
+            }
+        }
+        rows.push((*line, row));
+    }
+    check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
+    for ((line, row), q) in rows.iter().zip(&set.questions) {
+        if row.expect != q.expect {
+            return Err(Error::field(
+                path,
+                Some(*line),
+                "expect",
+                format!(
+                    "is {:?} but the question set says {:?}; regrade with this set",
+                    row.expect.as_str(),
+                    q.expect.as_str()
+                ),
+            ));
+        }
+    }
+    Ok(rows.into_iter().map(|(_, r)| r).collect())
+}

@@ -1,0 +1,265 @@
+//! The question set (interface.md, "Question set"): JSONL, one object a line.
+//!
+//! Fields: `id` (string, unique), `question` (non-empty string), `references` (array of strings,
+//! non-empty when `expect` is `answer`), `expect` (`answer` | `refuse`, default `answer`),
+//! `category` (string, default `general`). Unknown fields are kept in `extra` and ignored.
+//! Blank lines are skipped. Every problem names the file, the line and the field.
+
+use crate::error::{Error, Result};
+use crate::fsutil;
+use serde::{Deserialize, Serialize};
+use std::collections::HashSet;
+use std::path::{Path, PathBuf};
+
+/// What the responder should do with a question.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, Serialize, Deserialize, Default)]
+#[serde(rename_all = "lowercase")]
+pub enum Expect {
+    /// An in-scope question with reference answers.
+    #[default]
+    Answer,
+    /// An out-of-scope question the responder should decline.
+    Refuse,
+}
+
+impl Expect {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Expect::Answer => "answer",
+            Expect::Refuse => "refuse",
+        }
+    }
+}
+
+/// One question of a set.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Question {
+    pub id: String,
+    pub question: String,
+    pub references: Vec<String>,
+    pub category: String,
+    pub expect: Expect,
+    /// 1-based line in the source file, for messages.
+    pub line: usize,
+}
+
+/// A validated question set with its content fingerprint.
+#[derive(Debug, Clone)]
+pub struct QuestionSet {
+    pub path: PathBuf,
+    pub questions: Vec<Question>,
+    /// SHA-256 of the file's bytes: answers and grades record it so a mismatch is caught.
+    pub fingerprint: String,
+}
+
+pub const DEFAULT_CATEGORY: &str = "general";
+
+impl QuestionSet {
+    /// Reads and validates a question set.
+    pub fn load(path: &Path) -> Result<Self> {
+        let lines = fsutil::read_jsonl_lines(path)?;
+        if lines.is_empty() {
+            return Err(Error::file(
+                path,
+                "the question set is empty: expected one JSON object a line",
+            ));
+        }
+        let mut questions = Vec::with_capacity(lines.len());
+        let mut seen = HashSet::new();
+        for (line, text) in &lines {
+            let q = parse_question(path, *line, text)?;
+            if !seen.insert(q.id.clone()) {
+                return Err(Error::field(
+                    path,
+                    Some(*line),
+                    "id",
+                    format!("duplicate id {:?}", q.id),
+                ));
+            }
+            questions.push(q);
+        }
+        let fingerprint = fsutil::sha256_file(path)?;
+        Ok(QuestionSet {
+            path: path.to_path_buf(),
+            questions,
+            fingerprint,
+        })
+    }
+
+    pub fn len(&self) -> usize {
+        self.questions.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.questions.is_empty()
+    }
+}
+
+fn parse_question(path: &Path, line: usize, text: &str) -> Result<Question> {
+    let value: serde_json::Value = serde_json::from_str(text)
+        .map_err(|e| Error::line(path, line, format!("not valid JSON: {e}")))?;
+    let obj = value
+        .as_object()
+        .ok_or_else(|| Error::line(path, line, "expected a JSON object"))?;
+    let string_field = |name: &str, required: bool| -> Result<Option<String>> {
+        match obj.get(name) {
+            None | Some(serde_json::Value::Null) if !required => Ok(None),
+            None | Some(serde_json::Value::Null) => Err(Error::field(
+                path,
+                Some(line),
+                name,
+                "required field is missing",
+            )),
+            Some(serde_json::Value::String(s)) => Ok(Some(s.clone())),
+            Some(other) => Err(Error::field(
+                path,
+                Some(line),
+                name,
+                format!("expected a string, found {}", json_kind(other)),
+            )),
+        }
+    };
+    let id = string_field("id", true)?.unwrap_or_default();
+    if id.trim().is_empty() {
+        return Err(Error::field(path, Some(line), "id", "must not be empty"));
+    }
+    let question = string_field("question", true)?.unwrap_or_default();
+    if question.trim().is_empty() {
+        return Err(Error::field(
+            path,
+            Some(line),
+            "question",
+            "must not be empty",
+        ));
+    }
+    let category = string_field("category", false)?.unwrap_or_else(|| DEFAULT_CATEGORY.to_string());
+    if category.trim().is_empty() {
+        return Err(Error::field(
+            path,
+            Some(line),
+            "category",
+            "must not be empty when given",
+        ));
+    }
+    let expect = match string_field("expect", false)?.as_deref() {
+        None => Expect::Answer,
+        Some("answer") => Expect::Answer,
+        Some("refuse") => Expect::Refuse,
+        Some(other) => {
+            return Err(Error::field(
+                path,
+                Some(line),
+                "expect",
+                format!("expected \"answer\" or \"refuse\", found {other:?}"),
+            ))
+        }
+    };
+    let references = match obj.get("references") {
+        None | Some(serde_json::Value::Null) => Vec::new(),
+        Some(serde_json::Value::Array(items)) => {
+            let mut refs = Vec::with_capacity(items.len());
+            for (i, item) in items.iter().enumerate() {
+                match item {
+                    serde_json::Value::String(s) => refs.push(s.clone()),
+                    other => {
+                        return Err(Error::field(
+                            path,
+                            Some(line),
+                            format!("references[{i}]"),
+                            format!("expected a string, found {}", json_kind(other)),
+                        ))
+                    }
+                }
+            }
+            refs
+        }
+        Some(other) => {
+            return Err(Error::field(
+                path,
+                Some(line),
+                "references",
+                format!("expected an array of strings, found {}", json_kind(other)),
+            ))
+        }
+    };
+    if expect == Expect::Answer && references.iter().all(|r| r.trim().is_empty()) {
+        return Err(Error::field(
+            path,
+            Some(line),
+            "references",
+            "needs at least one non-empty reference answer when `expect` is \"answer\"",
+        ));
+    }
+    Ok(Question {
+        id,
+        question,
+        references,
+        category,
+        expect,
+        line,
+    })
+}
+
+/// The JSON type name of a value, for messages.
+pub fn json_kind(v: &serde_json::Value) -> &'static str {
+    match v {
+        serde_json::Value::Null => "null",
+        serde_json::Value::Bool(_) => "a boolean",
+        serde_json::Value::Number(_) => "a number",
+        serde_json::Value::String(_) => "a string",
+        serde_json::Value::Array(_) => "an array",
+        serde_json::Value::Object(_) => "an object",
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn load_str(text: &str) -> Result<QuestionSet> {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("set.jsonl");
+        std::fs::write(&p, text).unwrap();
+        QuestionSet::load(&p)
+    }
+
+    #[test]
+    fn defaults_apply_and_unknown_fields_are_ignored() {
+        let set = load_str(
+            "{\"id\":\"a\",\"question\":\"Q?\",\"references\":[\"R\"],\"note\":1}\n\
+             {\"id\":\"b\",\"question\":\"Out?\",\"references\":[],\"expect\":\"refuse\",\"category\":\"oos\"}\n",
+        )
+        .unwrap();
+        assert_eq!(set.questions[0].category, "general");
+        assert_eq!(set.questions[0].expect, Expect::Answer);
+        assert_eq!(set.questions[1].expect, Expect::Refuse);
+        assert_eq!(set.questions[1].line, 2);
+        assert_eq!(set.fingerprint.len(), 64);
+    }
+
+    #[test]
+    fn errors_name_line_and_field() {
+        let cases = [
+            ("{\"id\":\"a\",\"question\":\"Q\",\"references\":[\"R\"]}\n{\"id\":\"a\",\"question\":\"Q\",\"references\":[\"R\"]}", ":2: field `id`"),
+            ("{\"question\":\"Q\",\"references\":[\"R\"]}", ":1: field `id`"),
+            ("{\"id\":5,\"question\":\"Q\",\"references\":[\"R\"]}", "field `id`: expected a string, found a number"),
+            ("{\"id\":\"a\",\"question\":\"\",\"references\":[\"R\"]}", "field `question`"),
+            ("{\"id\":\"a\",\"question\":\"Q\",\"references\":[]}", "field `references`"),
+            ("{\"id\":\"a\",\"question\":\"Q\",\"references\":[\"R\", 3]}", "field `references[1]`"),
+            ("{\"id\":\"a\",\"question\":\"Q\",\"references\":[\"R\"],\"expect\":\"maybe\"}", "field `expect`"),
+            ("{\"id\":\"a\",", ":1: not valid JSON"),
+            ("[1,2]", ":1: expected a JSON object"),
+            ("\n\n", "empty"),
+        ];
+        for (text, want) in cases {
+            let err = load_str(text).unwrap_err();
+            assert_eq!(err.exit_code(), 2);
+            let msg = err.to_string();
+            assert!(
+                msg.contains(want),
+                "input {text:?}: message {msg:?} lacks {want:?}"
+            );
+            assert!(msg.contains("set.jsonl"), "{msg}");
+        }
+    }
+}
