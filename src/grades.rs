@@ -2,7 +2,8 @@
 //!
 //! JSONL, one object a question: `id`, `category`, `expect`, `exact_match` (0 or 1), `token_f1`,
 //! `rouge_l`, `refused`. The three reference scores are null where the question has no
-//! references (typically `expect: refuse` questions).
+//! references (typically `expect: refuse` questions). liftgate adds `answer` (the graded text)
+//! so `weigh` can show both variants' answers side by side without the answers files.
 
 use crate::answers::check_ids;
 use crate::error::{Error, Result};
@@ -24,6 +25,9 @@ pub struct GradeRecord {
     pub rouge_l: Option<f64>,
     /// Whether the answer declines to answer (refusal detector).
     pub refused: bool,
+    /// The answer text that was graded.
+    #[serde(default)]
+    pub answer: String,
 }
 
 /// Reads a grades file and checks it matches the question set id for id, in order.
