@@ -344,6 +344,9 @@ FAMILIES = {
         config_cls=Qwen2Config,
         config=dict(sliding_window=16, use_sliding_window=False, max_window_layers=1,
                     rope_parameters=dict(rope_type="default", rope_theta=1000000.0), tie_word_embeddings=False),
+        # v5 writes sliding_window null and explicit layer_types; shipped Qwen2 files carry a
+        # window with use_sliding_window false and no layer_types.
+        config_patch=dict(sliding_window=16, layer_types=None),
         tok=dict(QWEN_TOK, template=T_QWEN2, template_in="tokenizer_config.json"),
         config_eos="<|endoftext|>",
         gen_eos=["<|im_end|>", "<|endoftext|>"],
@@ -360,7 +363,7 @@ FAMILIES = {
             ),
         ],
         features=["q/k/v biases (random non-zero)", "weights stored bf16", "no BOS",
-                  "use_sliding_window false (sliding_window must be ignored)", "eos list in generation_config",
+                  "config.json has sliding_window 16 with use_sliding_window false and no layer_types (window must be ignored)", "eos list in generation_config",
                   "rope_theta 1e6", "all-linear with rank_pattern/alpha_pattern"],
     ),
     "qwen3": dict(
@@ -436,6 +439,7 @@ FAMILIES = {
                     final_logit_softcapping=10.0, sliding_window=16,
                     rope_parameters=dict(rope_type="default", rope_theta=10000.0), tie_word_embeddings=True),
         tok=dict(GEMMA_TOK, template=T_GEMMA2, template_in="chat_template.jinja"),
+        eos_boost=2.5,  # the final soft-cap squeezes the logits, so stop tokens need a larger row
         config_eos="<eos>",
         gen_eos="<end_of_turn>",
         dtype="float32",
@@ -543,7 +547,7 @@ def build_model(fam, spec, mdir, seed, tok):
         head = model.get_output_embeddings().weight
         gen_eos = spec["gen_eos"] if spec["gen_eos"] is not None else spec["config_eos"]
         for t in gen_eos if isinstance(gen_eos, list) else [gen_eos]:
-            head[tok_id(tok, t)] *= EOS_BOOST
+            head[tok_id(tok, t)] *= spec.get("eos_boost", EOS_BOOST)
     store = getattr(torch, spec["dtype"])
     model = model.to(store)
     if spec["gen_eos"] is not None:
@@ -558,6 +562,17 @@ def build_model(fam, spec, mdir, seed, tok):
     model.save_pretrained(mdir, **kw)
     if spec["gen_eos"] is None:
         (mdir / "generation_config.json").unlink(missing_ok=True)
+    if spec.get("config_patch"):
+        # Edit config.json the way older or hand-written checkpoints look; the reference then
+        # loads the edited file, so its semantics are what gets recorded.
+        cpath = mdir / "config.json"
+        c = json.loads(cpath.read_text())
+        for k, v in spec["config_patch"].items():
+            if v is None:
+                c.pop(k, None)
+            else:
+                c[k] = v
+        cpath.write_text(json.dumps(c, indent=2, sort_keys=True) + "\n")
 
 
 def load_base(mdir):
