@@ -35,6 +35,7 @@ import safetensors
 from tokenizers import Tokenizer, decoders, models, pre_tokenizers, processors, trainers
 from tokenizers import AddedToken
 from transformers import (
+    AutoConfig,
     AutoModelForCausalLM,
     AutoTokenizer,
     GemmaConfig,
@@ -463,6 +464,48 @@ FAMILIES = {
 }
 
 
+# Config overrides that must change the logits of the fixture's models; each is applied to the
+# loaded config and the full-sequence logits are compared with the unmodified model. This shows
+# the fixture is sensitive to the feature (a reimplementation that ignores it cannot pass).
+FEATURE_CHECKS = {
+    "llama": [dict(rope_parameters=dict(rope_type="default", rope_theta=10000.0))],
+    "mistral": [dict(sliding_window=None)],
+    "qwen2": [dict(use_sliding_window=True, sliding_window=16, layer_types=["sliding_attention"] * 2)],
+    "phi3": [dict(rope_parameters=dict(rope_type="default", rope_theta=10000.0, partial_rotary_factor=1.0))],
+    "gemma": [dict(hidden_act="silu")],
+    "gemma2": [
+        dict(layer_types=["full_attention"] * 2),
+        dict(attn_logit_softcapping=None),
+        dict(final_logit_softcapping=None),
+        dict(query_pre_attn_scalar=16),
+    ],
+}
+
+
+def feature_checks(fam, mdir, cases):
+    case = next((c for c in cases if c["variant"] == "base" and "prompt_ids" in c), None)
+    out = []
+    if case is None:
+        return out
+    ids = torch.tensor([case["prompt_ids"] + case["output_ids"]])
+
+    def run(over):
+        cfg = AutoConfig.from_pretrained(mdir)
+        for k, v in over.items():
+            setattr(cfg, k, v)
+        m = AutoModelForCausalLM.from_pretrained(mdir, config=cfg, dtype=torch.float32, attn_implementation="eager")
+        with torch.no_grad():
+            return m.eval()(ids).logits[0]
+
+    ref = run({})
+    for over in FEATURE_CHECKS.get(fam, []):
+        diff = float((run(over) - ref).abs().max())
+        if not diff > 1e-2:
+            raise RuntimeError(f"{fam}: override {over} does not change the logits ({diff})")
+        out.append(dict(override=over, max_abs_logit_diff=sig7(diff)))
+    return out
+
+
 def log(msg):
     print(f"[{time.strftime('%H:%M:%S')}] {msg}", file=sys.stderr, flush=True)
 
@@ -767,6 +810,7 @@ def write_expected(fam, spec, seed, res):
         questions=QUESTIONS,
         variants=["base"] + [a["name"] for a in spec["adapters"]],
         features=spec["features"],
+        feature_checks=feature_checks(fam, res["fdir"] / "model", res["cases"]),
         cases=res["cases"],
     )
     (res["fdir"] / "expected.json").write_text(dump_expected(doc))
@@ -833,6 +877,7 @@ def write_manifest():
             min_margin=doc["min_margin"],
             cases=len(doc["cases"]),
             features=spec["features"],
+            feature_checks=doc["feature_checks"],
         )
     man = dict(
         generator="tests/reference/make_runner_fixtures.py",
