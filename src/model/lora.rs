@@ -1175,15 +1175,13 @@ fn check_config_names(path: &Path, config: &Config, base: &BTreeMap<String, bool
                 }
             }
         }
-        Targets::Regex(src, re) => {
-            if !base.keys().any(|m| re.is_match(m)) {
-                return Err(Error::field(
-                    path,
-                    None,
-                    "target_modules",
-                    format!("the regex `{src}` matches no module of the base model; {hint}"),
-                ));
-            }
+        Targets::Regex(src, re) if !base.keys().any(|m| re.is_match(m)) => {
+            return Err(Error::field(
+                path,
+                None,
+                "target_modules",
+                format!("the regex `{src}` matches no module of the base model; {hint}"),
+            ));
         }
         _ => {}
     }
