@@ -306,11 +306,15 @@ def make_adapter(case, out_dir, seed):
     if case.get("adapter_dtype") == "bf16":
         tensors = {k: v.to(torch.bfloat16) for k, v in tensors.items()}
     save_file(tensors, str(out_dir / "adapter_model.safetensors"), metadata={"format": "pt"})
-    if "config_edit" in case:
-        path = out_dir / "adapter_config.json"
-        conf = json.loads(path.read_text())
-        conf.update(case["config_edit"])
-        path.write_text(json.dumps(conf, indent=2) + "\n")
+    # peft stores target_modules/exclude_modules as Python sets, whose order depends on string
+    # hashing; sort them so that the fixtures are reproducible (order does not matter to peft).
+    path = out_dir / "adapter_config.json"
+    conf = json.loads(path.read_text())
+    for key in ("target_modules", "exclude_modules"):
+        if isinstance(conf.get(key), list):
+            conf[key] = sorted(conf[key])
+    conf.update(case.get("config_edit", {}))
+    path.write_text(json.dumps(conf, indent=2) + "\n")
 
 
 def reference_merge(case, adapter_dir):
