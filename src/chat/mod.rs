@@ -266,41 +266,20 @@ impl ChatTokenizer {
         })
     }
 
-    /// Builds a tokenizer from parts already in memory (tests and tools). `template_origin` names
-    /// the file errors will point at.
-    pub fn from_parts(
-        tokenizer: Tokenizer,
-        template: Option<(&str, &Path)>,
-        special_tokens: Vec<(String, String)>,
-    ) -> Result<Self> {
-        let template = match template {
-            None => None,
-            Some((source, file)) => {
-                let origin = TemplateOrigin {
-                    file: file.to_path_buf(),
-                    field: None,
-                };
-                let compiled =
-                    ChatTemplate::compile(source).map_err(|e| template_error(&origin, &e))?;
-                Some(LoadedTemplate {
-                    source: source.to_string(),
-                    origin,
-                    compiled,
-                })
-            }
+    /// Replaces the chat template with `source`, as if it had been read from `origin` (the file
+    /// errors will name). For an explicitly chosen template file and for tests.
+    pub fn with_template(mut self, source: &str, origin: &Path) -> Result<Self> {
+        let origin = TemplateOrigin {
+            file: origin.to_path_buf(),
+            field: None,
         };
-        let pad_token = special_tokens
-            .iter()
-            .find(|(k, _)| k == "pad_token")
-            .map(|(_, v)| v.clone());
-        Ok(ChatTokenizer {
-            tokenizer,
-            tokenizer_path: PathBuf::from("tokenizer.json"),
-            template,
-            special_tokens,
-            pad_token,
-            clean_up: false,
-        })
+        let compiled = ChatTemplate::compile(source).map_err(|e| template_error(&origin, &e))?;
+        self.template = Some(LoadedTemplate {
+            source: source.to_string(),
+            origin,
+            compiled,
+        });
+        Ok(self)
     }
 
     /// Renders the template for an arbitrary conversation of `(role, content)` pairs.

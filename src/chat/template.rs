@@ -28,9 +28,10 @@ use minijinja::value::{Kwargs, Value, ValueKind};
 use minijinja::{Environment, Error as JinjaError, ErrorKind, UndefinedBehavior};
 use std::sync::OnceLock;
 
-/// Instruction budget for one render. A real chat template rendering one question uses a few
-/// thousand; 5 million is far above that and is exhausted in well under a second.
-pub const FUEL: u64 = 5_000_000;
+/// Instruction budget for one render. Every reference template in
+/// tests/fixtures/templates/cases.json renders its longest conversation within 20 000; one
+/// million leaves a 50x margin for long system texts and is used up in well under a second.
+pub const FUEL: u64 = 1_000_000;
 
 /// minijinja's validated maximum (its default); a macro call costs several levels.
 pub const RECURSION_LIMIT: usize = 500;
