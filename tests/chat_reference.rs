@@ -339,3 +339,52 @@ fn runaway_templates_fail_fast() {
         assert!(err.to_string().contains(needle), "{src}: {err}");
     }
 }
+
+#[test]
+fn snippets_print_like_jinja2() {
+    // Each snippet was rendered by transformers' own compiled Jinja2 environment
+    // (`_compile_jinja_template(...).environment`) with `snippet_context`.
+    use liftgate::chat::template::ChatTemplate;
+    let fx = cases();
+    let ctx = minijinja::Value::from(minijinja::value::Serde(fx["snippet_context"].clone()));
+    // minijinja has no tuple type: pairs print as lists (documented in chat::template). These
+    // snippets pin that known difference: the output is Jinja2's with `(a, b)` written `[a, b]`.
+    let tuples_as_lists = |s: &str| {
+        regex::Regex::new(r"\(([^()]*)\)")
+            .unwrap()
+            .replace_all(s, "[$1]")
+            .into_owned()
+    };
+    let known_tuple_difference = [
+        "{{ meta | dictsort }}",
+        "{{ (1, 'x') }}",
+        "{{ meta.items() | list }}",
+    ];
+    let mut failures = Vec::new();
+    let mut checked = 0;
+    for snip in fx["snippets"].as_array().unwrap() {
+        let src = snip["template"].as_str().unwrap();
+        let got = ChatTemplate::compile(src).and_then(|t| t.render(ctx.clone()));
+        checked += 1;
+        if known_tuple_difference.contains(&src) {
+            let expected = tuples_as_lists(snip["expected_text"].as_str().unwrap());
+            if got.as_deref().ok() != Some(expected.as_str()) {
+                failures.push(format!(
+                    "{src}: expected (tuples as lists) {expected:?}, got {got:?}"
+                ));
+            }
+            continue;
+        }
+        match (snip["expected_text"].as_str(), got) {
+            (Some(expected), Ok(text)) if text == expected => {}
+            (None, Err(_)) => {}
+            (expected, got) => failures.push(format!(
+                "{src}\n  expected {:?}\n  got      {:?}",
+                expected.map_or_else(|| snip["expected_error"].to_string(), str::to_string),
+                got.map_err(|e| e.to_string())
+            )),
+        }
+    }
+    assert!(failures.is_empty(), "{}", failures.join("\n"));
+    assert!(checked >= 45, "only {checked} snippets");
+}

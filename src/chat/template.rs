@@ -14,6 +14,10 @@
 //! - **Printing**: Jinja2 prints `str(x)` (`None`, `True`, `['a', 1]`, `1e+20`); minijinja prints
 //!   `none`, `true`, `["a", 1]`. A formatter and a `string` filter print Python's forms
 //!   ([`super::pyfmt`]). Known gap: the `~` operator still joins with minijinja's forms.
+//! - **Missing Jinja2 builtins**: the `center` filter and the `cycler`/`joiner` globals are added.
+//! - **Tuples**: minijinja has none, so `(1, 'x')`, `dictsort` and `.items()` pairs print as lists
+//!   (`[1, 'x']`) where Jinja2 prints `(1, 'x')`. Templates iterate such pairs rather than print
+//!   them, so this is left as a documented difference.
 //! - **Python methods** (`.strip()`, `.startswith()`, `.items()`, `.get()`, ...): minijinja-contrib
 //!   `pycompat` as the unknown-method callback.
 //! - **Undefined**: `UndefinedBehavior::Lenient`, which is Jinja2's default `Undefined`: printing
@@ -24,7 +28,7 @@
 
 use super::pyfmt::{json_dumps, py_str, JsonOptions};
 use super::strftime::{strftime, DateTime};
-use minijinja::value::{Kwargs, Value, ValueKind};
+use minijinja::value::{Kwargs, Rest, Value, ValueKind};
 use minijinja::{Environment, Error as JinjaError, ErrorKind, UndefinedBehavior};
 use std::sync::OnceLock;
 
@@ -162,6 +166,12 @@ impl ChatTemplate {
         env.add_function("strftime_now", strftime_now);
         env.add_filter("tojson", tojson);
         env.add_filter("string", |v: Value| py_str(&v));
+        env.add_filter("center", center);
+        // Jinja2's cycler takes the items as separate arguments.
+        env.add_function("cycler", |items: Rest<Value>| {
+            minijinja_contrib::globals::cycler(items.0)
+        });
+        env.add_function("joiner", minijinja_contrib::globals::joiner);
         env.add_template_owned(TEMPLATE_NAME, preprocess(source))
             .map_err(|e| convert_error(&e))?;
         Ok(ChatTemplate { env })
@@ -175,6 +185,20 @@ impl ChatTemplate {
             .map_err(|e| convert_error(&e))?;
         tmpl.render(ctx).map_err(|e| convert_error(&e))
     }
+}
+
+/// Jinja2's `center(width=80)`, which is Python's `str.center` (CPython `pad`: the odd space goes
+/// left only when both the margin and the width are odd).
+fn center(value: Value, width: Option<usize>) -> String {
+    let s = py_str(&value);
+    let width = width.unwrap_or(80);
+    let len = s.chars().count();
+    if width <= len {
+        return s;
+    }
+    let marg = width - len;
+    let left = marg / 2 + (marg & width & 1);
+    format!("{}{s}{}", " ".repeat(left), " ".repeat(marg - left))
 }
 
 fn raise_exception(message: Value) -> Result<Value, JinjaError> {

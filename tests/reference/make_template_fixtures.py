@@ -339,6 +339,67 @@ TEMPLATES = {
     ),
 }
 
+
+# Single-expression snippets rendered with the same environment and a fixed context, to pin down
+# how values print and how Python-isms behave (Jinja2 prints str(x); tuples, None, True, floats).
+SNIPPET_CONTEXT = {
+    "messages": None,  # filled with CONVERSATIONS["system_user"]
+    "meta": {"dock": "North Pier", "gate": 3, "night": None, "tags": ["a", "b"]},
+    "word": "  Fähre  ",
+    "n": 7,
+    "f": 2.5,
+    "flag": True,
+}
+SNIPPETS = [
+    "{{ 'a' ~ 1 ~ 'b' }}",
+    "{{ 'a' ~ none ~ true }}",
+    "{{ 7 / 2 }}|{{ 4 / 2 }}|{{ 7 // 2 }}|{{ -7 // 2 }}|{{ 10 % 3 }}|{{ 2 ** 10 }}|{{ 0.1 + 0.2 }}|{{ 1e20 }}",
+    "{{ 'abc'[::-1] }}|{{ 'abc'[1:] }}|{{ [1, 2, 3][-1] }}|{{ 'a,b'.split(',') }}",
+    "{{ 'hello world'.title() }}|{{ 'Hello World'.split() }}|{{ 'a b c'.split(' ', 1) }}",
+    "{{ [3, 1, 2] | sort }}|{{ range(3) | list }}|{{ [1, 2] + [3] }}|{{ 'ab' * 2 }}",
+    "{{ meta | dictsort }}",
+    "{{ (1, 'x') }}",
+    "{{ meta }}",
+    "{{ meta.items() | list }}",
+    "{{ meta.keys() | list }}|{{ meta.values() | list }}",
+    "{{ meta.get('gate') }}|{{ meta.get('nope') }}|{{ meta.get('nope', 'dflt') }}|{{ meta.nope }}|[{{ meta['nope'] }}]",
+    "{{ none | string }}|{{ true | string }}|{{ 3.0 | int }}|{{ '5' | int + 1 }}|{{ 2 | float }}",
+    "{{ '%.2f' | format(3.14159) }}|{{ '%s-%s' | format(none, true) }}|{{ '%d items' | format(n) }}",
+    "{{ '{}-{}'.format(1, 2) }}",
+    "{{ 'a' in 'cat' }}|{{ 'dock' in meta }}|{{ 'role' in messages[0] }}",
+    "{{ [none, 1, 'x'] | join(',') }}",
+    "{{ word | trim }}|{{ word.strip() }}|{{ word.rstrip() }}|{{ word.lstrip() }}|{{ word | length }}",
+    "{{ word.strip().upper() }}|{{ word.strip().lower() }}|{{ 'x-y'.replace('-', '+') }}",
+    "{{ 'abc'.upper().startswith('AB') }}|{{ 'abc'.endswith(('x', 'c')) }}",
+    "{{ messages | selectattr('role', 'equalto', 'user') | map(attribute='content') | first }}",
+    "{{ messages | rejectattr('role', 'equalto', 'system') | list | length }}",
+    "{{ messages[0].content is defined }}|{{ meta.night is none }}|{{ nope is defined }}|{{ meta.tags is iterable }}",
+    "{{ n is number }}|{{ word is string }}|{{ meta is mapping }}|{{ meta.tags is sequence }}|{{ f is float }}|{{ n is integer }}",
+    "{{ 1 if none else 2 }}|{{ flag and 'yes' }}|{{ none or 'empty' }}|{{ not flag }}",
+    "{% for m in messages %}{{ loop.revindex }}{{ loop.cycle('a', 'b') }}{{ loop.previtem.role if loop.previtem is defined else '-' }};{% endfor %}",
+    "{{ messages[5] }}|{{ messages | length }}|{{ messages[-1].role }}",
+    "{{ f | round }}|{{ 2.567 | round(2) }}|{{ n | abs }}|{{ -3 | abs }}",
+    "{{ 'x' | tojson }}|{{ [1, 'é'] | tojson }}|{{ none | tojson }}|{{ meta | tojson }}",
+    "{{ meta.tags | tojson(indent=4) }}",
+    "{{ 'a\\tb' }}|{{ \"It's\" }}|{{ [\"It's\"] }}|{{ ['a\\nb'] }}",
+    "{{ meta.tags | first }}|{{ meta.tags | last }}|{{ meta.tags | reverse | list }}|{{ meta.tags | unique | list }}",
+    "{{ meta | length }}|{{ meta.tags | count }}|{{ 'abc' | list }}|{{ meta.tags | batch(1) | list }}",
+    "{% set parts = 'a:b:c'.split(':') %}{{ parts[0] }}{{ parts | length }}",
+    "{{ 1 == 1.0 }}|{{ 'a' < 'b' }}|{{ [1] == [1] }}|{{ 3 > 2 > 1 }}",
+    "{{ 'ferry' | capitalize }}|{{ 'FERRY boat' | lower }}|{{ 'ferry boat' | title }}|{{ 'x' | center(5) }}|",
+    "{{ word | replace(' ', '_') }}|{{ 'aaa' | replace('a', 'b', 2) }}",
+    "{{ nope.attr }}",
+    "{{ 'ab' | center(7) }}|{{ 'abc' | center(6) }}|{{ 'abc' | center(2) }}|{{ 'x' | center }}|",
+    "{% set c = cycler('odd', 'even') %}{% for m in messages %}{{ c.next() }} {% endfor %}",
+    "{% set j = joiner(' | ') %}{% for m in messages %}{{ j() }}{{ m.role }}{% endfor %}",
+    "{{ 'a\\nb\\nc' | indent(2) }}|{{ 'a\\nb' | indent(2, true) }}",
+    "{% for k, v in meta | dictsort %}{{ k }}={{ v }};{% endfor %}",
+    "{{ 'a' + 1 }}",
+    "{{ 'Hi' if messages[0]['role'] == 'system' }}{{ 'never' if false }}|",
+    "{{ messages[0] | items | list | length }}|{{ (messages | map(attribute='role') | list) }}",
+    "{{ 3 | string + 'x' }}|{{ (3, 4) | list }}|{{ {'a': 1}.a }}",
+]
+
 SYSTEM = "You are the help desk of the island ferry cooperative. Answer briefly."
 CONVERSATIONS = {
     "user_only": [{"role": "user", "content": "When does the first ferry leave North Pier?"}],
@@ -375,6 +436,13 @@ def save_tokenizer(tok: Tokenizer, out: Path, **kwargs) -> PreTrainedTokenizerFa
     return PreTrainedTokenizerFast.from_pretrained(out)
 
 
+def jinja_env():
+    """transformers' own compiled environment (`_compile_jinja_template`), for snippets."""
+    from transformers.utils.chat_template_utils import _compile_jinja_template
+
+    return _compile_jinja_template("x").environment
+
+
 def render_case(tok, template, messages, add_generation_prompt=True):
     try:
         text = tok.apply_chat_template(
@@ -409,6 +477,15 @@ def main():
                     **render_case(tok, template, messages, agp),
                 }
                 cases.append(case)
+
+    snippets = []
+    env = jinja_env()
+    ctx = dict(SNIPPET_CONTEXT, messages=CONVERSATIONS["system_user"])
+    for src in SNIPPETS:
+        try:
+            snippets.append({"template": src, "expected_text": env.from_string(src).render(**ctx)})
+        except Exception as e:  # noqa: BLE001 - recorded as the expected failure
+            snippets.append({"template": src, "expected_error": f"{type(e).__name__}: {e}"})
 
     # Plain tokenizer(text) with the post-processor's BOS, as the no-template fallback uses.
     plain_text = f"{SYSTEM}\n\nQuestion: Can I bring my bicycle?\nAnswer:"
@@ -504,6 +581,8 @@ def main():
         "templates": TEMPLATES,
         "conversations": CONVERSATIONS,
         "cases": cases,
+        "snippet_context": dict(SNIPPET_CONTEXT, messages=CONVERSATIONS["system_user"]),
+        "snippets": snippets,
         "plain": plain,
         "decode": decode_cases,
         "bpe_cleanup": bpe_cleanup_case,
