@@ -35,6 +35,7 @@
 //!   calls it renders a different prompt every day.
 
 mod pyfmt;
+pub use pyfmt::py_strip;
 pub mod strftime;
 pub mod template;
 
@@ -362,6 +363,13 @@ impl ChatTokenizer {
         } else {
             text
         })
+    }
+
+    /// [`decode`](Self::decode), then Python's `str.strip()` ([`py_strip`]): the answer text as
+    /// `tokenizer.decode(ids, skip_special_tokens=True).strip()` gives it. Rust's `str::trim`
+    /// differs: it keeps U+001C..U+001F, which Python strips.
+    pub fn decode_answer(&self, ids: &[u32]) -> Result<String> {
+        Ok(py_strip(&self.decode(ids)?).to_string())
     }
 
     /// SHA-256 hex of the template source actually used (or of the fallback's name) for run.json.

@@ -19,14 +19,16 @@
 //!   (`[1, 'x']`) where Jinja2 prints `(1, 'x')`. Templates iterate such pairs rather than print
 //!   them, so this is left as a documented difference.
 //! - **Python methods** (`.strip()`, `.startswith()`, `.items()`, `.get()`, ...): minijinja-contrib
-//!   `pycompat` as the unknown-method callback.
+//!   `pycompat` as the unknown-method callback, except that `strip`/`lstrip`/`rstrip`/`split`
+//!   without arguments and the `trim` filter use Python's whitespace set, which also holds
+//!   U+001C..U+001F (Rust's `trim` keeps those).
 //! - **Undefined**: `UndefinedBehavior::Lenient`, which is Jinja2's default `Undefined`: printing
 //!   gives "", it is falsy and iterable as empty, and attribute access on it fails.
 //! - **Untrusted code**: no loader (no file or network access), a fuel budget so runaway loops
 //!   fail fast, the default recursion limit so deep recursion fails with an error rather than a
 //!   stack overflow. Jinja2's sandbox caps `range()` at 100 000 items; minijinja does the same.
 
-use super::pyfmt::{json_dumps, py_str, JsonOptions};
+use super::pyfmt::{is_py_space, json_dumps, py_split_whitespace, py_str, py_strip, JsonOptions};
 use super::strftime::{strftime, DateTime};
 use minijinja::value::{Kwargs, Rest, Value, ValueKind};
 use minijinja::{Environment, Error as JinjaError, ErrorKind, UndefinedBehavior};
@@ -154,7 +156,7 @@ impl ChatTemplate {
         env.set_undefined_behavior(UndefinedBehavior::Lenient);
         env.set_fuel(Some(FUEL));
         env.set_recursion_limit(RECURSION_LIMIT);
-        env.set_unknown_method_callback(minijinja_contrib::pycompat::unknown_method_callback);
+        env.set_unknown_method_callback(python_methods);
         env.set_formatter(|out, _state, value| {
             if value.kind() != ValueKind::Undefined {
                 out.write_str(&py_str(value))
@@ -167,6 +169,7 @@ impl ChatTemplate {
         env.add_filter("tojson", tojson);
         env.add_filter("string", |v: Value| py_str(&v));
         env.add_filter("center", center);
+        env.add_filter("trim", trim);
         // Jinja2's cycler takes the items as separate arguments.
         env.add_function("cycler", |items: Rest<Value>| {
             minijinja_contrib::globals::cycler(items.0)
@@ -184,6 +187,42 @@ impl ChatTemplate {
             .get_template(TEMPLATE_NAME)
             .map_err(|e| convert_error(&e))?;
         tmpl.render(ctx).map_err(|e| convert_error(&e))
+    }
+}
+
+/// Python string methods: `strip`/`lstrip`/`rstrip`/`split` without arguments use Python's
+/// whitespace set ([`is_py_space`]); everything else goes to minijinja-contrib's `pycompat`.
+fn python_methods(
+    state: &mut minijinja::State,
+    value: &Value,
+    method: &str,
+    args: &[Value],
+) -> Result<Value, JinjaError> {
+    let no_args = args.is_empty() || (args.len() == 1 && args[0].is_none());
+    if let (Some(s), true) = (value.as_str(), no_args) {
+        match method {
+            "strip" => return Ok(Value::from(py_strip(s))),
+            "lstrip" => return Ok(Value::from(s.trim_start_matches(is_py_space))),
+            "rstrip" => return Ok(Value::from(s.trim_end_matches(is_py_space))),
+            "split" => {
+                let parts: Vec<Value> = py_split_whitespace(s)
+                    .into_iter()
+                    .map(Value::from)
+                    .collect();
+                return Ok(Value::from(parts));
+            }
+            _ => {}
+        }
+    }
+    minijinja_contrib::pycompat::unknown_method_callback(state, value, method, args)
+}
+
+/// Jinja2's `trim(chars=None)`, which is Python's `str.strip(chars)`.
+fn trim(value: Value, chars: Option<String>) -> String {
+    let s = py_str(&value);
+    match chars {
+        Some(chars) => s.trim_matches(|c| chars.contains(c)).to_string(),
+        None => py_strip(&s).to_string(),
     }
 }
 

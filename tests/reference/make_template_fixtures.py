@@ -16,7 +16,9 @@ for invented chat templates written in the styles of the common model families:
 
 plus `decode(ids, skip_special_tokens=True)` on a few id lists, and whole model directories saved
 by `save_pretrained` for the loader. Everything goes to tests/fixtures/templates/.
-No template calls `strftime_now`, so the fixtures do not depend on the date.
+No template calls `strftime_now`, so the fixtures do not depend on the date. The WordPiece
+trainer breaks ties in an unstable order, so its vocabulary may change between runs; its ids and
+expected text are always recorded together.
 """
 
 import json
@@ -349,6 +351,7 @@ SNIPPET_CONTEXT = {
     "n": 7,
     "f": 2.5,
     "flag": True,
+    "sep": "\x1c ferry  boat \x1f\n",
 }
 SNIPPETS = [
     "{{ 'a' ~ 1 ~ 'b' }}",
@@ -389,6 +392,7 @@ SNIPPETS = [
     "{{ 'ferry' | capitalize }}|{{ 'FERRY boat' | lower }}|{{ 'ferry boat' | title }}|{{ 'x' | center(5) }}|",
     "{{ word | replace(' ', '_') }}|{{ 'aaa' | replace('a', 'b', 2) }}",
     "{{ nope.attr }}",
+    "[{{ sep.strip() }}]|[{{ sep | trim }}]|{{ sep.split() }}|[{{ sep.lstrip() }}]|[{{ sep.rstrip() }}]|{{ sep.split(' ') }}",
     "{{ 'ab' | center(7) }}|{{ 'abc' | center(6) }}|{{ 'abc' | center(2) }}|{{ 'x' | center }}|",
     "{% set c = cycler('odd', 'even') %}{% for m in messages %}{{ c.next() }} {% endfor %}",
     "{% set j = joiner(' | ') %}{% for m in messages %}{{ j() }}{{ m.role }}{% endfor %}",
