@@ -18,10 +18,13 @@
 //! - **Tuples**: minijinja has none, so `(1, 'x')`, `dictsort` and `.items()` pairs print as lists
 //!   (`[1, 'x']`) where Jinja2 prints `(1, 'x')`. Templates iterate such pairs rather than print
 //!   them, so this is left as a documented difference.
+//! - **`str % args`**: Jinja2 evaluates Python's printf operator; minijinja refuses `%` on a
+//!   string with a "tried to use % operator on unsupported types" error. The `format` filter
+//!   (`'%s' | format(x)`) works in both. Not bridged: minijinja's operators cannot be extended.
 //! - **Python methods** (`.strip()`, `.startswith()`, `.items()`, `.get()`, ...): minijinja-contrib
 //!   `pycompat` as the unknown-method callback, except that `strip`/`lstrip`/`rstrip`/`split`
 //!   without arguments and the `trim` filter use Python's whitespace set, which also holds
-//!   U+001C..U+001F (Rust's `trim` keeps those).
+//!   U+001C..U+001F (Rust's `trim` keeps those); `rsplit` and `swapcase` are added.
 //! - **Undefined**: `UndefinedBehavior::Lenient`, which is Jinja2's default `Undefined`: printing
 //!   gives "", it is falsy and iterable as empty, and attribute access on it fails.
 //! - **Untrusted code**: no loader (no file or network access), a fuel budget so runaway loops
@@ -214,7 +217,101 @@ fn python_methods(
             _ => {}
         }
     }
+    if let Some(s) = value.as_str() {
+        match method {
+            "rsplit" => return rsplit(s, args),
+            "swapcase" if args.is_empty() => {
+                let swapped: String = s
+                    .chars()
+                    .flat_map(|c| {
+                        if c.is_uppercase() {
+                            c.to_lowercase().collect::<Vec<_>>()
+                        } else {
+                            c.to_uppercase().collect::<Vec<_>>()
+                        }
+                    })
+                    .collect();
+                return Ok(Value::from(swapped));
+            }
+            _ => {}
+        }
+    }
     minijinja_contrib::pycompat::unknown_method_callback(state, value, method, args)
+}
+
+/// Python's `str.rsplit(sep=None, maxsplit=-1)`.
+fn rsplit(s: &str, args: &[Value]) -> Result<Value, JinjaError> {
+    let bad = || {
+        JinjaError::new(
+            ErrorKind::InvalidOperation,
+            "rsplit takes (sep=None, maxsplit=-1)",
+        )
+    };
+    if args.len() > 2 {
+        return Err(bad());
+    }
+    let sep = match args.first() {
+        None => None,
+        Some(v) if v.is_none() => None,
+        Some(v) => Some(v.as_str().ok_or_else(bad)?.to_string()),
+    };
+    let maxsplit = match args.get(1) {
+        None => -1,
+        Some(v) => v.as_i64().ok_or_else(bad)?,
+    };
+    let limit = if maxsplit < 0 {
+        usize::MAX
+    } else {
+        maxsplit as usize
+    };
+    let mut parts: Vec<String> = match sep {
+        Some(sep) if sep.is_empty() => {
+            return Err(JinjaError::new(
+                ErrorKind::InvalidOperation,
+                "empty separator",
+            ))
+        }
+        Some(sep) => {
+            let mut out = Vec::new();
+            let mut rest = s;
+            while out.len() < limit {
+                match rest.rfind(sep.as_str()) {
+                    Some(i) => {
+                        out.push(rest[i + sep.len()..].to_string());
+                        rest = &rest[..i];
+                    }
+                    None => break,
+                }
+            }
+            out.push(rest.to_string());
+            out
+        }
+        None => {
+            // Whitespace runs separate; trailing whitespace is dropped before each split.
+            let mut out = Vec::new();
+            let mut rest = s.trim_end_matches(is_py_space);
+            while !rest.is_empty() && out.len() < limit {
+                match rest.rfind(is_py_space) {
+                    Some(i) => {
+                        let ch = rest[i..].chars().next().map_or(1, char::len_utf8);
+                        out.push(rest[i + ch..].to_string());
+                        rest = rest[..i].trim_end_matches(is_py_space);
+                    }
+                    None => {
+                        out.push(rest.to_string());
+                        rest = "";
+                    }
+                }
+            }
+            // When maxsplit stops the scan, Python keeps the remainder's leading whitespace.
+            if !rest.is_empty() {
+                out.push(rest.to_string());
+            }
+            out
+        }
+    };
+    parts.reverse();
+    Ok(Value::from(parts))
 }
 
 /// Jinja2's `trim(chars=None)`, which is Python's `str.strip(chars)`.
