@@ -431,3 +431,23 @@ fn chat_tokenizer_is_shareable_across_threads() {
     fn assert_send_sync<T: Send + Sync>() {}
     assert_send_sync::<ChatTokenizer>();
 }
+
+#[test]
+fn strftime_matches_python_at_fixed_instants() {
+    // Python `datetime.fromtimestamp(t, timezone.utc).strftime(fmt)` (glibc, C locale), the
+    // function behind transformers' strftime_now.
+    use liftgate::chat::strftime::{strftime, DateTime};
+    let fx = cases();
+    let all = fx["strftime"].as_array().unwrap();
+    assert!(all.len() >= 20);
+    for case in all {
+        let t = DateTime::from_unix(case["unix"].as_i64().unwrap());
+        let fmt = case["format"].as_str().unwrap();
+        assert_eq!(
+            strftime(fmt, &t).unwrap(),
+            case["expected"].as_str().unwrap(),
+            "{fmt} at {}",
+            case["unix"]
+        );
+    }
+}

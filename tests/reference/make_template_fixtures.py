@@ -352,6 +352,9 @@ SNIPPET_CONTEXT = {
     "f": 2.5,
     "flag": True,
     "sep": "\x1c ferry  boat \x1f\n",
+    "tools": None,
+    "documents": None,
+    "add_generation_prompt": True,
 }
 SNIPPETS = [
     "{{ 'a' ~ 1 ~ 'b' }}",
@@ -392,6 +395,8 @@ SNIPPETS = [
     "{{ 'ferry' | capitalize }}|{{ 'FERRY boat' | lower }}|{{ 'ferry boat' | title }}|{{ 'x' | center(5) }}|",
     "{{ word | replace(' ', '_') }}|{{ 'aaa' | replace('a', 'b', 2) }}",
     "{{ nope.attr }}",
+    "{{ strftime_now is defined }}|{{ raise_exception is defined }}|{{ tools is none }}|{{ documents is none }}|{{ custom_tools is defined }}",
+    "{%- if custom_tools is defined %}{%- set tools = custom_tools %}{%- endif %}{%- if not tools_in_user_message is defined %}{%- set tools_in_user_message = true %}{%- endif %}{{ tools is not none }}/{{ tools_in_user_message }}",
     "{{ '%s items' % n }}|{{ '%s-%s' % ('a', 'b') }}",
     "{{ 'x' ~ 1.0 ~ none }}|{{ meta.tags | map('upper') | list }}|{{ meta.night is not none }}",
     "{{ 'a\\n b \\nc'.split('\\n') | map('trim') | join('/') }}",
@@ -506,6 +511,21 @@ def main():
         except Exception as e:  # noqa: BLE001 - recorded as the expected failure
             snippets.append({"template": src, "expected_error": f"{type(e).__name__}: {e}"})
 
+    # strftime codes at fixed instants (transformers' strftime_now is datetime.now().strftime).
+    import datetime as dt
+
+    instants = [1709217045, 946684800, 1764633599, 0]
+    formats = ["%d %b %Y", "%Y-%m-%d %H:%M:%S", "%A, %B %d, %Y", "%a %b %e %I:%M %p %y %j", "%-d %B %Y", "%F %T %D %%"]
+    strftime_cases = [
+        {
+            "unix": t,
+            "format": f,
+            "expected": dt.datetime.fromtimestamp(t, dt.timezone.utc).replace(tzinfo=None).strftime(f),
+        }
+        for t in instants
+        for f in formats
+    ]
+
     # Plain tokenizer(text) with the post-processor's BOS, as the no-template fallback uses.
     plain_text = f"{SYSTEM}\n\nQuestion: Can I bring my bicycle?\nAnswer:"
     plain = {"text": plain_text, "expected_ids": tok(plain_text)["input_ids"]}
@@ -602,6 +622,7 @@ def main():
         "cases": cases,
         "snippet_context": dict(SNIPPET_CONTEXT, messages=CONVERSATIONS["system_user"]),
         "snippets": snippets,
+        "strftime": strftime_cases,
         "plain": plain,
         "decode": decode_cases,
         "bpe_cleanup": bpe_cleanup_case,
