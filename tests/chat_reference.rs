@@ -424,6 +424,22 @@ fn chat_template_jinja_wins_over_tokenizer_config() {
     .unwrap();
     let tok = ChatTokenizer::load(dir.path()).unwrap();
     assert_eq!(tok.render_prompt(None, "q").unwrap(), "<s>from-file q");
+    assert!(!tok.template_uses_date());
+    std::fs::write(
+        dir.path().join("chat_template.jinja"),
+        "Today Date: {{ strftime_now('%d %b %Y') }}\n{{ messages[0].content }}",
+    )
+    .unwrap();
+    let tok = ChatTokenizer::load(dir.path()).unwrap();
+    assert!(tok.template_uses_date());
+    let year = liftgate::chat::strftime::DateTime::now_utc()
+        .year
+        .to_string();
+    let prompt = tok.render_prompt(None, "q").unwrap();
+    assert!(
+        prompt.starts_with("Today Date: ") && prompt.contains(&year),
+        "{prompt}"
+    );
 }
 
 #[test]

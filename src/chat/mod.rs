@@ -373,11 +373,23 @@ impl ChatTokenizer {
     }
 
     /// SHA-256 hex of the template source actually used (or of the fallback's name) for run.json.
+    ///
+    /// It covers the template source, not the rendered prompt: a template that calls
+    /// `strftime_now` (see [`template_uses_date`](Self::template_uses_date)) renders a different
+    /// prompt every day under the same fingerprint, so fingerprint the prompt ids as well when
+    /// that matters.
     pub fn template_fingerprint(&self) -> String {
         match &self.template {
             Some(t) => crate::fsutil::sha256_hex(t.source.as_bytes()),
             None => crate::fsutil::sha256_hex(PLAIN_FALLBACK_NAME.as_bytes()),
         }
+    }
+
+    /// Whether the template reads the current date (`strftime_now`), so its prompts change daily.
+    pub fn template_uses_date(&self) -> bool {
+        self.template
+            .as_ref()
+            .is_some_and(|t| t.source.contains("strftime_now"))
     }
 
     /// Whether a chat template was found (false = the documented plain fallback is in use).
