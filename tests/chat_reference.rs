@@ -46,7 +46,6 @@ fn templates_render_and_encode_like_transformers() {
         fx["source"].as_str(),
         Some("transformers 5.24.0 apply_chat_template")
     );
-    let base = ChatTokenizer::load(&fixtures().join("bpe")).expect("load bpe tokenizer");
     let mut checked = 0;
     let mut failures = Vec::new();
     for case in fx["cases"].as_array().unwrap() {
@@ -100,8 +99,7 @@ fn templates_render_and_encode_like_transformers() {
         checked += 1;
     }
     assert!(failures.is_empty(), "{}", failures.join("\n"));
-    assert!(checked >= 90, "only {checked} cases");
-    drop(base);
+    assert!(checked >= 100, "only {checked} cases");
 }
 
 #[test]
