@@ -54,15 +54,26 @@ pub struct Lift {
 /// `c` over the indices drawn for resample `b`. All columns must have the same length n ≥ 1;
 /// resample b uses the same indices in every column. Deterministic for a given
 /// `(seed, domain)` whatever the thread count (see [`super::rng`]).
-pub fn resample_means(columns: &[&[f64]], resamples: usize, seed: u64, domain: u32) -> Vec<Vec<f64>> {
+pub fn resample_means(
+    columns: &[&[f64]],
+    resamples: usize,
+    seed: u64,
+    domain: u32,
+) -> Vec<Vec<f64>> {
     let k = columns.len();
     if k == 0 || resamples == 0 {
         return vec![Vec::new(); k];
     }
     let n = columns[0].len();
     assert!(n >= 1, "resample_means needs at least one row");
-    assert!(columns.iter().all(|c| c.len() == n), "columns differ in length");
-    assert!(n <= u32::MAX as usize, "more rows than the index generator supports");
+    assert!(
+        columns.iter().all(|c| c.len() == n),
+        "columns differ in length"
+    );
+    assert!(
+        n <= u32::MAX as usize,
+        "more rows than the index generator supports"
+    );
     let inv_n = 1.0 / n as f64;
     fn split<const K: usize>(sums: Vec<[f64; K]>, inv_n: f64) -> Vec<Vec<f64>> {
         (0..K)
@@ -70,9 +81,18 @@ pub fn resample_means(columns: &[&[f64]], resamples: usize, seed: u64, domain: u
             .collect()
     }
     match k {
-        1 => split(sums_k::<1>(&interleave::<1>(columns), resamples, seed, domain), inv_n),
-        2 => split(sums_k::<2>(&interleave::<2>(columns), resamples, seed, domain), inv_n),
-        3 => split(sums_k::<3>(&interleave::<3>(columns), resamples, seed, domain), inv_n),
+        1 => split(
+            sums_k::<1>(&interleave::<1>(columns), resamples, seed, domain),
+            inv_n,
+        ),
+        2 => split(
+            sums_k::<2>(&interleave::<2>(columns), resamples, seed, domain),
+            inv_n,
+        ),
+        3 => split(
+            sums_k::<3>(&interleave::<3>(columns), resamples, seed, domain),
+            inv_n,
+        ),
         _ => {
             // Rare: more than three columns; resample them three at a time on the same streams.
             let mut out = Vec::with_capacity(k);
@@ -92,7 +112,12 @@ fn interleave<const K: usize>(columns: &[&[f64]]) -> Vec<[f64; K]> {
 }
 
 /// Resample sums, one `[f64; K]` per resample, chunk by chunk in parallel.
-fn sums_k<const K: usize>(rows: &[[f64; K]], resamples: usize, seed: u64, domain: u32) -> Vec<[f64; K]> {
+fn sums_k<const K: usize>(
+    rows: &[[f64; K]],
+    resamples: usize,
+    seed: u64,
+    domain: u32,
+) -> Vec<[f64; K]> {
     let n = rows.len() as u32;
     let mut out = vec![[0.0f64; K]; resamples];
     out.par_chunks_mut(CHUNK)
@@ -131,7 +156,10 @@ fn add<const K: usize>(acc: &mut [f64; K], row: &[f64; K]) {
 /// `boot` (as made by [`resample_means`]). `confidence` in (0, 1). `diffs` must be non-empty.
 pub fn lift_intervals(diffs: &[f64], boot: &[f64], confidence: f64) -> Lift {
     let n = diffs.len();
-    assert!(n >= 1 && !boot.is_empty(), "lift_intervals needs data and resamples");
+    assert!(
+        n >= 1 && !boot.is_empty(),
+        "lift_intervals needs data and resamples"
+    );
     let estimate = diffs.iter().sum::<f64>() / n as f64;
     let all_equal = diffs.iter().all(|&d| d == diffs[0]);
     if all_equal {
@@ -182,7 +210,13 @@ pub fn lift_intervals(diffs: &[f64], boot: &[f64], confidence: f64) -> Lift {
 }
 
 /// Bootstrap a single lift: [`resample_means`] on one column, then [`lift_intervals`].
-pub fn paired_bootstrap(diffs: &[f64], resamples: usize, confidence: f64, seed: u64, domain: u32) -> Lift {
+pub fn paired_bootstrap(
+    diffs: &[f64],
+    resamples: usize,
+    confidence: f64,
+    seed: u64,
+    domain: u32,
+) -> Lift {
     let boot = resample_means(&[diffs], resamples, seed, domain)
         .pop()
         .unwrap_or_default();
@@ -258,9 +292,14 @@ mod tests {
 
     #[test]
     fn same_seed_same_result_and_independent_of_threads() {
-        let d: Vec<f64> = (0..500).map(|i| ((i * 37 % 101) as f64 - 50.0) / 100.0).collect();
+        let d: Vec<f64> = (0..500)
+            .map(|i| ((i * 37 % 101) as f64 - 50.0) / 100.0)
+            .collect();
         let one = paired_bootstrap(&d, 3000, 0.95, 11, 1);
-        let pool = rayon::ThreadPoolBuilder::new().num_threads(1).build().unwrap();
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(1)
+            .build()
+            .unwrap();
         let single = pool.install(|| paired_bootstrap(&d, 3000, 0.95, 11, 1));
         assert_eq!(one, single);
         let other = paired_bootstrap(&d, 3000, 0.95, 12, 1);
@@ -283,7 +322,9 @@ mod tests {
 
     #[test]
     fn interval_covers_the_estimate_and_is_ordered() {
-        let d: Vec<f64> = (0..200).map(|i| if i % 3 == 0 { 1.0 } else { 0.0 }).collect();
+        let d: Vec<f64> = (0..200)
+            .map(|i| if i % 3 == 0 { 1.0 } else { 0.0 })
+            .collect();
         let lift = paired_bootstrap(&d, 4000, 0.9, 5, 1);
         for iv in [lift.percentile, lift.bca] {
             assert!(iv.low < lift.estimate && lift.estimate < iv.high, "{iv:?}");

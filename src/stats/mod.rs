@@ -91,3 +91,6 @@ mod tests {
         assert!((sd - 2.5f64.sqrt()).abs() < 1e-12);
     }
 }
+
+#[cfg(test)]
+mod reference_tests;

@@ -121,19 +121,29 @@ mod tests {
     #[test]
     fn monte_carlo_matches_exact_within_error() {
         // 12 non-zero differences: exact with 4096 ≤ m, Monte-Carlo with m = 4000 < 4096.
-        let d = [0.4, 0.1, -0.2, 0.3, 0.5, 0.05, -0.1, 0.2, 0.25, 0.15, -0.05, 0.35];
+        let d = [
+            0.4, 0.1, -0.2, 0.3, 0.5, 0.05, -0.1, 0.2, 0.25, 0.15, -0.05, 0.35,
+        ];
         let exact = sign_flip_test(&d, 5000, 3, 1);
         let mc = sign_flip_test(&d, 4000, 3, 1);
         assert!(exact.exact && !mc.exact);
         // Binomial standard error of p at m = 4000 is below 0.008; allow 4 of them.
-        assert!((exact.p_value - mc.p_value).abs() < 0.032, "{exact:?} {mc:?}");
+        assert!(
+            (exact.p_value - mc.p_value).abs() < 0.032,
+            "{exact:?} {mc:?}"
+        );
     }
 
     #[test]
     fn deterministic_across_thread_counts() {
-        let d: Vec<f64> = (0..300).map(|i| ((i * 13 % 17) as f64 - 7.5) / 20.0).collect();
+        let d: Vec<f64> = (0..300)
+            .map(|i| ((i * 13 % 17) as f64 - 7.5) / 20.0)
+            .collect();
         let a = sign_flip_test(&d, 2000, 9, 4);
-        let pool = rayon::ThreadPoolBuilder::new().num_threads(1).build().unwrap();
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(1)
+            .build()
+            .unwrap();
         let b = pool.install(|| sign_flip_test(&d, 2000, 9, 4));
         assert_eq!(a, b);
     }

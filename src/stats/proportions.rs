@@ -22,8 +22,16 @@ pub fn wilson(successes: u64, n: u64, confidence: f64) -> Option<Interval> {
     let centre = (p + z2 / (2.0 * n_f)) / denom;
     let half = z / denom * (p * (1.0 - p) / n_f + z2 / (4.0 * n_f * n_f)).sqrt();
     // At 0/n and n/n the bounds are exactly 0 and 1; rounding would leave ±1e-17.
-    let low = if successes == 0 { 0.0 } else { (centre - half).max(0.0) };
-    let high = if successes == n { 1.0 } else { (centre + half).min(1.0) };
+    let low = if successes == 0 {
+        0.0
+    } else {
+        (centre - half).max(0.0)
+    };
+    let high = if successes == n {
+        1.0
+    } else {
+        (centre + half).min(1.0)
+    };
     Some(Interval { low, high })
 }
 
@@ -63,7 +71,10 @@ mod tests {
         assert_eq!(wilson(0, 0, 0.95), None);
         // 81/263 at 95%: Newcombe (1998), Stat. Med. 17:857, Table I gives 0.2553–0.3662.
         let iv = wilson(81, 263, 0.95).unwrap();
-        assert!((iv.low - 0.2553).abs() < 5e-5 && (iv.high - 0.3662).abs() < 5e-5, "{iv:?}");
+        assert!(
+            (iv.low - 0.2553).abs() < 5e-5 && (iv.high - 0.3662).abs() < 5e-5,
+            "{iv:?}"
+        );
     }
 
     #[test]
