@@ -552,7 +552,10 @@ fn checks(
         name: format!("lift.{}", metric.as_str()),
         description: format!(
             "lower end of the {} interval of the {} lift",
-            policy.lift.interval.as_str(),
+            match policy.lift.interval {
+                crate::policy::IntervalKind::Bca => "BCa",
+                crate::policy::IntervalKind::Percentile => "percentile",
+            },
             metric.label()
         ),
         threshold: bar,
