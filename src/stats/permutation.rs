@@ -67,10 +67,12 @@ pub fn sign_flip_test(diffs: &[f64], resamples: usize, seed: u64, domain: u32) -
             let count = CHUNK.min(resamples - chunk * CHUNK);
             let mut hits = 0u64;
             for _ in 0..count {
-                let mut s = 0.0;
+                let mut acc = [0.0f64; 8];
                 for block in nz.chunks(64) {
-                    s += flipped_sum(block, rng.next_u64());
+                    flip_accumulate(&mut acc, block, rng.next_u64());
                 }
+                let s = ((acc[0] + acc[1]) + (acc[2] + acc[3]))
+                    + ((acc[4] + acc[5]) + (acc[6] + acc[7]));
                 if s.abs() >= bar {
                     hits += 1;
                 }
@@ -89,11 +91,48 @@ pub fn sign_flip_test(diffs: &[f64], resamples: usize, seed: u64, domain: u32) -
 /// Flipping is an XOR on the IEEE sign bit, which keeps the loop branch-free.
 #[inline(always)]
 fn flipped_sum(block: &[f64], mask: u64) -> f64 {
-    let mut s = 0.0;
-    for (j, d) in block.iter().enumerate() {
-        s += f64::from_bits(d.to_bits() ^ (((mask >> j) & 1) << 63));
+    let mut acc = [0.0f64; 8];
+    flip_accumulate(&mut acc, block, mask);
+    ((acc[0] + acc[1]) + (acc[2] + acc[3])) + ((acc[4] + acc[5]) + (acc[6] + acc[7]))
+}
+
+/// Sign masks for the eight bits of a byte: `SIGN_BITS[b][l]` is the IEEE sign bit when bit l
+/// of b is set. Expanding a mask byte by table lookup lets the flip loop run as plain vector
+/// XORs and additions.
+static SIGN_BITS: [[u64; 8]; 256] = {
+    let mut t = [[0u64; 8]; 256];
+    let mut b = 0;
+    while b < 256 {
+        let mut l = 0;
+        while l < 8 {
+            t[b][l] = (((b >> l) & 1) as u64) << 63;
+            l += 1;
+        }
+        b += 1;
     }
-    s
+    t
+};
+
+/// Adds ± block[j] into eight lane accumulators (term j into lane j mod 8), the sign of term j
+/// flipped when bit j of `mask` is set. Fixed lane order keeps the sum reproducible.
+#[inline(always)]
+fn flip_accumulate(acc: &mut [f64; 8], block: &[f64], mask: u64) {
+    let groups = block.chunks_exact(8);
+    let rest = groups.remainder();
+    let mut g = 0;
+    for group in groups {
+        let signs = &SIGN_BITS[((mask >> (8 * g)) & 0xff) as usize];
+        for l in 0..8 {
+            acc[l] += f64::from_bits(group[l].to_bits() ^ signs[l]);
+        }
+        g += 1;
+    }
+    if !rest.is_empty() {
+        let signs = &SIGN_BITS[((mask >> (8 * g)) & 0xff) as usize];
+        for (l, d) in rest.iter().enumerate() {
+            acc[l] += f64::from_bits(d.to_bits() ^ signs[l]);
+        }
+    }
 }
 
 #[cfg(test)]
