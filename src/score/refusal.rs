@@ -25,7 +25,8 @@
 //! 1. an *opening* phrase counts when its sentence is the answer's opening (the first sentence,
 //!    or any sentence starting within the first [`OPENING_CHARS`] characters) and the words
 //!    before it in that sentence are only courtesy words ("sorry", "unfortunately", "thanks for
-//!    asking", "I'm afraid", ...) or a linking "so";
+//!    asking", "I'm afraid", "I'd love to help, but", ...) or end with a linking "so", "as",
+//!    "because" or "since";
 //! 2. an *anywhere* phrase (declines of the whole request: "I can't help with that", "I can only
 //!    answer questions about", "my instructions", and every extra phrase) counts wherever it
 //!    stands;
@@ -149,6 +150,13 @@ const DECLINE_OBJECTS: &[&str] = &[
     "offer legal",
     "offer financial",
     "make predictions",
+    "provide recommendations",
+    "give recommendations",
+    "make recommendations",
+    "give * forecast",
+    "provide * forecast",
+    "change my",
+    "change how i",
     ".",
 ];
 
@@ -163,6 +171,11 @@ pub const OPENING_PHRASES: &[&str] = &[
     "i do not have * access",
     "i do not have that",
     "i do not have the ability",
+    "that is something i can not",
+    "that is not something i know",
+    "you would need to ask * about that",
+    "you will need to ask * about that",
+    "you would need to contact * about that",
     "i have no * information",
     "i have no * details",
     "i have no * access",
@@ -232,6 +245,13 @@ pub const ANYWHERE_PHRASES: &[&str] = &[
     "i am unable to answer that",
     "i am not able to help with that",
     "i am not able to answer that",
+    "something i can not help",
+    "something i am not able to help",
+    "i can not answer questions about",
+    "i am not able to answer questions about",
+    "not sure i can help with that",
+    "not something we handle",
+    "not something * handles",
     "i can only help with",
     "i can only answer",
     "i can only assist",
@@ -247,6 +267,9 @@ pub const ANYWHERE_PHRASES: &[&str] = &[
     "outside the scope of",
     "beyond the scope of",
     "beyond my scope",
+    "outside the topics",
+    "falls outside",
+    "this assistant only",
     "outside what i can",
     "outside of what i can",
     "beyond what i can",
@@ -322,6 +345,11 @@ const COURTESY_WORDS: &[&str] = &[
     "as",
     "ai",
     "assistant",
+    "would",
+    "love",
+    "like",
+    "help",
+    "hmm",
 ];
 
 /// Words that, after a contrast word, show the answer redirects or restates its scope rather
@@ -725,9 +753,10 @@ impl RefusalDetector {
 }
 
 /// Whether the words before an opening phrase in its sentence are only courtesy words, or end
-/// with a linking "so" ("..., so I can't advise on that").
+/// with a linking "so", "as", "because" or "since" ("..., so I can't advise on that").
 fn courtesy_prefix(prefix: &[Tok]) -> bool {
-    if matches!(prefix.last(), Some(Tok::Word(w)) if w == "so") {
+    if matches!(prefix.last(), Some(Tok::Word(w)) if matches!(w.as_str(), "so" | "as" | "because" | "since"))
+    {
         return true;
     }
     prefix.iter().all(|t| match t {
