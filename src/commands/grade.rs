@@ -1,9 +1,87 @@
-//! `liftgate grade` (placeholder until its issue lands).
+//! `liftgate grade`: scores an answers file against the question set's references and writes
+//! the grades file (interface.md, "Grades file"), one row a question in the set's order.
+//!
+//! Every row gets exact match, token F1 and ROUGE-L (each the maximum over the question's
+//! non-blank references, `None` when it has none) and the refusal flag. Rows are scored in
+//! parallel; the output order is the set's order.
 
 use super::Outcome;
+use crate::answers::{self, AnswerRecord};
 use crate::cli::GradeArgs;
 use crate::error::{Error, Result};
+use crate::fsutil;
+use crate::grades::GradeRecord;
+use crate::questions::{Expect, QuestionSet};
+use crate::score::{self, RefusalDetector};
+use rayon::prelude::*;
 
-pub fn run(_args: &GradeArgs) -> Result<Outcome> {
-    Err(Error::internal("`grade` is not built yet"))
+pub fn run(args: &GradeArgs) -> Result<Outcome> {
+    if args.policy.is_some() {
+        return Err(Error::usage("--policy for grade is not supported yet"));
+    }
+    let set = QuestionSet::load(&args.questions)?;
+    let answers = answers::load_for_set(&args.answers, &set)?;
+    let detector = RefusalDetector::default();
+    let grades = grade_set(&set, &answers, &detector);
+    fsutil::write_jsonl_atomic(&args.out, &grades)?;
+    eprintln!("{}", summary_line(&grades, &args.out));
+    Ok(Outcome::Success)
+}
+
+/// Scores every answer against its question. `answers` must already match `set` id for id, in
+/// order (as [`answers::load_for_set`] guarantees).
+pub fn grade_set(
+    set: &QuestionSet,
+    answers: &[AnswerRecord],
+    detector: &RefusalDetector,
+) -> Vec<GradeRecord> {
+    set.questions
+        .par_iter()
+        .zip(answers.par_iter())
+        .map(|(q, a)| {
+            let scores = score::score_references(&a.answer, &q.references);
+            GradeRecord {
+                id: q.id.clone(),
+                category: q.category.clone(),
+                expect: q.expect,
+                exact_match: scores.map(|s| s.exact_match),
+                token_f1: scores.map(|s| s.token_f1),
+                rouge_l: scores.map(|s| s.rouge_l),
+                refused: detector.is_refusal(&a.answer),
+                answer: a.answer.clone(),
+            }
+        })
+        .collect()
+}
+
+/// One line for stderr: counts and means over the `expect: answer` questions.
+fn summary_line(grades: &[GradeRecord], out: &std::path::Path) -> String {
+    let answer_rows: Vec<&GradeRecord> = grades
+        .iter()
+        .filter(|g| g.expect == Expect::Answer)
+        .collect();
+    let mean = |f: &dyn Fn(&GradeRecord) -> Option<f64>| -> Option<f64> {
+        let v: Vec<f64> = answer_rows.iter().filter_map(|g| f(g)).collect();
+        (!v.is_empty()).then(|| v.iter().sum::<f64>() / v.len() as f64)
+    };
+    let fmt = |m: Option<f64>| m.map_or("n/a".to_string(), |m| format!("{m:.3}"));
+    let refuse_rows = grades.len() - answer_rows.len();
+    let refused_out_of_scope = grades
+        .iter()
+        .filter(|g| g.expect == Expect::Refuse && g.refused)
+        .count();
+    let refused_in_scope = answer_rows.iter().filter(|g| g.refused).count();
+    format!(
+        "graded {} answers -> {}: exact match {}, token F1 {}, ROUGE-L {} (mean of {} in-scope); refused {}/{} out-of-scope, {}/{} in-scope",
+        grades.len(),
+        out.display(),
+        fmt(mean(&|g| g.exact_match.map(f64::from))),
+        fmt(mean(&|g| g.token_f1)),
+        fmt(mean(&|g| g.rouge_l)),
+        answer_rows.len(),
+        refused_out_of_scope,
+        refuse_rows,
+        refused_in_scope,
+        answer_rows.len(),
+    )
 }

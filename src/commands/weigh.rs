@@ -1,9 +1,69 @@
-//! `liftgate weigh` (placeholder until its issue lands).
+//! `liftgate weigh`: load the set, both grades files and the policy; weigh; write
+//! summary.json and report.md into the report directory (both or neither); print the terminal
+//! summary on stdout. Exit 0 on GO, 1 on NO-GO, 2 on bad input (interface.md).
 
 use super::Outcome;
 use crate::cli::WeighArgs;
-use crate::error::{Error, Result};
+use crate::error::Result;
+use crate::fsutil;
+use crate::grades;
+use crate::policy::Policy;
+use crate::questions::QuestionSet;
+use crate::report::{self, summary};
+use crate::weigh::{self, Settings, WeighInput};
+use std::path::Path;
 
-pub fn run(_args: &WeighArgs) -> Result<Outcome> {
-    Err(Error::internal("`weigh` is not built yet"))
+pub fn run(args: &WeighArgs) -> Result<Outcome> {
+    let settings = Settings::new(args.stats.resamples, args.stats.seed, args.stats.confidence)?;
+    let policy = Policy::load_or_default(args.stats.policy.as_deref())?;
+    let set = QuestionSet::load(&args.questions)?;
+    let baseline = grades::load_for_set(&args.baseline, &set)?;
+    let candidate = grades::load_for_set(&args.candidate, &set)?;
+    let policy_source = match &args.stats.policy {
+        Some(p) => summary::PolicySource {
+            path: Some(p.display().to_string()),
+            sha256: Some(fsutil::sha256_file(p)?),
+            source: "file".into(),
+        },
+        None => summary::PolicySource {
+            path: None,
+            sha256: None,
+            source: "built-in".into(),
+        },
+    };
+    let inputs = summary::Inputs {
+        questions: input_file(&args.questions, set.fingerprint.clone()),
+        baseline: input_file(&args.baseline, fsutil::sha256_file(&args.baseline)?),
+        candidate: input_file(&args.candidate, fsutil::sha256_file(&args.candidate)?),
+        policy: policy_source,
+    };
+    eprintln!(
+        "liftgate: weighing {} questions ({} resamples, seed {})",
+        set.len(),
+        settings.resamples,
+        settings.seed
+    );
+    let summary = weigh::weigh(&WeighInput {
+        set: &set,
+        baseline: &baseline,
+        candidate: &candidate,
+        policy: &policy,
+        settings,
+        inputs,
+    })?;
+    report::write_report_dir(&args.report, &summary)?;
+    print!("{}", report::terminal::render(&summary));
+    println!("report: {}", args.report.join("report.md").display());
+    Ok(if summary.verdict.go {
+        Outcome::Success
+    } else {
+        Outcome::NoGo
+    })
+}
+
+fn input_file(path: &Path, sha256: String) -> summary::InputFile {
+    summary::InputFile {
+        path: path.display().to_string(),
+        sha256,
+    }
 }

@@ -1,0 +1,67 @@
+#!/usr/bin/env bash
+# Benchmark of scoring and statistics (issue 2, "Performance"): `liftgate grade` of 100,000
+# invented answer pairs plus `liftgate weigh` with 10,000 resamples, and, on the same pairs in
+# the same run, ROUGE-L from the rouge-score package (the reference implementation).
+#
+# usage: bench/scoring.sh [PAIRS]       (default 100000)
+# env:   PYTHON  a Python 3 with rouge-score installed (default: python3); without rouge-score the
+#                reference timing is skipped.
+#        WORK    scratch directory (default: a new temporary directory, removed at the end)
+set -euo pipefail
+cd "$(dirname "$0")/.."
+PAIRS="${1:-100000}"
+PYTHON="${PYTHON:-python3}"
+WORK="${WORK:-$(mktemp -d)}"
+trap '[ -z "${KEEP:-}" ] && rm -rf "$WORK"' EXIT
+
+cargo build --release --quiet
+BIN=target/release/liftgate
+"$PYTHON" bench/make_pairs.py "$WORK" --pairs "$PAIRS"
+
+now() { date +%s.%N; }
+# CPU seconds (user + system) of one command, written to a file: the machine may be shared, and
+# wall time alone then overstates the cost.
+cpu() { local out="$1"; shift; /usr/bin/time -f "%U %S" -o "$out" "$@"; }
+cpus() { awk '{ printf "%.3f", $1 + $2 }' "$1"; }
+secs() { awk -v a="$1" -v b="$2" 'BEGIN { printf "%.3f", b - a }'; }
+
+t0=$(now)
+cpu "$WORK/cpu.grade" "$BIN" grade --questions "$WORK/set.jsonl" --answers "$WORK/tuned.jsonl" --out "$WORK/tuned.grades.jsonl"
+t1=$(now)
+"$BIN" grade --questions "$WORK/set.jsonl" --answers "$WORK/base.jsonl" --out "$WORK/base.grades.jsonl"
+t2=$(now)
+set +e
+cpu "$WORK/cpu.weigh" "$BIN" weigh --questions "$WORK/set.jsonl" --baseline "$WORK/base.grades.jsonl" \
+  --candidate "$WORK/tuned.grades.jsonl" --report "$WORK/report" --resamples 10000 > "$WORK/weigh.txt"
+code=$?
+set -e
+t3=$(now)
+[ "$code" -le 1 ] || { echo "weigh failed with exit $code" >&2; exit "$code"; }
+
+grade=$(secs "$t0" "$t1")
+weigh=$(secs "$t2" "$t3")
+total=$(awk -v a="$grade" -v b="$weigh" 'BEGIN { printf "%.3f", a + b }')
+echo "{\"kind\": \"liftgate_grade\", \"pairs\": $PAIRS, \"seconds\": $grade, \"cpu_seconds\": $(cpus "$WORK/cpu.grade")}"
+echo "{\"kind\": \"liftgate_grade_second_file\", \"pairs\": $PAIRS, \"seconds\": $(secs "$t1" "$t2")}"
+echo "{\"kind\": \"liftgate_weigh\", \"questions\": $PAIRS, \"resamples\": 10000, \"seconds\": $weigh, \"cpu_seconds\": $(cpus "$WORK/cpu.weigh"), \"verdict\": \"$(head -1 "$WORK/weigh.txt")\"}"
+echo "{\"kind\": \"liftgate_grade_plus_weigh\", \"pairs\": $PAIRS, \"seconds\": $total, \"cores\": $(nproc), \"load_average\": \"$(cut -d' ' -f1-3 /proc/loadavg)\"}"
+
+if "$PYTHON" -c "import rouge_score" 2>/dev/null; then
+  "$PYTHON" - "$WORK/pairs.jsonl" "$grade" <<'PY'
+import json, sys, time
+from importlib.metadata import version
+from rouge_score import rouge_scorer
+pairs = [json.loads(l) for l in open(sys.argv[1])]
+pairs = [(a, r) for a, r in pairs if r]
+sc = rouge_scorer.RougeScorer(["rougeL"], use_stemmer=False)
+t = time.perf_counter()
+vals = [sc.score(r, a)["rougeL"].fmeasure for a, r in pairs]
+dt = time.perf_counter() - t
+grade = float(sys.argv[2])
+print(json.dumps({"kind": "rouge_score_rougeL", "version": version("rouge-score"), "pairs": len(pairs),
+                  "seconds": round(dt, 3), "mean_f": round(sum(vals) / len(vals), 4),
+                  "ratio_to_liftgate_grade": round(dt / grade, 1)}))
+PY
+else
+  echo '{"kind": "rouge_score_rougeL", "skipped": "rouge-score not installed for '"$PYTHON"'"}'
+fi

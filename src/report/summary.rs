@@ -1,0 +1,246 @@
+//! The summary.json format: one serde struct tree, written by `weigh` and `vet`.
+//!
+//! interface.md fixes the core fields and they are kept exactly:
+//! `metrics.<exact_match|token_f1|rouge_l>.{baseline, candidate, lift, ci_low, ci_high,
+//! p_value, n}`, a `refusal` block, a `categories` block, and `verdict.{go, checks[]}` with each
+//! check's `name`, `threshold`, `value` and `pass`. Everything else is an extension (new fields
+//! may be added; none of these are renamed without a migration note).
+//!
+//! Scales: every score, share, lift and interval end is a fraction in [0, 1] (lifts in
+//! [−1, 1]), never a percentage. A number that cannot be computed (no questions) is `null`.
+//! The file holds no timestamps or timings, so the same inputs and seed give identical bytes.
+
+use crate::policy::Policy;
+use crate::stats::Interval;
+use serde::{Deserialize, Serialize};
+use std::collections::BTreeMap;
+
+/// Value of [`Summary::format`]; bumped when a field changes meaning.
+pub const FORMAT: &str = "liftgate-summary/1";
+
+/// The root object of summary.json.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Summary {
+    /// Always [`FORMAT`].
+    pub format: String,
+    /// liftgate's version.
+    pub tool_version: String,
+    /// The files weighed, with SHA-256 fingerprints of their contents.
+    pub inputs: Inputs,
+    /// Statistics settings.
+    pub settings: Settings,
+    /// The policy in force (the file's, or the built-in default), every key filled in.
+    pub policy: Policy,
+    /// Per-metric paired comparison over `expect: answer` questions.
+    pub metrics: Metrics,
+    /// Exact McNemar test on the exact-match discordant pairs.
+    pub mcnemar: McNemar,
+    pub refusal: Refusal,
+    /// Per category (sorted by name), the gate metric's comparison.
+    pub categories: BTreeMap<String, CategorySummary>,
+    /// Minimum detectable lift of the gate metric for this sample size.
+    pub mde: Mde,
+    /// Questions whose gate-metric score changed most.
+    pub changes: Changes,
+    /// Plain-words warnings (small sample, degenerate intervals, ...).
+    pub warnings: Vec<String>,
+    pub verdict: Verdict,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Inputs {
+    pub questions: InputFile,
+    pub baseline: InputFile,
+    pub candidate: InputFile,
+    /// `null` path and fingerprint when the built-in default policy was used.
+    pub policy: PolicySource,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct InputFile {
+    /// The path as given on the command line.
+    pub path: String,
+    pub sha256: String,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct PolicySource {
+    pub path: Option<String>,
+    pub sha256: Option<String>,
+    /// `"file"` or `"built-in"`.
+    pub source: String,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Settings {
+    /// Bootstrap resamples, and random sign flips of the permutation tests.
+    pub resamples: usize,
+    pub seed: u64,
+    /// Confidence level of every interval (bootstrap and Wilson).
+    pub confidence: f64,
+    /// The interval the gate reads and that `ci_low`/`ci_high` hold: `"bca"` or `"percentile"`.
+    pub interval: String,
+    /// How the lift intervals are made.
+    pub bootstrap_method: String,
+    /// How every `p_value` of a lift is computed.
+    pub p_value_method: String,
+    /// Where the random numbers come from.
+    pub rng: String,
+}
+
+/// The three metrics in a fixed order.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Metrics {
+    pub exact_match: MetricSummary,
+    pub token_f1: MetricSummary,
+    pub rouge_l: MetricSummary,
+}
+
+/// One metric: means over the `expect: answer` questions where both variants have a score.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct MetricSummary {
+    pub baseline: Option<f64>,
+    pub candidate: Option<f64>,
+    /// Mean paired difference, candidate minus baseline.
+    pub lift: Option<f64>,
+    /// The policy's interval kind (`settings.interval`) at `settings.confidence`.
+    pub ci_low: Option<f64>,
+    pub ci_high: Option<f64>,
+    /// Two-sided p-value of lift = 0 (`settings.p_value_method`).
+    pub p_value: Option<f64>,
+    /// Questions compared.
+    pub n: usize,
+    /// Both bootstrap intervals.
+    pub percentile: Option<Interval>,
+    pub bca: Option<Interval>,
+    pub p_value_method: String,
+    /// Questions where the candidate scored higher, lower, the same.
+    pub better: usize,
+    pub worse: usize,
+    pub same: usize,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct McNemar {
+    /// Exact match right for the baseline only (b) and for the candidate only (c).
+    pub baseline_only: u64,
+    pub candidate_only: u64,
+    pub both: u64,
+    pub neither: u64,
+    /// `min(1, 2·P(X ≤ min(b, c)))`, X ~ Binomial(b + c, 1/2); 1 when b + c = 0.
+    pub p_value: f64,
+    pub method: String,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Refusal {
+    /// `expect: refuse` questions: the share each variant correctly declines.
+    pub out_of_scope: RefusalRates,
+    /// `expect: answer` questions: the share each variant wrongly declines.
+    pub false_refusal: RefusalRates,
+    /// `"wilson"`, at `settings.confidence`.
+    pub interval: String,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RefusalRates {
+    /// Questions of this kind.
+    pub n: u64,
+    pub baseline: Rate,
+    pub candidate: Rate,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Rate {
+    /// Questions declined.
+    pub declined: u64,
+    /// `declined / n`; null when n = 0.
+    pub share: Option<f64>,
+    pub ci_low: Option<f64>,
+    pub ci_high: Option<f64>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct CategorySummary {
+    /// `expect: answer` questions compared on the gate metric.
+    pub n: usize,
+    /// `expect: refuse` questions in the category (not part of the lift).
+    pub refuse_questions: usize,
+    pub baseline: Option<f64>,
+    pub candidate: Option<f64>,
+    pub lift: Option<f64>,
+    pub ci_low: Option<f64>,
+    pub ci_high: Option<f64>,
+    pub p_value: Option<f64>,
+    /// Holm-adjusted over all categories with a p-value.
+    pub p_value_holm: Option<f64>,
+    /// Whether the category regression check judged it (n ≥ categories.min_questions).
+    pub judged: bool,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Mde {
+    /// The gate metric.
+    pub metric: String,
+    pub alpha: f64,
+    pub power: f64,
+    /// `(z_{1−α/2} + z_{power})·sd/√n`; null when n < 2 or sd = 0 (see `note`).
+    pub value: Option<f64>,
+    /// Sample sd of the paired differences.
+    pub sd_diff: Option<f64>,
+    pub n: usize,
+    /// The policy's `lift.target`.
+    pub target: f64,
+    /// Questions needed for the target at the observed sd; null when not estimable.
+    pub questions_for_target: Option<u64>,
+    pub method: String,
+    pub note: Option<String>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Changes {
+    pub metric: String,
+    /// Largest drops first.
+    pub worse: Vec<Change>,
+    /// Largest gains first.
+    pub better: Vec<Change>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Change {
+    pub id: String,
+    pub category: String,
+    pub question: String,
+    pub references: Vec<String>,
+    pub baseline_answer: String,
+    pub candidate_answer: String,
+    pub baseline_score: f64,
+    pub candidate_score: f64,
+    /// candidate − baseline.
+    pub change: f64,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Verdict {
+    /// True only when every check passes.
+    pub go: bool,
+    pub checks: Vec<Check>,
+}
+
+/// One gate check: the measured `value` compared with `threshold` by `comparison`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Check {
+    /// Stable identifier, e.g. `min_questions`, `lift.token_f1`, `refusal.out_of_scope`,
+    /// `refusal.false_refusal`, `category.<name>`.
+    pub name: String,
+    /// What is checked, in plain words.
+    pub description: String,
+    pub threshold: f64,
+    /// Null when there was nothing to measure (the check then fails, unless said otherwise).
+    pub value: Option<f64>,
+    /// How value must compare with threshold to pass: `">"`, `">="` or `"<="`.
+    pub comparison: String,
+    pub pass: bool,
+    /// On failure, why, in plain words for non-engineers.
+    pub reason: Option<String>,
+}

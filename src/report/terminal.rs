@@ -1,0 +1,104 @@
+//! The terminal summary `weigh` prints on stdout: scriptable first line `verdict: GO` or
+//! `verdict: NO-GO`, then `failed: <check names>` when any failed, then one compact ASCII table
+//! of the metrics and one of the gate checks. No colours, no terminal-width dependence.
+
+use super::summary::*;
+use super::Renderer;
+use comfy_table::{presets, Table};
+
+pub struct Terminal;
+
+impl Renderer for Terminal {
+    fn file_name(&self) -> &'static str {
+        "summary.txt"
+    }
+
+    fn render(&self, s: &Summary) -> String {
+        render(s)
+    }
+}
+
+fn f(x: Option<f64>, signed: bool) -> String {
+    match x {
+        Some(v) if signed => format!("{v:+.3}"),
+        Some(v) => format!("{v:.3}"),
+        None => "-".into(),
+    }
+}
+
+pub fn render(s: &Summary) -> String {
+    let mut out = format!("verdict: {}\n", if s.verdict.go { "GO" } else { "NO-GO" });
+    let failed: Vec<&str> = s
+        .verdict
+        .checks
+        .iter()
+        .filter(|c| !c.pass)
+        .map(|c| c.name.as_str())
+        .collect();
+    if !failed.is_empty() {
+        out.push_str(&format!("failed: {}\n", failed.join(", ")));
+    }
+    let mut t = Table::new();
+    t.load_style(presets::ASCII_FULL_CONDENSED);
+    t.set_header(vec![
+        "metric",
+        "baseline",
+        "candidate",
+        "lift",
+        "ci_low",
+        "ci_high",
+        "p_value",
+        "n",
+    ]);
+    for (name, m) in [
+        ("exact_match", &s.metrics.exact_match),
+        ("token_f1", &s.metrics.token_f1),
+        ("rouge_l", &s.metrics.rouge_l),
+    ] {
+        t.add_row(vec![
+            name.to_string(),
+            f(m.baseline, false),
+            f(m.candidate, false),
+            f(m.lift, true),
+            f(m.ci_low, true),
+            f(m.ci_high, true),
+            m.p_value
+                .map(|p| format!("{p:.4}"))
+                .unwrap_or_else(|| "-".into()),
+            m.n.to_string(),
+        ]);
+    }
+    out.push_str(&t.to_string());
+    out.push('\n');
+    let mut c = Table::new();
+    c.load_style(presets::ASCII_FULL_CONDENSED);
+    c.set_header(vec!["check", "threshold", "value", "result"]);
+    for ch in &s.verdict.checks {
+        c.add_row(vec![
+            sanitize(&ch.name),
+            format!("{} {}", ch.comparison, trim(ch.threshold)),
+            ch.value.map(trim).unwrap_or_else(|| "-".into()),
+            if ch.pass { "pass" } else { "FAIL" }.to_string(),
+        ]);
+    }
+    out.push_str(&c.to_string());
+    out.push('\n');
+    out
+}
+
+fn trim(v: f64) -> String {
+    let s = format!("{v:.4}");
+    let s = s.trim_end_matches('0').trim_end_matches('.');
+    if s == "-0" {
+        "0".into()
+    } else {
+        s.to_string()
+    }
+}
+
+/// Category names come from user files: keep control characters off the terminal.
+fn sanitize(text: &str) -> String {
+    text.chars()
+        .map(|c| if c.is_control() { '?' } else { c })
+        .collect()
+}

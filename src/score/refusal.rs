@@ -1,0 +1,875 @@
+//! Refusal detection: does an answer decline to answer?
+//!
+//! **Normalisation.** The answer is lower-cased, curly and other look-alike apostrophes
+//! (’ ‘ ʼ ′ ` ´) become `'`, and the text is cut into words (runs of letters, digits and inner
+//! apostrophes) and sentences (ended by `.`, `!`, `?`, `…` or a line break; a `.` between two
+//! digits, as in "7.40", does not end a sentence). Contractions are expanded so one phrase
+//! covers every spelling: "can't", "cannot", "cant", "can not" → "can not"; "won't" → "will
+//! not"; "-n't" → "- not"; "I'm"/"im" → "i am"; "'re", "'ve", "'ll", "'d" → "are", "have",
+//! "will", "would"; "it's"/"that's"/... → "it is"/"that is"/.... The filler adverbs "really",
+//! "just", "simply", "truly", "honestly", "actually", "currently" are dropped, so "I really
+//! can't" reads as "I can not".
+//!
+//! **Phrases.** A phrase is a sequence of normalised words, where `*` stands for a gap of up to
+//! six words inside one sentence and `.` for the end of a sentence. The default English list
+//! ([`OPENING_PHRASES`], [`ANYWHERE_PHRASES`]) is written from memory after the refusal
+//! openings listed in jailbreak-evaluation studies ("I'm sorry, but I can't", "I cannot help
+//! with", "I am not able to", "As an AI", "I'm unable to", ...), widened to declines of
+//! information ("I don't have information about"), scope statements ("I can only help with
+//! questions about"), hand-offs ("please contact ... for that") and prompt-injection
+//! deflections ("I can't share my instructions"). It is always first-person: "you cannot bring
+//! a stove" or "we cannot refund saver fares" state a rule, they do not decline.
+//!
+//! **Decision.** An answer is a refusal when a phrase matches and the answer does not go on to
+//! answer anyway:
+//! 1. an *opening* phrase counts when its sentence is the answer's opening (the first sentence,
+//!    or any sentence starting within the first [`OPENING_CHARS`] characters) and the words
+//!    before it in that sentence are only courtesy words ("sorry", "unfortunately", "thanks for
+//!    asking", "I'm afraid", "I'd love to help, but", ...) or end with a linking "so", "as",
+//!    "because" or "since";
+//! 2. an *anywhere* phrase (declines of the whole request: "I can't help with that", "I can only
+//!    answer questions about", "my instructions", and every extra phrase) counts wherever it
+//!    stands;
+//! 3. **hedge rule**: a matched phrase does not count when, after it, a contrast word ("but",
+//!    "however", "although", "though", "still") introduces at least three words that neither
+//!    redirect ("contact", "ask", "check", "visit", "call", "help", ...) nor match a phrase:
+//!    "I can't say for sure, but the morning sailings usually fill first" gives the information,
+//!    so it is an answer.
+//!
+//! So an answer that merely contains "sorry" ("Sorry for the wait: the 7:40 crossing runs
+//! daily") or that apologises and then answers is not a refusal. Precision and recall on the
+//! labelled set `tests/fixtures/refusal_labelled.jsonl` are checked by a test and reported in
+//! docs/scoring.md.
+
+use std::collections::HashMap;
+
+/// How far into an answer (in characters) a sentence may start and still be its opening.
+pub const OPENING_CHARS: usize = 160;
+
+/// Longest gap a `*` in a phrase stands for, in words.
+pub const MAX_GAP_WORDS: usize = 6;
+
+/// Fewest words after a contrast word that make a hedged answer rather than a refusal.
+const HEDGE_MIN_WORDS: usize = 3;
+
+/// First-person forms of "cannot / will not". Each is combined with every entry of
+/// [`DECLINE_OBJECTS`] to make an opening phrase.
+const INABILITY: &[&str] = &[
+    "i can not",
+    "i could not",
+    "i am not able to",
+    "i am unable to",
+    "i will not be able to",
+    "i would not be able to",
+    "i am not allowed to",
+    "i am not permitted to",
+    "i am not in a position to",
+    "i will not",
+    "i would rather not",
+    "i am not going to",
+    "i must not",
+    "i do not think i can",
+    "i have no way to",
+    "it is not possible for me to",
+    "i am not designed to",
+    "i am not programmed to",
+    "we can not",
+    "we are unable to",
+    "we are not able to",
+];
+
+/// What the declined action is: answering, advising or disclosing, never an ordinary service
+/// ("refund", "book", "carry") whose denial is itself an answer.
+const DECLINE_OBJECTS: &[&str] = &[
+    "help",
+    "assist",
+    "answer",
+    "advise",
+    "comment",
+    "discuss",
+    "respond",
+    "talk about",
+    "speak about",
+    "speak to that",
+    "go into",
+    "say",
+    "tell you",
+    "tell",
+    "predict",
+    "forecast",
+    "access",
+    "browse",
+    "look up",
+    "look into",
+    "reveal",
+    "disclose",
+    "ignore",
+    "disregard",
+    "override",
+    "bypass",
+    "pretend",
+    "comply",
+    "fulfil",
+    "fulfill",
+    "engage",
+    "do that",
+    "do this",
+    "provide information",
+    "provide any information",
+    "provide details",
+    "provide advice",
+    "provide guidance",
+    "provide that",
+    "provide this",
+    "provide an answer",
+    "provide a forecast",
+    "provide medical",
+    "provide legal",
+    "provide financial",
+    "provide personal",
+    "give information",
+    "give you information",
+    "give any information",
+    "give advice",
+    "give you advice",
+    "give an answer",
+    "give you an answer",
+    "give medical",
+    "give legal",
+    "give financial",
+    "give that",
+    "share information",
+    "share that",
+    "share this",
+    "share my",
+    "share personal",
+    "share details",
+    "share internal",
+    "offer advice",
+    "offer medical",
+    "offer legal",
+    "offer financial",
+    "make predictions",
+    "provide recommendations",
+    "give recommendations",
+    "make recommendations",
+    "give * forecast",
+    "provide * forecast",
+    "change my",
+    "change how i",
+    ".",
+];
+
+/// Opening phrases besides the INABILITY × DECLINE_OBJECTS combinations.
+pub const OPENING_PHRASES: &[&str] = &[
+    // Lack of information.
+    "i do not have * information",
+    "i do not have * details",
+    "i do not have * data",
+    "i do not have * knowledge",
+    "i do not have access",
+    "i do not have * access",
+    "i do not have that",
+    "i do not have the ability",
+    "that is something i can not",
+    "that is not something i know",
+    "you would need to ask * about that",
+    "you will need to ask * about that",
+    "you would need to contact * about that",
+    "i have no * information",
+    "i have no * details",
+    "i have no * access",
+    "i have no way of knowing",
+    "i have no knowledge",
+    "we do not have * information",
+    "i do not know .",
+    "i do not know the answer",
+    "i do not know about",
+    "i do not know what",
+    "i do not know when",
+    "i do not know whether",
+    "i do not know if",
+    "i do not know how",
+    "i do not know who",
+    "i do not know where",
+    "i do not know why",
+    "i am not aware of * information",
+    "i am not aware of that",
+    "i am not familiar with that",
+    // Not something I can do.
+    "that is not something i",
+    "this is not something i",
+    "that is not a question i",
+    "that is not a topic i",
+    "i am not the right * to ask",
+    "i am not the best * to ask",
+    "i must decline",
+    "i have to decline",
+    "i need to decline",
+    "i will have to decline",
+    "i would have to decline",
+    "i respectfully decline",
+    "i must respectfully decline",
+    "i decline",
+    "i refuse",
+    // Hand-offs that say the question goes elsewhere.
+    "please contact * for that",
+    "please contact * for this",
+    "please contact * instead",
+    "please ask * for that",
+    "please ask * instead",
+    "please consult * for that",
+    "for that please contact",
+    "for that please ask",
+    "for this please contact",
+    "you will need to ask * instead",
+    "you will need to contact * instead",
+    "you should ask * instead",
+];
+
+/// Phrases that decline the whole request; they count anywhere in the answer.
+pub const ANYWHERE_PHRASES: &[&str] = &[
+    "i can not help with that",
+    "i can not help with this",
+    "i can not help you with that",
+    "i can not help you with this",
+    "i can not help with your request",
+    "i can not assist with that",
+    "i can not assist with this",
+    "i can not assist you with that",
+    "i can not answer that",
+    "i can not answer this",
+    "i can not answer it",
+    "i can not answer your question",
+    "i am unable to help with that",
+    "i am unable to answer that",
+    "i am not able to help with that",
+    "i am not able to answer that",
+    "something i can not help",
+    "something i am not able to help",
+    "i can not answer questions about",
+    "i am not able to answer questions about",
+    "not sure i can help with that",
+    "not something we handle",
+    "not something * handles",
+    "i can only help with",
+    "i can only answer",
+    "i can only assist",
+    "i can only provide",
+    "i can only discuss",
+    "i can only talk about",
+    "i am only able to",
+    "i only answer questions",
+    "i only help with",
+    "outside my scope",
+    "outside of my scope",
+    "outside my area",
+    "outside the scope of",
+    "beyond the scope of",
+    "beyond my scope",
+    "outside the topics",
+    "falls outside",
+    "this assistant only",
+    "outside what i can",
+    "outside of what i can",
+    "beyond what i can",
+    "not within my",
+    "as an ai * i can not",
+    "as an ai * i do not",
+    "as an ai * i am not",
+    "as an ai * i am unable",
+    "as an ai language model",
+    "as a language model",
+    "i am just an ai",
+    "i am only an ai",
+    "my system prompt",
+    "my instructions",
+    "my guidelines",
+    "my programming",
+];
+
+/// Courtesy words that may precede an opening phrase in its sentence.
+const COURTESY_WORDS: &[&str] = &[
+    "sorry",
+    "i",
+    "am",
+    "so",
+    "very",
+    "afraid",
+    "apologise",
+    "apologize",
+    "apologies",
+    "my",
+    "unfortunately",
+    "regrettably",
+    "sadly",
+    "but",
+    "however",
+    "thanks",
+    "thank",
+    "you",
+    "for",
+    "asking",
+    "your",
+    "question",
+    "request",
+    "message",
+    "hi",
+    "hello",
+    "hey",
+    "there",
+    "well",
+    "oh",
+    "ok",
+    "okay",
+    "that",
+    "this",
+    "is",
+    "a",
+    "an",
+    "the",
+    "great",
+    "good",
+    "interesting",
+    "fair",
+    "while",
+    "appreciate",
+    "understand",
+    "interest",
+    "to",
+    "be",
+    "clear",
+    "frank",
+    "please",
+    "note",
+    "as",
+    "ai",
+    "assistant",
+    "would",
+    "love",
+    "like",
+    "help",
+    "hmm",
+];
+
+/// Words that, after a contrast word, show the answer redirects or restates its scope rather
+/// than answering.
+const REDIRECT_WORDS: &[&str] = &[
+    "contact",
+    "call",
+    "ask",
+    "email",
+    "phone",
+    "visit",
+    "check",
+    "consult",
+    "speak",
+    "reach",
+    "refer",
+    "try",
+    "recommend",
+    "suggest",
+    "help",
+    "assist",
+    "answer",
+    "questions",
+    "question",
+    "happy",
+    "glad",
+    "elsewhere",
+    "website",
+];
+
+const CONTRAST_WORDS: &[&str] = &["but", "however", "although", "though", "still"];
+
+const FILLER_WORDS: &[&str] = &[
+    "really",
+    "just",
+    "simply",
+    "truly",
+    "honestly",
+    "actually",
+    "currently",
+];
+
+/// One normalised token of an answer.
+#[derive(Debug, Clone, PartialEq, Eq)]
+enum Tok {
+    Word(String),
+    /// End of a sentence.
+    End,
+}
+
+/// One element of a phrase pattern.
+#[derive(Debug, Clone, PartialEq, Eq)]
+enum Pat {
+    Word(String),
+    End,
+    /// Up to [`MAX_GAP_WORDS`] words, not crossing a sentence end.
+    Gap,
+}
+
+/// A normalised answer: tokens, the sentence each token belongs to, and whether that sentence
+/// is part of the opening.
+struct Normalised {
+    toks: Vec<Tok>,
+    /// For each token, the index of the first token of its sentence.
+    sentence_start: Vec<usize>,
+    /// For each token, whether its sentence belongs to the opening.
+    in_opening: Vec<bool>,
+}
+
+fn is_apostrophe(c: char) -> bool {
+    matches!(c, '\'' | '\u{2019}' | '\u{2018}' | '\u{02bc}' | '\u{2032}' | '`' | '\u{b4}')
+}
+
+/// Expands one lower-cased word (apostrophes already `'`) into canonical words.
+fn expand_word(word: &str, out: &mut Vec<String>) {
+    let push = |out: &mut Vec<String>, parts: &[&str]| {
+        out.extend(parts.iter().map(|p| p.to_string()));
+    };
+    match word {
+        "can't" | "cannot" | "cant" => return push(out, &["can", "not"]),
+        "won't" | "wont" => return push(out, &["will", "not"]),
+        "shan't" => return push(out, &["shall", "not"]),
+        "i'm" | "im" => return push(out, &["i", "am"]),
+        "let's" => return push(out, &["let", "us"]),
+        "dont" | "doesnt" | "didnt" | "isnt" | "arent" | "wasnt" | "werent" | "couldnt"
+        | "wouldnt" | "shouldnt" | "havent" | "hasnt" | "mustnt" => {
+            let stem = &word[..word.len() - 2];
+            return push(out, &[stem, "not"]);
+        }
+        _ => {}
+    }
+    if let Some(stem) = word.strip_suffix("n't") {
+        return push(out, &[stem, "not"]);
+    }
+    for (suffix, full) in [("'re", "are"), ("'ve", "have"), ("'ll", "will"), ("'d", "would")] {
+        if let Some(stem) = word.strip_suffix(suffix) {
+            if !stem.is_empty() {
+                return push(out, &[stem, full]);
+            }
+        }
+    }
+    if let Some(stem) = word.strip_suffix("'s") {
+        if matches!(
+            stem,
+            "it" | "that" | "this" | "there" | "here" | "what" | "he" | "she" | "who"
+        ) {
+            return push(out, &[stem, "is"]);
+        }
+    }
+    let plain: String = word.chars().filter(|c| *c != '\'').collect();
+    if !plain.is_empty() && !FILLER_WORDS.contains(&plain.as_str()) {
+        out.push(plain);
+    }
+}
+
+/// Cuts `text` into canonical words and sentence ends. Returns the tokens and, for each, the
+/// byte offset in `text` where it starts.
+fn tokenize(text: &str) -> Vec<(Tok, usize)> {
+    let mut out: Vec<(Tok, usize)> = Vec::new();
+    let chars: Vec<(usize, char)> = text.char_indices().collect();
+    let mut word = String::new();
+    let mut word_start = 0usize;
+    let flush = |word: &mut String, start: usize, out: &mut Vec<(Tok, usize)>| {
+        let trimmed = word.trim_matches('\'');
+        if !trimmed.is_empty() {
+            let mut parts = Vec::new();
+            expand_word(trimmed, &mut parts);
+            out.extend(parts.into_iter().map(|p| (Tok::Word(p), start)));
+        }
+        word.clear();
+    };
+    for (k, &(pos, c)) in chars.iter().enumerate() {
+        if c.is_alphanumeric() || is_apostrophe(c) {
+            if word.is_empty() {
+                word_start = pos;
+            }
+            if is_apostrophe(c) {
+                word.push('\'');
+            } else {
+                word.extend(c.to_lowercase());
+            }
+            continue;
+        }
+        flush(&mut word, word_start, &mut out);
+        let ends_sentence = match c {
+            '!' | '?' | '\n' | '\u{2026}' => true,
+            '.' => {
+                let prev_digit = k > 0 && chars[k - 1].1.is_ascii_digit();
+                let next_digit = chars.get(k + 1).is_some_and(|(_, n)| n.is_ascii_digit());
+                !(prev_digit && next_digit)
+            }
+            _ => false,
+        };
+        if ends_sentence && matches!(out.last(), Some((Tok::Word(_), _))) {
+            out.push((Tok::End, pos));
+        }
+    }
+    flush(&mut word, word_start, &mut out);
+    if matches!(out.last(), Some((Tok::Word(_), _))) {
+        out.push((Tok::End, text.len()));
+    }
+    out
+}
+
+fn normalise(text: &str) -> Normalised {
+    let tokens = tokenize(text);
+    let opening_bytes = text
+        .char_indices()
+        .nth(OPENING_CHARS)
+        .map_or(text.len(), |(i, _)| i);
+    let mut toks = Vec::with_capacity(tokens.len());
+    let mut sentence_start = Vec::with_capacity(tokens.len());
+    let mut in_opening = Vec::with_capacity(tokens.len());
+    let mut start = 0usize;
+    let mut start_opening = true;
+    for (i, (tok, pos)) in tokens.into_iter().enumerate() {
+        let first_of_sentence = i == 0 || matches!(toks.last(), Some(Tok::End));
+        if first_of_sentence {
+            start = i;
+            start_opening = i == 0 || pos < opening_bytes;
+        }
+        toks.push(tok);
+        sentence_start.push(start);
+        in_opening.push(start_opening);
+    }
+    Normalised {
+        toks,
+        sentence_start,
+        in_opening,
+    }
+}
+
+/// Turns a phrase written in plain text into a pattern, normalising its words the same way
+/// answers are normalised. `None` when the phrase has no words.
+fn compile_phrase(phrase: &str) -> Option<Vec<Pat>> {
+    let mut pat = Vec::new();
+    for piece in phrase.split_whitespace() {
+        match piece {
+            "*" => pat.push(Pat::Gap),
+            "." => pat.push(Pat::End),
+            _ => {
+                for (tok, _) in tokenize(piece) {
+                    if let Tok::Word(w) = tok {
+                        pat.push(Pat::Word(w));
+                    }
+                }
+            }
+        }
+    }
+    // Leading or trailing gaps add nothing to a match.
+    while matches!(pat.first(), Some(Pat::Gap)) {
+        pat.remove(0);
+    }
+    while matches!(pat.last(), Some(Pat::Gap)) {
+        pat.pop();
+    }
+    pat.iter()
+        .any(|p| matches!(p, Pat::Word(_)))
+        .then_some(pat)
+}
+
+/// A word trie of phrase patterns.
+#[derive(Debug, Clone, Default)]
+struct Trie {
+    nodes: Vec<Node>,
+}
+
+#[derive(Debug, Clone, Default)]
+struct Node {
+    words: HashMap<String, usize>,
+    end: Option<usize>,
+    gap: Option<usize>,
+    terminal: bool,
+}
+
+impl Trie {
+    fn new() -> Self {
+        Trie {
+            nodes: vec![Node::default()],
+        }
+    }
+
+    fn child(&mut self, node: usize, p: &Pat) -> usize {
+        let existing = match p {
+            Pat::Word(w) => self.nodes[node].words.get(w).copied(),
+            Pat::End => self.nodes[node].end,
+            Pat::Gap => self.nodes[node].gap,
+        };
+        if let Some(c) = existing {
+            return c;
+        }
+        let c = self.nodes.len();
+        self.nodes.push(Node::default());
+        match p {
+            Pat::Word(w) => {
+                self.nodes[node].words.insert(w.clone(), c);
+            }
+            Pat::End => self.nodes[node].end = Some(c),
+            Pat::Gap => self.nodes[node].gap = Some(c),
+        }
+        c
+    }
+
+    fn insert(&mut self, pat: &[Pat]) {
+        let mut node = 0;
+        for p in pat {
+            node = self.child(node, p);
+        }
+        self.nodes[node].terminal = true;
+    }
+
+    /// The end (exclusive token index) of a phrase matching at `start`, if any.
+    fn match_at(&self, toks: &[Tok], start: usize) -> Option<usize> {
+        self.walk(toks, 0, start)
+    }
+
+    fn walk(&self, toks: &[Tok], node: usize, pos: usize) -> Option<usize> {
+        let n = &self.nodes[node];
+        if n.terminal {
+            return Some(pos);
+        }
+        if let Some(tok) = toks.get(pos) {
+            let next = match tok {
+                Tok::Word(w) => n.words.get(w.as_str()).copied(),
+                Tok::End => n.end,
+            };
+            if let Some(next) = next {
+                if let Some(end) = self.walk(toks, next, pos + 1) {
+                    return Some(end);
+                }
+            }
+        }
+        if let Some(gap) = n.gap {
+            let mut p = pos;
+            for _ in 0..=MAX_GAP_WORDS {
+                if let Some(end) = self.walk(toks, gap, p) {
+                    return Some(end);
+                }
+                match toks.get(p) {
+                    Some(Tok::Word(_)) => p += 1,
+                    _ => break,
+                }
+            }
+        }
+        None
+    }
+}
+
+/// Decides whether answers are refusals. [`RefusalDetector::default`] uses the built-in English
+/// phrases; [`RefusalDetector::with_extra_phrases`] adds more (the policy's `extra_phrases`).
+#[derive(Debug, Clone)]
+pub struct RefusalDetector {
+    opening: Trie,
+    anywhere: Trie,
+}
+
+impl Default for RefusalDetector {
+    fn default() -> Self {
+        let mut opening = Trie::new();
+        let mut anywhere = Trie::new();
+        for subject in INABILITY {
+            for object in DECLINE_OBJECTS {
+                if let Some(p) = compile_phrase(&format!("{subject} {object}")) {
+                    opening.insert(&p);
+                }
+            }
+        }
+        for phrase in OPENING_PHRASES {
+            if let Some(p) = compile_phrase(phrase) {
+                opening.insert(&p);
+            }
+        }
+        for phrase in ANYWHERE_PHRASES {
+            if let Some(p) = compile_phrase(phrase) {
+                anywhere.insert(&p);
+            }
+        }
+        RefusalDetector { opening, anywhere }
+    }
+}
+
+impl RefusalDetector {
+    /// The default detector plus `extra` phrases, which count anywhere in an answer (subject to
+    /// the hedge rule). Phrases are normalised like answers; `*` is a gap of up to six words and
+    /// a lone `.` the end of a sentence. Phrases with no words are ignored.
+    pub fn with_extra_phrases(extra: &[String]) -> Self {
+        let mut d = RefusalDetector::default();
+        for phrase in extra {
+            if let Some(p) = compile_phrase(phrase) {
+                d.anywhere.insert(&p);
+            }
+        }
+        d
+    }
+
+    /// Whether `answer` declines to answer (see the module documentation for the rules).
+    pub fn is_refusal(&self, answer: &str) -> bool {
+        let n = normalise(answer);
+        for i in 0..n.toks.len() {
+            if !matches!(n.toks[i], Tok::Word(_)) {
+                continue;
+            }
+            let mut found = self.anywhere.match_at(&n.toks, i);
+            if found.is_none() && n.in_opening[i] && courtesy_prefix(&n.toks[n.sentence_start[i]..i])
+            {
+                found = self.opening.match_at(&n.toks, i);
+            }
+            if let Some(end) = found {
+                if !self.answers_after(&n.toks, end) {
+                    return true;
+                }
+            }
+        }
+        false
+    }
+
+    /// The hedge rule: after a matched phrase ending at `end`, does a contrast word introduce
+    /// real content (at least three words, no redirect word, no phrase)?
+    fn answers_after(&self, toks: &[Tok], end: usize) -> bool {
+        let Some(c) = (end..toks.len())
+            .find(|&k| matches!(&toks[k], Tok::Word(w) if CONTRAST_WORDS.contains(&w.as_str())))
+        else {
+            return false;
+        };
+        let rest = &toks[c + 1..];
+        let words: Vec<&str> = rest
+            .iter()
+            .filter_map(|t| match t {
+                Tok::Word(w) => Some(w.as_str()),
+                Tok::End => None,
+            })
+            .collect();
+        if words.len() < HEDGE_MIN_WORDS || words.iter().any(|w| REDIRECT_WORDS.contains(w)) {
+            return false;
+        }
+        let phrase_in_rest = (0..rest.len()).any(|k| {
+            self.anywhere.match_at(rest, k).is_some() || self.opening.match_at(rest, k).is_some()
+        });
+        !phrase_in_rest
+    }
+}
+
+/// Whether the words before an opening phrase in its sentence are only courtesy words, or end
+/// with a linking "so", "as", "because" or "since" ("..., so I can't advise on that").
+fn courtesy_prefix(prefix: &[Tok]) -> bool {
+    if matches!(prefix.last(), Some(Tok::Word(w)) if matches!(w.as_str(), "so" | "as" | "because" | "since"))
+    {
+        return true;
+    }
+    prefix.iter().all(|t| match t {
+        Tok::Word(w) => COURTESY_WORDS.contains(&w.as_str()),
+        Tok::End => true,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn words(text: &str) -> Vec<String> {
+        tokenize(text)
+            .into_iter()
+            .map(|(t, _)| match t {
+                Tok::Word(w) => w,
+                Tok::End => ".".to_string(),
+            })
+            .collect()
+    }
+
+    #[test]
+    fn normalisation_expands_contractions_and_apostrophes() {
+        assert_eq!(words("I’m sorry, I CAN'T."), ["i", "am", "sorry", "i", "can", "not", "."]);
+        assert_eq!(words("I cannot; I can not"), ["i", "can", "not", "i", "can", "not", "."]);
+        assert_eq!(words("We don't, it's"), ["we", "do", "not", "it", "is", "."]);
+        assert_eq!(words("I really can’t"), ["i", "can", "not", "."]);
+        // A decimal point is not a sentence end; the ferry's possessive loses its apostrophe.
+        assert_eq!(words("the ferry's 7.40 run"), ["the", "ferrys", "7", "40", "run", "."]);
+        assert_eq!(words(""), Vec::<String>::new());
+        assert_eq!(words("...!?"), Vec::<String>::new());
+    }
+
+    #[test]
+    fn plain_refusals() {
+        let d = RefusalDetector::default();
+        for a in [
+            "I'm sorry, but I can't help with that.",
+            "I cannot help with that request.",
+            "Sorry, I can’t assist with that.",
+            "Sorry, I can't.",
+            "I don't have information about the weather on Saturday.",
+            "I can only help with questions about the ferry cooperative.",
+            "Hello! Thanks for your question. Unfortunately, I am unable to answer that.",
+        ] {
+            assert!(d.is_refusal(a), "{a}");
+        }
+    }
+
+    #[test]
+    fn sorry_alone_and_rules_are_not_refusals() {
+        let d = RefusalDetector::default();
+        for a in [
+            "",
+            "Sorry for the wait: the 7:40 crossing runs daily.",
+            "You cannot bring a gas canister into the lounge.",
+            "We cannot refund saver fares.",
+            "The 7:40 runs daily, but I can't promise a seat.",
+            "Bikes ride free. I'm sorry the website was unclear.",
+        ] {
+            assert!(!d.is_refusal(a), "{a}");
+        }
+    }
+
+    #[test]
+    fn hedged_answers_are_not_refusals_but_redirects_are() {
+        let d = RefusalDetector::default();
+        assert!(!d.is_refusal(
+            "I can't say for sure, but the morning sailings usually fill first."
+        ));
+        assert!(d.is_refusal(
+            "I can't help with that, but please contact the harbour office."
+        ));
+        assert!(d.is_refusal("I can't predict the weather, but you can check the forecast."));
+        // Too short to be an answer.
+        assert!(d.is_refusal("I can't say, but maybe."));
+    }
+
+    #[test]
+    fn phrases_beyond_the_opening() {
+        let d = RefusalDetector::default();
+        let long_intro = "Thank you for getting in touch with the ferry cooperative about your \
+            plans for the long weekend on the islands; we always like hearing from travellers who \
+            are planning a trip across the sound in the spring. ";
+        assert!(long_intro.chars().count() > OPENING_CHARS);
+        // An opening phrase after the opening does not count ...
+        assert!(!d.is_refusal(&format!("{long_intro}I can't say whether it will rain.")));
+        // ... an anywhere phrase does.
+        assert!(d.is_refusal(&format!("{long_intro}I can only help with ferry questions.")));
+    }
+
+    #[test]
+    fn extra_phrases_extend_the_list() {
+        let extra = vec![
+            "Please call the harbour office".to_string(),
+            "not * my department".to_string(),
+            "  ".to_string(),
+        ];
+        let d = RefusalDetector::with_extra_phrases(&extra);
+        let plain = RefusalDetector::default();
+        let a = "Please CALL the harbour office.";
+        assert!(d.is_refusal(a));
+        assert!(!plain.is_refusal(a));
+        assert!(d.is_refusal("That is not really my department."));
+        assert!(!d.is_refusal("Bikes ride free."));
+    }
+
+    #[test]
+    fn gaps_stay_inside_one_sentence() {
+        let d = RefusalDetector::with_extra_phrases(&["alpha * omega".to_string()]);
+        assert!(d.is_refusal("alpha one two omega"));
+        assert!(!d.is_refusal("alpha one. two omega"));
+        assert!(!d.is_refusal("alpha 1 2 3 4 5 6 7 omega"));
+    }
+}

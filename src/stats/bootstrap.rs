@@ -1,0 +1,427 @@
+//! Paired bootstrap of a mean lift, with percentile and BCa intervals.
+//!
+//! Setting: n questions answered by both variants; `d_i` = candidate score − baseline score on
+//! question i. The lift is the mean `d̄`. Questions are assumed exchangeable draws from the
+//! population of questions the set stands for; the pairing (both variants on the same
+//! question) is kept by resampling whole questions, so the bootstrap of `d̄` is the paired
+//! bootstrap of the difference of means (what `scipy.stats.bootstrap(..., paired=True)` does).
+//!
+//! A resample draws n question indices uniformly with replacement and takes the mean of the
+//! drawn `d_i`. With B resamples `θ*_1..θ*_B`:
+//!
+//! - **percentile** interval (Efron & Tibshirani 1993, §13.3): the α/2 and 1 − α/2 quantiles of
+//!   the θ*, α = 1 − confidence, quantiles by linear interpolation between order statistics
+//!   (position p·(B − 1), NumPy's default, as scipy uses);
+//! - **BCa** interval (Efron 1987, "Better bootstrap confidence intervals", JASA 82:171–185):
+//!   bias correction `z0 = Φ⁻¹(#{θ*_b < d̄} / B)`, acceleration from the jackknife, which for a
+//!   mean has the closed form `a = Σ c_i³ / (6 (Σ c_i²)^{3/2})` with `c_i = d_i − d̄` (the
+//!   jackknife influence values `(n−1)(θ̄_(·) − θ_(i))` of a mean equal `c_i`, so no O(n²)
+//!   leave-one-out loop is needed); the interval is the quantiles at
+//!   `α1 = Φ(z0 + (z0 + z_{α/2}) / (1 − a (z0 + z_{α/2})))` and likewise α2 with `z_{1−α/2}`.
+//!
+//! Degenerate cases, handled explicitly: all `d_i` equal (or n = 1) → every resample equals the
+//! estimate and both intervals have zero width at it; when every resample lies on one side of
+//! the estimate (z0 would be ±∞, scipy returns NaN) the share in `z0` is clamped to
+//! `[1/(2B), 1 − 1/(2B)]`, documented in [`Lift::bca_clamped`].
+//!
+//! Several metrics can be resampled jointly ([`resample_means`]): the same drawn indices serve
+//! every column, which keeps the metrics' intervals consistent with each other and costs one
+//! index draw per question per resample whatever the number of metrics.
+
+use super::rng::{chunk_rng, index_below, CHUNK};
+use super::{normal_cdf, normal_quantile, Interval};
+use rand::Rng;
+use rayon::prelude::*;
+
+/// The bootstrap summary of one mean lift.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Lift {
+    /// The observed mean difference d̄.
+    pub estimate: f64,
+    pub percentile: Interval,
+    pub bca: Interval,
+    /// BCa bias correction z0 (0 when degenerate).
+    pub z0: f64,
+    /// BCa acceleration a (0 when degenerate).
+    pub acceleration: f64,
+    /// True when every resample fell on one side of the estimate and z0 was clamped.
+    pub bca_clamped: bool,
+    /// Number of bootstrap resamples.
+    pub resamples: usize,
+}
+
+/// For each column, the mean of every bootstrap resample: `out[c][b]` is the mean of column
+/// `c` over the indices drawn for resample `b`. All columns must have the same length n ≥ 1;
+/// resample b uses the same indices in every column. Deterministic for a given
+/// `(seed, domain)` whatever the thread count (see [`super::rng`]).
+pub fn resample_means(
+    columns: &[&[f64]],
+    resamples: usize,
+    seed: u64,
+    domain: u32,
+) -> Vec<Vec<f64>> {
+    let k = columns.len();
+    if k == 0 || resamples == 0 {
+        return vec![Vec::new(); k];
+    }
+    let n = columns[0].len();
+    assert!(n >= 1, "resample_means needs at least one row");
+    assert!(
+        columns.iter().all(|c| c.len() == n),
+        "columns differ in length"
+    );
+    assert!(
+        n <= u32::MAX as usize,
+        "more rows than the index generator supports"
+    );
+    let inv_n = 1.0 / n as f64;
+    fn split<const K: usize>(sums: Vec<[f64; K]>, inv_n: f64) -> Vec<Vec<f64>> {
+        (0..K)
+            .map(|c| sums.iter().map(|s| s[c] * inv_n).collect())
+            .collect()
+    }
+    match k {
+        1 => split(
+            sums_k::<1>(&interleave::<1>(columns), resamples, seed, domain),
+            inv_n,
+        ),
+        2 => split(
+            sums_k::<2>(&interleave::<2>(columns), resamples, seed, domain),
+            inv_n,
+        ),
+        3 => split(
+            sums_k::<3>(&interleave::<3>(columns), resamples, seed, domain),
+            inv_n,
+        ),
+        _ => {
+            // Rare: more than three columns; resample them three at a time on the same streams.
+            let mut out = Vec::with_capacity(k);
+            for group in columns.chunks(3) {
+                out.extend(resample_means(group, resamples, seed, domain));
+            }
+            out
+        }
+    }
+}
+
+fn interleave<const K: usize>(columns: &[&[f64]]) -> Vec<[f64; K]> {
+    let n = columns[0].len();
+    (0..n)
+        .map(|i| std::array::from_fn(|c| columns[c][i]))
+        .collect()
+}
+
+/// Rows up to this many bytes are resampled by direct gathers (they stay in cache);
+/// larger ones through counts (see [`sums_k`]).
+const GATHER_BYTES: usize = 256 * 1024;
+
+/// Resample sums by adding the drawn rows in draw order (small data), four lanes
+/// (draws 4j..4j+3 into lanes 0..3) so the additions overlap.
+fn gather_chunk<const K: usize>(rows: &[[f64; K]], slots: &mut [[f64; K]], rng: &mut impl Rng) {
+    let n = rows.len() as u32;
+    for slot in slots.iter_mut() {
+        let mut acc = [[0.0f64; K]; 4];
+        let mut left = n as usize;
+        while left >= 4 {
+            let w1 = rng.next_u64();
+            let w2 = rng.next_u64();
+            let idx = [
+                index_below(w1 as u32, n, || rng.next_u32()),
+                index_below((w1 >> 32) as u32, n, || rng.next_u32()),
+                index_below(w2 as u32, n, || rng.next_u32()),
+                index_below((w2 >> 32) as u32, n, || rng.next_u32()),
+            ];
+            for l in 0..4 {
+                for c in 0..K {
+                    acc[l][c] += rows[idx[l]][c];
+                }
+            }
+            left -= 4;
+        }
+        while left > 0 {
+            let i = index_below(rng.next_u32(), n, || rng.next_u32());
+            for c in 0..K {
+                acc[0][c] += rows[i][c];
+            }
+            left -= 1;
+        }
+        *slot = std::array::from_fn(|c| (acc[0][c] + acc[1][c]) + (acc[2][c] + acc[3][c]));
+    }
+}
+
+/// Resample sums, one `[f64; K]` per resample, chunk by chunk in parallel.
+///
+/// Rows that fit [`GATHER_BYTES`] are resampled by [`gather_chunk`]; larger data as follows.
+/// A resample is drawn as a vector of counts (how often each row was drawn: n uniform indices,
+/// 32 random bits each), then summed as `Σ_i count_i · row_i` in row order. This gives the same
+/// resample as adding the drawn rows one by one, but the random accesses go to a small array of
+/// counts that stays in cache instead of to the rows, and the sum is one sequential pass, in a
+/// fixed order, so it is reproducible.
+fn sums_k<const K: usize>(
+    rows: &[[f64; K]],
+    resamples: usize,
+    seed: u64,
+    domain: u32,
+) -> Vec<[f64; K]> {
+    let n = rows.len() as u32;
+    let mut out = vec![[0.0f64; K]; resamples];
+    out.par_chunks_mut(CHUNK)
+        .enumerate()
+        .for_each(|(chunk, slots)| {
+            let mut rng = chunk_rng(seed, domain, chunk as u32);
+            if rows.len() * K * 8 <= GATHER_BYTES {
+                gather_chunk(rows, slots, &mut rng);
+                return;
+            }
+            let mut counts = vec![0u32; n as usize];
+            for slot in slots.iter_mut() {
+                counts.iter_mut().for_each(|c| *c = 0);
+                let mut left = n as usize;
+                while left >= 2 {
+                    let w = rng.next_u64();
+                    let i = index_below(w as u32, n, || rng.next_u32());
+                    let j = index_below((w >> 32) as u32, n, || rng.next_u32());
+                    counts[i] += 1;
+                    counts[j] += 1;
+                    left -= 2;
+                }
+                if left == 1 {
+                    let i = index_below(rng.next_u32(), n, || rng.next_u32());
+                    counts[i] += 1;
+                }
+                // Four lanes (rows 4j..4j+3 into lanes 0..3) so the additions overlap.
+                let mut acc = [[0.0f64; K]; 4];
+                let quads = rows.chunks_exact(4);
+                let tail = quads.remainder();
+                for (q, cs) in quads.zip(counts.chunks_exact(4)) {
+                    for l in 0..4 {
+                        let w = cs[l] as f64;
+                        for c in 0..K {
+                            acc[l][c] += w * q[l][c];
+                        }
+                    }
+                }
+                let base = rows.len() - tail.len();
+                for (l, row) in tail.iter().enumerate() {
+                    let w = counts[base + l] as f64;
+                    for c in 0..K {
+                        acc[l][c] += w * row[c];
+                    }
+                }
+                *slot = std::array::from_fn(|c| (acc[0][c] + acc[1][c]) + (acc[2][c] + acc[3][c]));
+            }
+        });
+    out
+}
+
+/// Percentile and BCa intervals for the mean of `diffs` from its bootstrap resample means
+/// `boot` (as made by [`resample_means`]). `confidence` in (0, 1). `diffs` must be non-empty.
+pub fn lift_intervals(diffs: &[f64], boot: &[f64], confidence: f64) -> Lift {
+    let n = diffs.len();
+    assert!(
+        n >= 1 && !boot.is_empty(),
+        "lift_intervals needs data and resamples"
+    );
+    let estimate = diffs.iter().sum::<f64>() / n as f64;
+    let all_equal = diffs.iter().all(|&d| d == diffs[0]);
+    if all_equal {
+        return Lift {
+            estimate,
+            percentile: Interval::point(estimate),
+            bca: Interval::point(estimate),
+            z0: 0.0,
+            acceleration: 0.0,
+            bca_clamped: false,
+            resamples: boot.len(),
+        };
+    }
+    let mut sorted = boot.to_vec();
+    sorted.sort_by(|a, b| a.total_cmp(b));
+    let alpha = (1.0 - confidence) / 2.0;
+    let percentile = Interval {
+        low: quantile_sorted(&sorted, alpha),
+        high: quantile_sorted(&sorted, 1.0 - alpha),
+    };
+
+    let b = sorted.len() as f64;
+    let below = sorted.partition_point(|&x| x < estimate) as f64;
+    let lo_share = 0.5 / b;
+    let share = below / b;
+    let bca_clamped = !(lo_share..=1.0 - lo_share).contains(&share);
+    let z0 = normal_quantile(share.clamp(lo_share, 1.0 - lo_share));
+    let acceleration = jackknife_acceleration_of_mean(diffs);
+    let adjusted = |z_alpha: f64| {
+        let s = z0 + z_alpha;
+        normal_cdf(z0 + s / (1.0 - acceleration * s))
+    };
+    let a1 = adjusted(normal_quantile(alpha));
+    let a2 = adjusted(normal_quantile(1.0 - alpha));
+    let bca = Interval {
+        low: quantile_sorted(&sorted, a1),
+        high: quantile_sorted(&sorted, a2),
+    };
+    Lift {
+        estimate,
+        percentile,
+        bca,
+        z0,
+        acceleration,
+        bca_clamped,
+        resamples: boot.len(),
+    }
+}
+
+/// Bootstrap a single lift: [`resample_means`] on one column, then [`lift_intervals`].
+pub fn paired_bootstrap(
+    diffs: &[f64],
+    resamples: usize,
+    confidence: f64,
+    seed: u64,
+    domain: u32,
+) -> Lift {
+    let boot = resample_means(&[diffs], resamples, seed, domain)
+        .pop()
+        .unwrap_or_default();
+    lift_intervals(diffs, &boot, confidence)
+}
+
+/// The BCa acceleration of a mean by the jackknife, closed form (see the module doc):
+/// `a = Σ c³ / (6 (Σ c²)^{3/2})`, `c_i = d_i − d̄`; 0 when every `c_i` is 0.
+pub fn jackknife_acceleration_of_mean(diffs: &[f64]) -> f64 {
+    let n = diffs.len() as f64;
+    let m = diffs.iter().sum::<f64>() / n;
+    let (mut s2, mut s3) = (0.0, 0.0);
+    for &d in diffs {
+        let c = d - m;
+        s2 += c * c;
+        s3 += c * c * c;
+    }
+    if s2 == 0.0 {
+        0.0
+    } else {
+        s3 / (6.0 * s2.powf(1.5))
+    }
+}
+
+/// Quantile `p` of sorted data by linear interpolation at position p·(len − 1) (NumPy's
+/// default "linear" method). `p` is clamped to [0, 1].
+pub fn quantile_sorted(sorted: &[f64], p: f64) -> f64 {
+    let last = sorted.len() - 1;
+    let pos = p.clamp(0.0, 1.0) * last as f64;
+    let lo = pos.floor() as usize;
+    let hi = (lo + 1).min(last);
+    let frac = pos - lo as f64;
+    sorted[lo] + (sorted[hi] - sorted[lo]) * frac
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn quantiles_interpolate_like_numpy() {
+        // numpy.percentile([1, 2, 3, 4], [0, 25, 50, 90, 100]) = [1, 1.75, 2.5, 3.7, 4].
+        let s = [1.0, 2.0, 3.0, 4.0];
+        for (p, want) in [(0.0, 1.0), (0.25, 1.75), (0.5, 2.5), (0.9, 3.7), (1.0, 4.0)] {
+            assert!((quantile_sorted(&s, p) - want).abs() < 1e-12, "p={p}");
+        }
+    }
+
+    #[test]
+    fn all_equal_differences_give_zero_width_intervals() {
+        for diffs in [vec![0.25; 40], vec![0.0; 3], vec![-1.0]] {
+            let lift = paired_bootstrap(&diffs, 2000, 0.95, 7, 1);
+            assert_eq!(lift.percentile, Interval::point(diffs[0]));
+            assert_eq!(lift.bca, Interval::point(diffs[0]));
+            assert!(lift.estimate == diffs[0]);
+        }
+    }
+
+    #[test]
+    fn acceleration_closed_form_matches_leave_one_out() {
+        // Definition (Efron 1987, eq. 6.6): u_i = (n−1)(θ̄(·) − θ(i)) from leave-one-out means.
+        let d = [0.3, -0.1, 0.0, 0.9, 0.2, -0.4, 0.5, 0.5];
+        let n = d.len();
+        let loo: Vec<f64> = (0..n)
+            .map(|i| (d.iter().sum::<f64>() - d[i]) / (n - 1) as f64)
+            .collect();
+        let dot = loo.iter().sum::<f64>() / n as f64;
+        let u: Vec<f64> = loo.iter().map(|t| (n - 1) as f64 * (dot - t)).collect();
+        let a = u.iter().map(|x| x.powi(3)).sum::<f64>()
+            / (6.0 * u.iter().map(|x| x * x).sum::<f64>().powf(1.5));
+        assert!((a - jackknife_acceleration_of_mean(&d)).abs() < 1e-12);
+    }
+
+    #[test]
+    fn same_seed_same_result_and_independent_of_threads() {
+        let d: Vec<f64> = (0..500)
+            .map(|i| ((i * 37 % 101) as f64 - 50.0) / 100.0)
+            .collect();
+        let one = paired_bootstrap(&d, 3000, 0.95, 11, 1);
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(1)
+            .build()
+            .unwrap();
+        let single = pool.install(|| paired_bootstrap(&d, 3000, 0.95, 11, 1));
+        assert_eq!(one, single);
+        let other = paired_bootstrap(&d, 3000, 0.95, 12, 1);
+        assert_ne!(one.percentile, other.percentile);
+    }
+
+    #[test]
+    fn joint_columns_share_indices() {
+        // Column 2 is column 1 times two, so each resample mean is exactly doubled.
+        let a: Vec<f64> = (0..97).map(|i| (i % 5) as f64 / 4.0).collect();
+        let b: Vec<f64> = a.iter().map(|x| 2.0 * x).collect();
+        let m = resample_means(&[&a, &b], 500, 3, 1);
+        for (x, y) in m[0].iter().zip(&m[1]) {
+            assert!((2.0 * x - y).abs() < 1e-12);
+        }
+        // A single column on the same stream draws the same indices.
+        let single = resample_means(&[&a], 500, 3, 1);
+        assert_eq!(single[0], m[0]);
+    }
+
+    #[test]
+    fn large_data_goes_through_counts_with_the_same_guarantees() {
+        // 12,000 rows × 3 columns = 288 KB > GATHER_BYTES: the counts path.
+        let a: Vec<f64> = (0..12_000)
+            .map(|i| ((i * 7919) % 1000) as f64 / 1000.0 - 0.4)
+            .collect();
+        let b: Vec<f64> = a.iter().map(|x| 2.0 * x).collect();
+        let c: Vec<f64> = a.iter().map(|x| -x).collect();
+        let m = resample_means(&[&a, &b, &c], 200, 5, 1);
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(1)
+            .build()
+            .unwrap();
+        assert_eq!(pool.install(|| resample_means(&[&a, &b, &c], 200, 5, 1)), m);
+        for r in 0..200 {
+            assert_eq!(2.0 * m[0][r], m[1][r]);
+            assert_eq!(-m[0][r], m[2][r]);
+        }
+        // The resample means scatter around the mean with sd ≈ sd(a)/√n ≈ 0.0026.
+        let mean_a = a.iter().sum::<f64>() / a.len() as f64;
+        let avg = m[0].iter().sum::<f64>() / 200.0;
+        assert!((avg - mean_a).abs() < 0.001, "{avg} vs {mean_a}");
+        let spread = crate::stats::sample_sd(&m[0]).unwrap();
+        assert!(
+            (spread - 0.2887 / (12_000f64).sqrt()).abs() < 0.0006,
+            "{spread}"
+        );
+    }
+
+    #[test]
+    fn interval_covers_the_estimate_and_is_ordered() {
+        let d: Vec<f64> = (0..200)
+            .map(|i| if i % 3 == 0 { 1.0 } else { 0.0 })
+            .collect();
+        let lift = paired_bootstrap(&d, 4000, 0.9, 5, 1);
+        for iv in [lift.percentile, lift.bca] {
+            assert!(iv.low < lift.estimate && lift.estimate < iv.high, "{iv:?}");
+        }
+        // Normal-theory check: half-width ≈ z_0.95·sd/√n = 1.645·0.4725/√200 ≈ 0.055.
+        let half = (lift.percentile.high - lift.percentile.low) / 2.0;
+        assert!((half - 0.055).abs() < 0.006, "{half}");
+    }
+}

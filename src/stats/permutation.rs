@@ -1,0 +1,189 @@
+//! Paired sign-flip permutation test of a mean lift: the lift p-values of `weigh`.
+//!
+//! Null hypothesis: for every question the two variants' scores are exchangeable, so each
+//! difference `d_i` is as likely to have been `−d_i`. Under it, flipping the signs of the `d_i`
+//! at random gives the null distribution of `T = Σ d_i` (equivalently of the mean). The test is
+//! two-sided: a flip counts as at least as extreme when `|T*| ≥ |T|` (up to a relative
+//! tolerance of 1e-9, so ties between equal sums are not lost to rounding).
+//!
+//! - Monte-Carlo (the usual case): m random flips, `b` of them at least as extreme,
+//!   `p = (b + 1) / (m + 1)` (Phipson & Smyth 2010, "Permutation p-values should never be
+//!   zero"), which is never 0 and is a valid p-value.
+//! - Exact: when the non-zero differences number k with 2^k ≤ m, all 2^k flips are enumerated
+//!   and `p = b / 2^k`.
+//!
+//! Zero differences are left out: flipping them changes nothing. With no non-zero difference,
+//! p = 1. `scipy.stats.permutation_test(permutation_type='samples')` computes the same null
+//! distribution; its two-sided p-value is `2·min(P(T* ≤ T), P(T* ≥ T))`, which for this
+//! symmetric null agrees with ours within Monte-Carlo error.
+
+use super::rng::{chunk_rng, CHUNK};
+use rand::Rng;
+use rayon::prelude::*;
+
+/// Short name of this method, as written to summary.json (`p_value_method`).
+pub const METHOD: &str = "paired sign-flip permutation test, two-sided, p = (b+1)/(m+1)";
+
+/// The outcome of a sign-flip test.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SignFlip {
+    pub p_value: f64,
+    /// Flips drawn (Monte-Carlo) or enumerated (exact).
+    pub flips: u64,
+    pub exact: bool,
+}
+
+/// Two-sided paired sign-flip test of `mean(diffs) = 0` with `resamples` random flips.
+pub fn sign_flip_test(diffs: &[f64], resamples: usize, seed: u64, domain: u32) -> SignFlip {
+    let nz: Vec<f64> = diffs.iter().copied().filter(|&d| d != 0.0).collect();
+    if nz.is_empty() {
+        return SignFlip {
+            p_value: 1.0,
+            flips: 0,
+            exact: true,
+        };
+    }
+    let observed: f64 = nz.iter().sum::<f64>().abs();
+    let scale: f64 = nz.iter().map(|d| d.abs()).sum();
+    let bar = observed - 1e-9 * scale;
+    let k = nz.len();
+    if k < 63 && (1u64 << k) <= resamples as u64 {
+        let total = 1u64 << k;
+        let b = (0..total)
+            .into_par_iter()
+            .filter(|mask| flipped_sum(&nz, *mask).abs() >= bar)
+            .count() as u64;
+        return SignFlip {
+            p_value: b as f64 / total as f64,
+            flips: total,
+            exact: true,
+        };
+    }
+    let chunks = resamples.div_ceil(CHUNK);
+    let b: u64 = (0..chunks)
+        .into_par_iter()
+        .map(|chunk| {
+            let mut rng = chunk_rng(seed, domain, chunk as u32);
+            let count = CHUNK.min(resamples - chunk * CHUNK);
+            let mut hits = 0u64;
+            for _ in 0..count {
+                let mut acc = [0.0f64; 8];
+                for block in nz.chunks(64) {
+                    flip_accumulate(&mut acc, block, rng.next_u64());
+                }
+                let s = ((acc[0] + acc[1]) + (acc[2] + acc[3]))
+                    + ((acc[4] + acc[5]) + (acc[6] + acc[7]));
+                if s.abs() >= bar {
+                    hits += 1;
+                }
+            }
+            hits
+        })
+        .sum();
+    SignFlip {
+        p_value: (b + 1) as f64 / (resamples + 1) as f64,
+        flips: resamples as u64,
+        exact: false,
+    }
+}
+
+/// Σ ± block[j], the sign of term j flipped when bit j of `mask` is set (block ≤ 64 long).
+/// Flipping is an XOR on the IEEE sign bit, which keeps the loop branch-free.
+#[inline(always)]
+fn flipped_sum(block: &[f64], mask: u64) -> f64 {
+    let mut acc = [0.0f64; 8];
+    flip_accumulate(&mut acc, block, mask);
+    ((acc[0] + acc[1]) + (acc[2] + acc[3])) + ((acc[4] + acc[5]) + (acc[6] + acc[7]))
+}
+
+/// Sign masks for the eight bits of a byte: `SIGN_BITS[b][l]` is the IEEE sign bit when bit l
+/// of b is set. Expanding a mask byte by table lookup lets the flip loop run as plain vector
+/// XORs and additions.
+static SIGN_BITS: [[u64; 8]; 256] = {
+    let mut t = [[0u64; 8]; 256];
+    let mut b = 0;
+    while b < 256 {
+        let mut l = 0;
+        while l < 8 {
+            t[b][l] = (((b >> l) & 1) as u64) << 63;
+            l += 1;
+        }
+        b += 1;
+    }
+    t
+};
+
+/// Adds ± block[j] into eight lane accumulators (term j into lane j mod 8), the sign of term j
+/// flipped when bit j of `mask` is set. Fixed lane order keeps the sum reproducible.
+#[inline(always)]
+fn flip_accumulate(acc: &mut [f64; 8], block: &[f64], mask: u64) {
+    let groups = block.chunks_exact(8);
+    let rest = groups.remainder();
+    let mut g = 0;
+    for group in groups {
+        let signs = &SIGN_BITS[((mask >> (8 * g)) & 0xff) as usize];
+        for l in 0..8 {
+            acc[l] += f64::from_bits(group[l].to_bits() ^ signs[l]);
+        }
+        g += 1;
+    }
+    if !rest.is_empty() {
+        let signs = &SIGN_BITS[((mask >> (8 * g)) & 0xff) as usize];
+        for (l, d) in rest.iter().enumerate() {
+            acc[l] += f64::from_bits(d.to_bits() ^ signs[l]);
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn no_difference_gives_one() {
+        assert_eq!(sign_flip_test(&[0.0; 10], 1000, 1, 1).p_value, 1.0);
+        assert_eq!(sign_flip_test(&[], 1000, 1, 1).p_value, 1.0);
+    }
+
+    #[test]
+    fn exact_enumeration_by_hand() {
+        // Three positive differences 1, 2, 3: T = 6. Of the 8 flips only (+,+,+) and (−,−,−)
+        // reach |T*| = 6, so p = 2/8 (worked by hand).
+        let r = sign_flip_test(&[1.0, 0.0, 2.0, 3.0], 1000, 1, 1);
+        assert!(r.exact);
+        assert_eq!(r.flips, 8);
+        assert!((r.p_value - 0.25).abs() < 1e-15);
+        // Ties: 1, 1 → T = 2; flips give 2, 0, 0, −2 → p = 2/4.
+        assert!((sign_flip_test(&[1.0, 1.0], 1000, 1, 1).p_value - 0.5).abs() < 1e-15);
+    }
+
+    #[test]
+    fn monte_carlo_matches_exact_within_error() {
+        // 12 non-zero differences: exact with 4096 ≤ m, Monte-Carlo with m = 4000 < 4096.
+        let d = [
+            0.4, 0.1, -0.2, 0.3, 0.5, 0.05, -0.1, 0.2, 0.25, 0.15, -0.05, 0.35,
+        ];
+        let exact = sign_flip_test(&d, 5000, 3, 1);
+        let mc = sign_flip_test(&d, 4000, 3, 1);
+        assert!(exact.exact && !mc.exact);
+        // Binomial standard error of p at m = 4000 is below 0.008; allow 4 of them.
+        assert!(
+            (exact.p_value - mc.p_value).abs() < 0.032,
+            "{exact:?} {mc:?}"
+        );
+    }
+
+    #[test]
+    fn deterministic_across_thread_counts() {
+        let d: Vec<f64> = (0..300)
+            .map(|i| ((i * 13 % 17) as f64 - 7.5) / 20.0)
+            .collect();
+        let a = sign_flip_test(&d, 2000, 9, 4);
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(1)
+            .build()
+            .unwrap();
+        let b = pool.install(|| sign_flip_test(&d, 2000, 9, 4));
+        assert_eq!(a, b);
+    }
+}
