@@ -105,7 +105,10 @@ fn grades_every_question_in_order() {
     assert_eq!(run.stderr.trim().lines().count(), 1, "{}", run.stderr);
 
     let text = std::fs::read_to_string(case.path("out/grades.jsonl")).unwrap();
-    let rows: Vec<Value> = text.lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    let rows: Vec<Value> = text
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
     assert_eq!(rows.len(), 3);
     let ids: Vec<&str> = rows.iter().map(|r| r["id"].as_str().unwrap()).collect();
     assert_eq!(ids, ["t-001", "t-002", "x-001"]);
@@ -171,7 +174,11 @@ fn reordered_rows_name_the_first_line_that_differs() {
 #[test]
 fn malformed_json_names_the_line() {
     let a = good_answers();
-    let case = Case::new(&[a[0].clone(), "{\"id\": \"t-002\", \"answer\": ".to_string(), a[2].clone()]);
+    let case = Case::new(&[
+        a[0].clone(),
+        "{\"id\": \"t-002\", \"answer\": ".to_string(),
+        a[2].clone(),
+    ]);
     let run = case.grade(&[]);
     case.assert_rejected(&run, &["answers.jsonl:2"]);
 }

@@ -76,7 +76,12 @@ fn measure(file: &str) -> Measured {
 fn labelled_set_in_sample() {
     let m = measure("refusal_labelled.jsonl");
     assert!(m.rows >= 80, "labelled set has {} rows", m.rows);
-    assert!(m.precision >= 1.0, "precision {:.3}: {:#?}", m.precision, m.wrong);
+    assert!(
+        m.precision >= 1.0,
+        "precision {:.3}: {:#?}",
+        m.precision,
+        m.wrong
+    );
     assert!(m.recall >= 1.0, "recall {:.3}: {:#?}", m.recall, m.wrong);
 }
 
@@ -84,6 +89,11 @@ fn labelled_set_in_sample() {
 fn held_out_set() {
     let m = measure("refusal_heldout.jsonl");
     assert!(m.rows >= 40, "held-out set has {} rows", m.rows);
-    assert!(m.precision >= 1.0, "precision {:.3}: {:#?}", m.precision, m.wrong);
+    assert!(
+        m.precision >= 1.0,
+        "precision {:.3}: {:#?}",
+        m.precision,
+        m.wrong
+    );
     assert!(m.recall >= 1.0, "recall {:.3}: {:#?}", m.recall, m.wrong);
 }

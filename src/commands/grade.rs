@@ -35,6 +35,11 @@ pub fn grade_set(
     answers: &[AnswerRecord],
     detector: &RefusalDetector,
 ) -> Vec<GradeRecord> {
+    debug_assert_eq!(
+        set.len(),
+        answers.len(),
+        "answers must match the set row for row"
+    );
     set.questions
         .par_iter()
         .zip(answers.par_iter())

@@ -13,6 +13,8 @@ pub mod squad;
 
 pub use refusal::RefusalDetector;
 
+use std::hash::Hasher;
+
 /// The reference-based scores of one answer, each maximised over the references separately.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct ReferenceScores {
@@ -24,33 +26,136 @@ pub struct ReferenceScores {
 
 /// Scores `answer` against the usable references: those that are not blank (empty or only
 /// whitespace). `None` when no reference is usable (typically an `expect: refuse` question).
+///
+/// Same values as [`squad::max_exact_match`], [`squad::max_token_f1`] and
+/// [`rouge::max_rouge_l`]; for speed, each answer is tokenised once and tokens carry a hash so
+/// that the LCS and the bag intersection mostly compare integers.
 pub fn score_references<S: AsRef<str>>(answer: &str, references: &[S]) -> Option<ReferenceScores> {
-    let refs: Vec<&str> = references
+    let mut refs = references
         .iter()
         .map(AsRef::as_ref)
         .filter(|r| !r.trim().is_empty())
-        .collect();
-    if refs.is_empty() {
-        return None;
-    }
-    let squad_answer = squad::normalize_tokens(answer);
-    let rouge_answer = rouge::tokens(answer);
+        .peekable();
+    refs.peek()?;
+    let squad_buf = squad::normalized_buffer(answer);
+    let squad_answer = squad::split_tokens(&squad_buf);
+    let mut squad_sorted = keyed(&squad_answer);
+    squad_sorted.sort_unstable();
+    let rouge_buf = rouge::lowered(answer);
+    let rouge_answer = keyed(&rouge::split_tokens(&rouge_buf));
     let mut best = ReferenceScores {
         exact_match: 0,
         token_f1: 0.0,
         rouge_l: 0.0,
     };
     for r in refs {
-        let squad_ref = squad::normalize_tokens(r);
-        if squad::exact_match_tokens(&squad_answer, &squad_ref) {
+        let ref_buf = squad::normalized_buffer(r);
+        let squad_ref = squad::split_tokens(&ref_buf);
+        if squad_answer == squad_ref {
             best.exact_match = 1;
         }
-        best.token_f1 = best.token_f1.max(squad::f1_tokens(&squad_answer, &squad_ref));
-        best.rouge_l = best
-            .rouge_l
-            .max(rouge::f_measure_tokens(&rouge_answer, &rouge::tokens(r)));
+        let mut b = keyed(&squad_ref);
+        b.sort_unstable();
+        let f1 = squad::f1_from_counts(
+            sorted_common(&squad_sorted, &b),
+            squad_sorted.len(),
+            b.len(),
+        );
+        best.token_f1 = best.token_f1.max(f1);
+
+        let ref_buf = rouge::lowered(r);
+        let rouge_ref = rouge::split_tokens(&ref_buf);
+        let b = keyed(&rouge_ref);
+        best.rouge_l = best.rouge_l.max(rouge::f_measure_tokens(&rouge_answer, &b));
     }
     Some(best)
+}
+
+/// Size of the multiset intersection of two sorted id lists.
+fn sorted_common<T: Ord>(a: &[T], b: &[T]) -> usize {
+    let (mut i, mut j, mut common) = (0, 0, 0);
+    while i < a.len() && j < b.len() {
+        match a[i].cmp(&b[j]) {
+            std::cmp::Ordering::Less => i += 1,
+            std::cmp::Ordering::Greater => j += 1,
+            std::cmp::Ordering::Equal => {
+                common += 1;
+                i += 1;
+                j += 1;
+            }
+        }
+    }
+    common
+}
+
+/// A token with its hash, so that comparisons mostly compare integers; equal hashes fall back
+/// to comparing the text, so a hash collision can never change a score.
+#[derive(Debug, Clone, Copy)]
+struct Keyed<'a> {
+    hash: u64,
+    text: &'a str,
+}
+
+impl PartialEq for Keyed<'_> {
+    fn eq(&self, other: &Self) -> bool {
+        self.hash == other.hash && self.text == other.text
+    }
+}
+
+impl Eq for Keyed<'_> {}
+
+impl PartialOrd for Keyed<'_> {
+    fn partial_cmp(&self, other: &Self) -> Option<std::cmp::Ordering> {
+        Some(self.cmp(other))
+    }
+}
+
+impl Ord for Keyed<'_> {
+    fn cmp(&self, other: &Self) -> std::cmp::Ordering {
+        self.hash
+            .cmp(&other.hash)
+            .then_with(|| self.text.cmp(other.text))
+    }
+}
+
+fn keyed<'a>(tokens: &[&'a str]) -> Vec<Keyed<'a>> {
+    tokens
+        .iter()
+        .map(|t| {
+            let mut h = FxHasher::default();
+            h.write(t.as_bytes());
+            Keyed {
+                hash: h.finish(),
+                text: t,
+            }
+        })
+        .collect()
+}
+
+/// A small multiplicative hasher (the rustc "Fx" hash) for short token keys. Only speed
+/// matters here: collisions cost time, never correctness.
+#[derive(Default, Clone, Copy)]
+pub(crate) struct FxHasher {
+    hash: u64,
+}
+
+impl Hasher for FxHasher {
+    fn write(&mut self, bytes: &[u8]) {
+        const K: u64 = 0x51_7c_c1_b7_27_22_0a_95;
+        let mut chunks = bytes.chunks_exact(8);
+        for c in &mut chunks {
+            let mut w = [0u8; 8];
+            w.copy_from_slice(c);
+            self.hash = (self.hash.rotate_left(5) ^ u64::from_le_bytes(w)).wrapping_mul(K);
+        }
+        for &b in chunks.remainder() {
+            self.hash = (self.hash.rotate_left(5) ^ u64::from(b)).wrapping_mul(K);
+        }
+    }
+
+    fn finish(&self) -> u64 {
+        self.hash
+    }
 }
 
 #[cfg(test)]

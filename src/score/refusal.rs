@@ -41,7 +41,10 @@
 //! labelled set `tests/fixtures/refusal_labelled.jsonl` are checked by a test and reported in
 //! docs/scoring.md.
 
-use std::collections::HashMap;
+use super::FxHasher;
+use std::borrow::Cow;
+use std::collections::{HashMap, HashSet};
+use std::hash::BuildHasherDefault;
 
 /// How far into an answer (in characters) a sentence may start and still be its opening.
 pub const OPENING_CHARS: usize = 160;
@@ -392,10 +395,11 @@ const FILLER_WORDS: &[&str] = &[
     "currently",
 ];
 
-/// One normalised token of an answer.
+/// One normalised token of an answer. Words borrow from the answer text when it already is
+/// in canonical form (most words are), so scoring many answers allocates little.
 #[derive(Debug, Clone, PartialEq, Eq)]
-enum Tok {
-    Word(String),
+enum Tok<'a> {
+    Word(Cow<'a, str>),
     /// End of a sentence.
     End,
 }
@@ -411,8 +415,8 @@ enum Pat {
 
 /// A normalised answer: tokens, the sentence each token belongs to, and whether that sentence
 /// is part of the opening.
-struct Normalised {
-    toks: Vec<Tok>,
+struct Normalised<'a> {
+    toks: Vec<Tok<'a>>,
     /// For each token, the index of the first token of its sentence.
     sentence_start: Vec<usize>,
     /// For each token, whether its sentence belongs to the opening.
@@ -420,35 +424,59 @@ struct Normalised {
 }
 
 fn is_apostrophe(c: char) -> bool {
-    matches!(c, '\'' | '\u{2019}' | '\u{2018}' | '\u{02bc}' | '\u{2032}' | '`' | '\u{b4}')
+    matches!(
+        c,
+        '\'' | '\u{2019}' | '\u{2018}' | '\u{02bc}' | '\u{2032}' | '`' | '\u{b4}'
+    )
 }
 
-/// Expands one lower-cased word (apostrophes already `'`) into canonical words.
-fn expand_word(word: &str, out: &mut Vec<String>) {
-    let push = |out: &mut Vec<String>, parts: &[&str]| {
-        out.extend(parts.iter().map(|p| p.to_string()));
+/// Expands one lower-cased word (apostrophes already `'`, none leading or trailing) into
+/// canonical words.
+fn expand_word<'a>(word: Cow<'a, str>, pos: usize, out: &mut Vec<(Tok<'a>, usize)>) {
+    let mut push = |parts: &[&'static str]| {
+        out.extend(parts.iter().map(|p| (Tok::Word(Cow::Borrowed(*p)), pos)));
     };
-    match word {
-        "can't" | "cannot" | "cant" => return push(out, &["can", "not"]),
-        "won't" | "wont" => return push(out, &["will", "not"]),
-        "shan't" => return push(out, &["shall", "not"]),
-        "i'm" | "im" => return push(out, &["i", "am"]),
-        "let's" => return push(out, &["let", "us"]),
-        "dont" | "doesnt" | "didnt" | "isnt" | "arent" | "wasnt" | "werent" | "couldnt"
-        | "wouldnt" | "shouldnt" | "havent" | "hasnt" | "mustnt" => {
-            let stem = &word[..word.len() - 2];
-            return push(out, &[stem, "not"]);
-        }
+    match word.as_ref() {
+        "can't" | "cannot" | "cant" => return push(&["can", "not"]),
+        "won't" | "wont" => return push(&["will", "not"]),
+        "shan't" => return push(&["shall", "not"]),
+        "i'm" | "im" => return push(&["i", "am"]),
+        "let's" => return push(&["let", "us"]),
+        "dont" => return push(&["do", "not"]),
+        "doesnt" => return push(&["does", "not"]),
+        "didnt" => return push(&["did", "not"]),
+        "isnt" => return push(&["is", "not"]),
+        "arent" => return push(&["are", "not"]),
+        "wasnt" => return push(&["was", "not"]),
+        "werent" => return push(&["were", "not"]),
+        "couldnt" => return push(&["could", "not"]),
+        "wouldnt" => return push(&["would", "not"]),
+        "shouldnt" => return push(&["should", "not"]),
+        "havent" => return push(&["have", "not"]),
+        "hasnt" => return push(&["has", "not"]),
+        "mustnt" => return push(&["must", "not"]),
+        w if FILLER_WORDS.contains(&w) => return,
         _ => {}
     }
-    if let Some(stem) = word.strip_suffix("n't") {
-        return push(out, &[stem, "not"]);
+    if !word.contains('\'') {
+        out.push((Tok::Word(word), pos));
+        return;
     }
-    for (suffix, full) in [("'re", "are"), ("'ve", "have"), ("'ll", "will"), ("'d", "would")] {
+    let stem_and = |stem: &str, full: &'static str, out: &mut Vec<(Tok<'a>, usize)>| {
+        out.push((Tok::Word(Cow::Owned(stem.replace('\'', ""))), pos));
+        out.push((Tok::Word(Cow::Borrowed(full)), pos));
+    };
+    if let Some(stem) = word.strip_suffix("n't") {
+        return stem_and(stem, "not", out);
+    }
+    for (suffix, full) in [
+        ("'re", "are"),
+        ("'ve", "have"),
+        ("'ll", "will"),
+        ("'d", "would"),
+    ] {
         if let Some(stem) = word.strip_suffix(suffix) {
-            if !stem.is_empty() {
-                return push(out, &[stem, full]);
-            }
+            return stem_and(stem, full, out);
         }
     }
     if let Some(stem) = word.strip_suffix("'s") {
@@ -456,49 +484,66 @@ fn expand_word(word: &str, out: &mut Vec<String>) {
             stem,
             "it" | "that" | "this" | "there" | "here" | "what" | "he" | "she" | "who"
         ) {
-            return push(out, &[stem, "is"]);
+            return stem_and(stem, "is", out);
         }
     }
-    let plain: String = word.chars().filter(|c| *c != '\'').collect();
-    if !plain.is_empty() && !FILLER_WORDS.contains(&plain.as_str()) {
-        out.push(plain);
+    let plain = word.replace('\'', "");
+    if !FILLER_WORDS.contains(&plain.as_str()) {
+        out.push((Tok::Word(Cow::Owned(plain)), pos));
+    }
+}
+
+/// The canonical form of one word run of the text: lower-cased, apostrophes as `'`, leading and
+/// trailing apostrophes dropped. Borrowed when the run already is in that form.
+fn canonical_run(run: &str) -> Cow<'_, str> {
+    if run
+        .bytes()
+        .all(|b| b.is_ascii_lowercase() || b.is_ascii_digit())
+    {
+        return Cow::Borrowed(run);
+    }
+    let mut w = String::with_capacity(run.len());
+    for c in run.chars() {
+        if is_apostrophe(c) {
+            w.push('\'');
+        } else {
+            w.extend(c.to_lowercase());
+        }
+    }
+    let trimmed = w.trim_matches('\'');
+    if trimmed.len() == w.len() {
+        Cow::Owned(w)
+    } else {
+        Cow::Owned(trimmed.to_string())
     }
 }
 
 /// Cuts `text` into canonical words and sentence ends. Returns the tokens and, for each, the
 /// byte offset in `text` where it starts.
-fn tokenize(text: &str) -> Vec<(Tok, usize)> {
-    let mut out: Vec<(Tok, usize)> = Vec::new();
-    let chars: Vec<(usize, char)> = text.char_indices().collect();
-    let mut word = String::new();
-    let mut word_start = 0usize;
-    let flush = |word: &mut String, start: usize, out: &mut Vec<(Tok, usize)>| {
-        let trimmed = word.trim_matches('\'');
-        if !trimmed.is_empty() {
-            let mut parts = Vec::new();
-            expand_word(trimmed, &mut parts);
-            out.extend(parts.into_iter().map(|p| (Tok::Word(p), start)));
-        }
-        word.clear();
-    };
-    for (k, &(pos, c)) in chars.iter().enumerate() {
+fn tokenize(text: &str) -> Vec<(Tok<'_>, usize)> {
+    let mut out: Vec<(Tok<'_>, usize)> = Vec::with_capacity(text.len() / 4 + 2);
+    let mut word_start: Option<usize> = None;
+    let mut prev: Option<char> = None;
+    let mut iter = text.char_indices().peekable();
+    while let Some((pos, c)) = iter.next() {
         if c.is_alphanumeric() || is_apostrophe(c) {
-            if word.is_empty() {
-                word_start = pos;
+            if word_start.is_none() {
+                word_start = Some(pos);
             }
-            if is_apostrophe(c) {
-                word.push('\'');
-            } else {
-                word.extend(c.to_lowercase());
-            }
+            prev = Some(c);
             continue;
         }
-        flush(&mut word, word_start, &mut out);
+        if let Some(start) = word_start.take() {
+            let w = canonical_run(&text[start..pos]);
+            if !w.is_empty() {
+                expand_word(w, start, &mut out);
+            }
+        }
         let ends_sentence = match c {
             '!' | '?' | '\n' | '\u{2026}' => true,
             '.' => {
-                let prev_digit = k > 0 && chars[k - 1].1.is_ascii_digit();
-                let next_digit = chars.get(k + 1).is_some_and(|(_, n)| n.is_ascii_digit());
+                let prev_digit = prev.is_some_and(|p| p.is_ascii_digit());
+                let next_digit = iter.peek().is_some_and(|(_, n)| n.is_ascii_digit());
                 !(prev_digit && next_digit)
             }
             _ => false,
@@ -506,15 +551,21 @@ fn tokenize(text: &str) -> Vec<(Tok, usize)> {
         if ends_sentence && matches!(out.last(), Some((Tok::Word(_), _))) {
             out.push((Tok::End, pos));
         }
+        prev = Some(c);
     }
-    flush(&mut word, word_start, &mut out);
+    if let Some(start) = word_start {
+        let w = canonical_run(&text[start..]);
+        if !w.is_empty() {
+            expand_word(w, start, &mut out);
+        }
+    }
     if matches!(out.last(), Some((Tok::Word(_), _))) {
         out.push((Tok::End, text.len()));
     }
     out
 }
 
-fn normalise(text: &str) -> Normalised {
+fn normalise(text: &str) -> Normalised<'_> {
     let tokens = tokenize(text);
     let opening_bytes = text
         .char_indices()
@@ -553,7 +604,7 @@ fn compile_phrase(phrase: &str) -> Option<Vec<Pat>> {
             _ => {
                 for (tok, _) in tokenize(piece) {
                     if let Tok::Word(w) = tok {
-                        pat.push(Pat::Word(w));
+                        pat.push(Pat::Word(w.into_owned()));
                     }
                 }
             }
@@ -566,9 +617,7 @@ fn compile_phrase(phrase: &str) -> Option<Vec<Pat>> {
     while matches!(pat.last(), Some(Pat::Gap)) {
         pat.pop();
     }
-    pat.iter()
-        .any(|p| matches!(p, Pat::Word(_)))
-        .then_some(pat)
+    pat.iter().any(|p| matches!(p, Pat::Word(_))).then_some(pat)
 }
 
 /// A word trie of phrase patterns.
@@ -579,7 +628,7 @@ struct Trie {
 
 #[derive(Debug, Clone, Default)]
 struct Node {
-    words: HashMap<String, usize>,
+    words: HashMap<String, usize, BuildHasherDefault<FxHasher>>,
     end: Option<usize>,
     gap: Option<usize>,
     terminal: bool,
@@ -633,7 +682,7 @@ impl Trie {
         }
         if let Some(tok) = toks.get(pos) {
             let next = match tok {
-                Tok::Word(w) => n.words.get(w.as_str()).copied(),
+                Tok::Word(w) => n.words.get(w.as_ref()).copied(),
                 Tok::End => n.end,
             };
             if let Some(next) = next {
@@ -664,6 +713,7 @@ impl Trie {
 pub struct RefusalDetector {
     opening: Trie,
     anywhere: Trie,
+    courtesy: HashSet<&'static str, BuildHasherDefault<FxHasher>>,
 }
 
 impl Default for RefusalDetector {
@@ -687,7 +737,11 @@ impl Default for RefusalDetector {
                 anywhere.insert(&p);
             }
         }
-        RefusalDetector { opening, anywhere }
+        RefusalDetector {
+            opening,
+            anywhere,
+            courtesy: COURTESY_WORDS.iter().copied().collect(),
+        }
     }
 }
 
@@ -708,14 +762,25 @@ impl RefusalDetector {
     /// Whether `answer` declines to answer (see the module documentation for the rules).
     pub fn is_refusal(&self, answer: &str) -> bool {
         let n = normalise(answer);
+        // Whether every word so far in the current sentence is a courtesy word.
+        let mut all_courtesy = true;
         for i in 0..n.toks.len() {
-            if !matches!(n.toks[i], Tok::Word(_)) {
+            let Tok::Word(w) = &n.toks[i] else {
+                all_courtesy = true;
                 continue;
+            };
+            if i == n.sentence_start[i] {
+                all_courtesy = true;
             }
             let mut found = self.anywhere.match_at(&n.toks, i);
-            if found.is_none() && n.in_opening[i] && courtesy_prefix(&n.toks[n.sentence_start[i]..i])
+            if found.is_none()
+                && n.in_opening[i]
+                && (all_courtesy || (i > n.sentence_start[i] && linking_word(&n.toks[i - 1])))
             {
                 found = self.opening.match_at(&n.toks, i);
+            }
+            if all_courtesy {
+                all_courtesy = self.courtesy.contains(w.as_ref());
             }
             if let Some(end) = found {
                 if !self.answers_after(&n.toks, end) {
@@ -730,7 +795,7 @@ impl RefusalDetector {
     /// real content (at least three words, no redirect word, no phrase)?
     fn answers_after(&self, toks: &[Tok], end: usize) -> bool {
         let Some(c) = (end..toks.len())
-            .find(|&k| matches!(&toks[k], Tok::Word(w) if CONTRAST_WORDS.contains(&w.as_str())))
+            .find(|&k| matches!(&toks[k], Tok::Word(w) if CONTRAST_WORDS.contains(&w.as_ref())))
         else {
             return false;
         };
@@ -738,7 +803,7 @@ impl RefusalDetector {
         let words: Vec<&str> = rest
             .iter()
             .filter_map(|t| match t {
-                Tok::Word(w) => Some(w.as_str()),
+                Tok::Word(w) => Some(w.as_ref()),
                 Tok::End => None,
             })
             .collect();
@@ -752,17 +817,9 @@ impl RefusalDetector {
     }
 }
 
-/// Whether the words before an opening phrase in its sentence are only courtesy words, or end
-/// with a linking "so", "as", "because" or "since" ("..., so I can't advise on that").
-fn courtesy_prefix(prefix: &[Tok]) -> bool {
-    if matches!(prefix.last(), Some(Tok::Word(w)) if matches!(w.as_str(), "so" | "as" | "because" | "since"))
-    {
-        return true;
-    }
-    prefix.iter().all(|t| match t {
-        Tok::Word(w) => COURTESY_WORDS.contains(&w.as_str()),
-        Tok::End => true,
-    })
+/// A word that links a clause to an opening phrase ("..., so I can't advise on that").
+fn linking_word(tok: &Tok) -> bool {
+    matches!(tok, Tok::Word(w) if matches!(w.as_ref(), "so" | "as" | "because" | "since"))
 }
 
 #[cfg(test)]
@@ -773,7 +830,7 @@ mod tests {
         tokenize(text)
             .into_iter()
             .map(|(t, _)| match t {
-                Tok::Word(w) => w,
+                Tok::Word(w) => w.into_owned(),
                 Tok::End => ".".to_string(),
             })
             .collect()
@@ -781,12 +838,24 @@ mod tests {
 
     #[test]
     fn normalisation_expands_contractions_and_apostrophes() {
-        assert_eq!(words("I’m sorry, I CAN'T."), ["i", "am", "sorry", "i", "can", "not", "."]);
-        assert_eq!(words("I cannot; I can not"), ["i", "can", "not", "i", "can", "not", "."]);
-        assert_eq!(words("We don't, it's"), ["we", "do", "not", "it", "is", "."]);
+        assert_eq!(
+            words("I’m sorry, I CAN'T."),
+            ["i", "am", "sorry", "i", "can", "not", "."]
+        );
+        assert_eq!(
+            words("I cannot; I can not"),
+            ["i", "can", "not", "i", "can", "not", "."]
+        );
+        assert_eq!(
+            words("We don't, it's"),
+            ["we", "do", "not", "it", "is", "."]
+        );
         assert_eq!(words("I really can’t"), ["i", "can", "not", "."]);
         // A decimal point is not a sentence end; the ferry's possessive loses its apostrophe.
-        assert_eq!(words("the ferry's 7.40 run"), ["the", "ferrys", "7", "40", "run", "."]);
+        assert_eq!(
+            words("the ferry's 7.40 run"),
+            ["the", "ferrys", "7", "40", "run", "."]
+        );
         assert_eq!(words(""), Vec::<String>::new());
         assert_eq!(words("...!?"), Vec::<String>::new());
     }
@@ -825,12 +894,8 @@ mod tests {
     #[test]
     fn hedged_answers_are_not_refusals_but_redirects_are() {
         let d = RefusalDetector::default();
-        assert!(!d.is_refusal(
-            "I can't say for sure, but the morning sailings usually fill first."
-        ));
-        assert!(d.is_refusal(
-            "I can't help with that, but please contact the harbour office."
-        ));
+        assert!(!d.is_refusal("I can't say for sure, but the morning sailings usually fill first."));
+        assert!(d.is_refusal("I can't help with that, but please contact the harbour office."));
         assert!(d.is_refusal("I can't predict the weather, but you can check the forecast."));
         // Too short to be an answer.
         assert!(d.is_refusal("I can't say, but maybe."));
@@ -846,7 +911,9 @@ mod tests {
         // An opening phrase after the opening does not count ...
         assert!(!d.is_refusal(&format!("{long_intro}I can't say whether it will rain.")));
         // ... an anywhere phrase does.
-        assert!(d.is_refusal(&format!("{long_intro}I can only help with ferry questions.")));
+        assert!(d.is_refusal(&format!(
+            "{long_intro}I can only help with ferry questions."
+        )));
     }
 
     #[test]

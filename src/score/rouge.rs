@@ -18,11 +18,26 @@
 
 /// rouge-score tokens of `text` (no stemming).
 pub fn tokens(text: &str) -> Vec<String> {
-    let lowered = text.to_lowercase();
+    split_tokens(&lowered(text))
+        .into_iter()
+        .map(str::to_string)
+        .collect()
+}
+
+/// `text` lower-cased as Python's `str.lower` does (the first tokenisation step).
+pub fn lowered(text: &str) -> String {
+    if text.is_ascii() {
+        text.to_ascii_lowercase()
+    } else {
+        text.to_lowercase()
+    }
+}
+
+/// The tokens of already [`lowered`] text: maximal runs of `[a-z0-9]`.
+pub fn split_tokens(lowered: &str) -> Vec<&str> {
     lowered
         .split(|c: char| !(c.is_ascii_lowercase() || c.is_ascii_digit()))
         .filter(|t| !t.is_empty())
-        .map(str::to_string)
         .collect()
 }
 
@@ -39,11 +54,7 @@ pub fn lcs_len<T: PartialEq>(a: &[T], b: &[T]) -> usize {
         let mut diag = 0u32; // row[j - 1] of the previous i
         for (j, y) in short.iter().enumerate() {
             let up = row[j + 1];
-            row[j + 1] = if x == y {
-                diag + 1
-            } else {
-                up.max(row[j])
-            };
+            row[j + 1] = if x == y { diag + 1 } else { up.max(row[j]) };
             diag = up;
         }
     }
@@ -122,7 +133,10 @@ mod tests {
     fn repeated_tokens() {
         // answer "free free free" (3) vs reference "free ride free" (3): LCS "free free" = 2,
         // P = R = 2/3.
-        assert!(close(rouge_l("free free free", "free ride free"), 2.0 / 3.0));
+        assert!(close(
+            rouge_l("free free free", "free ride free"),
+            2.0 / 3.0
+        ));
     }
 
     #[test]
@@ -139,7 +153,10 @@ mod tests {
         let refs = ["Bikes ride free.", "No."];
         assert_eq!(max_rouge_l("no", &refs), Some(1.0));
         // "bikes are free" vs "bikes ride free": LCS 2, P = R = 2/3.
-        assert!(close(max_rouge_l("bikes are free", &refs).unwrap(), 2.0 / 3.0));
+        assert!(close(
+            max_rouge_l("bikes are free", &refs).unwrap(),
+            2.0 / 3.0
+        ));
         let none: [&str; 0] = [];
         assert_eq!(max_rouge_l("x", &none), None);
     }

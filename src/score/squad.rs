@@ -50,19 +50,58 @@ fn is_article(word: &str) -> bool {
     matches!(word, "a" | "an" | "the")
 }
 
-/// The normalised tokens of `text` (steps 1-4 above; the normalised text is these tokens joined
-/// with single spaces).
-pub fn normalize_tokens(text: &str) -> Vec<String> {
+/// The normalised text of `text` with articles replaced by spaces, not yet split: its
+/// whitespace-separated pieces ([`split_tokens`]) are the normalised tokens.
+pub fn normalized_buffer(text: &str) -> String {
+    if !text.is_ascii() {
+        return normalized_buffer_unicode(text);
+    }
+    // ASCII: one pass that lower-cases, drops punctuation and replaces whole-word articles
+    // (a word run is a run of ASCII letters and digits once punctuation, `_` included, is gone).
+    let bytes = text.as_bytes();
+    let mut out = String::with_capacity(text.len());
+    let mut run_start: Option<usize> = None;
+    let end_run = |out: &mut String, run_start: &mut Option<usize>| {
+        if let Some(start) = run_start.take() {
+            if is_article(&out[start..]) {
+                out.truncate(start);
+                out.push(' ');
+            }
+        }
+    };
+    for &b in bytes {
+        if b.is_ascii_punctuation() {
+            continue;
+        }
+        if b.is_ascii_alphanumeric() {
+            if run_start.is_none() {
+                run_start = Some(out.len());
+            }
+            out.push(b.to_ascii_lowercase() as char);
+        } else {
+            end_run(&mut out, &mut run_start);
+            out.push(b as char);
+        }
+    }
+    end_run(&mut out, &mut run_start);
+    out
+}
+
+fn normalized_buffer_unicode(text: &str) -> String {
     let lowered = text.to_lowercase();
     let no_punct: String = lowered
         .chars()
         .filter(|c| !is_ascii_punctuation(*c))
         .collect();
-    // Removing articles as whole words, then splitting on whitespace, is the same as splitting
-    // the text into maximal word runs and non-word runs and dropping word runs that are articles:
-    // an article is replaced by a space, which the whitespace split then discards.
-    let mut without_articles = String::with_capacity(no_punct.len());
-    let mut rest = no_punct.as_str();
+    remove_articles(&no_punct)
+}
+
+/// Replaces every whole-word article with a space. Removing `\b(a|an|the)\b` and then splitting
+/// on whitespace is the same as splitting the text into maximal word runs and non-word runs and
+/// dropping word runs that are articles.
+fn remove_articles(text: &str) -> String {
+    let mut out = String::with_capacity(text.len());
+    let mut rest = text;
     while let Some(c) = rest.chars().next() {
         let word = is_word_char(c);
         let end = rest
@@ -71,15 +110,28 @@ pub fn normalize_tokens(text: &str) -> Vec<String> {
             .map_or(rest.len(), |(i, _)| i);
         let (run, tail) = rest.split_at(end);
         if word && is_article(run) {
-            without_articles.push(' ');
+            out.push(' ');
         } else {
-            without_articles.push_str(run);
+            out.push_str(run);
         }
         rest = tail;
     }
-    without_articles
+    out
+}
+
+/// Splits a [`normalized_buffer`] into its tokens (Python's `str.split()`).
+pub fn split_tokens(buffer: &str) -> Vec<&str> {
+    buffer
         .split(is_py_space)
         .filter(|t| !t.is_empty())
+        .collect()
+}
+
+/// The normalised tokens of `text` (steps 1-4 above; the normalised text is these tokens joined
+/// with single spaces).
+pub fn normalize_tokens(text: &str) -> Vec<String> {
+    split_tokens(&normalized_buffer(text))
+        .into_iter()
         .map(str::to_string)
         .collect()
 }
@@ -119,15 +171,23 @@ pub fn common_token_count<S: AsRef<str>>(answer: &[S], reference: &[S]) -> usize
     common
 }
 
-/// Token F1 of two already normalised token lists (0 when they share no token).
-pub fn f1_tokens<S: AsRef<str>>(answer: &[S], reference: &[S]) -> f64 {
-    let common = common_token_count(answer, reference);
+/// Token F1 from the shared-token count and the two lengths (0 when nothing is shared).
+pub fn f1_from_counts(common: usize, answer_len: usize, reference_len: usize) -> f64 {
     if common == 0 {
         return 0.0;
     }
-    let precision = common as f64 / answer.len() as f64;
-    let recall = common as f64 / reference.len() as f64;
+    let precision = common as f64 / answer_len as f64;
+    let recall = common as f64 / reference_len as f64;
     2.0 * precision * recall / (precision + recall)
+}
+
+/// Token F1 of two already normalised token lists (0 when they share no token).
+pub fn f1_tokens<S: AsRef<str>>(answer: &[S], reference: &[S]) -> f64 {
+    f1_from_counts(
+        common_token_count(answer, reference),
+        answer.len(),
+        reference.len(),
+    )
 }
 
 /// Exact match of one answer against one reference: 1 or 0.
@@ -217,7 +277,10 @@ mod tests {
         // answer "bikes ride free" (3), reference "yes bikes ride free on every crossing" (7):
         // common 3, P = 1, R = 3/7, F1 = 2*(3/7)/(10/7) = 0.6.
         assert!(close(
-            token_f1("Bikes ride free.", "Yes, bikes ride free on every crossing."),
+            token_f1(
+                "Bikes ride free.",
+                "Yes, bikes ride free on every crossing."
+            ),
             0.6
         ));
         // Identical after normalisation.
@@ -258,6 +321,24 @@ mod tests {
         let none: [&str; 0] = [];
         assert_eq!(max_exact_match("x", &none), None);
         assert_eq!(max_token_f1("x", &none), None);
+    }
+
+    #[test]
+    fn ascii_fast_path_equals_the_general_path() {
+        for text in [
+            "The  7:40 Crossing!",
+            "a\u{1}the\u{7f}an x_the the_ a-n",
+            "THE.THE,the;A",
+            "",
+            "   ",
+            "snake_case and\tthe\nend",
+        ] {
+            assert_eq!(
+                normalized_buffer(text),
+                normalized_buffer_unicode(text),
+                "{text:?}"
+            );
+        }
     }
 
     #[test]
