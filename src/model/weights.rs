@@ -219,8 +219,9 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
         tensors.insert(name.clone(), t);
     }
     if !tensors.contains_key(EMBED) {
-        // Tied with only lm_head stored: the same matrix serves as the embedding.
-        if let Some(h) = tensors.get(LM_HEAD).cloned() {
+        // Tied with only lm_head stored: the same matrix serves as the embedding, kept under
+        // the embedding's name so the map holds one shared tensor (as after the usual tying).
+        if let Some(h) = tensors.remove(LM_HEAD) {
             tensors.insert(EMBED.to_string(), h);
         }
     }
