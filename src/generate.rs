@@ -187,6 +187,76 @@ pub fn generate_batch(
     Ok(out)
 }
 
+/// What produced an answers file: written as `<out>.run.json` (interface.md, "Answers file").
+/// Fingerprints are SHA-256 hex of file contents, so a changed file shows up even under the
+/// same path.
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct RunInfo {
+    pub tool: String,
+    pub tool_version: String,
+    pub model: ModelInfo,
+    pub adapter: Option<AdapterInfo>,
+    pub chat_template: TemplateInfo,
+    pub generation: GenerationInfo,
+    pub questions: QuestionsInfo,
+    /// The dtype every tensor was computed in.
+    pub compute_dtype: String,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct ModelInfo {
+    pub path: String,
+    /// SHA-256 over the per-file SHA-256s of config, generation config, safetensors (and
+    /// index) and tokenizer files, listed in `files`.
+    pub fingerprint: String,
+    pub files: Vec<FileDigest>,
+    pub model_type: String,
+    pub architecture: String,
+    /// The dtype the checkpoint stored its weights in.
+    pub stored_dtype: String,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct FileDigest {
+    pub name: String,
+    pub sha256: String,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct AdapterInfo {
+    pub path: String,
+    pub fingerprint: String,
+    pub modules_merged: usize,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct TemplateInfo {
+    /// SHA-256 of the template source, or of the plain fallback's name.
+    pub fingerprint: String,
+    /// false: the documented plain fallback prompt was used.
+    pub from_model: bool,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct GenerationInfo {
+    pub decoding: String,
+    pub max_new_tokens: usize,
+    pub ignore_eos: bool,
+    pub eos_token_ids: Vec<u32>,
+    /// "generation_config.json" or "config.json".
+    pub eos_source: String,
+    pub system: Option<String>,
+    pub batch: usize,
+    pub threads: usize,
+}
+
+#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct QuestionsInfo {
+    pub path: String,
+    pub fingerprint: String,
+    pub count: usize,
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;

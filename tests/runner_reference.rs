@@ -1,0 +1,182 @@
+//! The decoder, LoRA merge and greedy loop against the reference implementation, for every
+//! family under tests/fixtures/runner/.
+//!
+//! Source of every expected value: transformers 5.24.0 `generate(do_sample=False)` (torch
+//! 2.15.0, f32, eager attention) on the base model, and peft 0.21.2
+//! `PeftModel.from_pretrained(...).merge_and_unload()` for each adapter; fixtures made by
+//! tests/reference/make_runner_fixtures.py (tiny seeded random models; every recorded step has a
+//! top-1/top-2 logit margin of at least 1e-3, so token identity is a fair test in f32).
+//!
+//! Checked per case: token-identical greedy output ids (prompt ids taken from the fixture,
+//! i.e. `apply_chat_template(tokenize=True)`), the finish reason, and the first-step logits
+//! within 1e-4; then the same cases decoded together in one left-padded batch must give the
+//! same ids as batch 1.
+
+use liftgate::answers::Finish;
+use liftgate::generate::{generate_batch, prefill_input, Decoding, GenerationSettings};
+use liftgate::model;
+use serde_json::Value;
+use std::path::{Path, PathBuf};
+
+const LOGIT_TOL: f32 = 1e-4;
+
+fn fixtures_root() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/runner")
+}
+
+fn families() -> Vec<PathBuf> {
+    let mut out: Vec<PathBuf> = std::fs::read_dir(fixtures_root())
+        .expect("tests/fixtures/runner exists")
+        .flatten()
+        .map(|e| e.path())
+        .filter(|p| p.join("expected.json").is_file())
+        .collect();
+    out.sort();
+    assert!(!out.is_empty(), "no fixture families found");
+    out
+}
+
+fn ids(v: &Value) -> Vec<u32> {
+    v.as_array()
+        .expect("an id list")
+        .iter()
+        .map(|x| x.as_u64().expect("an id") as u32)
+        .collect()
+}
+
+fn floats(v: &Value) -> Vec<f32> {
+    v.as_array()
+        .expect("a float list")
+        .iter()
+        .map(|x| x.as_f64().expect("a number") as f32)
+        .collect()
+}
+
+struct Case {
+    label: String,
+    prompt: Vec<u32>,
+    output: Vec<u32>,
+    finish: Finish,
+    max_new_tokens: usize,
+    logits: Vec<f32>,
+}
+
+/// Runs every non-error case of one variant; returns the worst first-step logit difference.
+fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
+    let model_dir = family.join("model");
+    let adapter_dir = family.join("adapters").join(variant);
+    let adapter = (variant != "base").then_some(adapter_dir.as_path());
+    let loaded = model::load(&model_dir, adapter)
+        .unwrap_or_else(|e| panic!("{}: loading {variant}: {e}", family.display()));
+    let mut eos = loaded.generation.eos.clone();
+    eos.sort();
+    let cases: Vec<Case> = expected["cases"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|c| c["variant"] == variant && c.get("error").is_none_or(Value::is_null))
+        .map(|c| Case {
+            label: format!(
+                "{} {variant} system={} q{}",
+                family.file_name().unwrap().to_string_lossy(),
+                c["system"],
+                c["question_index"]
+            ),
+            prompt: ids(&c["prompt_ids"]),
+            output: ids(&c["output_ids"]),
+            finish: match c["finish"].as_str() {
+                Some("eos") => Finish::Eos,
+                _ => Finish::Length,
+            },
+            max_new_tokens: c["max_new_tokens"].as_u64().unwrap() as usize,
+            logits: floats(&c["first_step_logits"]),
+        })
+        .collect();
+    assert!(!cases.is_empty(), "{}: no cases for {variant}", family.display());
+    let pad = loaded.generation.pad.unwrap_or(0);
+    let mut worst = 0f32;
+    for case in &cases {
+        let mut cache = loaded.decoder.new_cache();
+        let logits: Vec<f32> = loaded
+            .decoder
+            .forward(&prefill_input(std::slice::from_ref(&case.prompt), pad), &mut cache)
+            .unwrap()
+            .flatten_all()
+            .unwrap()
+            .to_vec1()
+            .unwrap();
+        assert_eq!(logits.len(), case.logits.len(), "{}", case.label);
+        let diff = logits
+            .iter()
+            .zip(&case.logits)
+            .map(|(a, b)| (a - b).abs())
+            .fold(0f32, f32::max);
+        assert!(
+            diff <= LOGIT_TOL,
+            "{}: first-step logits differ by {diff} > {LOGIT_TOL}",
+            case.label
+        );
+        worst = worst.max(diff);
+        let settings = GenerationSettings {
+            decoding: Decoding::Greedy,
+            max_new_tokens: case.max_new_tokens,
+            eos: loaded.generation.eos.clone(),
+            ignore_eos: false,
+            pad,
+        };
+        let got = generate_batch(
+            &loaded.decoder,
+            std::slice::from_ref(&case.prompt),
+            &settings,
+            &mut |_| {},
+        )
+        .unwrap();
+        assert_eq!(got[0].tokens, case.output, "{}: output ids", case.label);
+        assert_eq!(got[0].finish, case.finish, "{}: finish", case.label);
+    }
+    // All cases of the variant with one shared max_new_tokens, batched (left padding) vs alone.
+    let max_new = cases.iter().map(|c| c.max_new_tokens).max().unwrap();
+    let settings = GenerationSettings {
+        decoding: Decoding::Greedy,
+        max_new_tokens: max_new,
+        eos: loaded.generation.eos.clone(),
+        ignore_eos: false,
+        pad,
+    };
+    let prompts: Vec<Vec<u32>> = cases.iter().map(|c| c.prompt.clone()).collect();
+    let batched = generate_batch(&loaded.decoder, &prompts, &settings, &mut |_| {}).unwrap();
+    for (case, b) in cases.iter().zip(&batched) {
+        let alone =
+            generate_batch(&loaded.decoder, std::slice::from_ref(&case.prompt), &settings, &mut |_| {})
+                .unwrap();
+        assert_eq!(b.tokens, alone[0].tokens, "{}: batched vs batch 1", case.label);
+        // The reference prefix (its own max_new_tokens) must match too.
+        let n = case.output.len().min(b.tokens.len());
+        assert_eq!(&b.tokens[..n], &case.output[..n], "{}: batched vs reference", case.label);
+    }
+    worst
+}
+
+#[test]
+fn greedy_outputs_match_the_reference_for_every_family_and_variant() {
+    let mut report = Vec::new();
+    for family in families() {
+        let expected: Value =
+            serde_json::from_str(&std::fs::read_to_string(family.join("expected.json")).unwrap())
+                .unwrap();
+        let variants: Vec<String> = expected["variants"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|v| v.as_str().unwrap().to_string())
+            .collect();
+        for variant in variants {
+            let worst = check_variant(&family, &expected, &variant);
+            report.push(format!(
+                "{} {variant}: max |Δ first-step logit| = {worst:.2e}",
+                family.file_name().unwrap().to_string_lossy()
+            ));
+        }
+    }
+    eprintln!("{}", report.join("\n"));
+}
