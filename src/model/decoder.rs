@@ -12,7 +12,7 @@
 //! [B, heads, L, head_dim]. Linear weights are [out, in] (y = x·Wᵀ + b).
 
 use crate::error::{Error, Result};
-use crate::model::config::{Activation, ModelSpec, NormStyle, RopeScaling};
+use crate::model::config::{Activation, ModelSpec, NormStyle, RopeScaling, RopeSpec};
 use crate::model::weights::{EMBED, LM_HEAD};
 use candle_core::{DType, Device, Tensor, D};
 use std::collections::HashMap;
@@ -142,8 +142,6 @@ pub struct Decoder {
     lm_head: Tensor,
     final_norm: RmsNorm,
     layers: Vec<Layer>,
-    /// Default-rule inverse frequencies base_i = θ^(-2i/d), f32 (model-formats.md §2.3).
-    base_inv_freq: Vec<f32>,
 }
 
 /// The additive mask value for hidden keys: `finfo(float32).min`, finite so fully masked rows
@@ -237,19 +235,12 @@ impl Decoder {
             Some(h) => h,
             None => embed.clone(),
         };
-        let d = spec.rope.rotary_dim;
-        let theta = spec.rope.theta as f32;
-        // `1.0 / (base ** (arange(0, d, 2).float() / d))` in f32.
-        let base_inv_freq = (0..d / 2)
-            .map(|i| 1.0f32 / theta.powf((2 * i) as f32 / d as f32))
-            .collect();
         Ok(Decoder {
             spec: spec.clone(),
             embed,
             lm_head,
             final_norm,
             layers,
-            base_inv_freq,
         })
     }
 
@@ -447,108 +438,11 @@ impl Decoder {
         ))
     }
 
-    /// Inverse frequencies and attention scaling for this call (model-formats.md §2.3).
+    /// Inverse frequencies and attention scaling for this call: seq_len is
+    /// max(position_ids) + 1.
     fn inv_freq_for(&self, input: &StepInput) -> (Vec<f32>, f32) {
-        let r = &self.spec.rope;
-        let d = r.rotary_dim as f64;
-        let base = &self.base_inv_freq;
-        // seq_len of the call: max(position_ids) + 1.
         let seq_len = input.positions.iter().copied().max().unwrap_or(0) as f64 + 1.0;
-        let max_pos = r.max_position_embeddings as f64;
-        match &r.scaling {
-            RopeScaling::Default => (base.clone(), 1.0),
-            RopeScaling::Linear { factor } => {
-                (base.iter().map(|&b| b / *factor as f32).collect(), 1.0)
-            }
-            RopeScaling::Dynamic { factor } => {
-                if seq_len <= max_pos {
-                    return (base.clone(), 1.0);
-                }
-                let theta = r.theta * ((factor * seq_len / max_pos) - (factor - 1.0)).powf(d / (d - 2.0));
-                let theta = theta as f32;
-                (
-                    (0..r.rotary_dim / 2)
-                        .map(|i| 1.0f32 / theta.powf((2 * i) as f32 / d as f32))
-                        .collect(),
-                    1.0,
-                )
-            }
-            RopeScaling::Llama3 {
-                factor,
-                low_freq_factor,
-                high_freq_factor,
-                original_max,
-            } => {
-                let low_wl = original_max / low_freq_factor;
-                let high_wl = original_max / high_freq_factor;
-                let inv = base
-                    .iter()
-                    .map(|&b| {
-                        let b = b as f64;
-                        let wl = 2.0 * std::f64::consts::PI / b;
-                        let v = if wl < high_wl {
-                            b
-                        } else if wl > low_wl {
-                            b / factor
-                        } else {
-                            let s = (original_max / wl - low_freq_factor)
-                                / (high_freq_factor - low_freq_factor);
-                            (1.0 - s) * b / factor + s * b
-                        };
-                        v as f32
-                    })
-                    .collect();
-                (inv, 1.0)
-            }
-            RopeScaling::Yarn {
-                factor,
-                original_max,
-                beta_fast,
-                beta_slow,
-                truncate,
-                attention_scaling,
-            } => {
-                let corr = |n: f64| d * (original_max / (n * 2.0 * std::f64::consts::PI)).ln() / (2.0 * r.theta.ln());
-                let (mut low, mut high) = (corr(*beta_fast), corr(*beta_slow));
-                if *truncate {
-                    low = low.floor();
-                    high = high.ceil();
-                }
-                let low = low.max(0.0);
-                let high = high.min(d - 1.0);
-                let high = if low == high { high + 0.001 } else { high };
-                let inv = base
-                    .iter()
-                    .enumerate()
-                    .map(|(i, &b)| {
-                        let ramp = ((i as f64 - low) / (high - low)).clamp(0.0, 1.0);
-                        let e = 1.0 - ramp;
-                        let b = b as f64;
-                        ((b / factor) * (1.0 - e) + b * e) as f32
-                    })
-                    .collect();
-                (inv, *attention_scaling as f32)
-            }
-            RopeScaling::LongRope {
-                short_factor,
-                long_factor,
-                original_max,
-                attention_scaling,
-            } => {
-                let ext = if seq_len > *original_max {
-                    long_factor
-                } else {
-                    short_factor
-                };
-                let theta = r.theta as f32;
-                let inv = ext
-                    .iter()
-                    .enumerate()
-                    .map(|(i, &e)| 1.0f32 / (e as f32 * theta.powf((2 * i) as f32 / d as f32)))
-                    .collect();
-                (inv, *attention_scaling as f32)
-            }
-        }
+        rope_frequencies(&self.spec.rope, seq_len)
     }
 
     /// Additive masks [B, 1, L, T] for full-attention layers and, when some layer slides, for
@@ -558,20 +452,7 @@ impl Decoder {
         let total = past + l;
         let window = self.layers.iter().find_map(|x| x.window);
         let build = |w: Option<usize>| -> Result<Tensor> {
-            let mut m = vec![MASKED; b * l * total];
-            for row in 0..b {
-                let keys = &input.key_mask[row * total..(row + 1) * total];
-                for i in 0..l {
-                    let q = past + i;
-                    let out = &mut m[(row * l + i) * total..(row * l + i + 1) * total];
-                    for (k, slot) in out.iter_mut().enumerate().take(q + 1) {
-                        let in_window = w.is_none_or(|w| k + w > q);
-                        if keys[k] != 0 && in_window {
-                            *slot = 0.0;
-                        }
-                    }
-                }
-            }
+            let m = additive_mask(&input.key_mask, b, l, past, w);
             Ok(Tensor::from_vec(m, (b, 1, l, total), &Device::Cpu)?)
         };
         let full = build(None)?;
@@ -580,5 +461,209 @@ impl Decoder {
             None => None,
         };
         Ok((full, sliding))
+    }
+}
+
+/// Default-rule inverse frequencies `1.0 / (θ ** (arange(0, d, 2).float() / d))` in f32.
+fn default_inv_freq(r: &RopeSpec) -> Vec<f32> {
+    let d = r.rotary_dim;
+    let theta = r.theta as f32;
+    (0..d / 2)
+        .map(|i| 1.0f32 / theta.powf((2 * i) as f32 / d as f32))
+        .collect()
+}
+
+/// Inverse frequencies and attention scaling (the cos/sin multiplier) for a forward call whose
+/// longest position is `seq_len − 1` (model-formats.md §2.3; transformers 5.24
+/// `modeling_rope_utils.py` `ROPE_INIT_FUNCTIONS`).
+pub fn rope_frequencies(r: &RopeSpec, seq_len: f64) -> (Vec<f32>, f32) {
+    let d = r.rotary_dim as f64;
+    let base = &default_inv_freq(r);
+    let max_pos = r.max_position_embeddings as f64;
+    match &r.scaling {
+        RopeScaling::Default => (base.clone(), 1.0),
+        RopeScaling::Linear { factor } => {
+            (base.iter().map(|&b| b / *factor as f32).collect(), 1.0)
+        }
+        RopeScaling::Dynamic { factor } => {
+            if seq_len <= max_pos {
+                return (base.clone(), 1.0);
+            }
+            let theta = r.theta * ((factor * seq_len / max_pos) - (factor - 1.0)).powf(d / (d - 2.0));
+            let theta = theta as f32;
+            (
+                (0..r.rotary_dim / 2)
+                    .map(|i| 1.0f32 / theta.powf((2 * i) as f32 / d as f32))
+                    .collect(),
+                1.0,
+            )
+        }
+        RopeScaling::Llama3 {
+            factor,
+            low_freq_factor,
+            high_freq_factor,
+            original_max,
+        } => {
+            // f32 throughout, as `_compute_llama3_parameters` runs on f32 tensors.
+            let (f, lo, hi, o) = (
+                *factor as f32,
+                *low_freq_factor as f32,
+                *high_freq_factor as f32,
+                *original_max as f32,
+            );
+            let (low_wl, high_wl) = (o / lo, o / hi);
+            let inv = base
+                .iter()
+                .map(|&b| {
+                    let wl = 2.0 * std::f32::consts::PI / b;
+                    if wl < high_wl {
+                        b
+                    } else if wl > low_wl {
+                        b / f
+                    } else {
+                        let s = (o / wl - lo) / (hi - lo);
+                        (1.0 - s) * b / f + s * b
+                    }
+                })
+                .collect();
+            (inv, 1.0)
+        }
+        RopeScaling::Yarn {
+            factor,
+            original_max,
+            beta_fast,
+            beta_slow,
+            truncate,
+            attention_scaling,
+        } => {
+            // The correction range in f64 (Python floats), the frequencies in f32 tensors.
+            let corr = |n: f64| {
+                d * (original_max / (n * 2.0 * std::f64::consts::PI)).ln() / (2.0 * r.theta.ln())
+            };
+            let (mut low, mut high) = (corr(*beta_fast), corr(*beta_slow));
+            if *truncate {
+                low = low.floor();
+                high = high.ceil();
+            }
+            let low = low.max(0.0);
+            let high = high.min(d - 1.0);
+            let high = if low == high { high + 0.001 } else { high };
+            let theta = r.theta as f32;
+            let f = *factor as f32;
+            let inv = (0..r.rotary_dim / 2)
+                .map(|i| {
+                    let pos = theta.powf((2 * i) as f32 / d as f32);
+                    let extra = 1.0 / pos;
+                    let inter = 1.0 / (f * pos);
+                    let ramp = ((i as f32 - low as f32) / (high as f32 - low as f32)).clamp(0.0, 1.0);
+                    let e = 1.0 - ramp;
+                    inter * (1.0 - e) + extra * e
+                })
+                .collect();
+            (inv, *attention_scaling as f32)
+        }
+        RopeScaling::LongRope {
+            short_factor,
+            long_factor,
+            original_max,
+            attention_scaling,
+        } => {
+            let ext = if seq_len > *original_max {
+                long_factor
+            } else {
+                short_factor
+            };
+            let theta = r.theta as f32;
+            let inv = ext
+                .iter()
+                .enumerate()
+                .map(|(i, &e)| 1.0f32 / (e as f32 * theta.powf((2 * i) as f32 / d as f32)))
+                .collect();
+            (inv, *attention_scaling as f32)
+        }
+    }
+}
+
+/// The additive attention mask, row-major [B, L, past + L]: 0 where query i (cache index
+/// past + i) may see key k, `MASKED` elsewhere. Visible iff k ≤ q (causal), the key slot is real
+/// (`key_mask`), and with a window W, k > q − W (model-formats.md §2.7).
+pub fn additive_mask(
+    key_mask: &[u8],
+    b: usize,
+    l: usize,
+    past: usize,
+    window: Option<usize>,
+) -> Vec<f32> {
+    let total = past + l;
+    let mut m = vec![MASKED; b * l * total];
+    for row in 0..b {
+        let keys = &key_mask[row * total..(row + 1) * total];
+        for i in 0..l {
+            let q = past + i;
+            let out = &mut m[(row * l + i) * total..(row * l + i + 1) * total];
+            for (k, slot) in out.iter_mut().enumerate().take(q + 1) {
+                if keys[k] != 0 && window.is_none_or(|w| k + w > q) {
+                    *slot = 0.0;
+                }
+            }
+        }
+    }
+    m
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::path::Path;
+
+    /// inv_freq and attention scaling for every rope_type against transformers 5.24.0
+    /// `ROPE_INIT_FUNCTIONS` (tests/fixtures/rope/cases.json, made by
+    /// tests/reference/make_rope_fixtures.py). Relative tolerance 1e-6: both sides are f32.
+    #[test]
+    fn rope_frequencies_match_transformers() {
+        let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/rope/cases.json");
+        let doc: serde_json::Value =
+            serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap();
+        let cases = doc["cases"].as_array().unwrap();
+        assert!(cases.len() >= 10);
+        for c in cases {
+            let label = format!("{} seq_len {}", c["name"], c["seq_len"]);
+            let spec =
+                ModelSpec::from_json(Path::new("config.json"), c["config"].as_object().unwrap())
+                    .unwrap();
+            let (inv, scale) = rope_frequencies(&spec.rope, c["seq_len"].as_f64().unwrap());
+            let want: Vec<f32> = c["inv_freq"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .map(|x| x.as_f64().unwrap() as f32)
+                .collect();
+            assert_eq!(inv.len(), want.len(), "{label}");
+            for (i, (a, b)) in inv.iter().zip(&want).enumerate() {
+                assert!(
+                    (a - b).abs() <= 1e-6 * b.abs().max(1e-30),
+                    "{label}: inv_freq[{i}] {a} vs {b}"
+                );
+            }
+            let ws = c["attention_scaling"].as_f64().unwrap() as f32;
+            assert!((scale - ws).abs() <= 1e-6, "{label}: scaling {scale} vs {ws}");
+        }
+    }
+
+    /// Mask rules of transformers 5.24.0 `masking_utils.py` (model-formats.md §2.7): causal in
+    /// cache-index space, padding hides keys, a window W shows W keys including the query.
+    #[test]
+    fn masks_combine_causal_padding_and_window() {
+        let vis = |m: Vec<f32>| -> Vec<u8> { m.iter().map(|&x| (x == 0.0) as u8).collect() };
+        // One row, one pad slot on the left, four queries.
+        let full = vis(additive_mask(&[0, 1, 1, 1], 1, 4, 0, None));
+        assert_eq!(full, vec![0, 0, 0, 0, 0, 1, 0, 0, 0, 1, 1, 0, 0, 1, 1, 1]);
+        let win = vis(additive_mask(&[0, 1, 1, 1], 1, 4, 0, Some(2)));
+        assert_eq!(&win[12..], &[0, 0, 1, 1]);
+        // A decode step: 3 cached slots + 1 query sees everything real.
+        let step = vis(additive_mask(&[1, 0, 1, 1], 1, 1, 3, None));
+        assert_eq!(step, vec![1, 0, 1, 1]);
+        // Pad query rows stay finite (no −inf), so softmax over them is not NaN.
+        assert!(additive_mask(&[0, 1], 1, 2, 0, None).iter().all(|x| x.is_finite()));
     }
 }
