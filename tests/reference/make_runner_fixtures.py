@@ -35,6 +35,7 @@ import safetensors
 from tokenizers import Tokenizer, decoders, models, pre_tokenizers, processors, trainers
 from tokenizers import AddedToken
 from transformers import (
+    AutoConfig,
     AutoModelForCausalLM,
     AutoTokenizer,
     GemmaConfig,
@@ -344,6 +345,9 @@ FAMILIES = {
         config_cls=Qwen2Config,
         config=dict(sliding_window=16, use_sliding_window=False, max_window_layers=1,
                     rope_parameters=dict(rope_type="default", rope_theta=1000000.0), tie_word_embeddings=False),
+        # v5 writes sliding_window null and explicit layer_types; shipped Qwen2 files carry a
+        # window with use_sliding_window false and no layer_types.
+        config_patch=dict(sliding_window=16, layer_types=None),
         tok=dict(QWEN_TOK, template=T_QWEN2, template_in="tokenizer_config.json"),
         config_eos="<|endoftext|>",
         gen_eos=["<|im_end|>", "<|endoftext|>"],
@@ -360,7 +364,7 @@ FAMILIES = {
             ),
         ],
         features=["q/k/v biases (random non-zero)", "weights stored bf16", "no BOS",
-                  "use_sliding_window false (sliding_window must be ignored)", "eos list in generation_config",
+                  "config.json has sliding_window 16 with use_sliding_window false and no layer_types (window must be ignored)", "eos list in generation_config",
                   "rope_theta 1e6", "all-linear with rank_pattern/alpha_pattern"],
     ),
     "qwen3": dict(
@@ -436,6 +440,7 @@ FAMILIES = {
                     final_logit_softcapping=10.0, sliding_window=16,
                     rope_parameters=dict(rope_type="default", rope_theta=10000.0), tie_word_embeddings=True),
         tok=dict(GEMMA_TOK, template=T_GEMMA2, template_in="chat_template.jinja"),
+        eos_boost=2.5,  # the final soft-cap squeezes the logits, so stop tokens need a larger row
         config_eos="<eos>",
         gen_eos="<end_of_turn>",
         dtype="float32",
@@ -457,6 +462,48 @@ FAMILIES = {
                   "template in chat_template.jinja"],
     ),
 }
+
+
+# Config overrides that must change the logits of the fixture's models; each is applied to the
+# loaded config and the full-sequence logits are compared with the unmodified model. This shows
+# the fixture is sensitive to the feature (a reimplementation that ignores it cannot pass).
+FEATURE_CHECKS = {
+    "llama": [dict(rope_parameters=dict(rope_type="default", rope_theta=10000.0))],
+    "mistral": [dict(sliding_window=None)],
+    "qwen2": [dict(use_sliding_window=True, sliding_window=16, layer_types=["sliding_attention"] * 2)],
+    "phi3": [dict(rope_parameters=dict(rope_type="default", rope_theta=10000.0, partial_rotary_factor=1.0))],
+    "gemma": [dict(hidden_act="silu")],
+    "gemma2": [
+        dict(layer_types=["full_attention"] * 2),
+        dict(attn_logit_softcapping=None),
+        dict(final_logit_softcapping=None),
+        dict(query_pre_attn_scalar=16),
+    ],
+}
+
+
+def feature_checks(fam, mdir, cases):
+    case = next((c for c in cases if c["variant"] == "base" and "prompt_ids" in c), None)
+    out = []
+    if case is None:
+        return out
+    ids = torch.tensor([case["prompt_ids"] + case["output_ids"]])
+
+    def run(over):
+        cfg = AutoConfig.from_pretrained(mdir)
+        for k, v in over.items():
+            setattr(cfg, k, v)
+        m = AutoModelForCausalLM.from_pretrained(mdir, config=cfg, dtype=torch.float32, attn_implementation="eager")
+        with torch.no_grad():
+            return m.eval()(ids).logits[0]
+
+    ref = run({})
+    for over in FEATURE_CHECKS.get(fam, []):
+        diff = float((run(over) - ref).abs().max())
+        if not diff > 1e-2:
+            raise RuntimeError(f"{fam}: override {over} does not change the logits ({diff})")
+        out.append(dict(override=over, max_abs_logit_diff=sig7(diff)))
+    return out
 
 
 def log(msg):
@@ -543,7 +590,7 @@ def build_model(fam, spec, mdir, seed, tok):
         head = model.get_output_embeddings().weight
         gen_eos = spec["gen_eos"] if spec["gen_eos"] is not None else spec["config_eos"]
         for t in gen_eos if isinstance(gen_eos, list) else [gen_eos]:
-            head[tok_id(tok, t)] *= EOS_BOOST
+            head[tok_id(tok, t)] *= spec.get("eos_boost", EOS_BOOST)
     store = getattr(torch, spec["dtype"])
     model = model.to(store)
     if spec["gen_eos"] is not None:
@@ -558,6 +605,17 @@ def build_model(fam, spec, mdir, seed, tok):
     model.save_pretrained(mdir, **kw)
     if spec["gen_eos"] is None:
         (mdir / "generation_config.json").unlink(missing_ok=True)
+    if spec.get("config_patch"):
+        # Edit config.json the way older or hand-written checkpoints look; the reference then
+        # loads the edited file, so its semantics are what gets recorded.
+        cpath = mdir / "config.json"
+        c = json.loads(cpath.read_text())
+        for k, v in spec["config_patch"].items():
+            if v is None:
+                c.pop(k, None)
+            else:
+                c[k] = v
+        cpath.write_text(json.dumps(c, indent=2, sort_keys=True) + "\n")
 
 
 def load_base(mdir):
@@ -752,6 +810,7 @@ def write_expected(fam, spec, seed, res):
         questions=QUESTIONS,
         variants=["base"] + [a["name"] for a in spec["adapters"]],
         features=spec["features"],
+        feature_checks=feature_checks(fam, res["fdir"] / "model", res["cases"]),
         cases=res["cases"],
     )
     (res["fdir"] / "expected.json").write_text(dump_expected(doc))
@@ -818,6 +877,7 @@ def write_manifest():
             min_margin=doc["min_margin"],
             cases=len(doc["cases"]),
             features=spec["features"],
+            feature_checks=doc["feature_checks"],
         )
     man = dict(
         generator="tests/reference/make_runner_fixtures.py",

@@ -1,0 +1,400 @@
+//! The chat-template engine: minijinja set up to behave like transformers' Jinja2 environment.
+//!
+//! transformers renders with `ImmutableSandboxedEnvironment(trim_blocks=True,
+//! lstrip_blocks=True, extensions=[AssistantTracker, loopcontrols])` plus the globals
+//! `raise_exception`, `strftime_now`, `dict`, `namespace` and a `tojson` filter that is
+//! `json.dumps` (model-formats.md §4; `transformers/utils/chat_template_utils.py`). Where
+//! minijinja differs from Jinja2 this module bridges the gap:
+//!
+//! - **Line endings**: Jinja2 normalises `\r\n` and `\r` in the whole source to `\n` before
+//!   lexing; minijinja keeps them. The source is normalised here first.
+//! - **`{% generation %}`**: transformers' extension tag renders its body unchanged. minijinja
+//!   does not know it, so each tag is rewritten to `{% if true %}` / `{% endif %}` with its `-`
+//!   and `+` whitespace markers kept, which keeps trim/lstrip behaviour identical.
+//! - **Printing**: Jinja2 prints `str(x)` (`None`, `True`, `['a', 1]`, `1e+20`); minijinja prints
+//!   `none`, `true`, `["a", 1]`. A formatter and a `string` filter print Python's forms
+//!   ([`super::pyfmt`]). Known gap: the `~` operator still joins with minijinja's forms.
+//! - **Missing Jinja2 builtins**: the `center` filter and the `cycler`/`joiner` globals are added.
+//! - **Tuples**: minijinja has none, so `(1, 'x')`, `dictsort` and `.items()` pairs print as lists
+//!   (`[1, 'x']`) where Jinja2 prints `(1, 'x')`. Templates iterate such pairs rather than print
+//!   them, so this is left as a documented difference.
+//! - **Python methods** (`.strip()`, `.startswith()`, `.items()`, `.get()`, ...): minijinja-contrib
+//!   `pycompat` as the unknown-method callback.
+//! - **Undefined**: `UndefinedBehavior::Lenient`, which is Jinja2's default `Undefined`: printing
+//!   gives "", it is falsy and iterable as empty, and attribute access on it fails.
+//! - **Untrusted code**: no loader (no file or network access), a fuel budget so runaway loops
+//!   fail fast, the default recursion limit so deep recursion fails with an error rather than a
+//!   stack overflow. Jinja2's sandbox caps `range()` at 100 000 items; minijinja does the same.
+
+use super::pyfmt::{json_dumps, py_str, JsonOptions};
+use super::strftime::{strftime, DateTime};
+use minijinja::value::{Kwargs, Rest, Value, ValueKind};
+use minijinja::{Environment, Error as JinjaError, ErrorKind, UndefinedBehavior};
+use std::sync::OnceLock;
+
+/// Instruction budget for one render. Every reference template in
+/// tests/fixtures/templates/cases.json renders its longest conversation within 20 000; one
+/// million leaves a 50x margin for long system texts and is used up in well under a second.
+pub const FUEL: u64 = 1_000_000;
+
+/// minijinja's validated maximum (its default); a macro call costs several levels.
+pub const RECURSION_LIMIT: usize = 500;
+
+const TEMPLATE_NAME: &str = "chat_template";
+
+/// Marks an error raised by the template's own `raise_exception(msg)` call.
+#[derive(Debug)]
+pub struct RaisedByTemplate(pub String);
+
+impl std::fmt::Display for RaisedByTemplate {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(&self.0)
+    }
+}
+
+impl std::error::Error for RaisedByTemplate {}
+
+/// Why a render failed.
+#[derive(Debug)]
+pub enum RenderError {
+    /// The template called `raise_exception(message)`.
+    Raised(String),
+    /// The fuel budget ran out (a runaway loop).
+    OutOfFuel,
+    /// Any other syntax or runtime error, with its line in the template when known.
+    Other {
+        message: String,
+        line: Option<usize>,
+    },
+}
+
+impl std::fmt::Display for RenderError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            RenderError::Raised(m) => write!(f, "the chat template raised an exception: {m}"),
+            RenderError::OutOfFuel => write!(
+                f,
+                "the chat template ran too long (more than {FUEL} steps); it probably loops without end"
+            ),
+            RenderError::Other { message, line } => {
+                write!(f, "chat template error")?;
+                if let Some(line) = line {
+                    write!(f, " at template line {line}")?;
+                }
+                write!(f, ": {message}")
+            }
+        }
+    }
+}
+
+fn convert_error(err: &JinjaError) -> RenderError {
+    let mut source: Option<&(dyn std::error::Error + 'static)> = std::error::Error::source(err);
+    while let Some(s) = source {
+        if let Some(raised) = s.downcast_ref::<RaisedByTemplate>() {
+            return RenderError::Raised(raised.0.clone());
+        }
+        source = s.source();
+    }
+    if err.kind() == ErrorKind::OutOfFuel {
+        return RenderError::OutOfFuel;
+    }
+    let message = match err.detail() {
+        Some(detail) => format!("{}: {detail}", err.kind()),
+        None => err.kind().to_string(),
+    };
+    RenderError::Other {
+        message,
+        line: err.line(),
+    }
+}
+
+/// Rewrites Jinja2 source the way Jinja2's lexer and transformers' extension see it.
+pub fn preprocess(source: &str) -> String {
+    static GENERATION: OnceLock<regex::Regex> = OnceLock::new();
+    let re = GENERATION.get_or_init(|| {
+        regex::Regex::new(r"\{%([-+]?)\s*(end)?generation\s*([-+]?)%\}").expect("valid regex")
+    });
+    let normalised = source.replace("\r\n", "\n").replace('\r', "\n");
+    re.replace_all(&normalised, |caps: &regex::Captures| {
+        let open = &caps[1];
+        let close = &caps[3];
+        if caps.get(2).is_some() {
+            format!("{{%{open} endif {close}%}}")
+        } else {
+            format!("{{%{open} if true {close}%}}")
+        }
+    })
+    .into_owned()
+}
+
+/// A compiled chat template in a transformers-compatible environment.
+pub struct ChatTemplate {
+    env: Environment<'static>,
+}
+
+impl std::fmt::Debug for ChatTemplate {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("ChatTemplate").finish_non_exhaustive()
+    }
+}
+
+impl ChatTemplate {
+    /// Compiles `source`. Syntax errors are reported here.
+    pub fn compile(source: &str) -> Result<Self, RenderError> {
+        let mut env = Environment::new();
+        env.set_syntax(
+            minijinja::syntax::SyntaxConfig::builder()
+                .trim_blocks(true)
+                .lstrip_blocks(true)
+                .keep_trailing_newline(false)
+                .build()
+                .map_err(|e| convert_error(&e))?,
+        );
+        env.set_auto_escape_callback(|_| minijinja::AutoEscape::None);
+        env.set_undefined_behavior(UndefinedBehavior::Lenient);
+        env.set_fuel(Some(FUEL));
+        env.set_recursion_limit(RECURSION_LIMIT);
+        env.set_unknown_method_callback(minijinja_contrib::pycompat::unknown_method_callback);
+        env.set_formatter(|out, _state, value| {
+            if value.kind() != ValueKind::Undefined {
+                out.write_str(&py_str(value))
+                    .map_err(|_| JinjaError::new(ErrorKind::WriteFailure, "write failed"))?;
+            }
+            Ok(())
+        });
+        env.add_function("raise_exception", raise_exception);
+        env.add_function("strftime_now", strftime_now);
+        env.add_filter("tojson", tojson);
+        env.add_filter("string", |v: Value| py_str(&v));
+        env.add_filter("center", center);
+        // Jinja2's cycler takes the items as separate arguments.
+        env.add_function("cycler", |items: Rest<Value>| {
+            minijinja_contrib::globals::cycler(items.0)
+        });
+        env.add_function("joiner", minijinja_contrib::globals::joiner);
+        env.add_template_owned(TEMPLATE_NAME, preprocess(source))
+            .map_err(|e| convert_error(&e))?;
+        Ok(ChatTemplate { env })
+    }
+
+    /// Renders with the given context (a map of variables).
+    pub fn render(&self, ctx: Value) -> Result<String, RenderError> {
+        let tmpl = self
+            .env
+            .get_template(TEMPLATE_NAME)
+            .map_err(|e| convert_error(&e))?;
+        tmpl.render(ctx).map_err(|e| convert_error(&e))
+    }
+}
+
+/// Jinja2's `center(width=80)`, which is Python's `str.center` (CPython `pad`: the odd space goes
+/// left only when both the margin and the width are odd).
+fn center(value: Value, width: Option<usize>) -> String {
+    let s = py_str(&value);
+    let width = width.unwrap_or(80);
+    let len = s.chars().count();
+    if width <= len {
+        return s;
+    }
+    let marg = width - len;
+    let left = marg / 2 + (marg & width & 1);
+    format!("{}{s}{}", " ".repeat(left), " ".repeat(marg - left))
+}
+
+fn raise_exception(message: Value) -> Result<Value, JinjaError> {
+    let message = py_str(&message);
+    Err(
+        JinjaError::new(ErrorKind::InvalidOperation, message.clone())
+            .with_source(RaisedByTemplate(message)),
+    )
+}
+
+fn strftime_now(format: &str) -> Result<String, JinjaError> {
+    strftime(format, &DateTime::now_utc())
+        .map_err(|e| JinjaError::new(ErrorKind::InvalidOperation, e))
+}
+
+/// transformers' `tojson(x, ensure_ascii=False, indent=None, separators=None, sort_keys=False)`,
+/// with `ensure_ascii` and `indent` accepted positionally and every option by keyword.
+fn tojson(
+    value: Value,
+    ensure_ascii: Option<Value>,
+    indent: Option<Value>,
+    kwargs: Kwargs,
+) -> Result<Value, JinjaError> {
+    let pick = |pos: Option<Value>, name: &str| -> Result<Option<Value>, JinjaError> {
+        let kw: Option<Value> = kwargs.get(name)?;
+        Ok(kw.or(pos).filter(|v| !v.is_none() && !v.is_undefined()))
+    };
+    let ensure_ascii = pick(ensure_ascii, "ensure_ascii")?.is_some_and(|v| v.is_true());
+    let sort_keys = pick(None, "sort_keys")?.is_some_and(|v| v.is_true());
+    let indent = match pick(indent, "indent")? {
+        None => None,
+        Some(v) if v.kind() == ValueKind::String => {
+            Some(v.as_str().unwrap_or_default().to_string())
+        }
+        Some(v) => {
+            let n = v.as_i64().ok_or_else(|| {
+                JinjaError::new(
+                    ErrorKind::InvalidOperation,
+                    "tojson: indent must be an integer or a string",
+                )
+            })?;
+            Some(" ".repeat(n.max(0) as usize))
+        }
+    };
+    let separators = match pick(None, "separators")? {
+        None => None,
+        Some(v) => {
+            let parts: Vec<Value> = v.try_iter()?.collect();
+            match parts.as_slice() {
+                [a, b] => Some((py_str(a), py_str(b))),
+                _ => {
+                    return Err(JinjaError::new(
+                        ErrorKind::InvalidOperation,
+                        "tojson: separators must be a pair (item_separator, key_separator)",
+                    ))
+                }
+            }
+        }
+    };
+    kwargs.assert_all_used()?;
+    let opts = JsonOptions {
+        ensure_ascii,
+        indent,
+        separators,
+        sort_keys,
+    };
+    json_dumps(&value, &opts)
+        .map(Value::from)
+        .map_err(|e| JinjaError::new(ErrorKind::InvalidOperation, format!("tojson: {e}")))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::time::Instant;
+
+    fn render(src: &str, ctx: serde_json::Value) -> Result<String, RenderError> {
+        ChatTemplate::compile(src)?.render(Value::from(minijinja::value::Serde(ctx)))
+    }
+
+    // Jinja2 semantics (jinja2 3.1 docs: "Whitespace Control", keep_trailing_newline default False).
+    #[test]
+    fn trims_blocks_and_one_trailing_newline() {
+        let src = "{% for m in xs %}\n  {% if m %}\n[{{ m }}]\n  {% endif %}\n{% endfor %}\nend\n";
+        let got = render(src, serde_json::json!({"xs": ["a", "b"]})).unwrap();
+        assert_eq!(got, "[a]\n[b]\nend");
+        assert_eq!(render("A\n\n", serde_json::json!({})).unwrap(), "A\n");
+        assert_eq!(render("A\r\nB\r\n", serde_json::json!({})).unwrap(), "A\nB");
+    }
+
+    #[test]
+    fn prints_python_forms() {
+        let got = render(
+            "{{ n }}|{{ t }}|{{ xs }}|{{ u }}|{{ 1.0 }}|{{ xs|string }}",
+            serde_json::json!({"n": null, "t": true, "xs": ["a", 1]}),
+        )
+        .unwrap();
+        assert_eq!(got, "None|True|['a', 1]||1.0|['a', 1]");
+    }
+
+    #[test]
+    fn generation_tag_renders_its_body() {
+        let src = "{%- generation -%}\n  X  {%- endgeneration %}\nY";
+        assert_eq!(preprocess(src), "{%- if true -%}\n  X  {%- endif %}\nY");
+        assert_eq!(render(src, serde_json::json!({})).unwrap(), "XY");
+    }
+
+    #[test]
+    fn raise_exception_is_reported_with_its_message() {
+        let err = render(
+            "{% if true %}{{ raise_exception('System role not supported') }}{% endif %}",
+            serde_json::json!({}),
+        )
+        .unwrap_err();
+        match err {
+            RenderError::Raised(m) => assert_eq!(m, "System role not supported"),
+            other => panic!("expected Raised, got {other:?}"),
+        }
+    }
+
+    #[test]
+    fn runaway_loop_runs_out_of_fuel_fast() {
+        let start = Instant::now();
+        // Jinja2's sandbox and minijinja both refuse a range this large outright.
+        let err = render(
+            "{% for i in range(100000000) %}x{% endfor %}",
+            serde_json::json!({}),
+        )
+        .unwrap_err();
+        assert!(err.to_string().contains("range"), "{err}");
+        // Nested ranges under the cap: 10^10 iterations, stopped by the fuel budget.
+        let err = render(
+            "{% for i in range(100000) %}{% for j in range(100000) %}{% endfor %}{% endfor %}",
+            serde_json::json!({}),
+        )
+        .unwrap_err();
+        assert!(matches!(err, RenderError::OutOfFuel), "{err:?}");
+        assert!(start.elapsed().as_secs_f64() < 1.0, "{:?}", start.elapsed());
+    }
+
+    #[test]
+    fn deep_recursion_fails_cleanly() {
+        let start = Instant::now();
+        let err = render(
+            "{% macro f(n) %}{{ f(n + 1) }}{% endmacro %}{{ f(0) }}",
+            serde_json::json!({}),
+        )
+        .unwrap_err();
+        assert!(err.to_string().contains("recursion"), "{err}");
+        assert!(start.elapsed().as_secs_f64() < 1.0);
+    }
+
+    #[test]
+    fn tojson_options() {
+        let ctx = serde_json::json!({"d": {"b": "é", "a": [1, 2]}});
+        assert_eq!(
+            render("{{ d|tojson }}", ctx.clone()).unwrap(),
+            r#"{"b": "é", "a": [1, 2]}"#
+        );
+        assert_eq!(
+            render(
+                "{{ d|tojson(sort_keys=true, separators=(',', ':')) }}",
+                ctx.clone()
+            )
+            .unwrap(),
+            r#"{"a":[1,2],"b":"é"}"#
+        );
+        assert_eq!(
+            render("{{ d|tojson(indent=1) }}", ctx.clone()).unwrap(),
+            "{\n \"b\": \"é\",\n \"a\": [\n  1,\n  2\n ]\n}"
+        );
+        assert_eq!(
+            render("{{ d|tojson(ensure_ascii=true) }}", ctx).unwrap(),
+            r#"{"b": "\u00e9", "a": [1, 2]}"#
+        );
+    }
+
+    #[test]
+    fn undefined_is_lenient_like_jinja2() {
+        assert_eq!(
+            render(
+                "[{{ nope }}]{% if nope %}x{% endif %}{% for a in nope %}y{% endfor %}",
+                serde_json::json!({})
+            )
+            .unwrap(),
+            "[]"
+        );
+        assert!(render("{{ nope.attr }}", serde_json::json!({})).is_err());
+    }
+
+    #[test]
+    fn strftime_now_formats_current_year() {
+        let year = DateTime::now_utc().year.to_string();
+        assert_eq!(
+            render("{{ strftime_now('%Y') }}", serde_json::json!({})).unwrap(),
+            year
+        );
+    }
+}
