@@ -187,6 +187,13 @@ pub fn generate_batch(
     Ok(out)
 }
 
+/// Trims surrounding whitespace the way Python's `str.strip()` does (the reference answers
+/// are `decode(...).strip()`): Unicode White_Space plus the separators U+001C–U+001F, which
+/// Python counts as whitespace and Rust's `str::trim` does not.
+pub fn strip_like_python(s: &str) -> &str {
+    s.trim_matches(|c: char| c.is_whitespace() || ('\u{1c}'..='\u{1f}').contains(&c))
+}
+
 /// What produced an answers file: written as `<out>.run.json` (interface.md, "Answers file").
 /// Fingerprints are SHA-256 hex of file contents, so a changed file shows up even under the
 /// same path.
@@ -260,6 +267,13 @@ pub struct QuestionsInfo {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn strip_matches_python_str_strip() {
+        // Python 3: " \x1c a \x1f\u3000".strip() == "a" (str.isspace is true for \x1c-\x1f).
+        assert_eq!(strip_like_python(" \u{1c} a \u{1f}\u{3000}"), "a");
+        assert_eq!(strip_like_python("\u{1b}a"), "\u{1b}a");
+    }
 
     #[test]
     fn argmax_ties_go_to_the_lowest_index() {

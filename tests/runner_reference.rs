@@ -10,9 +10,12 @@
 //! Checked per case: token-identical greedy output ids (prompt ids taken from the fixture,
 //! i.e. `apply_chat_template(tokenize=True)`), the finish reason, and the first-step logits
 //! within 1e-4; then the same cases decoded together in one left-padded batch must give the
-//! same ids as batch 1.
+//! same ids as batch 1. A second test checks the prompt side the answer command uses: the
+//! rendered template text and its ids, the decoded answer text, and the template errors
+//! (a system role the template rejects with `raise_exception`).
 
 use liftgate::answers::Finish;
+use liftgate::chat::ChatTokenizer;
 use liftgate::generate::{generate_batch, prefill_input, Decoding, GenerationSettings};
 use liftgate::model;
 use serde_json::Value;
@@ -92,14 +95,21 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
             logits: floats(&c["first_step_logits"]),
         })
         .collect();
-    assert!(!cases.is_empty(), "{}: no cases for {variant}", family.display());
+    assert!(
+        !cases.is_empty(),
+        "{}: no cases for {variant}",
+        family.display()
+    );
     let pad = loaded.generation.pad.unwrap_or(0);
     let mut worst = 0f32;
     for case in &cases {
         let mut cache = loaded.decoder.new_cache();
         let logits: Vec<f32> = loaded
             .decoder
-            .forward(&prefill_input(std::slice::from_ref(&case.prompt), pad), &mut cache)
+            .forward(
+                &prefill_input(std::slice::from_ref(&case.prompt), pad),
+                &mut cache,
+            )
             .unwrap()
             .flatten_all()
             .unwrap()
@@ -146,13 +156,26 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
     let prompts: Vec<Vec<u32>> = cases.iter().map(|c| c.prompt.clone()).collect();
     let batched = generate_batch(&loaded.decoder, &prompts, &settings, &mut |_| {}).unwrap();
     for (case, b) in cases.iter().zip(&batched) {
-        let alone =
-            generate_batch(&loaded.decoder, std::slice::from_ref(&case.prompt), &settings, &mut |_| {})
-                .unwrap();
-        assert_eq!(b.tokens, alone[0].tokens, "{}: batched vs batch 1", case.label);
+        let alone = generate_batch(
+            &loaded.decoder,
+            std::slice::from_ref(&case.prompt),
+            &settings,
+            &mut |_| {},
+        )
+        .unwrap();
+        assert_eq!(
+            b.tokens, alone[0].tokens,
+            "{}: batched vs batch 1",
+            case.label
+        );
         // The reference prefix (its own max_new_tokens) must match too.
         let n = case.output.len().min(b.tokens.len());
-        assert_eq!(&b.tokens[..n], &case.output[..n], "{}: batched vs reference", case.label);
+        assert_eq!(
+            &b.tokens[..n],
+            &case.output[..n],
+            "{}: batched vs reference",
+            case.label
+        );
     }
     worst
 }
@@ -179,4 +202,62 @@ fn greedy_outputs_match_the_reference_for_every_family_and_variant() {
         }
     }
     eprintln!("{}", report.join("\n"));
+}
+
+#[test]
+fn prompts_answers_and_template_errors_match_the_reference() {
+    for family in families() {
+        let name = family.file_name().unwrap().to_string_lossy().to_string();
+        let expected: Value =
+            serde_json::from_str(&std::fs::read_to_string(family.join("expected.json")).unwrap())
+                .unwrap();
+        let chat = ChatTokenizer::load(&family.join("model")).unwrap();
+        let loaded_eos = liftgate::model::config::GenerationDefaults::load(
+            &family.join("model"),
+            &liftgate::model::config::ModelSpec::load(&family.join("model")).unwrap(),
+        )
+        .unwrap()
+        .eos;
+        let system_text = expected["system_text"].as_str().unwrap();
+        let questions = expected["questions"].as_array().unwrap();
+        for c in expected["cases"].as_array().unwrap() {
+            let label = format!(
+                "{name} {} system={} q{}",
+                c["variant"], c["system"], c["question_index"]
+            );
+            let q = questions[c["question_index"].as_u64().unwrap() as usize]
+                .as_str()
+                .unwrap();
+            let system = c["system"].as_bool().unwrap().then_some(system_text);
+            if c.get("error").is_some_and(|e| !e.is_null()) {
+                let err = chat
+                    .encode_prompt(system, q)
+                    .expect_err(&format!("{label}: the template should refuse"));
+                assert_eq!(err.exit_code(), 2, "{label}: {err}");
+                continue;
+            }
+            let rendered = chat.render_prompt(system, q).unwrap();
+            assert_eq!(
+                rendered,
+                c["rendered"].as_str().unwrap(),
+                "{label}: rendered"
+            );
+            assert_eq!(
+                chat.encode_prompt(system, q).unwrap(),
+                ids(&c["prompt_ids"]),
+                "{label}: prompt ids"
+            );
+            let mut out = ids(&c["output_ids"]);
+            if c["finish"] == "eos" {
+                let last = out.pop().unwrap();
+                assert!(loaded_eos.contains(&last), "{label}: eos id {last}");
+            }
+            let text = chat.decode(&out).unwrap();
+            assert_eq!(
+                liftgate::generate::strip_like_python(&text),
+                c["answer"].as_str().unwrap(),
+                "{label}: answer"
+            );
+        }
+    }
 }

@@ -190,7 +190,9 @@ impl ModelSpec {
         let text = std::fs::read_to_string(&path).map_err(|e| {
             Error::file(
                 &path,
-                format!("cannot read the model config ({e}); is this a Hugging Face model directory?"),
+                format!(
+                    "cannot read the model config ({e}); is this a Hugging Face model directory?"
+                ),
             )
         })?;
         let value: Value = serde_json::from_str(&text)
@@ -292,7 +294,12 @@ impl ModelSpec {
             Family::Gemma2 => {
                 let q = c.opt_f64("query_pre_attn_scalar")?.unwrap_or(256.0);
                 if q <= 0.0 {
-                    return Err(Error::field(path, None, "query_pre_attn_scalar", "must be positive"));
+                    return Err(Error::field(
+                        path,
+                        None,
+                        "query_pre_attn_scalar",
+                        "must be positive",
+                    ));
                 }
                 q.powf(-0.5)
             }
@@ -360,7 +367,10 @@ impl ModelSpec {
             self.intermediate_size,
         );
         let mut out = vec![
-            ("model.embed_tokens.weight".to_string(), vec![self.vocab_size, h]),
+            (
+                "model.embed_tokens.weight".to_string(),
+                vec![self.vocab_size, h],
+            ),
             ("model.norm.weight".to_string(), vec![h]),
         ];
         for l in 0..self.num_layers {
@@ -464,7 +474,12 @@ fn detect_family(c: &Cfg) -> Result<Family> {
             .map(|v| v.as_str().map(str::to_string))
             .collect::<Option<Vec<_>>>()
             .ok_or_else(|| {
-                Error::field(c.path, None, "architectures", "expected an array of strings")
+                Error::field(
+                    c.path,
+                    None,
+                    "architectures",
+                    "expected an array of strings",
+                )
             })?,
         Some(other) => {
             return Err(Error::field(
@@ -623,7 +638,10 @@ fn rope_spec(c: &Cfg, family: Family, head_dim: usize) -> Result<RopeSpec> {
         obj: dict,
     };
     let field = |k: &str| format!("{dict_key}.{k}");
-    let theta = match d.opt_f64("rope_theta").map_err(|_| rope_err(c, &field("rope_theta")))? {
+    let theta = match d
+        .opt_f64("rope_theta")
+        .map_err(|_| rope_err(c, &field("rope_theta")))?
+    {
         Some(t) => t,
         None => c.opt_f64("rope_theta")?.unwrap_or(10000.0),
     };
@@ -648,13 +666,15 @@ fn rope_spec(c: &Cfg, family: Family, head_dim: usize) -> Result<RopeSpec> {
             format!("gives an odd or zero rotary dimension {rotary_dim} for head_dim {head_dim}"),
         ));
     }
-    let max_pos = c.opt_usize("max_position_embeddings")?.unwrap_or(match family {
-        Family::Phi3 => 4096,
-        Family::Gemma | Family::Gemma2 => 8192,
-        Family::Mistral => 4096 * 32,
-        Family::Qwen2 | Family::Qwen3 => 32768,
-        Family::Llama => 2048,
-    });
+    let max_pos = c
+        .opt_usize("max_position_embeddings")?
+        .unwrap_or(match family {
+            Family::Phi3 => 4096,
+            Family::Gemma | Family::Gemma2 => 8192,
+            Family::Mistral => 4096 * 32,
+            Family::Qwen2 | Family::Qwen3 => 32768,
+            Family::Llama => 2048,
+        });
     let mut rope_type = d
         .opt_str("rope_type")?
         .or(d.opt_str("type")?)
@@ -852,7 +872,11 @@ impl Cfg<'_> {
 
     /// An int or a list of ints (eos/pad ids); null or absent → empty.
     fn token_ids(&self, key: &str) -> Result<Vec<u32>> {
-        let as_id = |v: &Value| v.as_u64().filter(|&n| n <= u32::MAX as u64).map(|n| n as u32);
+        let as_id = |v: &Value| {
+            v.as_u64()
+                .filter(|&n| n <= u32::MAX as u64)
+                .map(|n| n as u32)
+        };
         match self.obj.get(key) {
             None | Some(Value::Null) => Ok(Vec::new()),
             Some(Value::Array(items)) => items
@@ -913,13 +937,20 @@ mod tests {
     #[test]
     fn sliding_window_rules() {
         // Mistral: absent key → 4096 on every layer; explicit null → full attention.
-        assert_eq!(spec(base("mistral")).unwrap().layer_windows, vec![Some(4096); 4]);
+        assert_eq!(
+            spec(base("mistral")).unwrap().layer_windows,
+            vec![Some(4096); 4]
+        );
         let v = with(base("mistral"), "sliding_window", Value::Null);
         assert_eq!(spec(v).unwrap().layer_windows, vec![None; 4]);
         // Qwen2: ignored unless use_sliding_window; then layers >= max_window_layers slide.
         let v = with(base("qwen2"), "sliding_window", json!(8));
         assert_eq!(spec(v.clone()).unwrap().layer_windows, vec![None; 4]);
-        let v = with(with(v, "use_sliding_window", json!(true)), "max_window_layers", json!(2));
+        let v = with(
+            with(v, "use_sliding_window", json!(true)),
+            "max_window_layers",
+            json!(2),
+        );
         assert_eq!(
             spec(v.clone()).unwrap().layer_windows,
             vec![None, None, Some(8), Some(8)]
@@ -927,9 +958,17 @@ mod tests {
         let v = with(
             v,
             "layer_types",
-            json!(["sliding_attention", "full_attention", "full_attention", "full_attention"]),
+            json!([
+                "sliding_attention",
+                "full_attention",
+                "full_attention",
+                "full_attention"
+            ]),
         );
-        assert_eq!(spec(v).unwrap().layer_windows, vec![Some(8), None, None, None]);
+        assert_eq!(
+            spec(v).unwrap().layer_windows,
+            vec![Some(8), None, None, None]
+        );
         // Gemma2: sliding on even layers by default.
         let v = with(base("gemma2"), "sliding_window", json!(5));
         assert_eq!(
@@ -987,7 +1026,11 @@ mod tests {
     fn unsupported_architecture_lists_supported() {
         let err = spec(base("gpt2")).unwrap_err().to_string();
         assert!(err.contains("model_type") && err.contains("qwen3"), "{err}");
-        let v = with(base("llama"), "architectures", json!(["LlamaForSequenceClassification"]));
+        let v = with(
+            base("llama"),
+            "architectures",
+            json!(["LlamaForSequenceClassification"]),
+        );
         let err = spec(v).unwrap_err().to_string();
         assert!(err.contains("LlamaForCausalLM"), "{err}");
         let mut v = base("llama");
@@ -1016,10 +1059,21 @@ mod tests {
         let s = spec(with(base("llama"), "eos_token_id", json!([2, 3]))).unwrap();
         let g = GenerationDefaults::load(dir.path(), &s).unwrap();
         assert_eq!(g.eos, vec![2, 3]);
-        std::fs::write(dir.path().join("generation_config.json"), "{\"bos_token_id\": 1}").unwrap();
+        std::fs::write(
+            dir.path().join("generation_config.json"),
+            "{\"bos_token_id\": 1}",
+        )
+        .unwrap();
         let g = GenerationDefaults::load(dir.path(), &s).unwrap();
         assert!(g.eos.is_empty());
-        std::fs::write(dir.path().join("generation_config.json"), "{\"eos_token_id\": 7}").unwrap();
-        assert_eq!(GenerationDefaults::load(dir.path(), &s).unwrap().eos, vec![7]);
+        std::fs::write(
+            dir.path().join("generation_config.json"),
+            "{\"eos_token_id\": 7}",
+        )
+        .unwrap();
+        assert_eq!(
+            GenerationDefaults::load(dir.path(), &s).unwrap().eos,
+            vec![7]
+        );
     }
 }

@@ -109,13 +109,20 @@ impl RmsNorm {
 }
 
 enum Qkv {
-    Separate { q: Linear, k: Linear, v: Linear },
+    Separate {
+        q: Linear,
+        k: Linear,
+        v: Linear,
+    },
     /// Phi-3 `qkv_proj`: rows [q | k | v].
     Fused(Linear),
 }
 
 enum GateUp {
-    Separate { gate: Linear, up: Linear },
+    Separate {
+        gate: Linear,
+        up: Linear,
+    },
     /// Phi-3 `gate_up_proj`: rows [gate | up].
     Fused(Linear),
 }
@@ -170,10 +177,17 @@ impl Decoder {
         for l in 0..spec.num_layers {
             let p = format!("model.layers.{l}.");
             let mut t = |n: &str| take(&format!("{p}{n}"));
-            let lin = |t: &mut dyn FnMut(&str) -> Result<Tensor>, n: &str, bias: bool| -> Result<Linear> {
+            let lin = |t: &mut dyn FnMut(&str) -> Result<Tensor>,
+                       n: &str,
+                       bias: bool|
+             -> Result<Linear> {
                 Ok(Linear {
                     w: t(&format!("{n}.weight"))?,
-                    b: if bias { Some(t(&format!("{n}.bias"))?) } else { None },
+                    b: if bias {
+                        Some(t(&format!("{n}.bias"))?)
+                    } else {
+                        None
+                    },
                 })
             };
             let qkv = if spec.fused_qkv {
@@ -282,7 +296,10 @@ impl Decoder {
         }
         cache.advance(l);
         let hidden = self.spec.hidden_size;
-        let last = h.reshape((b, l, hidden))?.narrow(1, l - 1, 1)?.reshape((b, hidden))?;
+        let last = h
+            .reshape((b, l, hidden))?
+            .narrow(1, l - 1, 1)?
+            .reshape((b, hidden))?;
         let x = self.final_norm.forward(&last)?;
         let mut logits = x.matmul(&self.lm_head.t()?)?;
         if let Some(c) = self.spec.final_softcap {
@@ -482,14 +499,13 @@ pub fn rope_frequencies(r: &RopeSpec, seq_len: f64) -> (Vec<f32>, f32) {
     let max_pos = r.max_position_embeddings as f64;
     match &r.scaling {
         RopeScaling::Default => (base.clone(), 1.0),
-        RopeScaling::Linear { factor } => {
-            (base.iter().map(|&b| b / *factor as f32).collect(), 1.0)
-        }
+        RopeScaling::Linear { factor } => (base.iter().map(|&b| b / *factor as f32).collect(), 1.0),
         RopeScaling::Dynamic { factor } => {
             if seq_len <= max_pos {
                 return (base.clone(), 1.0);
             }
-            let theta = r.theta * ((factor * seq_len / max_pos) - (factor - 1.0)).powf(d / (d - 2.0));
+            let theta =
+                r.theta * ((factor * seq_len / max_pos) - (factor - 1.0)).powf(d / (d - 2.0));
             let theta = theta as f32;
             (
                 (0..r.rotary_dim / 2)
@@ -555,7 +571,8 @@ pub fn rope_frequencies(r: &RopeSpec, seq_len: f64) -> (Vec<f32>, f32) {
                     let pos = theta.powf((2 * i) as f32 / d as f32);
                     let extra = 1.0 / pos;
                     let inter = 1.0 / (f * pos);
-                    let ramp = ((i as f32 - low as f32) / (high as f32 - low as f32)).clamp(0.0, 1.0);
+                    let ramp =
+                        ((i as f32 - low as f32) / (high as f32 - low as f32)).clamp(0.0, 1.0);
                     let e = 1.0 - ramp;
                     inter * (1.0 - e) + extra * e
                 })
@@ -646,7 +663,10 @@ mod tests {
                 );
             }
             let ws = c["attention_scaling"].as_f64().unwrap() as f32;
-            assert!((scale - ws).abs() <= 1e-6, "{label}: scaling {scale} vs {ws}");
+            assert!(
+                (scale - ws).abs() <= 1e-6,
+                "{label}: scaling {scale} vs {ws}"
+            );
         }
     }
 
@@ -664,6 +684,8 @@ mod tests {
         let step = vis(additive_mask(&[1, 0, 1, 1], 1, 1, 3, None));
         assert_eq!(step, vec![1, 0, 1, 1]);
         // Pad query rows stay finite (no −inf), so softmax over them is not NaN.
-        assert!(additive_mask(&[0, 1], 1, 2, 0, None).iter().all(|x| x.is_finite()));
+        assert!(additive_mask(&[0, 1], 1, 2, 0, None)
+            .iter()
+            .all(|x| x.is_finite()));
     }
 }

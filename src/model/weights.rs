@@ -40,12 +40,22 @@ pub fn safetensors_files(dir: &Path) -> Result<Vec<PathBuf>> {
             .get("weight_map")
             .and_then(|m| m.as_object())
             .ok_or_else(|| {
-                Error::field(&index, None, "weight_map", "expected an object of tensor → file")
+                Error::field(
+                    &index,
+                    None,
+                    "weight_map",
+                    "expected an object of tensor → file",
+                )
             })?;
         let mut files: Vec<String> = Vec::new();
         for (name, file) in map {
             let file = file.as_str().ok_or_else(|| {
-                Error::field(&index, None, format!("weight_map.{name}"), "expected a file name")
+                Error::field(
+                    &index,
+                    None,
+                    format!("weight_map.{name}"),
+                    "expected a file name",
+                )
             })?;
             if file.contains('/') || file.contains('\\') || file.contains("..") {
                 return Err(Error::field(
@@ -120,10 +130,7 @@ fn mmap_file(file: &Path) -> Result<MmapedSafetensors> {
 /// Loads and validates every tensor the spec expects, up-cast to f32.
 pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
     let files = safetensors_files(dir)?;
-    let maps: Vec<MmapedSafetensors> = files
-        .iter()
-        .map(|f| mmap_file(f))
-        .collect::<Result<_>>()?;
+    let maps: Vec<MmapedSafetensors> = files.iter().map(|f| mmap_file(f)).collect::<Result<_>>()?;
     // Which file holds each tensor (the last one wins, as in an index).
     let mut owner: HashMap<String, usize> = HashMap::new();
     for (i, m) in maps.iter().enumerate() {
@@ -214,7 +221,12 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
             .load(&Device::Cpu)
             .and_then(|t| t.to_dtype(DType::F32))
             .map_err(|e| {
-                Error::field(file_of(name), None, name.as_str(), format!("cannot read: {e}"))
+                Error::field(
+                    file_of(name),
+                    None,
+                    name.as_str(),
+                    format!("cannot read: {e}"),
+                )
             })?;
         tensors.insert(name.clone(), t);
     }
