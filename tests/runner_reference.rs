@@ -261,3 +261,86 @@ fn prompts_answers_and_template_errors_match_the_reference() {
         }
     }
 }
+
+/// Logits at every position of `ids`, one token per forward call through the KV cache.
+fn logits_at_every_position(decoder: &liftgate::model::decoder::Decoder, ids: &[u32]) -> Vec<f32> {
+    let mut cache = decoder.new_cache();
+    let mut out = Vec::new();
+    for (i, &t) in ids.iter().enumerate() {
+        let input = liftgate::model::decoder::StepInput {
+            batch: 1,
+            len: 1,
+            tokens: vec![t],
+            positions: vec![i as u32],
+            key_mask: vec![1; i + 1],
+        };
+        let l: Vec<f32> = decoder
+            .forward(&input, &mut cache)
+            .unwrap()
+            .flatten_all()
+            .unwrap()
+            .to_vec1()
+            .unwrap();
+        out.extend(l);
+    }
+    out
+}
+
+/// The fixtures' `feature_checks`: transformers 5.24.0 logits over the first base case's
+/// prompt + output with a config override that switches a feature off (sliding window, RoPE
+/// scaling, soft-caps, query_pre_attn_scalar, partial rotary), against the unchanged config;
+/// `max_abs_logit_diff` is how far the reference moved. The same override written into
+/// config.json must move liftgate's logits by the same amount (within 1e-3), so each config
+/// key is read with transformers' semantics rather than merely parsed.
+#[test]
+fn config_feature_overrides_move_the_logits_like_the_reference() {
+    let mut checked = 0;
+    for family in families() {
+        let expected: Value =
+            serde_json::from_str(&std::fs::read_to_string(family.join("expected.json")).unwrap())
+                .unwrap();
+        let Some(checks) = expected.get("feature_checks").and_then(Value::as_array) else {
+            continue;
+        };
+        let case = expected["cases"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|c| c["variant"] == "base" && c.get("prompt_ids").is_some())
+            .unwrap();
+        let mut seq = ids(&case["prompt_ids"]);
+        seq.extend(ids(&case["output_ids"]));
+        let model_dir = family.join("model");
+        let reference =
+            logits_at_every_position(&model::load(&model_dir, None).unwrap().decoder, &seq);
+        for check in checks {
+            let dir = tempfile::tempdir().unwrap();
+            for e in std::fs::read_dir(&model_dir).unwrap().flatten() {
+                std::fs::copy(e.path(), dir.path().join(e.file_name())).unwrap();
+            }
+            let cfg_path = dir.path().join("config.json");
+            let mut cfg: Value =
+                serde_json::from_str(&std::fs::read_to_string(&cfg_path).unwrap()).unwrap();
+            for (k, v) in check["override"].as_object().unwrap() {
+                cfg[k] = v.clone();
+            }
+            std::fs::write(&cfg_path, cfg.to_string()).unwrap();
+            let changed =
+                logits_at_every_position(&model::load(dir.path(), None).unwrap().decoder, &seq);
+            let diff = changed
+                .iter()
+                .zip(&reference)
+                .map(|(a, b)| (a - b).abs())
+                .fold(0f32, f32::max);
+            let want = check["max_abs_logit_diff"].as_f64().unwrap() as f32;
+            assert!(
+                (diff - want).abs() <= 1e-3,
+                "{} override {}: logits moved by {diff}, transformers by {want}",
+                family.display(),
+                check["override"]
+            );
+            checked += 1;
+        }
+    }
+    assert!(checked > 0, "no feature checks in the fixtures");
+}

@@ -244,3 +244,93 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
         tied,
     })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn llama_fixture() -> PathBuf {
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/runner/llama/model")
+    }
+
+    /// A checkpoint re-saved as two shards with a `model.safetensors.index.json` (the layout
+    /// transformers writes, model-formats.md §1.1) and in f16 loads to the same tensors.
+    #[test]
+    fn sharded_and_f16_checkpoints_load_to_the_same_tensors() {
+        let src = llama_fixture();
+        let spec = ModelSpec::load(&src).unwrap();
+        let single = load(&src, &spec).unwrap();
+        let dir = tempfile::tempdir().unwrap();
+        std::fs::copy(src.join("config.json"), dir.path().join("config.json")).unwrap();
+        let mut names: Vec<&String> = single.tensors.keys().collect();
+        names.sort();
+        let (a, b) = names.split_at(names.len() / 2);
+        let mut weight_map = serde_json::Map::new();
+        for (shard, part) in [
+            ("model-00001-of-00002.safetensors", a),
+            ("model-00002-of-00002.safetensors", b),
+        ] {
+            let m: HashMap<String, Tensor> = part
+                .iter()
+                .map(|n| {
+                    (
+                        (*n).clone(),
+                        single.tensors[*n].to_dtype(DType::F16).unwrap(),
+                    )
+                })
+                .collect();
+            candle_core::safetensors::save(&m, dir.path().join(shard)).unwrap();
+            for n in part {
+                weight_map.insert((*n).clone(), shard.into());
+            }
+        }
+        let index = serde_json::json!({"metadata": {"total_size": 0}, "weight_map": weight_map});
+        std::fs::write(
+            dir.path().join("model.safetensors.index.json"),
+            index.to_string(),
+        )
+        .unwrap();
+        let sharded = load(dir.path(), &spec).unwrap();
+        assert_eq!(sharded.files.len(), 2);
+        assert_eq!(sharded.stored_dtype, "f16");
+        for (name, t) in &single.tensors {
+            let want: Vec<f32> = t
+                .to_dtype(DType::F16)
+                .unwrap()
+                .to_dtype(DType::F32)
+                .unwrap()
+                .flatten_all()
+                .unwrap()
+                .to_vec1()
+                .unwrap();
+            let got: Vec<f32> = sharded.tensors[name]
+                .flatten_all()
+                .unwrap()
+                .to_vec1()
+                .unwrap();
+            assert_eq!(got, want, "{name}");
+        }
+        // A shard the index names but that is missing is an error naming the index.
+        std::fs::remove_file(dir.path().join("model-00002-of-00002.safetensors")).unwrap();
+        let err = load(dir.path(), &spec).err().unwrap().to_string();
+        assert!(
+            err.contains("model.safetensors.index.json") && err.contains("00002"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn untied_checkpoint_without_lm_head_is_an_error() {
+        let src = llama_fixture();
+        let spec = ModelSpec::load(&src).unwrap();
+        let mut w = load(&src, &spec).unwrap().tensors;
+        w.remove(LM_HEAD);
+        let dir = tempfile::tempdir().unwrap();
+        candle_core::safetensors::save(&w, dir.path().join("model.safetensors")).unwrap();
+        let err = load(dir.path(), &spec).err().unwrap().to_string();
+        assert!(
+            err.contains("lm_head.weight") && err.contains("tie_word_embeddings"),
+            "{err}"
+        );
+    }
+}
