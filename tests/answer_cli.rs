@@ -272,3 +272,30 @@ fn missing_paths_are_usage_errors() {
     assert!(String::from_utf8_lossy(&o.stderr).contains("nope"));
     assert!(!out.exists());
 }
+
+/// The gemma fixture's template rejects a system message with `raise_exception` (as the
+/// reference transformers 5.24.0 `apply_chat_template` does, recorded as error cases in
+/// expected.json): exit 2 with the template's message, nothing written.
+#[test]
+fn system_message_rejected_by_the_template_is_exit_2() {
+    let dir = tempfile::tempdir().unwrap();
+    let q = dir.path().join("set.jsonl");
+    write_questions(&q, &[(0, "Can I take my bicycle on the boat?")]);
+    let out = dir.path().join("answers.jsonl");
+    let model = fixture("gemma").join("model");
+    let o = liftgate(&[
+        "answer",
+        "--model",
+        model.to_str().unwrap(),
+        "--questions",
+        q.to_str().unwrap(),
+        "--out",
+        out.to_str().unwrap(),
+        "--system",
+        "Be brief.",
+    ]);
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{err}");
+    assert!(err.contains("no system role"), "{err}");
+    assert!(!out.exists());
+}
