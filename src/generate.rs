@@ -38,6 +38,9 @@ pub struct GenerationSettings {
     pub ignore_eos: bool,
     /// Token fed to finished rows and used for left padding (never attended to).
     pub pad: u32,
+    /// transformers' RepetitionPenaltyLogitsProcessor: every id already in the row (prompt and
+    /// generated) has its score s replaced by s·p if s < 0, else s/p. None: off.
+    pub repetition_penalty: Option<f32>,
 }
 
 /// One generated answer.
@@ -70,6 +73,15 @@ pub fn argmax(xs: &[f32]) -> usize {
         }
     }
     best
+}
+
+/// s·p for negative scores, s/p otherwise, on every id marked in `seen`.
+pub fn apply_repetition_penalty(scores: &mut [f32], seen: &[bool], p: f32) {
+    for (s, &hit) in scores.iter_mut().zip(seen) {
+        if hit {
+            *s = if *s < 0.0 { *s * p } else { *s / p };
+        }
+    }
 }
 
 /// The left-padded prefill input for `prompts`.
@@ -131,9 +143,25 @@ pub fn generate_batch(
     let mut next_pos: Vec<u32> = prompts.iter().map(|p| p.len() as u32).collect();
     let mut done = vec![false; b];
     let vocab = decoder.spec().vocab_size;
+    // Per row: which ids the sequence holds so far (only kept when a penalty is set).
+    let mut seen: Vec<Vec<bool>> = match settings.repetition_penalty {
+        Some(_) => prompts
+            .iter()
+            .map(|p| {
+                let mut s = vec![false; vocab];
+                for &t in p {
+                    if let Some(x) = s.get_mut(t as usize) {
+                        *x = true;
+                    }
+                }
+                s
+            })
+            .collect(),
+        None => Vec::new(),
+    };
     loop {
         let logits = decoder.forward(&input, &mut cache)?;
-        let logits: Vec<f32> = logits.flatten_all()?.to_vec1()?;
+        let mut logits: Vec<f32> = logits.flatten_all()?.to_vec1()?;
         let mut produced = 0;
         let mut step_tokens = Vec::with_capacity(b);
         for row in 0..b {
@@ -141,9 +169,16 @@ pub fn generate_batch(
                 step_tokens.push(settings.pad);
                 continue;
             }
+            let scores = &mut logits[row * vocab..(row + 1) * vocab];
+            if let Some(p) = settings.repetition_penalty {
+                apply_repetition_penalty(scores, &seen[row], p);
+            }
             let tok = match settings.decoding {
-                Decoding::Greedy => argmax(&logits[row * vocab..(row + 1) * vocab]) as u32,
+                Decoding::Greedy => argmax(scores) as u32,
             };
+            if let Some(x) = seen.get_mut(row).and_then(|s| s.get_mut(tok as usize)) {
+                *x = true;
+            }
             produced += 1;
             let g = &mut out[row];
             g.tokens.push(tok);
@@ -253,6 +288,10 @@ pub struct GenerationInfo {
     /// "generation_config.json" or "config.json".
     pub eos_source: String,
     pub system: Option<String>,
+    /// From generation_config.json; null when none.
+    pub repetition_penalty: Option<f64>,
+    /// generation_config.json logits-processor keys that were not applied.
+    pub ignored_generation_config_keys: Vec<String>,
     pub batch: usize,
     pub threads: usize,
 }

@@ -133,6 +133,7 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
             eos: loaded.generation.eos.clone(),
             ignore_eos: false,
             pad,
+            repetition_penalty: None,
         };
         let got = generate_batch(
             &loaded.decoder,
@@ -152,6 +153,7 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
         eos: loaded.generation.eos.clone(),
         ignore_eos: false,
         pad,
+        repetition_penalty: None,
     };
     let prompts: Vec<Vec<u32>> = cases.iter().map(|c| c.prompt.clone()).collect();
     let batched = generate_batch(&loaded.decoder, &prompts, &settings, &mut |_| {}).unwrap();
@@ -343,4 +345,39 @@ fn config_feature_overrides_move_the_logits_like_the_reference() {
         }
     }
     assert!(checked > 0, "no feature checks in the fixtures");
+}
+
+/// transformers 5.24.0 `generate(do_sample=False, repetition_penalty=1.3)` on the llama fixture
+/// (tests/fixtures/generation/repetition_penalty.json, made by
+/// tests/reference/make_generation_fixtures.py; every step's processed top-1/top-2 gap ≥ 1e-3).
+#[test]
+fn repetition_penalty_matches_the_reference() {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("tests/fixtures/generation/repetition_penalty.json");
+    let doc: Value = serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap();
+    let loaded = model::load(&fixtures_root().join("llama/model"), None).unwrap();
+    let settings = GenerationSettings {
+        decoding: Decoding::Greedy,
+        max_new_tokens: doc["max_new_tokens"].as_u64().unwrap() as usize,
+        eos: loaded.generation.eos.clone(),
+        ignore_eos: false,
+        pad: 0,
+        repetition_penalty: Some(doc["repetition_penalty"].as_f64().unwrap() as f32),
+    };
+    let cases = doc["cases"].as_array().unwrap();
+    let prompts: Vec<Vec<u32>> = cases.iter().map(|c| ids(&c["prompt_ids"])).collect();
+    for (c, p) in cases.iter().zip(&prompts) {
+        let got = generate_batch(
+            &loaded.decoder,
+            std::slice::from_ref(p),
+            &settings,
+            &mut |_| {},
+        )
+        .unwrap();
+        assert_eq!(got[0].tokens, ids(&c["output_ids"]));
+    }
+    let batched = generate_batch(&loaded.decoder, &prompts, &settings, &mut |_| {}).unwrap();
+    for (c, g) in cases.iter().zip(&batched) {
+        assert_eq!(g.tokens, ids(&c["output_ids"]), "batched");
+    }
 }

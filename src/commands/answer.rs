@@ -194,6 +194,13 @@ pub fn answer_set(settings: &AnswerSettings, set: &QuestionSet) -> Result<Answer
             ),
         ));
     }
+    if !loaded.generation.unsupported_keys.is_empty() {
+        eprintln!(
+            "liftgate: warning: {} sets {} which transformers applies even under greedy decoding; liftgate ignores them, so answers may differ from the reference library",
+            settings.model.join("generation_config.json").display(),
+            loaded.generation.unsupported_keys.join(", ")
+        );
+    }
     let pad = loaded
         .generation
         .pad
@@ -206,6 +213,7 @@ pub fn answer_set(settings: &AnswerSettings, set: &QuestionSet) -> Result<Answer
         eos: loaded.generation.eos.clone(),
         ignore_eos: settings.ignore_eos,
         pad,
+        repetition_penalty: loaded.generation.repetition_penalty.map(|p| p as f32),
     };
 
     // Batches of similar prompt lengths waste less on padding; output does not depend on it.
@@ -280,6 +288,8 @@ pub fn answer_set(settings: &AnswerSettings, set: &QuestionSet) -> Result<Answer
                 "config.json".to_string()
             },
             system: settings.system.clone(),
+            repetition_penalty: loaded.generation.repetition_penalty,
+            ignored_generation_config_keys: loaded.generation.unsupported_keys.clone(),
             batch: settings.batch,
             threads,
         },

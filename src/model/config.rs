@@ -430,7 +430,26 @@ pub struct GenerationDefaults {
     pub pad: Option<u32>,
     /// Whether generation_config.json existed.
     pub from_generation_config: bool,
+    /// generation_config.json `repetition_penalty`; it applies under greedy decoding too
+    /// (model-formats.md §3.2). None or 1.0: no penalty.
+    pub repetition_penalty: Option<f64>,
+    /// generation_config.json keys that transformers would still apply under greedy decoding
+    /// but liftgate does not implement (reported, not silently dropped).
+    pub unsupported_keys: Vec<String>,
 }
+
+/// Logits processors transformers applies even with do_sample=False (model-formats.md §3.2).
+const UNSUPPORTED_PROCESSOR_KEYS: [&str; 9] = [
+    "no_repeat_ngram_size",
+    "min_length",
+    "min_new_tokens",
+    "suppress_tokens",
+    "begin_suppress_tokens",
+    "bad_words_ids",
+    "forced_bos_token_id",
+    "forced_eos_token_id",
+    "sequence_bias",
+];
 
 impl GenerationDefaults {
     /// If `<dir>/generation_config.json` exists only it is used; otherwise config.json's ids.
@@ -442,6 +461,8 @@ impl GenerationDefaults {
                 eos: spec.config_eos.clone(),
                 pad,
                 from_generation_config: false,
+                repetition_penalty: None,
+                unsupported_keys: Vec::new(),
             });
         }
         let text = std::fs::read_to_string(&path)
@@ -458,10 +479,31 @@ impl GenerationDefaults {
             .first()
             .copied()
             .or_else(|| eos.first().copied());
+        let repetition_penalty = c.opt_f64("repetition_penalty")?;
+        if repetition_penalty.is_some_and(|p| p <= 0.0 || !p.is_finite()) {
+            return Err(Error::field(
+                &path,
+                None,
+                "repetition_penalty",
+                "must be a positive number",
+            ));
+        }
         Ok(GenerationDefaults {
             eos,
             pad,
             from_generation_config: true,
+            repetition_penalty: repetition_penalty.filter(|&p| p != 1.0),
+            unsupported_keys: UNSUPPORTED_PROCESSOR_KEYS
+                .iter()
+                .filter(|k| match obj.get(**k) {
+                    None | Some(Value::Null) => false,
+                    Some(Value::Number(n)) => n.as_f64() != Some(0.0),
+                    Some(Value::Array(a)) => !a.is_empty(),
+                    Some(Value::Object(o)) => !o.is_empty(),
+                    Some(_) => true,
+                })
+                .map(|k| k.to_string())
+                .collect(),
         })
     }
 }
@@ -1075,5 +1117,13 @@ mod tests {
             GenerationDefaults::load(dir.path(), &s).unwrap().eos,
             vec![7]
         );
+        std::fs::write(
+            dir.path().join("generation_config.json"),
+            r#"{"repetition_penalty": 1.05, "no_repeat_ngram_size": 3, "suppress_tokens": []}"#,
+        )
+        .unwrap();
+        let g = GenerationDefaults::load(dir.path(), &s).unwrap();
+        assert_eq!(g.repetition_penalty, Some(1.05));
+        assert_eq!(g.unsupported_keys, vec!["no_repeat_ngram_size".to_string()]);
     }
 }
