@@ -35,6 +35,7 @@
 //!   calls it renders a different prompt every day.
 
 mod pyfmt;
+pub use pyfmt::py_strip;
 pub mod strftime;
 pub mod template;
 
@@ -364,12 +365,31 @@ impl ChatTokenizer {
         })
     }
 
+    /// [`decode`](Self::decode), then Python's `str.strip()` ([`py_strip`]): the answer text as
+    /// `tokenizer.decode(ids, skip_special_tokens=True).strip()` gives it. Rust's `str::trim`
+    /// differs: it keeps U+001C..U+001F, which Python strips.
+    pub fn decode_answer(&self, ids: &[u32]) -> Result<String> {
+        Ok(py_strip(&self.decode(ids)?).to_string())
+    }
+
     /// SHA-256 hex of the template source actually used (or of the fallback's name) for run.json.
+    ///
+    /// It covers the template source, not the rendered prompt: a template that calls
+    /// `strftime_now` (see [`template_uses_date`](Self::template_uses_date)) renders a different
+    /// prompt every day under the same fingerprint, so fingerprint the prompt ids as well when
+    /// that matters.
     pub fn template_fingerprint(&self) -> String {
         match &self.template {
             Some(t) => crate::fsutil::sha256_hex(t.source.as_bytes()),
             None => crate::fsutil::sha256_hex(PLAIN_FALLBACK_NAME.as_bytes()),
         }
+    }
+
+    /// Whether the template reads the current date (`strftime_now`), so its prompts change daily.
+    pub fn template_uses_date(&self) -> bool {
+        self.template
+            .as_ref()
+            .is_some_and(|t| t.source.contains("strftime_now"))
     }
 
     /// Whether a chat template was found (false = the documented plain fallback is in use).

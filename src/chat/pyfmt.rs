@@ -144,6 +144,22 @@ pub fn py_float_repr(f: f64) -> String {
     format!("{sign}{body}")
 }
 
+/// Python's `str.isspace` for one character (`Py_UNICODE_ISSPACE`): Unicode White_Space plus
+/// the separators U+001C..U+001F, which Rust's `char::is_whitespace` does not count.
+pub fn is_py_space(c: char) -> bool {
+    c.is_whitespace() || ('\u{1c}'..='\u{1f}').contains(&c)
+}
+
+/// Python's `str.strip()` with no arguments.
+pub fn py_strip(s: &str) -> &str {
+    s.trim_matches(is_py_space)
+}
+
+/// Python's `str.split()` with no arguments: runs of whitespace separate, edges are dropped.
+pub fn py_split_whitespace(s: &str) -> Vec<&str> {
+    s.split(is_py_space).filter(|p| !p.is_empty()).collect()
+}
+
 /// Options of Python's `json.dumps` that chat templates pass through `tojson`.
 #[derive(Debug, Clone, Default)]
 pub struct JsonOptions {
@@ -340,6 +356,14 @@ mod tests {
             json_dumps(&Value::from("é😀"), &ascii).unwrap(),
             r#""\u00e9\ud83d\ude00""#
         );
+    }
+
+    // Python 3.11: "\x1c a \x1f".strip() == "a"; " a  b ".split() == ["a", "b"].
+    #[test]
+    fn python_whitespace_includes_separators() {
+        assert_eq!(py_strip("\u{1c} a\u{a0}\u{1f}\n"), "a");
+        assert_eq!("\u{1c}a".trim(), "\u{1c}a", "Rust's trim keeps U+001C");
+        assert_eq!(py_split_whitespace(" a \u{1d} b\t"), vec!["a", "b"]);
     }
 
     #[test]

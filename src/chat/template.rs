@@ -18,15 +18,20 @@
 //! - **Tuples**: minijinja has none, so `(1, 'x')`, `dictsort` and `.items()` pairs print as lists
 //!   (`[1, 'x']`) where Jinja2 prints `(1, 'x')`. Templates iterate such pairs rather than print
 //!   them, so this is left as a documented difference.
+//! - **`str % args`**: Jinja2 evaluates Python's printf operator; minijinja refuses `%` on a
+//!   string with a "tried to use % operator on unsupported types" error. The `format` filter
+//!   (`'%s' | format(x)`) works in both. Not bridged: minijinja's operators cannot be extended.
 //! - **Python methods** (`.strip()`, `.startswith()`, `.items()`, `.get()`, ...): minijinja-contrib
-//!   `pycompat` as the unknown-method callback.
+//!   `pycompat` as the unknown-method callback, except that `strip`/`lstrip`/`rstrip`/`split`
+//!   without arguments and the `trim` filter use Python's whitespace set, which also holds
+//!   U+001C..U+001F (Rust's `trim` keeps those); `rsplit` and `swapcase` are added.
 //! - **Undefined**: `UndefinedBehavior::Lenient`, which is Jinja2's default `Undefined`: printing
 //!   gives "", it is falsy and iterable as empty, and attribute access on it fails.
 //! - **Untrusted code**: no loader (no file or network access), a fuel budget so runaway loops
 //!   fail fast, the default recursion limit so deep recursion fails with an error rather than a
 //!   stack overflow. Jinja2's sandbox caps `range()` at 100 000 items; minijinja does the same.
 
-use super::pyfmt::{json_dumps, py_str, JsonOptions};
+use super::pyfmt::{is_py_space, json_dumps, py_split_whitespace, py_str, py_strip, JsonOptions};
 use super::strftime::{strftime, DateTime};
 use minijinja::value::{Kwargs, Rest, Value, ValueKind};
 use minijinja::{Environment, Error as JinjaError, ErrorKind, UndefinedBehavior};
@@ -154,7 +159,7 @@ impl ChatTemplate {
         env.set_undefined_behavior(UndefinedBehavior::Lenient);
         env.set_fuel(Some(FUEL));
         env.set_recursion_limit(RECURSION_LIMIT);
-        env.set_unknown_method_callback(minijinja_contrib::pycompat::unknown_method_callback);
+        env.set_unknown_method_callback(python_methods);
         env.set_formatter(|out, _state, value| {
             if value.kind() != ValueKind::Undefined {
                 out.write_str(&py_str(value))
@@ -167,6 +172,7 @@ impl ChatTemplate {
         env.add_filter("tojson", tojson);
         env.add_filter("string", |v: Value| py_str(&v));
         env.add_filter("center", center);
+        env.add_filter("trim", trim);
         // Jinja2's cycler takes the items as separate arguments.
         env.add_function("cycler", |items: Rest<Value>| {
             minijinja_contrib::globals::cycler(items.0)
@@ -184,6 +190,136 @@ impl ChatTemplate {
             .get_template(TEMPLATE_NAME)
             .map_err(|e| convert_error(&e))?;
         tmpl.render(ctx).map_err(|e| convert_error(&e))
+    }
+}
+
+/// Python string methods: `strip`/`lstrip`/`rstrip`/`split` without arguments use Python's
+/// whitespace set ([`is_py_space`]); everything else goes to minijinja-contrib's `pycompat`.
+fn python_methods(
+    state: &mut minijinja::State,
+    value: &Value,
+    method: &str,
+    args: &[Value],
+) -> Result<Value, JinjaError> {
+    let no_args = args.is_empty() || (args.len() == 1 && args[0].is_none());
+    if let (Some(s), true) = (value.as_str(), no_args) {
+        match method {
+            "strip" => return Ok(Value::from(py_strip(s))),
+            "lstrip" => return Ok(Value::from(s.trim_start_matches(is_py_space))),
+            "rstrip" => return Ok(Value::from(s.trim_end_matches(is_py_space))),
+            "split" => {
+                let parts: Vec<Value> = py_split_whitespace(s)
+                    .into_iter()
+                    .map(Value::from)
+                    .collect();
+                return Ok(Value::from(parts));
+            }
+            _ => {}
+        }
+    }
+    if let Some(s) = value.as_str() {
+        match method {
+            "rsplit" => return rsplit(s, args),
+            "swapcase" if args.is_empty() => {
+                let swapped: String = s
+                    .chars()
+                    .flat_map(|c| {
+                        if c.is_uppercase() {
+                            c.to_lowercase().collect::<Vec<_>>()
+                        } else {
+                            c.to_uppercase().collect::<Vec<_>>()
+                        }
+                    })
+                    .collect();
+                return Ok(Value::from(swapped));
+            }
+            _ => {}
+        }
+    }
+    minijinja_contrib::pycompat::unknown_method_callback(state, value, method, args)
+}
+
+/// Python's `str.rsplit(sep=None, maxsplit=-1)`.
+fn rsplit(s: &str, args: &[Value]) -> Result<Value, JinjaError> {
+    let bad = || {
+        JinjaError::new(
+            ErrorKind::InvalidOperation,
+            "rsplit takes (sep=None, maxsplit=-1)",
+        )
+    };
+    if args.len() > 2 {
+        return Err(bad());
+    }
+    let sep = match args.first() {
+        None => None,
+        Some(v) if v.is_none() => None,
+        Some(v) => Some(v.as_str().ok_or_else(bad)?.to_string()),
+    };
+    let maxsplit = match args.get(1) {
+        None => -1,
+        Some(v) => v.as_i64().ok_or_else(bad)?,
+    };
+    let limit = if maxsplit < 0 {
+        usize::MAX
+    } else {
+        maxsplit as usize
+    };
+    let mut parts: Vec<String> = match sep {
+        Some(sep) if sep.is_empty() => {
+            return Err(JinjaError::new(
+                ErrorKind::InvalidOperation,
+                "empty separator",
+            ))
+        }
+        Some(sep) => {
+            let mut out = Vec::new();
+            let mut rest = s;
+            while out.len() < limit {
+                match rest.rfind(sep.as_str()) {
+                    Some(i) => {
+                        out.push(rest[i + sep.len()..].to_string());
+                        rest = &rest[..i];
+                    }
+                    None => break,
+                }
+            }
+            out.push(rest.to_string());
+            out
+        }
+        None => {
+            // Whitespace runs separate; trailing whitespace is dropped before each split.
+            let mut out = Vec::new();
+            let mut rest = s.trim_end_matches(is_py_space);
+            while !rest.is_empty() && out.len() < limit {
+                match rest.rfind(is_py_space) {
+                    Some(i) => {
+                        let ch = rest[i..].chars().next().map_or(1, char::len_utf8);
+                        out.push(rest[i + ch..].to_string());
+                        rest = rest[..i].trim_end_matches(is_py_space);
+                    }
+                    None => {
+                        out.push(rest.to_string());
+                        rest = "";
+                    }
+                }
+            }
+            // When maxsplit stops the scan, Python keeps the remainder's leading whitespace.
+            if !rest.is_empty() {
+                out.push(rest.to_string());
+            }
+            out
+        }
+    };
+    parts.reverse();
+    Ok(Value::from(parts))
+}
+
+/// Jinja2's `trim(chars=None)`, which is Python's `str.strip(chars)`.
+fn trim(value: Value, chars: Option<String>) -> String {
+    let s = py_str(&value);
+    match chars {
+        Some(chars) => s.trim_matches(|c| chars.contains(c)).to_string(),
+        None => py_strip(&s).to_string(),
     }
 }
 
