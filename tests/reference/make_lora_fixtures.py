@@ -223,6 +223,13 @@ CASES = [
         "config_edit": {"target_modules": None},
     },
     {
+        "name": "llama_f16_lm_head",
+        "about": "adapter tensors stored in f16; LoRA on lm_head and o_proj of an untied model",
+        "base": "llama",
+        "lora": dict(r=2, lora_alpha=3, target_modules=["lm_head", "o_proj"]),
+        "adapter_dtype": "f16",
+    },
+    {
         "name": "llama_embed",
         "about": "embed_tokens target (lora_embedding_A/B) on an untied model, plus q_proj",
         "base": "llama",
@@ -303,14 +310,19 @@ def make_adapter(case, out_dir, seed):
         out_dir.mkdir(parents=True, exist_ok=True)
         shutil.copy(Path(tmp) / "adapter_config.json", out_dir / "adapter_config.json")
         tensors = load_file(str(Path(tmp) / "adapter_model.safetensors"))
-    if case.get("adapter_dtype") == "bf16":
-        tensors = {k: v.to(torch.bfloat16) for k, v in tensors.items()}
+    dtype = {"bf16": torch.bfloat16, "f16": torch.float16}.get(case.get("adapter_dtype"))
+    if dtype is not None:
+        tensors = {k: v.to(dtype) for k, v in tensors.items()}
     save_file(tensors, str(out_dir / "adapter_model.safetensors"), metadata={"format": "pt"})
-    if "config_edit" in case:
-        path = out_dir / "adapter_config.json"
-        conf = json.loads(path.read_text())
-        conf.update(case["config_edit"])
-        path.write_text(json.dumps(conf, indent=2) + "\n")
+    # peft stores target_modules/exclude_modules as Python sets, whose order depends on string
+    # hashing; sort them so that the fixtures are reproducible (order does not matter to peft).
+    path = out_dir / "adapter_config.json"
+    conf = json.loads(path.read_text())
+    for key in ("target_modules", "exclude_modules"):
+        if isinstance(conf.get(key), list):
+            conf[key] = sorted(conf[key])
+    conf.update(case.get("config_edit", {}))
+    path.write_text(json.dumps(conf, indent=2) + "\n")
 
 
 def reference_merge(case, adapter_dir):
