@@ -1,2 +1,52 @@
-//! (being built)
+//! Loading a Hugging Face-layout model directory for CPU inference: config → spec
+//! (`config`), safetensors → f32 tensors by checkpoint name (`weights`), optional LoRA merge on
+//! that map, then the generic decoder (`decoder`).
+
+pub mod config;
+pub mod decoder;
 pub mod lora;
+pub mod weights;
+
+use crate::error::Result;
+use config::{GenerationDefaults, ModelSpec};
+use decoder::Decoder;
+use std::path::{Path, PathBuf};
+
+/// A model ready to generate, with what it was loaded from.
+pub struct LoadedModel {
+    pub decoder: Decoder,
+    pub spec: ModelSpec,
+    pub generation: GenerationDefaults,
+    /// The safetensors files read.
+    pub weight_files: Vec<PathBuf>,
+    /// Stored dtype of the checkpoint ("f32", "bf16", "f16"); computation is f32.
+    pub stored_dtype: String,
+    /// The merged adapter and what the merge did, when one was given.
+    pub adapter: Option<(lora::Adapter, lora::MergeSummary)>,
+}
+
+/// Reads config, generation config and weights of `dir`, merges the LoRA adapter in
+/// `adapter` (if any) into the loaded f32 tensors in place, and builds the decoder.
+pub fn load(dir: &Path, adapter: Option<&Path>) -> Result<LoadedModel> {
+    let spec = ModelSpec::load(dir)?;
+    let generation = GenerationDefaults::load(dir, &spec)?;
+    // Read the adapter first: a broken adapter fails before the weights are read.
+    let adapter = adapter.map(lora::Adapter::load).transpose()?;
+    let mut w = weights::load(dir, &spec)?;
+    let adapter = match adapter {
+        Some(a) => {
+            let summary = lora::merge(&mut w.tensors, &a, w.tied)?;
+            Some((a, summary))
+        }
+        None => None,
+    };
+    let decoder = Decoder::new(&spec, w.tensors)?;
+    Ok(LoadedModel {
+        decoder,
+        spec,
+        generation,
+        weight_files: w.files,
+        stored_dtype: w.stored_dtype,
+        adapter,
+    })
+}

@@ -1,0 +1,336 @@
+//! Loading a checkpoint's safetensors (single file or sharded with an index) into f32 tensors
+//! keyed by checkpoint name, with every expected tensor checked against the config.
+//!
+//! The map is the one place weights live before the decoder takes them: the LoRA merge
+//! (`crate::model::lora::merge`) edits it in place, so merging never holds a second full copy.
+//! Rules: model-formats.md §1.1 (files, index) and §1.3 (names, tied embeddings).
+//! NaN/Inf checks on the loaded weights belong to the reliability work and are not done here.
+
+use crate::error::{Error, Result};
+use crate::model::config::ModelSpec;
+use candle_core::safetensors::{Load, MmapedSafetensors};
+use candle_core::{DType, Device, Tensor};
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+
+pub const EMBED: &str = "model.embed_tokens.weight";
+pub const LM_HEAD: &str = "lm_head.weight";
+
+/// Checkpoint tensors in f32 by name, plus where they came from.
+pub struct Weights {
+    pub tensors: HashMap<String, Tensor>,
+    /// The safetensors files read, in order (for fingerprints).
+    pub files: Vec<PathBuf>,
+    /// The dtype the checkpoint stored its (first) floating tensor in, e.g. "bf16".
+    pub stored_dtype: String,
+    /// Whether `lm_head` reuses the embedding matrix (tie true and lm_head.weight absent).
+    pub tied: bool,
+}
+
+/// The safetensors files of a model directory: the index's shards, or `model.safetensors`, or
+/// every other `*.safetensors`. Pickle-only checkpoints are refused.
+pub fn safetensors_files(dir: &Path) -> Result<Vec<PathBuf>> {
+    let index = dir.join("model.safetensors.index.json");
+    if index.exists() {
+        let text = std::fs::read_to_string(&index)
+            .map_err(|e| Error::file(&index, format!("cannot read: {e}")))?;
+        let value: serde_json::Value = serde_json::from_str(&text)
+            .map_err(|e| Error::file(&index, format!("not valid JSON: {e}")))?;
+        let map = value
+            .get("weight_map")
+            .and_then(|m| m.as_object())
+            .ok_or_else(|| {
+                Error::field(
+                    &index,
+                    None,
+                    "weight_map",
+                    "expected an object of tensor → file",
+                )
+            })?;
+        let mut files: Vec<String> = Vec::new();
+        for (name, file) in map {
+            let file = file.as_str().ok_or_else(|| {
+                Error::field(
+                    &index,
+                    None,
+                    format!("weight_map.{name}"),
+                    "expected a file name",
+                )
+            })?;
+            if file.contains('/') || file.contains('\\') || file.contains("..") {
+                return Err(Error::field(
+                    &index,
+                    None,
+                    format!("weight_map.{name}"),
+                    format!("{file:?} is not a plain file name in the model directory"),
+                ));
+            }
+            if !files.iter().any(|f| f == file) {
+                files.push(file.to_string());
+            }
+        }
+        files.sort();
+        let paths: Vec<PathBuf> = files.iter().map(|f| dir.join(f)).collect();
+        for p in &paths {
+            if !p.exists() {
+                return Err(Error::file(
+                    &index,
+                    format!("names the shard {} which does not exist", p.display()),
+                ));
+            }
+        }
+        if paths.is_empty() {
+            return Err(Error::file(&index, "the weight_map is empty"));
+        }
+        return Ok(paths);
+    }
+    let single = dir.join("model.safetensors");
+    if single.exists() {
+        return Ok(vec![single]);
+    }
+    let entries = std::fs::read_dir(dir)
+        .map_err(|e| Error::file(dir, format!("cannot list the model directory: {e}")))?;
+    let mut st = Vec::new();
+    let mut pickles = Vec::new();
+    for entry in entries.flatten() {
+        let p = entry.path();
+        let name = entry.file_name().to_string_lossy().to_string();
+        if name.ends_with(".safetensors") && !name.starts_with("adapter_") {
+            st.push(p);
+        } else if name.ends_with(".bin") || name.ends_with(".pt") || name.ends_with(".pth") {
+            pickles.push(p);
+        }
+    }
+    st.sort();
+    pickles.sort();
+    if !st.is_empty() {
+        return Ok(st);
+    }
+    if let Some(p) = pickles.first() {
+        return Err(Error::file(
+            p,
+            "is a PyTorch pickle checkpoint; liftgate reads only safetensors (pickles can run code when loaded). Convert it, e.g. `model.save_pretrained(dir, safe_serialization=True)` in transformers",
+        ));
+    }
+    Err(Error::file(
+        dir,
+        "has no model.safetensors, no model.safetensors.index.json and no *.safetensors file",
+    ))
+}
+
+/// Memory-maps one file. The one `unsafe` of the loader.
+fn mmap_file(file: &Path) -> Result<MmapedSafetensors> {
+    // SAFETY: the mapping stays valid only while nobody truncates or rewrites the file; a model
+    // directory is read-only input for the duration of a run, and every tensor is copied into
+    // owned f32 storage in `load` before the mapping is dropped.
+    let st = unsafe { MmapedSafetensors::new(file) };
+    st.map_err(|e| Error::file(file, format!("not a readable safetensors file: {e}")))
+}
+
+/// Loads and validates every tensor the spec expects, up-cast to f32.
+pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
+    let files = safetensors_files(dir)?;
+    let maps: Vec<MmapedSafetensors> = files.iter().map(|f| mmap_file(f)).collect::<Result<_>>()?;
+    // Which file holds each tensor (the last one wins, as in an index).
+    let mut owner: HashMap<String, usize> = HashMap::new();
+    for (i, m) in maps.iter().enumerate() {
+        for (name, _) in m.tensors() {
+            owner.insert(name, i);
+        }
+    }
+    let file_of = |name: &str| files[owner.get(name).copied().unwrap_or(0)].clone();
+    let config = dir.join("config.json");
+
+    let mut expected = spec.expected_tensors();
+    let has_head = owner.contains_key(LM_HEAD);
+    let has_embed = owner.contains_key(EMBED);
+    // Tied-embedding rules (model-formats.md §1.3).
+    let tied = if spec.tie_word_embeddings {
+        if !has_embed && has_head {
+            // Symmetric: the head serves as the embedding too.
+            expected.retain(|(n, _)| n != EMBED);
+        }
+        !(has_embed && has_head)
+    } else {
+        if !has_head {
+            return Err(Error::file(
+                &files[0],
+                format!(
+                    "has no `{LM_HEAD}` and config.json sets tie_word_embeddings false (transformers would initialise the output head at random); the checkpoint is incomplete"
+                ),
+            ));
+        }
+        false
+    };
+    if has_head {
+        expected.push((LM_HEAD.to_string(), vec![spec.vocab_size, spec.hidden_size]));
+    }
+
+    let mut tensors = HashMap::with_capacity(expected.len());
+    let mut stored_dtype = String::new();
+    for (name, shape) in &expected {
+        let src = owner.get(name).map(|&i| &maps[i]);
+        let view = src.and_then(|m| m.get(name).ok()).ok_or_else(|| {
+            Error::field(
+                &files[0],
+                None,
+                name.as_str(),
+                format!(
+                    "tensor missing from the checkpoint (expected shape {shape:?} from {}); is the config for this model?",
+                    config.display()
+                ),
+            )
+        })?;
+        if view.shape() != shape.as_slice() {
+            return Err(Error::field(
+                file_of(name),
+                None,
+                name.as_str(),
+                format!(
+                    "shape {:?} does not match {:?} expected from {} (hidden_size {}, heads {}, kv heads {}, head_dim {}, intermediate_size {}, vocab_size {})",
+                    view.shape(),
+                    shape,
+                    config.display(),
+                    spec.hidden_size,
+                    spec.num_heads,
+                    spec.num_kv_heads,
+                    spec.head_dim,
+                    spec.intermediate_size,
+                    spec.vocab_size
+                ),
+            ));
+        }
+        use safetensors::Dtype as S;
+        let dt = match view.dtype() {
+            S::F32 => "f32",
+            S::BF16 => "bf16",
+            S::F16 => "f16",
+            other => {
+                return Err(Error::field(
+                    file_of(name),
+                    None,
+                    name.as_str(),
+                    format!("stored as {other:?}; supported tensor dtypes are F32, BF16 and F16 (quantised checkpoints are not supported)"),
+                ))
+            }
+        };
+        if stored_dtype.is_empty() {
+            stored_dtype = dt.to_string();
+        }
+        let t = view
+            .load(&Device::Cpu)
+            .and_then(|t| t.to_dtype(DType::F32))
+            .map_err(|e| {
+                Error::field(
+                    file_of(name),
+                    None,
+                    name.as_str(),
+                    format!("cannot read: {e}"),
+                )
+            })?;
+        tensors.insert(name.clone(), t);
+    }
+    if !tensors.contains_key(EMBED) {
+        // Tied with only lm_head stored: the same matrix serves as the embedding, kept under
+        // the embedding's name so the map holds one shared tensor (as after the usual tying).
+        if let Some(h) = tensors.remove(LM_HEAD) {
+            tensors.insert(EMBED.to_string(), h);
+        }
+    }
+    Ok(Weights {
+        tensors,
+        files,
+        stored_dtype,
+        tied,
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn llama_fixture() -> PathBuf {
+        Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/runner/llama/model")
+    }
+
+    /// A checkpoint re-saved as two shards with a `model.safetensors.index.json` (the layout
+    /// transformers writes, model-formats.md §1.1) and in f16 loads to the same tensors.
+    #[test]
+    fn sharded_and_f16_checkpoints_load_to_the_same_tensors() {
+        let src = llama_fixture();
+        let spec = ModelSpec::load(&src).unwrap();
+        let single = load(&src, &spec).unwrap();
+        let dir = tempfile::tempdir().unwrap();
+        std::fs::copy(src.join("config.json"), dir.path().join("config.json")).unwrap();
+        let mut names: Vec<&String> = single.tensors.keys().collect();
+        names.sort();
+        let (a, b) = names.split_at(names.len() / 2);
+        let mut weight_map = serde_json::Map::new();
+        for (shard, part) in [
+            ("model-00001-of-00002.safetensors", a),
+            ("model-00002-of-00002.safetensors", b),
+        ] {
+            let m: HashMap<String, Tensor> = part
+                .iter()
+                .map(|n| {
+                    (
+                        (*n).clone(),
+                        single.tensors[*n].to_dtype(DType::F16).unwrap(),
+                    )
+                })
+                .collect();
+            candle_core::safetensors::save(&m, dir.path().join(shard)).unwrap();
+            for n in part {
+                weight_map.insert((*n).clone(), shard.into());
+            }
+        }
+        let index = serde_json::json!({"metadata": {"total_size": 0}, "weight_map": weight_map});
+        std::fs::write(
+            dir.path().join("model.safetensors.index.json"),
+            index.to_string(),
+        )
+        .unwrap();
+        let sharded = load(dir.path(), &spec).unwrap();
+        assert_eq!(sharded.files.len(), 2);
+        assert_eq!(sharded.stored_dtype, "f16");
+        for (name, t) in &single.tensors {
+            let want: Vec<f32> = t
+                .to_dtype(DType::F16)
+                .unwrap()
+                .to_dtype(DType::F32)
+                .unwrap()
+                .flatten_all()
+                .unwrap()
+                .to_vec1()
+                .unwrap();
+            let got: Vec<f32> = sharded.tensors[name]
+                .flatten_all()
+                .unwrap()
+                .to_vec1()
+                .unwrap();
+            assert_eq!(got, want, "{name}");
+        }
+        // A shard the index names but that is missing is an error naming the index.
+        std::fs::remove_file(dir.path().join("model-00002-of-00002.safetensors")).unwrap();
+        let err = load(dir.path(), &spec).err().unwrap().to_string();
+        assert!(
+            err.contains("model.safetensors.index.json") && err.contains("00002"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn untied_checkpoint_without_lm_head_is_an_error() {
+        let src = llama_fixture();
+        let spec = ModelSpec::load(&src).unwrap();
+        let mut w = load(&src, &spec).unwrap().tensors;
+        w.remove(LM_HEAD);
+        let dir = tempfile::tempdir().unwrap();
+        candle_core::safetensors::save(&w, dir.path().join("model.safetensors")).unwrap();
+        let err = load(dir.path(), &spec).err().unwrap().to_string();
+        assert!(
+            err.contains("lm_head.weight") && err.contains("tie_word_embeddings"),
+            "{err}"
+        );
+    }
+}

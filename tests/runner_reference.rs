@@ -1,0 +1,383 @@
+//! The decoder, LoRA merge and greedy loop against the reference implementation, for every
+//! family under tests/fixtures/runner/.
+//!
+//! Source of every expected value: transformers 5.24.0 `generate(do_sample=False)` (torch
+//! 2.15.0, f32, eager attention) on the base model, and peft 0.21.2
+//! `PeftModel.from_pretrained(...).merge_and_unload()` for each adapter; fixtures made by
+//! tests/reference/make_runner_fixtures.py (tiny seeded random models; every recorded step has a
+//! top-1/top-2 logit margin of at least 1e-3, so token identity is a fair test in f32).
+//!
+//! Checked per case: token-identical greedy output ids (prompt ids taken from the fixture,
+//! i.e. `apply_chat_template(tokenize=True)`), the finish reason, and the first-step logits
+//! within 1e-4; then the same cases decoded together in one left-padded batch must give the
+//! same ids as batch 1. A second test checks the prompt side the answer command uses: the
+//! rendered template text and its ids, the decoded answer text, and the template errors
+//! (a system role the template rejects with `raise_exception`).
+
+use liftgate::answers::Finish;
+use liftgate::chat::ChatTokenizer;
+use liftgate::generate::{generate_batch, prefill_input, Decoding, GenerationSettings};
+use liftgate::model;
+use serde_json::Value;
+use std::path::{Path, PathBuf};
+
+const LOGIT_TOL: f32 = 1e-4;
+
+fn fixtures_root() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/runner")
+}
+
+fn families() -> Vec<PathBuf> {
+    let mut out: Vec<PathBuf> = std::fs::read_dir(fixtures_root())
+        .expect("tests/fixtures/runner exists")
+        .flatten()
+        .map(|e| e.path())
+        .filter(|p| p.join("expected.json").is_file())
+        .collect();
+    out.sort();
+    assert!(!out.is_empty(), "no fixture families found");
+    out
+}
+
+fn ids(v: &Value) -> Vec<u32> {
+    v.as_array()
+        .expect("an id list")
+        .iter()
+        .map(|x| x.as_u64().expect("an id") as u32)
+        .collect()
+}
+
+fn floats(v: &Value) -> Vec<f32> {
+    v.as_array()
+        .expect("a float list")
+        .iter()
+        .map(|x| x.as_f64().expect("a number") as f32)
+        .collect()
+}
+
+struct Case {
+    label: String,
+    prompt: Vec<u32>,
+    output: Vec<u32>,
+    finish: Finish,
+    max_new_tokens: usize,
+    logits: Vec<f32>,
+}
+
+/// Runs every non-error case of one variant; returns the worst first-step logit difference.
+fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
+    let model_dir = family.join("model");
+    let adapter_dir = family.join("adapters").join(variant);
+    let adapter = (variant != "base").then_some(adapter_dir.as_path());
+    let loaded = model::load(&model_dir, adapter)
+        .unwrap_or_else(|e| panic!("{}: loading {variant}: {e}", family.display()));
+    let mut eos = loaded.generation.eos.clone();
+    eos.sort();
+    let cases: Vec<Case> = expected["cases"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|c| c["variant"] == variant && c.get("error").is_none_or(Value::is_null))
+        .map(|c| Case {
+            label: format!(
+                "{} {variant} system={} q{}",
+                family.file_name().unwrap().to_string_lossy(),
+                c["system"],
+                c["question_index"]
+            ),
+            prompt: ids(&c["prompt_ids"]),
+            output: ids(&c["output_ids"]),
+            finish: match c["finish"].as_str() {
+                Some("eos") => Finish::Eos,
+                _ => Finish::Length,
+            },
+            max_new_tokens: c["max_new_tokens"].as_u64().unwrap() as usize,
+            logits: floats(&c["first_step_logits"]),
+        })
+        .collect();
+    assert!(
+        !cases.is_empty(),
+        "{}: no cases for {variant}",
+        family.display()
+    );
+    let pad = loaded.generation.pad.unwrap_or(0);
+    let mut worst = 0f32;
+    for case in &cases {
+        let mut cache = loaded.decoder.new_cache();
+        let logits: Vec<f32> = loaded
+            .decoder
+            .forward(
+                &prefill_input(std::slice::from_ref(&case.prompt), pad),
+                &mut cache,
+            )
+            .unwrap()
+            .flatten_all()
+            .unwrap()
+            .to_vec1()
+            .unwrap();
+        assert_eq!(logits.len(), case.logits.len(), "{}", case.label);
+        let diff = logits
+            .iter()
+            .zip(&case.logits)
+            .map(|(a, b)| (a - b).abs())
+            .fold(0f32, f32::max);
+        assert!(
+            diff <= LOGIT_TOL,
+            "{}: first-step logits differ by {diff} > {LOGIT_TOL}",
+            case.label
+        );
+        worst = worst.max(diff);
+        let settings = GenerationSettings {
+            decoding: Decoding::Greedy,
+            max_new_tokens: case.max_new_tokens,
+            eos: loaded.generation.eos.clone(),
+            ignore_eos: false,
+            pad,
+            repetition_penalty: None,
+        };
+        let got = generate_batch(
+            &loaded.decoder,
+            std::slice::from_ref(&case.prompt),
+            &settings,
+            &mut |_| {},
+        )
+        .unwrap();
+        assert_eq!(got[0].tokens, case.output, "{}: output ids", case.label);
+        assert_eq!(got[0].finish, case.finish, "{}: finish", case.label);
+    }
+    // All cases of the variant with one shared max_new_tokens, batched (left padding) vs alone.
+    let max_new = cases.iter().map(|c| c.max_new_tokens).max().unwrap();
+    let settings = GenerationSettings {
+        decoding: Decoding::Greedy,
+        max_new_tokens: max_new,
+        eos: loaded.generation.eos.clone(),
+        ignore_eos: false,
+        pad,
+        repetition_penalty: None,
+    };
+    let prompts: Vec<Vec<u32>> = cases.iter().map(|c| c.prompt.clone()).collect();
+    let batched = generate_batch(&loaded.decoder, &prompts, &settings, &mut |_| {}).unwrap();
+    for (case, b) in cases.iter().zip(&batched) {
+        let alone = generate_batch(
+            &loaded.decoder,
+            std::slice::from_ref(&case.prompt),
+            &settings,
+            &mut |_| {},
+        )
+        .unwrap();
+        assert_eq!(
+            b.tokens, alone[0].tokens,
+            "{}: batched vs batch 1",
+            case.label
+        );
+        // The reference prefix (its own max_new_tokens) must match too.
+        let n = case.output.len().min(b.tokens.len());
+        assert_eq!(
+            &b.tokens[..n],
+            &case.output[..n],
+            "{}: batched vs reference",
+            case.label
+        );
+    }
+    worst
+}
+
+#[test]
+fn greedy_outputs_match_the_reference_for_every_family_and_variant() {
+    let mut report = Vec::new();
+    for family in families() {
+        let expected: Value =
+            serde_json::from_str(&std::fs::read_to_string(family.join("expected.json")).unwrap())
+                .unwrap();
+        let variants: Vec<String> = expected["variants"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|v| v.as_str().unwrap().to_string())
+            .collect();
+        for variant in variants {
+            let worst = check_variant(&family, &expected, &variant);
+            report.push(format!(
+                "{} {variant}: max |Δ first-step logit| = {worst:.2e}",
+                family.file_name().unwrap().to_string_lossy()
+            ));
+        }
+    }
+    eprintln!("{}", report.join("\n"));
+}
+
+#[test]
+fn prompts_answers_and_template_errors_match_the_reference() {
+    for family in families() {
+        let name = family.file_name().unwrap().to_string_lossy().to_string();
+        let expected: Value =
+            serde_json::from_str(&std::fs::read_to_string(family.join("expected.json")).unwrap())
+                .unwrap();
+        let chat = ChatTokenizer::load(&family.join("model")).unwrap();
+        let loaded_eos = liftgate::model::config::GenerationDefaults::load(
+            &family.join("model"),
+            &liftgate::model::config::ModelSpec::load(&family.join("model")).unwrap(),
+        )
+        .unwrap()
+        .eos;
+        let system_text = expected["system_text"].as_str().unwrap();
+        let questions = expected["questions"].as_array().unwrap();
+        for c in expected["cases"].as_array().unwrap() {
+            let label = format!(
+                "{name} {} system={} q{}",
+                c["variant"], c["system"], c["question_index"]
+            );
+            let q = questions[c["question_index"].as_u64().unwrap() as usize]
+                .as_str()
+                .unwrap();
+            let system = c["system"].as_bool().unwrap().then_some(system_text);
+            if c.get("error").is_some_and(|e| !e.is_null()) {
+                let err = chat
+                    .encode_prompt(system, q)
+                    .expect_err(&format!("{label}: the template should refuse"));
+                assert_eq!(err.exit_code(), 2, "{label}: {err}");
+                continue;
+            }
+            let rendered = chat.render_prompt(system, q).unwrap();
+            assert_eq!(
+                rendered,
+                c["rendered"].as_str().unwrap(),
+                "{label}: rendered"
+            );
+            assert_eq!(
+                chat.encode_prompt(system, q).unwrap(),
+                ids(&c["prompt_ids"]),
+                "{label}: prompt ids"
+            );
+            let mut out = ids(&c["output_ids"]);
+            if c["finish"] == "eos" {
+                let last = out.pop().unwrap();
+                assert!(loaded_eos.contains(&last), "{label}: eos id {last}");
+            }
+            let text = chat.decode(&out).unwrap();
+            assert_eq!(
+                liftgate::generate::strip_like_python(&text),
+                c["answer"].as_str().unwrap(),
+                "{label}: answer"
+            );
+        }
+    }
+}
+
+/// Logits at every position of `ids`, one token per forward call through the KV cache.
+fn logits_at_every_position(decoder: &liftgate::model::decoder::Decoder, ids: &[u32]) -> Vec<f32> {
+    let mut cache = decoder.new_cache();
+    let mut out = Vec::new();
+    for (i, &t) in ids.iter().enumerate() {
+        let input = liftgate::model::decoder::StepInput {
+            batch: 1,
+            len: 1,
+            tokens: vec![t],
+            positions: vec![i as u32],
+            key_mask: vec![1; i + 1],
+        };
+        let l: Vec<f32> = decoder
+            .forward(&input, &mut cache)
+            .unwrap()
+            .flatten_all()
+            .unwrap()
+            .to_vec1()
+            .unwrap();
+        out.extend(l);
+    }
+    out
+}
+
+/// The fixtures' `feature_checks`: transformers 5.24.0 logits over the first base case's
+/// prompt + output with a config override that switches a feature off (sliding window, RoPE
+/// scaling, soft-caps, query_pre_attn_scalar, partial rotary), against the unchanged config;
+/// `max_abs_logit_diff` is how far the reference moved. The same override written into
+/// config.json must move liftgate's logits by the same amount (within 1e-3), so each config
+/// key is read with transformers' semantics rather than merely parsed.
+#[test]
+fn config_feature_overrides_move_the_logits_like_the_reference() {
+    let mut checked = 0;
+    for family in families() {
+        let expected: Value =
+            serde_json::from_str(&std::fs::read_to_string(family.join("expected.json")).unwrap())
+                .unwrap();
+        let Some(checks) = expected.get("feature_checks").and_then(Value::as_array) else {
+            continue;
+        };
+        let case = expected["cases"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|c| c["variant"] == "base" && c.get("prompt_ids").is_some())
+            .unwrap();
+        let mut seq = ids(&case["prompt_ids"]);
+        seq.extend(ids(&case["output_ids"]));
+        let model_dir = family.join("model");
+        let reference =
+            logits_at_every_position(&model::load(&model_dir, None).unwrap().decoder, &seq);
+        for check in checks {
+            let dir = tempfile::tempdir().unwrap();
+            for e in std::fs::read_dir(&model_dir).unwrap().flatten() {
+                std::fs::copy(e.path(), dir.path().join(e.file_name())).unwrap();
+            }
+            let cfg_path = dir.path().join("config.json");
+            let mut cfg: Value =
+                serde_json::from_str(&std::fs::read_to_string(&cfg_path).unwrap()).unwrap();
+            for (k, v) in check["override"].as_object().unwrap() {
+                cfg[k] = v.clone();
+            }
+            std::fs::write(&cfg_path, cfg.to_string()).unwrap();
+            let changed =
+                logits_at_every_position(&model::load(dir.path(), None).unwrap().decoder, &seq);
+            let diff = changed
+                .iter()
+                .zip(&reference)
+                .map(|(a, b)| (a - b).abs())
+                .fold(0f32, f32::max);
+            let want = check["max_abs_logit_diff"].as_f64().unwrap() as f32;
+            assert!(
+                (diff - want).abs() <= 1e-3,
+                "{} override {}: logits moved by {diff}, transformers by {want}",
+                family.display(),
+                check["override"]
+            );
+            checked += 1;
+        }
+    }
+    assert!(checked > 0, "no feature checks in the fixtures");
+}
+
+/// transformers 5.24.0 `generate(do_sample=False, repetition_penalty=1.3)` on the llama fixture
+/// (tests/fixtures/generation/repetition_penalty.json, made by
+/// tests/reference/make_generation_fixtures.py; every step's processed top-1/top-2 gap ≥ 1e-3).
+#[test]
+fn repetition_penalty_matches_the_reference() {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("tests/fixtures/generation/repetition_penalty.json");
+    let doc: Value = serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap();
+    let loaded = model::load(&fixtures_root().join("llama/model"), None).unwrap();
+    let settings = GenerationSettings {
+        decoding: Decoding::Greedy,
+        max_new_tokens: doc["max_new_tokens"].as_u64().unwrap() as usize,
+        eos: loaded.generation.eos.clone(),
+        ignore_eos: false,
+        pad: 0,
+        repetition_penalty: Some(doc["repetition_penalty"].as_f64().unwrap() as f32),
+    };
+    let cases = doc["cases"].as_array().unwrap();
+    let prompts: Vec<Vec<u32>> = cases.iter().map(|c| ids(&c["prompt_ids"])).collect();
+    for (c, p) in cases.iter().zip(&prompts) {
+        let got = generate_batch(
+            &loaded.decoder,
+            std::slice::from_ref(p),
+            &settings,
+            &mut |_| {},
+        )
+        .unwrap();
+        assert_eq!(got[0].tokens, ids(&c["output_ids"]));
+    }
+    let batched = generate_batch(&loaded.decoder, &prompts, &settings, &mut |_| {}).unwrap();
+    for (c, g) in cases.iter().zip(&batched) {
+        assert_eq!(g.tokens, ids(&c["output_ids"]), "batched");
+    }
+}
