@@ -193,11 +193,37 @@ fn wrong_field_type_names_the_line() {
 }
 
 #[test]
-fn policy_flag_is_refused_for_now() {
+fn policy_extra_phrases_extend_the_refusal_detector() {
+    // "ask at the harbour office" is no default refusal phrase; the policy adds it.
+    let mut a = good_answers();
+    a[2] = answer_row("x-001", "Please ask at the harbour office about that.");
+    let case = Case::new(&a);
+    let plain = case.grade(&[]);
+    assert_eq!(plain.code, 0, "{}", plain.stderr);
+    let rows = |case: &Case| -> Vec<Value> {
+        std::fs::read_to_string(case.path("out/grades.jsonl"))
+            .unwrap()
+            .lines()
+            .map(|l| serde_json::from_str(l).unwrap())
+            .collect()
+    };
+    assert_eq!(rows(&case)[2]["refused"], Value::Bool(false));
+    std::fs::write(
+        case.path("policy.toml"),
+        "[refusal]\nextra_phrases = [\"ask at the harbour office\"]\n",
+    )
+    .unwrap();
+    let with_policy = case.grade(&["--policy", "policy.toml"]);
+    assert_eq!(with_policy.code, 0, "{}", with_policy.stderr);
+    assert_eq!(rows(&case)[2]["refused"], Value::Bool(true));
+}
+
+#[test]
+fn policy_with_an_unknown_key_is_rejected() {
     let case = Case::new(&good_answers());
-    std::fs::write(case.path("policy.toml"), "").unwrap();
+    std::fs::write(case.path("policy.toml"), "[refusal]\nextra_phrase = []\n").unwrap();
     let run = case.grade(&["--policy", "policy.toml"]);
-    case.assert_rejected(&run, &["--policy for grade is not supported yet"]);
+    case.assert_rejected(&run, &["policy.toml", "extra_phrase"]);
 }
 
 #[test]

@@ -8,20 +8,20 @@
 use super::Outcome;
 use crate::answers::{self, AnswerRecord};
 use crate::cli::GradeArgs;
-use crate::error::{Error, Result};
+use crate::error::Result;
 use crate::fsutil;
 use crate::grades::GradeRecord;
+use crate::policy::Policy;
 use crate::questions::{Expect, QuestionSet};
 use crate::score::{self, RefusalDetector};
 use rayon::prelude::*;
 
 pub fn run(args: &GradeArgs) -> Result<Outcome> {
-    if args.policy.is_some() {
-        return Err(Error::usage("--policy for grade is not supported yet"));
-    }
+    // Only the policy's refusal phrases matter here; loading it whole still rejects a bad file.
+    let policy = Policy::load_or_default(args.policy.as_deref())?;
     let set = QuestionSet::load(&args.questions)?;
     let answers = answers::load_for_set(&args.answers, &set)?;
-    let detector = RefusalDetector::default();
+    let detector = RefusalDetector::with_extra_phrases(&policy.refusal.extra_phrases);
     let grades = grade_set(&set, &answers, &detector);
     fsutil::write_jsonl_atomic(&args.out, &grades)?;
     eprintln!("{}", summary_line(&grades, &args.out));
