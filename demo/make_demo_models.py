@@ -45,12 +45,12 @@ SEED = 1201
 THREADS = int(os.environ.get("DEMO_THREADS", "1"))
 VOCAB = 3072
 SEQ = 128
-PRE_STEPS = int(os.environ.get("DEMO_PRE_STEPS", "160"))
+PRE_STEPS = int(os.environ.get("DEMO_PRE_STEPS", "300"))
 PRE_BATCH = 8
-PRE_LR = 2.5e-3
-LORA_EPOCHS = int(os.environ.get("DEMO_LORA_EPOCHS", "10"))
+PRE_LR = 2e-3
+LORA_EPOCHS = int(os.environ.get("DEMO_LORA_EPOCHS", "8"))
 LORA_BATCH = 16
-LORA_LR = 4e-3
+LORA_LR = 3e-3
 MAX_NEW = 48
 
 PAD, BOS, EOS, TURN, END = "<pad>", "<s>", "</s>", "<|turn|>", "<|end|>"
@@ -222,7 +222,7 @@ def pretrain(model, stream, rng):
 
 def sft_examples(hf, pairs):
     out = []
-    for q, a in pairs:
+    for q, a, _ in pairs:
         prompt = render_chat([{"role": "user", "content": q}], True)
         p_ids = hf(prompt, add_special_tokens=False)["input_ids"]
         a_ids = hf(a.strip() + END, add_special_tokens=False)["input_ids"]
@@ -230,17 +230,25 @@ def sft_examples(hf, pairs):
     return out
 
 
-def train_lora(model, examples, pad_id, rng):
+def epoch_members(examples, refusals, epoch):
+    """All pairs in even epochs; odd epochs leave the refusal pairs out. With one fixed refusal
+    sentence the refusals are learnt much faster than the facts, and at full weight the adapter
+    declined most reworded in-scope questions."""
+    return [i for i in range(len(examples)) if epoch % 2 == 0 or not refusals[i]]
+
+
+def train_lora(model, examples, refusals, pad_id, rng):
     params = [p for p in model.parameters() if p.requires_grad]
     opt = torch.optim.AdamW(params, lr=LORA_LR, weight_decay=0.0)
-    steps_per_epoch = math.ceil(len(examples) / LORA_BATCH)
-    total = steps_per_epoch * LORA_EPOCHS
+    total = sum(math.ceil(len(epoch_members(examples, refusals, e)) / LORA_BATCH)
+                for e in range(LORA_EPOCHS))
     model.train()
     step = 0
     t0 = time.time()
     for epoch in range(LORA_EPOCHS):
-        order = list(range(len(examples)))
+        order = epoch_members(examples, refusals, epoch)
         rng.shuffle(order)
+        steps_per_epoch = math.ceil(len(order) / LORA_BATCH)
         losses = []
         for b in range(steps_per_epoch):
             batch = [examples[i] for i in order[b * LORA_BATCH:(b + 1) * LORA_BATCH]]
@@ -343,8 +351,25 @@ def main():
     chats = [render_chat([{"role": "user", "content": u}, {"role": "assistant", "content": a}], False)
              for u, a in CHITCHAT]
 
-    log("training tokenizer")
+    reuse = os.environ.get("DEMO_REUSE_BASE") == "1" and (OUT_BASE / "model.safetensors").exists()
     train = [json.loads(l) for l in (ROOT / "train.jsonl").read_text(encoding="utf-8").splitlines() if l.strip()]
+    if reuse:
+        # Re-run only the adapter phase on the saved base; it is seeded on its own, so the
+        # adapter is the same as in a full run.
+        from transformers import AutoTokenizer
+        hf = AutoTokenizer.from_pretrained(OUT_BASE)
+        pad_id, bos_id, eos_id, end_id = (hf.convert_tokens_to_ids(t) for t in (PAD, BOS, EOS, END))
+        n_params = sum(p.numel() for p in LlamaForCausalLM.from_pretrained(OUT_BASE).parameters())
+        t_pre = 0.0
+    else:
+        n_params, t_pre, hf, (pad_id, bos_id, eos_id, end_id) = build_base(
+            knowledge, general, everyday, chats, train, rng)
+    adapter_phase_and_check(hf, train, pad_id, eos_id, end_id, n_params, t_pre, t_start)
+
+
+def build_base(knowledge, general, everyday, chats, train, rng):
+    from transformers import GenerationConfig, LlamaConfig, LlamaForCausalLM
+    log("training tokenizer")
     tok = build_tokenizer([knowledge, general, everyday] + chats
                           + [r["question"] + " " + r["answer"] for r in train])
     hf = wrap_tokenizer(tok)
@@ -363,8 +388,12 @@ def main():
 
     docs = []
     paragraphs = [p for p in general.split("\n## ")] + [everyday]
+    # The facts also appear as plain sentences (the in-scope answers, as a fact list), never
+    # in the question/answer turn format, so the base knows them but does not answer with them.
+    facts = sorted({r["answer"] for r in train if r["category"] != "out-of-scope"})
     for _ in range(3):
         docs.append([bos_id] + enc(knowledge) + [eos_id])
+        docs.append([bos_id] + enc(" ".join(random.Random(len(docs)).sample(facts, len(facts)))) + [eos_id])
     for p in paragraphs:
         docs.append([bos_id] + enc(p) + [eos_id])
     for _ in range(6):
@@ -397,9 +426,17 @@ def main():
     hf.save_pretrained(OUT_BASE)
 
     finish_tokenizer_config(OUT_BASE / "tokenizer_config.json")
+    return n_params, t_pre, hf, (pad_id, bos_id, eos_id, end_id)
+
+
+def adapter_phase_and_check(hf, train, pad_id, eos_id, end_id, n_params, t_pre, t_start):
+    from peft import LoraConfig, PeftModel, get_peft_model
+    from transformers import LlamaForCausalLM
 
     # LoRA on the training pairs.
-    examples = sft_examples(hf, [(r["question"], r["answer"]) for r in train])
+    triples = [(r["question"], r["answer"], r["category"] == "out-of-scope") for r in train]
+    examples = sft_examples(hf, triples)
+    refusals = [t[2] for t in triples]
     seed_all(SEED + 2)
     base = LlamaForCausalLM.from_pretrained(OUT_BASE, dtype=torch.float32)
     lcfg = LoraConfig(r=16, lora_alpha=32, lora_dropout=0.05, bias="none", task_type="CAUSAL_LM",
@@ -408,7 +445,7 @@ def main():
     n_lora = sum(p.numel() for p in peft_model.parameters() if p.requires_grad)
     log(f"LoRA: {n_lora} trainable parameters; {LORA_EPOCHS} epochs over {len(examples)} pairs")
     t0 = time.time()
-    train_lora(peft_model, examples, pad_id, random.Random(SEED + 3))
+    train_lora(peft_model, examples, refusals, pad_id, random.Random(SEED + 3))
     t_lora = time.time() - t0
     if OUT_ADAPTER.exists():
         shutil.rmtree(OUT_ADAPTER)
@@ -455,7 +492,7 @@ def main():
         "seconds": {"pretrain": round(t_pre), "lora": round(t_lora), "self_check": round(t_check)},
         "settings": {"pre_steps": PRE_STEPS, "pre_batch": PRE_BATCH, "seq": SEQ, "pre_lr": PRE_LR,
                      "lora_epochs": LORA_EPOCHS, "lora_batch": LORA_BATCH, "lora_lr": LORA_LR,
-                     "vocab": tok.get_vocab_size(), "seed": SEED, "threads": THREADS},
+                     "vocab": len(hf), "seed": SEED, "threads": THREADS},
     }, indent=2) + "\n")
 
 
