@@ -354,8 +354,8 @@ def main():
     reuse = os.environ.get("DEMO_REUSE_BASE") == "1" and (OUT_BASE / "model.safetensors").exists()
     train = [json.loads(l) for l in (ROOT / "train.jsonl").read_text(encoding="utf-8").splitlines() if l.strip()]
     if reuse:
-        # Re-run only the adapter phase on the saved base; it is seeded on its own, so the
-        # adapter is the same as in a full run.
+        # Re-run only the adapter phase on the saved base; it is seeded on its own and loads
+        # the base from disk, as a full run does.
         from transformers import AutoTokenizer
         hf = AutoTokenizer.from_pretrained(OUT_BASE)
         pad_id, bos_id, eos_id, end_id = (hf.convert_tokens_to_ids(t) for t in (PAD, BOS, EOS, END))
