@@ -158,7 +158,7 @@ fn vet_into(
         baseline,
         candidate,
         policy,
-        settings: stats.clone(),
+        settings: *stats,
         inputs: summary_inputs,
     })?;
     report::write_report_dir(dir, &summary)?;

@@ -396,9 +396,9 @@ mod tests {
             .build()
             .unwrap();
         assert_eq!(pool.install(|| resample_means(&[&a, &b, &c], 200, 5, 1)), m);
-        for r in 0..200 {
-            assert_eq!(2.0 * m[0][r], m[1][r]);
-            assert_eq!(-m[0][r], m[2][r]);
+        for ((a_r, b_r), c_r) in m[0].iter().zip(&m[1]).zip(&m[2]) {
+            assert_eq!(2.0 * a_r, *b_r);
+            assert_eq!(-a_r, *c_r);
         }
         // The resample means scatter around the mean with sd ≈ sd(a)/√n ≈ 0.0026.
         let mean_a = a.iter().sum::<f64>() / a.len() as f64;
