@@ -14,7 +14,7 @@ Writes demo/models/base/ (HF layout, f32 safetensors) and demo/models/adapter/ (
 then prints a self-check: greedy answers of base and base+adapter on a few evaluation
 questions, and a token-F1 / refusal tally over eval-sets/ferry-faq.jsonl.
 
-Run: /work/.venv-ref/bin/python demo/make_demo_models.py     (pinned versions:
+Run: .venv-ref/bin/python demo/make_demo_models.py     (pinned versions:
 tests/reference/requirements.txt). Everything is seeded; CPU, two threads.
 """
 

@@ -19,7 +19,7 @@ embeddings are tied (what `save_pretrained` does). A merged state dict whose `lm
 still shares storage with the embeddings is written the same way.
 
 Run from the repository root:
-    /work/.venv-ref/bin/python tests/reference/make_lora_fixtures.py
+    .venv-ref/bin/python tests/reference/make_lora_fixtures.py
 """
 
 import json

@@ -13,7 +13,7 @@ shared), with metric_max_over_ground_truths for several references.
 
 All pairs are invented (a fictional island ferry cooperative's FAQ).
 
-usage: /work/.venv-ref/bin/python tests/reference/make_rouge_fixture.py
+usage: .venv-ref/bin/python tests/reference/make_rouge_fixture.py
 requirements: tests/reference/requirements.txt
 """
 import collections
