@@ -11,6 +11,13 @@ use std::path::Path;
 
 /// Writes `bytes` to `path` atomically: a temporary file beside it, fsync, rename.
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
+    commit_staged(path, stage(path, bytes)?)
+}
+
+/// Writes `bytes` to a synced temporary file in `path`'s directory (created if needed), to be
+/// renamed into place by [`commit_staged`]. Staging several files first and renaming them
+/// after gives "all or nothing" for a group of outputs.
+pub fn stage(path: &Path, bytes: &[u8]) -> Result<tempfile::NamedTempFile> {
     let dir = match path.parent() {
         Some(p) if !p.as_os_str().is_empty() => p,
         _ => Path::new("."),
@@ -25,6 +32,11 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
     tmp.write_all(bytes)
         .and_then(|_| tmp.as_file().sync_all())
         .map_err(|e| Error::file(path, format!("cannot write: {e}")))?;
+    Ok(tmp)
+}
+
+/// Renames a file made by [`stage`] into place.
+pub fn commit_staged(path: &Path, tmp: tempfile::NamedTempFile) -> Result<()> {
     tmp.persist(path)
         .map_err(|e| Error::file(path, format!("cannot rename into place: {e}")))?;
     Ok(())

@@ -12,13 +12,14 @@
 
 use super::answer::{self, AnswerSettings};
 use super::grade::grade_set;
+use super::weigh::describe_inputs;
 use super::Outcome;
 use crate::cli::VetArgs;
 use crate::error::{Error, Result};
 use crate::fsutil;
 use crate::policy::Policy;
 use crate::questions::QuestionSet;
-use crate::report::{self, summary};
+use crate::report;
 use crate::score::RefusalDetector;
 use crate::weigh::{self, Settings, WeighInput};
 use std::path::{Path, PathBuf};
@@ -55,15 +56,16 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
         g.threads,
         g.ignore_eos,
     )?;
-    let cand_settings = AnswerSettings::new(
-        &inputs.model,
-        Some(&inputs.adapter),
-        g.system.as_deref(),
-        inputs.max_new_tokens,
-        g.batch,
-        g.threads,
-        g.ignore_eos,
-    )?;
+    if !inputs.adapter.is_dir() {
+        return Err(Error::usage(format!(
+            "--adapter {}: not a directory (expected a peft adapter directory with adapter_config.json and adapter_model.safetensors)",
+            inputs.adapter.display()
+        )));
+    }
+    let cand_settings = AnswerSettings {
+        adapter: Some(inputs.adapter.clone()),
+        ..base_settings.clone()
+    };
     let stats = Settings::new(args.stats.resamples, args.stats.seed, args.stats.confidence)?;
     let policy = Policy::load_or_default(args.stats.policy.as_deref())?;
     let set = QuestionSet::load(&inputs.questions)?;
@@ -75,7 +77,6 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
     eprintln!("liftgate: vet: report directory {}", dir.display());
     match vet_into(
         &dir,
-        &inputs,
         &base_settings,
         &cand_settings,
         &stats,
@@ -94,7 +95,6 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
 #[allow(clippy::too_many_arguments)]
 fn vet_into(
     dir: &Path,
-    inputs: &Inputs,
     base_settings: &AnswerSettings,
     cand_settings: &AnswerSettings,
     stats: &Settings,
@@ -131,24 +131,12 @@ fn vet_into(
     }
     let (baseline_path, baseline) = &grade_paths[0];
     let (candidate_path, candidate) = &grade_paths[1];
-    let policy_source = match &args.stats.policy {
-        Some(p) => summary::PolicySource {
-            path: Some(p.display().to_string()),
-            sha256: Some(fsutil::sha256_file(p)?),
-            source: "file".into(),
-        },
-        None => summary::PolicySource {
-            path: None,
-            sha256: None,
-            source: "built-in".into(),
-        },
-    };
-    let summary_inputs = summary::Inputs {
-        questions: input_file(&inputs.questions, set.fingerprint.clone()),
-        baseline: input_file(baseline_path, fsutil::sha256_file(baseline_path)?),
-        candidate: input_file(candidate_path, fsutil::sha256_file(candidate_path)?),
-        policy: policy_source,
-    };
+    let summary_inputs = describe_inputs(
+        set,
+        baseline_path,
+        candidate_path,
+        args.stats.policy.as_deref(),
+    )?;
     eprintln!(
         "liftgate: vet: weighing ({} resamples, seed {})",
         stats.resamples, stats.seed
@@ -169,13 +157,6 @@ fn vet_into(
     } else {
         Outcome::NoGo
     })
-}
-
-fn input_file(path: &Path, sha256: String) -> summary::InputFile {
-    summary::InputFile {
-        path: path.display().to_string(),
-        sha256,
-    }
 }
 
 /// The demo when no model is given, else the user's three paths (clap makes them all-or-none).

@@ -19,24 +19,12 @@ pub fn run(args: &WeighArgs) -> Result<Outcome> {
     let set = QuestionSet::load(&args.questions)?;
     let baseline = grades::load_for_set(&args.baseline, &set)?;
     let candidate = grades::load_for_set(&args.candidate, &set)?;
-    let policy_source = match &args.stats.policy {
-        Some(p) => summary::PolicySource {
-            path: Some(p.display().to_string()),
-            sha256: Some(fsutil::sha256_file(p)?),
-            source: "file".into(),
-        },
-        None => summary::PolicySource {
-            path: None,
-            sha256: None,
-            source: "built-in".into(),
-        },
-    };
-    let inputs = summary::Inputs {
-        questions: input_file(&args.questions, set.fingerprint.clone()),
-        baseline: input_file(&args.baseline, fsutil::sha256_file(&args.baseline)?),
-        candidate: input_file(&args.candidate, fsutil::sha256_file(&args.candidate)?),
-        policy: policy_source,
-    };
+    let inputs = describe_inputs(
+        &set,
+        &args.baseline,
+        &args.candidate,
+        args.stats.policy.as_deref(),
+    )?;
     eprintln!(
         "liftgate: weighing {} questions ({} resamples, seed {})",
         set.len(),
@@ -58,6 +46,34 @@ pub fn run(args: &WeighArgs) -> Result<Outcome> {
         Outcome::Success
     } else {
         Outcome::NoGo
+    })
+}
+
+/// The inputs a summary records: paths and SHA-256 fingerprints of the set, both grades files
+/// and the policy (or "built-in").
+pub fn describe_inputs(
+    set: &QuestionSet,
+    baseline: &Path,
+    candidate: &Path,
+    policy: Option<&Path>,
+) -> Result<summary::Inputs> {
+    let policy = match policy {
+        Some(p) => summary::PolicySource {
+            path: Some(p.display().to_string()),
+            sha256: Some(fsutil::sha256_file(p)?),
+            source: "file".into(),
+        },
+        None => summary::PolicySource {
+            path: None,
+            sha256: None,
+            source: "built-in".into(),
+        },
+    };
+    Ok(summary::Inputs {
+        questions: input_file(&set.path, set.fingerprint.clone()),
+        baseline: input_file(baseline, fsutil::sha256_file(baseline)?),
+        candidate: input_file(candidate, fsutil::sha256_file(candidate)?),
+        policy,
     })
 }
 

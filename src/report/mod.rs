@@ -8,7 +8,7 @@ pub mod summary;
 pub mod terminal;
 
 use crate::error::{Error, Result};
-use std::io::Write;
+use crate::fsutil;
 use std::path::Path;
 use summary::Summary;
 
@@ -39,24 +39,14 @@ pub fn write_report_dir(dir: &Path, summary: &Summary) -> Result<()> {
             markdown::Markdown.render(summary).into_bytes(),
         ),
     ];
-    std::fs::create_dir_all(dir)
-        .map_err(|e| Error::file(dir, format!("cannot create the report directory: {e}")))?;
-    let mut temps = Vec::new();
+    let mut staged = Vec::new();
     for (name, bytes) in &files {
-        let mut tmp = tempfile::Builder::new()
-            .prefix(".liftgate-")
-            .suffix(".tmp")
-            .tempfile_in(dir)
-            .map_err(|e| Error::file(dir, format!("cannot create a temporary file: {e}")))?;
-        tmp.write_all(bytes)
-            .and_then(|_| tmp.as_file().sync_all())
-            .map_err(|e| Error::file(dir.join(name), format!("cannot write: {e}")))?;
-        temps.push((name, tmp));
-    }
-    for (name, tmp) in temps {
         let path = dir.join(name);
-        tmp.persist(&path)
-            .map_err(|e| Error::file(&path, format!("cannot rename into place: {e}")))?;
+        let tmp = fsutil::stage(&path, bytes)?;
+        staged.push((path, tmp));
+    }
+    for (path, tmp) in staged {
+        fsutil::commit_staged(&path, tmp)?;
     }
     Ok(())
 }
