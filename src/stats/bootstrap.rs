@@ -111,9 +111,10 @@ fn interleave<const K: usize>(columns: &[&[f64]]) -> Vec<[f64; K]> {
         .collect()
 }
 
-/// Rows up to this many bytes are resampled by direct gathers (they stay in cache);
-/// larger ones through counts (see [`sums_k`]).
-const GATHER_BYTES: usize = 256 * 1024;
+/// Rows up to this many bytes are resampled by direct gathers: the random reads are served
+/// from the last-level cache, which measured faster than the counts pass for a 100,000-row,
+/// 3-metric set (2.4 MB). Larger rows go through counts (see [`sums_k`]).
+const GATHER_BYTES: usize = 8 * 1024 * 1024;
 
 /// Resample sums by adding the drawn rows in draw order (small data), four lanes
 /// (draws 4j..4j+3 into lanes 0..3) so the additions overlap.
@@ -384,31 +385,32 @@ mod tests {
 
     #[test]
     fn large_data_goes_through_counts_with_the_same_guarantees() {
-        // 12,000 rows × 3 columns = 288 KB > GATHER_BYTES: the counts path.
-        let a: Vec<f64> = (0..12_000)
+        // 360,000 rows × 3 columns = 8.6 MB > GATHER_BYTES: the counts path.
+        let rows = 360_000;
+        let a: Vec<f64> = (0..rows)
             .map(|i| ((i * 7919) % 1000) as f64 / 1000.0 - 0.4)
             .collect();
         let b: Vec<f64> = a.iter().map(|x| 2.0 * x).collect();
         let c: Vec<f64> = a.iter().map(|x| -x).collect();
-        let m = resample_means(&[&a, &b, &c], 200, 5, 1);
+        assert!(rows * 3 * 8 > GATHER_BYTES);
+        let m = resample_means(&[&a, &b, &c], 64, 5, 1);
         let pool = rayon::ThreadPoolBuilder::new()
             .num_threads(1)
             .build()
             .unwrap();
-        assert_eq!(pool.install(|| resample_means(&[&a, &b, &c], 200, 5, 1)), m);
+        assert_eq!(pool.install(|| resample_means(&[&a, &b, &c], 64, 5, 1)), m);
         for ((a_r, b_r), c_r) in m[0].iter().zip(&m[1]).zip(&m[2]) {
             assert_eq!(2.0 * a_r, *b_r);
             assert_eq!(-a_r, *c_r);
         }
-        // The resample means scatter around the mean with sd ≈ sd(a)/√n ≈ 0.0026.
-        let mean_a = a.iter().sum::<f64>() / a.len() as f64;
-        let avg = m[0].iter().sum::<f64>() / 200.0;
-        assert!((avg - mean_a).abs() < 0.001, "{avg} vs {mean_a}");
+        // The resample means scatter around the mean with sd ≈ sd(a)/√n ≈ 0.00048 (sd of a
+        // uniform grid on [0, 1) ≈ 0.2887); 64 resamples estimate it within about 9 %.
+        let mean_a = a.iter().sum::<f64>() / rows as f64;
+        let avg = m[0].iter().sum::<f64>() / 64.0;
+        assert!((avg - mean_a).abs() < 0.0003, "{avg} vs {mean_a}");
         let spread = crate::stats::sample_sd(&m[0]).unwrap();
-        assert!(
-            (spread - 0.2887 / (12_000f64).sqrt()).abs() < 0.0006,
-            "{spread}"
-        );
+        let want = 0.2887 / (rows as f64).sqrt();
+        assert!((spread - want).abs() < 0.3 * want, "{spread} vs {want}");
     }
 
     #[test]

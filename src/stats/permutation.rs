@@ -59,6 +59,7 @@ pub fn sign_flip_test(diffs: &[f64], resamples: usize, seed: u64, domain: u32) -
             exact: true,
         };
     }
+    let (groups, singles) = group_magnitudes(&nz);
     let chunks = resamples.div_ceil(CHUNK);
     let b: u64 = (0..chunks)
         .into_par_iter()
@@ -67,12 +68,26 @@ pub fn sign_flip_test(diffs: &[f64], resamples: usize, seed: u64, domain: u32) -
             let count = CHUNK.min(resamples - chunk * CHUNK);
             let mut hits = 0u64;
             for _ in 0..count {
+                let mut grouped = 0.0f64;
+                for g in &groups {
+                    let mut left = g.count;
+                    let mut negative = 0u32;
+                    while left >= 64 {
+                        negative += rng.next_u64().count_ones();
+                        left -= 64;
+                    }
+                    if left > 0 {
+                        negative += (rng.next_u64() & ((1u64 << left) - 1)).count_ones();
+                    }
+                    grouped += g.value * (g.count as f64 - 2.0 * negative as f64);
+                }
                 let mut acc = [0.0f64; 8];
-                for block in nz.chunks(64) {
+                for block in singles.chunks(64) {
                     flip_accumulate(&mut acc, block, rng.next_u64());
                 }
-                let s = ((acc[0] + acc[1]) + (acc[2] + acc[3]))
-                    + ((acc[4] + acc[5]) + (acc[6] + acc[7]));
+                let s = grouped
+                    + (((acc[0] + acc[1]) + (acc[2] + acc[3]))
+                        + ((acc[4] + acc[5]) + (acc[6] + acc[7])));
                 if s.abs() >= bar {
                     hits += 1;
                 }
@@ -85,6 +100,39 @@ pub fn sign_flip_test(diffs: &[f64], resamples: usize, seed: u64, domain: u32) -
         flips: resamples as u64,
         exact: false,
     }
+}
+
+/// Magnitudes shared by at least this many non-zero differences are flipped as a group.
+const GROUP_MIN: u32 = 16;
+
+/// One magnitude `value` = |d| shared by `count` non-zero differences.
+struct Group {
+    value: f64,
+    count: u32,
+}
+
+/// Splits the non-zero differences by magnitude. Under the null each `d_i` is `±|d_i|` with
+/// probability ½ each, independently, so only the magnitudes matter; the `count` differences
+/// that share one magnitude `v` contribute `v · (count − 2K)` to a flipped sum, where
+/// `K ~ Binomial(count, ½)` is the number flipped negative, drawn exactly as the number of set
+/// bits in `count` random bits. Magnitudes shared by at least [`GROUP_MIN`] differences become
+/// [`Group`]s; the others are returned one by one, to be flipped term by term. The order is
+/// fixed (by magnitude), so the flipped sums are reproducible.
+fn group_magnitudes(nz: &[f64]) -> (Vec<Group>, Vec<f64>) {
+    let mut mags: Vec<f64> = nz.iter().map(|d| d.abs()).collect();
+    mags.sort_by(|a, b| a.total_cmp(b));
+    let mut groups = Vec::new();
+    let mut singles = Vec::new();
+    for run in mags.chunk_by(|a, b| a.to_bits() == b.to_bits()) {
+        match u32::try_from(run.len()) {
+            Ok(count) if count >= GROUP_MIN => groups.push(Group {
+                value: run[0],
+                count,
+            }),
+            _ => singles.extend_from_slice(run),
+        }
+    }
+    (groups, singles)
 }
 
 /// Σ ± block[j], the sign of term j flipped when bit j of `mask` is set (block ≤ 64 long).
@@ -185,5 +233,41 @@ mod tests {
             .unwrap();
         let b = pool.install(|| sign_flip_test(&d, 2000, 9, 4));
         assert_eq!(a, b);
+    }
+
+    #[test]
+    fn grouped_magnitudes_match_the_binomial_null() {
+        // 300 differences of +1 and 200 of −1 (one magnitude, flipped as a group), plus three
+        // distinct small ones flipped term by term. T = 100 + 0.003. Under the null the ±1 part
+        // is 500 − 2K with K ~ Binomial(500, ½), so (the small terms shift |T*| by at most
+        // 0.006 and the ±1 part is even) p = P(|500 − 2K| ≥ 100) = 2·P(K ≤ 200), computed
+        // here from the binomial pmf (textbook definition).
+        let mut d = vec![1.0; 300];
+        d.extend(std::iter::repeat_n(-1.0, 200));
+        d.extend([0.001, 0.0015, 0.0005]);
+        let mut pmf = 0.5f64.powi(500);
+        let mut tail = pmf;
+        for k in 1..=200 {
+            pmf *= (500 - k + 1) as f64 / k as f64;
+            tail += pmf;
+        }
+        let want = 2.0 * tail;
+        let got = sign_flip_test(&d, 20_000, 5, 2);
+        assert!(!got.exact);
+        // want ≈ 1e-5: with m = 20,000 almost no flip reaches T, so p is (b+1)/(m+1).
+        assert!(got.p_value < 5.0 / 20_001.0, "{got:?} vs {want}");
+        // A weaker lift: 260 of +1, 240 of −1, T = 20: p = 2·P(K ≤ 240) ≈ 0.39.
+        let mut d = vec![1.0; 260];
+        d.extend(std::iter::repeat_n(-1.0, 240));
+        let mut pmf = 0.5f64.powi(500);
+        let mut tail = pmf;
+        for k in 1..=240 {
+            pmf *= (500 - k + 1) as f64 / k as f64;
+            tail += pmf;
+        }
+        let want = 2.0 * tail;
+        let got = sign_flip_test(&d, 20_000, 5, 2);
+        // Binomial standard error of p at m = 20,000 is below 0.0035; allow 4 of them.
+        assert!((got.p_value - want).abs() < 0.014, "{got:?} vs {want}");
     }
 }
