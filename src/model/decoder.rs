@@ -292,7 +292,14 @@ impl Decoder {
                 None => &masks.0,
                 Some(_) => masks.1.as_ref().unwrap_or(&masks.0),
             };
-            h = self.layer_forward(i, layer, &h, b, l, &cos, &sin, mask, cache)?;
+            let step = Step {
+                b,
+                l,
+                cos: &cos,
+                sin: &sin,
+                mask,
+            };
+            h = self.layer_forward(i, layer, &h, &step, cache)?;
         }
         cache.advance(l);
         let hidden = self.spec.hidden_size;
@@ -308,21 +315,16 @@ impl Decoder {
         Ok(logits.to_dtype(DType::F32)?)
     }
 
-    #[allow(clippy::too_many_arguments)]
     fn layer_forward(
         &self,
         idx: usize,
         layer: &Layer,
         h: &Tensor,
-        b: usize,
-        l: usize,
-        cos: &Tensor,
-        sin: &Tensor,
-        mask: &Tensor,
+        step: &Step,
         cache: &mut KvCache,
     ) -> Result<Tensor> {
         let x = layer.input_norm.forward(h)?;
-        let a = self.attention(idx, layer, &x, b, l, cos, sin, mask, cache)?;
+        let a = self.attention(idx, layer, &x, step, cache)?;
         let h = match &layer.ff_norms {
             // Gemma2: post_attention_layernorm normalises the attention output.
             Some(_) => (h + layer.post_attn_norm.forward(&a)?)?,
@@ -356,19 +358,21 @@ impl Decoder {
         layer.down.forward(&(act * up)?)
     }
 
-    #[allow(clippy::too_many_arguments)]
     fn attention(
         &self,
         idx: usize,
         layer: &Layer,
         x: &Tensor,
-        b: usize,
-        l: usize,
-        cos: &Tensor,
-        sin: &Tensor,
-        mask: &Tensor,
+        step: &Step,
         cache: &mut KvCache,
     ) -> Result<Tensor> {
+        let Step {
+            b,
+            l,
+            cos,
+            sin,
+            mask,
+        } = *step;
         let s = &self.spec;
         let (nh, nkv, hd) = (s.num_heads, s.num_kv_heads, s.head_dim);
         let (q, k, v) = match &layer.qkv {
@@ -626,6 +630,17 @@ pub fn additive_mask(
         }
     }
     m
+}
+
+/// What every layer of one forward step shares: batch and step length, the RoPE tables and the
+/// additive attention mask chosen for the layer.
+#[derive(Clone, Copy)]
+struct Step<'a> {
+    b: usize,
+    l: usize,
+    cos: &'a Tensor,
+    sin: &'a Tensor,
+    mask: &'a Tensor,
 }
 
 #[cfg(test)]
