@@ -222,6 +222,37 @@ pub fn generate_batch(
     Ok(out)
 }
 
+/// Greedy-decodes `prompts[i]` for every `i` in `todo`, at most `slots` sequences at a time,
+/// and hands each finished answer to `on_done(i, answer)` as soon as it is complete (so a
+/// caller can save it at once). Answers arrive in completion order, not in `todo` order.
+/// `on_step` gets the number of tokens produced by each decoding step (for progress).
+///
+/// An error from `on_done` stops decoding and is returned.
+pub fn generate_stream(
+    decoder: &Decoder,
+    prompts: &[Vec<u32>],
+    todo: &[usize],
+    settings: &GenerationSettings,
+    slots: usize,
+    on_done: &mut dyn FnMut(usize, Generated) -> Result<()>,
+    on_step: &mut dyn FnMut(usize),
+) -> Result<()> {
+    if slots == 0 {
+        return Err(Error::internal("generate_stream needs at least one slot"));
+    }
+    if let Some(&i) = todo.iter().find(|&&i| i >= prompts.len()) {
+        return Err(Error::internal(format!("job {i} has no prompt")));
+    }
+    for chunk in todo.chunks(slots) {
+        let batch: Vec<Vec<u32>> = chunk.iter().map(|&i| prompts[i].clone()).collect();
+        let out = generate_batch(decoder, &batch, settings, on_step)?;
+        for (&i, g) in chunk.iter().zip(out) {
+            on_done(i, g)?;
+        }
+    }
+    Ok(())
+}
+
 /// Trims surrounding whitespace the way Python's `str.strip()` does (the reference answers
 /// are `decode(...).strip()`): Unicode White_Space plus the separators U+001C–U+001F, which
 /// Python counts as whitespace and Rust's `str::trim` does not.

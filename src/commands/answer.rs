@@ -223,18 +223,23 @@ pub fn answer_set(settings: &AnswerSettings, set: &QuestionSet) -> Result<Answer
     let started = Instant::now();
     let mut new_tokens_total = 0usize;
     let mut results: Vec<Option<generate::Generated>> = vec![None; prompts.len()];
-    for chunk in order.chunks(settings.batch) {
-        let batch: Vec<Vec<u32>> = chunk.iter().map(|&i| prompts[i].clone()).collect();
-        let out = generate::generate_batch(&loaded.decoder, &batch, &gen, &mut |n| {
+    generate::generate_stream(
+        &loaded.decoder,
+        &prompts,
+        &order,
+        &gen,
+        settings.batch,
+        &mut |i, g| {
+            results[i] = Some(g);
+            bar.inc(1);
+            Ok(())
+        },
+        &mut |n| {
             new_tokens_total += n;
             let secs = started.elapsed().as_secs_f64().max(1e-9);
             bar.set_message(format!("{:.1} tokens/s", new_tokens_total as f64 / secs));
-        })?;
-        for (&i, g) in chunk.iter().zip(out) {
-            results[i] = Some(g);
-        }
-        bar.inc(chunk.len() as u64);
-    }
+        },
+    )?;
     bar.finish_and_clear();
     let secs = started.elapsed().as_secs_f64();
     if settings.progress {
