@@ -1,14 +1,14 @@
 //! Greedy generation over a batch of prompts with the KV cache, as transformers 5.24
 //! `generate(do_sample=False)` does (model-formats.md §3.2–§3.3).
 //!
-//! Prompts of different lengths are left-padded into one batch: the padding mask hides pad
-//! keys, position ids count only real tokens (`cumsum(mask) − 1`), so each row computes what it
-//! would compute alone. A finished row keeps its slot (fed the pad id, its output ignored) until
-//! the whole batch is done; refilling slots belongs to the throughput work.
+//! Sequences run in the slots of a preallocated KV cache with no padding: every prompt keeps
+//! position ids 0, 1, 2, … as it would alone (model-formats.md §3.3), a finished slot takes the
+//! next prompt at once, and the prompt prefix shared by every question is computed once
+//! (`generate_stream`).
 
 use crate::answers::Finish;
 use crate::error::{Error, Result};
-use crate::model::decoder::{Decoder, StepInput};
+use crate::model::decoder::{Decoder, Segment, Workspace};
 
 /// How the next token is chosen. Only greedy decoding exists; a sampling mode would be a new
 /// variant, and every place that must handle it becomes a compile error.
@@ -36,8 +36,6 @@ pub struct GenerationSettings {
     pub eos: Vec<u32>,
     /// Generate exactly `max_new_tokens`, never stopping on EOS.
     pub ignore_eos: bool,
-    /// Token fed to finished rows and used for left padding (never attended to).
-    pub pad: u32,
     /// transformers' RepetitionPenaltyLogitsProcessor: every id already in the row (prompt and
     /// generated) has its score s replaced by s·p if s < 0, else s/p. None: off.
     pub repetition_penalty: Option<f32>,
@@ -84,148 +82,50 @@ pub fn apply_repetition_penalty(scores: &mut [f32], seen: &[bool], p: f32) {
     }
 }
 
-/// The left-padded prefill input for `prompts`.
-pub fn prefill_input(prompts: &[Vec<u32>], pad: u32) -> StepInput {
-    let b = prompts.len();
-    let len = prompts.iter().map(Vec::len).max().unwrap_or(0);
-    let mut tokens = Vec::with_capacity(b * len);
-    let mut positions = Vec::with_capacity(b * len);
-    let mut key_mask = Vec::with_capacity(b * len);
-    for p in prompts {
-        let padn = len - p.len();
-        tokens.extend(std::iter::repeat_n(pad, padn));
-        tokens.extend_from_slice(p);
-        positions.extend(std::iter::repeat_n(0, padn));
-        positions.extend(0..p.len() as u32);
-        key_mask.extend(std::iter::repeat_n(0u8, padn));
-        key_mask.extend(std::iter::repeat_n(1u8, p.len()));
-    }
-    StepInput {
-        batch: b,
-        len,
-        tokens,
-        positions,
-        key_mask,
-    }
+/// Tokens one forward call takes at most (beyond one per decoding sequence): long prompts are
+/// prefilled in chunks of this size, so the scratch buffers stay small.
+const STEP_TOKENS: usize = 512;
+
+/// A sequence in a cache slot: its prompt tail still to feed, then one token a step.
+struct Active {
+    job: usize,
+    /// Tokens to feed; `fed` of them are in the cache.
+    pending: Vec<u32>,
+    fed: usize,
+    out: Generated,
+    /// Ids the sequence holds so far (only kept when a repetition penalty is set).
+    seen: Vec<bool>,
+    started: std::time::Instant,
 }
 
-/// Greedy-decodes every prompt of the batch. `on_token` is called after each decoding step with
-/// the number of tokens produced in that step (for progress).
-pub fn generate_batch(
-    decoder: &Decoder,
-    prompts: &[Vec<u32>],
-    settings: &GenerationSettings,
-    on_step: &mut dyn FnMut(usize),
-) -> Result<Vec<Generated>> {
-    let start = std::time::Instant::now();
-    let b = prompts.len();
-    if b == 0 {
-        return Ok(Vec::new());
-    }
-    if let Some(i) = prompts.iter().position(Vec::is_empty) {
-        return Err(Error::internal(format!("prompt {i} of the batch is empty")));
-    }
-    let mut out: Vec<Generated> = prompts
-        .iter()
-        .map(|p| Generated {
-            tokens: Vec::new(),
-            finish: Finish::Length,
-            prompt_tokens: p.len(),
-            ms: 0,
-        })
-        .collect();
-    if settings.max_new_tokens == 0 {
-        return Ok(out);
-    }
-    let mut cache = decoder.new_cache();
-    let mut input = prefill_input(prompts, settings.pad);
-    let mut key_mask = input.key_mask.clone();
-    let mut next_pos: Vec<u32> = prompts.iter().map(|p| p.len() as u32).collect();
-    let mut done = vec![false; b];
-    let vocab = decoder.spec().vocab_size;
-    // Per row: which ids the sequence holds so far (only kept when a penalty is set).
-    let mut seen: Vec<Vec<bool>> = match settings.repetition_penalty {
-        Some(_) => prompts
-            .iter()
-            .map(|p| {
-                let mut s = vec![false; vocab];
-                for &t in p {
-                    if let Some(x) = s.get_mut(t as usize) {
-                        *x = true;
-                    }
-                }
-                s
-            })
-            .collect(),
-        None => Vec::new(),
+/// Length of the prefix every prompt of `todo` shares, kept at least one token short of the
+/// shortest prompt so each still has a token whose logits start its answer.
+fn shared_prefix_len(prompts: &[Vec<u32>], todo: &[usize]) -> usize {
+    let Some((&first, rest)) = todo.split_first() else {
+        return 0;
     };
-    loop {
-        let logits = decoder.forward(&input, &mut cache)?;
-        let mut logits: Vec<f32> = logits.flatten_all()?.to_vec1()?;
-        let mut produced = 0;
-        let mut step_tokens = Vec::with_capacity(b);
-        for row in 0..b {
-            if done[row] {
-                step_tokens.push(settings.pad);
-                continue;
-            }
-            let scores = &mut logits[row * vocab..(row + 1) * vocab];
-            if let Some(p) = settings.repetition_penalty {
-                apply_repetition_penalty(scores, &seen[row], p);
-            }
-            let tok = match settings.decoding {
-                Decoding::Greedy => argmax(scores) as u32,
-            };
-            if let Some(x) = seen.get_mut(row).and_then(|s| s.get_mut(tok as usize)) {
-                *x = true;
-            }
-            produced += 1;
-            let g = &mut out[row];
-            g.tokens.push(tok);
-            if !settings.ignore_eos && settings.eos.contains(&tok) {
-                g.finish = Finish::Eos;
-                done[row] = true;
-            } else if g.tokens.len() >= settings.max_new_tokens {
-                g.finish = Finish::Length;
-                done[row] = true;
-            }
-            if done[row] {
-                g.ms = start.elapsed().as_millis() as u64;
-            }
-            step_tokens.push(tok);
-        }
-        on_step(produced);
-        if done.iter().all(|&d| d) {
-            break;
-        }
-        // Next step: one token a row; every row's mask grows by one real slot.
-        let total = cache.len() + 1;
-        let prev = total - 1;
-        let mut new_mask = Vec::with_capacity(b * total);
-        for row in 0..b {
-            new_mask.extend_from_slice(&key_mask[row * prev..(row + 1) * prev]);
-            new_mask.push(1);
-        }
-        key_mask = new_mask;
-        let positions = next_pos.clone();
-        for p in next_pos.iter_mut() {
-            *p += 1;
-        }
-        input = StepInput {
-            batch: b,
-            len: 1,
-            tokens: step_tokens,
-            positions,
-            key_mask: key_mask.clone(),
-        };
+    let mut n = prompts[first].len();
+    for &i in rest {
+        n = prompts[first][..n]
+            .iter()
+            .zip(&prompts[i])
+            .take_while(|(a, b)| a == b)
+            .count();
     }
-    Ok(out)
+    let shortest = todo.iter().map(|&i| prompts[i].len()).min().unwrap_or(0);
+    n.min(shortest.saturating_sub(1))
 }
 
-/// Greedy-decodes `prompts[i]` for every `i` in `todo`, at most `slots` sequences at a time,
-/// and hands each finished answer to `on_done(i, answer)` as soon as it is complete (so a
-/// caller can save it at once). Answers arrive in completion order, not in `todo` order.
-/// `on_step` gets the number of tokens produced by each decoding step (for progress).
+/// Greedy-decodes `prompts[i]` for every `i` in `todo`, `slots` sequences at a time, and hands
+/// each finished answer to `on_done(i, answer)` as soon as it is complete (so a caller can save
+/// it at once). Answers arrive in completion order, not in `todo` order. `on_step` gets the
+/// number of tokens produced by each decoding step (for progress).
+///
+/// Continuous refill: a slot whose sequence finishes takes the next prompt of `todo` in the
+/// very next step, where its prefill runs together with the other slots' decoding. The prefix
+/// that every prompt shares (chat-template preamble, system message) is computed once and
+/// copied into each slot. Each sequence's arithmetic does not depend on its neighbours, so the
+/// answers equal batch-1 answers.
 ///
 /// An error from `on_done` stops decoding and is returned.
 pub fn generate_stream(
@@ -243,14 +143,180 @@ pub fn generate_stream(
     if let Some(&i) = todo.iter().find(|&&i| i >= prompts.len()) {
         return Err(Error::internal(format!("job {i} has no prompt")));
     }
-    for chunk in todo.chunks(slots) {
-        let batch: Vec<Vec<u32>> = chunk.iter().map(|&i| prompts[i].clone()).collect();
-        let out = generate_batch(decoder, &batch, settings, on_step)?;
-        for (&i, g) in chunk.iter().zip(out) {
-            on_done(i, g)?;
+    if let Some(&i) = todo.iter().find(|&&i| prompts[i].is_empty()) {
+        return Err(Error::internal(format!("prompt {i} is empty")));
+    }
+    let fresh = |i: usize| Generated {
+        tokens: Vec::new(),
+        finish: Finish::Length,
+        prompt_tokens: prompts[i].len(),
+        ms: 0,
+    };
+    if todo.is_empty() {
+        return Ok(());
+    }
+    if settings.max_new_tokens == 0 {
+        for &i in todo {
+            on_done(i, fresh(i))?;
         }
+        return Ok(());
+    }
+    let slots = slots.min(todo.len());
+    let longest = todo.iter().map(|&i| prompts[i].len()).max().unwrap_or(0);
+    let mut cache = decoder.new_cache(slots, longest + settings.max_new_tokens);
+    let mut ws = Workspace::default();
+    let prefix = if todo.len() > 1 {
+        shared_prefix_len(prompts, todo)
+    } else {
+        0
+    };
+    if prefix > 0 {
+        let seg = [Segment {
+            slot: 0,
+            tokens: &prompts[todo[0]][..prefix],
+        }];
+        decoder.forward(&seg, &mut cache, &mut ws)?;
+        cache.save_prefix(0);
+        cache.reset(0);
+    }
+    let vocab = decoder.spec().vocab_size;
+    let mut queue = todo.iter().copied();
+    let mut active: Vec<Option<Active>> = (0..slots).map(|_| None).collect();
+    let mut takes: Vec<(usize, usize)> = Vec::with_capacity(slots);
+    let mut row: Vec<f32> = Vec::new();
+    loop {
+        for (slot, a) in active.iter_mut().enumerate() {
+            if a.is_none() {
+                if let Some(job) = queue.next() {
+                    let p = cache.load_prefix(slot);
+                    let seen = match settings.repetition_penalty {
+                        Some(_) => {
+                            let mut s = vec![false; vocab];
+                            for &t in &prompts[job] {
+                                if let Some(x) = s.get_mut(t as usize) {
+                                    *x = true;
+                                }
+                            }
+                            s
+                        }
+                        None => Vec::new(),
+                    };
+                    *a = Some(Active {
+                        job,
+                        pending: prompts[job][p..].to_vec(),
+                        fed: 0,
+                        out: fresh(job),
+                        seen,
+                        started: std::time::Instant::now(),
+                    });
+                }
+            }
+        }
+        // One token for every sequence, then prompt chunks up to the step budget.
+        takes.clear();
+        let mut budget = STEP_TOKENS.max(slots);
+        for (slot, a) in active.iter().enumerate() {
+            if a.is_some() {
+                takes.push((slot, 1));
+                budget -= 1;
+            }
+        }
+        if takes.is_empty() {
+            break;
+        }
+        for (slot, take) in takes.iter_mut() {
+            let a = active[*slot].as_ref().expect("slot is active");
+            let more = (a.pending.len() - a.fed - 1).min(budget);
+            *take += more;
+            budget -= more;
+        }
+        let segs: Vec<Segment> = takes
+            .iter()
+            .map(|&(slot, take)| {
+                let a = active[slot].as_ref().expect("slot is active");
+                Segment {
+                    slot,
+                    tokens: &a.pending[a.fed..a.fed + take],
+                }
+            })
+            .collect();
+        let logits = decoder.forward(&segs, &mut cache, &mut ws)?;
+        drop(segs);
+        let mut produced = 0;
+        for (k, &(slot, take)) in takes.iter().enumerate() {
+            let a = active[slot].as_mut().expect("slot is active");
+            a.fed += take;
+            if a.fed < a.pending.len() {
+                continue; // still prefilling
+            }
+            let scores = &logits[k * vocab..(k + 1) * vocab];
+            let tok = match settings.repetition_penalty {
+                Some(p) => {
+                    row.clear();
+                    row.extend_from_slice(scores);
+                    apply_repetition_penalty(&mut row, &a.seen, p);
+                    argmax(&row)
+                }
+                None => argmax(scores),
+            } as u32;
+            if let Some(x) = a.seen.get_mut(tok as usize) {
+                *x = true;
+            }
+            produced += 1;
+            a.out.tokens.push(tok);
+            let finish = if !settings.ignore_eos && settings.eos.contains(&tok) {
+                Some(Finish::Eos)
+            } else if a.out.tokens.len() >= settings.max_new_tokens {
+                Some(Finish::Length)
+            } else {
+                None
+            };
+            match finish {
+                Some(f) => {
+                    let mut done = active[slot].take().expect("slot is active");
+                    done.out.finish = f;
+                    done.out.ms = done.started.elapsed().as_millis() as u64;
+                    cache.reset(slot);
+                    on_done(done.job, done.out)?;
+                }
+                None => {
+                    a.pending.clear();
+                    a.pending.push(tok);
+                    a.fed = 0;
+                }
+            }
+        }
+        on_step(produced);
     }
     Ok(())
+}
+
+/// Greedy-decodes every prompt together (one slot each) and returns the answers in prompt
+/// order. `on_step` is called after each decoding step with the number of tokens produced.
+pub fn generate_batch(
+    decoder: &Decoder,
+    prompts: &[Vec<u32>],
+    settings: &GenerationSettings,
+    on_step: &mut dyn FnMut(usize),
+) -> Result<Vec<Generated>> {
+    let todo: Vec<usize> = (0..prompts.len()).collect();
+    let mut out: Vec<Option<Generated>> = vec![None; prompts.len()];
+    generate_stream(
+        decoder,
+        prompts,
+        &todo,
+        settings,
+        prompts.len().max(1),
+        &mut |i, g| {
+            out[i] = Some(g);
+            Ok(())
+        },
+        on_step,
+    )?;
+    out.into_iter()
+        .enumerate()
+        .map(|(i, g)| g.ok_or_else(|| Error::internal(format!("prompt {i} got no answer"))))
+        .collect()
 }
 
 /// Trims surrounding whitespace the way Python's `str.strip()` does (the reference answers
@@ -353,11 +419,11 @@ mod tests {
     }
 
     #[test]
-    fn prefill_is_left_padded_with_cumsum_positions() {
-        let input = prefill_input(&[vec![5, 6, 7], vec![9]], 0);
-        assert_eq!(input.len, 3);
-        assert_eq!(input.tokens, vec![5, 6, 7, 0, 0, 9]);
-        assert_eq!(input.positions, vec![0, 1, 2, 0, 0, 0]);
-        assert_eq!(input.key_mask, vec![1, 1, 1, 0, 0, 1]);
+    fn shared_prefix_stops_one_short_of_the_shortest_prompt() {
+        let p = vec![vec![1, 2, 3, 4], vec![1, 2, 3, 9], vec![1, 2, 3]];
+        assert_eq!(shared_prefix_len(&p, &[0, 1]), 3);
+        assert_eq!(shared_prefix_len(&p, &[0, 1, 2]), 2);
+        assert_eq!(shared_prefix_len(&p, &[0]), 3);
+        assert_eq!(shared_prefix_len(&[vec![5], vec![6]], &[0, 1]), 0);
     }
 }

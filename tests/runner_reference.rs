@@ -9,14 +9,15 @@
 //!
 //! Checked per case: token-identical greedy output ids (prompt ids taken from the fixture,
 //! i.e. `apply_chat_template(tokenize=True)`), the finish reason, and the first-step logits
-//! within 1e-4; then the same cases decoded together in one left-padded batch must give the
-//! same ids as batch 1. A second test checks the prompt side the answer command uses: the
+//! within 1e-4; then the same cases decoded together (one cache slot each, their shared prompt
+//! prefix computed once) and decoded through two refilled slots must give the same ids as
+//! batch 1. A second test checks the prompt side the answer command uses: the
 //! rendered template text and its ids, the decoded answer text, and the template errors
 //! (a system role the template rejects with `raise_exception`).
 
 use liftgate::answers::Finish;
 use liftgate::chat::ChatTokenizer;
-use liftgate::generate::{generate_batch, prefill_input, Decoding, GenerationSettings};
+use liftgate::generate::{generate_batch, Decoding, GenerationSettings};
 use liftgate::model;
 use serde_json::Value;
 use std::path::{Path, PathBuf};
@@ -100,21 +101,9 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
         "{}: no cases for {variant}",
         family.display()
     );
-    let pad = loaded.generation.pad.unwrap_or(0);
     let mut worst = 0f32;
     for case in &cases {
-        let mut cache = loaded.decoder.new_cache();
-        let logits: Vec<f32> = loaded
-            .decoder
-            .forward(
-                &prefill_input(std::slice::from_ref(&case.prompt), pad),
-                &mut cache,
-            )
-            .unwrap()
-            .flatten_all()
-            .unwrap()
-            .to_vec1()
-            .unwrap();
+        let logits = loaded.decoder.prompt_logits(&case.prompt).unwrap();
         assert_eq!(logits.len(), case.logits.len(), "{}", case.label);
         let diff = logits
             .iter()
@@ -132,7 +121,6 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
             max_new_tokens: case.max_new_tokens,
             eos: loaded.generation.eos.clone(),
             ignore_eos: false,
-            pad,
             repetition_penalty: None,
         };
         let got = generate_batch(
@@ -145,19 +133,41 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
         assert_eq!(got[0].tokens, case.output, "{}: output ids", case.label);
         assert_eq!(got[0].finish, case.finish, "{}: finish", case.label);
     }
-    // All cases of the variant with one shared max_new_tokens, batched (left padding) vs alone.
+    // All cases of the variant with one shared max_new_tokens: batched and refilled vs alone.
     let max_new = cases.iter().map(|c| c.max_new_tokens).max().unwrap();
     let settings = GenerationSettings {
         decoding: Decoding::Greedy,
         max_new_tokens: max_new,
         eos: loaded.generation.eos.clone(),
         ignore_eos: false,
-        pad,
         repetition_penalty: None,
     };
     let prompts: Vec<Vec<u32>> = cases.iter().map(|c| c.prompt.clone()).collect();
     let batched = generate_batch(&loaded.decoder, &prompts, &settings, &mut |_| {}).unwrap();
-    for (case, b) in cases.iter().zip(&batched) {
+    // Two slots for all the cases: finished slots are refilled while the other decodes.
+    let mut refilled: Vec<Option<Vec<u32>>> = vec![None; prompts.len()];
+    let todo: Vec<usize> = (0..prompts.len()).rev().collect();
+    liftgate::generate::generate_stream(
+        &loaded.decoder,
+        &prompts,
+        &todo,
+        &settings,
+        2,
+        &mut |i, g| {
+            assert!(refilled[i].is_none(), "answer {i} handed out twice");
+            refilled[i] = Some(g.tokens);
+            Ok(())
+        },
+        &mut |_| {},
+    )
+    .unwrap();
+    for ((case, b), r) in cases.iter().zip(&batched).zip(&refilled) {
+        assert_eq!(
+            r.as_ref(),
+            Some(&b.tokens),
+            "{}: refilled vs batched",
+            case.label
+        );
         let alone = generate_batch(
             &loaded.decoder,
             std::slice::from_ref(&case.prompt),
@@ -266,24 +276,12 @@ fn prompts_answers_and_template_errors_match_the_reference() {
 
 /// Logits at every position of `ids`, one token per forward call through the KV cache.
 fn logits_at_every_position(decoder: &liftgate::model::decoder::Decoder, ids: &[u32]) -> Vec<f32> {
-    let mut cache = decoder.new_cache();
+    let mut cache = decoder.new_cache(1, ids.len());
+    let mut ws = liftgate::model::decoder::Workspace::default();
     let mut out = Vec::new();
-    for (i, &t) in ids.iter().enumerate() {
-        let input = liftgate::model::decoder::StepInput {
-            batch: 1,
-            len: 1,
-            tokens: vec![t],
-            positions: vec![i as u32],
-            key_mask: vec![1; i + 1],
-        };
-        let l: Vec<f32> = decoder
-            .forward(&input, &mut cache)
-            .unwrap()
-            .flatten_all()
-            .unwrap()
-            .to_vec1()
-            .unwrap();
-        out.extend(l);
+    for t in ids.chunks(1) {
+        let seg = [liftgate::model::decoder::Segment { slot: 0, tokens: t }];
+        out.extend_from_slice(decoder.forward(&seg, &mut cache, &mut ws).unwrap());
     }
     out
 }
@@ -361,7 +359,6 @@ fn repetition_penalty_matches_the_reference() {
         max_new_tokens: doc["max_new_tokens"].as_u64().unwrap() as usize,
         eos: loaded.generation.eos.clone(),
         ignore_eos: false,
-        pad: 0,
         repetition_penalty: Some(doc["repetition_penalty"].as_f64().unwrap() as f32),
     };
     let cases = doc["cases"].as_array().unwrap();

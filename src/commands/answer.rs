@@ -201,18 +201,11 @@ pub fn answer_set(settings: &AnswerSettings, set: &QuestionSet) -> Result<Answer
             loaded.generation.unsupported_keys.join(", ")
         );
     }
-    let pad = loaded
-        .generation
-        .pad
-        .or_else(|| chat.pad_token_id())
-        .filter(|&p| (p as usize) < spec.vocab_size)
-        .unwrap_or(0);
     let gen = GenerationSettings {
         decoding: settings.decoding,
         max_new_tokens: settings.max_new_tokens,
         eos: loaded.generation.eos.clone(),
         ignore_eos: settings.ignore_eos,
-        pad,
         repetition_penalty: loaded.generation.repetition_penalty.map(|p| p as f32),
     };
 

@@ -1,141 +1,309 @@
-//! One generic decoder-only transformer with per-family options, computing in f32.
+//! One generic decoder-only transformer with per-family options, computing in f32 on the CPU.
 //!
-//! Why not wrap candle-transformers: its models assume one unpadded sequence, while batched
-//! decoding needs left padding, per-sequence position ids and a padding mask (model-formats.md
-//! §3.3), and later slot refill and shared-prefix reuse. Every formula follows
-//! model-formats.md §2 (transformers 5.24.0 `modeling_{llama,mistral,qwen2,qwen3,phi3,gemma,
-//! gemma2}.py`): rotate_half RoPE with partial rotary, GQA by `repeat_interleave`, softmax in
-//! f32, additive masks with the finite f32 minimum, Gemma (1+w) norms and embedding scaling,
-//! Gemma2 soft-caps and sandwich norms, Qwen3 q/k norms before RoPE, Phi-3 fused projections.
+//! Every formula follows model-formats.md §2 (transformers 5.24.0 `modeling_{llama,mistral,
+//! qwen2,qwen3,phi3,gemma,gemma2}.py`): rotate_half RoPE with partial rotary, grouped-query
+//! attention (query head j reads kv head j / n_rep), softmax in f32, Gemma (1+w) norms and
+//! embedding scaling, Gemma2 soft-caps and sandwich norms, Qwen3 q/k norms before RoPE, Phi-3
+//! fused projections.
 //!
-//! Shapes: activations are kept as [B·L, hidden] between blocks; attention works on
-//! [B, heads, L, head_dim]. Linear weights are [out, in] (y = x·Wᵀ + b).
+//! The batch is ragged: one forward call takes any number of [`Segment`]s, each a run of new
+//! tokens of one sequence, and every sequence lives in its own slot of a preallocated
+//! [`KvCache`]. A token's position id is its cache index, so there is no padding and no mask
+//! tensor: a token at position p attends to the keys 0..=p of its own slot (the last W of them
+//! under a sliding window W). Prefill of a new question and decode steps of others share one
+//! call, which is what lets a finished slot take the next question at once. All the tokens of a
+//! call go through each weight matrix in one matrix product (`gemm`), so each weight read serves
+//! every sequence. Each token's arithmetic is the same whatever else is in the call, so batched
+//! output equals batch-1 output.
+//!
+//! Linear weights are [out, in] row-major (y = x·Wᵀ + b); q, k, v (and gate, up) are stacked into
+//! one matrix at load time, which changes no dot product.
 
 use crate::error::{Error, Result};
 use crate::model::config::{Activation, ModelSpec, NormStyle, RopeScaling, RopeSpec};
 use crate::model::weights::{EMBED, LM_HEAD};
-use candle_core::{DType, Device, Tensor, D};
+use candle_core::Tensor;
+use rayon::prelude::*;
 use std::collections::HashMap;
 
-/// The inputs of one forward call over a batch.
-///
-/// `tokens` and `positions` are row-major [batch, len]. `key_mask` is row-major
-/// [batch, cache_len + len]: 1 where the key slot holds a real token, 0 for padding. Query i of
-/// a row sits at cache index `cache_len + i` (model-formats.md §2.7: masks use cache indices,
-/// RoPE uses position ids).
-#[derive(Debug, Clone)]
-pub struct StepInput {
-    pub batch: usize,
-    pub len: usize,
-    pub tokens: Vec<u32>,
-    pub positions: Vec<u32>,
-    pub key_mask: Vec<u8>,
+/// A run of new tokens of the sequence in `slot`, placed right after what the slot holds.
+#[derive(Debug, Clone, Copy)]
+pub struct Segment<'a> {
+    pub slot: usize,
+    pub tokens: &'a [u32],
 }
 
-/// Key/value cache of every layer, [B, n_kv_heads, T, head_dim] each.
+/// Keys and values of every layer for a fixed number of sequence slots, allocated once.
 ///
-/// This simple form grows by concatenation. It is the single place the decoder stores past
-/// keys and values, so a preallocated cache with refillable slots can replace it without
-/// touching the attention code (only `append` and `len` are used).
-#[derive(Debug, Default)]
+/// Layer l keeps k and v as [slots, capacity, n_kv_heads · head_dim]. A slot is emptied by
+/// [`KvCache::reset`] and refilled by the next forward call that names it. A prefix shared by
+/// every prompt can be stored once ([`KvCache::save_prefix`]) and copied into a fresh slot
+/// ([`KvCache::load_prefix`]) instead of being computed again.
+#[derive(Debug)]
 pub struct KvCache {
-    layers: Vec<Option<(Tensor, Tensor)>>,
+    slots: usize,
+    capacity: usize,
+    kv_dim: usize,
+    k: Vec<Vec<f32>>,
+    v: Vec<Vec<f32>>,
+    lens: Vec<usize>,
+    prefix: Option<SavedPrefix>,
+}
+
+/// A saved shared prefix: its length and, per layer, k and v as [len, kv_dim].
+#[derive(Debug)]
+struct SavedPrefix {
     len: usize,
+    k: Vec<Vec<f32>>,
+    v: Vec<Vec<f32>>,
 }
 
 impl KvCache {
-    pub fn new(num_layers: usize) -> Self {
-        KvCache {
-            layers: vec![None; num_layers],
-            len: 0,
-        }
+    pub fn slots(&self) -> usize {
+        self.slots
     }
 
-    /// Cached positions (T) per row.
-    pub fn len(&self) -> usize {
-        self.len
+    /// Positions each slot can hold.
+    pub fn capacity(&self) -> usize {
+        self.capacity
     }
 
-    pub fn is_empty(&self) -> bool {
-        self.len == 0
+    /// Positions cached in `slot`.
+    pub fn len(&self, slot: usize) -> usize {
+        self.lens[slot]
     }
 
-    /// Appends this call's k and v for one layer and returns the whole cached k and v.
-    fn append(&mut self, layer: usize, k: Tensor, v: Tensor) -> Result<(Tensor, Tensor)> {
-        let (k, v) = match self.layers[layer].take() {
-            None => (k, v),
-            Some((pk, pv)) => (Tensor::cat(&[&pk, &k], 2)?, Tensor::cat(&[&pv, &v], 2)?),
+    pub fn is_empty(&self, slot: usize) -> bool {
+        self.lens[slot] == 0
+    }
+
+    /// Empties `slot` (its old keys are overwritten by the next sequence).
+    pub fn reset(&mut self, slot: usize) {
+        self.lens[slot] = 0;
+    }
+
+    /// Keeps a copy of what `slot` holds as the shared prefix.
+    pub fn save_prefix(&mut self, slot: usize) {
+        let n = self.lens[slot] * self.kv_dim;
+        let at = slot * self.capacity * self.kv_dim;
+        let k = self.k.iter().map(|l| l[at..at + n].to_vec()).collect();
+        let v = self.v.iter().map(|l| l[at..at + n].to_vec()).collect();
+        self.prefix = Some(SavedPrefix {
+            len: self.lens[slot],
+            k,
+            v,
+        });
+    }
+
+    /// Makes `slot` hold exactly the saved prefix; returns its length (0 when none is saved).
+    pub fn load_prefix(&mut self, slot: usize) -> usize {
+        let Some(SavedPrefix { len, k, v }) = &self.prefix else {
+            self.lens[slot] = 0;
+            return 0;
         };
-        self.layers[layer] = Some((k.clone(), v.clone()));
-        Ok((k, v))
-    }
-
-    /// Called once per forward call, after every layer appended `added` positions.
-    fn advance(&mut self, added: usize) {
-        self.len += added;
+        let n = len * self.kv_dim;
+        let at = slot * self.capacity * self.kv_dim;
+        for (dst, src) in self.k.iter_mut().zip(k) {
+            dst[at..at + n].copy_from_slice(src);
+        }
+        for (dst, src) in self.v.iter_mut().zip(v) {
+            dst[at..at + n].copy_from_slice(src);
+        }
+        self.lens[slot] = *len;
+        *len
     }
 }
 
+/// Scratch buffers of the forward pass, grown to the largest call seen and then reused, so
+/// steady decoding allocates nothing.
+#[derive(Debug, Default)]
+pub struct Workspace {
+    h: Vec<f32>,
+    x: Vec<f32>,
+    qkv: Vec<f32>,
+    attn: Vec<f32>,
+    out: Vec<f32>,
+    gate_up: Vec<f32>,
+    act: Vec<f32>,
+    scores: Vec<f32>,
+    cos: Vec<f32>,
+    sin: Vec<f32>,
+    tok_slot: Vec<usize>,
+    tok_pos: Vec<usize>,
+    last: Vec<f32>,
+    last_normed: Vec<f32>,
+    logits: Vec<f32>,
+}
+
+/// Resizes `v` to `n` values, reusing its allocation.
+fn sized(v: &mut Vec<f32>, n: usize) -> &mut [f32] {
+    if v.len() < n {
+        v.resize(n, 0.0);
+    }
+    &mut v[..n]
+}
+
+/// A linear layer: `w` is [out, inp] row-major.
 struct Linear {
-    /// [out, in]
-    w: Tensor,
-    b: Option<Tensor>,
+    w: Vec<f32>,
+    out: usize,
+    inp: usize,
+    b: Option<Vec<f32>>,
 }
 
 impl Linear {
-    /// x: [N, in] → [N, out]
-    fn forward(&self, x: &Tensor) -> Result<Tensor> {
-        let y = x.matmul(&self.w.t()?)?;
-        Ok(match &self.b {
-            Some(b) => y.broadcast_add(b)?,
-            None => y,
+    /// Stacks the rows of one or more checkpoint matrices (with their biases, if any).
+    fn stack(parts: Vec<(Tensor, Option<Tensor>)>) -> Result<Linear> {
+        let mut w = Vec::new();
+        let mut b = Vec::new();
+        let (mut out, mut inp) = (0, None);
+        let with_bias = parts.iter().all(|(_, b)| b.is_some());
+        for (wt, bt) in parts {
+            let (o, i) = wt.dims2()?;
+            if inp.is_some_and(|x| x != i) {
+                return Err(Error::internal(
+                    "stacked projections disagree on input size",
+                ));
+            }
+            inp = Some(i);
+            out += o;
+            w.extend(flat(&wt)?);
+            if let (true, Some(bt)) = (with_bias, bt) {
+                b.extend(flat(&bt)?);
+            }
+        }
+        Ok(Linear {
+            w,
+            out,
+            inp: inp.unwrap_or(0),
+            b: with_bias.then_some(b),
         })
     }
-}
 
-/// RMSNorm over the last dimension. For the Gemma style `w` already holds 1 + w (in f32,
-/// as `1.0 + self.weight.float()` does), so both styles become x·rsqrt(mean(x²)+eps)·w in f32.
-struct RmsNorm {
-    w: Tensor,
-    eps: f64,
-}
-
-impl RmsNorm {
-    fn forward(&self, x: &Tensor) -> Result<Tensor> {
-        let var = x.sqr()?.mean_keepdim(D::Minus1)?;
-        let inv = (var + self.eps)?.sqrt()?.recip()?;
-        Ok(x.broadcast_mul(&inv)?.broadcast_mul(&self.w)?)
+    /// x: [n, inp] → y: [n, out]
+    fn forward(&self, x: &[f32], n: usize, y: &mut [f32]) {
+        matmul_t(x, n, self.inp, &self.w, self.out, y);
+        if let Some(b) = &self.b {
+            for row in y.chunks_exact_mut(self.out) {
+                for (v, &bb) in row.iter_mut().zip(b) {
+                    *v += bb;
+                }
+            }
+        }
     }
 }
 
-enum Qkv {
-    Separate {
-        q: Linear,
-        k: Linear,
-        v: Linear,
-    },
-    /// Phi-3 `qkv_proj`: rows [q | k | v].
-    Fused(Linear),
+fn flat(t: &Tensor) -> Result<Vec<f32>> {
+    Ok(t.flatten_all()?.to_vec1::<f32>()?)
 }
 
-enum GateUp {
-    Separate {
-        gate: Linear,
-        up: Linear,
-    },
-    /// Phi-3 `gate_up_proj`: rows [gate | up].
-    Fused(Linear),
+/// y[n, out] = x[n, inp] · wᵀ, with w [out, inp] row-major, on the rayon pool.
+fn matmul_t(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
+    assert!(x.len() >= n * inp && w.len() >= out * inp && y.len() >= n * out);
+    if n == 0 || out == 0 {
+        return;
+    }
+    if inp == 0 {
+        y[..n * out].fill(0.0);
+        return;
+    }
+    let threads = rayon::current_num_threads();
+    let par = if threads > 1 {
+        gemm::Parallelism::Rayon(threads)
+    } else {
+        gemm::Parallelism::None
+    };
+    // SAFETY: the three buffers hold at least n·inp, out·inp and n·out values (asserted
+    // above); the strides below address exactly those elements: lhs (i, k) = x[i·inp + k],
+    // rhs (k, j) = w[j·inp + k], dst (i, j) = y[i·out + j]. dst does not alias the inputs.
+    unsafe {
+        gemm::gemm(
+            n,
+            out,
+            inp,
+            y.as_mut_ptr(),
+            1,
+            out as isize,
+            false,
+            x.as_ptr(),
+            1,
+            inp as isize,
+            w.as_ptr(),
+            inp as isize,
+            1,
+            0.0,
+            1.0,
+            false,
+            false,
+            false,
+            par,
+        );
+    }
+}
+
+/// Sum of products with sixteen independent partial sums, so the compiler can use vector
+/// registers (a single running sum would force one addition at a time).
+#[inline]
+fn dot(a: &[f32], b: &[f32]) -> f32 {
+    let n = a.len().min(b.len());
+    let (a, b) = (&a[..n], &b[..n]);
+    let mut acc = [0f32; 16];
+    let mut ca = a.chunks_exact(16);
+    let mut cb = b.chunks_exact(16);
+    for (x, y) in (&mut ca).zip(&mut cb) {
+        for l in 0..16 {
+            acc[l] += x[l] * y[l];
+        }
+    }
+    let mut s = 0f32;
+    for (x, y) in ca.remainder().iter().zip(cb.remainder()) {
+        s += x * y;
+    }
+    acc.iter().sum::<f32>() + s
+}
+
+/// x·rsqrt(mean(x²) + eps)·w over each row of `d` values, into `out`.
+fn rms_norm_rows(x: &[f32], w: &[f32], eps: f32, d: usize, out: &mut [f32]) {
+    for (xr, or) in x.chunks_exact(d).zip(out.chunks_exact_mut(d)) {
+        let inv = 1.0 / (dot(xr, xr) / d as f32 + eps).sqrt();
+        for ((o, &v), &g) in or.iter_mut().zip(xr).zip(w) {
+            *o = v * inv * g;
+        }
+    }
+}
+
+/// In-place RMSNorm of one row.
+fn rms_norm_in_place(x: &mut [f32], w: &[f32], eps: f32) {
+    let inv = 1.0 / (dot(x, x) / x.len() as f32 + eps).sqrt();
+    for (v, &g) in x.iter_mut().zip(w) {
+        *v = *v * inv * g;
+    }
+}
+
+/// rotate_half RoPE on the first 2·cos.len() channels of one head.
+#[inline]
+fn rope_in_place(x: &mut [f32], cos: &[f32], sin: &[f32]) {
+    let half = cos.len();
+    let (a, rest) = x.split_at_mut(half);
+    let b = &mut rest[..half];
+    for i in 0..half {
+        let (x1, x2) = (a[i], b[i]);
+        a[i] = x1 * cos[i] - x2 * sin[i];
+        b[i] = x2 * cos[i] + x1 * sin[i];
+    }
 }
 
 struct Layer {
-    input_norm: RmsNorm,
-    post_attn_norm: RmsNorm,
+    input_norm: Vec<f32>,
+    post_attn_norm: Vec<f32>,
     /// Gemma2 only: (pre_feedforward_layernorm, post_feedforward_layernorm).
-    ff_norms: Option<(RmsNorm, RmsNorm)>,
-    qkv: Qkv,
+    ff_norms: Option<(Vec<f32>, Vec<f32>)>,
+    /// Rows [q | k | v].
+    qkv: Linear,
     o: Linear,
-    qk_norm: Option<(RmsNorm, RmsNorm)>,
-    gate_up: GateUp,
+    qk_norm: Option<(Vec<f32>, Vec<f32>)>,
+    /// Rows [gate | up].
+    gate_up: Linear,
     down: Linear,
     window: Option<usize>,
 }
@@ -144,82 +312,67 @@ struct Layer {
 pub struct Decoder {
     spec: ModelSpec,
     /// [vocab, hidden]
-    embed: Tensor,
-    /// [vocab, hidden]; the embedding matrix itself when tied.
-    lm_head: Tensor,
-    final_norm: RmsNorm,
+    embed: Vec<f32>,
+    /// [vocab, hidden]; None when tied to the embedding.
+    lm_head: Option<Vec<f32>>,
+    final_norm: Vec<f32>,
     layers: Vec<Layer>,
+    eps: f32,
 }
 
-/// The additive mask value for hidden keys: `finfo(float32).min`, finite so fully masked rows
-/// (pad queries) stay free of NaN (model-formats.md §2.7).
-const MASKED: f32 = f32::MIN;
-
 impl Decoder {
-    /// Takes the tensors out of a checkpoint-named f32 map (after any LoRA merge).
+    /// Takes the tensors out of a checkpoint-named f32 map (after any LoRA merge), one at a
+    /// time, so memory holds each weight once.
     pub fn new(spec: &ModelSpec, mut w: HashMap<String, Tensor>) -> Result<Self> {
         let mut take = |name: &str| -> Result<Tensor> {
             w.remove(name)
                 .ok_or_else(|| Error::internal(format!("tensor {name} was not loaded")))
         };
-        let embed = take(EMBED)?;
-        let norm = |t: Tensor| -> Result<RmsNorm> {
-            let w = match spec.norm_style {
-                NormStyle::Llama => t,
-                NormStyle::Gemma => (t + 1.0)?,
-            };
-            Ok(RmsNorm {
-                w,
-                eps: spec.rms_norm_eps,
+        let norm = |t: Tensor| -> Result<Vec<f32>> {
+            let v = flat(&t)?;
+            Ok(match spec.norm_style {
+                NormStyle::Llama => v,
+                NormStyle::Gemma => v.into_iter().map(|x| 1.0 + x).collect(),
             })
         };
+        let embed = flat(&take(EMBED)?)?;
         let mut layers = Vec::with_capacity(spec.num_layers);
         for l in 0..spec.num_layers {
             let p = format!("model.layers.{l}.");
             let mut t = |n: &str| take(&format!("{p}{n}"));
-            let lin = |t: &mut dyn FnMut(&str) -> Result<Tensor>,
-                       n: &str,
-                       bias: bool|
-             -> Result<Linear> {
-                Ok(Linear {
-                    w: t(&format!("{n}.weight"))?,
-                    b: if bias {
-                        Some(t(&format!("{n}.bias"))?)
-                    } else {
-                        None
-                    },
-                })
+            let mut part = |n: &str, bias: bool| -> Result<(Tensor, Option<Tensor>)> {
+                let w = t(&format!("{n}.weight"))?;
+                let b = if bias {
+                    Some(t(&format!("{n}.bias"))?)
+                } else {
+                    None
+                };
+                Ok((w, b))
             };
             let qkv = if spec.fused_qkv {
-                Qkv::Fused(lin(&mut t, "self_attn.qkv_proj", false)?)
+                Linear::stack(vec![part("self_attn.qkv_proj", false)?])?
             } else {
-                Qkv::Separate {
-                    q: lin(&mut t, "self_attn.q_proj", spec.qkv_bias)?,
-                    k: lin(&mut t, "self_attn.k_proj", spec.qkv_bias)?,
-                    v: lin(&mut t, "self_attn.v_proj", spec.qkv_bias)?,
-                }
+                Linear::stack(vec![
+                    part("self_attn.q_proj", spec.qkv_bias)?,
+                    part("self_attn.k_proj", spec.qkv_bias)?,
+                    part("self_attn.v_proj", spec.qkv_bias)?,
+                ])?
             };
-            let o = lin(&mut t, "self_attn.o_proj", spec.o_bias)?;
+            let o = Linear::stack(vec![part("self_attn.o_proj", spec.o_bias)?])?;
             let gate_up = if spec.fused_gate_up {
-                GateUp::Fused(lin(&mut t, "mlp.gate_up_proj", false)?)
+                Linear::stack(vec![part("mlp.gate_up_proj", false)?])?
             } else {
-                GateUp::Separate {
-                    gate: lin(&mut t, "mlp.gate_proj", spec.mlp_bias)?,
-                    up: lin(&mut t, "mlp.up_proj", spec.mlp_bias)?,
-                }
+                Linear::stack(vec![
+                    part("mlp.gate_proj", spec.mlp_bias)?,
+                    part("mlp.up_proj", spec.mlp_bias)?,
+                ])?
             };
-            let down = lin(&mut t, "mlp.down_proj", spec.mlp_bias)?;
+            let down = Linear::stack(vec![part("mlp.down_proj", spec.mlp_bias)?])?;
             let qk_norm = if spec.qk_norm {
                 // Always Llama style (Qwen3RMSNorm), per head over head_dim.
                 Some((
-                    RmsNorm {
-                        w: t("self_attn.q_norm.weight")?,
-                        eps: spec.rms_norm_eps,
-                    },
-                    RmsNorm {
-                        w: t("self_attn.k_norm.weight")?,
-                        eps: spec.rms_norm_eps,
-                    },
+                    flat(&t("self_attn.q_norm.weight")?)?,
+                    flat(&t("self_attn.k_norm.weight")?)?,
                 ))
             } else {
                 None
@@ -245,243 +398,346 @@ impl Decoder {
             });
         }
         let final_norm = norm(take("model.norm.weight")?)?;
-        let lm_head = match w.remove(LM_HEAD) {
-            Some(h) => h,
-            None => embed.clone(),
-        };
-        Ok(Decoder {
+        let lm_head = w.remove(LM_HEAD).map(|h| flat(&h)).transpose()?;
+        let d = Decoder {
             spec: spec.clone(),
             embed,
             lm_head,
             final_norm,
             layers,
-        })
+            eps: spec.rms_norm_eps as f32,
+        };
+        d.check_shapes()?;
+        Ok(d)
+    }
+
+    /// The stacked matrices must have the sizes the spec implies (the loader checked each
+    /// checkpoint tensor; this guards the stacking).
+    fn check_shapes(&self) -> Result<()> {
+        let s = &self.spec;
+        let (h, hd) = (s.hidden_size, s.head_dim);
+        let qkv = (s.num_heads + 2 * s.num_kv_heads) * hd;
+        let bad = |what: &str| Err(Error::internal(format!("{what} has an unexpected size")));
+        if self.embed.len() != s.vocab_size * h {
+            return bad("the embedding");
+        }
+        if self
+            .lm_head
+            .as_ref()
+            .is_some_and(|w| w.len() != s.vocab_size * h)
+        {
+            return bad("lm_head");
+        }
+        for l in &self.layers {
+            if l.qkv.out != qkv || l.qkv.inp != h {
+                return bad("the q/k/v projection");
+            }
+            if l.o.out != h || l.o.inp != s.num_heads * hd {
+                return bad("o_proj");
+            }
+            if l.gate_up.out != 2 * s.intermediate_size || l.gate_up.inp != h {
+                return bad("the gate/up projection");
+            }
+            if l.down.out != h || l.down.inp != s.intermediate_size {
+                return bad("down_proj");
+            }
+        }
+        Ok(())
     }
 
     pub fn spec(&self) -> &ModelSpec {
         &self.spec
     }
 
-    pub fn new_cache(&self) -> KvCache {
-        KvCache::new(self.spec.num_layers)
-    }
-
-    /// Runs one forward call and returns the f32 logits of each row's last position, [B, vocab].
-    pub fn forward(&self, input: &StepInput, cache: &mut KvCache) -> Result<Tensor> {
-        let (b, l) = (input.batch, input.len);
-        let past = cache.len();
-        let total = past + l;
-        if input.tokens.len() != b * l
-            || input.positions.len() != b * l
-            || input.key_mask.len() != b * total
-        {
-            return Err(Error::internal(format!(
-                "step input sizes do not match batch {b} × len {l} with {past} cached"
-            )));
-        }
-        let dev = Device::Cpu;
-        let ids = Tensor::from_slice(&input.tokens, b * l, &dev)?;
-        let mut h = self.embed.index_select(&ids, 0)?;
-        if let Some(s) = self.spec.embed_scale {
-            h = (h * s)?;
-        }
-        let (cos, sin) = self.rope_tables(input)?;
-        let masks = self.masks(input, past)?;
-        for (i, layer) in self.layers.iter().enumerate() {
-            let mask = match layer.window {
-                None => &masks.0,
-                Some(_) => masks.1.as_ref().unwrap_or(&masks.0),
-            };
-            let step = Step {
-                b,
-                l,
-                cos: &cos,
-                sin: &sin,
-                mask,
-            };
-            h = self.layer_forward(i, layer, &h, &step, cache)?;
-        }
-        cache.advance(l);
-        let hidden = self.spec.hidden_size;
-        let last = h
-            .reshape((b, l, hidden))?
-            .narrow(1, l - 1, 1)?
-            .reshape((b, hidden))?;
-        let x = self.final_norm.forward(&last)?;
-        let mut logits = x.matmul(&self.lm_head.t()?)?;
-        if let Some(c) = self.spec.final_softcap {
-            logits = ((logits / c)?.tanh()? * c)?;
-        }
-        Ok(logits.to_dtype(DType::F32)?)
-    }
-
-    fn layer_forward(
-        &self,
-        idx: usize,
-        layer: &Layer,
-        h: &Tensor,
-        step: &Step,
-        cache: &mut KvCache,
-    ) -> Result<Tensor> {
-        let x = layer.input_norm.forward(h)?;
-        let a = self.attention(idx, layer, &x, step, cache)?;
-        let h = match &layer.ff_norms {
-            // Gemma2: post_attention_layernorm normalises the attention output.
-            Some(_) => (h + layer.post_attn_norm.forward(&a)?)?,
-            None => (h + a)?,
-        };
-        let x = match &layer.ff_norms {
-            Some((pre, _)) => pre.forward(&h)?,
-            None => layer.post_attn_norm.forward(&h)?,
-        };
-        let m = self.mlp(layer, &x)?;
-        Ok(match &layer.ff_norms {
-            Some((_, post)) => (h + post.forward(&m)?)?,
-            None => (h + m)?,
-        })
-    }
-
-    fn mlp(&self, layer: &Layer, x: &Tensor) -> Result<Tensor> {
-        let (gate, up) = match &layer.gate_up {
-            GateUp::Separate { gate, up } => (gate.forward(x)?, up.forward(x)?),
-            GateUp::Fused(gu) => {
-                let y = gu.forward(x)?;
-                let i = self.spec.intermediate_size;
-                (y.narrow(1, 0, i)?, y.narrow(1, i, i)?)
+    /// Bytes of weights one decoding step reads (every matrix once).
+    pub fn weight_bytes(&self) -> usize {
+        let mut n = self.embed.len() + self.final_norm.len();
+        n += self.lm_head.as_ref().map_or(0, Vec::len);
+        for l in &self.layers {
+            for lin in [&l.qkv, &l.o, &l.gate_up, &l.down] {
+                n += lin.w.len() + lin.b.as_ref().map_or(0, Vec::len);
             }
-        };
-        let act = match self.spec.activation {
-            Activation::Silu => gate.silu()?,
-            Activation::GeluTanh => gate.gelu()?,
-            Activation::GeluErf => gate.gelu_erf()?,
-        };
-        layer.down.forward(&(act * up)?)
+        }
+        n * std::mem::size_of::<f32>()
     }
 
-    fn attention(
+    /// A cache of `slots` sequences of up to `capacity` positions each.
+    pub fn new_cache(&self, slots: usize, capacity: usize) -> KvCache {
+        let kv_dim = self.spec.num_kv_heads * self.spec.head_dim;
+        let per_layer = slots * capacity * kv_dim;
+        let n = self.spec.num_layers;
+        KvCache {
+            slots,
+            capacity,
+            kv_dim,
+            k: (0..n).map(|_| vec![0.0; per_layer]).collect(),
+            v: (0..n).map(|_| vec![0.0; per_layer]).collect(),
+            lens: vec![0; slots],
+            prefix: None,
+        }
+    }
+
+    /// Logits of the last position of `prompt` alone (a fresh one-slot cache).
+    pub fn prompt_logits(&self, prompt: &[u32]) -> Result<Vec<f32>> {
+        let mut cache = self.new_cache(1, prompt.len().max(1));
+        let mut ws = Workspace::default();
+        let seg = [Segment {
+            slot: 0,
+            tokens: prompt,
+        }];
+        Ok(self.forward(&seg, &mut cache, &mut ws)?.to_vec())
+    }
+
+    /// Runs every segment's tokens through the model, appends their keys and values to their
+    /// slots, and returns the f32 logits of each segment's last token, [segments, vocab].
+    pub fn forward<'w>(
         &self,
-        idx: usize,
-        layer: &Layer,
-        x: &Tensor,
-        step: &Step,
+        segs: &[Segment],
         cache: &mut KvCache,
-    ) -> Result<Tensor> {
-        let Step {
-            b,
-            l,
-            cos,
-            sin,
-            mask,
-        } = *step;
+        ws: &'w mut Workspace,
+    ) -> Result<&'w [f32]> {
         let s = &self.spec;
-        let (nh, nkv, hd) = (s.num_heads, s.num_kv_heads, s.head_dim);
-        let (q, k, v) = match &layer.qkv {
-            Qkv::Separate { q, k, v } => (q.forward(x)?, k.forward(x)?, v.forward(x)?),
-            Qkv::Fused(qkv) => {
-                let y = qkv.forward(x)?;
-                (
-                    y.narrow(1, 0, nh * hd)?,
-                    y.narrow(1, nh * hd, nkv * hd)?,
-                    y.narrow(1, (nh + nkv) * hd, nkv * hd)?,
-                )
+        let (hidden, hd, nh, nkv) = (s.hidden_size, s.head_dim, s.num_heads, s.num_kv_heads);
+        let (qdim, kv_dim) = (nh * hd, nkv * hd);
+        let qkv_w = qdim + 2 * kv_dim;
+        let inter = s.intermediate_size;
+        let vocab = s.vocab_size;
+        let half = s.rope.rotary_dim / 2;
+        let cap = cache.capacity;
+        // Validate and lay out the tokens.
+        ws.tok_slot.clear();
+        ws.tok_pos.clear();
+        let mut seen = vec![false; cache.slots];
+        for seg in segs {
+            if seg.slot >= cache.slots || std::mem::replace(&mut seen[seg.slot], true) {
+                return Err(Error::internal(format!(
+                    "segment slot {} is out of range or repeated",
+                    seg.slot
+                )));
             }
-        };
-        let mut q = q.reshape((b, l, nh, hd))?;
-        let mut k = k.reshape((b, l, nkv, hd))?;
-        if let Some((qn, kn)) = &layer.qk_norm {
-            q = qn.forward(&q)?;
-            k = kn.forward(&k)?;
+            if seg.tokens.is_empty() {
+                return Err(Error::internal("a segment has no tokens"));
+            }
+            let start = cache.lens[seg.slot];
+            if start + seg.tokens.len() > cap {
+                return Err(Error::internal(format!(
+                    "slot {} would hold {} positions; the cache holds {cap}",
+                    seg.slot,
+                    start + seg.tokens.len()
+                )));
+            }
+            if let Some(&t) = seg.tokens.iter().find(|&&t| t as usize >= vocab) {
+                return Err(Error::internal(format!(
+                    "token id {t} is outside the vocabulary of {vocab}"
+                )));
+            }
+            for i in 0..seg.tokens.len() {
+                ws.tok_slot.push(seg.slot);
+                ws.tok_pos.push(start + i);
+            }
         }
-        let q = self.rope(&q.transpose(1, 2)?.contiguous()?, cos, sin)?;
-        let k = self.rope(&k.transpose(1, 2)?.contiguous()?, cos, sin)?;
-        let v = v.reshape((b, l, nkv, hd))?.transpose(1, 2)?.contiguous()?;
-        let (k, v) = cache.append(idx, k, v)?;
-        let t = k.dim(2)?;
-        let (k, v) = if nh == nkv {
-            (k, v)
-        } else {
-            // repeat_interleave: query head j uses kv head j / n_rep.
+        let n = ws.tok_slot.len();
+        if n == 0 {
+            return Ok(&[]);
+        }
+        // Embeddings.
+        let h = sized(&mut ws.h, n * hidden);
+        let mut t = 0;
+        for seg in segs {
+            for &tok in seg.tokens {
+                let row = &self.embed[tok as usize * hidden..(tok as usize + 1) * hidden];
+                let dst = &mut h[t * hidden..(t + 1) * hidden];
+                match s.embed_scale {
+                    Some(sc) => {
+                        let sc = sc as f32;
+                        for (d, &v) in dst.iter_mut().zip(row) {
+                            *d = v * sc;
+                        }
+                    }
+                    None => dst.copy_from_slice(row),
+                }
+                t += 1;
+            }
+        }
+        // RoPE tables per token; the frequencies of each segment use its own longest position
+        // (what a batch-1 call over the same tokens would use).
+        let cos = sized(&mut ws.cos, n * half);
+        let sin = sized(&mut ws.sin, n * half);
+        let mut t = 0;
+        for seg in segs {
+            let start = cache.lens[seg.slot];
+            let seq_len = (start + seg.tokens.len()) as f64;
+            let (inv, scale) = rope_frequencies(&s.rope, seq_len);
+            for i in 0..seg.tokens.len() {
+                let p = (start + i) as f32;
+                for (j, &f) in inv.iter().enumerate() {
+                    let a = p * f;
+                    cos[t * half + j] = a.cos() * scale;
+                    sin[t * half + j] = a.sin() * scale;
+                }
+                t += 1;
+            }
+        }
+        let (cos, sin) = (&ws.cos[..n * half], &ws.sin[..n * half]);
+        let tok_slot = &ws.tok_slot[..];
+        let tok_pos = &ws.tok_pos[..];
+        let h = &mut ws.h[..n * hidden];
+        let x = sized(&mut ws.x, n * hidden);
+        let qkv = sized(&mut ws.qkv, n * qkv_w);
+        let attn = sized(&mut ws.attn, n * qdim);
+        let out = sized(&mut ws.out, n * hidden);
+        let gate_up = sized(&mut ws.gate_up, n * 2 * inter);
+        let act = sized(&mut ws.act, n * inter);
+        let scores = sized(&mut ws.scores, n * nh * cap);
+        let eps = self.eps;
+        for (li, layer) in self.layers.iter().enumerate() {
+            rms_norm_rows(h, &layer.input_norm, eps, hidden, x);
+            layer.qkv.forward(x, n, qkv);
+            // q/k norms, RoPE, and the new keys and values into the cache.
+            let (ck, cv) = (&mut cache.k[li], &mut cache.v[li]);
+            for t in 0..n {
+                let row = &mut qkv[t * qkv_w..(t + 1) * qkv_w];
+                let (q, rest) = row.split_at_mut(qdim);
+                let (k, v) = rest.split_at_mut(kv_dim);
+                let (c, sn) = (
+                    &cos[t * half..(t + 1) * half],
+                    &sin[t * half..(t + 1) * half],
+                );
+                for head in q.chunks_exact_mut(hd) {
+                    if let Some((qn, _)) = &layer.qk_norm {
+                        rms_norm_in_place(head, qn, eps);
+                    }
+                    rope_in_place(head, c, sn);
+                }
+                for head in k.chunks_exact_mut(hd) {
+                    if let Some((_, kn)) = &layer.qk_norm {
+                        rms_norm_in_place(head, kn, eps);
+                    }
+                    rope_in_place(head, c, sn);
+                }
+                let at = (tok_slot[t] * cap + tok_pos[t]) * kv_dim;
+                ck[at..at + kv_dim].copy_from_slice(k);
+                cv[at..at + kv_dim].copy_from_slice(v);
+            }
+            let (ck, cv) = (&cache.k[li][..], &cache.v[li][..]);
+            let qkv_r: &[f32] = qkv;
             let rep = nh / nkv;
-            let k = k
-                .unsqueeze(2)?
-                .expand((b, nkv, rep, t, hd))?
-                .reshape((b, nh, t, hd))?;
-            let v = v
-                .unsqueeze(2)?
-                .expand((b, nkv, rep, t, hd))?
-                .reshape((b, nh, t, hd))?;
-            (k, v)
-        };
-        let mut scores = (q.matmul(&k.t()?)? * s.attn_scale)?;
-        if let Some(c) = s.attn_softcap {
-            // Gemma2: before the mask.
-            scores = ((scores / c)?.tanh()? * c)?;
-        }
-        let scores = scores.broadcast_add(mask)?;
-        let probs = candle_nn::ops::softmax_last_dim(&scores)?;
-        let out = probs.matmul(&v)?; // [B, nh, L, hd]
-        let out = out.transpose(1, 2)?.reshape((b * l, nh * hd))?;
-        layer.o.forward(&out)
-    }
-
-    /// Applies rotate_half RoPE to the first `rotary_dim` channels of [B, H, L, hd].
-    fn rope(&self, x: &Tensor, cos: &Tensor, sin: &Tensor) -> Result<Tensor> {
-        let hd = self.spec.head_dim;
-        let rd = self.spec.rope.rotary_dim;
-        if rd == hd {
-            return Ok(candle_nn::rotary_emb::rope(x, cos, sin)?);
-        }
-        let rot = x.narrow(3, 0, rd)?.contiguous()?;
-        let pass = x.narrow(3, rd, hd - rd)?;
-        let rot = candle_nn::rotary_emb::rope(&rot, cos, sin)?;
-        Ok(Tensor::cat(&[&rot, &pass], 3)?.contiguous()?)
-    }
-
-    /// cos and sin, [B, L, rotary_dim/2], from each token's position id.
-    fn rope_tables(&self, input: &StepInput) -> Result<(Tensor, Tensor)> {
-        let (inv, scale) = self.inv_freq_for(input);
-        let half = inv.len();
-        let n = input.batch * input.len;
-        let mut cos = Vec::with_capacity(n * half);
-        let mut sin = Vec::with_capacity(n * half);
-        for &p in &input.positions {
-            let p = p as f32;
-            for &f in &inv {
-                let a = p * f;
-                cos.push(a.cos() * scale);
-                sin.push(a.sin() * scale);
+            let scale = s.attn_scale as f32;
+            let softcap = s.attn_softcap.map(|c| c as f32);
+            let window = layer.window;
+            attn.par_chunks_mut(hd)
+                .zip(scores.par_chunks_mut(cap))
+                .enumerate()
+                .with_min_len(4)
+                .for_each(|(idx, (o, sc))| {
+                    let (t, head) = (idx / nh, idx % nh);
+                    let (slot, pos) = (tok_slot[t], tok_pos[t]);
+                    let lo = window.map_or(0, |w| (pos + 1).saturating_sub(w));
+                    let q = &qkv_r[t * qkv_w + head * hd..t * qkv_w + (head + 1) * hd];
+                    let base = slot * cap * kv_dim + (head / rep) * hd;
+                    let sc = &mut sc[..pos + 1 - lo];
+                    let mut max = f32::NEG_INFINITY;
+                    for (j, v) in sc.iter_mut().enumerate() {
+                        let kk = &ck[base + (lo + j) * kv_dim..][..hd];
+                        let mut x = dot(q, kk) * scale;
+                        if let Some(c) = softcap {
+                            x = (x * (1.0 / c)).tanh() * c;
+                        }
+                        max = max.max(x);
+                        *v = x;
+                    }
+                    let mut sum = 0f32;
+                    for v in sc.iter_mut() {
+                        *v = (*v - max).exp();
+                        sum += *v;
+                    }
+                    let inv = 1.0 / sum;
+                    o.fill(0.0);
+                    for (j, &p) in sc.iter().enumerate() {
+                        let p = p * inv;
+                        let vv = &cv[base + (lo + j) * kv_dim..][..hd];
+                        for (a, &b) in o.iter_mut().zip(vv) {
+                            *a += p * b;
+                        }
+                    }
+                });
+            layer.o.forward(attn, n, out);
+            if layer.ff_norms.is_some() {
+                // Gemma2: post_attention_layernorm normalises the attention output.
+                rms_norm_rows(out, &layer.post_attn_norm, eps, hidden, x);
+                add(h, x);
+            } else {
+                add(h, out);
+            }
+            let pre = match &layer.ff_norms {
+                Some((pre, _)) => pre,
+                None => &layer.post_attn_norm,
+            };
+            rms_norm_rows(h, pre, eps, hidden, x);
+            layer.gate_up.forward(x, n, gate_up);
+            for (gu, a) in gate_up
+                .chunks_exact(2 * inter)
+                .zip(act.chunks_exact_mut(inter))
+            {
+                let (g, u) = gu.split_at(inter);
+                for ((a, &g), &u) in a.iter_mut().zip(g).zip(u) {
+                    *a = activation(s.activation, g) * u;
+                }
+            }
+            layer.down.forward(act, n, out);
+            match &layer.ff_norms {
+                Some((_, post)) => {
+                    rms_norm_rows(out, post, eps, hidden, x);
+                    add(h, x);
+                }
+                None => add(h, out),
             }
         }
-        let dev = Device::Cpu;
-        Ok((
-            Tensor::from_vec(cos, (input.batch, input.len, half), &dev)?,
-            Tensor::from_vec(sin, (input.batch, input.len, half), &dev)?,
-        ))
+        for seg in segs {
+            cache.lens[seg.slot] += seg.tokens.len();
+        }
+        // Last token of each segment → final norm → lm_head.
+        let ns = segs.len();
+        let last = sized(&mut ws.last, ns * hidden);
+        let mut end = 0;
+        for (i, seg) in segs.iter().enumerate() {
+            end += seg.tokens.len();
+            last[i * hidden..(i + 1) * hidden]
+                .copy_from_slice(&ws.h[(end - 1) * hidden..end * hidden]);
+        }
+        let normed = sized(&mut ws.last_normed, ns * hidden);
+        rms_norm_rows(last, &self.final_norm, eps, hidden, normed);
+        let head = self.lm_head.as_deref().unwrap_or(&self.embed);
+        let logits = sized(&mut ws.logits, ns * vocab);
+        matmul_t(normed, ns, hidden, head, vocab, logits);
+        if let Some(c) = s.final_softcap {
+            let c = c as f32;
+            for v in logits.iter_mut() {
+                *v = (*v * (1.0 / c)).tanh() * c;
+            }
+        }
+        Ok(&ws.logits[..ns * vocab])
     }
+}
 
-    /// Inverse frequencies and attention scaling for this call: seq_len is
-    /// max(position_ids) + 1.
-    fn inv_freq_for(&self, input: &StepInput) -> (Vec<f32>, f32) {
-        let seq_len = input.positions.iter().copied().max().unwrap_or(0) as f64 + 1.0;
-        rope_frequencies(&self.spec.rope, seq_len)
+fn add(h: &mut [f32], d: &[f32]) {
+    for (a, &b) in h.iter_mut().zip(d) {
+        *a += b;
     }
+}
 
-    /// Additive masks [B, 1, L, T] for full-attention layers and, when some layer slides, for
-    /// sliding layers (all sliding layers of a model share one window).
-    fn masks(&self, input: &StepInput, past: usize) -> Result<(Tensor, Option<Tensor>)> {
-        let (b, l) = (input.batch, input.len);
-        let total = past + l;
-        let window = self.layers.iter().find_map(|x| x.window);
-        let build = |w: Option<usize>| -> Result<Tensor> {
-            let m = additive_mask(&input.key_mask, b, l, past, w);
-            Ok(Tensor::from_vec(m, (b, 1, l, total), &Device::Cpu)?)
-        };
-        let full = build(None)?;
-        let sliding = match window {
-            Some(w) => Some(build(Some(w))?),
-            None => None,
-        };
-        Ok((full, sliding))
+/// The MLP activation, as transformers' ACT2FN (candle's f32 formulas).
+#[inline]
+fn activation(a: Activation, x: f32) -> f32 {
+    match a {
+        Activation::Silu => x / (1.0 + (-x).exp()),
+        Activation::GeluTanh => {
+            const SQRT_TWO_OVER_PI: f32 = 0.797_884_6;
+            0.5 * x * (1.0 + (SQRT_TWO_OVER_PI * x * (1.0 + 0.044715 * x * x)).tanh())
+        }
+        Activation::GeluErf => {
+            (0.5 * x as f64 * (1.0 + libm::erf(x as f64 / std::f64::consts::SQRT_2))) as f32
+        }
     }
 }
 
@@ -605,44 +861,6 @@ pub fn rope_frequencies(r: &RopeSpec, seq_len: f64) -> (Vec<f32>, f32) {
     }
 }
 
-/// The additive attention mask, row-major [B, L, past + L]: 0 where query i (cache index
-/// past + i) may see key k, `MASKED` elsewhere. Visible iff k ≤ q (causal), the key slot is real
-/// (`key_mask`), and with a window W, k > q − W (model-formats.md §2.7).
-pub fn additive_mask(
-    key_mask: &[u8],
-    b: usize,
-    l: usize,
-    past: usize,
-    window: Option<usize>,
-) -> Vec<f32> {
-    let total = past + l;
-    let mut m = vec![MASKED; b * l * total];
-    for row in 0..b {
-        let keys = &key_mask[row * total..(row + 1) * total];
-        for i in 0..l {
-            let q = past + i;
-            let out = &mut m[(row * l + i) * total..(row * l + i + 1) * total];
-            for (k, slot) in out.iter_mut().enumerate().take(q + 1) {
-                if keys[k] != 0 && window.is_none_or(|w| k + w > q) {
-                    *slot = 0.0;
-                }
-            }
-        }
-    }
-    m
-}
-
-/// What every layer of one forward step shares: batch and step length, the RoPE tables and the
-/// additive attention mask chosen for the layer.
-#[derive(Clone, Copy)]
-struct Step<'a> {
-    b: usize,
-    l: usize,
-    cos: &'a Tensor,
-    sin: &'a Tensor,
-    mask: &'a Tensor,
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -685,22 +903,48 @@ mod tests {
         }
     }
 
-    /// Mask rules of transformers 5.24.0 `masking_utils.py` (model-formats.md §2.7): causal in
-    /// cache-index space, padding hides keys, a window W shows W keys including the query.
+    /// The gemm call's strides: y = x·wᵀ against the textbook triple loop.
     #[test]
-    fn masks_combine_causal_padding_and_window() {
-        let vis = |m: Vec<f32>| -> Vec<u8> { m.iter().map(|&x| (x == 0.0) as u8).collect() };
-        // One row, one pad slot on the left, four queries.
-        let full = vis(additive_mask(&[0, 1, 1, 1], 1, 4, 0, None));
-        assert_eq!(full, vec![0, 0, 0, 0, 0, 1, 0, 0, 0, 1, 1, 0, 0, 1, 1, 1]);
-        let win = vis(additive_mask(&[0, 1, 1, 1], 1, 4, 0, Some(2)));
-        assert_eq!(&win[12..], &[0, 0, 1, 1]);
-        // A decode step: 3 cached slots + 1 query sees everything real.
-        let step = vis(additive_mask(&[1, 0, 1, 1], 1, 1, 3, None));
-        assert_eq!(step, vec![1, 0, 1, 1]);
-        // Pad query rows stay finite (no −inf), so softmax over them is not NaN.
-        assert!(additive_mask(&[0, 1], 1, 2, 0, None)
-            .iter()
-            .all(|x| x.is_finite()));
+    fn matmul_t_is_x_times_w_transposed() {
+        let (n, inp, out) = (3, 37, 5);
+        let x: Vec<f32> = (0..n * inp).map(|i| ((i * 7) % 11) as f32 - 5.0).collect();
+        let w: Vec<f32> = (0..out * inp)
+            .map(|i| ((i * 5) % 13) as f32 * 0.25)
+            .collect();
+        let mut y = vec![0.0; n * out];
+        matmul_t(&x, n, inp, &w, out, &mut y);
+        for i in 0..n {
+            for j in 0..out {
+                let want: f32 = (0..inp).map(|k| x[i * inp + k] * w[j * inp + k]).sum();
+                assert!((y[i * out + j] - want).abs() < 1e-3, "({i},{j})");
+            }
+        }
+    }
+
+    #[test]
+    fn dot_handles_every_length() {
+        for n in [0, 1, 15, 16, 17, 64, 100] {
+            let a: Vec<f32> = (0..n).map(|i| i as f32).collect();
+            let want: f32 = a.iter().map(|v| v * v).sum();
+            assert_eq!(dot(&a, &a), want, "length {n}");
+        }
+    }
+
+    /// rotate_half (transformers `apply_rotary_pos_emb`): out = x·cos + rotate_half(x)·sin with
+    /// rotate_half(x) = [−x₂, x₁].
+    #[test]
+    fn rope_rotates_halves() {
+        let mut x = [1.0, 2.0, 3.0, 4.0];
+        let (c, s) = ([0.5, 0.25], [2.0, 3.0]);
+        rope_in_place(&mut x, &c, &s);
+        assert_eq!(
+            x,
+            [
+                1.0 * 0.5 - 3.0 * 2.0,
+                2.0 * 0.25 - 4.0 * 3.0,
+                3.0 * 0.5 + 2.0,
+                4.0 * 0.25 + 6.0
+            ]
+        );
     }
 }
