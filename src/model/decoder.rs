@@ -143,7 +143,9 @@ fn sized(v: &mut Vec<f32>, n: usize) -> &mut [f32] {
     &mut v[..n]
 }
 
-/// A linear layer: `w` is [out, inp] row-major.
+/// A linear layer. `w` holds the checkpoint's [out, inp] matrix transposed, [inp, out]
+/// row-major: the layout the matrix-product kernel reads without repacking the weights on
+/// every call (repacking would read and write every weight once more per step).
 struct Linear {
     w: Vec<f32>,
     out: usize,
@@ -172,17 +174,18 @@ impl Linear {
                 b.extend(flat(&bt)?);
             }
         }
+        let inp = inp.unwrap_or(0);
         Ok(Linear {
-            w,
+            w: transpose(&w, out, inp),
             out,
-            inp: inp.unwrap_or(0),
+            inp,
             b: with_bias.then_some(b),
         })
     }
 
     /// x: [n, inp] → y: [n, out]
     fn forward(&self, x: &[f32], n: usize, y: &mut [f32]) {
-        matmul_t(x, n, self.inp, &self.w, self.out, y);
+        matmul(x, n, self.inp, &self.w, self.out, y);
         if let Some(b) = &self.b {
             for row in y.chunks_exact_mut(self.out) {
                 for (v, &bb) in row.iter_mut().zip(b) {
@@ -197,8 +200,45 @@ fn flat(t: &Tensor) -> Result<Vec<f32>> {
     Ok(t.flatten_all()?.to_vec1::<f32>()?)
 }
 
-/// y[n, out] = x[n, inp] · wᵀ, with w [out, inp] row-major, on the rayon pool.
+/// [rows, cols] row-major → [cols, rows] row-major, in cache-sized tiles.
+fn transpose(a: &[f32], rows: usize, cols: usize) -> Vec<f32> {
+    const TILE: usize = 32;
+    let mut t = vec![0.0; rows * cols];
+    for r0 in (0..rows).step_by(TILE) {
+        for c0 in (0..cols).step_by(TILE) {
+            for r in r0..(r0 + TILE).min(rows) {
+                for c in c0..(c0 + TILE).min(cols) {
+                    t[c * rows + r] = a[r * cols + c];
+                }
+            }
+        }
+    }
+    t
+}
+
+/// y[n, out] = x[n, inp] · w, with w [inp, out] row-major, on the rayon pool.
+fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
+    gemm_rows(x, n, inp, w, out as isize, 1, out, y);
+}
+
+/// y[n, out] = x[n, inp] · wᵀ, with w [out, inp] row-major (the lm_head, which is also the
+/// embedding table when tied and so keeps the checkpoint layout).
 fn matmul_t(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
+    gemm_rows(x, n, inp, w, 1, inp as isize, out, y);
+}
+
+/// y[n, out] = x[n, inp] · B where B(k, j) = w[k·w_rs + j·w_cs].
+#[allow(clippy::too_many_arguments)]
+fn gemm_rows(
+    x: &[f32],
+    n: usize,
+    inp: usize,
+    w: &[f32],
+    w_rs: isize,
+    w_cs: isize,
+    out: usize,
+    y: &mut [f32],
+) {
     assert!(x.len() >= n * inp && w.len() >= out * inp && y.len() >= n * out);
     if n == 0 || out == 0 {
         return;
@@ -214,8 +254,9 @@ fn matmul_t(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32
         gemm::Parallelism::None
     };
     // SAFETY: the three buffers hold at least n·inp, out·inp and n·out values (asserted
-    // above); the strides below address exactly those elements: lhs (i, k) = x[i·inp + k],
-    // rhs (k, j) = w[j·inp + k], dst (i, j) = y[i·out + j]. dst does not alias the inputs.
+    // above); the strides address exactly those elements: lhs (i, k) = x[i·inp + k],
+    // rhs (k, j) = w[k·w_rs + j·w_cs] (either stride order covers out·inp values),
+    // dst (i, j) = y[i·out + j]. dst does not alias the inputs.
     unsafe {
         gemm::gemm(
             n,
@@ -229,8 +270,8 @@ fn matmul_t(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32
             1,
             inp as isize,
             w.as_ptr(),
-            inp as isize,
-            1,
+            w_cs,
+            w_rs,
             0.0,
             1.0,
             false,
@@ -903,7 +944,7 @@ mod tests {
         }
     }
 
-    /// The gemm call's strides: y = x·wᵀ against the textbook triple loop.
+    /// The gemm call's strides: y = x·wᵀ against the textbook triple loop, in both layouts.
     #[test]
     fn matmul_t_is_x_times_w_transposed() {
         let (n, inp, out) = (3, 37, 5);
@@ -918,6 +959,11 @@ mod tests {
                 let want: f32 = (0..inp).map(|k| x[i * inp + k] * w[j * inp + k]).sum();
                 assert!((y[i * out + j] - want).abs() < 1e-3, "({i},{j})");
             }
+        }
+        let mut y2 = vec![0.0; n * out];
+        matmul(&x, n, inp, &transpose(&w, out, inp), out, &mut y2);
+        for (a, b) in y.iter().zip(&y2) {
+            assert!((a - b).abs() < 1e-3);
         }
     }
 
