@@ -154,29 +154,34 @@ struct Linear {
 }
 
 impl Linear {
-    /// Stacks the rows of one or more checkpoint matrices (with their biases, if any).
+    /// Stacks the rows of one or more checkpoint matrices (with their biases, if any),
+    /// transposing each straight into place.
     fn stack(parts: Vec<(Tensor, Option<Tensor>)>) -> Result<Linear> {
-        let mut w = Vec::new();
-        let mut b = Vec::new();
-        let (mut out, mut inp) = (0, None);
-        let with_bias = parts.iter().all(|(_, b)| b.is_some());
-        for (wt, bt) in parts {
-            let (o, i) = wt.dims2()?;
-            if inp.is_some_and(|x| x != i) {
-                return Err(Error::internal(
-                    "stacked projections disagree on input size",
-                ));
-            }
-            inp = Some(i);
-            out += o;
-            w.extend(flat(&wt)?);
-            if let (true, Some(bt)) = (with_bias, bt) {
-                b.extend(flat(&bt)?);
-            }
+        let mut dims = Vec::with_capacity(parts.len());
+        for (wt, _) in &parts {
+            dims.push(wt.dims2()?);
         }
-        let inp = inp.unwrap_or(0);
+        let inp = dims.first().map_or(0, |d| d.1);
+        if dims.iter().any(|d| d.1 != inp) {
+            return Err(Error::internal(
+                "stacked projections disagree on input size",
+            ));
+        }
+        let out: usize = dims.iter().map(|d| d.0).sum();
+        let with_bias = parts.iter().all(|(_, b)| b.is_some());
+        let mut w = vec![0.0; inp * out];
+        let mut b = Vec::new();
+        let mut at = 0;
+        for ((wt, bt), (o, _)) in parts.into_iter().zip(dims) {
+            with_f32(&wt, |a| transpose_into(a, o, inp, &mut w, out, at))?;
+            drop(wt);
+            if let (true, Some(bt)) = (with_bias, bt) {
+                with_f32(&bt, |v| b.extend_from_slice(v))?;
+            }
+            at += o;
+        }
         Ok(Linear {
-            w: transpose(&w, out, inp),
+            w,
             out,
             inp,
             b: with_bias.then_some(b),
@@ -196,34 +201,108 @@ impl Linear {
     }
 }
 
-fn flat(t: &Tensor) -> Result<Vec<f32>> {
-    Ok(t.flatten_all()?.to_vec1::<f32>()?)
+/// Calls `f` on the f32 values of `t` in row-major order, borrowing its storage when it is
+/// contiguous (no copy).
+fn with_f32<R>(t: &Tensor, f: impl FnOnce(&[f32]) -> R) -> Result<R> {
+    {
+        let (storage, layout) = t.storage_and_layout();
+        if let (candle_core::Storage::Cpu(cpu), Some((a, b))) =
+            (&*storage, layout.contiguous_offsets())
+        {
+            return Ok(f(&cpu.as_slice::<f32>()?[a..b]));
+        }
+    }
+    Ok(f(&t.flatten_all()?.to_vec1::<f32>()?))
 }
 
-/// [rows, cols] row-major → [cols, rows] row-major, in cache-sized tiles.
-fn transpose(a: &[f32], rows: usize, cols: usize) -> Vec<f32> {
+fn flat(t: &Tensor) -> Result<Vec<f32>> {
+    with_f32(t, <[f32]>::to_vec)
+}
+
+/// Writes `a` ([rows, cols] row-major) transposed into columns `at..at + rows` of `t`
+/// ([cols, width] row-major), in cache-sized tiles.
+fn transpose_into(a: &[f32], rows: usize, cols: usize, t: &mut [f32], width: usize, at: usize) {
     const TILE: usize = 32;
-    let mut t = vec![0.0; rows * cols];
     for r0 in (0..rows).step_by(TILE) {
         for c0 in (0..cols).step_by(TILE) {
             for r in r0..(r0 + TILE).min(rows) {
                 for c in c0..(c0 + TILE).min(cols) {
-                    t[c * rows + r] = a[r * cols + c];
+                    t[c * width + at + r] = a[r * cols + c];
                 }
             }
         }
     }
+}
+
+#[cfg(test)]
+fn transpose(a: &[f32], rows: usize, cols: usize) -> Vec<f32> {
+    let mut t = vec![0.0; rows * cols];
+    transpose_into(a, rows, cols, &mut t, rows, 0);
     t
 }
 
+/// Runs the rows of a weight matrix are split into for a single-row product.
+const K_SPLIT: usize = 8;
+
+thread_local! {
+    /// Partial sums of the single-row product, [K_SPLIT, out], reused across calls.
+    static PARTIAL: std::cell::RefCell<Vec<f32>> = const { std::cell::RefCell::new(Vec::new()) };
+}
+
 /// y[n, out] = x[n, inp] · w, with w [inp, out] row-major, on the rayon pool.
+///
+/// One row (batch-1 decoding) is bound by reading the weights, so it gets its own loop: the
+/// rows of `w` are split into `K_SPLIT` runs, one task each streaming its run once into a
+/// partial sum, and the partial sums are added in a fixed order (the same result for any
+/// thread count).
 fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
+    if n == 1 && inp > 0 {
+        assert!(x.len() >= inp && w.len() >= out * inp && y.len() >= out);
+        let run = inp.div_ceil(K_SPLIT);
+        PARTIAL.with_borrow_mut(|partial| {
+            if partial.len() < K_SPLIT * out {
+                partial.resize(K_SPLIT * out, 0.0);
+            }
+            let partial = &mut partial[..K_SPLIT * out];
+            partial.par_chunks_mut(out).enumerate().for_each(|(c, p)| {
+                p.fill(0.0);
+                for k in (c * run)..((c + 1) * run).min(inp) {
+                    let xk = x[k];
+                    for (a, &wv) in p.iter_mut().zip(&w[k * out..(k + 1) * out]) {
+                        *a += xk * wv;
+                    }
+                }
+            });
+            let y = &mut y[..out];
+            y.copy_from_slice(&partial[..out]);
+            for p in partial[out..].chunks_exact(out) {
+                for (a, &v) in y.iter_mut().zip(p) {
+                    *a += v;
+                }
+            }
+        });
+        return;
+    }
     gemm_rows(x, n, inp, w, out as isize, 1, out, y);
 }
 
 /// y[n, out] = x[n, inp] · wᵀ, with w [out, inp] row-major (the lm_head, which is also the
 /// embedding table when tied and so keeps the checkpoint layout).
 fn matmul_t(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
+    if n == 1 {
+        // One dot product per contiguous row of w, rows split across tasks.
+        assert!(x.len() >= inp && w.len() >= out * inp && y.len() >= out);
+        y[..out]
+            .par_chunks_mut(256)
+            .enumerate()
+            .for_each(|(blk, yb)| {
+                for (i, v) in yb.iter_mut().enumerate() {
+                    let j = blk * 256 + i;
+                    *v = dot(&w[j * inp..(j + 1) * inp], &x[..inp]);
+                }
+            });
+        return;
+    }
     gemm_rows(x, n, inp, w, 1, inp as isize, out, y);
 }
 
@@ -960,9 +1039,20 @@ mod tests {
                 assert!((y[i * out + j] - want).abs() < 1e-3, "({i},{j})");
             }
         }
+        let wt = transpose(&w, out, inp);
         let mut y2 = vec![0.0; n * out];
-        matmul(&x, n, inp, &transpose(&w, out, inp), out, &mut y2);
+        matmul(&x, n, inp, &wt, out, &mut y2);
         for (a, b) in y.iter().zip(&y2) {
+            assert!((a - b).abs() < 1e-3);
+        }
+        // The single-row paths (batch-1 decoding).
+        let mut y1 = vec![0.0; out];
+        matmul_t(&x[inp..2 * inp], 1, inp, &w, out, &mut y1);
+        for (a, b) in y1.iter().zip(&y[out..2 * out]) {
+            assert!((a - b).abs() < 1e-3);
+        }
+        matmul(&x[inp..2 * inp], 1, inp, &wt, out, &mut y1);
+        for (a, b) in y1.iter().zip(&y[out..2 * out]) {
             assert!((a - b).abs() < 1e-3);
         }
     }

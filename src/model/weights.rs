@@ -8,8 +8,9 @@
 
 use crate::error::{Error, Result};
 use crate::model::config::ModelSpec;
-use candle_core::safetensors::{Load, MmapedSafetensors};
+use candle_core::safetensors::Load;
 use candle_core::{DType, Device, Tensor};
+use safetensors::SafeTensors;
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
@@ -118,24 +119,63 @@ pub fn safetensors_files(dir: &Path) -> Result<Vec<PathBuf>> {
     ))
 }
 
-/// Memory-maps one file. The one `unsafe` of the loader.
-fn mmap_file(file: &Path) -> Result<MmapedSafetensors> {
+/// One memory-mapped safetensors file.
+struct Mapped {
+    mmap: memmap2::Mmap,
+}
+
+impl Mapped {
+    /// The parsed header over the mapping (checked once in `mmap_file`).
+    fn parse(&self, file: &Path) -> Result<SafeTensors<'_>> {
+        SafeTensors::deserialize(&self.mmap)
+            .map_err(|e| Error::file(file, format!("not a readable safetensors file: {e}")))
+    }
+
+    /// Drops the pages under `data` (a slice of this mapping) from the process once their
+    /// values are copied, so loading never holds the file's pages and the f32 copy at once.
+    fn release(&self, data: &[u8]) {
+        let base = self.mmap.as_ptr() as usize;
+        let start = (data.as_ptr() as usize).saturating_sub(base);
+        if data.is_empty() || start + data.len() > self.mmap.len() {
+            return;
+        }
+        // SAFETY: a read-only private file mapping that is never written: after DONTNEED the
+        // next access reads the file again, so no value changes. The advice is best effort.
+        let _ = unsafe {
+            self.mmap
+                .unchecked_advise_range(memmap2::UncheckedAdvice::DontNeed, start, data.len())
+        };
+    }
+}
+
+/// Memory-maps one file and checks its header.
+fn mmap_file(file: &Path) -> Result<Mapped> {
+    let f =
+        std::fs::File::open(file).map_err(|e| Error::file(file, format!("cannot open: {e}")))?;
     // SAFETY: the mapping stays valid only while nobody truncates or rewrites the file; a model
     // directory is read-only input for the duration of a run, and every tensor is copied into
     // owned f32 storage in `load` before the mapping is dropped.
-    let st = unsafe { MmapedSafetensors::new(file) };
-    st.map_err(|e| Error::file(file, format!("not a readable safetensors file: {e}")))
+    let mmap = unsafe { memmap2::Mmap::map(&f) }
+        .map_err(|e| Error::file(file, format!("cannot memory-map: {e}")))?;
+    let m = Mapped { mmap };
+    m.parse(file)?;
+    Ok(m)
 }
 
 /// Loads and validates every tensor the spec expects, up-cast to f32.
 pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
     let files = safetensors_files(dir)?;
-    let maps: Vec<MmapedSafetensors> = files.iter().map(|f| mmap_file(f)).collect::<Result<_>>()?;
+    let maps: Vec<Mapped> = files.iter().map(|f| mmap_file(f)).collect::<Result<_>>()?;
+    let parsed: Vec<SafeTensors> = maps
+        .iter()
+        .zip(&files)
+        .map(|(m, f)| m.parse(f))
+        .collect::<Result<_>>()?;
     // Which file holds each tensor (the last one wins, as in an index).
     let mut owner: HashMap<String, usize> = HashMap::new();
-    for (i, m) in maps.iter().enumerate() {
-        for (name, _) in m.tensors() {
-            owner.insert(name, i);
+    for (i, st) in parsed.iter().enumerate() {
+        for name in st.names() {
+            owner.insert(name.to_string(), i);
         }
     }
     let file_of = |name: &str| files[owner.get(name).copied().unwrap_or(0)].clone();
@@ -169,8 +209,8 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
     let mut tensors = HashMap::with_capacity(expected.len());
     let mut stored_dtype = String::new();
     for (name, shape) in &expected {
-        let src = owner.get(name).map(|&i| &maps[i]);
-        let view = src.and_then(|m| m.get(name).ok()).ok_or_else(|| {
+        let src = owner.get(name).copied();
+        let view = src.and_then(|i| parsed[i].tensor(name).ok()).ok_or_else(|| {
             Error::field(
                 &files[0],
                 None,
@@ -228,6 +268,9 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
                     format!("cannot read: {e}"),
                 )
             })?;
+        if let Some(i) = src {
+            maps[i].release(view.data());
+        }
         tensors.insert(name.clone(), t);
     }
     if !tensors.contains_key(EMBED) {
