@@ -237,7 +237,7 @@ pub fn answer_set(settings: &AnswerSettings, set: &QuestionSet) -> Result<Answer
     let secs = started.elapsed().as_secs_f64();
     if settings.progress {
         eprintln!(
-            "answered {} questions: {new_tokens_total} new tokens in {secs:.1} s ({:.1} tokens/s)",
+            "answered {} questions: {new_tokens_total} new tokens in {secs:.3} s ({:.1} tokens/s)",
             set.len(),
             new_tokens_total as f64 / secs.max(1e-9)
         );

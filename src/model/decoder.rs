@@ -241,6 +241,9 @@ fn transpose(a: &[f32], rows: usize, cols: usize) -> Vec<f32> {
     t
 }
 
+/// Multiply-adds below which a loop stays on the calling thread.
+const PARALLEL_WORK: usize = 1 << 18;
+
 /// Runs the rows of a weight matrix are split into for a single-row product.
 const K_SPLIT: usize = 8;
 
@@ -264,7 +267,7 @@ fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32])
                 partial.resize(K_SPLIT * out, 0.0);
             }
             let partial = &mut partial[..K_SPLIT * out];
-            partial.par_chunks_mut(out).enumerate().for_each(|(c, p)| {
+            let one = |(c, p): (usize, &mut [f32])| {
                 p.fill(0.0);
                 for k in (c * run)..((c + 1) * run).min(inp) {
                     let xk = x[k];
@@ -272,7 +275,12 @@ fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32])
                         *a += xk * wv;
                     }
                 }
-            });
+            };
+            if out * inp >= PARALLEL_WORK {
+                partial.par_chunks_mut(out).enumerate().for_each(one);
+            } else {
+                partial.chunks_mut(out).enumerate().for_each(one);
+            }
             let y = &mut y[..out];
             y.copy_from_slice(&partial[..out]);
             for p in partial[out..].chunks_exact(out) {
@@ -292,15 +300,17 @@ fn matmul_t(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32
     if n == 1 {
         // One dot product per contiguous row of w, rows split across tasks.
         assert!(x.len() >= inp && w.len() >= out * inp && y.len() >= out);
-        y[..out]
-            .par_chunks_mut(256)
-            .enumerate()
-            .for_each(|(blk, yb)| {
-                for (i, v) in yb.iter_mut().enumerate() {
-                    let j = blk * 256 + i;
-                    *v = dot(&w[j * inp..(j + 1) * inp], &x[..inp]);
-                }
-            });
+        let one = |(blk, yb): (usize, &mut [f32])| {
+            for (i, v) in yb.iter_mut().enumerate() {
+                let j = blk * 256 + i;
+                *v = dot(&w[j * inp..(j + 1) * inp], &x[..inp]);
+            }
+        };
+        if out * inp >= PARALLEL_WORK {
+            y[..out].par_chunks_mut(256).enumerate().for_each(one);
+        } else {
+            y[..out].chunks_mut(256).enumerate().for_each(one);
+        }
         return;
     }
     gemm_rows(x, n, inp, w, 1, inp as isize, out, y);
@@ -745,42 +755,52 @@ impl Decoder {
             let scale = s.attn_scale as f32;
             let softcap = s.attn_softcap.map(|c| c as f32);
             let window = layer.window;
-            attn.par_chunks_mut(hd)
-                .zip(scores.par_chunks_mut(cap))
-                .enumerate()
-                .with_min_len(4)
-                .for_each(|(idx, (o, sc))| {
-                    let (t, head) = (idx / nh, idx % nh);
-                    let (slot, pos) = (tok_slot[t], tok_pos[t]);
-                    let lo = window.map_or(0, |w| (pos + 1).saturating_sub(w));
-                    let q = &qkv_r[t * qkv_w + head * hd..t * qkv_w + (head + 1) * hd];
-                    let base = slot * cap * kv_dim + (head / rep) * hd;
-                    let sc = &mut sc[..pos + 1 - lo];
-                    let mut max = f32::NEG_INFINITY;
-                    for (j, v) in sc.iter_mut().enumerate() {
-                        let kk = &ck[base + (lo + j) * kv_dim..][..hd];
-                        let mut x = dot(q, kk) * scale;
-                        if let Some(c) = softcap {
-                            x = (x * (1.0 / c)).tanh() * c;
-                        }
-                        max = max.max(x);
-                        *v = x;
+            let one = |(idx, (o, sc)): (usize, (&mut [f32], &mut [f32]))| {
+                let (t, head) = (idx / nh, idx % nh);
+                let (slot, pos) = (tok_slot[t], tok_pos[t]);
+                let lo = window.map_or(0, |w| (pos + 1).saturating_sub(w));
+                let q = &qkv_r[t * qkv_w + head * hd..t * qkv_w + (head + 1) * hd];
+                let base = slot * cap * kv_dim + (head / rep) * hd;
+                let sc = &mut sc[..pos + 1 - lo];
+                let mut max = f32::NEG_INFINITY;
+                for (j, v) in sc.iter_mut().enumerate() {
+                    let kk = &ck[base + (lo + j) * kv_dim..][..hd];
+                    let mut x = dot(q, kk) * scale;
+                    if let Some(c) = softcap {
+                        x = (x * (1.0 / c)).tanh() * c;
                     }
-                    let mut sum = 0f32;
-                    for v in sc.iter_mut() {
-                        *v = (*v - max).exp();
-                        sum += *v;
+                    max = max.max(x);
+                    *v = x;
+                }
+                let mut sum = 0f32;
+                for v in sc.iter_mut() {
+                    *v = (*v - max).exp();
+                    sum += *v;
+                }
+                let inv = 1.0 / sum;
+                o.fill(0.0);
+                for (j, &p) in sc.iter().enumerate() {
+                    let p = p * inv;
+                    let vv = &cv[base + (lo + j) * kv_dim..][..hd];
+                    for (a, &b) in o.iter_mut().zip(vv) {
+                        *a += p * b;
                     }
-                    let inv = 1.0 / sum;
-                    o.fill(0.0);
-                    for (j, &p) in sc.iter().enumerate() {
-                        let p = p * inv;
-                        let vv = &cv[base + (lo + j) * kv_dim..][..hd];
-                        for (a, &b) in o.iter_mut().zip(vv) {
-                            *a += p * b;
-                        }
-                    }
-                });
+                }
+            };
+            // Threads only pay off for enough work (a thread hand-off costs microseconds).
+            let work: usize = tok_pos.iter().map(|&p| (p + 1) * nh * hd).sum();
+            if work >= PARALLEL_WORK {
+                attn.par_chunks_mut(hd)
+                    .zip(scores.par_chunks_mut(cap))
+                    .enumerate()
+                    .with_min_len(4)
+                    .for_each(one);
+            } else {
+                attn.chunks_mut(hd)
+                    .zip(scores.chunks_mut(cap))
+                    .enumerate()
+                    .for_each(one);
+            }
             layer.o.forward(attn, n, out);
             if layer.ff_norms.is_some() {
                 // Gemma2: post_attention_layernorm normalises the attention output.
