@@ -261,6 +261,11 @@ pub struct Journal {
 impl Journal {
     /// Opens (creating if absent) and locks the journal; another run holding it is an error.
     pub fn open(path: &Path) -> Result<Journal> {
+        if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
+            std::fs::create_dir_all(dir).map_err(|e| {
+                Error::file(dir, format!("cannot create the output directory: {e}"))
+            })?;
+        }
         let file = std::fs::OpenOptions::new()
             .read(true)
             .write(true)
@@ -503,6 +508,14 @@ mod tests {
         let fields: Vec<&str> = d.iter().map(|(f, _, _)| f.as_str()).collect();
         assert_eq!(fields, vec!["adapter_fingerprint", "max_new_tokens"]);
         assert_eq!(d[1], ("max_new_tokens".into(), "16".into(), "32".into()));
+    }
+
+    #[test]
+    fn the_output_directory_is_made_when_missing() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("new/sub/out.jsonl.partial");
+        Journal::open(&path).unwrap();
+        assert!(path.is_file());
     }
 
     #[test]

@@ -134,24 +134,31 @@ struct Claim {
     created: bool,
     /// The directory held no saved work of an earlier run.
     fresh: bool,
-    _lock: std::fs::File,
+    _lock: Option<std::fs::File>,
 }
 
 impl Claim {
     /// Locks `dir`; None when another run holds it.
     fn lock(dir: &Path, created: bool) -> Result<Option<Claim>> {
-        let file = std::fs::File::open(dir)
-            .map_err(|e| Error::file(dir, format!("cannot open the report directory: {e}")))?;
-        if !fsutil::try_lock(&file)
-            .map_err(|e| Error::file(dir, format!("cannot lock the report directory: {e}")))?
-        {
-            return Ok(None);
-        }
+        // A directory opens as a file (and takes an flock) on unix only.
+        #[cfg(unix)]
+        let lock = {
+            let file = std::fs::File::open(dir)
+                .map_err(|e| Error::file(dir, format!("cannot open the report directory: {e}")))?;
+            if !fsutil::try_lock(&file)
+                .map_err(|e| Error::file(dir, format!("cannot lock the report directory: {e}")))?
+            {
+                return Ok(None);
+            }
+            Some(file)
+        };
+        #[cfg(not(unix))]
+        let lock = None;
         Ok(Some(Claim {
             dir: dir.to_path_buf(),
             created,
             fresh: created || !has_saved_work(dir),
-            _lock: file,
+            _lock: lock,
         }))
     }
 
