@@ -257,6 +257,30 @@ fn a_cut_journal_resumes_to_the_uninterrupted_answers() {
     );
     assert_eq!(&rows_without_ms(&out), expected);
 
+    // Killed after the last answer was saved but before the answers file was written: every
+    // answer is in the journal (in completion order), nothing is left to compute.
+    let done = std::fs::read_to_string(&out).unwrap();
+    let mut full = format!("{}\n", lines[0]);
+    for row in done.lines().rev() {
+        full.push_str(row);
+        full.push('\n');
+    }
+    std::fs::write(journal(&out), full).unwrap();
+    std::fs::remove_file(&out).unwrap();
+    let o = output(answer_cmd(set, &out, &[]));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(o.status.success(), "{err}");
+    assert!(
+        err.contains(&format!("{N} of {N} questions already answered")),
+        "{err}"
+    );
+    assert_eq!(
+        std::fs::read_to_string(&out).unwrap(),
+        done,
+        "rows back in set order"
+    );
+    assert!(!journal(&out).exists());
+
     // Run again once complete: the answers file is kept as it is, nothing recomputed.
     let before = std::fs::read(&out).unwrap();
     let o = output(answer_cmd(set, &out, &[]));
@@ -297,7 +321,12 @@ fn a_journal_from_another_run_is_refused_unless_restarting() {
         assert_eq!(std::fs::read(journal(&out)).unwrap(), saved);
     }
     // Batch size and threads are not part of a run's identity: this continues the journal.
-    // --restart starts over instead, with whatever settings are given.
+    let o = output(answer_cmd(set, &out, &["--batch", "3"]));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(o.status.success(), "{err}");
+    assert!(err.contains("continuing from"), "{err}");
+    assert_eq!(&rows_without_ms(&out), expected);
+    // --restart starts over (here over the finished file) with whatever settings are given.
     let o = output(answer_cmd(
         set,
         &out,
@@ -305,14 +334,14 @@ fn a_journal_from_another_run_is_refused_unless_restarting() {
     ));
     let err = String::from_utf8_lossy(&o.stderr);
     assert!(o.status.success(), "{err}");
-    assert!(!err.contains("continuing"), "{err}");
+    assert!(
+        !err.contains("continuing") && !err.contains("already complete"),
+        "{err}"
+    );
     let nine: Vec<Value> = rows_without_ms(&out);
     assert_eq!(nine.len(), N);
     assert!(nine.iter().all(|r| r["new_tokens"] == 9));
-    // And --restart over a finished file with the original settings gives the original answers.
-    let o = output(answer_cmd(set, &out, &["--restart", "--batch", "4"]));
-    assert!(o.status.success());
-    assert_eq!(&rows_without_ms(&out), expected);
+    assert!(!journal(&out).exists());
 }
 
 /// The check: SIGKILL at seeded random points, several times, resuming each time.

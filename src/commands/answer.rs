@@ -359,26 +359,30 @@ pub fn answer_to(
     bar.set_position(saved as u64);
     let started = Instant::now();
     let mut new_tokens_total = 0usize;
-    let result = generate::generate_stream(
-        &loaded.decoder,
-        &prompts,
-        &todo,
-        &gen,
-        settings.batch,
-        &mut |i, g| {
-            let row = answer_record(&chat, &set.questions[i].id, g)?;
-            journal.append(&row)?;
-            rows[i] = Some(row);
-            saved += 1;
-            bar.inc(1);
-            stop.check(|| saved_note(saved))
-        },
-        &mut |k| {
-            new_tokens_total += k;
-            let secs = started.elapsed().as_secs_f64().max(1e-9);
-            bar.set_message(format!("{:.1} tokens/s", new_tokens_total as f64 / secs));
-        },
-    );
+    let result = if todo.is_empty() {
+        Ok(())
+    } else {
+        generate::generate_stream(
+            &loaded.decoder,
+            &prompts,
+            &todo,
+            &gen,
+            settings.batch,
+            &mut |i, g| {
+                let row = answer_record(&chat, &set.questions[i].id, g)?;
+                journal.append(&row)?;
+                rows[i] = Some(row);
+                saved += 1;
+                bar.inc(1);
+                stop.check(|| saved_note(saved))
+            },
+            &mut |k| {
+                new_tokens_total += k;
+                let secs = started.elapsed().as_secs_f64().max(1e-9);
+                bar.set_message(format!("{:.1} tokens/s", new_tokens_total as f64 / secs));
+            },
+        )
+    };
     bar.finish_and_clear();
     result?;
     let secs = started.elapsed().as_secs_f64();
