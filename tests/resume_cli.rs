@@ -435,6 +435,10 @@ fn ctrl_c_and_sigterm_stop_cleanly_and_say_how_to_continue() {
 }
 
 fn vet_cmd(cwd: &Path, extra: &[&str]) -> Command {
+    vet_cmd_with(cwd, &fixture().join("adapters/qv"), extra)
+}
+
+fn vet_cmd_with(cwd: &Path, adapter: &Path, extra: &[&str]) -> Command {
     let f = fixture();
     let mut c = Command::new(env!("CARGO_BIN_EXE_liftgate"));
     c.current_dir(cwd)
@@ -442,7 +446,7 @@ fn vet_cmd(cwd: &Path, extra: &[&str]) -> Command {
         .arg("--model")
         .arg(f.join("model"))
         .arg("--adapter")
-        .arg(f.join("adapters/qv"))
+        .arg(adapter)
         .args([
             "--questions",
             "set.jsonl",
@@ -541,4 +545,54 @@ fn vet_continues_a_killed_then_stopped_run_in_its_own_directory() {
     let o = output(vet_cmd(&work, &[]));
     assert!(matches!(o.status.code(), Some(0 | 1)));
     assert_eq!(std::fs::read_dir(work.join("reports")).unwrap().count(), 2);
+}
+
+/// An input error found after the baseline was answered (a damaged adapter_config.json is only
+/// read when the candidate loads): a new run leaves no report directory behind; a continued
+/// run keeps the answers its earlier runs saved.
+#[test]
+fn vet_input_errors_leave_nothing_half_written_but_keep_saved_work() {
+    let tmp = tempfile::tempdir().unwrap();
+    write_set(&tmp.path().join("set.jsonl"), 40);
+    let broken = tmp.path().join("broken-adapter");
+    std::fs::create_dir(&broken).unwrap();
+    for e in std::fs::read_dir(fixture().join("adapters/qv"))
+        .unwrap()
+        .flatten()
+    {
+        std::fs::copy(e.path(), broken.join(e.file_name())).unwrap();
+    }
+    std::fs::write(broken.join("adapter_config.json"), "{\"r\": 8,").unwrap();
+    let report = tmp.path().join("rep");
+    let rep = report.to_str().unwrap();
+
+    let o = output(vet_cmd_with(tmp.path(), &broken, &["--report", rep]));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{err}");
+    assert!(err.contains("adapter_config.json"), "{err}");
+    assert!(!report.exists(), "a failed new run leaves no directory");
+
+    // Killed while the candidate answers, then continued with the broken adapter: exit 2, and
+    // the baseline answers and the candidate journal are still there.
+    let mut child = vet_cmd(tmp.path(), &["--report", rep])
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let cand_journal = report.join("candidate.answers.jsonl.partial");
+    assert!(wait_for_rows(&mut child, &cand_journal, 2));
+    child.kill().unwrap();
+    child.wait().unwrap();
+    let saved = std::fs::read(&cand_journal).unwrap();
+    let o = output(vet_cmd_with(tmp.path(), &broken, &["--report", rep]));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert_eq!(o.status.code(), Some(2), "{err}");
+    assert!(report.join("baseline.answers.jsonl").is_file());
+    assert_eq!(std::fs::read(&cand_journal).unwrap(), saved);
+    // And with the right adapter the run completes from there.
+    let o = output(vet_cmd(tmp.path(), &["--report", rep]));
+    let err = String::from_utf8_lossy(&o.stderr);
+    assert!(matches!(o.status.code(), Some(0 | 1)), "{err}");
+    assert!(err.contains("continuing from"), "{err}");
+    assert!(report.join("summary.json").is_file());
+    assert!(!cand_journal.exists());
 }
