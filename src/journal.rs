@@ -315,9 +315,10 @@ impl Journal {
         self.write_synced(&line)
     }
 
-    /// Keeps the valid part of `contents` (dropping a cut last line) and appends after it.
-    pub fn resume(&mut self, contents: &Contents) -> Result<()> {
-        self.truncate(contents.valid_len)
+    /// Keeps the first `valid_len` bytes ([`Contents::valid_len`]: a cut last line goes) and
+    /// appends after them.
+    pub fn resume(&mut self, valid_len: u64) -> Result<()> {
+        self.truncate(valid_len)
     }
 
     /// Appends one answer row and syncs it to disk.
@@ -449,7 +450,7 @@ mod tests {
         std::fs::write(&path, &bytes[..bytes.len() - 4]).unwrap();
         let mut j = Journal::open(&path).unwrap();
         let c = j.read(&s).unwrap();
-        j.resume(&c).unwrap();
+        j.resume(c.valid_len).unwrap();
         j.append(&row("c")).unwrap();
         drop(j);
         let c = parse(&path, &std::fs::read(&path).unwrap(), &s).unwrap();

@@ -19,7 +19,7 @@ use crate::generate::{
     QuestionsInfo, RunInfo, TemplateInfo,
 };
 use crate::interrupt::StopFlag;
-use crate::journal::{self, Journal, RunIdentity};
+use crate::journal::{self, Contents, Journal, RunIdentity};
 use crate::model;
 use crate::questions::QuestionSet;
 use indicatif::{ProgressBar, ProgressStyle};
@@ -315,16 +315,19 @@ pub fn answer_to(
         Some(journal.read(set)?)
     };
     match contents {
-        Some(c) if c.identity.is_some() => {
-            if let Some(old) = &c.identity {
-                check_same_run(&jpath, old, &identity)?;
-            }
-            journal.resume(&c)?;
-            let kept = c.records.len();
-            for (i, row) in c.records {
+        Some(Contents {
+            identity: Some(old),
+            records,
+            valid_len,
+            dropped_line,
+        }) => {
+            check_same_run(&jpath, &old, &identity)?;
+            journal.resume(valid_len)?;
+            let kept = records.len();
+            for (i, row) in records {
                 rows[i] = Some(row);
             }
-            let dropped = match c.dropped_line {
+            let dropped = match dropped_line {
                 Some(line) => format!(" (line {line}, cut off mid-write, dropped)"),
                 None => String::new(),
             };
