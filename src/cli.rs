@@ -60,9 +60,17 @@ pub struct AnswerArgs {
     /// Question set (JSONL).
     #[arg(long, value_name = "FILE")]
     pub questions: PathBuf,
-    /// Answers file to write (JSONL); `<FILE>.run.json` is written beside it.
+    /// Answers file to write (JSONL); `<FILE>.run.json` is written beside it. While running,
+    /// finished answers are saved to `<FILE>.partial`; rerunning the same command continues
+    /// from there, and reuses a complete `<FILE>` made with the same model, adapter, set and
+    /// settings.
     #[arg(long, value_name = "FILE")]
     pub out: PathBuf,
+    /// Start over: discard the saved answers of an earlier, unfinished or finished, run with
+    /// this --out instead of continuing it (needed when model, adapter, set or settings
+    /// changed).
+    #[arg(long)]
+    pub restart: bool,
     #[command(flatten)]
     pub generation: GenerationArgs,
 }
@@ -130,8 +138,15 @@ pub struct VetArgs {
     #[arg(long, value_name = "FILE", requires_all = ["model", "adapter"])]
     pub questions: Option<PathBuf>,
     /// Report directory (default: reports/<date>-<set name>, never overwriting an earlier run).
+    /// An unfinished run (stopped or killed while answering) is continued by the same command:
+    /// in DIR when given, else in the newest unfinished directory under reports/ for the same
+    /// set and settings.
     #[arg(long, value_name = "DIR")]
     pub report: Option<PathBuf>,
+    /// Start over: do not continue an unfinished run; with --report, discard the answers
+    /// saved in DIR.
+    #[arg(long)]
+    pub restart: bool,
     #[command(flatten)]
     pub stats: StatsArgs,
     #[command(flatten)]

@@ -42,6 +42,9 @@ pub enum Error {
     /// A bug in liftgate.
     #[error("internal error: {0}")]
     Internal(String),
+    /// SIGINT (Ctrl-C) or SIGTERM stopped the run; `saved` says what was kept and where.
+    #[error("stopped by {}: {saved}", signal_name(*.signal))]
+    Interrupted { signal: i32, saved: String },
 }
 
 pub type Result<T, E = Error> = std::result::Result<T, E>;
@@ -96,12 +99,23 @@ impl Error {
         Error::Internal(message.into())
     }
 
-    /// The process exit code for this error (interface.md, "Exit codes").
+    /// The process exit code for this error (interface.md, "Exit codes"). A stop by a signal
+    /// exits 128 + the signal number, as shells report it (130 for Ctrl-C, 143 for SIGTERM).
     pub fn exit_code(&self) -> i32 {
         match self {
             Error::Input { .. } | Error::Usage(_) => 2,
             Error::Internal(_) => 3,
+            Error::Interrupted { signal, .. } => 128 + signal,
         }
+    }
+}
+
+/// "SIGINT" / "SIGTERM" for the signals liftgate stops on, else "signal N".
+pub fn signal_name(signal: i32) -> String {
+    match signal {
+        2 => "SIGINT (Ctrl-C)".to_string(),
+        15 => "SIGTERM".to_string(),
+        n => format!("signal {n}"),
     }
 }
 

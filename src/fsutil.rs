@@ -101,6 +101,32 @@ pub fn read_jsonl_lines(path: &Path) -> Result<Vec<(usize, String)>> {
     Ok(out)
 }
 
+/// Takes an exclusive advisory lock on `file` without waiting: Ok(false) when another process
+/// (or another open of the same file) holds it. The lock goes with the file handle, so a killed
+/// process never leaves a stale lock behind. Unix `flock(2)`; elsewhere no lock is taken.
+/// (`File::try_lock` does this in std from Rust 1.89, newer than this crate's minimum.)
+pub fn try_lock(file: &std::fs::File) -> std::io::Result<bool> {
+    #[cfg(unix)]
+    {
+        use std::os::unix::io::AsRawFd;
+        // SAFETY: flock only reads the descriptor number, which `file` keeps open for the call.
+        let rc = unsafe { libc::flock(file.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
+        if rc == 0 {
+            return Ok(true);
+        }
+        let err = std::io::Error::last_os_error();
+        if err.kind() == std::io::ErrorKind::WouldBlock {
+            return Ok(false);
+        }
+        Err(err)
+    }
+    #[cfg(not(unix))]
+    {
+        let _ = file;
+        Ok(true)
+    }
+}
+
 /// SHA-256 of bytes, hex.
 pub fn sha256_hex(bytes: &[u8]) -> String {
     hex(&Sha256::digest(bytes))

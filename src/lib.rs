@@ -14,6 +14,8 @@ pub mod error;
 pub mod fsutil;
 pub mod generate;
 pub mod grades;
+pub mod interrupt;
+pub mod journal;
 pub mod model;
 pub mod policy;
 pub mod questions;

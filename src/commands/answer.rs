@@ -2,9 +2,11 @@
 //! LoRA adapter merged at load), greedy, on CPU (interface.md; issue 3).
 //!
 //! Two stages as elsewhere: the clap arguments become validated [`AnswerSettings`]; then
-//! [`answer_set`] loads model, adapter and tokenizer, builds every prompt first (so a template
-//! error stops the run before any work), decodes in batches and returns the records with the
-//! [`RunInfo`] that [`write_outputs`] stores beside them. `vet` calls the same two functions.
+//! [`answer_to`] loads model, adapter and tokenizer, builds every prompt first (so a template
+//! error stops the run before any work), decodes, saves each answer to the journal
+//! (`crate::journal`) as it finishes, and at the end writes the answers file with the
+//! [`RunInfo`] beside it. A stopped or killed run is continued by the same command.
+//! `vet` calls the same function.
 
 use super::Outcome;
 use crate::answers::AnswerRecord;
@@ -16,6 +18,8 @@ use crate::generate::{
     self, AdapterInfo, Decoding, FileDigest, GenerationInfo, GenerationSettings, ModelInfo,
     QuestionsInfo, RunInfo, TemplateInfo,
 };
+use crate::interrupt::StopFlag;
+use crate::journal::{self, Contents, Journal, RunIdentity};
 use crate::model;
 use crate::questions::QuestionSet;
 use indicatif::{ProgressBar, ProgressStyle};
@@ -36,6 +40,8 @@ pub struct AnswerSettings {
     pub ignore_eos: bool,
     /// Show a progress bar on stderr.
     pub progress: bool,
+    /// Discard saved answers of an earlier run instead of continuing it.
+    pub restart: bool,
 }
 
 impl AnswerSettings {
@@ -83,6 +89,7 @@ impl AnswerSettings {
             threads,
             ignore_eos,
             progress: true,
+            restart: false,
         })
     }
 }
@@ -112,9 +119,13 @@ pub fn run(args: &AnswerArgs) -> Result<Outcome> {
         )));
     }
     check_out_path(&args.out)?;
+    let settings = AnswerSettings {
+        restart: args.restart,
+        ..settings
+    };
     let set = QuestionSet::load(&args.questions)?;
-    let run = answer_set(&settings, &set)?;
-    write_outputs(&args.out, &run)?;
+    let stop = StopFlag::install()?;
+    answer_to(&args.out, &settings, &set, &stop)?;
     Ok(Outcome::Success)
 }
 
@@ -146,8 +157,18 @@ fn set_threads(n: Option<usize>) -> usize {
     candle_core::utils::get_num_threads()
 }
 
-/// Loads the model (with the adapter merged), tokenises every prompt, decodes in batches.
-pub fn answer_set(settings: &AnswerSettings, set: &QuestionSet) -> Result<AnswerRun> {
+/// What a run needs before decoding: everything loaded and checked, every prompt built.
+struct Prepared {
+    chat: ChatTokenizer,
+    loaded: model::LoadedModel,
+    prompts: Vec<Vec<u32>>,
+    gen: GenerationSettings,
+    info: RunInfo,
+}
+
+/// Loads the model (with the adapter merged) and tokenises every prompt; every input error
+/// surfaces here, before anything is written.
+fn prepare(settings: &AnswerSettings, set: &QuestionSet) -> Result<Prepared> {
     let threads = set_threads(settings.threads);
     // The config first: a wrong or unsupported model fails before the tokenizer is read.
     model::config::ModelSpec::load(&settings.model)?;
@@ -208,56 +229,6 @@ pub fn answer_set(settings: &AnswerSettings, set: &QuestionSet) -> Result<Answer
         ignore_eos: settings.ignore_eos,
         repetition_penalty: loaded.generation.repetition_penalty.map(|p| p as f32),
     };
-
-    // Batches of similar prompt lengths waste less on padding; output does not depend on it.
-    let mut order: Vec<usize> = (0..prompts.len()).collect();
-    order.sort_by_key(|&i| (prompts[i].len(), i));
-    let bar = progress_bar(settings.progress, set.len() as u64);
-    let started = Instant::now();
-    let mut new_tokens_total = 0usize;
-    let mut results: Vec<Option<generate::Generated>> = vec![None; prompts.len()];
-    generate::generate_stream(
-        &loaded.decoder,
-        &prompts,
-        &order,
-        &gen,
-        settings.batch,
-        &mut |i, g| {
-            results[i] = Some(g);
-            bar.inc(1);
-            Ok(())
-        },
-        &mut |n| {
-            new_tokens_total += n;
-            let secs = started.elapsed().as_secs_f64().max(1e-9);
-            bar.set_message(format!("{:.1} tokens/s", new_tokens_total as f64 / secs));
-        },
-    )?;
-    bar.finish_and_clear();
-    let secs = started.elapsed().as_secs_f64();
-    if settings.progress {
-        eprintln!(
-            "answered {} questions: {new_tokens_total} new tokens in {secs:.3} s ({:.1} tokens/s)",
-            set.len(),
-            new_tokens_total as f64 / secs.max(1e-9)
-        );
-    }
-
-    let mut records = Vec::with_capacity(set.len());
-    for (q, g) in set.questions.iter().zip(results) {
-        let g =
-            g.ok_or_else(|| Error::internal(format!("question {:?} was not answered", q.id)))?;
-        let text = chat.decode(g.answer_tokens())?;
-        records.push(AnswerRecord {
-            id: q.id.clone(),
-            answer: generate::strip_like_python(&text).to_string(),
-            finish: g.finish,
-            prompt_tokens: g.prompt_tokens,
-            new_tokens: g.tokens.len(),
-            ms: g.ms,
-        });
-    }
-
     let info = RunInfo {
         tool: "liftgate".to_string(),
         tool_version: env!("CARGO_PKG_VERSION").to_string(),
@@ -298,7 +269,190 @@ pub fn answer_set(settings: &AnswerSettings, set: &QuestionSet) -> Result<Answer
         },
         compute_dtype: "f32".to_string(),
     };
-    Ok(AnswerRun { records, info })
+    Ok(Prepared {
+        chat,
+        loaded,
+        prompts,
+        gen,
+        info,
+    })
+}
+
+/// Answers every question of `set` into `out` (and `<out>.run.json`), resumably.
+///
+/// Each finished answer is appended to the journal `<out>.partial` at once. A journal left by
+/// an earlier run with the same [`RunIdentity`] is continued (its questions are not answered
+/// again); one from a different run is refused (exit 2) unless `settings.restart`. A complete
+/// `<out>` from the same identity is kept as it is. When every question is answered, `<out>`
+/// is written in the set's order, atomically, and the journal removed. A stop signal ends the
+/// run with [`Error::Interrupted`] after the answer being saved.
+pub fn answer_to(
+    out: &Path,
+    settings: &AnswerSettings,
+    set: &QuestionSet,
+    stop: &StopFlag,
+) -> Result<AnswerRun> {
+    let prep = prepare(settings, set)?;
+    let identity = RunIdentity::of(&prep.info);
+    let jpath = journal::journal_path(out);
+    let n = set.len();
+    if !settings.restart && !jpath.exists() {
+        if let Some(done) = finished_run(out, &identity, set) {
+            eprintln!(
+                "liftgate: {} is already complete for this model, adapter, question set and settings; kept as it is (pass --restart to answer again)",
+                out.display()
+            );
+            return Ok(done);
+        }
+    }
+    stop.check(|| format!("nothing answered yet; {} not written", out.display()))?;
+
+    let mut journal = Journal::open(&jpath)?;
+    let mut rows: Vec<Option<AnswerRecord>> = vec![None; n];
+    let contents = if settings.restart {
+        None
+    } else {
+        Some(journal.read(set)?)
+    };
+    match contents {
+        Some(Contents {
+            identity: Some(old),
+            records,
+            valid_len,
+            dropped_line,
+        }) => {
+            check_same_run(&jpath, &old, &identity)?;
+            journal.resume(valid_len)?;
+            let kept = records.len();
+            for (i, row) in records {
+                rows[i] = Some(row);
+            }
+            let dropped = match dropped_line {
+                Some(line) => format!(" (line {line}, cut off mid-write, dropped)"),
+                None => String::new(),
+            };
+            eprintln!(
+                "liftgate: continuing from {}: {kept} of {n} questions already answered{dropped}",
+                jpath.display()
+            );
+        }
+        _ => journal.start(&identity)?,
+    }
+
+    let Prepared {
+        chat,
+        loaded,
+        prompts,
+        gen,
+        info,
+    } = prep;
+    // Longest prompts first, so the slowest sequences start early and the last slots do not
+    // run alone at the end; the answers do not depend on the order.
+    let mut todo: Vec<usize> = (0..n).filter(|&i| rows[i].is_none()).collect();
+    todo.sort_by_key(|&i| (std::cmp::Reverse(prompts[i].len()), i));
+    let mut saved = n - todo.len();
+    let saved_note = |saved: usize| {
+        format!(
+            "{saved} of {n} answers saved in {}; {} not written yet",
+            jpath.display(),
+            out.display()
+        )
+    };
+    stop.check(|| saved_note(saved))?;
+    let bar = progress_bar(settings.progress, n as u64);
+    bar.set_position(saved as u64);
+    let started = Instant::now();
+    let mut new_tokens_total = 0usize;
+    let result = if todo.is_empty() {
+        Ok(())
+    } else {
+        generate::generate_stream(
+            &loaded.decoder,
+            &prompts,
+            &todo,
+            &gen,
+            settings.batch,
+            &mut |i, g| {
+                let row = answer_record(&chat, &set.questions[i].id, g)?;
+                journal.append(&row)?;
+                rows[i] = Some(row);
+                saved += 1;
+                bar.inc(1);
+                stop.check(|| saved_note(saved))
+            },
+            &mut |k| {
+                new_tokens_total += k;
+                let secs = started.elapsed().as_secs_f64().max(1e-9);
+                bar.set_message(format!("{:.1} tokens/s", new_tokens_total as f64 / secs));
+            },
+        )
+    };
+    bar.finish_and_clear();
+    result?;
+    let secs = started.elapsed().as_secs_f64();
+    if settings.progress {
+        eprintln!(
+            "answered {} questions: {new_tokens_total} new tokens in {secs:.3} s ({:.1} tokens/s)",
+            todo.len(),
+            new_tokens_total as f64 / secs.max(1e-9)
+        );
+    }
+
+    let mut records = Vec::with_capacity(n);
+    for (q, row) in set.questions.iter().zip(rows) {
+        records.push(
+            row.ok_or_else(|| Error::internal(format!("question {:?} was not answered", q.id)))?,
+        );
+    }
+    let run = AnswerRun { records, info };
+    write_outputs(out, &run)?;
+    journal.remove()?;
+    Ok(run)
+}
+
+/// The answers-file row of one generated answer.
+fn answer_record(chat: &ChatTokenizer, id: &str, g: generate::Generated) -> Result<AnswerRecord> {
+    let text = chat.decode(g.answer_tokens())?;
+    Ok(AnswerRecord {
+        id: id.to_string(),
+        answer: generate::strip_like_python(&text).to_string(),
+        finish: g.finish,
+        prompt_tokens: g.prompt_tokens,
+        new_tokens: g.tokens.len(),
+        ms: g.ms,
+    })
+}
+
+/// Refuses to continue a journal written by a different run, naming every field that differs.
+fn check_same_run(journal: &Path, saved: &RunIdentity, now: &RunIdentity) -> Result<()> {
+    let diffs = saved.differences(now);
+    let Some((first, _, _)) = diffs.first() else {
+        return Ok(());
+    };
+    let list: Vec<String> = diffs
+        .iter()
+        .map(|(field, was, is)| format!("{field} was {was}, is now {is}"))
+        .collect();
+    Err(Error::field(
+        journal,
+        Some(1),
+        format!("identity.{first}"),
+        format!(
+            "these saved answers come from a different run ({}); rerun with the model, adapter, question set and settings they were made with to continue, or pass --restart to discard them and start over",
+            list.join("; ")
+        ),
+    ))
+}
+
+/// A complete `out` whose `<out>.run.json` records the same identity, read back.
+fn finished_run(out: &Path, identity: &RunIdentity, set: &QuestionSet) -> Option<AnswerRun> {
+    let text = std::fs::read_to_string(run_json_path(out)).ok()?;
+    let info: RunInfo = serde_json::from_str(&text).ok()?;
+    if RunIdentity::of(&info) != *identity {
+        return None;
+    }
+    let records = crate::answers::load_for_set(out, set).ok()?;
+    Some(AnswerRun { records, info })
 }
 
 fn progress_bar(show: bool, len: u64) -> ProgressBar {

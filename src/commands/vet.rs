@@ -7,8 +7,14 @@
 //!
 //! The report directory (default `reports/<YYYY-MM-DD>-<set name>`, with `-2`, `-3`, ... added
 //! when it exists) is claimed before any work so runs never overwrite each other. Every input
-//! is checked before it is claimed; if a later stage fails the directory is removed again, so a
-//! failed run leaves nothing half-written.
+//! is checked before it is claimed; if a later stage of a new run fails the directory is removed
+//! again, so a failed run leaves nothing half-written.
+//!
+//! A run stopped by Ctrl-C/SIGTERM or killed keeps its directory: the answers are saved one by
+//! one in journals beside the answers files (see `answer::answer_to`), and the same command
+//! continues it: in `--report DIR` when given, else in the newest unfinished directory under
+//! `reports/` made for the same question set and generation settings. A directory in use is
+//! locked, so a second `vet` started meanwhile never continues it.
 
 use super::answer::{self, AnswerSettings};
 use super::grade::grade_set;
@@ -17,6 +23,9 @@ use super::Outcome;
 use crate::cli::VetArgs;
 use crate::error::{Error, Result};
 use crate::fsutil;
+use crate::generate::RunInfo;
+use crate::interrupt::StopFlag;
+use crate::journal::{self, RunIdentity};
 use crate::policy::Policy;
 use crate::questions::QuestionSet;
 use crate::report;
@@ -62,6 +71,10 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
             inputs.adapter.display()
         )));
     }
+    let base_settings = AnswerSettings {
+        restart: args.restart,
+        ..base_settings
+    };
     let cand_settings = AnswerSettings {
         adapter: Some(inputs.adapter.clone()),
         ..base_settings.clone()
@@ -70,11 +83,31 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
     let policy = Policy::load_or_default(args.stats.policy.as_deref())?;
     let set = QuestionSet::load(&inputs.questions)?;
 
-    let dir = match &args.report {
-        Some(dir) => claim_given_dir(dir)?,
-        None => claim_dated_dir(Path::new("reports"), &set_name(&inputs.questions))?,
+    let stop = StopFlag::install()?;
+
+    let unfinished = match (&args.report, args.restart) {
+        (None, false) => find_unfinished(
+            Path::new("reports"),
+            &set_name(&inputs.questions),
+            &set,
+            &base_settings,
+        ),
+        _ => None,
     };
-    eprintln!("liftgate: vet: report directory {}", dir.display());
+    let claim = match (&args.report, unfinished) {
+        (Some(dir), _) => claim_given_dir(dir)?,
+        (None, Some(claim)) => claim,
+        (None, None) => claim_dated_dir(Path::new("reports"), &set_name(&inputs.questions))?,
+    };
+    let dir = claim.dir.clone();
+    if claim.fresh {
+        eprintln!("liftgate: vet: report directory {}", dir.display());
+    } else {
+        eprintln!(
+            "liftgate: vet: continuing the unfinished run in {} (pass --restart to start over)",
+            dir.display()
+        );
+    }
     match vet_into(
         &dir,
         &base_settings,
@@ -83,13 +116,170 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
         &policy,
         &set,
         args,
+        &stop,
     ) {
         Ok(outcome) => Ok(outcome),
+        Err(e @ Error::Interrupted { .. }) => Err(e),
         Err(e) => {
-            let _ = std::fs::remove_dir_all(&dir);
+            claim.discard_if_fresh();
             Err(e)
         }
     }
+}
+
+/// A report directory this run writes into, locked for as long as the value lives.
+struct Claim {
+    dir: PathBuf,
+    /// This run created the directory.
+    created: bool,
+    /// The directory held no saved work of an earlier run.
+    fresh: bool,
+    _lock: Option<std::fs::File>,
+}
+
+impl Claim {
+    /// Locks `dir`; None when another run holds it.
+    fn lock(dir: &Path, created: bool) -> Result<Option<Claim>> {
+        // A directory opens as a file (and takes an flock) on unix only.
+        #[cfg(unix)]
+        let lock = {
+            let file = std::fs::File::open(dir)
+                .map_err(|e| Error::file(dir, format!("cannot open the report directory: {e}")))?;
+            if !fsutil::try_lock(&file)
+                .map_err(|e| Error::file(dir, format!("cannot lock the report directory: {e}")))?
+            {
+                return Ok(None);
+            }
+            Some(file)
+        };
+        #[cfg(not(unix))]
+        let lock = None;
+        Ok(Some(Claim {
+            dir: dir.to_path_buf(),
+            created,
+            fresh: created || !has_saved_work(dir),
+            _lock: lock,
+        }))
+    }
+
+    /// After a failure of a new run: nothing half-written is left (the directory if this run
+    /// made it, else the files it wrote). Earlier runs' saved work is never removed.
+    fn discard_if_fresh(&self) {
+        if !self.fresh {
+            return;
+        }
+        if self.created {
+            let _ = std::fs::remove_dir_all(&self.dir);
+            return;
+        }
+        for name in stage_files() {
+            let _ = std::fs::remove_file(self.dir.join(name));
+        }
+    }
+}
+
+/// Every file a run writes into its report directory before the report itself.
+fn stage_files() -> Vec<String> {
+    let mut names = Vec::new();
+    for answers in [BASELINE_ANSWERS, CANDIDATE_ANSWERS] {
+        names.push(answers.to_string());
+        names.push(format!("{answers}.run.json"));
+        names.push(format!("{answers}.partial"));
+    }
+    names.push(BASELINE_GRADES.to_string());
+    names.push(CANDIDATE_GRADES.to_string());
+    names
+}
+
+/// Whether `dir` holds answers (finished or journaled) of an earlier run.
+fn has_saved_work(dir: &Path) -> bool {
+    [BASELINE_ANSWERS, CANDIDATE_ANSWERS].iter().any(|a| {
+        let out = dir.join(a);
+        journal::journal_path(&out).exists() || answer::run_json_path(&out).exists()
+    })
+}
+
+/// The identities of the answers saved in a report directory (journals and finished files).
+fn saved_identities(dir: &Path) -> Vec<RunIdentity> {
+    let mut ids = Vec::new();
+    for a in [BASELINE_ANSWERS, CANDIDATE_ANSWERS] {
+        let out = dir.join(a);
+        if let Some(id) = journal::read_identity(&journal::journal_path(&out)) {
+            ids.push(id);
+        } else if let Some(info) = std::fs::read_to_string(answer::run_json_path(&out))
+            .ok()
+            .and_then(|t| serde_json::from_str::<RunInfo>(&t).ok())
+        {
+            ids.push(RunIdentity::of(&info));
+        }
+    }
+    ids
+}
+
+/// The newest unlocked, unfinished `<date>-<name>[-N]` directory under `parent` whose saved
+/// answers were made for this question set and these generation settings. Model and adapter
+/// are checked later, against the full identity, when the answers are continued.
+fn find_unfinished(
+    parent: &Path,
+    name: &str,
+    set: &QuestionSet,
+    settings: &AnswerSettings,
+) -> Option<Claim> {
+    let mut found: Vec<(std::time::SystemTime, PathBuf)> = Vec::new();
+    for entry in std::fs::read_dir(parent).ok()?.flatten() {
+        let path = entry.path();
+        let file_name = entry.file_name().to_string_lossy().into_owned();
+        if !is_dated_dir_name(&file_name, name)
+            || !path.is_dir()
+            || path.join("summary.json").exists()
+            || path.join("report.md").exists()
+        {
+            continue;
+        }
+        let ids = saved_identities(&path);
+        let same = |id: &RunIdentity| {
+            id.questions_fingerprint == set.fingerprint
+                && id.max_new_tokens == settings.max_new_tokens
+                && id.ignore_eos == settings.ignore_eos
+                && id.system == settings.system
+        };
+        if ids.is_empty() || !ids.iter().all(same) {
+            continue;
+        }
+        let modified = entry
+            .metadata()
+            .and_then(|m| m.modified())
+            .unwrap_or(std::time::UNIX_EPOCH);
+        found.push((modified, path));
+    }
+    found.sort();
+    found
+        .into_iter()
+        .rev()
+        .find_map(|(_, dir)| Claim::lock(&dir, false).ok().flatten())
+}
+
+/// `YYYY-MM-DD-<name>` or `YYYY-MM-DD-<name>-<N>`, as [`claim_dated_dir`] makes them.
+fn is_dated_dir_name(dir_name: &str, name: &str) -> bool {
+    let bytes = dir_name.as_bytes();
+    let dated = bytes.len() > 11
+        && bytes[..10].iter().enumerate().all(|(i, b)| {
+            if i == 4 || i == 7 {
+                *b == b'-'
+            } else {
+                b.is_ascii_digit()
+            }
+        })
+        && bytes[10] == b'-';
+    if !dated {
+        return false;
+    }
+    let rest = &dir_name[11..];
+    rest == name
+        || rest
+            .strip_prefix(name)
+            .and_then(|r| r.strip_prefix('-'))
+            .is_some_and(|n| !n.is_empty() && n.bytes().all(|b| b.is_ascii_digit()))
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -101,6 +291,7 @@ fn vet_into(
     policy: &Policy,
     set: &QuestionSet,
     args: &VetArgs,
+    stop: &StopFlag,
 ) -> Result<Outcome> {
     let detector = RefusalDetector::with_extra_phrases(&policy.refusal.extra_phrases);
     let mut grade_paths = Vec::new();
@@ -118,17 +309,18 @@ fn vet_into(
             CANDIDATE_GRADES,
         ),
     ] {
+        stop.check(|| format!("the answers saved so far are kept in {}", dir.display()))?;
         eprintln!(
             "liftgate: vet: answering {} questions with the {label}",
             set.len()
         );
-        let run = answer::answer_set(settings, set)?;
-        answer::write_outputs(&dir.join(answers_name), &run)?;
+        let run = answer::answer_to(&dir.join(answers_name), settings, set, stop)?;
         let grades = grade_set(set, &run.records, &detector);
         let grades_path = dir.join(grades_name);
         fsutil::write_jsonl_atomic(&grades_path, &grades)?;
         grade_paths.push((grades_path, grades));
     }
+    stop.check(|| format!("all answers are saved in {}", dir.display()))?;
     let (baseline_path, baseline) = &grade_paths[0];
     let (candidate_path, candidate) = &grade_paths[1];
     let summary_inputs = describe_inputs(
@@ -234,22 +426,28 @@ fn set_name(questions: &Path) -> String {
 }
 
 /// A `--report DIR` given by the user: created if absent; refused when it already holds a report
-/// (runs never overwrite each other).
-fn claim_given_dir(dir: &Path) -> Result<PathBuf> {
+/// (runs never overwrite each other) or another run is writing into it.
+fn claim_given_dir(dir: &Path) -> Result<Claim> {
     if dir.join("summary.json").exists() || dir.join("report.md").exists() {
         return Err(Error::usage(format!(
             "--report {}: already holds a report; choose a new directory",
             dir.display()
         )));
     }
+    let created = !dir.exists();
     std::fs::create_dir_all(dir)
         .map_err(|e| Error::file(dir, format!("cannot create the report directory: {e}")))?;
-    Ok(dir.to_path_buf())
+    Claim::lock(dir, created)?.ok_or_else(|| {
+        Error::usage(format!(
+            "--report {}: another liftgate vet is writing into it",
+            dir.display()
+        ))
+    })
 }
 
 /// Creates `parent/<date>-<name>`, or `-2`, `-3`, ... when taken; `create_dir` is atomic, so two
 /// runs started together still get different directories.
-fn claim_dated_dir(parent: &Path, name: &str) -> Result<PathBuf> {
+fn claim_dated_dir(parent: &Path, name: &str) -> Result<Claim> {
     std::fs::create_dir_all(parent)
         .map_err(|e| Error::file(parent, format!("cannot create the reports directory: {e}")))?;
     let base = format!("{}-{name}", utc_date_today());
@@ -260,7 +458,11 @@ fn claim_dated_dir(parent: &Path, name: &str) -> Result<PathBuf> {
             parent.join(format!("{base}-{n}"))
         };
         match std::fs::create_dir(&candidate) {
-            Ok(()) => return Ok(candidate),
+            Ok(()) => {
+                return Claim::lock(&candidate, true)?.ok_or_else(|| {
+                    Error::internal(format!("{} was locked as it was made", candidate.display()))
+                })
+            }
             Err(e) if e.kind() == std::io::ErrorKind::AlreadyExists => continue,
             Err(e) => {
                 return Err(Error::file(
@@ -318,8 +520,24 @@ mod tests {
         let tmp = tempfile::tempdir().unwrap();
         let a = claim_dated_dir(tmp.path(), "set").unwrap();
         let b = claim_dated_dir(tmp.path(), "set").unwrap();
-        assert_ne!(a, b);
-        assert!(b.to_string_lossy().ends_with("-set-2"));
+        assert_ne!(a.dir, b.dir);
+        assert!(b.dir.to_string_lossy().ends_with("-set-2"));
+        // A claimed directory is locked: nobody else can claim it to continue it.
+        assert!(Claim::lock(&a.dir, false).unwrap().is_none());
+        let a_dir = a.dir.clone();
+        drop(a);
+        assert!(Claim::lock(&a_dir, false).unwrap().is_some());
+    }
+
+    #[test]
+    fn dated_dir_names_are_recognised_for_their_set_only() {
+        assert!(is_dated_dir_name("2026-12-02-ferry-faq", "ferry-faq"));
+        assert!(is_dated_dir_name("2026-12-02-ferry-faq-12", "ferry-faq"));
+        assert!(!is_dated_dir_name("2026-12-02-ferry-faq-x", "ferry-faq"));
+        assert!(!is_dated_dir_name("2026-12-02-ferry", "ferry-faq"));
+        assert!(!is_dated_dir_name("2026-12-02-ferry-faq-", "ferry-faq"));
+        assert!(!is_dated_dir_name("latest", "ferry-faq"));
+        assert!(!is_dated_dir_name("2026-1x-02-ferry-faq", "ferry-faq"));
     }
 
     #[test]
