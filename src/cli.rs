@@ -38,8 +38,10 @@ pub struct GenerationArgs {
     /// Stop each answer after this many new tokens.
     #[arg(long, value_name = "N", default_value_t = 128)]
     pub max_new_tokens: usize,
-    /// Questions decoded together.
-    #[arg(long, value_name = "N", default_value_t = 8)]
+    /// Questions decoded together (cache slots; a finished slot takes the next question at
+    /// once). Answers do not depend on it; larger batches read each weight once for more
+    /// tokens, at the cost of KV-cache memory.
+    #[arg(long, value_name = "N", default_value_t = 16)]
     pub batch: usize,
     /// Compute threads (default: all cores).
     #[arg(long, value_name = "N")]

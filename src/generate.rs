@@ -119,7 +119,8 @@ fn shared_prefix_len(prompts: &[Vec<u32>], todo: &[usize]) -> usize {
 /// Greedy-decodes `prompts[i]` for every `i` in `todo`, `slots` sequences at a time, and hands
 /// each finished answer to `on_done(i, answer)` as soon as it is complete (so a caller can save
 /// it at once). Answers arrive in completion order, not in `todo` order. `on_step` gets the
-/// number of tokens produced by each decoding step (for progress).
+/// number of tokens produced by each decoding step (for progress); an error from it stops
+/// decoding after that step.
 ///
 /// Continuous refill: a slot whose sequence finishes takes the next prompt of `todo` in the
 /// very next step, where its prefill runs together with the other slots' decoding. The prefix
@@ -127,7 +128,7 @@ fn shared_prefix_len(prompts: &[Vec<u32>], todo: &[usize]) -> usize {
 /// copied into each slot. Each sequence's arithmetic does not depend on its neighbours, so the
 /// answers equal batch-1 answers.
 ///
-/// An error from `on_done` stops decoding and is returned.
+/// An error from `on_done` or `on_step` stops decoding and is returned.
 pub fn generate_stream(
     decoder: &Decoder,
     prompts: &[Vec<u32>],
@@ -135,7 +136,7 @@ pub fn generate_stream(
     settings: &GenerationSettings,
     slots: usize,
     on_done: &mut dyn FnMut(usize, Generated) -> Result<()>,
-    on_step: &mut dyn FnMut(usize),
+    on_step: &mut dyn FnMut(usize) -> Result<()>,
 ) -> Result<()> {
     if slots == 0 {
         return Err(Error::internal("generate_stream needs at least one slot"));
@@ -286,7 +287,7 @@ pub fn generate_stream(
                 }
             }
         }
-        on_step(produced);
+        on_step(produced)?;
     }
     Ok(())
 }
@@ -297,7 +298,7 @@ pub fn generate_batch(
     decoder: &Decoder,
     prompts: &[Vec<u32>],
     settings: &GenerationSettings,
-    on_step: &mut dyn FnMut(usize),
+    on_step: &mut dyn FnMut(usize) -> Result<()>,
 ) -> Result<Vec<Generated>> {
     let todo: Vec<usize> = (0..prompts.len()).collect();
     let mut out: Vec<Option<Generated>> = vec![None; prompts.len()];

@@ -127,7 +127,7 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
             &loaded.decoder,
             std::slice::from_ref(&case.prompt),
             &settings,
-            &mut |_| {},
+            &mut |_| Ok(()),
         )
         .unwrap();
         assert_eq!(got[0].tokens, case.output, "{}: output ids", case.label);
@@ -143,7 +143,7 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
         repetition_penalty: None,
     };
     let prompts: Vec<Vec<u32>> = cases.iter().map(|c| c.prompt.clone()).collect();
-    let batched = generate_batch(&loaded.decoder, &prompts, &settings, &mut |_| {}).unwrap();
+    let batched = generate_batch(&loaded.decoder, &prompts, &settings, &mut |_| Ok(())).unwrap();
     // Two slots for all the cases: finished slots are refilled while the other decodes.
     let mut refilled: Vec<Option<Vec<u32>>> = vec![None; prompts.len()];
     let todo: Vec<usize> = (0..prompts.len()).rev().collect();
@@ -158,7 +158,7 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
             refilled[i] = Some(g.tokens);
             Ok(())
         },
-        &mut |_| {},
+        &mut |_| Ok(()),
     )
     .unwrap();
     for ((case, b), r) in cases.iter().zip(&batched).zip(&refilled) {
@@ -172,7 +172,7 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
             &loaded.decoder,
             std::slice::from_ref(&case.prompt),
             &settings,
-            &mut |_| {},
+            &mut |_| Ok(()),
         )
         .unwrap();
         assert_eq!(
@@ -368,12 +368,12 @@ fn repetition_penalty_matches_the_reference() {
             &loaded.decoder,
             std::slice::from_ref(p),
             &settings,
-            &mut |_| {},
+            &mut |_| Ok(()),
         )
         .unwrap();
         assert_eq!(got[0].tokens, ids(&c["output_ids"]));
     }
-    let batched = generate_batch(&loaded.decoder, &prompts, &settings, &mut |_| {}).unwrap();
+    let batched = generate_batch(&loaded.decoder, &prompts, &settings, &mut |_| Ok(())).unwrap();
     for (c, g) in cases.iter().zip(&batched) {
         assert_eq!(g.tokens, ids(&c["output_ids"]), "batched");
     }

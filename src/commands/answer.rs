@@ -350,7 +350,8 @@ pub fn answer_to(
     // run alone at the end; the answers do not depend on the order.
     let mut todo: Vec<usize> = (0..n).filter(|&i| rows[i].is_none()).collect();
     todo.sort_by_key(|&i| (std::cmp::Reverse(prompts[i].len()), i));
-    let mut saved = n - todo.len();
+    // Read by both callbacks below, counted by one.
+    let saved = std::cell::Cell::new(n - todo.len());
     let saved_note = |saved: usize| {
         format!(
             "{saved} of {n} answers saved in {}; {} not written yet",
@@ -358,9 +359,9 @@ pub fn answer_to(
             out.display()
         )
     };
-    stop.check(|| saved_note(saved))?;
+    stop.check(|| saved_note(saved.get()))?;
     let bar = progress_bar(settings.progress, n as u64);
-    bar.set_position(saved as u64);
+    bar.set_position(saved.get() as u64);
     let started = Instant::now();
     let mut new_tokens_total = 0usize;
     let result = if todo.is_empty() {
@@ -376,14 +377,17 @@ pub fn answer_to(
                 let row = answer_record(&chat, &set.questions[i].id, g)?;
                 journal.append(&row)?;
                 rows[i] = Some(row);
-                saved += 1;
+                saved.set(saved.get() + 1);
                 bar.inc(1);
-                stop.check(|| saved_note(saved))
+                stop.check(|| saved_note(saved.get()))
             },
             &mut |k| {
                 new_tokens_total += k;
                 let secs = started.elapsed().as_secs_f64().max(1e-9);
                 bar.set_message(format!("{:.1} tokens/s", new_tokens_total as f64 / secs));
+                // A stop request ends decoding after this step; answers in flight are
+                // computed again by the next run.
+                stop.check(|| saved_note(saved.get()))
             },
         )
     };
