@@ -8,7 +8,7 @@ use crate::error::{Error, Result};
 use crate::fsutil;
 use crate::questions::QuestionSet;
 use serde::{Deserialize, Serialize};
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 /// Why generation stopped for one answer.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
@@ -45,7 +45,58 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>>
         rows.push((*line, row));
     }
     check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
+    check_set_fingerprint(path, set)?;
     Ok(rows.into_iter().map(|(_, r)| r).collect())
+}
+
+/// `<file>.run.json`: the record beside an answers or grades file of what produced it.
+pub fn run_json_path(file: &Path) -> PathBuf {
+    let mut s = file.as_os_str().to_os_string();
+    s.push(".run.json");
+    PathBuf::from(s)
+}
+
+/// When `<file>.run.json` exists and records the question set's fingerprint
+/// (`questions.fingerprint`), it must be `set`'s: the same ids in a changed set (edited
+/// references, expectations or questions) would otherwise be scored or weighed silently
+/// against answers made for other questions.
+pub fn check_set_fingerprint(file: &Path, set: &QuestionSet) -> Result<()> {
+    let run = run_json_path(file);
+    let bytes = match std::fs::read(&run) {
+        Ok(b) => b,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(()),
+        Err(e) => return Err(Error::file(&run, format!("cannot read: {e}"))),
+    };
+    let value: serde_json::Value = serde_json::from_slice(&bytes)
+        .map_err(|e| Error::line(&run, e.line(), format!("not valid JSON: {e}")))?;
+    let Some(recorded) = value.pointer("/questions/fingerprint") else {
+        return Ok(());
+    };
+    let recorded = recorded.as_str().ok_or_else(|| {
+        Error::field(
+            &run,
+            None,
+            "questions.fingerprint",
+            "expected a SHA-256 hex string",
+        )
+    })?;
+    if recorded != set.fingerprint {
+        let short = |s: &str| s.chars().take(12).collect::<String>();
+        return Err(Error::field(
+            &run,
+            None,
+            "questions.fingerprint",
+            format!(
+                "{} was made from a different question set (sha256 {}…) than {} (sha256 {}…); \
+                 run it again with this set, or use the set it was made from",
+                file.display(),
+                short(recorded),
+                set.path.display(),
+                short(&set.fingerprint)
+            ),
+        ));
+    }
+    Ok(())
 }
 
 /// Checks that a file's rows carry exactly the set's ids in the set's order, naming the first

@@ -5,7 +5,7 @@
 //! references (typically `expect: refuse` questions). liftgate adds `answer` (the graded text)
 //! so `weigh` can show both variants' answers side by side without the answers files.
 
-use crate::answers::check_ids;
+use crate::answers::{check_ids, check_set_fingerprint};
 use crate::error::{Error, Result};
 use crate::fsutil;
 use crate::questions::{Expect, QuestionSet};
@@ -28,6 +28,16 @@ pub struct GradeRecord {
     /// The answer text that was graded.
     #[serde(default)]
     pub answer: String,
+}
+
+/// `<grades>.run.json`, written by `grade` beside the grades file: what was graded.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct GradeRunInfo {
+    pub tool: String,
+    pub tool_version: String,
+    pub questions: crate::generate::QuestionsInfo,
+    /// The answers file graded: path and SHA-256 of its content.
+    pub answers: crate::report::summary::InputFile,
 }
 
 /// Reads a grades file and checks it matches the question set id for id, in order.
@@ -62,6 +72,7 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<GradeRecord>> 
         rows.push((*line, row));
     }
     check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
+    check_set_fingerprint(path, set)?;
     for ((line, row), q) in rows.iter().zip(&set.questions) {
         if row.expect != q.expect {
             return Err(Error::field(
