@@ -40,13 +40,78 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>>
     let lines = fsutil::read_jsonl_lines(path)?;
     let mut rows = Vec::with_capacity(lines.len());
     for (line, text) in &lines {
-        let row: AnswerRecord = serde_json::from_str(text)
-            .map_err(|e| Error::line(path, *line, format!("not a valid answer row: {e}")))?;
+        let row: AnswerRecord = serde_json::from_str(text).map_err(|e| {
+            row_error(
+                path,
+                *line,
+                text,
+                "answer row",
+                &e,
+                &[
+                    ("id", true, check::<String>),
+                    ("answer", true, check::<String>),
+                    ("finish", true, check::<Finish>),
+                    ("prompt_tokens", true, check::<usize>),
+                    ("new_tokens", true, check::<usize>),
+                    ("ms", true, check::<u64>),
+                ],
+            )
+        })?;
         rows.push((*line, row));
     }
     check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
     check_set_fingerprint(path, set)?;
     Ok(rows.into_iter().map(|(_, r)| r).collect())
+}
+
+/// Whether a JSON value deserialises as `T`; the reason when it does not.
+pub(crate) fn check<T: serde::de::DeserializeOwned>(v: &serde_json::Value) -> Option<String> {
+    T::deserialize(v).err().map(|e| e.to_string())
+}
+
+/// A JSONL row's field rule: name, required, and the type check.
+pub(crate) type FieldRule = (&'static str, bool, fn(&serde_json::Value) -> Option<String>);
+
+/// Turns a serde error on one JSONL row into an error naming the line and, where it can be
+/// found, the field: a missing required field, a value of the wrong type or an unknown field.
+pub(crate) fn row_error(
+    path: &Path,
+    line: usize,
+    text: &str,
+    what: &str,
+    err: &serde_json::Error,
+    fields: &[FieldRule],
+) -> Error {
+    let generic = || Error::line(path, line, format!("not valid as {what}: {err}"));
+    let Ok(serde_json::Value::Object(obj)) = serde_json::from_str::<serde_json::Value>(text) else {
+        return generic();
+    };
+    for (name, required, check) in fields {
+        match obj.get(*name) {
+            None if *required => {
+                return Error::field(path, Some(line), *name, "required but missing")
+            }
+            None => {}
+            Some(v) => {
+                if let Some(reason) = check(v) {
+                    return Error::field(path, Some(line), *name, reason);
+                }
+            }
+        }
+    }
+    if let Some(unknown) = obj.keys().find(|k| !fields.iter().any(|(n, _, _)| n == k)) {
+        let known: Vec<&str> = fields.iter().map(|(n, _, _)| *n).collect();
+        return Error::field(
+            path,
+            Some(line),
+            unknown.as_str(),
+            format!(
+                "unknown field in a {what}; expected only {}",
+                known.join(", ")
+            ),
+        );
+    }
+    generic()
 }
 
 /// `<file>.run.json`: the record beside an answers or grades file of what produced it.

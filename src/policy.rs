@@ -346,10 +346,28 @@ fn toml_error(path: &Path, text: &str, e: &toml::de::Error) -> Error {
                 format!("{message}; see docs/policy.md for the keys a policy may hold"),
             )
         }
-        _ => match line {
-            Some(l) => Error::line(path, l, format!("not a valid policy: {message}")),
-            None => Error::file(path, format!("not a valid policy: {message}")),
-        },
+        (_, Some(span)) => {
+            let line = line_of(text, span.start);
+            // A wrongly typed value: name the key written on that line.
+            match key_on_line(text, line) {
+                Some(key) => {
+                    let section = section_at(text, span.start);
+                    let name = if section.is_empty() {
+                        key
+                    } else {
+                        format!("{section}.{key}")
+                    };
+                    Error::field(
+                        path,
+                        Some(line),
+                        name,
+                        format!("not a valid policy: {message}"),
+                    )
+                }
+                None => Error::line(path, line, format!("not a valid policy: {message}")),
+            }
+        }
+        _ => Error::file(path, format!("not a valid policy: {message}")),
     }
 }
 
@@ -358,6 +376,18 @@ fn backticked(message: &str) -> Option<String> {
     let start = message.find('`')? + 1;
     let len = message[start..].find('`')?;
     Some(message[start..start + len].to_string())
+}
+
+/// The bare key assigned on a 1-based line (`key = value`), if the line is one.
+fn key_on_line(text: &str, line: usize) -> Option<String> {
+    let l = text.lines().nth(line.checked_sub(1)?)?;
+    let (lhs, _) = l.split_once('=')?;
+    let key = lhs.trim();
+    let bare = !key.is_empty()
+        && key
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '_' || c == '-' || c == '.');
+    bare.then(|| key.to_string())
 }
 
 /// 1-based line of a byte offset.

@@ -479,7 +479,29 @@ fn cases() -> Vec<Case> {
                     answers_for(&IDS).replacen("\"finish\":\"eos\"", "\"finish\":\"tired\"", 2);
                 let rows = rows.replacen("\"finish\":\"tired\"", "\"finish\":\"eos\"", 1);
                 write(d, "answers.jsonl", &rows);
-                grade(d, &[], &["answers.jsonl:2:", "tired"])
+                grade(d, &[], &["answers.jsonl:2: field `finish`", "tired"])
+            },
+        },
+        Case {
+            name: "answers: missing field",
+            setup: |d| {
+                write_set(d);
+                let rows = answers_for(&IDS).replacen(
+                    "\"answer\":\"At 06:50, dogs travel free.\",",
+                    "",
+                    1,
+                );
+                write(d, "answers.jsonl", &rows);
+                grade(d, &[], &["answers.jsonl:1: field `answer`", "missing"])
+            },
+        },
+        Case {
+            name: "answers: unknown field",
+            setup: |d| {
+                write_set(d);
+                let rows = answers_for(&IDS).replacen("\"ms\":3", "\"ms\":3,\"score\":1", 3);
+                write(d, "answers.jsonl", &rows);
+                grade(d, &[], &["answers.jsonl:1: field `score`", "unknown field"])
             },
         },
         // ---- grades that do not match the set ----
@@ -575,6 +597,24 @@ fn cases() -> Vec<Case> {
                 weigh(d, &[], &["candidate.grades.jsonl:3: field `expect`"])
             },
         },
+        Case {
+            name: "grades: wrongly typed field",
+            setup: |d| {
+                write_set(d);
+                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+                let rows = grades_for(&IDS).replacen("\"refused\":false", "\"refused\":\"no\"", 2);
+                let rows = rows.replacen("\"refused\":\"no\"", "\"refused\":false", 1);
+                write(d, "candidate.grades.jsonl", &rows);
+                weigh(
+                    d,
+                    &[],
+                    &[
+                        "candidate.grades.jsonl:2: field `refused`",
+                        "expected a boolean",
+                    ],
+                )
+            },
+        },
         // ---- model directories ----
         Case {
             name: "model: missing config.json",
@@ -594,7 +634,7 @@ fn cases() -> Vec<Case> {
                     text.replacen("\"hidden_act\": \"silu\",", "\"hidden_act\": silu,", 1),
                 )
                 .unwrap();
-                answer(d, false, &["config.json:"])
+                answer(d, false, &["model/config.json:11:", "not valid JSON"])
             },
         },
         Case {
@@ -967,7 +1007,13 @@ fn cases() -> Vec<Case> {
         },
         Case {
             name: "policy: wrongly typed value",
-            setup: |d| policy_case(d, "min_questions = \"ten\"\n", &["policy.toml:1:"]),
+            setup: |d| {
+                policy_case(
+                    d,
+                    "min_questions = \"ten\"\n",
+                    &["policy.toml:1: field `min_questions`", "\"ten\""],
+                )
+            },
         },
         Case {
             name: "policy: unknown metric name",
@@ -975,7 +1021,7 @@ fn cases() -> Vec<Case> {
                 policy_case(
                     d,
                     "[lift]\nmetric = \"bleu\"\n",
-                    &["policy.toml:2:", "bleu"],
+                    &["policy.toml:2: field `lift.metric`", "bleu"],
                 )
             },
         },

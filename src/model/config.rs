@@ -196,7 +196,7 @@ impl ModelSpec {
             )
         })?;
         let value: Value = serde_json::from_str(&text)
-            .map_err(|e| Error::file(&path, format!("not valid JSON: {e}")))?;
+            .map_err(|e| Error::line(&path, e.line(), format!("not valid JSON: {e}")))?;
         let obj = value
             .as_object()
             .ok_or_else(|| Error::file(&path, "expected a JSON object"))?;
@@ -468,7 +468,7 @@ impl GenerationDefaults {
         let text = std::fs::read_to_string(&path)
             .map_err(|e| Error::file(&path, format!("cannot read: {e}")))?;
         let value: Value = serde_json::from_str(&text)
-            .map_err(|e| Error::file(&path, format!("not valid JSON: {e}")))?;
+            .map_err(|e| Error::line(&path, e.line(), format!("not valid JSON: {e}")))?;
         let obj = value
             .as_object()
             .ok_or_else(|| Error::file(&path, "expected a JSON object"))?;

@@ -129,7 +129,12 @@ impl Mapped {
     /// The parsed header over the mapping (checked once in `mmap_file`).
     fn parse(&self, file: &Path) -> Result<SafeTensors<'_>> {
         SafeTensors::deserialize(&self.mmap)
-            .map_err(|e| Error::file(file, format!("not a readable safetensors file: {e}")))
+            .map_err(|e| {
+                Error::file(
+                    file,
+                    format!("not a readable safetensors file ({e}); it may be truncated or corrupt: download it again"),
+                )
+            })
     }
 
     /// Drops the pages under `data` (a slice of this mapping) from the process once their
