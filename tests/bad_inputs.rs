@@ -909,6 +909,34 @@ fn cases() -> Vec<Case> {
                 answer(d, true, &["adapter_model.bin", "pickle"])
             },
         },
+        Case {
+            name: "adapter: bad adapter found by vet removes the report directory it made",
+            setup: |d| {
+                let a = adapter_case(d);
+                edit_json(&a.join("adapter_config.json"), |c| {
+                    c["peft_type"] = json!("LOHA")
+                });
+                Setup {
+                    args: [
+                        "vet",
+                        "--model",
+                        "model",
+                        "--adapter",
+                        "adapter",
+                        "--questions",
+                        "set.jsonl",
+                        "--report",
+                        "rep",
+                        "--max-new-tokens",
+                        "4",
+                    ]
+                    .map(s)
+                    .to_vec(),
+                    outputs: vec![d.join("rep")],
+                    needles: needles(&["adapter/adapter_config.json: field `peft_type`"]),
+                }
+            },
+        },
         // ---- chat templates (untrusted code) ----
         Case {
             name: "template: syntax error",
@@ -1168,5 +1196,54 @@ fn failing_run_keeps_the_previous_output_whole() {
         std::fs::read_to_string(d.join("grades.jsonl")).unwrap(),
         before
     );
+    assert!(leftovers(d).is_empty());
+}
+
+/// `vet --report DIR` into a directory the user already has: a failure removes what vet wrote
+/// and nothing else.
+#[test]
+fn failing_vet_keeps_the_users_files_in_an_existing_report_directory() {
+    let tmp = tempfile::tempdir().unwrap();
+    let d = tmp.path();
+    let a = adapter_case(d);
+    edit_json(&a.join("adapter_config.json"), |c| {
+        c["peft_type"] = json!("LOHA")
+    });
+    write(d, "notes.txt", "ferry rota, keep");
+    let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
+        .current_dir(d)
+        .args([
+            "vet",
+            "--model",
+            "model",
+            "--adapter",
+            "adapter",
+            "--questions",
+            "set.jsonl",
+            "--report",
+            ".",
+            "--max-new-tokens",
+            "4",
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(
+        std::fs::read_to_string(d.join("notes.txt")).unwrap(),
+        "ferry rota, keep"
+    );
+    assert!(d.join("set.jsonl").is_file() && a.join("adapter_model.safetensors").is_file());
+    for f in [
+        "baseline.answers.jsonl",
+        "baseline.answers.jsonl.run.json",
+        "baseline.grades.jsonl",
+    ] {
+        assert!(!d.join(f).exists(), "{f} left behind");
+    }
     assert!(leftovers(d).is_empty());
 }
