@@ -648,6 +648,24 @@ fn cases() -> Vec<Case> {
             },
         },
         Case {
+            name: "model: negative rms_norm_eps",
+            setup: |d| {
+                let m = model_case(d);
+                edit_json(&m.join("config.json"), |c| c["rms_norm_eps"] = json!(-1.0));
+                answer(d, false, &["model/config.json: field `rms_norm_eps`", "-1"])
+            },
+        },
+        Case {
+            name: "model: rope_theta zero",
+            setup: |d| {
+                let m = model_case(d);
+                edit_json(&m.join("config.json"), |c| {
+                    c["rope_parameters"]["rope_theta"] = json!(0.0)
+                });
+                answer(d, false, &["model/config.json: field `rope_theta`"])
+            },
+        },
+        Case {
             name: "model: missing tokenizer.json",
             setup: |d| {
                 let m = model_case(d);
