@@ -504,6 +504,20 @@ fn cases() -> Vec<Case> {
                 grade(d, &[], &["answers.jsonl:1: field `score`", "unknown field"])
             },
         },
+        Case {
+            name: "answers: grade output would overwrite the answers",
+            setup: |d| {
+                write_set(d);
+                let rows = answers_for(&IDS);
+                write(d, "answers.jsonl", &rows);
+                let mut setup = grade(d, &[], &["--out ./answers.jsonl", "--answers"]);
+                let last = setup.args.len() - 1;
+                setup.args[last] = s("./answers.jsonl");
+                // The input must survive unchanged; only the grades sidecar must not appear.
+                setup.outputs = vec![d.join("answers.jsonl.run.json"), d.join("grades.jsonl")];
+                setup
+            },
+        },
         // ---- grades that do not match the set ----
         Case {
             name: "grades: missing id",

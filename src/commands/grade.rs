@@ -21,6 +21,17 @@ use std::path::Path;
 
 pub fn run(args: &GradeArgs) -> Result<Outcome> {
     // Only the policy's refusal phrases matter here; loading it whole still rejects a bad file.
+    for (flag, input) in [
+        ("--answers", &args.answers),
+        ("--questions", &args.questions),
+    ] {
+        if fsutil::same_file(&args.out, input) {
+            return Err(Error::usage(format!(
+                "--out {} is the {flag} file; choose another path so the input is not overwritten",
+                args.out.display()
+            )));
+        }
+    }
     let policy = Policy::load_or_default(args.policy.as_deref())?;
     let set = QuestionSet::load(&args.questions)?;
     let answers = answers::load_for_set(&args.answers, &set)?;
