@@ -629,6 +629,18 @@ fn cases() -> Vec<Case> {
                 )
             },
         },
+        Case {
+            name: "report directory: a directory in the way of report.md",
+            setup: |d| {
+                write_set(d);
+                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+                std::fs::create_dir_all(d.join("report/report.md")).unwrap();
+                let mut setup = weigh(d, &[], &["report/report.md", "is a directory"]);
+                setup.outputs = vec![d.join("report/summary.json")];
+                setup
+            },
+        },
         // ---- model directories ----
         Case {
             name: "model: missing config.json",
