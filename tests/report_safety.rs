@@ -15,7 +15,7 @@ const HOSTILE: &[&str] = &[
     "<script>alert('ferry')</script><img src=x onerror=alert(1)>",
     "```\nrm -rf /\n```",
     "line one\r\nline two\n\n# Injected heading\n---\n",
-    "\u{1b}[31mred\u{1b}[0m \u{7}bell \u{0}nul \u{8}back",
+    "\u{1b}[31mred\u{1b}[0m \u{7}bell \u{0}nul \u{8}back\u{2028}line\u{2029}para\u{85}nel | x",
     "\u{202e}desrever\u{200b}zero\u{2066}isolate",
     "[pay here](javascript:alert(1)) ![img](http://tracker.invalid/p.png)",
     "<!-- hidden --> &lt;b&gt; &amp; <b>bold</b> </td></tr></table>",
@@ -159,7 +159,7 @@ fn hostile_answers_cannot_break_report_md() {
             header_cells = None;
         }
     }
-    // The "worse" table lists every hostile answer (all scored lower than the reference copy),
+    // The "worse" table lists the hostile answers (all scored lower than the reference copy),
     // one row each.
     let worse = md
         .split("## Questions that got worse")
@@ -178,7 +178,7 @@ fn hostile_answers_cannot_break_report_md() {
                 &md[i - 1..i],
                 "\\",
                 "unescaped backtick near {:?}",
-                &md[i.saturating_sub(30)..i + 1]
+                md[..i].chars().rev().take(30).collect::<String>()
             );
         }
     }
@@ -189,8 +189,8 @@ fn hostile_answers_cannot_break_report_md() {
             "control character {c:?} in report"
         );
         assert!(
-            !matches!(c as u32, 0x200B..=0x200F | 0x202A..=0x202E | 0x2066..=0x2069),
-            "format character U+{:04X} in report",
+            !matches!(c as u32, 0x200B..=0x200F | 0x202A..=0x202E | 0x2066..=0x2069 | 0x2028 | 0x2029),
+            "format or separator character U+{:04X} in report",
             c as u32
         );
     }
