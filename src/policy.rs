@@ -219,8 +219,11 @@ impl Policy {
         }
         let bytes =
             std::fs::read(path).map_err(|e| Error::file(path, format!("cannot read: {e}")))?;
-        let text = String::from_utf8(bytes)
-            .map_err(|e| Error::file(path, format!("not valid UTF-8: {e}")))?;
+        let text = String::from_utf8(bytes).map_err(|e| {
+            let at = e.utf8_error().valid_up_to();
+            let line = e.as_bytes()[..at].iter().filter(|&&b| b == b'\n').count() + 1;
+            Error::line(path, line, format!("not valid UTF-8: {}", e.utf8_error()))
+        })?;
         Policy::parse(path, &text)
     }
 

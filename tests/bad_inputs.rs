@@ -407,6 +407,18 @@ fn cases() -> Vec<Case> {
             },
         },
         Case {
+            name: "set: JSON nested 100,000 levels deep",
+            setup: |d| {
+                let deep = format!("{}{}", "[".repeat(100_000), "]".repeat(100_000));
+                let line = format!(
+                    r#"{{"id": "q0", "question": "Deep?", "references": ["x"], "note": {deep}}}"#
+                );
+                write(d, "set.jsonl", &format!("{SET}{line}\n"));
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(d, &[], &["set.jsonl:4:", "recursion limit"])
+            },
+        },
+        Case {
             name: "set: malformed line stops answer before the model loads",
             setup: |d| {
                 model_case(d);
@@ -1094,6 +1106,23 @@ fn cases() -> Vec<Case> {
                     d,
                     "[lift]\nmetric = \"bleu\"\n",
                     &["policy.toml:2: field `lift.metric`", "bleu"],
+                )
+            },
+        },
+        Case {
+            name: "policy: non-UTF-8 bytes",
+            setup: |d| {
+                write_set(d);
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                std::fs::write(
+                    d.join("policy.toml"),
+                    b"[refusal]\nextra_phrases = [\"n\xe3o posso\"]\n",
+                )
+                .unwrap();
+                grade(
+                    d,
+                    &["--policy", "policy.toml"],
+                    &["policy.toml:2:", "UTF-8"],
                 )
             },
         },
