@@ -298,13 +298,21 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
 /// Where the first NaN or ±Inf of `values` is, with its value.
 pub fn first_non_finite(values: &[f32]) -> Option<(usize, f32)> {
     use rayon::prelude::*;
-    // One pass over memory; large tensors are scanned in parallel chunks.
-    let pos = if values.len() >= 1 << 20 {
-        values.par_iter().position_first(|v| !v.is_finite())
+    const CHUNK: usize = 1 << 16;
+    // Branch-free test over a chunk, which the compiler vectorises; only a chunk that fails is
+    // searched element by element. Chunks are scanned in parallel.
+    let all_finite = |c: &[f32]| c.iter().fold(true, |ok, v| ok & v.is_finite());
+    let chunk = if values.len() > CHUNK {
+        values.par_chunks(CHUNK).position_first(|c| !all_finite(c))
     } else {
-        values.iter().position(|v| !v.is_finite())
-    };
-    pos.map(|i| (i, values[i]))
+        (!all_finite(values)).then_some(0)
+    }?;
+    let start = chunk * CHUNK;
+    let end = (start + CHUNK).min(values.len());
+    values[start..end]
+        .iter()
+        .position(|v| !v.is_finite())
+        .map(|i| (start + i, values[start + i]))
 }
 
 /// Refuses an f32 tensor holding NaN or ±Inf: an `Input` error naming `file` and the tensor
