@@ -35,8 +35,16 @@ pub struct AnswerRecord {
     pub ms: u64,
 }
 
-/// Reads an answers file and checks it matches the question set id for id, in order.
+/// Reads an answers file and checks it matches the question set id for id, in order, and (when
+/// `<path>.run.json` records one) that it was made from this set.
 pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>> {
+    let rows = load_rows(path, set)?;
+    check_set_fingerprint(path, set)?;
+    Ok(rows)
+}
+
+/// [`load_for_set`] without the set-fingerprint check: ids only.
+pub fn load_rows(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>> {
     let lines = fsutil::read_jsonl_lines(path)?;
     let mut rows = Vec::with_capacity(lines.len());
     for (line, text) in &lines {
@@ -60,7 +68,6 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>>
         rows.push((*line, row));
     }
     check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
-    check_set_fingerprint(path, set)?;
     Ok(rows.into_iter().map(|(_, r)| r).collect())
 }
 

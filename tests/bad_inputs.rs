@@ -1320,3 +1320,38 @@ fn failing_vet_keeps_the_users_files_in_an_existing_report_directory() {
     }
     assert!(leftovers(d).is_empty());
 }
+
+/// After a reference is corrected, `grade --allow-set-change` grades answers made from the
+/// earlier version of the set, with a warning; without the flag they are refused (above).
+#[test]
+fn allow_set_change_grades_answers_from_an_edited_set() {
+    let tmp = tempfile::tempdir().unwrap();
+    let d = tmp.path();
+    write_set(d);
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    write(
+        d,
+        "answers.jsonl.run.json",
+        &json!({"questions": {"path": "set.jsonl", "fingerprint": "0".repeat(64), "count": 3}})
+            .to_string(),
+    );
+    let setup = grade(d, &["--allow-set-change"], &[]);
+    let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
+        .current_dir(d)
+        .args(&setup.args)
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(0), "{stderr}");
+    assert!(
+        stderr.contains("warning") && stderr.contains("different question set"),
+        "{stderr}"
+    );
+    assert_eq!(
+        std::fs::read_to_string(d.join("grades.jsonl"))
+            .unwrap()
+            .lines()
+            .count(),
+        3
+    );
+}

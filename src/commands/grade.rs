@@ -34,7 +34,20 @@ pub fn run(args: &GradeArgs) -> Result<Outcome> {
     }
     let policy = Policy::load_or_default(args.policy.as_deref())?;
     let set = QuestionSet::load(&args.questions)?;
-    let answers = answers::load_for_set(&args.answers, &set)?;
+    let answers = answers::load_rows(&args.answers, &set)?;
+    match (answers::check_set_fingerprint(&args.answers, &set), args.allow_set_change) {
+        (Ok(()), _) => {}
+        (Err(e), true) => eprintln!("liftgate: warning: {e} (grading anyway: --allow-set-change)"),
+        (Err(Error::Input { location, message }), false) => {
+            return Err(Error::Input {
+                location,
+                message: format!(
+                    "{message}; if only references or categories changed, `grade --allow-set-change` grades these answers anyway"
+                ),
+            })
+        }
+        (Err(e), false) => return Err(e),
+    }
     let detector = RefusalDetector::with_extra_phrases(&policy.refusal.extra_phrases);
     let grades = grade_set(&set, &answers, &detector);
     write_grades(&args.out, &grades, &set, &args.answers)?;
