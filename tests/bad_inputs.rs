@@ -158,6 +158,7 @@ fn answer(dir: &Path, adapter: bool, needles_: &[&str]) -> Setup {
         outputs: vec![
             dir.join("answers.jsonl"),
             dir.join("answers.jsonl.run.json"),
+            dir.join("answers.jsonl.partial"),
         ],
         needles: needles(needles_),
     }
