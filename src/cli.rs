@@ -91,6 +91,10 @@ pub struct GradeArgs {
     /// Gate policy (TOML); only its `[refusal]` phrase settings are used here.
     #[arg(long, value_name = "FILE")]
     pub policy: Option<PathBuf>,
+    /// Grade answers whose `.run.json` records a different question-set fingerprint (with a
+    /// warning), e.g. after correcting a reference answer; the ids must still match.
+    #[arg(long)]
+    pub allow_set_change: bool,
 }
 
 /// Statistics settings shared by `weigh` and `vet`.

@@ -57,8 +57,8 @@ pub fn write_jsonl_atomic<T: serde::Serialize>(path: &Path, rows: &[T]) -> Resul
 /// corrupted or wrong file, and reading it whole would waste memory.
 pub const MAX_LINE_BYTES: usize = 1 << 20;
 
-/// Reads a JSONL file into `(line_number, text)` pairs, 1-based, skipping blank lines.
-/// Fails on non-UTF-8 bytes and on over-long lines, naming the line.
+/// Reads a JSONL file into `(line_number, text)` pairs, 1-based, skipping blank lines and a
+/// leading byte-order mark. Fails on non-UTF-8 bytes and on over-long lines, naming the line.
 pub fn read_jsonl_lines(path: &Path) -> Result<Vec<(usize, String)>> {
     let file =
         std::fs::File::open(path).map_err(|e| Error::file(path, format!("cannot open: {e}")))?;
@@ -86,7 +86,12 @@ pub fn read_jsonl_lines(path: &Path) -> Result<Vec<(usize, String)>> {
                 ),
             ));
         }
-        let text = std::str::from_utf8(&buf).map_err(|e| {
+        // A UTF-8 byte-order mark (some editors on Windows write one) is not part of the text.
+        let bytes = match buf.strip_prefix(b"\xEF\xBB\xBF") {
+            Some(rest) if line_no == 1 => rest,
+            _ => &buf[..],
+        };
+        let text = std::str::from_utf8(bytes).map_err(|e| {
             Error::line(
                 path,
                 line_no,
@@ -124,6 +129,14 @@ pub fn try_lock(file: &std::fs::File) -> std::io::Result<bool> {
     {
         let _ = file;
         Ok(true)
+    }
+}
+
+/// Whether two paths name the same existing file (after resolving links and `..`).
+pub fn same_file(a: &Path, b: &Path) -> bool {
+    match (std::fs::canonicalize(a), std::fs::canonicalize(b)) {
+        (Ok(x), Ok(y)) => x == y,
+        _ => false,
     }
 }
 
@@ -179,6 +192,17 @@ mod tests {
             lines,
             vec![(1, "{\"a\":1}".to_string()), (4, "{\"b\":2}".to_string())]
         );
+    }
+
+    #[test]
+    fn leading_byte_order_mark_is_skipped() {
+        let dir = tempfile::tempdir().unwrap();
+        let p = dir.path().join("q.jsonl");
+        std::fs::write(&p, b"\xEF\xBB\xBF{\"a\":1}\r\n\xEF\xBB\xBF{}\n").unwrap();
+        let lines = read_jsonl_lines(&p).unwrap();
+        assert_eq!(lines[0], (1, "{\"a\":1}".to_string()));
+        // Only at the start of the file: elsewhere it stays (and JSON parsing will name it).
+        assert_eq!(lines[1], (2, "\u{feff}{}".to_string()));
     }
 
     #[test]

@@ -5,7 +5,7 @@
 //! references (typically `expect: refuse` questions). liftgate adds `answer` (the graded text)
 //! so `weigh` can show both variants' answers side by side without the answers files.
 
-use crate::answers::check_ids;
+use crate::answers::{check, check_ids, check_set_fingerprint, row_error};
 use crate::error::{Error, Result};
 use crate::fsutil;
 use crate::questions::{Expect, QuestionSet};
@@ -30,13 +30,40 @@ pub struct GradeRecord {
     pub answer: String,
 }
 
+/// `<grades>.run.json`, written by `grade` beside the grades file: what was graded.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct GradeRunInfo {
+    pub tool: String,
+    pub tool_version: String,
+    pub questions: crate::generate::QuestionsInfo,
+    /// The answers file graded: path and SHA-256 of its content.
+    pub answers: crate::report::summary::InputFile,
+}
+
 /// Reads a grades file and checks it matches the question set id for id, in order.
 pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<GradeRecord>> {
     let lines = fsutil::read_jsonl_lines(path)?;
     let mut rows = Vec::with_capacity(lines.len());
     for (line, text) in &lines {
-        let row: GradeRecord = serde_json::from_str(text)
-            .map_err(|e| Error::line(path, *line, format!("not a valid grade row: {e}")))?;
+        let row: GradeRecord = serde_json::from_str(text).map_err(|e| {
+            row_error(
+                path,
+                *line,
+                text,
+                "grade row",
+                &e,
+                &[
+                    ("id", true, check::<String>),
+                    ("category", true, check::<String>),
+                    ("expect", true, check::<Expect>),
+                    ("exact_match", false, check::<Option<u8>>),
+                    ("token_f1", false, check::<Option<f64>>),
+                    ("rouge_l", false, check::<Option<f64>>),
+                    ("refused", true, check::<bool>),
+                    ("answer", false, check::<String>),
+                ],
+            )
+        })?;
         if let Some(em) = row.exact_match {
             if em > 1 {
                 return Err(Error::field(
@@ -62,6 +89,7 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<GradeRecord>> 
         rows.push((*line, row));
     }
     check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
+    check_set_fingerprint(path, set)?;
     for ((line, row), q) in rows.iter().zip(&set.questions) {
         if row.expect != q.expect {
             return Err(Error::field(

@@ -219,8 +219,11 @@ impl Policy {
         }
         let bytes =
             std::fs::read(path).map_err(|e| Error::file(path, format!("cannot read: {e}")))?;
-        let text = String::from_utf8(bytes)
-            .map_err(|e| Error::file(path, format!("not valid UTF-8: {e}")))?;
+        let text = String::from_utf8(bytes).map_err(|e| {
+            let at = e.utf8_error().valid_up_to();
+            let line = e.as_bytes()[..at].iter().filter(|&&b| b == b'\n').count() + 1;
+            Error::line(path, line, format!("not valid UTF-8: {}", e.utf8_error()))
+        })?;
         Policy::parse(path, &text)
     }
 
@@ -346,10 +349,28 @@ fn toml_error(path: &Path, text: &str, e: &toml::de::Error) -> Error {
                 format!("{message}; see docs/policy.md for the keys a policy may hold"),
             )
         }
-        _ => match line {
-            Some(l) => Error::line(path, l, format!("not a valid policy: {message}")),
-            None => Error::file(path, format!("not a valid policy: {message}")),
-        },
+        (_, Some(span)) => {
+            let line = line_of(text, span.start);
+            // A wrongly typed value: name the key written on that line.
+            match key_on_line(text, line) {
+                Some(key) => {
+                    let section = section_at(text, span.start);
+                    let name = if section.is_empty() {
+                        key
+                    } else {
+                        format!("{section}.{key}")
+                    };
+                    Error::field(
+                        path,
+                        Some(line),
+                        name,
+                        format!("not a valid policy: {message}"),
+                    )
+                }
+                None => Error::line(path, line, format!("not a valid policy: {message}")),
+            }
+        }
+        _ => Error::file(path, format!("not a valid policy: {message}")),
     }
 }
 
@@ -358,6 +379,18 @@ fn backticked(message: &str) -> Option<String> {
     let start = message.find('`')? + 1;
     let len = message[start..].find('`')?;
     Some(message[start..start + len].to_string())
+}
+
+/// The bare key assigned on a 1-based line (`key = value`), if the line is one.
+fn key_on_line(text: &str, line: usize) -> Option<String> {
+    let l = text.lines().nth(line.checked_sub(1)?)?;
+    let (lhs, _) = l.split_once('=')?;
+    let key = lhs.trim();
+    let bare = !key.is_empty()
+        && key
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '_' || c == '-' || c == '.');
+    bare.then(|| key.to_string())
 }
 
 /// 1-based line of a byte offset.

@@ -8,24 +8,88 @@
 use super::Outcome;
 use crate::answers::{self, AnswerRecord};
 use crate::cli::GradeArgs;
-use crate::error::Result;
+use crate::error::{Error, Result};
 use crate::fsutil;
-use crate::grades::GradeRecord;
+use crate::generate::QuestionsInfo;
+use crate::grades::{GradeRecord, GradeRunInfo};
 use crate::policy::Policy;
 use crate::questions::{Expect, QuestionSet};
+use crate::report::summary::InputFile;
 use crate::score::{self, RefusalDetector};
 use rayon::prelude::*;
+use std::path::Path;
 
 pub fn run(args: &GradeArgs) -> Result<Outcome> {
     // Only the policy's refusal phrases matter here; loading it whole still rejects a bad file.
+    for (flag, input) in [
+        ("--answers", &args.answers),
+        ("--questions", &args.questions),
+    ] {
+        if fsutil::same_file(&args.out, input) {
+            return Err(Error::usage(format!(
+                "--out {} is the {flag} file; choose another path so the input is not overwritten",
+                args.out.display()
+            )));
+        }
+    }
     let policy = Policy::load_or_default(args.policy.as_deref())?;
     let set = QuestionSet::load(&args.questions)?;
-    let answers = answers::load_for_set(&args.answers, &set)?;
+    let answers = answers::load_rows(&args.answers, &set)?;
+    match (answers::check_set_fingerprint(&args.answers, &set), args.allow_set_change) {
+        (Ok(()), _) => {}
+        (Err(e), true) => eprintln!("liftgate: warning: {e} (grading anyway: --allow-set-change)"),
+        (Err(Error::Input { location, message }), false) => {
+            return Err(Error::Input {
+                location,
+                message: format!(
+                    "{message}; if only references or categories changed, `grade --allow-set-change` grades these answers anyway"
+                ),
+            })
+        }
+        (Err(e), false) => return Err(e),
+    }
     let detector = RefusalDetector::with_extra_phrases(&policy.refusal.extra_phrases);
     let grades = grade_set(&set, &answers, &detector);
-    fsutil::write_jsonl_atomic(&args.out, &grades)?;
+    write_grades(&args.out, &grades, &set, &args.answers)?;
     eprintln!("{}", summary_line(&grades, &args.out));
     Ok(Outcome::Success)
+}
+
+/// Writes the grades file and `<out>.run.json` (the set's and the answers' fingerprints), both
+/// or neither: both are staged as temporary files first and renamed into place after.
+pub fn write_grades(
+    out: &Path,
+    grades: &[GradeRecord],
+    set: &QuestionSet,
+    answers_path: &Path,
+) -> Result<()> {
+    let info = GradeRunInfo {
+        tool: "liftgate".into(),
+        tool_version: env!("CARGO_PKG_VERSION").into(),
+        questions: QuestionsInfo {
+            path: set.path.display().to_string(),
+            fingerprint: set.fingerprint.clone(),
+            count: set.len(),
+        },
+        answers: InputFile {
+            path: answers_path.display().to_string(),
+            sha256: fsutil::sha256_file(answers_path)?,
+        },
+    };
+    let mut info_bytes = serde_json::to_vec_pretty(&info)
+        .map_err(|e| Error::internal(format!("cannot serialise run.json: {e}")))?;
+    info_bytes.push(b'\n');
+    let mut rows = Vec::new();
+    for g in grades {
+        serde_json::to_writer(&mut rows, g)
+            .map_err(|e| Error::internal(format!("cannot serialise a grade row: {e}")))?;
+        rows.push(b'\n');
+    }
+    let run = answers::run_json_path(out);
+    let staged_rows = fsutil::stage(out, &rows)?;
+    let staged_info = fsutil::stage(&run, &info_bytes)?;
+    fsutil::commit_staged(out, staged_rows)?;
+    fsutil::commit_staged(&run, staged_info)
 }
 
 /// Scores every answer against its question. `answers` must already match `set` id for id, in

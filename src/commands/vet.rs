@@ -17,7 +17,7 @@
 //! locked, so a second `vet` started meanwhile never continues it.
 
 use super::answer::{self, AnswerSettings};
-use super::grade::grade_set;
+use super::grade::{grade_set, write_grades};
 use super::weigh::describe_inputs;
 use super::Outcome;
 use crate::cli::VetArgs;
@@ -186,8 +186,10 @@ fn stage_files() -> Vec<String> {
         names.push(format!("{answers}.run.json"));
         names.push(format!("{answers}.partial"));
     }
-    names.push(BASELINE_GRADES.to_string());
-    names.push(CANDIDATE_GRADES.to_string());
+    for grades in [BASELINE_GRADES, CANDIDATE_GRADES] {
+        names.push(grades.to_string());
+        names.push(format!("{grades}.run.json"));
+    }
     names
 }
 
@@ -317,7 +319,7 @@ fn vet_into(
         let run = answer::answer_to(&dir.join(answers_name), settings, set, stop)?;
         let grades = grade_set(set, &run.records, &detector);
         let grades_path = dir.join(grades_name);
-        fsutil::write_jsonl_atomic(&grades_path, &grades)?;
+        write_grades(&grades_path, &grades, set, &dir.join(answers_name))?;
         grade_paths.push((grades_path, grades));
     }
     stop.check(|| format!("all answers are saved in {}", dir.display()))?;

@@ -196,7 +196,7 @@ impl ModelSpec {
             )
         })?;
         let value: Value = serde_json::from_str(&text)
-            .map_err(|e| Error::file(&path, format!("not valid JSON: {e}")))?;
+            .map_err(|e| Error::line(&path, e.line(), format!("not valid JSON: {e}")))?;
         let obj = value
             .as_object()
             .ok_or_else(|| Error::file(&path, "expected a JSON object"))?;
@@ -253,6 +253,15 @@ impl ModelSpec {
             _ => 1e-6,
         };
         let rms_norm_eps = c.opt_f64("rms_norm_eps")?.unwrap_or(default_eps);
+        if !(rms_norm_eps.is_finite() && rms_norm_eps >= 0.0) {
+            // A negative epsilon takes the square root of a negative number: NaN everywhere.
+            return Err(Error::field(
+                path,
+                None,
+                "rms_norm_eps",
+                format!("is {rms_norm_eps}; expected a small non-negative number such as 1e-6"),
+            ));
+        }
 
         let activation = match family {
             Family::Gemma2 => {
@@ -468,7 +477,7 @@ impl GenerationDefaults {
         let text = std::fs::read_to_string(&path)
             .map_err(|e| Error::file(&path, format!("cannot read: {e}")))?;
         let value: Value = serde_json::from_str(&text)
-            .map_err(|e| Error::file(&path, format!("not valid JSON: {e}")))?;
+            .map_err(|e| Error::line(&path, e.line(), format!("not valid JSON: {e}")))?;
         let obj = value
             .as_object()
             .ok_or_else(|| Error::file(&path, "expected a JSON object"))?;
@@ -687,6 +696,14 @@ fn rope_spec(c: &Cfg, family: Family, head_dim: usize) -> Result<RopeSpec> {
         Some(t) => t,
         None => c.opt_f64("rope_theta")?.unwrap_or(10000.0),
     };
+    if !(theta.is_finite() && theta > 0.0) {
+        return Err(Error::field(
+            c.path,
+            None,
+            "rope_theta",
+            format!("is {theta}; expected a positive base such as 10000"),
+        ));
+    }
     let partial = match d.opt_f64("partial_rotary_factor")? {
         Some(p) => p,
         None => c.opt_f64("partial_rotary_factor")?.unwrap_or(1.0),

@@ -36,6 +36,7 @@ pub fn load(dir: &Path, adapter: Option<&Path>) -> Result<LoadedModel> {
     let adapter = match adapter {
         Some(a) => {
             let summary = lora::merge(&mut w.tensors, &a, w.tied)?;
+            check_merged_finite(&w.tensors, &a, &summary)?;
             Some((a, summary))
         }
         None => None,
@@ -49,4 +50,29 @@ pub fn load(dir: &Path, adapter: Option<&Path>) -> Result<LoadedModel> {
         stored_dtype: w.stored_dtype,
         adapter,
     })
+}
+
+/// The tensors the merge changed must still be finite: NaN or Inf in the adapter's tensors (or
+/// a ΔW too large for f32) is refused naming the adapter's weights file and the base tensor.
+fn check_merged_finite(
+    tensors: &std::collections::HashMap<String, candle_core::Tensor>,
+    adapter: &lora::Adapter,
+    summary: &lora::MergeSummary,
+) -> Result<()> {
+    let changed = summary
+        .modules
+        .iter()
+        .map(|m| m.into.as_str())
+        .chain(summary.replaced.iter().map(String::as_str));
+    for name in changed {
+        if let Some(t) = tensors.get(name) {
+            weights::check_finite(
+                name,
+                adapter.weights_path(),
+                t,
+                " after merging the adapter",
+            )?;
+        }
+    }
+    Ok(())
 }

@@ -4,7 +4,8 @@
 //! The map is the one place weights live before the decoder takes them: the LoRA merge
 //! (`crate::model::lora::merge`) edits it in place, so merging never holds a second full copy.
 //! Rules: model-formats.md §1.1 (files, index) and §1.3 (names, tied embeddings).
-//! NaN/Inf checks on the loaded weights belong to the reliability work and are not done here.
+//! Every loaded tensor is checked for NaN and ±Inf ([`check_finite`]): a corrupt or diverged
+//! checkpoint is refused naming the file and the tensor instead of producing garbage answers.
 
 use crate::error::{Error, Result};
 use crate::model::config::ModelSpec;
@@ -128,7 +129,12 @@ impl Mapped {
     /// The parsed header over the mapping (checked once in `mmap_file`).
     fn parse(&self, file: &Path) -> Result<SafeTensors<'_>> {
         SafeTensors::deserialize(&self.mmap)
-            .map_err(|e| Error::file(file, format!("not a readable safetensors file: {e}")))
+            .map_err(|e| {
+                Error::file(
+                    file,
+                    format!("not a readable safetensors file ({e}); it may be truncated or corrupt: download it again"),
+                )
+            })
     }
 
     /// Drops the pages under `data` (a slice of this mapping) from the process once their
@@ -271,6 +277,7 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
         if let Some(i) = src {
             maps[i].release(view.data());
         }
+        check_finite(name, &file_of(name), &t, "")?;
         tensors.insert(name.clone(), t);
     }
     if !tensors.contains_key(EMBED) {
@@ -286,6 +293,83 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
         stored_dtype,
         tied,
     })
+}
+
+/// Where the first NaN or ±Inf of `values` is, with its value.
+pub fn first_non_finite(values: &[f32]) -> Option<(usize, f32)> {
+    use rayon::prelude::*;
+    const CHUNK: usize = 1 << 16;
+    // Branch-free test over a chunk, which the compiler vectorises; only a chunk that fails is
+    // searched element by element. Chunks are scanned in parallel.
+    let all_finite = |c: &[f32]| c.iter().fold(true, |ok, v| ok & v.is_finite());
+    let chunk = if values.len() > CHUNK {
+        values.par_chunks(CHUNK).position_first(|c| !all_finite(c))
+    } else {
+        (!all_finite(values)).then_some(0)
+    }?;
+    let start = chunk * CHUNK;
+    let end = (start + CHUNK).min(values.len());
+    values[start..end]
+        .iter()
+        .position(|v| !v.is_finite())
+        .map(|i| (start + i, values[start + i]))
+}
+
+/// Refuses an f32 tensor holding NaN or ±Inf: an `Input` error naming `file` and the tensor
+/// `name`, the first bad element (flat index and position) and `context` (e.g. "after merging
+/// the adapter"). Reads the tensor's storage in place when it is contiguous, so no copy is made.
+pub fn check_finite(name: &str, file: &Path, t: &Tensor, context: &str) -> Result<()> {
+    let found = {
+        let (storage, layout) = t.storage_and_layout();
+        match (&*storage, layout.contiguous_offsets()) {
+            (candle_core::Storage::Cpu(cpu), Some((start, end))) => cpu
+                .as_slice::<f32>()
+                .ok()
+                .map(|s| first_non_finite(&s[start..end])),
+            _ => None,
+        }
+    };
+    let found = match found {
+        Some(f) => f,
+        // Not contiguous f32 CPU storage: copy once.
+        None => {
+            let values: Vec<f32> = t
+                .to_dtype(DType::F32)
+                .and_then(|t| t.flatten_all())
+                .and_then(|t| t.to_vec1())
+                .map_err(|e| Error::field(file, None, name, format!("cannot read: {e}")))?;
+            first_non_finite(&values)
+        }
+    };
+    let Some((i, v)) = found else {
+        return Ok(());
+    };
+    // Row-major position of flat index `i`.
+    let dims = t.dims();
+    let mut pos = vec![0usize; dims.len()];
+    let mut rest = i;
+    for (p, &d) in pos.iter_mut().zip(dims).rev() {
+        if d > 0 {
+            *p = rest % d;
+            rest /= d;
+        }
+    }
+    let what = if v.is_nan() {
+        "NaN"
+    } else if v > 0.0 {
+        "+Inf"
+    } else {
+        "-Inf"
+    };
+    Err(Error::field(
+        file,
+        None,
+        name,
+        format!(
+            "holds {what} at element {pos:?} of shape {dims:?}{context}; the weights are corrupt \
+             (or from a diverged training run) and cannot give meaningful answers"
+        ),
+    ))
 }
 
 #[cfg(test)]
@@ -360,6 +444,55 @@ mod tests {
             err.contains("model.safetensors.index.json") && err.contains("00002"),
             "{err}"
         );
+    }
+
+    #[test]
+    fn non_finite_values_are_found_and_located() {
+        assert_eq!(first_non_finite(&[0.0, 1.0, -3.4e38]), None);
+        assert!(matches!(first_non_finite(&[0.0, f32::NAN]), Some((1, v)) if v.is_nan()));
+        let mut big = vec![0.5f32; (1 << 20) + 7];
+        big[(1 << 20) + 3] = f32::NEG_INFINITY;
+        big[(1 << 20) + 5] = f32::NAN;
+        assert_eq!(
+            first_non_finite(&big),
+            Some(((1 << 20) + 3, f32::NEG_INFINITY))
+        );
+
+        let file = Path::new("m/model.safetensors");
+        let ok = Tensor::new(&[[1.0f32, 2.0], [3.0, 4.0]], &Device::Cpu).unwrap();
+        check_finite("w", file, &ok, "").unwrap();
+        let bad = Tensor::new(
+            &[[1.0f32, 2.0, 3.0], [4.0, f32::INFINITY, 6.0]],
+            &Device::Cpu,
+        )
+        .unwrap();
+        let msg = check_finite("layers.0.w", file, &bad, "")
+            .unwrap_err()
+            .to_string();
+        assert!(
+            msg.contains("model.safetensors")
+                && msg.contains("`layers.0.w`")
+                && msg.contains("+Inf at element [1, 1] of shape [2, 3]"),
+            "{msg}"
+        );
+        // A non-contiguous view is checked too (by copy).
+        let t = bad.t().unwrap();
+        let msg = check_finite("v", file, &t, " after merging")
+            .unwrap_err()
+            .to_string();
+        assert!(
+            msg.contains("[1, 1] of shape [3, 2] after merging"),
+            "{msg}"
+        );
+        // f16 storage: NaN survives the up-cast.
+        let h = Tensor::new(&[f32::NAN, 0.0], &Device::Cpu)
+            .unwrap()
+            .to_dtype(DType::F16)
+            .unwrap();
+        assert!(check_finite("h", file, &h, "")
+            .unwrap_err()
+            .to_string()
+            .contains("NaN at element [0]"));
     }
 
     #[test]

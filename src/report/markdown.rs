@@ -64,7 +64,8 @@ fn escape_limited(text: &str, limit: Option<usize>) -> String {
                     out.push_str("<br>");
                 }
             }
-            '\n' => out.push_str("<br>"),
+            // Unicode line and paragraph separators break lines in some renderers.
+            '\n' | '\u{2028}' | '\u{2029}' => out.push_str("<br>"),
             '\t' => out.push(' '),
             c if c.is_control() || is_format_char(c) => out.push('\u{FFFD}'),
             c => out.push(c),

@@ -39,6 +39,16 @@ pub fn write_report_dir(dir: &Path, summary: &Summary) -> Result<()> {
             markdown::Markdown.render(summary).into_bytes(),
         ),
     ];
+    // A rename that cannot succeed must fail before any file is renamed (both or neither).
+    for (name, _) in &files {
+        let path = dir.join(name);
+        if path.is_dir() {
+            return Err(Error::file(
+                &path,
+                "is a directory; the report directory must be free to hold this file",
+            ));
+        }
+    }
     let mut staged = Vec::new();
     for (name, bytes) in &files {
         let path = dir.join(name);

@@ -28,12 +28,12 @@ fn f(x: Option<f64>, signed: bool) -> String {
 
 pub fn render(s: &Summary) -> String {
     let mut out = format!("verdict: {}\n", if s.verdict.go { "GO" } else { "NO-GO" });
-    let failed: Vec<&str> = s
+    let failed: Vec<String> = s
         .verdict
         .checks
         .iter()
         .filter(|c| !c.pass)
-        .map(|c| c.name.as_str())
+        .map(|c| sanitize(&c.name))
         .collect();
     if !failed.is_empty() {
         out.push_str(&format!("failed: {}\n", failed.join(", ")));

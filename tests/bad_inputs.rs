@@ -1,0 +1,1358 @@
+//! The bad-input catalogue: every case runs the real binary on files made in a fresh temp
+//! directory (copies of the tiny fixture models under tests/fixtures/runner/, broken in one
+//! way) and checks the contract of interface.md, "Exit codes": exit 2, a message on stderr
+//! naming the file (and the line and field where there is one), and no output file, complete
+//! or partial, afterwards (not even a leftover temporary file).
+//!
+//! Cases are grouped by the input they break: question sets, answers and grades that do not
+//! match the set, model directories, adapters, chat templates and policy files.
+
+use serde_json::{json, Value};
+use std::ffi::OsString;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::process::Command;
+use std::time::{Duration, Instant};
+
+/// A valid three-question set (two in scope, one out of scope).
+const SET: &str = r#"{"id": "q1", "question": "When does the first boat leave Gull Point?", "references": ["At 06:50."], "category": "timetables"}
+{"id": "q2", "question": "Can I bring my dog on the ferry?", "references": ["Yes, dogs travel free on a lead."], "category": "pets"}
+{"id": "q3", "question": "What will the weather be on Saturday?", "references": [], "category": "out-of-scope", "expect": "refuse"}
+"#;
+
+const IDS: [&str; 3] = ["q1", "q2", "q3"];
+
+/// What one case runs and expects.
+struct Setup {
+    args: Vec<OsString>,
+    /// Files and directories that must not exist after the run.
+    outputs: Vec<PathBuf>,
+    /// Every string must appear in stderr.
+    needles: Vec<String>,
+}
+
+struct Case {
+    name: &'static str,
+    setup: fn(&Path) -> Setup,
+}
+
+fn runner(family: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("tests/fixtures/runner")
+        .join(family)
+}
+
+fn s(x: &str) -> OsString {
+    OsString::from(x)
+}
+
+fn needles(list: &[&str]) -> Vec<String> {
+    list.iter().map(|n| n.to_string()).collect()
+}
+
+fn write(dir: &Path, name: &str, text: &str) -> PathBuf {
+    let p = dir.join(name);
+    std::fs::write(&p, text).unwrap();
+    p
+}
+
+fn write_set(dir: &Path) {
+    write(dir, "set.jsonl", SET);
+}
+
+fn answer_row(id: &str, answer: &str) -> String {
+    json!({"id": id, "answer": answer, "finish": "eos", "prompt_tokens": 30, "new_tokens": 8, "ms": 3})
+        .to_string()
+}
+
+fn answers_for(ids: &[&str]) -> String {
+    ids.iter()
+        .map(|id| answer_row(id, "At 06:50, dogs travel free."))
+        .collect::<Vec<_>>()
+        .join("\n")
+        + "\n"
+}
+
+fn grade_row(id: &str) -> Value {
+    let refuse = id == "q3";
+    json!({
+        "id": id,
+        "category": match id { "q1" => "timetables", "q2" => "pets", _ => "out-of-scope" },
+        "expect": if refuse { "refuse" } else { "answer" },
+        "exact_match": if refuse { Value::Null } else { json!(1) },
+        "token_f1": if refuse { Value::Null } else { json!(1.0) },
+        "rouge_l": if refuse { Value::Null } else { json!(1.0) },
+        "refused": refuse,
+        "answer": "At 06:50."
+    })
+}
+
+fn grades_for(ids: &[&str]) -> String {
+    ids.iter()
+        .map(|id| grade_row(id).to_string())
+        .collect::<Vec<_>>()
+        .join("\n")
+        + "\n"
+}
+
+/// `grade --questions set.jsonl --answers answers.jsonl --out grades.jsonl`.
+fn grade(dir: &Path, extra: &[&str], needles_: &[&str]) -> Setup {
+    let mut args = vec![
+        s("grade"),
+        s("--questions"),
+        s("set.jsonl"),
+        s("--answers"),
+        s("answers.jsonl"),
+        s("--out"),
+        s("grades.jsonl"),
+    ];
+    args.extend(extra.iter().map(|a| s(a)));
+    Setup {
+        args,
+        outputs: vec![dir.join("grades.jsonl"), dir.join("grades.jsonl.run.json")],
+        needles: needles(needles_),
+    }
+}
+
+/// `weigh` of baseline.grades.jsonl against candidate.grades.jsonl into report/.
+fn weigh(dir: &Path, extra: &[&str], needles_: &[&str]) -> Setup {
+    let mut args = vec![
+        s("weigh"),
+        s("--questions"),
+        s("set.jsonl"),
+        s("--baseline"),
+        s("baseline.grades.jsonl"),
+        s("--candidate"),
+        s("candidate.grades.jsonl"),
+        s("--report"),
+        s("report"),
+        s("--resamples"),
+        s("1000"),
+    ];
+    args.extend(extra.iter().map(|a| s(a)));
+    Setup {
+        args,
+        outputs: vec![dir.join("report")],
+        needles: needles(needles_),
+    }
+}
+
+/// `answer` with the model (and adapter) under `dir` on set.jsonl.
+fn answer(dir: &Path, adapter: bool, needles_: &[&str]) -> Setup {
+    let mut args = vec![
+        s("answer"),
+        s("--model"),
+        s("model"),
+        s("--questions"),
+        s("set.jsonl"),
+        s("--out"),
+        s("answers.jsonl"),
+        s("--max-new-tokens"),
+        s("4"),
+    ];
+    if adapter {
+        args.extend([s("--adapter"), s("adapter")]);
+    }
+    Setup {
+        args,
+        outputs: vec![
+            dir.join("answers.jsonl"),
+            dir.join("answers.jsonl.run.json"),
+            dir.join("answers.jsonl.partial"),
+        ],
+        needles: needles(needles_),
+    }
+}
+
+fn copy_dir(src: &Path, dst: &Path) {
+    std::fs::create_dir_all(dst).unwrap();
+    for e in std::fs::read_dir(src).unwrap().flatten() {
+        std::fs::copy(e.path(), dst.join(e.file_name())).unwrap();
+    }
+}
+
+/// set.jsonl plus a copy of the llama fixture model as `model/`.
+fn model_case(dir: &Path) -> PathBuf {
+    write_set(dir);
+    let m = dir.join("model");
+    copy_dir(&runner("llama").join("model"), &m);
+    m
+}
+
+/// [`model_case`] plus a copy of the llama `qv` adapter as `adapter/`.
+fn adapter_case(dir: &Path) -> PathBuf {
+    model_case(dir);
+    let a = dir.join("adapter");
+    copy_dir(&runner("llama").join("adapters/qv"), &a);
+    a
+}
+
+fn edit_json(path: &Path, f: impl FnOnce(&mut Value)) {
+    let mut v: Value = serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap();
+    f(&mut v);
+    std::fs::write(path, serde_json::to_string_pretty(&v).unwrap()).unwrap();
+}
+
+/// The header of a safetensors file: (header length, header JSON).
+fn st_header(bytes: &[u8]) -> (usize, Value) {
+    let n = u64::from_le_bytes(bytes[..8].try_into().unwrap()) as usize;
+    (n, serde_json::from_slice(&bytes[8..8 + n]).unwrap())
+}
+
+/// Overwrites element `index` of the F32 tensor `name` in a safetensors file.
+fn poke_f32(path: &Path, name: &str, index: usize, value: f32) {
+    let mut bytes = std::fs::read(path).unwrap();
+    let (n, header) = st_header(&bytes);
+    assert_eq!(header[name]["dtype"], "F32", "{name}");
+    let start = header[name]["data_offsets"][0].as_u64().unwrap() as usize;
+    let at = 8 + n + start + 4 * index;
+    bytes[at..at + 4].copy_from_slice(&value.to_le_bytes());
+    std::fs::write(path, bytes).unwrap();
+}
+
+/// Writes a safetensors file of F32 tensors filled with 0.01.
+fn write_safetensors(path: &Path, tensors: &[(&str, &[usize])]) {
+    let mut header = serde_json::Map::new();
+    let mut data = Vec::new();
+    for (name, shape) in tensors {
+        let count: usize = shape.iter().product();
+        let start = data.len();
+        for _ in 0..count {
+            data.extend_from_slice(&0.01f32.to_le_bytes());
+        }
+        header.insert(
+            name.to_string(),
+            json!({"dtype": "F32", "shape": shape, "data_offsets": [start, data.len()]}),
+        );
+    }
+    let mut h = serde_json::to_vec(&Value::Object(header)).unwrap();
+    while h.len() % 8 != 0 {
+        h.push(b' ');
+    }
+    let mut out = (h.len() as u64).to_le_bytes().to_vec();
+    out.extend_from_slice(&h);
+    out.extend_from_slice(&data);
+    std::fs::write(path, out).unwrap();
+}
+
+const TEMPLATE_RUNAWAY_SECS: f64 = 5.0;
+
+fn template_case(dir: &Path, template: &str, needles_: &[&str]) -> Setup {
+    let m = model_case(dir);
+    std::fs::write(m.join("chat_template.jinja"), template).unwrap();
+    let mut all = vec!["chat_template.jinja"];
+    all.extend_from_slice(needles_);
+    answer(dir, false, &all)
+}
+
+fn policy_case(dir: &Path, policy: &str, needles_: &[&str]) -> Setup {
+    write_set(dir);
+    write(dir, "answers.jsonl", &answers_for(&IDS));
+    write(dir, "policy.toml", policy);
+    let mut all = vec!["policy.toml"];
+    all.extend_from_slice(needles_);
+    grade(dir, &["--policy", "policy.toml"], &all)
+}
+
+fn cases() -> Vec<Case> {
+    vec![
+        // ---- question sets ----
+        Case {
+            name: "set: malformed JSON line",
+            setup: |d| {
+                write(
+                    d,
+                    "set.jsonl",
+                    &SET.replacen(r#""q2", "question""#, r#""q2" "question""#, 1),
+                );
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(d, &[], &["set.jsonl:2:", "not valid JSON"])
+            },
+        },
+        Case {
+            name: "set: duplicate id",
+            setup: |d| {
+                write(
+                    d,
+                    "set.jsonl",
+                    &SET.replace(r#""id": "q3""#, r#""id": "q1""#),
+                );
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(d, &[], &["set.jsonl:3: field `id`", "duplicate id \"q1\""])
+            },
+        },
+        Case {
+            name: "set: missing question field",
+            setup: |d| {
+                write(
+                    d,
+                    "set.jsonl",
+                    &SET.replace(r#""question": "Can I bring my dog on the ferry?", "#, ""),
+                );
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(d, &[], &["set.jsonl:2: field `question`", "missing"])
+            },
+        },
+        Case {
+            name: "set: missing references for an answer question",
+            setup: |d| {
+                write(
+                    d,
+                    "set.jsonl",
+                    &SET.replace(r#""references": ["At 06:50."], "#, ""),
+                );
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(d, &[], &["set.jsonl:1: field `references`"])
+            },
+        },
+        Case {
+            name: "set: wrongly typed id",
+            setup: |d| {
+                write(d, "set.jsonl", &SET.replace(r#""id": "q2""#, r#""id": 2"#));
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(
+                    d,
+                    &[],
+                    &[
+                        "set.jsonl:2: field `id`",
+                        "expected a string, found a number",
+                    ],
+                )
+            },
+        },
+        Case {
+            name: "set: references not an array",
+            setup: |d| {
+                write(
+                    d,
+                    "set.jsonl",
+                    &SET.replace(r#"["At 06:50."]"#, r#""At 06:50.""#),
+                );
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(
+                    d,
+                    &[],
+                    &[
+                        "set.jsonl:1: field `references`",
+                        "expected an array of strings",
+                    ],
+                )
+            },
+        },
+        Case {
+            name: "set: unknown expect value",
+            setup: |d| {
+                write(
+                    d,
+                    "set.jsonl",
+                    &SET.replace(r#""expect": "refuse""#, r#""expect": "decline""#),
+                );
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(d, &[], &["set.jsonl:3: field `expect`", "\"decline\""])
+            },
+        },
+        Case {
+            name: "set: a line that is not an object",
+            setup: |d| {
+                write(
+                    d,
+                    "set.jsonl",
+                    &format!("{SET}[\"q4\", \"Where do I park?\"]\n"),
+                );
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(d, &[], &["set.jsonl:4:", "expected a JSON object"])
+            },
+        },
+        Case {
+            name: "set: empty file",
+            setup: |d| {
+                write(d, "set.jsonl", "");
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(d, &[], &["set.jsonl", "empty"])
+            },
+        },
+        Case {
+            name: "set: only blank lines (answer)",
+            setup: |d| {
+                model_case(d);
+                write(d, "set.jsonl", "\n  \n\t\n");
+                answer(d, false, &["set.jsonl", "empty"])
+            },
+        },
+        Case {
+            name: "set: non-UTF-8 bytes",
+            setup: |d| {
+                let mut bytes = SET.as_bytes().to_vec();
+                let at = SET.find("dog").unwrap();
+                bytes[at] = 0xff;
+                std::fs::write(d.join("set.jsonl"), bytes).unwrap();
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(d, &[], &["set.jsonl:2:", "UTF-8"])
+            },
+        },
+        Case {
+            name: "set: a 50 MB single line (weigh)",
+            setup: |d| {
+                let mut f =
+                    std::io::BufWriter::new(std::fs::File::create(d.join("set.jsonl")).unwrap());
+                f.write_all(br#"{"id": "q1", "question": ""#).unwrap();
+                let chunk = vec![b'a'; 1 << 20];
+                for _ in 0..50 {
+                    f.write_all(&chunk).unwrap();
+                }
+                f.write_all(b"\", \"references\": [\"x\"]}\n").unwrap();
+                f.flush().unwrap();
+                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+                weigh(d, &[], &["set.jsonl:1:", "longer than"])
+            },
+        },
+        Case {
+            name: "set: JSON nested 100,000 levels deep",
+            setup: |d| {
+                let deep = format!("{}{}", "[".repeat(100_000), "]".repeat(100_000));
+                let line = format!(
+                    r#"{{"id": "q0", "question": "Deep?", "references": ["x"], "note": {deep}}}"#
+                );
+                write(d, "set.jsonl", &format!("{SET}{line}\n"));
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                grade(d, &[], &["set.jsonl:4:", "recursion limit"])
+            },
+        },
+        Case {
+            name: "set: malformed line stops answer before the model loads",
+            setup: |d| {
+                model_case(d);
+                write(d, "set.jsonl", &SET.replacen("}", "", 1));
+                answer(d, false, &["set.jsonl:1:", "not valid JSON"])
+            },
+        },
+        // ---- answers that do not match the set ----
+        Case {
+            name: "answers: missing id",
+            setup: |d| {
+                write_set(d);
+                write(d, "answers.jsonl", &answers_for(&["q1", "q2"]));
+                grade(
+                    d,
+                    &[],
+                    &["answers.jsonl", "has 2 rows", "first missing id \"q3\""],
+                )
+            },
+        },
+        Case {
+            name: "answers: extra id",
+            setup: |d| {
+                write_set(d);
+                write(d, "answers.jsonl", &answers_for(&["q1", "q2", "q3", "q4"]));
+                grade(d, &[], &["answers.jsonl:4: field `id`", "extra row \"q4\""])
+            },
+        },
+        Case {
+            name: "answers: reordered ids",
+            setup: |d| {
+                write_set(d);
+                write(d, "answers.jsonl", &answers_for(&["q2", "q1", "q3"]));
+                grade(
+                    d,
+                    &[],
+                    &[
+                        "answers.jsonl:1: field `id`",
+                        "expected \"q1\"",
+                        "found \"q2\"",
+                    ],
+                )
+            },
+        },
+        Case {
+            name: "answers: made from a different set (fingerprint)",
+            setup: |d| {
+                write_set(d);
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                write(
+                    d,
+                    "answers.jsonl.run.json",
+                    &json!({"tool": "liftgate", "questions": {"path": "old.jsonl", "fingerprint": "0".repeat(64), "count": 3}}).to_string(),
+                );
+                grade(
+                    d,
+                    &[],
+                    &[
+                        "answers.jsonl.run.json: field `questions.fingerprint`",
+                        "different question set",
+                    ],
+                )
+            },
+        },
+        Case {
+            name: "answers: wrongly typed field",
+            setup: |d| {
+                write_set(d);
+                let rows =
+                    answers_for(&IDS).replacen("\"finish\":\"eos\"", "\"finish\":\"tired\"", 2);
+                let rows = rows.replacen("\"finish\":\"tired\"", "\"finish\":\"eos\"", 1);
+                write(d, "answers.jsonl", &rows);
+                grade(d, &[], &["answers.jsonl:2: field `finish`", "tired"])
+            },
+        },
+        Case {
+            name: "answers: missing field",
+            setup: |d| {
+                write_set(d);
+                let rows = answers_for(&IDS).replacen(
+                    "\"answer\":\"At 06:50, dogs travel free.\",",
+                    "",
+                    1,
+                );
+                write(d, "answers.jsonl", &rows);
+                grade(d, &[], &["answers.jsonl:1: field `answer`", "missing"])
+            },
+        },
+        Case {
+            name: "answers: unknown field",
+            setup: |d| {
+                write_set(d);
+                let rows = answers_for(&IDS).replacen("\"ms\":3", "\"ms\":3,\"score\":1", 3);
+                write(d, "answers.jsonl", &rows);
+                grade(d, &[], &["answers.jsonl:1: field `score`", "unknown field"])
+            },
+        },
+        Case {
+            name: "answers: grade output would overwrite the answers",
+            setup: |d| {
+                write_set(d);
+                let rows = answers_for(&IDS);
+                write(d, "answers.jsonl", &rows);
+                let mut setup = grade(d, &[], &["--out ./answers.jsonl", "--answers"]);
+                let last = setup.args.len() - 1;
+                setup.args[last] = s("./answers.jsonl");
+                // The input must survive unchanged; only the grades sidecar must not appear.
+                setup.outputs = vec![d.join("answers.jsonl.run.json"), d.join("grades.jsonl")];
+                setup
+            },
+        },
+        // ---- grades that do not match the set ----
+        Case {
+            name: "grades: missing id",
+            setup: |d| {
+                write_set(d);
+                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+                write(d, "candidate.grades.jsonl", &grades_for(&["q1", "q3"]));
+                weigh(
+                    d,
+                    &[],
+                    &["candidate.grades.jsonl:2: field `id`", "expected \"q2\""],
+                )
+            },
+        },
+        Case {
+            name: "grades: extra id",
+            setup: |d| {
+                write_set(d);
+                write(
+                    d,
+                    "baseline.grades.jsonl",
+                    &grades_for(&["q1", "q2", "q3", "q3"]),
+                );
+                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+                weigh(
+                    d,
+                    &[],
+                    &["baseline.grades.jsonl:4: field `id`", "extra row"],
+                )
+            },
+        },
+        Case {
+            name: "grades: reordered ids",
+            setup: |d| {
+                write_set(d);
+                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+                write(
+                    d,
+                    "candidate.grades.jsonl",
+                    &grades_for(&["q1", "q3", "q2"]),
+                );
+                weigh(d, &[], &["candidate.grades.jsonl:2: field `id`"])
+            },
+        },
+        Case {
+            name: "grades: made from a different set (fingerprint)",
+            setup: |d| {
+                write_set(d);
+                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+                write(
+                    d,
+                    "baseline.grades.jsonl.run.json",
+                    &json!({"tool": "liftgate", "questions": {"path": "set.jsonl", "fingerprint": "ab".repeat(32), "count": 3}}).to_string(),
+                );
+                weigh(
+                    d,
+                    &[],
+                    &[
+                        "baseline.grades.jsonl.run.json: field `questions.fingerprint`",
+                        "different question set",
+                    ],
+                )
+            },
+        },
+        Case {
+            name: "grades: score out of range",
+            setup: |d| {
+                write_set(d);
+                write(
+                    d,
+                    "baseline.grades.jsonl",
+                    &grades_for(&IDS).replacen("\"token_f1\":1.0", "\"token_f1\":1.5", 1),
+                );
+                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+                weigh(
+                    d,
+                    &[],
+                    &["baseline.grades.jsonl:1: field `token_f1`", "1.5"],
+                )
+            },
+        },
+        Case {
+            name: "grades: expect contradicts the set",
+            setup: |d| {
+                write_set(d);
+                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+                let rows =
+                    grades_for(&IDS).replacen("\"expect\":\"refuse\"", "\"expect\":\"answer\"", 1);
+                write(d, "candidate.grades.jsonl", &rows);
+                weigh(d, &[], &["candidate.grades.jsonl:3: field `expect`"])
+            },
+        },
+        Case {
+            name: "grades: wrongly typed field",
+            setup: |d| {
+                write_set(d);
+                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+                let rows = grades_for(&IDS).replacen("\"refused\":false", "\"refused\":\"no\"", 2);
+                let rows = rows.replacen("\"refused\":\"no\"", "\"refused\":false", 1);
+                write(d, "candidate.grades.jsonl", &rows);
+                weigh(
+                    d,
+                    &[],
+                    &[
+                        "candidate.grades.jsonl:2: field `refused`",
+                        "expected a boolean",
+                    ],
+                )
+            },
+        },
+        Case {
+            name: "report directory: a directory in the way of report.md",
+            setup: |d| {
+                write_set(d);
+                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+                std::fs::create_dir_all(d.join("report/report.md")).unwrap();
+                let mut setup = weigh(d, &[], &["report/report.md", "is a directory"]);
+                setup.outputs = vec![d.join("report/summary.json")];
+                setup
+            },
+        },
+        // ---- model directories ----
+        Case {
+            name: "model: missing config.json",
+            setup: |d| {
+                let m = model_case(d);
+                std::fs::remove_file(m.join("config.json")).unwrap();
+                answer(d, false, &["config.json"])
+            },
+        },
+        Case {
+            name: "model: config.json not valid JSON",
+            setup: |d| {
+                let m = model_case(d);
+                let text = std::fs::read_to_string(m.join("config.json")).unwrap();
+                std::fs::write(
+                    m.join("config.json"),
+                    text.replacen("\"hidden_act\": \"silu\",", "\"hidden_act\": silu,", 1),
+                )
+                .unwrap();
+                answer(d, false, &["model/config.json:11:", "not valid JSON"])
+            },
+        },
+        Case {
+            name: "model: config.json field of the wrong type",
+            setup: |d| {
+                let m = model_case(d);
+                edit_json(&m.join("config.json"), |c| {
+                    c["num_hidden_layers"] = json!("two")
+                });
+                answer(d, false, &["config.json", "num_hidden_layers"])
+            },
+        },
+        Case {
+            name: "model: negative rms_norm_eps",
+            setup: |d| {
+                let m = model_case(d);
+                edit_json(&m.join("config.json"), |c| c["rms_norm_eps"] = json!(-1.0));
+                answer(d, false, &["model/config.json: field `rms_norm_eps`", "-1"])
+            },
+        },
+        Case {
+            name: "model: rope_theta zero",
+            setup: |d| {
+                let m = model_case(d);
+                edit_json(&m.join("config.json"), |c| {
+                    c["rope_parameters"]["rope_theta"] = json!(0.0)
+                });
+                answer(d, false, &["model/config.json: field `rope_theta`"])
+            },
+        },
+        Case {
+            name: "model: missing tokenizer.json",
+            setup: |d| {
+                let m = model_case(d);
+                std::fs::remove_file(m.join("tokenizer.json")).unwrap();
+                answer(d, false, &["tokenizer.json"])
+            },
+        },
+        Case {
+            name: "model: missing weights",
+            setup: |d| {
+                let m = model_case(d);
+                std::fs::remove_file(m.join("model.safetensors")).unwrap();
+                answer(d, false, &["model", "no model.safetensors"])
+            },
+        },
+        Case {
+            name: "model: unsupported architecture",
+            setup: |d| {
+                let m = model_case(d);
+                edit_json(&m.join("config.json"), |c| {
+                    c["model_type"] = json!("mamba");
+                    c["architectures"] = json!(["MambaForCausalLM"]);
+                });
+                answer(d, false, &["config.json", "mamba", "LlamaForCausalLM"])
+            },
+        },
+        Case {
+            name: "model: shapes contradict config.json",
+            setup: |d| {
+                let m = model_case(d);
+                edit_json(&m.join("config.json"), |c| {
+                    c["num_key_value_heads"] = json!(4)
+                });
+                answer(
+                    d,
+                    false,
+                    &[
+                        "model.safetensors",
+                        "k_proj.weight`",
+                        "[32, 64]",
+                        "[64, 64]",
+                    ],
+                )
+            },
+        },
+        Case {
+            name: "model: sharded index naming a shard outside the directory",
+            setup: |d| {
+                let m = model_case(d);
+                std::fs::rename(m.join("model.safetensors"), d.join("outside.safetensors"))
+                    .unwrap();
+                write(
+                    &m,
+                    "model.safetensors.index.json",
+                    &json!({"weight_map": {"model.embed_tokens.weight": "../outside.safetensors"}})
+                        .to_string(),
+                );
+                answer(
+                    d,
+                    false,
+                    &[
+                        "model.safetensors.index.json",
+                        "weight_map.model.embed_tokens.weight",
+                    ],
+                )
+            },
+        },
+        Case {
+            name: "model: truncated safetensors",
+            setup: |d| {
+                let m = model_case(d);
+                let p = m.join("model.safetensors");
+                let bytes = std::fs::read(&p).unwrap();
+                std::fs::write(&p, &bytes[..bytes.len() * 3 / 5]).unwrap();
+                answer(d, false, &["model.safetensors", "safetensors"])
+            },
+        },
+        Case {
+            name: "model: safetensors header cut inside",
+            setup: |d| {
+                let m = model_case(d);
+                let p = m.join("model.safetensors");
+                let bytes = std::fs::read(&p).unwrap();
+                std::fs::write(&p, &bytes[..100]).unwrap();
+                answer(d, false, &["model.safetensors", "safetensors"])
+            },
+        },
+        Case {
+            name: "model: oversized safetensors header",
+            setup: |d| {
+                let m = model_case(d);
+                let p = m.join("model.safetensors");
+                let mut bytes = std::fs::read(&p).unwrap();
+                bytes[..8].copy_from_slice(&(1u64 << 40).to_le_bytes());
+                std::fs::write(&p, bytes).unwrap();
+                answer(d, false, &["model.safetensors", "safetensors"])
+            },
+        },
+        Case {
+            name: "model: NaN weight",
+            setup: |d| {
+                let m = model_case(d);
+                poke_f32(
+                    &m.join("model.safetensors"),
+                    "model.layers.1.self_attn.q_proj.weight",
+                    70,
+                    f32::NAN,
+                );
+                answer(
+                    d,
+                    false,
+                    &[
+                        "model.safetensors: field `model.layers.1.self_attn.q_proj.weight`",
+                        "NaN at element [1, 6]",
+                    ],
+                )
+            },
+        },
+        Case {
+            name: "model: Inf weight",
+            setup: |d| {
+                let m = model_case(d);
+                poke_f32(
+                    &m.join("model.safetensors"),
+                    "model.norm.weight",
+                    3,
+                    f32::NEG_INFINITY,
+                );
+                answer(
+                    d,
+                    false,
+                    &[
+                        "model.safetensors: field `model.norm.weight`",
+                        "-Inf at element [3]",
+                    ],
+                )
+            },
+        },
+        Case {
+            name: "model: pickle-only checkpoint is refused",
+            setup: |d| {
+                let m = model_case(d);
+                std::fs::remove_file(m.join("model.safetensors")).unwrap();
+                // Not a real pickle: it must be refused by name, never opened.
+                write(&m, "pytorch_model.bin", "\u{80}\u{2}cos\nsystem\n");
+                answer(d, false, &["pytorch_model.bin", "pickle", "safetensors"])
+            },
+        },
+        // ---- adapters ----
+        Case {
+            name: "adapter: made for another base (shapes)",
+            setup: |d| {
+                let a = adapter_case(d);
+                write_safetensors(
+                    &a.join("adapter_model.safetensors"),
+                    &[
+                        (
+                            "base_model.model.model.layers.0.self_attn.q_proj.lora_A.weight",
+                            &[4, 96],
+                        ),
+                        (
+                            "base_model.model.model.layers.0.self_attn.q_proj.lora_B.weight",
+                            &[96, 4],
+                        ),
+                    ],
+                );
+                answer(d, true, &["adapter_model.safetensors", "q_proj"])
+            },
+        },
+        Case {
+            name: "adapter: made for another architecture (fused modules)",
+            setup: |d| {
+                adapter_case(d);
+                let a = d.join("adapter");
+                std::fs::remove_dir_all(&a).unwrap();
+                copy_dir(&runner("phi3").join("adapters/qv"), &a);
+                answer(d, true, &["adapter", "qkv_proj"])
+            },
+        },
+        Case {
+            name: "adapter: unknown target module",
+            setup: |d| {
+                let a = adapter_case(d);
+                edit_json(&a.join("adapter_config.json"), |c| {
+                    c["target_modules"] = json!(["q_proj", "v_proj", "wq_attn"])
+                });
+                answer(
+                    d,
+                    true,
+                    &["adapter_config.json: field `target_modules`", "wq_attn"],
+                )
+            },
+        },
+        Case {
+            name: "adapter: unknown peft type",
+            setup: |d| {
+                let a = adapter_case(d);
+                edit_json(&a.join("adapter_config.json"), |c| {
+                    c["peft_type"] = json!("LOHA")
+                });
+                answer(d, true, &["adapter_config.json: field `peft_type`", "LOHA"])
+            },
+        },
+        Case {
+            name: "adapter: unsupported option (layer replication)",
+            setup: |d| {
+                let a = adapter_case(d);
+                edit_json(&a.join("adapter_config.json"), |c| {
+                    c["layer_replication"] = json!([[0, 2], [1, 2]])
+                });
+                answer(d, true, &["adapter_config.json: field `layer_replication`"])
+            },
+        },
+        Case {
+            name: "adapter: DoRA flag without magnitude vectors",
+            setup: |d| {
+                let a = adapter_case(d);
+                edit_json(&a.join("adapter_config.json"), |c| {
+                    c["use_dora"] = json!(true)
+                });
+                answer(d, true, &["adapter_model.safetensors", "use_dora"])
+            },
+        },
+        Case {
+            name: "adapter: rank contradicts its tensors",
+            setup: |d| {
+                let a = adapter_case(d);
+                edit_json(&a.join("adapter_config.json"), |c| c["r"] = json!(8));
+                answer(d, true, &["adapter", "lora_A"])
+            },
+        },
+        Case {
+            name: "adapter: NaN in lora_B is caught after the merge",
+            setup: |d| {
+                let a = adapter_case(d);
+                poke_f32(
+                    &a.join("adapter_model.safetensors"),
+                    "base_model.model.model.layers.0.self_attn.v_proj.lora_B.weight",
+                    5,
+                    f32::NAN,
+                );
+                answer(
+                    d,
+                    true,
+                    &[
+                        "adapter_model.safetensors: field `model.layers.0.self_attn.v_proj.weight`",
+                        "NaN",
+                        "after merging",
+                    ],
+                )
+            },
+        },
+        Case {
+            name: "adapter: pickle-only adapter is refused",
+            setup: |d| {
+                let a = adapter_case(d);
+                std::fs::remove_file(a.join("adapter_model.safetensors")).unwrap();
+                write(&a, "adapter_model.bin", "\u{80}\u{2}cos\nsystem\n");
+                answer(d, true, &["adapter_model.bin", "pickle"])
+            },
+        },
+        Case {
+            name: "adapter: bad adapter found by vet removes the report directory it made",
+            setup: |d| {
+                let a = adapter_case(d);
+                edit_json(&a.join("adapter_config.json"), |c| {
+                    c["peft_type"] = json!("LOHA")
+                });
+                Setup {
+                    args: [
+                        "vet",
+                        "--model",
+                        "model",
+                        "--adapter",
+                        "adapter",
+                        "--questions",
+                        "set.jsonl",
+                        "--report",
+                        "rep",
+                        "--max-new-tokens",
+                        "4",
+                    ]
+                    .map(s)
+                    .to_vec(),
+                    outputs: vec![d.join("rep")],
+                    needles: needles(&["adapter/adapter_config.json: field `peft_type`"]),
+                }
+            },
+        },
+        // ---- chat templates (untrusted code) ----
+        Case {
+            name: "template: syntax error",
+            setup: |d| template_case(d, "{% for m in messages %}{{ m.content }\n", &["syntax"]),
+        },
+        Case {
+            name: "template: syntax error in tokenizer_config.json",
+            setup: |d| {
+                let m = model_case(d);
+                edit_json(&m.join("tokenizer_config.json"), |c| {
+                    c["chat_template"] = json!("{% if messages %}{{ messages[0].content }}")
+                });
+                answer(d, false, &["tokenizer_config.json", "chat_template"])
+            },
+        },
+        Case {
+            name: "template: raise_exception",
+            setup: |d| {
+                template_case(
+                    d,
+                    "{{ raise_exception('This model only answers in the harbour office') }}",
+                    &["This model only answers in the harbour office"],
+                )
+            },
+        },
+        Case {
+            name: "template: endless nested loop",
+            setup: |d| {
+                template_case(
+                    d,
+                    "{% for i in range(99999) %}{% for j in range(99999) %}{% for k in range(99999) %}{% endfor %}{% endfor %}{% endfor %}",
+                    &["ran too long"],
+                )
+            },
+        },
+        Case {
+            name: "template: range beyond the sandbox cap",
+            setup: |d| {
+                template_case(
+                    d,
+                    "{% for i in range(999999999) %}x{% endfor %}",
+                    &["range"],
+                )
+            },
+        },
+        Case {
+            name: "template: deep recursion",
+            setup: |d| {
+                template_case(
+                    d,
+                    "{% macro down(n) %}{{ down(n + 1) }}{% endmacro %}{{ down(0) }}",
+                    &["recursion"],
+                )
+            },
+        },
+        Case {
+            name: "template: memory bomb by doubling a string",
+            setup: |d| {
+                template_case(
+                    d,
+                    "{% set ns = namespace(s='ferry') %}{% for i in range(60) %}{% set ns.s = ns.s ~ ns.s %}{% endfor %}{{ ns.s|length }}",
+                    &["ran too long"],
+                )
+            },
+        },
+        Case {
+            name: "template: reading a file is impossible",
+            setup: |d| {
+                template_case(
+                    d,
+                    "{% include '/etc/hostname' %}{% for m in messages %}{{ m.content }}{% endfor %}",
+                    &["template"],
+                )
+            },
+        },
+        // ---- policy files ----
+        Case {
+            name: "policy: unknown key",
+            setup: |d| {
+                policy_case(
+                    d,
+                    "min_questions = 3\n[lift]\nmin_ci_lo = 0.0\n",
+                    &["policy.toml:3: field `lift.min_ci_lo`", "unknown field"],
+                )
+            },
+        },
+        Case {
+            name: "policy: out-of-range value",
+            setup: |d| {
+                policy_case(
+                    d,
+                    "[refusal]\nmin_out_of_scope = 0.5\nmax_false_refusal = 1.5\n",
+                    &["policy.toml:3: field `refusal.max_false_refusal`", "1.5"],
+                )
+            },
+        },
+        Case {
+            name: "policy: wrongly typed value",
+            setup: |d| {
+                policy_case(
+                    d,
+                    "min_questions = \"ten\"\n",
+                    &["policy.toml:1: field `min_questions`", "\"ten\""],
+                )
+            },
+        },
+        Case {
+            name: "policy: unknown metric name",
+            setup: |d| {
+                policy_case(
+                    d,
+                    "[lift]\nmetric = \"bleu\"\n",
+                    &["policy.toml:2: field `lift.metric`", "bleu"],
+                )
+            },
+        },
+        Case {
+            name: "policy: non-UTF-8 bytes",
+            setup: |d| {
+                write_set(d);
+                write(d, "answers.jsonl", &answers_for(&IDS));
+                std::fs::write(
+                    d.join("policy.toml"),
+                    b"[refusal]\nextra_phrases = [\"n\xe3o posso\"]\n",
+                )
+                .unwrap();
+                grade(
+                    d,
+                    &["--policy", "policy.toml"],
+                    &["policy.toml:2:", "UTF-8"],
+                )
+            },
+        },
+        Case {
+            name: "policy: unknown key refused by weigh too",
+            setup: |d| {
+                write_set(d);
+                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+                write(
+                    d,
+                    "policy.toml",
+                    "[categories]\nrule = \"clear-regression\"\nmax_regresion = 0.1\n",
+                );
+                weigh(
+                    d,
+                    &["--policy", "policy.toml"],
+                    &["policy.toml:3: field `categories.max_regresion`"],
+                )
+            },
+        },
+    ]
+}
+
+/// Temporary files the atomic writers leave only when something went wrong.
+fn leftovers(dir: &Path) -> Vec<PathBuf> {
+    let mut out = Vec::new();
+    let mut stack = vec![dir.to_path_buf()];
+    while let Some(d) = stack.pop() {
+        for e in std::fs::read_dir(&d).unwrap().flatten() {
+            let p = e.path();
+            if p.is_dir() {
+                stack.push(p);
+            } else if e.file_name().to_string_lossy().starts_with(".liftgate-") {
+                out.push(p);
+            }
+        }
+    }
+    out
+}
+
+/// Runs one case; returns a description of every broken promise.
+fn check(case: &Case) -> Vec<String> {
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path();
+    let setup = (case.setup)(dir);
+    let start = Instant::now();
+    let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
+        .current_dir(dir)
+        .args(&setup.args)
+        .output()
+        .unwrap();
+    let elapsed = start.elapsed();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    // Shown with `--nocapture`, to read every message.
+    println!("[{}] {:.1?}\n{}", case.name, elapsed, stderr.trim_end());
+    let mut problems = Vec::new();
+    if out.status.code() != Some(2) {
+        problems.push(format!("exit {:?}, expected 2", out.status.code()));
+    }
+    if stderr.contains("panicked") {
+        problems.push("panicked".into());
+    }
+    if !stderr.starts_with("liftgate: ") {
+        problems.push("stderr does not start with \"liftgate: \"".into());
+    }
+    for n in &setup.needles {
+        if !stderr.contains(n.as_str()) {
+            problems.push(format!("stderr lacks {n:?}"));
+        }
+    }
+    for o in &setup.outputs {
+        if o.exists() {
+            problems.push(format!("output {} exists", o.display()));
+        }
+    }
+    for l in leftovers(dir) {
+        problems.push(format!("temporary file {} left behind", l.display()));
+    }
+    // Runaway templates must stop on their own budget; a generous bound, not a benchmark.
+    if case.name.starts_with("template:")
+        && elapsed > Duration::from_secs_f64(TEMPLATE_RUNAWAY_SECS)
+    {
+        problems.push(format!("took {elapsed:?}"));
+    }
+    if !problems.is_empty() {
+        problems.push(format!("stderr was: {stderr}"));
+    }
+    problems
+}
+
+#[test]
+fn every_bad_input_exits_2_naming_the_file_and_writes_nothing() {
+    let cases = cases();
+    let mut names: Vec<&str> = cases.iter().map(|c| c.name).collect();
+    names.sort();
+    names.dedup();
+    assert_eq!(names.len(), cases.len(), "case names must be distinct");
+    assert!(cases.len() >= 30, "{} cases", cases.len());
+    let mut failures = Vec::new();
+    for case in &cases {
+        let problems = check(case);
+        if !problems.is_empty() {
+            failures.push(format!("[{}]\n  {}", case.name, problems.join("\n  ")));
+        }
+    }
+    assert!(
+        failures.is_empty(),
+        "{} of {} cases failed:\n{}",
+        failures.len(),
+        cases.len(),
+        failures.join("\n")
+    );
+}
+
+/// Where a command's output already exists, a failing run leaves it untouched (never a
+/// half-written replacement).
+#[test]
+fn failing_run_keeps_the_previous_output_whole() {
+    let tmp = tempfile::tempdir().unwrap();
+    let d = tmp.path();
+    write_set(d);
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    let before = "previous grades, kept byte for byte\n";
+    write(d, "grades.jsonl", before);
+    write(d, "policy.toml", "[lift]\nmin_ci_low = 7\n");
+    let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
+        .current_dir(d)
+        .args([
+            "grade",
+            "--questions",
+            "set.jsonl",
+            "--answers",
+            "answers.jsonl",
+            "--out",
+            "grades.jsonl",
+            "--policy",
+            "policy.toml",
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert_eq!(
+        std::fs::read_to_string(d.join("grades.jsonl")).unwrap(),
+        before
+    );
+    assert!(leftovers(d).is_empty());
+}
+
+/// `vet --report DIR` into a directory the user already has: a failure removes what vet wrote
+/// and nothing else.
+#[test]
+fn failing_vet_keeps_the_users_files_in_an_existing_report_directory() {
+    let tmp = tempfile::tempdir().unwrap();
+    let d = tmp.path();
+    let a = adapter_case(d);
+    edit_json(&a.join("adapter_config.json"), |c| {
+        c["peft_type"] = json!("LOHA")
+    });
+    write(d, "notes.txt", "ferry rota, keep");
+    let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
+        .current_dir(d)
+        .args([
+            "vet",
+            "--model",
+            "model",
+            "--adapter",
+            "adapter",
+            "--questions",
+            "set.jsonl",
+            "--report",
+            ".",
+            "--max-new-tokens",
+            "4",
+        ])
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    assert_eq!(
+        std::fs::read_to_string(d.join("notes.txt")).unwrap(),
+        "ferry rota, keep"
+    );
+    assert!(d.join("set.jsonl").is_file() && a.join("adapter_model.safetensors").is_file());
+    for f in [
+        "baseline.answers.jsonl",
+        "baseline.answers.jsonl.run.json",
+        "baseline.grades.jsonl",
+    ] {
+        assert!(!d.join(f).exists(), "{f} left behind");
+    }
+    assert!(leftovers(d).is_empty());
+}
+
+/// After a reference is corrected, `grade --allow-set-change` grades answers made from the
+/// earlier version of the set, with a warning; without the flag they are refused (above).
+#[test]
+fn allow_set_change_grades_answers_from_an_edited_set() {
+    let tmp = tempfile::tempdir().unwrap();
+    let d = tmp.path();
+    write_set(d);
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    write(
+        d,
+        "answers.jsonl.run.json",
+        &json!({"questions": {"path": "set.jsonl", "fingerprint": "0".repeat(64), "count": 3}})
+            .to_string(),
+    );
+    let setup = grade(d, &["--allow-set-change"], &[]);
+    let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
+        .current_dir(d)
+        .args(&setup.args)
+        .output()
+        .unwrap();
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(0), "{stderr}");
+    assert!(
+        stderr.contains("warning") && stderr.contains("different question set"),
+        "{stderr}"
+    );
+    assert_eq!(
+        std::fs::read_to_string(d.join("grades.jsonl"))
+            .unwrap()
+            .lines()
+            .count(),
+        3
+    );
+}

@@ -1,0 +1,176 @@
+//! Determinism: the same inputs and seed give byte-identical grades, summary.json and report.md
+//! across runs of the real binary. Wall-clock timings live only in the answers file's `ms`
+//! field and in nothing `grade` or `weigh` writes; the answers themselves (greedy decoding)
+//! are identical apart from `ms`. (`weigh` alone: tests/weigh_cli.rs,
+//! `same_inputs_and_seed_give_identical_reports`.)
+
+use serde_json::Value;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+fn fixture() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/runner/llama")
+}
+
+const SET: &str = r#"{"id": "q1", "question": "When does the first boat leave Gull Point?", "references": ["At 06:50."], "category": "timetables"}
+{"id": "q2", "question": "Can I bring my dog on the ferry?", "references": ["Yes, dogs travel free on a lead."], "category": "pets"}
+{"id": "q3", "question": "Is there a café on board?", "references": ["Yes, on the upper deck."], "category": "on-board"}
+{"id": "q4", "question": "What will the weather be on Saturday?", "references": [], "category": "out-of-scope", "expect": "refuse"}
+"#;
+
+const POLICY: &str = "min_questions = 1\n[categories]\nmin_questions = 2\n";
+
+fn liftgate(dir: &Path, args: &[&str]) -> Output {
+    let o = Command::new(env!("CARGO_BIN_EXE_liftgate"))
+        .current_dir(dir)
+        .args(args)
+        .output()
+        .unwrap();
+    assert!(
+        matches!(o.status.code(), Some(0 | 1)),
+        "{args:?}: {}",
+        String::from_utf8_lossy(&o.stderr)
+    );
+    o
+}
+
+/// `vet` on the llama fixture and its `qv` adapter in a fresh directory, with relative paths
+/// so that the recorded input paths are the same in every run.
+fn vet_run() -> (tempfile::TempDir, Output) {
+    let tmp = tempfile::tempdir().unwrap();
+    std::fs::write(tmp.path().join("set.jsonl"), SET).unwrap();
+    std::fs::write(tmp.path().join("policy.toml"), POLICY).unwrap();
+    let f = fixture();
+    let model = f.join("model");
+    let adapter = f.join("adapters/qv");
+    let out = liftgate(
+        tmp.path(),
+        &[
+            "vet",
+            "--model",
+            model.to_str().unwrap(),
+            "--adapter",
+            adapter.to_str().unwrap(),
+            "--questions",
+            "set.jsonl",
+            "--policy",
+            "policy.toml",
+            "--report",
+            "rep",
+            "--max-new-tokens",
+            "8",
+            "--resamples",
+            "2000",
+            "--seed",
+            "5",
+        ],
+    );
+    (tmp, out)
+}
+
+/// Answers rows without the wall-clock `ms` field.
+fn answers_without_timings(path: &Path) -> Vec<Value> {
+    std::fs::read_to_string(path)
+        .unwrap()
+        .lines()
+        .map(|l| {
+            let mut v: Value = serde_json::from_str(l).unwrap();
+            v.as_object_mut().unwrap().remove("ms").expect("ms field");
+            v
+        })
+        .collect()
+}
+
+/// Object keys anywhere in a JSON tree.
+fn keys(v: &Value, out: &mut Vec<String>) {
+    match v {
+        Value::Object(m) => {
+            for (k, x) in m {
+                out.push(k.clone());
+                keys(x, out);
+            }
+        }
+        Value::Array(a) => a.iter().for_each(|x| keys(x, out)),
+        _ => {}
+    }
+}
+
+#[test]
+fn vet_twice_gives_identical_grades_summary_and_report() {
+    let (a, out_a) = vet_run();
+    let (b, out_b) = vet_run();
+    assert_eq!(out_a.status.code(), out_b.status.code());
+    assert_eq!(out_a.stdout, out_b.stdout, "terminal summary differs");
+    let (ra, rb) = (a.path().join("rep"), b.path().join("rep"));
+    for file in [
+        "baseline.grades.jsonl",
+        "candidate.grades.jsonl",
+        "summary.json",
+        "report.md",
+    ] {
+        let x = std::fs::read(ra.join(file)).unwrap();
+        let y = std::fs::read(rb.join(file)).unwrap();
+        assert!(!x.is_empty(), "{file} is empty");
+        assert!(x == y, "{file} differs between identical runs");
+    }
+    for file in ["baseline.answers.jsonl", "candidate.answers.jsonl"] {
+        assert_eq!(
+            answers_without_timings(&ra.join(file)),
+            answers_without_timings(&rb.join(file)),
+            "{file}: answers differ beyond the ms timings"
+        );
+    }
+    // Nothing in summary.json is a timing or a date.
+    let summary: Value =
+        serde_json::from_str(&std::fs::read_to_string(ra.join("summary.json")).unwrap()).unwrap();
+    let mut all = Vec::new();
+    keys(&summary, &mut all);
+    for k in &all {
+        let k = k.to_ascii_lowercase();
+        assert!(
+            !k.split('_').any(|w| matches!(
+                w,
+                "ms" | "time"
+                    | "times"
+                    | "timing"
+                    | "date"
+                    | "elapsed"
+                    | "seconds"
+                    | "secs"
+                    | "timestamp"
+            )),
+            "summary.json key {k:?} looks like a timing"
+        );
+    }
+}
+
+#[test]
+fn grade_twice_gives_identical_bytes() {
+    let (tmp, _) = vet_run();
+    let d = tmp.path();
+    for out in ["g1.jsonl", "g2.jsonl"] {
+        liftgate(
+            d,
+            &[
+                "grade",
+                "--questions",
+                "set.jsonl",
+                "--answers",
+                "rep/candidate.answers.jsonl",
+                "--out",
+                out,
+            ],
+        );
+    }
+    let g1 = std::fs::read(d.join("g1.jsonl")).unwrap();
+    assert_eq!(g1, std::fs::read(d.join("g2.jsonl")).unwrap());
+    assert_eq!(
+        std::fs::read(d.join("g1.jsonl.run.json")).unwrap(),
+        std::fs::read(d.join("g2.jsonl.run.json")).unwrap()
+    );
+    // `grade` on vet's answers gives vet's own grades.
+    assert_eq!(
+        g1,
+        std::fs::read(d.join("rep/candidate.grades.jsonl")).unwrap()
+    );
+}
