@@ -269,12 +269,8 @@ fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32])
             let partial = &mut partial[..K_SPLIT * out];
             let one = |(c, p): (usize, &mut [f32])| {
                 p.fill(0.0);
-                for k in (c * run)..((c + 1) * run).min(inp) {
-                    let xk = x[k];
-                    for (a, &wv) in p.iter_mut().zip(&w[k * out..(k + 1) * out]) {
-                        *a += xk * wv;
-                    }
-                }
+                let (k0, k1) = ((c * run).min(inp), ((c + 1) * run).min(inp));
+                accumulate_rows(p, &x[k0..k1], &w[k0 * out..k1 * out]);
             };
             if out * inp >= PARALLEL_WORK {
                 partial.par_chunks_mut(out).enumerate().for_each(one);
@@ -292,6 +288,50 @@ fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32])
         return;
     }
     gemm_rows(x, n, inp, w, out as isize, 1, out, y);
+}
+
+/// p += Σₖ x[k]·w[k, ..] over the rows of `w` ([x.len(), p.len()] row-major), four rows per
+/// pass so each partial sum is loaded and stored once per four weight rows. With AVX-512 (found
+/// at run time) the same loop is compiled for 16-wide vectors.
+fn accumulate_rows(p: &mut [f32], x: &[f32], w: &[f32]) {
+    #[cfg(target_arch = "x86_64")]
+    if std::arch::is_x86_feature_detected!("avx512f") {
+        // SAFETY: the CPU has AVX-512F (checked just above).
+        unsafe { accumulate_rows_avx512(p, x, w) };
+        return;
+    }
+    accumulate_rows_body(p, x, w);
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn accumulate_rows_avx512(p: &mut [f32], x: &[f32], w: &[f32]) {
+    accumulate_rows_body(p, x, w);
+}
+
+#[inline(always)]
+fn accumulate_rows_body(p: &mut [f32], x: &[f32], w: &[f32]) {
+    let out = p.len();
+    let mut quads = x.chunks_exact(4);
+    let mut rows = w.chunks_exact(4 * out);
+    for (xs, ws) in (&mut quads).zip(&mut rows) {
+        let (w0, rest) = ws.split_at(out);
+        let (w1, rest) = rest.split_at(out);
+        let (w2, w3) = rest.split_at(out);
+        let (x0, x1, x2, x3) = (xs[0], xs[1], xs[2], xs[3]);
+        for j in 0..out {
+            p[j] += x0 * w0[j] + x1 * w1[j] + x2 * w2[j] + x3 * w3[j];
+        }
+    }
+    for (&xk, wk) in quads
+        .remainder()
+        .iter()
+        .zip(rows.remainder().chunks_exact(out))
+    {
+        for (a, &wv) in p.iter_mut().zip(wk) {
+            *a += xk * wv;
+        }
+    }
 }
 
 /// y[n, out] = x[n, inp] · wᵀ, with w [out, inp] row-major (the lm_head, which is also the
