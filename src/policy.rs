@@ -336,12 +336,7 @@ fn toml_error(path: &Path, text: &str, e: &toml::de::Error) -> Error {
     let key = backticked(&message);
     match (key, e.span()) {
         (Some(key), Some(span)) if message.starts_with("unknown field") => {
-            let section = section_at(text, span.start);
-            let name = if section.is_empty() {
-                key
-            } else {
-                format!("{section}.{key}")
-            };
+            let name = qualified(&section_at(text, span.start), key);
             Error::field(
                 path,
                 line,
@@ -354,12 +349,7 @@ fn toml_error(path: &Path, text: &str, e: &toml::de::Error) -> Error {
             // A wrongly typed value: name the key written on that line.
             match key_on_line(text, line) {
                 Some(key) => {
-                    let section = section_at(text, span.start);
-                    let name = if section.is_empty() {
-                        key
-                    } else {
-                        format!("{section}.{key}")
-                    };
+                    let name = qualified(&section_at(text, span.start), key);
                     Error::field(
                         path,
                         Some(line),
@@ -401,6 +391,15 @@ fn line_of(text: &str, offset: usize) -> usize {
         .filter(|&&b| b == b'\n')
         .count()
         + 1
+}
+
+/// `section.key`, or `key` at the top level.
+fn qualified(section: &str, key: String) -> String {
+    if section.is_empty() {
+        key
+    } else {
+        format!("{section}.{key}")
+    }
 }
 
 /// The `[table]` header in force at a byte offset ("" for the top level).
