@@ -5,8 +5,8 @@
 #   bash fuzz/run.sh [SECONDS_PER_TARGET] [TARGET...]
 #
 # Defaults: 600 s each, every target. Seeds live in fuzz/corpus/<target>/ (committed); inputs
-# the fuzzer finds go to fuzz/work/<target>/ and crashes to fuzz/artifacts/<target>/ (both
-# ignored by git). cargo-fuzz needs nightly compiler flags; RUSTC_BOOTSTRAP=1 lets the stable
+# the fuzzer finds go to fuzz/work/<target>/ and failing inputs to fuzz/artifacts/<target>/
+# (both ignored by git). Exits 1 when a target found anything. cargo-fuzz needs nightly compiler flags; RUSTC_BOOTSTRAP=1 lets the stable
 # toolchain accept them. Reproduce a crash with
 #   RUSTC_BOOTSTRAP=1 cargo fuzz run -s none <target> fuzz/artifacts/<target>/<file>
 set -euo pipefail
@@ -20,8 +20,7 @@ TARGETS=("$@")
 if [ ${#TARGETS[@]} -eq 0 ]; then
     TARGETS=(questions policy adapter_config template)
 fi
-# One process (no -jobs: libFuzzer would fork workers). Extra libFuzzer flags, e.g.
-# FUZZ_FLAGS="-max_len=65536".
+# One fuzzing process at a time (-fork=1). Extra libFuzzer flags, e.g. FUZZ_FLAGS="-max_len=65536".
 FUZZ_FLAGS="${FUZZ_FLAGS:-}"
 
 if ! cargo fuzz --version >/dev/null 2>&1; then
@@ -39,18 +38,27 @@ for target in "${TARGETS[@]}"; do
     log="work/$target.log"
     echo "== $target: ${SECONDS_PER_TARGET}s" >&2
     set +e
+    before=$(find "artifacts/$target" -type f | wc -l)
+    # Fork mode: the fuzzing runs in a child process, so a crash, a stack overflow (which
+    # kills the process outright), an out-of-memory or a hang is recorded in
+    # fuzz/artifacts/<target>/ and fuzzing goes on.
     nice -n 10 cargo fuzz run -s none "$target" "work/$target" "corpus/$target" -- \
-        -max_total_time="$SECONDS_PER_TARGET" -timeout=10 \
-        -rss_limit_mb=2048 -print_final_stats=1 $FUZZ_FLAGS >"$log" 2>&1
+        -fork=1 -ignore_crashes=1 -ignore_ooms=1 -ignore_timeouts=1 \
+        -max_total_time="$SECONDS_PER_TARGET" -timeout=10 -rss_limit_mb=2048 \
+        $FUZZ_FLAGS >"$log" 2>&1
     rc=$?
     set -e
-    execs=$(grep -o 'stat::number_of_executed_units: *[0-9]*' "$log" | grep -o '[0-9]*$' | tail -1)
-    rate=$(grep -o 'stat::average_exec_per_sec: *[0-9]*' "$log" | grep -o '[0-9]*$' | tail -1)
-    crashes=$(find "artifacts/$target" -type f | wc -l)
-    echo "$target: exit $rc, ${execs:-?} executions, ${rate:-?} exec/s, $crashes crash file(s) in fuzz/artifacts/$target, log fuzz/$log"
-    if [ "$rc" -ne 0 ]; then
+    # The fork-mode progress line: "#<executions>: cov: .. exec/s: .. oom/timeout/crash: a/b/c".
+    last=$(grep -E '^#[0-9]+: cov:' "$log" | tail -1)
+    execs=$(sed -E 's/^#([0-9]+):.*/\1/' <<<"$last")
+    rate=$(grep -oE 'exec/s: [0-9]+' <<<"$last" | grep -oE '[0-9]+')
+    failures=$(grep -oE 'oom/timeout/crash: [0-9/]+' <<<"$last" | cut -d' ' -f2)
+    found=$(( $(find "artifacts/$target" -type f | wc -l) - before ))
+    echo "$target: ${execs:-?} executions, ${rate:-?} exec/s, oom/timeout/crash ${failures:-?}," \
+        "$found new file(s) in fuzz/artifacts/$target, log fuzz/$log"
+    if [ "$rc" -ne 0 ] || [ "$found" -gt 0 ]; then
         status=1
-        grep -m 5 -E 'panicked|ERROR: libFuzzer|SUMMARY' "$log" || true
+        grep -m 5 -E 'panicked|overflowed|ERROR: libFuzzer|SUMMARY' "$log" || true
     fi
 done
 exit $status
