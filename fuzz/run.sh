@@ -18,7 +18,7 @@ SECONDS_PER_TARGET="${1:-600}"
 shift || true
 TARGETS=("$@")
 if [ ${#TARGETS[@]} -eq 0 ]; then
-    TARGETS=(questions policy adapter_config template)
+    TARGETS=(questions policy adapter_config template template_messages)
 fi
 # One fuzzing process at a time (-fork=1). Extra libFuzzer flags, e.g. FUZZ_FLAGS="-max_len=65536".
 FUZZ_FLAGS="${FUZZ_FLAGS:-}"
@@ -48,13 +48,15 @@ for target in "${TARGETS[@]}"; do
         $FUZZ_FLAGS >"$log" 2>&1
     rc=$?
     set -e
-    # The fork-mode progress line: "#<executions>: cov: .. exec/s: .. oom/timeout/crash: a/b/c".
+    # The fork-mode progress line: "#<executions>: cov: .. oom/timeout/crash: a/b/c time: <s>s";
+    # its exec/s is the last job's, so the average is worked out here.
     last=$(grep -E '^#[0-9]+: cov:' "$log" | tail -1)
     execs=$(sed -E 's/^#([0-9]+):.*/\1/' <<<"$last")
-    rate=$(grep -oE 'exec/s: [0-9]+' <<<"$last" | grep -oE '[0-9]+')
+    secs=$(grep -oE 'time: [0-9]+s' <<<"$last" | grep -oE '[0-9]+')
+    rate=$(( ${execs:-0} / (${secs:-0} > 0 ? ${secs:-1} : 1) ))
     failures=$(grep -oE 'oom/timeout/crash: [0-9/]+' <<<"$last" | cut -d' ' -f2)
     found=$(( $(find "artifacts/$target" -type f | wc -l) - before ))
-    echo "$target: ${execs:-?} executions, ${rate:-?} exec/s, oom/timeout/crash ${failures:-?}," \
+    echo "$target: ${execs:-?} executions in ${secs:-?} s, $rate exec/s, oom/timeout/crash ${failures:-?}," \
         "$found new file(s) in fuzz/artifacts/$target, log fuzz/$log"
     if [ "$rc" -ne 0 ] || [ "$found" -gt 0 ]; then
         status=1
