@@ -15,6 +15,7 @@
 //!   `none`, `true`, `["a", 1]`. A formatter and a `string` filter print Python's forms
 //!   ([`super::pyfmt`]). Known gap: the `~` operator still joins with minijinja's forms.
 //! - **Missing Jinja2 builtins**: the `center` filter and the `cycler`/`joiner` globals are added.
+//!   `pprint` prints Python's repr (Jinja2 uses `pformat`, the same for values that fit a line).
 //! - **Tuples**: minijinja has none, so `(1, 'x')`, `dictsort` and `.items()` pairs print as lists
 //!   (`[1, 'x']`) where Jinja2 prints `(1, 'x')`. Templates iterate such pairs rather than print
 //!   them, so this is left as a documented difference.
@@ -32,7 +33,8 @@
 //!   stack overflow. Jinja2's sandbox caps `range()` at 100 000 items; minijinja does the same.
 
 use super::pyfmt::{
-    is_py_space, json_dumps, py_split_whitespace, py_str, py_strip, JsonOptions, MAX_TEXT_BYTES,
+    is_py_space, json_dumps, py_repr, py_split_whitespace, py_str, py_strip, JsonOptions,
+    MAX_TEXT_BYTES,
 };
 use super::strftime::{strftime, DateTime};
 use minijinja::value::{Kwargs, Rest, Value, ValueKind};
@@ -173,6 +175,9 @@ impl ChatTemplate {
         env.add_function("strftime_now", strftime_now);
         env.add_filter("tojson", tojson);
         env.add_filter("string", |v: Value| py_str(&v));
+        // Jinja2's pprint is Python's pformat, which is repr for anything that fits a line.
+        // minijinja's own walks a namespace stored in itself without end.
+        env.add_filter("pprint", |v: Value| py_repr(&v));
         env.add_filter("center", center);
         env.add_filter("trim", trim);
         // Jinja2's cycler takes the items as separate arguments.
@@ -532,6 +537,19 @@ mod tests {
         assert!(start.elapsed().as_secs_f64() < 1.0, "{:?}", start.elapsed());
     }
 
+    // Python 3.11, from memory: pprint.pformat({'a': [1, 'x'], 'b': None}) and 'it'.
+    #[test]
+    fn pprint_is_python_pformat_for_short_values() {
+        assert_eq!(
+            render(
+                "{{ {'a': [1, 'x'], 'b': none} | pprint }}|{{ 'it' | pprint }}",
+                serde_json::json!({})
+            )
+            .unwrap(),
+            "{'a': [1, 'x'], 'b': None}|'it'"
+        );
+    }
+
     // Found with the template fuzz target (fuzz/fuzz_targets/template.rs): these aborted the
     // process with a failed allocation of tens of gigabytes.
     #[test]
@@ -574,6 +592,12 @@ mod tests {
             "{printed}"
         );
         assert!(printed.contains("'x': {...}"), "{printed}");
+        let pretty = render(
+            &format!("{own}{{{{ ns | pprint }}}}"),
+            serde_json::json!({}),
+        )
+        .unwrap();
+        assert_eq!(pretty, printed);
         let listed = render(
             &format!("{own}{{{{ [ns] | string }}}}"),
             serde_json::json!({}),
