@@ -62,7 +62,11 @@ pub const MAX_LINE_BYTES: usize = 1 << 20;
 pub fn read_jsonl_lines(path: &Path) -> Result<Vec<(usize, String)>> {
     let file =
         std::fs::File::open(path).map_err(|e| Error::file(path, format!("cannot open: {e}")))?;
-    let mut reader = BufReader::new(file);
+    jsonl_lines(path, BufReader::new(file))
+}
+
+/// [`read_jsonl_lines`] over any buffered reader; `path` names the source in messages.
+pub fn jsonl_lines(path: &Path, mut reader: impl BufRead) -> Result<Vec<(usize, String)>> {
     let mut out = Vec::new();
     let mut buf = Vec::new();
     let mut line_no = 0usize;

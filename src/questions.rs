@@ -58,6 +58,29 @@ impl QuestionSet {
     /// Reads and validates a question set.
     pub fn load(path: &Path) -> Result<Self> {
         let lines = fsutil::read_jsonl_lines(path)?;
+        let questions = Self::validate(path, &lines)?;
+        let fingerprint = fsutil::sha256_file(path)?;
+        Ok(QuestionSet {
+            path: path.to_path_buf(),
+            questions,
+            fingerprint,
+        })
+    }
+
+    /// Validates a question set held in memory, as [`QuestionSet::load`] does for a file;
+    /// `path` names the source in messages.
+    pub fn parse(path: &Path, bytes: &[u8]) -> Result<Self> {
+        let lines = fsutil::jsonl_lines(path, bytes)?;
+        let questions = Self::validate(path, &lines)?;
+        Ok(QuestionSet {
+            path: path.to_path_buf(),
+            questions,
+            fingerprint: fsutil::sha256_hex(bytes),
+        })
+    }
+
+    /// The questions of `(line, text)` JSONL lines, checked one by one and for duplicate ids.
+    fn validate(path: &Path, lines: &[(usize, String)]) -> Result<Vec<Question>> {
         if lines.is_empty() {
             return Err(Error::file(
                 path,
@@ -66,7 +89,7 @@ impl QuestionSet {
         }
         let mut questions = Vec::with_capacity(lines.len());
         let mut seen = HashSet::new();
-        for (line, text) in &lines {
+        for (line, text) in lines {
             let q = parse_question(path, *line, text)?;
             if !seen.insert(q.id.clone()) {
                 return Err(Error::field(
@@ -78,12 +101,7 @@ impl QuestionSet {
             }
             questions.push(q);
         }
-        let fingerprint = fsutil::sha256_file(path)?;
-        Ok(QuestionSet {
-            path: path.to_path_buf(),
-            questions,
-            fingerprint,
-        })
+        Ok(questions)
     }
 
     pub fn len(&self) -> usize {
@@ -235,6 +253,26 @@ mod tests {
         assert_eq!(set.questions[1].expect, Expect::Refuse);
         assert_eq!(set.questions[1].line, 2);
         assert_eq!(set.fingerprint.len(), 64);
+    }
+
+    #[test]
+    fn parse_from_bytes_matches_load() {
+        let text = "{\"id\":\"a\",\"question\":\"Q?\",\"references\":[\"R\"]}\n\n\
+                    {\"id\":\"b\",\"question\":\"Out?\",\"expect\":\"refuse\"}\n";
+        let loaded = load_str(text).unwrap();
+        let parsed = QuestionSet::parse(Path::new("set.jsonl"), text.as_bytes()).unwrap();
+        assert_eq!(parsed.questions, loaded.questions);
+        assert_eq!(parsed.fingerprint, loaded.fingerprint);
+        assert_eq!(parsed.questions[1].line, 3);
+        let err = QuestionSet::parse(
+            Path::new("set.jsonl"),
+            b"{\"id\":\"a\",\"question\":\"Q\",\"references\":[\"R\"]}\n\xff\n",
+        )
+        .unwrap_err();
+        assert!(
+            err.to_string().starts_with("set.jsonl:2: not valid UTF-8"),
+            "{err}"
+        );
     }
 
     #[test]

@@ -18,14 +18,52 @@ pub fn py_str(value: &Value) -> String {
     }
 }
 
-/// `repr(value)`: the form Python uses inside lists and dicts.
+/// Deepest nesting of lists and maps that `repr` and `json.dumps` walk. A template can store a
+/// namespace inside itself (`{% set ns.x = ns %}`); walking that without a limit never ends.
+/// CPython gives up on far shallower structures than any stack here (its recursion limit is
+/// 1000 frames), and chat-template data nests a handful of levels.
+pub const MAX_NESTING: usize = 200;
+
+/// Longest text `repr` and `json.dumps` produce for one value. A prompt is far smaller; the cap
+/// keeps a value that nests itself many times over from filling memory.
+pub const MAX_TEXT_BYTES: usize = 16 << 20;
+
+/// `repr(value)`: the form Python uses inside lists and dicts. Nesting past [`MAX_NESTING`]
+/// prints as `[...]` / `{...}` (Python's marker for a container inside itself), and the text
+/// stops with `...` past [`MAX_TEXT_BYTES`].
 pub fn py_repr(value: &Value) -> String {
     let mut out = String::new();
-    write_repr(&mut out, value);
+    write_repr(&mut out, value, 0);
     out
 }
 
-fn write_repr(out: &mut String, value: &Value) {
+/// Whether `out` is past the size cap; marks the cut with `...` the first time.
+fn repr_full(out: &mut String) -> bool {
+    if out.len() < MAX_TEXT_BYTES {
+        return false;
+    }
+    if !out.ends_with("...") {
+        out.push_str("...");
+    }
+    true
+}
+
+fn write_repr(out: &mut String, value: &Value, depth: usize) {
+    if repr_full(out) {
+        return;
+    }
+    let nested = matches!(
+        value.kind(),
+        ValueKind::Seq | ValueKind::Iterable | ValueKind::Map
+    );
+    if nested && depth >= MAX_NESTING {
+        out.push_str(if value.kind() == ValueKind::Map {
+            "{...}"
+        } else {
+            "[...]"
+        });
+        return;
+    }
     match value.kind() {
         ValueKind::Undefined => {}
         ValueKind::None => out.push_str("None"),
@@ -36,10 +74,13 @@ fn write_repr(out: &mut String, value: &Value) {
             out.push('[');
             if let Ok(iter) = value.try_iter() {
                 for (i, item) in iter.enumerate() {
+                    if repr_full(out) {
+                        return;
+                    }
                     if i > 0 {
                         out.push_str(", ");
                     }
-                    write_repr(out, &item);
+                    write_repr(out, &item, depth + 1);
                 }
             }
             out.push(']');
@@ -48,13 +89,16 @@ fn write_repr(out: &mut String, value: &Value) {
             out.push('{');
             if let Ok(iter) = value.try_iter() {
                 for (i, key) in iter.enumerate() {
+                    if repr_full(out) {
+                        return;
+                    }
                     if i > 0 {
                         out.push_str(", ");
                     }
-                    write_repr(out, &key);
+                    write_repr(out, &key, depth + 1);
                     out.push_str(": ");
                     let item = value.get_item(&key).unwrap_or_default();
-                    write_repr(out, &item);
+                    write_repr(out, &item, depth + 1);
                 }
             }
             out.push('}');
@@ -196,16 +240,36 @@ struct Encoder<'a> {
 }
 
 impl Encoder<'_> {
-    fn newline(&self, out: &mut String, level: usize) {
+    fn newline(&self, out: &mut String, level: usize) -> Result<(), String> {
         if let Some(indent) = &self.opts.indent {
+            let needed = indent.len().saturating_mul(level).saturating_add(1);
+            if out.len().saturating_add(needed) > MAX_TEXT_BYTES {
+                return Err(too_long());
+            }
             out.push('\n');
             for _ in 0..level {
                 out.push_str(indent);
             }
         }
+        Ok(())
     }
 
     fn write(&self, out: &mut String, value: &Value, level: usize) -> Result<(), String> {
+        if out.len() > MAX_TEXT_BYTES {
+            return Err(too_long());
+        }
+        if level >= MAX_NESTING
+            && matches!(
+                value.kind(),
+                ValueKind::Seq | ValueKind::Iterable | ValueKind::Map
+            )
+        {
+            // CPython raises "Circular reference detected" for a container inside itself and
+            // RecursionError for very deep nesting.
+            return Err(format!(
+                "the value nests deeper than {MAX_NESTING} levels (does it contain itself?)"
+            ));
+        }
         match value.kind() {
             ValueKind::None => out.push_str("null"),
             ValueKind::Bool => out.push_str(if value.is_true() { "true" } else { "false" }),
@@ -233,10 +297,10 @@ impl Encoder<'_> {
                     if i > 0 {
                         out.push_str(&self.item_sep);
                     }
-                    self.newline(out, level + 1);
+                    self.newline(out, level + 1)?;
                     self.write(out, item, level + 1)?;
                 }
-                self.newline(out, level);
+                self.newline(out, level)?;
                 out.push(']');
             }
             ValueKind::Map => {
@@ -253,13 +317,13 @@ impl Encoder<'_> {
                     if i > 0 {
                         out.push_str(&self.item_sep);
                     }
-                    self.newline(out, level + 1);
+                    self.newline(out, level + 1)?;
                     write_json_str(out, &json_key(key), self.opts.ensure_ascii);
                     out.push_str(&self.key_sep);
                     let item = value.get_item(key).map_err(|e| e.to_string())?;
                     self.write(out, &item, level + 1)?;
                 }
-                self.newline(out, level);
+                self.newline(out, level)?;
                 out.push('}');
             }
             ValueKind::Undefined => {
@@ -267,8 +331,15 @@ impl Encoder<'_> {
             }
             other => return Err(format!("a value of kind {other} is not JSON serializable")),
         }
+        if out.len() > MAX_TEXT_BYTES {
+            return Err(too_long());
+        }
         Ok(())
     }
+}
+
+fn too_long() -> String {
+    format!("the JSON text would be longer than {MAX_TEXT_BYTES} bytes")
 }
 
 /// Python converts dict keys to strings: str as is, True -> "true", None -> "null", numbers

@@ -15,6 +15,7 @@
 //!   `none`, `true`, `["a", 1]`. A formatter and a `string` filter print Python's forms
 //!   ([`super::pyfmt`]). Known gap: the `~` operator still joins with minijinja's forms.
 //! - **Missing Jinja2 builtins**: the `center` filter and the `cycler`/`joiner` globals are added.
+//!   `pprint` prints Python's repr (Jinja2 uses `pformat`, the same for values that fit a line).
 //! - **Tuples**: minijinja has none, so `(1, 'x')`, `dictsort` and `.items()` pairs print as lists
 //!   (`[1, 'x']`) where Jinja2 prints `(1, 'x')`. Templates iterate such pairs rather than print
 //!   them, so this is left as a documented difference.
@@ -31,7 +32,10 @@
 //!   fail fast, the default recursion limit so deep recursion fails with an error rather than a
 //!   stack overflow. Jinja2's sandbox caps `range()` at 100 000 items; minijinja does the same.
 
-use super::pyfmt::{is_py_space, json_dumps, py_split_whitespace, py_str, py_strip, JsonOptions};
+use super::pyfmt::{
+    is_py_space, json_dumps, py_repr, py_split_whitespace, py_str, py_strip, JsonOptions,
+    MAX_TEXT_BYTES,
+};
 use super::strftime::{strftime, DateTime};
 use minijinja::value::{Kwargs, Rest, Value, ValueKind};
 use minijinja::{Environment, Error as JinjaError, ErrorKind, UndefinedBehavior};
@@ -171,6 +175,9 @@ impl ChatTemplate {
         env.add_function("strftime_now", strftime_now);
         env.add_filter("tojson", tojson);
         env.add_filter("string", |v: Value| py_str(&v));
+        // Jinja2's pprint is Python's pformat, which is repr for anything that fits a line.
+        // minijinja's own walks a namespace stored in itself without end.
+        env.add_filter("pprint", |v: Value| py_repr(&v));
         env.add_filter("center", center);
         env.add_filter("trim", trim);
         // Jinja2's cycler takes the items as separate arguments.
@@ -183,13 +190,50 @@ impl ChatTemplate {
         Ok(ChatTemplate { env })
     }
 
-    /// Renders with the given context (a map of variables).
+    /// Renders with the given context (a map of variables). Output past [`MAX_TEXT_BYTES`] is an
+    /// error: fuel bounds the steps, not what each step prints.
     pub fn render(&self, ctx: Value) -> Result<String, RenderError> {
         let tmpl = self
             .env
             .get_template(TEMPLATE_NAME)
             .map_err(|e| convert_error(&e))?;
-        tmpl.render(ctx).map_err(|e| convert_error(&e))
+        let mut out = BoundedOutput::default();
+        let result = tmpl.render_captured_to(ctx, &mut out);
+        match result {
+            Ok(_) => String::from_utf8(out.bytes).map_err(|e| RenderError::Other {
+                message: format!("the output is not valid UTF-8: {e}"),
+                line: None,
+            }),
+            Err(e) if out.full => Err(RenderError::Other {
+                message: format!(
+                    "the output grew past {MAX_TEXT_BYTES} bytes, far more than any prompt"
+                ),
+                line: e.line(),
+            }),
+            Err(e) => Err(convert_error(&e)),
+        }
+    }
+}
+
+/// The render output, refusing to grow past [`MAX_TEXT_BYTES`].
+#[derive(Default)]
+struct BoundedOutput {
+    bytes: Vec<u8>,
+    full: bool,
+}
+
+impl std::io::Write for BoundedOutput {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        if self.bytes.len().saturating_add(buf.len()) > MAX_TEXT_BYTES {
+            self.full = true;
+            return Err(std::io::Error::other("output limit reached"));
+        }
+        self.bytes.extend_from_slice(buf);
+        Ok(buf.len())
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        Ok(())
     }
 }
 
@@ -324,17 +368,28 @@ fn trim(value: Value, chars: Option<String>) -> String {
 }
 
 /// Jinja2's `center(width=80)`, which is Python's `str.center` (CPython `pad`: the odd space goes
-/// left only when both the margin and the width are odd).
-fn center(value: Value, width: Option<usize>) -> String {
+/// left only when both the margin and the width are odd). A width past [`MAX_TEXT_BYTES`] is an
+/// error rather than an allocation that cannot succeed.
+fn center(value: Value, width: Option<usize>) -> Result<String, JinjaError> {
     let s = py_str(&value);
     let width = width.unwrap_or(80);
     let len = s.chars().count();
     if width <= len {
-        return s;
+        return Ok(s);
+    }
+    if width > MAX_TEXT_BYTES {
+        return Err(JinjaError::new(
+            ErrorKind::InvalidOperation,
+            format!("center: width {width} is larger than {MAX_TEXT_BYTES}"),
+        ));
     }
     let marg = width - len;
     let left = marg / 2 + (marg & width & 1);
-    format!("{}{s}{}", " ".repeat(left), " ".repeat(marg - left))
+    Ok(format!(
+        "{}{s}{}",
+        " ".repeat(left),
+        " ".repeat(marg - left)
+    ))
 }
 
 fn raise_exception(message: Value) -> Result<Value, JinjaError> {
@@ -376,7 +431,14 @@ fn tojson(
                     "tojson: indent must be an integer or a string",
                 )
             })?;
-            Some(" ".repeat(n.max(0) as usize))
+            let n = usize::try_from(n.max(0)).unwrap_or(usize::MAX);
+            if n > MAX_TEXT_BYTES {
+                return Err(JinjaError::new(
+                    ErrorKind::InvalidOperation,
+                    format!("tojson: indent {n} is larger than {MAX_TEXT_BYTES}"),
+                ));
+            }
+            Some(" ".repeat(n))
         }
     };
     let separators = match pick(None, "separators")? {
@@ -473,6 +535,94 @@ mod tests {
         .unwrap_err();
         assert!(matches!(err, RenderError::OutOfFuel), "{err:?}");
         assert!(start.elapsed().as_secs_f64() < 1.0, "{:?}", start.elapsed());
+    }
+
+    // Python 3.11, from memory: pprint.pformat({'a': [1, 'x'], 'b': None}) and 'it'.
+    #[test]
+    fn pprint_is_python_pformat_for_short_values() {
+        assert_eq!(
+            render(
+                "{{ {'a': [1, 'x'], 'b': none} | pprint }}|{{ 'it' | pprint }}",
+                serde_json::json!({})
+            )
+            .unwrap(),
+            "{'a': [1, 'x'], 'b': None}|'it'"
+        );
+    }
+
+    // Found with the template fuzz target (fuzz/fuzz_targets/template.rs): these aborted the
+    // process with a failed allocation of tens of gigabytes.
+    #[test]
+    fn huge_padding_is_an_error_not_an_allocation() {
+        for src in [
+            "{{ 'a' | center(100000000000) }}",
+            "{{ 'a' | center(9223372036854775807) }}",
+            "{{ [1, 2] | tojson(indent=100000000000) }}",
+        ] {
+            let err = render(src, serde_json::json!({})).unwrap_err();
+            assert!(err.to_string().contains("is larger than"), "{src}: {err}");
+        }
+        // Python 3.11, from memory: 'ab'.center(7) == '   ab  ' and
+        // json.dumps([1], indent=1) == '[\n 1\n]'.
+        assert_eq!(
+            render(
+                "{{ 'ab' | center(7) }}|{{ [1] | tojson(indent=1) }}",
+                serde_json::json!({})
+            )
+            .unwrap(),
+            "   ab  |[\n 1\n]"
+        );
+    }
+
+    // Found with the template fuzz target: a namespace stored inside itself made printing and
+    // `tojson` recurse until the stack overflowed, killing the process.
+    #[test]
+    fn a_namespace_holding_itself_prints_and_serialises_in_bounds() {
+        let start = Instant::now();
+        let own = "{% set ns = namespace(a=1) %}{% set ns.x = ns %}";
+        let err = render(
+            &format!("{own}{{{{ ns | tojson }}}}"),
+            serde_json::json!({}),
+        )
+        .unwrap_err();
+        assert!(err.to_string().contains("deeper than"), "{err}");
+        let printed = render(&format!("{own}{{{{ ns }}}}"), serde_json::json!({})).unwrap();
+        assert!(
+            printed.starts_with("{'a': 1, 'x': {'a': 1, 'x': {"),
+            "{printed}"
+        );
+        assert!(printed.contains("'x': {...}"), "{printed}");
+        let pretty = render(
+            &format!("{own}{{{{ ns | pprint }}}}"),
+            serde_json::json!({}),
+        )
+        .unwrap();
+        assert_eq!(pretty, printed);
+        let listed = render(
+            &format!("{own}{{{{ [ns] | string }}}}"),
+            serde_json::json!({}),
+        )
+        .unwrap();
+        assert!(
+            listed.contains("'x': {...}}") && listed.ends_with("}}]"),
+            "{listed}"
+        );
+        // Two references to itself double the work at every level: the size caps end it.
+        let twice = "{% set ns = namespace(a=1) %}{% set ns.x = ns %}{% set ns.y = ns %}{{ ns }}";
+        let err = render(twice, serde_json::json!({})).unwrap_err();
+        assert!(err.to_string().contains("grew past"), "{err}");
+        assert!(start.elapsed().as_secs_f64() < 5.0, "{:?}", start.elapsed());
+    }
+
+    // Fuel counts steps, not bytes: each step here prints 10 MB.
+    #[test]
+    fn output_past_the_cap_is_an_error() {
+        let err = render(
+            "{% set s = 'x' * 10000000 %}{% for i in range(1000) %}{{ s }}{% endfor %}",
+            serde_json::json!({}),
+        )
+        .unwrap_err();
+        assert!(err.to_string().contains("grew past"), "{err}");
     }
 
     #[test]

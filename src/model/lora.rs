@@ -98,7 +98,7 @@ enum Exclude {
 
 /// The parts of adapter_config.json that matter for merging, validated.
 #[derive(Debug, Clone)]
-struct Config {
+pub struct Config {
     r: usize,
     alpha: f64,
     use_rslora: bool,
@@ -239,9 +239,7 @@ impl Adapter {
         })?;
         let fingerprint = fingerprint(&config_bytes, &weights_bytes);
 
-        let config_json: Value = serde_json::from_slice(&config_bytes)
-            .map_err(|e| Error::line(&config_path, e.line(), format!("not valid JSON: {e}")))?;
-        let config = parse_config(&config_path, &config_json)?;
+        let config = Config::parse(&config_path, &config_bytes)?;
 
         let tensors =
             candle_core::safetensors::load_buffer(&weights_bytes, &Device::Cpu).map_err(|e| {
@@ -617,16 +615,24 @@ fn string_list(path: &Path, field: &str, items: &[Value]) -> Result<Vec<String>>
 }
 
 impl Config {
+    /// Parses and validates the bytes of an adapter_config.json; `path` names the source in
+    /// messages.
+    pub fn parse(path: &Path, bytes: &[u8]) -> Result<Config> {
+        let json: Value = serde_json::from_slice(bytes)
+            .map_err(|e| Error::line(path, e.line(), format!("not valid JSON: {e}")))?;
+        parse_config(path, &json)
+    }
+
     /// peft `get_pattern_key` + lookup: the first pattern key, in file order, matching a whole
     /// dotted suffix of `module`.
-    fn rank_for(&self, module: &str) -> usize {
+    pub fn rank_for(&self, module: &str) -> usize {
         self.rank_pattern
             .iter()
             .find(|(_, re, _)| re.is_match(module))
             .map_or(self.r, |(_, _, v)| *v)
     }
 
-    fn alpha_for(&self, module: &str) -> f64 {
+    pub fn alpha_for(&self, module: &str) -> f64 {
         self.alpha_pattern
             .iter()
             .find(|(_, re, _)| re.is_match(module))
@@ -635,7 +641,7 @@ impl Config {
 
     /// s = α/r, or α/√r with rsLoRA (Kalajdzievski 2023, "A Rank Stabilization Scaling Factor
     /// for Fine-Tuning with LoRA"; peft `LoraLayer.update_layer`).
-    fn scaling(&self, rank: usize, alpha: f64) -> f64 {
+    pub fn scaling(&self, rank: usize, alpha: f64) -> f64 {
         if self.use_rslora {
             alpha / (rank as f64).sqrt()
         } else {
@@ -659,7 +665,7 @@ impl Config {
 
     /// peft `check_target_module_exists` for one module name. `is_linear` serves the
     /// unexpanded `"all-linear"` form.
-    fn selects(&self, module: &str, is_linear: bool) -> bool {
+    pub fn selects(&self, module: &str, is_linear: bool) -> bool {
         if self.excluded(module) || self.in_modules_to_save(module) {
             return false;
         }
