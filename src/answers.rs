@@ -132,6 +132,13 @@ pub fn run_json_path(file: &Path) -> PathBuf {
 /// (`questions.fingerprint`), it must be `set`'s: the same ids in a changed set (edited
 /// references, expectations or questions) would otherwise be scored or weighed silently
 /// against answers made for other questions.
+/// The `compute_dtype` recorded in `<file>.run.json`, if the record exists and has one.
+pub fn recorded_compute_dtype(file: &Path) -> Option<String> {
+    let bytes = std::fs::read(run_json_path(file)).ok()?;
+    let value: serde_json::Value = serde_json::from_slice(&bytes).ok()?;
+    value.get("compute_dtype")?.as_str().map(str::to_string)
+}
+
 pub fn check_set_fingerprint(file: &Path, set: &QuestionSet) -> Result<()> {
     let run = run_json_path(file);
     let bytes = match std::fs::read(&run) {

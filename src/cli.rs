@@ -1,6 +1,7 @@
 //! Command-line definition (interface.md, "Flags that must exist"). Parsing only: each command
 //! turns its arguments into validated settings in its own module under `commands`.
 
+use crate::model::WeightFormat;
 use clap::{Args, Parser, Subcommand};
 use std::path::PathBuf;
 
@@ -49,6 +50,12 @@ pub struct GenerationArgs {
     /// Generate exactly --max-new-tokens tokens, ignoring end-of-sequence (for benchmarks).
     #[arg(long)]
     pub ignore_eos: bool,
+    /// Weight format of the runner. `f32` computes as the reference library does; `bf16`
+    /// rounds weights and activations of the matrix products to bfloat16 (about twice as fast
+    /// on CPUs with AVX-512 BF16, half the weight memory) and is an approximation of the model,
+    /// recorded as such in run.json and the report.
+    #[arg(long, value_enum, value_name = "FORMAT", default_value_t = WeightFormat::F32)]
+    pub weights: WeightFormat,
 }
 
 #[derive(Debug, Args)]

@@ -38,6 +38,9 @@ pub struct GradeRunInfo {
     pub questions: crate::generate::QuestionsInfo,
     /// The answers file graded: path and SHA-256 of its content.
     pub answers: crate::report::summary::InputFile,
+    /// The answers' `compute_dtype` (from their run.json), when recorded.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub compute_dtype: Option<String>,
 }
 
 /// Reads a grades file and checks it matches the question set id for id, in order.

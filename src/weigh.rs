@@ -130,6 +130,11 @@ pub fn weigh(input: &WeighInput) -> Result<Summary> {
     let policy = input.policy;
     let gate = policy.lift.metric;
     let mut warnings = Vec::new();
+    for a in &input.inputs.approximations {
+        warnings.push(format!(
+            "Answers computed with an approximation of the model ({a}): they can differ from what the model itself answers. Confirm the verdict with f32 answers (--weights f32, the default) before relying on it."
+        ));
+    }
 
     // Metrics, resampled jointly when they cover the same questions (the usual case).
     let pairs: Vec<Paired> = Metric::ALL

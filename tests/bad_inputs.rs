@@ -226,7 +226,7 @@ fn write_safetensors(path: &Path, tensors: &[(&str, &[usize])]) {
         );
     }
     let mut h = serde_json::to_vec(&Value::Object(header)).unwrap();
-    while h.len() % 8 != 0 {
+    while !h.len().is_multiple_of(8) {
         h.push(b' ');
     }
     let mut out = (h.len() as u64).to_le_bytes().to_vec();

@@ -140,3 +140,31 @@ fn vet_needs_all_three_paths_or_none() {
         .unwrap();
     assert_eq!(out.status.code(), Some(2));
 }
+
+/// `--weights bf16` is an approximation of the model: run.json, summary.json and report.md
+/// all say so; the default f32 run says nothing of the kind.
+#[test]
+fn bf16_weights_are_labelled_as_an_approximation() {
+    let tmp = tempfile::tempdir().unwrap();
+    std::fs::write(tmp.path().join("set.jsonl"), QUESTIONS).unwrap();
+    for (weights, approx) in [("bf16", true), ("f32", false)] {
+        let dir = format!("report-{weights}");
+        let out = vet(tmp.path(), "qv", &["--weights", weights, "--report", &dir]);
+        let stderr = String::from_utf8_lossy(&out.stderr);
+        assert!(matches!(out.status.code(), Some(0) | Some(1)), "{stderr}");
+        let d = tmp.path().join(&dir);
+        let run: serde_json::Value = serde_json::from_str(
+            &std::fs::read_to_string(d.join("candidate.answers.jsonl.run.json")).unwrap(),
+        )
+        .unwrap();
+        let dtype = run["compute_dtype"].as_str().unwrap();
+        assert_eq!(dtype.contains("approximation"), approx, "{dtype}");
+        let summary = std::fs::read_to_string(d.join("summary.json")).unwrap();
+        let report = std::fs::read_to_string(d.join("report.md")).unwrap();
+        assert_eq!(summary.contains("\"approximations\""), approx);
+        assert_eq!(
+            report.contains("Answers computed with an approximation of the model"),
+            approx
+        );
+    }
+}

@@ -20,7 +20,7 @@ use crate::generate::{
 };
 use crate::interrupt::StopFlag;
 use crate::journal::{self, Contents, Journal, RunIdentity};
-use crate::model;
+use crate::model::{self, WeightFormat};
 use crate::questions::QuestionSet;
 use indicatif::{ProgressBar, ProgressStyle};
 use std::path::{Path, PathBuf};
@@ -42,6 +42,8 @@ pub struct AnswerSettings {
     pub progress: bool,
     /// Discard saved answers of an earlier run instead of continuing it.
     pub restart: bool,
+    /// How the runner holds the weights (f32 unless asked otherwise).
+    pub weights: WeightFormat,
 }
 
 impl AnswerSettings {
@@ -90,6 +92,7 @@ impl AnswerSettings {
             ignore_eos,
             progress: true,
             restart: false,
+            weights: WeightFormat::F32,
         })
     }
 }
@@ -121,6 +124,7 @@ pub fn run(args: &AnswerArgs) -> Result<Outcome> {
     check_out_path(&args.out)?;
     let settings = AnswerSettings {
         restart: args.restart,
+        weights: g.weights,
         ..settings
     };
     let set = QuestionSet::load(&args.questions)?;
@@ -200,7 +204,11 @@ fn prepare(settings: &AnswerSettings, set: &QuestionSet) -> Result<Prepared> {
         }
         prompts.push(ids);
     }
-    let loaded = model::load(&settings.model, settings.adapter.as_deref())?;
+    let loaded = model::load_as(
+        &settings.model,
+        settings.adapter.as_deref(),
+        settings.weights,
+    )?;
     let spec = &loaded.spec;
     if let Some((i, bad)) = prompts.iter().enumerate().find_map(|(i, p)| {
         p.iter()
@@ -267,7 +275,7 @@ fn prepare(settings: &AnswerSettings, set: &QuestionSet) -> Result<Prepared> {
             fingerprint: set.fingerprint.clone(),
             count: set.len(),
         },
-        compute_dtype: "f32".to_string(),
+        compute_dtype: settings.weights.compute_dtype().to_string(),
     };
     Ok(Prepared {
         chat,

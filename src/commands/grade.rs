@@ -75,6 +75,7 @@ pub fn write_grades(
             path: answers_path.display().to_string(),
             sha256: fsutil::sha256_file(answers_path)?,
         },
+        compute_dtype: crate::answers::recorded_compute_dtype(answers_path),
     };
     let mut info_bytes = serde_json::to_vec_pretty(&info)
         .map_err(|e| Error::internal(format!("cannot serialise run.json: {e}")))?;

@@ -73,6 +73,7 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
     }
     let base_settings = AnswerSettings {
         restart: args.restart,
+        weights: g.weights,
         ..base_settings
     };
     let cand_settings = AnswerSettings {

@@ -69,11 +69,20 @@ pub fn describe_inputs(
             source: "built-in".into(),
         },
     };
+    let mut approximations = Vec::new();
+    for (label, grades) in [("baseline", baseline), ("candidate", candidate)] {
+        if let Some(dtype) = crate::answers::recorded_compute_dtype(grades) {
+            if dtype != "f32" {
+                approximations.push(format!("{label}: {dtype}"));
+            }
+        }
+    }
     Ok(summary::Inputs {
         questions: input_file(&set.path, set.fingerprint.clone()),
         baseline: input_file(baseline, fsutil::sha256_file(baseline)?),
         candidate: input_file(candidate, fsutil::sha256_file(candidate)?),
         policy,
+        approximations,
     })
 }
 

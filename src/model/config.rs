@@ -717,7 +717,7 @@ fn rope_spec(c: &Cfg, family: Family, head_dim: usize) -> Result<RopeSpec> {
         ));
     }
     let rotary_dim = (head_dim as f64 * partial) as usize;
-    if rotary_dim == 0 || rotary_dim % 2 != 0 {
+    if rotary_dim == 0 || !rotary_dim.is_multiple_of(2) {
         return Err(Error::field(
             c.path,
             None,

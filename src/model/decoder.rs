@@ -20,8 +20,10 @@
 //! one matrix at load time, which changes no dot product.
 
 use crate::error::{Error, Result};
+use crate::model::bf16::Bf16Matrix;
 use crate::model::config::{Activation, ModelSpec, NormStyle, RopeScaling, RopeSpec};
 use crate::model::weights::{EMBED, LM_HEAD};
+use crate::model::WeightFormat;
 use candle_core::Tensor;
 use rayon::prelude::*;
 use std::collections::HashMap;
@@ -147,16 +149,21 @@ fn sized(v: &mut Vec<f32>, n: usize) -> &mut [f32] {
 /// row-major: the layout the matrix-product kernel reads without repacking the weights on
 /// every call (repacking would read and write every weight once more per step).
 struct Linear {
-    w: Vec<f32>,
+    w: LinearWeights,
     out: usize,
     inp: usize,
     b: Option<Vec<f32>>,
 }
 
+enum LinearWeights {
+    F32(Vec<f32>),
+    Bf16(Bf16Matrix),
+}
+
 impl Linear {
     /// Stacks the rows of one or more checkpoint matrices (with their biases, if any),
-    /// transposing each straight into place.
-    fn stack(parts: Vec<(Tensor, Option<Tensor>)>) -> Result<Linear> {
+    /// transposing (f32) or packing (bf16) each straight into place.
+    fn stack(parts: Vec<(Tensor, Option<Tensor>)>, format: WeightFormat) -> Result<Linear> {
         let mut dims = Vec::with_capacity(parts.len());
         for (wt, _) in &parts {
             dims.push(wt.dims2()?);
@@ -169,11 +176,17 @@ impl Linear {
         }
         let out: usize = dims.iter().map(|d| d.0).sum();
         let with_bias = parts.iter().all(|(_, b)| b.is_some());
-        let mut w = vec![0.0; inp * out];
+        let mut w = match format {
+            WeightFormat::F32 => LinearWeights::F32(vec![0.0; inp * out]),
+            WeightFormat::Bf16 => LinearWeights::Bf16(Bf16Matrix::new(out, inp)),
+        };
         let mut b = Vec::new();
         let mut at = 0;
         for ((wt, bt), (o, _)) in parts.into_iter().zip(dims) {
-            with_f32(&wt, |a| transpose_into(a, o, inp, &mut w, out, at))?;
+            match &mut w {
+                LinearWeights::F32(w) => with_f32(&wt, |a| transpose_into(a, o, inp, w, out, at))?,
+                LinearWeights::Bf16(m) => with_f32(&wt, |a| m.put_rows(a, o, at))?,
+            }
             drop(wt);
             if let (true, Some(bt)) = (with_bias, bt) {
                 with_f32(&bt, |v| b.extend_from_slice(v))?;
@@ -190,7 +203,10 @@ impl Linear {
 
     /// x: [n, inp] → y: [n, out]
     fn forward(&self, x: &[f32], n: usize, y: &mut [f32]) {
-        matmul(x, n, self.inp, &self.w, self.out, y);
+        match &self.w {
+            LinearWeights::F32(w) => matmul(x, n, self.inp, w, self.out, y),
+            LinearWeights::Bf16(m) => m.matmul(x, n, y),
+        }
         if let Some(b) = &self.b {
             for row in y.chunks_exact_mut(self.out) {
                 for (v, &bb) in row.iter_mut().zip(b) {
@@ -493,7 +509,16 @@ pub struct Decoder {
 impl Decoder {
     /// Takes the tensors out of a checkpoint-named f32 map (after any LoRA merge), one at a
     /// time, so memory holds each weight once.
-    pub fn new(spec: &ModelSpec, mut w: HashMap<String, Tensor>) -> Result<Self> {
+    pub fn new(spec: &ModelSpec, w: HashMap<String, Tensor>) -> Result<Self> {
+        Decoder::with_format(spec, w, WeightFormat::F32)
+    }
+
+    /// As [`Decoder::new`], with the matrix products' weights in `format`.
+    pub fn with_format(
+        spec: &ModelSpec,
+        mut w: HashMap<String, Tensor>,
+        format: WeightFormat,
+    ) -> Result<Self> {
         let mut take = |name: &str| -> Result<Tensor> {
             w.remove(name)
                 .ok_or_else(|| Error::internal(format!("tensor {name} was not loaded")))
@@ -520,24 +545,30 @@ impl Decoder {
                 Ok((w, b))
             };
             let qkv = if spec.fused_qkv {
-                Linear::stack(vec![part("self_attn.qkv_proj", false)?])?
+                Linear::stack(vec![part("self_attn.qkv_proj", false)?], format)?
             } else {
-                Linear::stack(vec![
-                    part("self_attn.q_proj", spec.qkv_bias)?,
-                    part("self_attn.k_proj", spec.qkv_bias)?,
-                    part("self_attn.v_proj", spec.qkv_bias)?,
-                ])?
+                Linear::stack(
+                    vec![
+                        part("self_attn.q_proj", spec.qkv_bias)?,
+                        part("self_attn.k_proj", spec.qkv_bias)?,
+                        part("self_attn.v_proj", spec.qkv_bias)?,
+                    ],
+                    format,
+                )?
             };
-            let o = Linear::stack(vec![part("self_attn.o_proj", spec.o_bias)?])?;
+            let o = Linear::stack(vec![part("self_attn.o_proj", spec.o_bias)?], format)?;
             let gate_up = if spec.fused_gate_up {
-                Linear::stack(vec![part("mlp.gate_up_proj", false)?])?
+                Linear::stack(vec![part("mlp.gate_up_proj", false)?], format)?
             } else {
-                Linear::stack(vec![
-                    part("mlp.gate_proj", spec.mlp_bias)?,
-                    part("mlp.up_proj", spec.mlp_bias)?,
-                ])?
+                Linear::stack(
+                    vec![
+                        part("mlp.gate_proj", spec.mlp_bias)?,
+                        part("mlp.up_proj", spec.mlp_bias)?,
+                    ],
+                    format,
+                )?
             };
-            let down = Linear::stack(vec![part("mlp.down_proj", spec.mlp_bias)?])?;
+            let down = Linear::stack(vec![part("mlp.down_proj", spec.mlp_bias)?], format)?;
             let qk_norm = if spec.qk_norm {
                 // Always Llama style (Qwen3RMSNorm), per head over head_dim.
                 Some((
@@ -625,7 +656,11 @@ impl Decoder {
         n += self.lm_head.as_ref().map_or(0, Vec::len);
         for l in &self.layers {
             for lin in [&l.qkv, &l.o, &l.gate_up, &l.down] {
-                n += lin.w.len() + lin.b.as_ref().map_or(0, Vec::len);
+                n += match &lin.w {
+                    LinearWeights::F32(w) => w.len(),
+                    LinearWeights::Bf16(m) => m.bytes() / 4,
+                };
+                n += lin.b.as_ref().map_or(0, Vec::len);
             }
         }
         n * std::mem::size_of::<f32>()

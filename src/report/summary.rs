@@ -54,6 +54,10 @@ pub struct Inputs {
     pub candidate: InputFile,
     /// `null` path and fingerprint when the built-in default policy was used.
     pub policy: PolicySource,
+    /// How the answers behind each grades file were computed, when not f32 (from the grades'
+    /// and answers' run.json records): e.g. bf16 weights, an approximation of the model.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub approximations: Vec<String>,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
