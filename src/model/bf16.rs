@@ -84,39 +84,42 @@ impl Bf16Matrix {
             return;
         }
         SCRATCH.with_borrow_mut(|(xp, yt)| {
-            xp.clear();
-            for t in 0..n {
-                let row = &x[t * inp..(t + 1) * inp];
-                for p in 0..pairs {
-                    let lo = to_bf16(row[2 * p]) as u32;
-                    let hi = row.get(2 * p + 1).map_or(0, |&v| to_bf16(v) as u32);
-                    xp.push(lo | (hi << 16));
-                }
-            }
+            pack_activations(x, n, inp, xp);
             let tile = n * LANES;
             if yt.len() < self.blocks * tile {
                 yt.resize(self.blocks * tile, 0.0);
             }
             let xp: &[u32] = xp;
             let fast = has_avx512_bf16();
-            let one = |(b, ys): (usize, &mut [f32])| {
-                let wb = &self.packed[b * pairs * LANES..(b + 1) * pairs * LANES];
+            // Blocks go in pairs: one pass over the activations feeds two weight blocks.
+            let one = |(bp, ys): (usize, &mut [f32])| {
+                let b0 = 2 * bp;
+                let nb = (self.blocks - b0).min(2);
+                let wb = &self.packed[b0 * pairs * LANES..(b0 + nb) * pairs * LANES];
                 if fast {
                     #[cfg(target_arch = "x86_64")]
-                    // SAFETY: the CPU has AVX-512F and AVX-512 BF16 (checked by `fast`); the
-                    // slices hold pairs·16 weights, n·pairs activations and n·16 outputs.
+                    // SAFETY: the CPU has AVX-512F and AVX-512 BF16 (checked by `fast`); `block`
+                    // checks the slice lengths itself.
                     unsafe {
-                        avx512::block(wb, xp, n, pairs, ys)
+                        avx512::blocks(wb, nb, xp, n, pairs, ys)
                     }
                 } else {
-                    block_scalar(wb, xp, n, pairs, ys);
+                    for k in 0..nb {
+                        block_scalar(
+                            &wb[k * pairs * LANES..(k + 1) * pairs * LANES],
+                            xp,
+                            n,
+                            pairs,
+                            &mut ys[k * tile..(k + 1) * tile],
+                        );
+                    }
                 }
             };
             let work = &mut yt[..self.blocks * tile];
             if n * out * inp >= 1 << 18 {
-                work.par_chunks_mut(tile).enumerate().for_each(one);
+                work.par_chunks_mut(2 * tile).enumerate().for_each(one);
             } else {
-                work.chunks_mut(tile).enumerate().for_each(one);
+                work.chunks_mut(2 * tile).enumerate().for_each(one);
             }
             for t in 0..n {
                 let yr = &mut y[t * out..(t + 1) * out];
@@ -126,6 +129,37 @@ impl Bf16Matrix {
                 }
             }
         });
+    }
+}
+
+/// Token groups of the kernels: eights, then fours, then ones, in token order.
+fn groups(n: usize) -> impl Iterator<Item = (usize, usize)> {
+    let eights = n / 8 * 8;
+    let fours = eights + (n - eights) / 4 * 4;
+    (0..eights)
+        .step_by(8)
+        .map(|t| (t, 8))
+        .chain((eights..fours).step_by(4).map(|t| (t, 4)))
+        .chain((fours..n).map(|t| (t, 1)))
+}
+
+/// Activations as bf16 pairs, group by group: the group of `size` tokens starting at token
+/// `t0` occupies `t0·pairs .. (t0 + size)·pairs`, pair p of its token t at `p·size + t`, so
+/// one step of the kernel reads its tokens' values from one place.
+fn pack_activations(x: &[f32], n: usize, inp: usize, xp: &mut Vec<u32>) {
+    let pairs = inp.div_ceil(2);
+    xp.clear();
+    xp.resize(n * pairs, 0);
+    for (t0, size) in groups(n) {
+        let g = &mut xp[t0 * pairs..(t0 + size) * pairs];
+        for t in 0..size {
+            let row = &x[(t0 + t) * inp..(t0 + t + 1) * inp];
+            for p in 0..pairs {
+                let lo = to_bf16(row[2 * p]) as u32;
+                let hi = row.get(2 * p + 1).map_or(0, |&v| to_bf16(v) as u32);
+                g[p * size + t] = lo | (hi << 16);
+            }
+        }
     }
 }
 
@@ -143,66 +177,93 @@ fn has_avx512_bf16() -> bool {
 
 /// The portable form of one block: per lane, the sum over pairs of lo·lo + hi·hi in f32.
 fn block_scalar(wb: &[u32], xp: &[u32], n: usize, pairs: usize, ys: &mut [f32]) {
-    for t in 0..n {
-        let xr = &xp[t * pairs..(t + 1) * pairs];
-        for l in 0..LANES {
-            let mut acc = 0f32;
-            for (p, &xv) in xr.iter().enumerate() {
-                let wv = wb[p * LANES + l];
-                acc += from_bf16(wv as u16) * from_bf16(xv as u16)
-                    + from_bf16((wv >> 16) as u16) * from_bf16((xv >> 16) as u16);
+    for (t0, size) in groups(n) {
+        let g = &xp[t0 * pairs..(t0 + size) * pairs];
+        for t in 0..size {
+            for l in 0..LANES {
+                let mut acc = 0f32;
+                for p in 0..pairs {
+                    let (wv, xv) = (wb[p * LANES + l], g[p * size + t]);
+                    acc += from_bf16(wv as u16) * from_bf16(xv as u16)
+                        + from_bf16((wv >> 16) as u16) * from_bf16((xv >> 16) as u16);
+                }
+                ys[(t0 + t) * LANES + l] = acc;
             }
-            ys[t * LANES + l] = acc;
         }
     }
 }
 
 #[cfg(target_arch = "x86_64")]
 mod avx512 {
-    use super::LANES;
+    use super::{groups, LANES};
     use std::arch::x86_64::*;
 
-    /// One block of 16 output columns for every token, tokens in groups of `T`.
+    /// `nb` (1 or 2) consecutive blocks of 16 output columns for every token, a token group at
+    /// a time; outputs [nb][n][16].
     #[target_feature(enable = "avx512f,avx512bf16")]
-    pub unsafe fn block(wb: &[u32], xp: &[u32], n: usize, pairs: usize, ys: &mut [f32]) {
-        let mut t0 = 0;
-        while t0 + 8 <= n {
-            group::<8>(wb, xp, t0, pairs, ys);
-            t0 += 8;
-        }
-        while t0 + 4 <= n {
-            group::<4>(wb, xp, t0, pairs, ys);
-            t0 += 4;
-        }
-        while t0 < n {
-            group::<1>(wb, xp, t0, pairs, ys);
-            t0 += 1;
+    pub unsafe fn blocks(
+        wb: &[u32],
+        nb: usize,
+        xp: &[u32],
+        n: usize,
+        pairs: usize,
+        ys: &mut [f32],
+    ) {
+        assert!(
+            (1..=2).contains(&nb)
+                && wb.len() >= nb * pairs * LANES
+                && xp.len() >= n * pairs
+                && ys.len() >= nb * n * LANES
+        );
+        for (t0, size) in groups(n) {
+            match (nb, size) {
+                (2, 8) => group::<8, 2>(wb, xp, t0, n, pairs, ys),
+                (2, 4) => group::<4, 2>(wb, xp, t0, n, pairs, ys),
+                (2, _) => group::<1, 2>(wb, xp, t0, n, pairs, ys),
+                (_, 8) => group::<8, 1>(wb, xp, t0, n, pairs, ys),
+                (_, 4) => group::<4, 1>(wb, xp, t0, n, pairs, ys),
+                _ => group::<1, 1>(wb, xp, t0, n, pairs, ys),
+            }
         }
     }
 
     #[target_feature(enable = "avx512f,avx512bf16")]
-    unsafe fn group<const T: usize>(
+    unsafe fn group<const T: usize, const B: usize>(
         wb: &[u32],
         xp: &[u32],
         t0: usize,
+        n: usize,
         pairs: usize,
         ys: &mut [f32],
     ) {
-        let mut acc = [_mm512_setzero_ps(); T];
-        let x = &xp[t0 * pairs..(t0 + T) * pairs];
-        let w = &wb[..pairs * LANES];
+        let mut acc = [[_mm512_setzero_ps(); T]; B];
+        // SAFETY (whole loop): `blocks` checked that wb holds B·pairs·16 values and xp the
+        // group's pairs·T values starting at t0·pairs; the pointers stay inside those ranges.
+        let x = xp.as_ptr().add(t0 * pairs);
+        let w = wb.as_ptr();
         for p in 0..pairs {
-            // SAFETY: w holds pairs·16 values, so 16 start at p·16.
-            let wv: __m512bh =
-                std::mem::transmute(_mm512_loadu_si512(w.as_ptr().add(p * LANES) as *const _));
-            for (t, a) in acc.iter_mut().enumerate() {
-                let xv: __m512bh = std::mem::transmute(_mm512_set1_epi32(x[t * pairs + p] as i32));
-                *a = _mm512_dpbf16_ps(*a, xv, wv);
+            let mut wv: [__m512bh; B] = [std::mem::zeroed(); B];
+            for (k, v) in wv.iter_mut().enumerate() {
+                *v = std::mem::transmute::<__m512i, __m512bh>(_mm512_loadu_si512(
+                    w.add((k * pairs + p) * LANES) as *const _,
+                ));
+            }
+            let xr = x.add(p * T);
+            #[allow(clippy::needless_range_loop)]
+            // t walks the activations and accumulators together
+            for t in 0..T {
+                let xv =
+                    std::mem::transmute::<__m512i, __m512bh>(_mm512_set1_epi32(*xr.add(t) as i32));
+                for (ak, &wk) in acc.iter_mut().zip(&wv) {
+                    ak[t] = _mm512_dpbf16_ps(ak[t], xv, wk);
+                }
             }
         }
-        for (t, a) in acc.iter().enumerate() {
-            let dst = &mut ys[(t0 + t) * LANES..(t0 + t + 1) * LANES];
-            _mm512_storeu_ps(dst.as_mut_ptr(), *a);
+        for (k, ak) in acc.iter().enumerate() {
+            for (t, a) in ak.iter().enumerate() {
+                let at = (k * n + t0 + t) * LANES;
+                _mm512_storeu_ps(ys[at..at + LANES].as_mut_ptr(), *a);
+            }
         }
     }
 }
@@ -227,7 +288,7 @@ mod tests {
     /// Both kernels against the product of the bf16-rounded values in f64.
     #[test]
     fn matmul_is_the_product_of_rounded_values() {
-        let (n, inp, out) = (11, 37, 21);
+        let (n, inp, out) = (13, 37, 37);
         let w: Vec<f32> = (0..out * inp)
             .map(|i| ((i * 37 % 101) as f32 - 50.0) / 17.0)
             .collect();
@@ -255,17 +316,7 @@ mod tests {
         // The portable kernel gives the same products.
         let mut ys = vec![0.0; n * LANES];
         let mut xp = Vec::new();
-        for t in 0..n {
-            for p in 0..m.pairs {
-                let lo = to_bf16(x[t * inp + 2 * p]) as u32;
-                let hi = if 2 * p + 1 < inp {
-                    to_bf16(x[t * inp + 2 * p + 1]) as u32
-                } else {
-                    0
-                };
-                xp.push(lo | (hi << 16));
-            }
-        }
+        pack_activations(&x, n, inp, &mut xp);
         block_scalar(&m.packed[..m.pairs * LANES], &xp, n, m.pairs, &mut ys);
         for t in 0..n {
             for l in 0..LANES {
