@@ -24,12 +24,13 @@ import time
 HERE = os.path.dirname(os.path.abspath(__file__))
 
 
-def liftgate_job(binary, model, questions, batch, threads, new_tokens, ignore_eos=True):
+def liftgate_job(binary, model, questions, batch, threads, new_tokens, ignore_eos=True,
+                 weights="f32"):
     with tempfile.TemporaryDirectory() as tmp:
         out = os.path.join(tmp, "answers.jsonl")
         cmd = [binary, "answer", "--model", model, "--questions", questions, "--out", out,
                "--max-new-tokens", str(new_tokens), "--batch", str(batch),
-               "--threads", str(threads)]
+               "--threads", str(threads), "--weights", weights]
         if ignore_eos:
             cmd.append("--ignore-eos")
         t0 = time.perf_counter()
@@ -122,7 +123,8 @@ def main():
     ap.add_argument("--models", required=True)
     ap.add_argument("--questions", default=os.path.join(HERE, "bench-questions.jsonl"))
     ap.add_argument("--shapes", default="llama100m-shape,qwen05-shape")
-    ap.add_argument("--liftgate-batches", default="1,16,32")
+    ap.add_argument("--liftgate-configs", default="f32:1,f32:16,f32:32,bf16:32",
+                    help="weights:batch pairs (f32 equals the reference; bf16 approximates)")
     ap.add_argument("--peer-configs", default="f32:1,f32:16,bf16:16,bf16:32")
     ap.add_argument("--batch1-questions", type=int, default=16,
                     help="questions for batch-1 runs on both sides (batch 1 is slow)")
@@ -144,7 +146,8 @@ def main():
     print(f"memory bandwidth ({a.threads} threads, triad best): {triad:.1f} GB/s", flush=True)
 
     jobs = []
-    lg = [("liftgate", "f32", int(b)) for b in a.liftgate_batches.split(",")]
+    lg = [("liftgate", c.split(":")[0], int(c.split(":")[1]))
+          for c in a.liftgate_configs.split(",")]
     peer = [("peer", c.split(":")[0], int(c.split(":")[1])) for c in a.peer_configs.split(",")]
     # Alternate sides: liftgate, peer, liftgate, peer, ...
     for i in range(max(len(lg), len(peer))):
@@ -160,7 +163,8 @@ def main():
             for side, dtype, batch in jobs:
                 qs = q_small if batch == 1 else a.questions
                 if side == "liftgate":
-                    r = liftgate_job(a.liftgate, model, qs, batch, a.threads, a.new_tokens)
+                    r = liftgate_job(a.liftgate, model, qs, batch, a.threads, a.new_tokens,
+                                     weights=dtype)
                 else:
                     r = peer_job(a.python, model, qs, dtype, batch, a.threads, a.new_tokens,
                                  a.batch1_questions if batch == 1 else 0)
@@ -173,9 +177,10 @@ def main():
 
     summary = []
     print()
-    print("| model | liftgate best (f32) | peer best | ratio | liftgate batch 1 | bound (batch 1) "
-          "| of bound | peer f32 batch 1 | liftgate peak RSS | weights |")
-    print("|---|---|---|---|---|---|---|---|---|---|")
+    print("| model | liftgate best (f32) | peer best | ratio | liftgate bf16 (ratio) "
+          "| liftgate batch 1 | bound (batch 1) | of bound | peer f32 batch 1 "
+          "| liftgate peak RSS | weights |")
+    print("|---|---|---|---|---|---|---|---|---|---|---|")
     for shape in a.shapes.split(","):
         rows = [r for r in results if r["shape"] == shape]
 
@@ -186,7 +191,10 @@ def main():
 
         lg_cfg = {(d, b): med("liftgate", d, b) for _, d, b in lg}
         peer_cfg = {(d, b): med("peer", d, b) for _, d, b in peer}
-        lg_best = max(lg_cfg.items(), key=lambda kv: kv[1])
+        lg_best = max(((k, v) for k, v in lg_cfg.items() if k[0] == "f32"),
+                      key=lambda kv: kv[1])
+        lg16 = [(k, v) for k, v in lg_cfg.items() if k[0] == "bf16"]
+        lg16_best = max(lg16, key=lambda kv: kv[1]) if lg16 else None
         peer_best = max(peer_cfg.items(), key=lambda kv: kv[1])
         wb = weight_bytes(os.path.join(a.models, shape))
         bound = triad * 1e9 / wb
@@ -199,12 +207,17 @@ def main():
              "peer_best": {"config": f"{peer_best[0][0]} batch {peer_best[0][1]}",
                            "tokens_per_s": peer_best[1]},
              "ratio": round(lg_best[1] / peer_best[1], 2),
+             "liftgate_bf16_best": None if not lg16_best else
+             {"config": f"batch {lg16_best[0][1]}", "tokens_per_s": lg16_best[1],
+              "ratio": round(lg16_best[1] / peer_best[1], 2)},
              "weight_bytes": wb, "batch1_bound_tokens_per_s": round(bound, 1),
              "batch1_share_of_bound": round(lg1 / bound, 2) if lg1 else None,
              "liftgate_peak_rss_MiB": rss}
         summary.append(s)
         print(f"| {shape} | {lg_best[1]:.1f} (batch {lg_best[0][1]}) | {peer_best[1]:.1f} "
               f"({peer_best[0][0]}, batch {peer_best[0][1]}) | {s['ratio']:.2f}x | "
+              + (f"{lg16_best[1]:.1f} ({lg16_best[1] / peer_best[1]:.2f}x) | " if lg16_best
+                 else "- | ") +
               f"{lg1 or float('nan'):.1f} | {bound:.1f} | "
               f"{(s['batch1_share_of_bound'] or float('nan')) * 100:.0f}% | "
               f"{peer1 or float('nan'):.1f} | {rss:.0f} MiB | {wb / 2**20:.0f} MiB |")

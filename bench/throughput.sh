@@ -7,7 +7,7 @@
 #
 # First run: creates bench/.venv-peer (PyTorch, transformers from PyPI; a few GB) and the two
 # seeded random-init benchmark models under bench/models (about a minute). Environment:
-# THREADS (2), NEW_TOKENS (32), ROUNDS (2), SHAPES, LIFTGATE_BATCHES (1,16,32),
+# THREADS (2), NEW_TOKENS (32), ROUNDS (2), SHAPES, LIFTGATE_CONFIGS (f32:1,f32:16,f32:32,bf16:32),
 # PEER_CONFIGS (f32:1,f32:16,bf16:16,bf16:32), PYTHON (python3 used to create the venv).
 set -euo pipefail
 here="$(cd "$(dirname "$0")" && pwd)"
@@ -37,7 +37,7 @@ mkdir -p "$here/results"
   --new-tokens "${NEW_TOKENS:-32}" \
   --rounds "${ROUNDS:-2}" \
   --shapes "${SHAPES:-llama100m-shape,qwen05-shape}" \
-  --liftgate-batches "${LIFTGATE_BATCHES:-1,16,32}" \
+  --liftgate-configs "${LIFTGATE_CONFIGS:-f32:1,f32:16,f32:32,bf16:32}" \
   --peer-configs "${PEER_CONFIGS:-f32:1,f32:16,bf16:16,bf16:32}" \
   --refill-model "$root/demo/models/base" \
   --refill-questions "$root/eval-sets/ferry-faq.jsonl" \
