@@ -4,7 +4,7 @@
 //! nearest even, as `torch.Tensor.bfloat16()` does); each product sums pairs of bf16 products
 //! into f32 accumulators. On CPUs with AVX-512 BF16 that is one `vdpbf16ps` instruction per 32
 //! multiply-adds, twice the f32 rate, and the weights take half the memory. Everything outside
-//! the matrix products (norms, attention, softmax, the output head) stays f32. The answers are
+//! the matrix products (embedding lookup, norms, attention, softmax) stays f32. The answers are
 //! not those of the f32 model: runs say so (run.json `compute_dtype`), and the agreement with
 //! f32 answers is measured by `tests/runner_reference.rs`.
 //!

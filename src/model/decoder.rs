@@ -499,8 +499,10 @@ pub struct Decoder {
     spec: ModelSpec,
     /// [vocab, hidden]
     embed: Vec<f32>,
-    /// [vocab, hidden]; None when tied to the embedding.
+    /// [vocab, hidden]; None when tied to the embedding (or held as `head_bf16`).
     lm_head: Option<Vec<f32>>,
+    /// The output head in bf16 when the weights are (`--weights bf16`).
+    head_bf16: Option<Bf16Matrix>,
     final_norm: Vec<f32>,
     layers: Vec<Layer>,
     eps: f32,
@@ -599,11 +601,23 @@ impl Decoder {
             });
         }
         let final_norm = norm(take("model.norm.weight")?)?;
-        let lm_head = w.remove(LM_HEAD).map(|h| flat(&h)).transpose()?;
+        let mut lm_head = w.remove(LM_HEAD).map(|h| flat(&h)).transpose()?;
+        let head_bf16 = match format {
+            WeightFormat::F32 => None,
+            WeightFormat::Bf16 => {
+                let head = lm_head.as_deref().unwrap_or(&embed);
+                let rows = head.len() / spec.hidden_size.max(1);
+                let mut m = Bf16Matrix::new(rows, spec.hidden_size);
+                m.put_rows(head, rows, 0);
+                lm_head = None;
+                Some(m)
+            }
+        };
         let d = Decoder {
             spec: spec.clone(),
             embed,
             lm_head,
+            head_bf16,
             final_norm,
             layers,
             eps: spec.rms_norm_eps as f32,
@@ -654,6 +668,7 @@ impl Decoder {
     pub fn weight_bytes(&self) -> usize {
         let mut n = self.embed.len() + self.final_norm.len();
         n += self.lm_head.as_ref().map_or(0, Vec::len);
+        n += self.head_bf16.as_ref().map_or(0, |m| m.bytes() / 4);
         for l in &self.layers {
             for lin in [&l.qkv, &l.o, &l.gate_up, &l.down] {
                 n += match &lin.w {
@@ -922,9 +937,14 @@ impl Decoder {
         }
         let normed = sized(&mut ws.last_normed, ns * hidden);
         rms_norm_rows(last, &self.final_norm, eps, hidden, normed);
-        let head = self.lm_head.as_deref().unwrap_or(&self.embed);
         let logits = sized(&mut ws.logits, ns * vocab);
-        matmul_t(normed, ns, hidden, head, vocab, logits);
+        match &self.head_bf16 {
+            Some(m) => m.matmul(normed, ns, logits),
+            None => {
+                let head = self.lm_head.as_deref().unwrap_or(&self.embed);
+                matmul_t(normed, ns, hidden, head, vocab, logits);
+            }
+        }
         if let Some(c) = s.final_softcap {
             let c = c as f32;
             for v in logits.iter_mut() {
