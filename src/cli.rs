@@ -51,7 +51,7 @@ pub struct GenerationArgs {
     #[arg(long)]
     pub ignore_eos: bool,
     /// Weight format of the runner. `f32` computes as the reference library does; `bf16`
-    /// rounds weights and activations of the matrix products to bfloat16 (about twice as fast
+    /// rounds weights and activations of the matrix products to bfloat16 (about 1.5x as fast
     /// on CPUs with AVX-512 BF16, half the weight memory) and is an approximation of the model,
     /// recorded as such in run.json and the report.
     #[arg(long, value_enum, value_name = "FORMAT", default_value_t = WeightFormat::F32)]

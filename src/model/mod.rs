@@ -20,7 +20,7 @@ pub enum WeightFormat {
     #[default]
     F32,
     /// bf16 weights and activations in the matrix products, f32 accumulation and everything
-    /// else f32: about twice as fast on CPUs with AVX-512 BF16, an approximation of the model.
+    /// else f32: about 1.5x as fast on CPUs with AVX-512 BF16, an approximation of the model.
     Bf16,
 }
 
