@@ -4,6 +4,8 @@
 //! are identical apart from `ms`. (`weigh` alone: tests/weigh_cli.rs,
 //! `same_inputs_and_seed_give_identical_reports`.)
 
+mod common;
+
 use serde_json::Value;
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
@@ -68,19 +70,6 @@ fn vet_run() -> (tempfile::TempDir, Output) {
     (tmp, out)
 }
 
-/// Answers rows without the wall-clock `ms` field.
-fn answers_without_timings(path: &Path) -> Vec<Value> {
-    std::fs::read_to_string(path)
-        .unwrap()
-        .lines()
-        .map(|l| {
-            let mut v: Value = serde_json::from_str(l).unwrap();
-            v.as_object_mut().unwrap().remove("ms").expect("ms field");
-            v
-        })
-        .collect()
-}
-
 /// Object keys anywhere in a JSON tree.
 fn keys(v: &Value, out: &mut Vec<String>) {
     match v {
@@ -115,8 +104,8 @@ fn vet_twice_gives_identical_grades_summary_and_report() {
     }
     for file in ["baseline.answers.jsonl", "candidate.answers.jsonl"] {
         assert_eq!(
-            answers_without_timings(&ra.join(file)),
-            answers_without_timings(&rb.join(file)),
+            common::answers_without_ms(&ra.join(file)),
+            common::answers_without_ms(&rb.join(file)),
             "{file}: answers differ beyond the ms timings"
         );
     }

@@ -5,6 +5,8 @@
 //! with no id missing or repeated; a journal made with other settings must be refused.
 #![cfg(unix)]
 
+mod common;
+
 use serde_json::Value;
 use std::collections::HashSet;
 use std::path::{Path, PathBuf};
@@ -79,19 +81,6 @@ fn output(mut c: Command) -> Output {
 
 fn journal(out: &Path) -> PathBuf {
     PathBuf::from(format!("{}.partial", out.display()))
-}
-
-/// The rows of an answers file without their timings.
-fn rows_without_ms(path: &Path) -> Vec<Value> {
-    std::fs::read_to_string(path)
-        .unwrap()
-        .lines()
-        .map(|l| {
-            let mut v: Value = serde_json::from_str(l).unwrap();
-            v.as_object_mut().unwrap().remove("ms").expect("ms field");
-            v
-        })
-        .collect()
 }
 
 /// Checks a journal as a resuming run will read it: a header line, then answer rows with
@@ -188,7 +177,7 @@ fn reference() -> &'static (PathBuf, Vec<Value>) {
         let o = output(answer_cmd(&set, &out, &[]));
         assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
         assert!(!journal(&out).exists(), "the journal is removed when done");
-        let rows = rows_without_ms(&out);
+        let rows = common::answers_without_ms(&out);
         assert_eq!(rows.len(), N);
         (set, rows)
     })
@@ -236,7 +225,7 @@ fn a_cut_journal_resumes_to_the_uninterrupted_answers() {
         "{err}"
     );
     assert!(err.contains("line 5, cut off mid-write, dropped"), "{err}");
-    assert_eq!(&rows_without_ms(&out), expected);
+    assert_eq!(&common::answers_without_ms(&out), expected);
     assert!(!journal(&out).exists());
     let run: Value = serde_json::from_str(
         &std::fs::read_to_string(format!("{}.run.json", out.display())).unwrap(),
@@ -255,7 +244,7 @@ fn a_cut_journal_resumes_to_the_uninterrupted_answers() {
         err.contains(&format!("1 of {N} questions already answered")),
         "{err}"
     );
-    assert_eq!(&rows_without_ms(&out), expected);
+    assert_eq!(&common::answers_without_ms(&out), expected);
 
     // Killed after the last answer was saved but before the answers file was written: every
     // answer is in the journal (in completion order), nothing is left to compute.
@@ -325,7 +314,7 @@ fn a_journal_from_another_run_is_refused_unless_restarting() {
     let err = String::from_utf8_lossy(&o.stderr);
     assert!(o.status.success(), "{err}");
     assert!(err.contains("continuing from"), "{err}");
-    assert_eq!(&rows_without_ms(&out), expected);
+    assert_eq!(&common::answers_without_ms(&out), expected);
     // --restart starts over (here over the finished file) with whatever settings are given.
     let o = output(answer_cmd(
         set,
@@ -338,7 +327,7 @@ fn a_journal_from_another_run_is_refused_unless_restarting() {
         !err.contains("continuing") && !err.contains("already complete"),
         "{err}"
     );
-    let nine: Vec<Value> = rows_without_ms(&out);
+    let nine: Vec<Value> = common::answers_without_ms(&out);
     assert_eq!(nine.len(), N);
     assert!(nine.iter().all(|r| r["new_tokens"] == 9));
     assert!(!journal(&out).exists());
@@ -390,7 +379,7 @@ fn sigkill_at_random_points_then_resuming_gives_the_uninterrupted_answers() {
     );
     let o = output(answer_cmd(set, &out, &[]));
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    let rows = rows_without_ms(&out);
+    let rows = common::answers_without_ms(&out);
     let ids: HashSet<&str> = rows.iter().map(|r| r["id"].as_str().unwrap()).collect();
     assert_eq!(ids.len(), N, "no id missing or repeated");
     assert_eq!(&rows, expected);
@@ -431,7 +420,7 @@ fn ctrl_c_and_sigterm_stop_cleanly_and_say_how_to_continue() {
     }
     let o = output(answer_cmd(set, &out, &[]));
     assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
-    assert_eq!(&rows_without_ms(&out), expected);
+    assert_eq!(&common::answers_without_ms(&out), expected);
 }
 
 fn vet_cmd(cwd: &Path, extra: &[&str]) -> Command {
@@ -530,8 +519,8 @@ fn vet_continues_a_killed_then_stopped_run_in_its_own_directory() {
     assert_eq!(report_dir(&work), Some(dir.clone()));
     for f in ["baseline.answers.jsonl", "candidate.answers.jsonl"] {
         assert_eq!(
-            rows_without_ms(&dir.join(f)),
-            rows_without_ms(&reference_dir.join(f)),
+            common::answers_without_ms(&dir.join(f)),
+            common::answers_without_ms(&reference_dir.join(f)),
             "{f}"
         );
         assert!(!dir.join(format!("{f}.partial")).exists());
