@@ -128,26 +128,34 @@ pub fn run_json_path(file: &Path) -> PathBuf {
     PathBuf::from(s)
 }
 
+/// `<file>.run.json` parsed, or None when there is no such record.
+fn run_record(file: &Path) -> Result<Option<serde_json::Value>> {
+    let run = run_json_path(file);
+    let bytes = match std::fs::read(&run) {
+        Ok(b) => b,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
+        Err(e) => return Err(Error::file(&run, format!("cannot read: {e}"))),
+    };
+    serde_json::from_slice(&bytes)
+        .map(Some)
+        .map_err(|e| Error::line(&run, e.line(), format!("not valid JSON: {e}")))
+}
+
+/// The `compute_dtype` recorded in `<file>.run.json`, if the record exists and has one.
+pub fn recorded_compute_dtype(file: &Path) -> Option<String> {
+    let value = run_record(file).ok()??;
+    value.get("compute_dtype")?.as_str().map(str::to_string)
+}
+
 /// When `<file>.run.json` exists and records the question set's fingerprint
 /// (`questions.fingerprint`), it must be `set`'s: the same ids in a changed set (edited
 /// references, expectations or questions) would otherwise be scored or weighed silently
 /// against answers made for other questions.
-/// The `compute_dtype` recorded in `<file>.run.json`, if the record exists and has one.
-pub fn recorded_compute_dtype(file: &Path) -> Option<String> {
-    let bytes = std::fs::read(run_json_path(file)).ok()?;
-    let value: serde_json::Value = serde_json::from_slice(&bytes).ok()?;
-    value.get("compute_dtype")?.as_str().map(str::to_string)
-}
-
 pub fn check_set_fingerprint(file: &Path, set: &QuestionSet) -> Result<()> {
     let run = run_json_path(file);
-    let bytes = match std::fs::read(&run) {
-        Ok(b) => b,
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(()),
-        Err(e) => return Err(Error::file(&run, format!("cannot read: {e}"))),
+    let Some(value) = run_record(file)? else {
+        return Ok(());
     };
-    let value: serde_json::Value = serde_json::from_slice(&bytes)
-        .map_err(|e| Error::line(&run, e.line(), format!("not valid JSON: {e}")))?;
     let Some(recorded) = value.pointer("/questions/fingerprint") else {
         return Ok(());
     };

@@ -72,10 +72,6 @@ impl Bf16Matrix {
         }
     }
 
-    pub fn bytes(&self) -> usize {
-        self.packed.len() * 4
-    }
-
     /// y[n, out] = bf16(x)[n, inp] · bf16(W)ᵀ with f32 accumulation.
     pub fn matmul(&self, x: &[f32], n: usize, y: &mut [f32]) {
         let (inp, out, pairs) = (self.inp, self.out, self.pairs);

@@ -61,24 +61,6 @@ struct SavedPrefix {
 }
 
 impl KvCache {
-    pub fn slots(&self) -> usize {
-        self.slots
-    }
-
-    /// Positions each slot can hold.
-    pub fn capacity(&self) -> usize {
-        self.capacity
-    }
-
-    /// Positions cached in `slot`.
-    pub fn len(&self, slot: usize) -> usize {
-        self.lens[slot]
-    }
-
-    pub fn is_empty(&self, slot: usize) -> bool {
-        self.lens[slot] == 0
-    }
-
     /// Empties `slot` (its old keys are overwritten by the next sequence).
     pub fn reset(&mut self, slot: usize) {
         self.lens[slot] = 0;
@@ -132,6 +114,8 @@ pub struct Workspace {
     sin: Vec<f32>,
     tok_slot: Vec<usize>,
     tok_pos: Vec<usize>,
+    /// Which slots this call names (each at most once).
+    slot_used: Vec<bool>,
     last: Vec<f32>,
     last_normed: Vec<f32>,
     logits: Vec<f32>,
@@ -664,23 +648,6 @@ impl Decoder {
         &self.spec
     }
 
-    /// Bytes of weights one decoding step reads (every matrix once).
-    pub fn weight_bytes(&self) -> usize {
-        let mut n = self.embed.len() + self.final_norm.len();
-        n += self.lm_head.as_ref().map_or(0, Vec::len);
-        n += self.head_bf16.as_ref().map_or(0, |m| m.bytes() / 4);
-        for l in &self.layers {
-            for lin in [&l.qkv, &l.o, &l.gate_up, &l.down] {
-                n += match &lin.w {
-                    LinearWeights::F32(w) => w.len(),
-                    LinearWeights::Bf16(m) => m.bytes() / 4,
-                };
-                n += lin.b.as_ref().map_or(0, Vec::len);
-            }
-        }
-        n * std::mem::size_of::<f32>()
-    }
-
     /// A cache of `slots` sequences of up to `capacity` positions each.
     pub fn new_cache(&self, slots: usize, capacity: usize) -> KvCache {
         let kv_dim = self.spec.num_kv_heads * self.spec.head_dim;
@@ -727,7 +694,9 @@ impl Decoder {
         // Validate and lay out the tokens.
         ws.tok_slot.clear();
         ws.tok_pos.clear();
-        let mut seen = vec![false; cache.slots];
+        let seen = &mut ws.slot_used;
+        seen.clear();
+        seen.resize(cache.slots, false);
         for seg in segs {
             if seg.slot >= cache.slots || std::mem::replace(&mut seen[seg.slot], true) {
                 return Err(Error::internal(format!(
