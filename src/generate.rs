@@ -62,25 +62,7 @@ impl Generated {
     }
 }
 
-/// Index of the largest value; the first one on ties (as `torch.argmax`).
-pub fn argmax(xs: &[f32]) -> usize {
-    let mut best = 0;
-    for (i, &x) in xs.iter().enumerate() {
-        if x > xs[best] {
-            best = i;
-        }
-    }
-    best
-}
-
-/// s·p for negative scores, s/p otherwise, on every id marked in `seen`.
-pub fn apply_repetition_penalty(scores: &mut [f32], seen: &[bool], p: f32) {
-    for (s, &hit) in scores.iter_mut().zip(seen) {
-        if hit {
-            *s = if *s < 0.0 { *s * p } else { *s / p };
-        }
-    }
-}
+pub use crate::model::head::{apply_repetition_penalty, argmax};
 
 /// Tokens one forward call takes at most (beyond one per decoding sequence): long prompts are
 /// prefilled in chunks of this size, so the scratch buffers stay small.
@@ -184,7 +166,6 @@ pub fn generate_stream(
     let mut queue = todo.iter().copied();
     let mut active: Vec<Option<Active>> = (0..slots).map(|_| None).collect();
     let mut takes: Vec<(usize, usize)> = Vec::with_capacity(slots);
-    let mut row: Vec<f32> = Vec::new();
     loop {
         for (slot, a) in active.iter_mut().enumerate() {
             if a.is_none() {
@@ -241,7 +222,20 @@ pub fn generate_stream(
                 }
             })
             .collect();
-        let logits = decoder.forward(&segs, &mut cache, &mut ws)?;
+        let seen: Vec<&[bool]> = takes
+            .iter()
+            .map(|&(slot, _)| {
+                active[slot]
+                    .as_ref()
+                    .expect("slot is active")
+                    .seen
+                    .as_slice()
+            })
+            .collect();
+        let penalty = settings.repetition_penalty.map(|p| (p, seen.as_slice()));
+        // One step runs on a worker of the thread pool, so its many parallel loops start from
+        // inside the pool instead of each waking the calling thread when it ends.
+        let tokens = rayon::scope(|_| decoder.next_tokens(&segs, &mut cache, &mut ws, penalty))?;
         drop(segs);
         let mut produced = 0;
         for (k, &(slot, take)) in takes.iter().enumerate() {
@@ -250,16 +244,7 @@ pub fn generate_stream(
             if a.fed < a.pending.len() {
                 continue; // still prefilling
             }
-            let scores = &logits[k * vocab..(k + 1) * vocab];
-            let tok = match settings.repetition_penalty {
-                Some(p) => {
-                    row.clear();
-                    row.extend_from_slice(scores);
-                    apply_repetition_penalty(&mut row, &a.seen, p);
-                    argmax(&row)
-                }
-                None => argmax(scores),
-            } as u32;
+            let tok = tokens[k];
             if let Some(x) = a.seen.get_mut(tok as usize) {
                 *x = true;
             }

@@ -129,7 +129,7 @@ impl Bf16Matrix {
 }
 
 /// Token groups of the kernels: eights, then fours, then ones, in token order.
-fn groups(n: usize) -> impl Iterator<Item = (usize, usize)> {
+pub(crate) fn groups(n: usize) -> impl Iterator<Item = (usize, usize)> {
     let eights = n / 8 * 8;
     let fours = eights + (n - eights) / 4 * 4;
     (0..eights)

@@ -22,6 +22,7 @@
 use crate::error::{Error, Result};
 use crate::model::bf16::Bf16Matrix;
 use crate::model::config::{Activation, ModelSpec, NormStyle, RopeScaling, RopeSpec};
+use crate::model::head::{apply_repetition_penalty, argmax, Scratch as HeadScratch, Screen};
 use crate::model::weights::{EMBED, LM_HEAD};
 use crate::model::WeightFormat;
 use candle_core::Tensor;
@@ -119,6 +120,8 @@ pub struct Workspace {
     last: Vec<f32>,
     last_normed: Vec<f32>,
     logits: Vec<f32>,
+    tokens: Vec<u32>,
+    screen: HeadScratch,
 }
 
 /// Resizes `v` to `n` values, reusing its allocation.
@@ -414,7 +417,7 @@ fn gemm_rows(
 /// Sum of products with sixteen independent partial sums, so the compiler can use vector
 /// registers (a single running sum would force one addition at a time).
 #[inline]
-fn dot(a: &[f32], b: &[f32]) -> f32 {
+pub(crate) fn dot(a: &[f32], b: &[f32]) -> f32 {
     let n = a.len().min(b.len());
     let (a, b) = (&a[..n], &b[..n]);
     let mut acc = [0f32; 16];
@@ -483,10 +486,11 @@ pub struct Decoder {
     spec: ModelSpec,
     /// [vocab, hidden]
     embed: Vec<f32>,
-    /// [vocab, hidden]; None when tied to the embedding (or held as `head_bf16`).
+    /// [vocab, hidden]; None when tied to the embedding. The head stays f32 in every weight
+    /// format: its greedy pick goes through `screen`, which is cheaper than a bf16 head.
     lm_head: Option<Vec<f32>>,
-    /// The output head in bf16 when the weights are (`--weights bf16`).
-    head_bf16: Option<Bf16Matrix>,
+    /// The 8-bit screen of the output head for greedy picks (None under a final soft-cap).
+    screen: Option<Screen>,
     final_norm: Vec<f32>,
     layers: Vec<Layer>,
     eps: f32,
@@ -585,23 +589,22 @@ impl Decoder {
             });
         }
         let final_norm = norm(take("model.norm.weight")?)?;
-        let mut lm_head = w.remove(LM_HEAD).map(|h| flat(&h)).transpose()?;
-        let head_bf16 = match format {
-            WeightFormat::F32 => None,
-            WeightFormat::Bf16 => {
-                let head = lm_head.as_deref().unwrap_or(&embed);
-                let rows = head.len() / spec.hidden_size.max(1);
-                let mut m = Bf16Matrix::new(rows, spec.hidden_size);
-                m.put_rows(head, rows, 0);
-                lm_head = None;
-                Some(m)
-            }
+        let lm_head = w.remove(LM_HEAD).map(|h| flat(&h)).transpose()?;
+        // The soft-cap's tanh can round distinct logits to one f32 value, so a capped head
+        // computes every logit.
+        let screen = match spec.final_softcap {
+            None => Screen::new(
+                lm_head.as_deref().unwrap_or(&embed),
+                spec.vocab_size,
+                spec.hidden_size,
+            ),
+            Some(_) => None,
         };
         let d = Decoder {
             spec: spec.clone(),
             embed,
             lm_head,
-            head_bf16,
+            screen,
             final_norm,
             layers,
             eps: spec.rms_norm_eps as f32,
@@ -683,6 +686,68 @@ impl Decoder {
         cache: &mut KvCache,
         ws: &'w mut Workspace,
     ) -> Result<&'w [f32]> {
+        self.last_hidden(segs, cache, ws)?;
+        let (ns, hidden, vocab) = (segs.len(), self.spec.hidden_size, self.spec.vocab_size);
+        let normed = &ws.last_normed[..ns * hidden];
+        let logits = sized(&mut ws.logits, ns * vocab);
+        matmul_t(normed, ns, hidden, self.head(), vocab, logits);
+        if let Some(c) = self.spec.final_softcap {
+            let c = c as f32;
+            for v in logits.iter_mut() {
+                *v = (*v * (1.0 / c)).tanh() * c;
+            }
+        }
+        Ok(&ws.logits[..ns * vocab])
+    }
+
+    /// As [`Decoder::forward`], but returns each segment's greedy next token: the argmax of its
+    /// last-position logits after the repetition penalty (`penalty`: the factor and, per segment,
+    /// the ids already in its row; an empty slice where none apply), ties to the lowest id.
+    /// The logits are screened (`head`) rather than all computed; the token is the same.
+    pub fn next_tokens<'w>(
+        &self,
+        segs: &[Segment],
+        cache: &mut KvCache,
+        ws: &'w mut Workspace,
+        penalty: Option<(f32, &[&[bool]])>,
+    ) -> Result<&'w [u32]> {
+        let ns = segs.len();
+        let Some(screen) = &self.screen else {
+            let vocab = self.spec.vocab_size;
+            self.forward(segs, cache, ws)?;
+            ws.tokens.clear();
+            for k in 0..ns {
+                let row = &mut ws.logits[k * vocab..(k + 1) * vocab];
+                if let Some((p, seen)) = penalty {
+                    if let Some(s) = seen.get(k) {
+                        apply_repetition_penalty(row, s, p);
+                    }
+                }
+                ws.tokens.push(argmax(row) as u32);
+            }
+            return Ok(&ws.tokens);
+        };
+        self.last_hidden(segs, cache, ws)?;
+        let normed = &ws.last_normed[..ns * self.spec.hidden_size];
+        screen.pick(
+            self.head(),
+            normed,
+            ns,
+            penalty,
+            &mut ws.screen,
+            &mut ws.tokens,
+        );
+        Ok(&ws.tokens)
+    }
+
+    /// The f32 output head, [vocab, hidden].
+    fn head(&self) -> &[f32] {
+        self.lm_head.as_deref().unwrap_or(&self.embed)
+    }
+
+    /// The model up to the final norm: each segment's last hidden state, normed, into
+    /// `ws.last_normed` ([segments, hidden]).
+    fn last_hidden(&self, segs: &[Segment], cache: &mut KvCache, ws: &mut Workspace) -> Result<()> {
         let s = &self.spec;
         let (hidden, hd, nh, nkv) = (s.hidden_size, s.head_dim, s.num_heads, s.num_kv_heads);
         let (qdim, kv_dim) = (nh * hd, nkv * hd);
@@ -727,7 +792,7 @@ impl Decoder {
         }
         let n = ws.tok_slot.len();
         if n == 0 {
-            return Ok(&[]);
+            return Ok(());
         }
         // Embeddings.
         let h = sized(&mut ws.h, n * hidden);
@@ -906,21 +971,7 @@ impl Decoder {
         }
         let normed = sized(&mut ws.last_normed, ns * hidden);
         rms_norm_rows(last, &self.final_norm, eps, hidden, normed);
-        let logits = sized(&mut ws.logits, ns * vocab);
-        match &self.head_bf16 {
-            Some(m) => m.matmul(normed, ns, logits),
-            None => {
-                let head = self.lm_head.as_deref().unwrap_or(&self.embed);
-                matmul_t(normed, ns, hidden, head, vocab, logits);
-            }
-        }
-        if let Some(c) = s.final_softcap {
-            let c = c as f32;
-            for v in logits.iter_mut() {
-                *v = (*v * (1.0 / c)).tanh() * c;
-            }
-        }
-        Ok(&ws.logits[..ns * vocab])
+        Ok(())
     }
 }
 

@@ -5,6 +5,7 @@
 pub mod bf16;
 pub mod config;
 pub mod decoder;
+pub mod head;
 pub mod lora;
 pub mod weights;
 

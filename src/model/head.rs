@@ -1,0 +1,738 @@
+//! The greedy pick at the output head: the token with the largest f32 logit (the first one on
+//! ties, as `torch.argmax`), found without computing every f32 logit.
+//!
+//! The output head is the largest matrix of a small model (a 150k-token vocabulary is about a
+//! quarter of a 0.5B model's multiply-adds), yet greedy decoding only needs the position of its
+//! largest output. So the head is screened in 8 bits, and only the tokens the screen cannot
+//! rule out get their f32 logit:
+//!
+//! 1. Each head row w_j is kept once more as 8-bit integers q_j with a scale s_j
+//!    (s_j = max|w_j|/127, q_j = round(w_j/s_j)); each hidden vector x is rounded the same
+//!    way to p with scale τ. The integer products q_j·p are exact (one AVX-512 VNNI
+//!    `vpdpbusd` per 64 multiply-adds where the CPU has it), and b_j = s_j·τ·(q_j·p)
+//!    estimates w_j·x.
+//! 2. A bound on how far the f32 logit f_j can be from b_j:
+//!    w_j·x − b_j = (w_j − s_j q_j)·x + s_j q_j·(x − τ p), so by the Cauchy–Schwarz
+//!    inequality |w_j·x − b_j| ≤ ‖w_j − s_j q_j‖‖x‖ + s_j‖q_j‖‖x − τ p‖; and an f32 dot
+//!    product of length n, summed in any order, is within γ_n Σ_i |w_ji x_i| ≤ γ_n‖w_j‖‖x‖
+//!    of w_j·x, with γ_n = n·u/(1 − n·u) and u = 2⁻²⁴ (Higham, *Accuracy and Stability of
+//!    Numerical Algorithms*, 2nd ed., §3.1; from memory). Their sum, δ_j, is rounded up.
+//! 3. With lo_j = b_j − δ_j and hi_j = b_j + δ_j, let L = max_k lo_k (reached at k*). Any
+//!    token with hi_j < L has f_j ≤ hi_j < L ≤ f_{k*}: it is neither the largest logit nor
+//!    tied with it. Every other token is a candidate; candidates get their f32 logit, in
+//!    index order, and the first largest wins, which is the f32 argmax of the whole row.
+//!
+//! The repetition penalty (s·p below zero, s/p above) is increasing in s, so it maps each
+//! [lo_j, hi_j] to an interval that holds the penalised logit (widened by the f32 rounding of
+//! the penalty itself), and the same argument holds after it. When the screen leaves more
+//! than a quarter of the vocabulary (or the hidden vector is zero or not finite), every f32
+//! logit is computed instead; either way the token is the one the full f32 row would give.
+
+use crate::model::bf16::groups;
+use rayon::prelude::*;
+
+const LANES: usize = 16;
+/// Unit roundoff of f32.
+const F32_UNIT_ROUNDOFF: f64 = 1.0 / 16_777_216.0;
+/// The screen's integer sums must fit an i32: up to 255·127 per product, and 128·127 per
+/// column more while the +128 is taken off.
+const MAX_COLS: usize = (i32::MAX as usize) / (383 * 127);
+
+/// The output head's rows in 8 bits with their error terms, next to the f32 rows.
+pub struct Screen {
+    rows: usize,
+    cols: usize,
+    quads: usize,
+    blocks: usize,
+    /// [block][quad][lane]: four int8 weights of row block·16 + lane, columns 4·quad.., low
+    /// byte first (the operand layout of `vpdpbusd`).
+    packed: Vec<u32>,
+    scale: Vec<f32>,
+    /// Σ_i q_ji, to undo the +128 that makes the activations unsigned.
+    qsum: Vec<i32>,
+    /// ‖w_j − s_j q_j‖ + γ_n‖w_j‖, rounded up: multiplies ‖x‖.
+    err_x: Vec<f32>,
+    /// s_j‖q_j‖, rounded up: multiplies ‖x − τ p‖.
+    err_q: Vec<f32>,
+}
+
+/// Buffers of [`Screen::pick`], reused across calls.
+#[derive(Debug, Default)]
+pub struct Scratch {
+    xq: Vec<u32>,
+    acc: Vec<i32>,
+    per_token: Vec<TokenScratch>,
+}
+
+#[derive(Debug, Default)]
+struct TokenScratch {
+    candidates: Vec<u32>,
+    logits: Vec<f32>,
+}
+
+/// What one hidden vector contributes to the bounds.
+#[derive(Clone, Copy)]
+struct Rounded {
+    tau: f32,
+    norm_x: f64,
+    norm_err: f64,
+}
+
+/// The smallest f32 not below `v`.
+fn up(v: f64) -> f32 {
+    let f = v as f32;
+    if (f as f64) < v {
+        f.next_up()
+    } else {
+        f
+    }
+}
+
+/// The largest f32 not above `v`.
+fn down(v: f64) -> f32 {
+    let f = v as f32;
+    if (f as f64) > v {
+        f.next_down()
+    } else {
+        f
+    }
+}
+
+impl Screen {
+    /// Screens the rows of `w` ([rows, cols] row-major), or None when `cols` is too long for
+    /// exact 32-bit integer sums.
+    pub fn new(w: &[f32], rows: usize, cols: usize) -> Option<Screen> {
+        if cols == 0 || cols > MAX_COLS || w.len() < rows * cols {
+            return None;
+        }
+        let quads = cols.div_ceil(4);
+        let blocks = rows.div_ceil(LANES);
+        let n = cols as f64 * F32_UNIT_ROUNDOFF;
+        let gamma = n / (1.0 - n);
+        let mut packed = vec![0u32; blocks * quads * LANES];
+        // Per row: scale, qsum, err_x, err_q.
+        let mut stats = vec![(0f32, 0i32, 0f32, 0f32); blocks * LANES];
+        packed
+            .par_chunks_mut(quads * LANES)
+            .zip(stats.par_chunks_mut(LANES))
+            .enumerate()
+            .for_each(|(b, (pk, st))| {
+                for (l, stat) in st.iter_mut().enumerate() {
+                    let j = b * LANES + l;
+                    if j >= rows {
+                        break;
+                    }
+                    let row = &w[j * cols..(j + 1) * cols];
+                    let max = row.iter().fold(0f32, |m, v| m.max(v.abs()));
+                    let s = max / 127.0;
+                    let (mut qsum, mut r2, mut w2, mut q2) = (0i32, 0f64, 0f64, 0f64);
+                    for (i, &v) in row.iter().enumerate() {
+                        let q = if s > 0.0 {
+                            (v / s).round().clamp(-127.0, 127.0) as i32
+                        } else {
+                            0
+                        };
+                        let r = v as f64 - s as f64 * q as f64;
+                        r2 += r * r;
+                        w2 += v as f64 * v as f64;
+                        q2 += (q * q) as f64;
+                        qsum += q;
+                        pk[(i / 4) * LANES + l] |= ((q as u8) as u32) << (8 * (i % 4));
+                    }
+                    // The f64 sums of at most 2^16 terms are within 1e-11 relative.
+                    let slack = 1.0 + 1e-9;
+                    *stat = (
+                        s,
+                        qsum,
+                        up((r2.sqrt() + gamma * w2.sqrt()) * slack),
+                        up(s as f64 * q2.sqrt() * slack),
+                    );
+                }
+            });
+        Some(Screen {
+            rows,
+            cols,
+            quads,
+            blocks,
+            packed,
+            scale: stats.iter().map(|s| s.0).collect(),
+            qsum: stats.iter().map(|s| s.1).collect(),
+            err_x: stats.iter().map(|s| s.2).collect(),
+            err_q: stats.iter().map(|s| s.3).collect(),
+        })
+    }
+
+    /// Bytes the screen adds to the model.
+    pub fn bytes(&self) -> usize {
+        self.packed.len() * 4 + self.rows * 16
+    }
+
+    /// The greedy token of each of the `n` hidden vectors `x` ([n, cols]) under the head `w`
+    /// (the f32 rows this screen was made from), into `out`. `penalty`: the repetition penalty
+    /// and, per vector, the ids it applies to (an empty slice: none).
+    pub fn pick(
+        &self,
+        w: &[f32],
+        x: &[f32],
+        n: usize,
+        penalty: Option<(f32, &[&[bool]])>,
+        scratch: &mut Scratch,
+        out: &mut Vec<u32>,
+    ) {
+        let (rows, cols, quads) = (self.rows, self.cols, self.quads);
+        assert!(w.len() >= rows * cols && x.len() >= n * cols);
+        out.clear();
+        if n == 0 {
+            return;
+        }
+        let rounded = pack_activations(x, n, cols, &mut scratch.xq);
+        let tile = n * LANES;
+        if scratch.acc.len() < self.blocks * tile {
+            scratch.acc.resize(self.blocks * tile, 0);
+        }
+        let xq: &[u32] = &scratch.xq;
+        let fast = has_avx512_vnni();
+        let one = |(bp, ys): (usize, &mut [i32])| {
+            let b0 = 2 * bp;
+            let nb = (self.blocks - b0).min(2);
+            let wb = &self.packed[b0 * quads * LANES..(b0 + nb) * quads * LANES];
+            if fast {
+                #[cfg(target_arch = "x86_64")]
+                // SAFETY: the CPU has AVX-512F and AVX-512 VNNI (checked by `fast`); `blocks`
+                // checks the slice lengths itself.
+                unsafe {
+                    avx512::blocks(wb, nb, xq, n, quads, ys)
+                }
+            } else {
+                for k in 0..nb {
+                    block_portable(
+                        &wb[k * quads * LANES..(k + 1) * quads * LANES],
+                        xq,
+                        n,
+                        quads,
+                        &mut ys[k * tile..(k + 1) * tile],
+                    );
+                }
+            }
+        };
+        let work = &mut scratch.acc[..self.blocks * tile];
+        if n * rows * cols >= 1 << 18 {
+            work.par_chunks_mut(2 * tile).enumerate().for_each(one);
+        } else {
+            work.chunks_mut(2 * tile).enumerate().for_each(one);
+        }
+        scratch.per_token.resize_with(n, TokenScratch::default);
+        let acc: &[i32] = &scratch.acc;
+        out.resize(n, 0);
+        let decide = |(t, (tok, ts)): (usize, (&mut u32, &mut TokenScratch))| {
+            let seen =
+                penalty.and_then(|(p, s)| s.get(t).filter(|s| !s.is_empty()).map(|s| (p, *s)));
+            let xt = &x[t * cols..(t + 1) * cols];
+            *tok = match rounded[t] {
+                Some(r) => self.decide(w, xt, acc, n, t, r, seen, ts),
+                None => full(w, xt, rows, cols, seen, &mut ts.logits),
+            };
+        };
+        if n > 1 && n * rows >= 1 << 16 {
+            out.par_iter_mut()
+                .zip(scratch.per_token.par_iter_mut())
+                .enumerate()
+                .for_each(decide);
+        } else {
+            out.iter_mut()
+                .zip(scratch.per_token.iter_mut())
+                .enumerate()
+                .for_each(decide);
+        }
+    }
+
+    /// The intervals [lo, hi] that hold the f32 logits of the 16 rows of block `b` for vector
+    /// `t` (after the penalty where it applies); rows past the end get an empty (−∞) one.
+    ///
+    /// Computed in f32: the integer sum is exact, and the few f32 roundings of the estimate and
+    /// of δ (each within 2⁻²⁴ relative) are covered by a margin of 10⁻⁵·(|estimate| + δ).
+    #[allow(clippy::too_many_arguments)]
+    #[inline]
+    fn block_bounds(
+        &self,
+        acc: &[i32],
+        n: usize,
+        t: usize,
+        b: usize,
+        r: Rounded,
+        seen: Option<(f32, &[bool])>,
+        lo: &mut [f32; LANES],
+        hi: &mut [f32; LANES],
+    ) {
+        let a = &acc[(b * n + t) * LANES..(b * n + t + 1) * LANES];
+        let j0 = b * LANES;
+        let (scale, qsum) = (&self.scale[j0..j0 + LANES], &self.qsum[j0..j0 + LANES]);
+        let (ex, eq) = (&self.err_x[j0..j0 + LANES], &self.err_q[j0..j0 + LANES]);
+        let (nx, ne) = (up(r.norm_x), up(r.norm_err));
+        for l in 0..LANES {
+            let i = a[l].wrapping_sub(qsum[l].wrapping_mul(128));
+            let est = scale[l] * r.tau * i as f32;
+            let d = ex[l] * nx + eq[l] * ne;
+            let d = d + 1e-5 * (est.abs() + d) + 1e-30;
+            lo[l] = est - d;
+            hi[l] = est + d;
+        }
+        for l in self.rows.saturating_sub(j0).min(LANES)..LANES {
+            lo[l] = f32::NEG_INFINITY;
+            hi[l] = f32::NEG_INFINITY;
+        }
+        if let Some((p, s)) = seen {
+            for l in 0..LANES {
+                if s.get(j0 + l).copied().unwrap_or(false) && hi[l].is_finite() {
+                    let (pl, ph) = (penalize64(lo[l] as f64, p), penalize64(hi[l] as f64, p));
+                    // The decision applies the penalty in f32: allow for its rounding.
+                    lo[l] = down(pl - pl.abs() * 2.4e-7 - 1e-40);
+                    hi[l] = up(ph + ph.abs() * 2.4e-7 + 1e-40);
+                }
+            }
+        }
+    }
+
+    /// Steps 2 and 3 of the module comment for vector t.
+    #[allow(clippy::too_many_arguments)]
+    fn decide(
+        &self,
+        w: &[f32],
+        x: &[f32],
+        acc: &[i32],
+        n: usize,
+        t: usize,
+        r: Rounded,
+        seen: Option<(f32, &[bool])>,
+        ts: &mut TokenScratch,
+    ) -> u32 {
+        let (rows, cols) = (self.rows, self.cols);
+        let (mut lo, mut hi) = ([0f32; LANES], [0f32; LANES]);
+        let mut floor = f32::NEG_INFINITY;
+        for b in 0..self.blocks {
+            self.block_bounds(acc, n, t, b, r, seen, &mut lo, &mut hi);
+            floor = lo.iter().fold(floor, |m, &v| m.max(v));
+        }
+        ts.candidates.clear();
+        for b in 0..self.blocks {
+            self.block_bounds(acc, n, t, b, r, seen, &mut lo, &mut hi);
+            for (l, &h) in hi.iter().enumerate() {
+                if h >= floor {
+                    ts.candidates.push((b * LANES + l) as u32);
+                }
+            }
+        }
+        if ts.candidates.len() > rows / 4 {
+            return full(w, x, rows, cols, seen, &mut ts.logits);
+        }
+        let mut best: Option<(u32, f32)> = None;
+        for &j in &ts.candidates {
+            let ju = j as usize;
+            let mut v = crate::model::decoder::dot(&w[ju * cols..(ju + 1) * cols], x);
+            if let Some((p, s)) = seen {
+                if s.get(ju).copied().unwrap_or(false) {
+                    v = penalize(v, p);
+                }
+            }
+            if !v.is_finite() {
+                return full(w, x, rows, cols, seen, &mut ts.logits);
+            }
+            if best.is_none_or(|(_, bv)| v > bv) {
+                best = Some((j, v));
+            }
+        }
+        best.map_or(0, |(j, _)| j)
+    }
+}
+
+/// Every f32 logit of `x`, the penalty, then [`argmax`].
+fn full(
+    w: &[f32],
+    x: &[f32],
+    rows: usize,
+    cols: usize,
+    seen: Option<(f32, &[bool])>,
+    logits: &mut Vec<f32>,
+) -> u32 {
+    logits.clear();
+    logits.extend((0..rows).map(|j| crate::model::decoder::dot(&w[j * cols..(j + 1) * cols], x)));
+    if let Some((p, s)) = seen {
+        apply_repetition_penalty(logits, s, p);
+    }
+    argmax(logits) as u32
+}
+
+/// Index of the largest value; the first one on ties (as `torch.argmax`).
+pub fn argmax(xs: &[f32]) -> usize {
+    let mut best = 0;
+    for (i, &x) in xs.iter().enumerate() {
+        if x > xs[best] {
+            best = i;
+        }
+    }
+    best
+}
+
+/// transformers' RepetitionPenaltyLogitsProcessor on one score: s·p below zero, s/p otherwise.
+#[inline]
+pub fn penalize(s: f32, p: f32) -> f32 {
+    if s < 0.0 {
+        s * p
+    } else {
+        s / p
+    }
+}
+
+fn penalize64(s: f64, p: f32) -> f64 {
+    if s < 0.0 {
+        s * p as f64
+    } else {
+        s / p as f64
+    }
+}
+
+/// [`penalize`] on every id marked in `seen`.
+pub fn apply_repetition_penalty(scores: &mut [f32], seen: &[bool], p: f32) {
+    for (s, &hit) in scores.iter_mut().zip(seen) {
+        if hit {
+            *s = penalize(*s, p);
+        }
+    }
+}
+
+/// Rounds each vector to 8 bits (p + 128, unsigned) in the kernels' group layout: the group of
+/// `size` vectors starting at t0 occupies `t0·quads .. (t0 + size)·quads`, quad k of vector t at
+/// `k·size + t`. Returns each vector's scale and norms, or None for a vector the screen cannot
+/// take (zero or not finite).
+fn pack_activations(x: &[f32], n: usize, cols: usize, xq: &mut Vec<u32>) -> Vec<Option<Rounded>> {
+    let quads = cols.div_ceil(4);
+    xq.clear();
+    // Padding columns hold p = 0 (byte 128) against zero weights.
+    xq.resize(n * quads, 0x8080_8080);
+    let mut out = Vec::with_capacity(n);
+    for (t0, size) in groups(n) {
+        let g = &mut xq[t0 * quads..(t0 + size) * quads];
+        for t in 0..size {
+            let row = &x[(t0 + t) * cols..(t0 + t + 1) * cols];
+            let max = row.iter().fold(0f32, |m, v| m.max(v.abs()));
+            if !(max.is_finite() && max > 0.0) {
+                out.push(None);
+                continue;
+            }
+            let tau = max / 127.0;
+            let (mut x2, mut e2) = (0f64, 0f64);
+            for (k, quad) in row.chunks(4).enumerate() {
+                let mut word = 0x8080_8080u32;
+                for (i, &v) in quad.iter().enumerate() {
+                    let p = (v / tau).round().clamp(-127.0, 127.0) as i32;
+                    let e = v as f64 - tau as f64 * p as f64;
+                    x2 += v as f64 * v as f64;
+                    e2 += e * e;
+                    word = (word & !(0xff << (8 * i))) | (((p + 128) as u32) << (8 * i));
+                }
+                g[k * size + t] = word;
+            }
+            let slack = 1.0 + 1e-9;
+            out.push(Some(Rounded {
+                tau,
+                norm_x: x2.sqrt() * slack,
+                norm_err: e2.sqrt() * slack,
+            }));
+        }
+    }
+    out
+}
+
+fn has_avx512_vnni() -> bool {
+    #[cfg(target_arch = "x86_64")]
+    {
+        std::arch::is_x86_feature_detected!("avx512f")
+            && std::arch::is_x86_feature_detected!("avx512vnni")
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    {
+        false
+    }
+}
+
+/// The portable form of one block: per lane, Σ over quads of the four u8·i8 products.
+fn block_portable(wb: &[u32], xq: &[u32], n: usize, quads: usize, ys: &mut [i32]) {
+    for (t0, size) in groups(n) {
+        let g = &xq[t0 * quads..(t0 + size) * quads];
+        for t in 0..size {
+            for l in 0..LANES {
+                let mut acc = 0i32;
+                for k in 0..quads {
+                    let (wv, xv) = (wb[k * LANES + l], g[k * size + t]);
+                    for i in 0..4 {
+                        let a = ((xv >> (8 * i)) & 0xff) as i32;
+                        let b = ((wv >> (8 * i)) & 0xff) as u8 as i8 as i32;
+                        acc += a * b;
+                    }
+                }
+                ys[(t0 + t) * LANES + l] = acc;
+            }
+        }
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+mod avx512 {
+    use super::{groups, LANES};
+    use std::arch::x86_64::*;
+
+    /// `nb` (1 or 2) consecutive blocks of 16 rows for every vector, a group at a time;
+    /// outputs [nb][n][16].
+    #[target_feature(enable = "avx512f,avx512vnni")]
+    pub unsafe fn blocks(
+        wb: &[u32],
+        nb: usize,
+        xq: &[u32],
+        n: usize,
+        quads: usize,
+        ys: &mut [i32],
+    ) {
+        assert!(
+            (1..=2).contains(&nb)
+                && wb.len() >= nb * quads * LANES
+                && xq.len() >= n * quads
+                && ys.len() >= nb * n * LANES
+        );
+        for (t0, size) in groups(n) {
+            match (nb, size) {
+                (2, 8) => group::<8, 2>(wb, xq, t0, n, quads, ys),
+                (2, 4) => group::<4, 2>(wb, xq, t0, n, quads, ys),
+                (2, _) => group::<1, 2>(wb, xq, t0, n, quads, ys),
+                (_, 8) => group::<8, 1>(wb, xq, t0, n, quads, ys),
+                (_, 4) => group::<4, 1>(wb, xq, t0, n, quads, ys),
+                _ => group::<1, 1>(wb, xq, t0, n, quads, ys),
+            }
+        }
+    }
+
+    #[target_feature(enable = "avx512f,avx512vnni")]
+    unsafe fn group<const T: usize, const B: usize>(
+        wb: &[u32],
+        xq: &[u32],
+        t0: usize,
+        n: usize,
+        quads: usize,
+        ys: &mut [i32],
+    ) {
+        let mut acc = [[_mm512_setzero_si512(); T]; B];
+        // SAFETY (whole loop): `blocks` checked that wb holds B·quads·16 values and xq the
+        // group's quads·T values starting at t0·quads; the pointers stay inside those ranges.
+        let x = xq.as_ptr().add(t0 * quads);
+        let w = wb.as_ptr();
+        for k in 0..quads {
+            let mut wv = [_mm512_setzero_si512(); B];
+            for (b, v) in wv.iter_mut().enumerate() {
+                *v = _mm512_loadu_si512(w.add((b * quads + k) * LANES) as *const _);
+            }
+            let xr = x.add(k * T);
+            #[allow(clippy::needless_range_loop)]
+            // t walks the activations and accumulators together
+            for t in 0..T {
+                let xv = _mm512_set1_epi32(*xr.add(t) as i32);
+                for (ab, &wb) in acc.iter_mut().zip(&wv) {
+                    // Unsigned bytes of the activations times signed bytes of the weights.
+                    ab[t] = _mm512_dpbusd_epi32(ab[t], xv, wb);
+                }
+            }
+        }
+        for (b, ab) in acc.iter().enumerate() {
+            for (t, a) in ab.iter().enumerate() {
+                let at = (b * n + t0 + t) * LANES;
+                _mm512_storeu_si512(ys[at..at + LANES].as_mut_ptr() as *mut _, *a);
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A small deterministic generator (xorshift64*), uniform in [-1, 1).
+    struct Gen(u64);
+    impl Gen {
+        fn next(&mut self) -> f32 {
+            self.0 ^= self.0 >> 12;
+            self.0 ^= self.0 << 25;
+            self.0 ^= self.0 >> 27;
+            let v = self.0.wrapping_mul(0x2545_f491_4f6c_dd1d) >> 40;
+            v as f32 / (1u64 << 23) as f32 - 1.0
+        }
+    }
+
+    /// A head with the cases that stress the screen: tied (duplicate) rows, a zero row, a row
+    /// with one large weight, rows that differ in their last bits.
+    fn head(rows: usize, cols: usize, g: &mut Gen) -> Vec<f32> {
+        let mut w: Vec<f32> = (0..rows * cols).map(|_| 0.05 * g.next()).collect();
+        let (a, b) = w.split_at_mut(7 * cols);
+        b[..cols].copy_from_slice(&a[3 * cols..4 * cols]); // row 7 = row 3
+        w[11 * cols..12 * cols].fill(0.0);
+        w[13 * cols + 5] = 3.0;
+        for i in 0..cols {
+            w[20 * cols + i] = f32::from_bits(w[19 * cols + i].to_bits() ^ 1);
+        }
+        w
+    }
+
+    /// Hidden vectors: ordinary, one with an outlier channel, one pointing at row 3 (so rows 3
+    /// and 7 tie for the largest logit), all zero, and one that makes row 13 dominant.
+    fn hidden(w: &[f32], n: usize, cols: usize, g: &mut Gen) -> Vec<f32> {
+        let mut x: Vec<f32> = (0..n * cols).map(|_| 2.0 * g.next()).collect();
+        x[cols + 1] = 80.0;
+        for i in 0..cols {
+            x[2 * cols + i] = 40.0 * w[3 * cols + i];
+        }
+        x[2 * cols + 5] = 0.0; // keep row 13's large weight out of it
+        x[3 * cols..4 * cols].fill(0.0);
+        x[4 * cols + 5] = 50.0;
+        x
+    }
+
+    /// The reference: every f32 logit, the penalty, then the first maximum (torch.argmax's tie
+    /// rule, PyTorch documentation; the penalty as transformers' RepetitionPenaltyLogitsProcessor).
+    fn reference(
+        w: &[f32],
+        x: &[f32],
+        rows: usize,
+        cols: usize,
+        pen: Option<(f32, &[bool])>,
+    ) -> u32 {
+        full(w, x, rows, cols, pen, &mut Vec::new())
+    }
+
+    #[test]
+    fn pick_is_the_argmax_of_every_f32_logit() {
+        let mut g = Gen(0x9e37_79b9_7f4a_7c15);
+        for &(rows, cols, n) in &[(1000, 67, 11), (333, 64, 5), (40, 6, 6), (4099, 130, 9)] {
+            let w = head(rows, cols, &mut g);
+            let x = hidden(&w, n, cols, &mut g);
+            let screen = Screen::new(&w, rows, cols).expect("screen");
+            let mut scratch = Scratch::default();
+            let mut out = Vec::new();
+            screen.pick(&w, &x, n, None, &mut scratch, &mut out);
+            for t in 0..n {
+                let want = reference(&w, &x[t * cols..(t + 1) * cols], rows, cols, None);
+                assert_eq!(out[t], want, "rows {rows} cols {cols} vector {t}");
+            }
+            // Rows 3 and 7 tie on vector 2: the first wins.
+            assert_eq!(out[2], 3);
+            // With a penalty on each vector's own winner and a few others.
+            let p = 1.7;
+            let seen: Vec<Vec<bool>> = (0..n)
+                .map(|t| {
+                    let mut s = vec![false; rows];
+                    s[out[t] as usize] = true;
+                    s[(t * 31) % rows] = true;
+                    s
+                })
+                .collect();
+            let refs: Vec<&[bool]> = seen.iter().map(|s| s.as_slice()).collect();
+            screen.pick(&w, &x, n, Some((p, &refs)), &mut scratch, &mut out);
+            for t in 0..n {
+                let xt = &x[t * cols..(t + 1) * cols];
+                let want = reference(&w, xt, rows, cols, Some((p, &seen[t])));
+                assert_eq!(
+                    out[t], want,
+                    "penalised: rows {rows} cols {cols} vector {t}"
+                );
+            }
+        }
+    }
+
+    /// Every f32 logit lies in its interval, and the screen rules most rows out (so the picks
+    /// above went through the screen, not the every-logit fallback).
+    #[test]
+    fn bounds_hold_and_screen_out_most_rows() {
+        let mut g = Gen(42);
+        let (rows, cols, n) = (4099, 130, 9);
+        let w = head(rows, cols, &mut g);
+        let x = hidden(&w, n, cols, &mut g);
+        let screen = Screen::new(&w, rows, cols).expect("screen");
+        let mut scratch = Scratch::default();
+        let mut out = Vec::new();
+        screen.pick(&w, &x, n, None, &mut scratch, &mut out);
+        let rounded = pack_activations(&x, n, cols, &mut Vec::new());
+        for (t, r) in rounded.iter().enumerate() {
+            let Some(r) = *r else {
+                assert_eq!(t, 3, "only the zero vector is left to the fallback");
+                continue;
+            };
+            let xt = &x[t * cols..(t + 1) * cols];
+            let mut kept = 0;
+            let mut floor = f32::NEG_INFINITY;
+            let (mut lo, mut hi) = ([0f32; LANES], [0f32; LANES]);
+            for b in 0..screen.blocks {
+                screen.block_bounds(&scratch.acc, n, t, b, r, None, &mut lo, &mut hi);
+                for l in 0..LANES.min(rows - b * LANES) {
+                    let j = b * LANES + l;
+                    let f = crate::model::decoder::dot(&w[j * cols..(j + 1) * cols], xt);
+                    assert!(
+                        lo[l] <= f && f <= hi[l],
+                        "vector {t} row {j}: {} <= {f} <= {}",
+                        lo[l],
+                        hi[l]
+                    );
+                    floor = floor.max(lo[l]);
+                }
+            }
+            for b in 0..screen.blocks {
+                screen.block_bounds(&scratch.acc, n, t, b, r, None, &mut lo, &mut hi);
+                kept += hi.iter().filter(|&&h| h >= floor).count();
+            }
+            assert!(kept <= rows / 4, "vector {t} kept {kept} of {rows}");
+        }
+    }
+
+    /// The VNNI kernel (where the CPU has it) and the portable one against plain integer sums.
+    #[test]
+    fn kernels_give_the_exact_integer_products() {
+        let mut g = Gen(7);
+        let (rows, cols, n) = (37, 45, 13);
+        let w: Vec<f32> = (0..rows * cols).map(|_| g.next()).collect();
+        let x: Vec<f32> = (0..n * cols).map(|_| g.next()).collect();
+        let s = Screen::new(&w, rows, cols).expect("screen");
+        let mut xq = Vec::new();
+        pack_activations(&x, n, cols, &mut xq);
+        let byte = |v: u32, i: usize| (v >> (8 * (i % 4))) & 0xff;
+        let want = |j: usize, t: usize| -> i32 {
+            let (b, l) = (j / LANES, j % LANES);
+            // Group layout of the activations (see pack_activations).
+            let (t0, size) = groups(n).find(|&(t0, size)| t < t0 + size).unwrap();
+            (0..cols)
+                .map(|i| {
+                    let k = i / 4;
+                    let wv = byte(s.packed[(b * s.quads + k) * LANES + l], i) as u8 as i8 as i32;
+                    let xv = byte(xq[t0 * s.quads + k * size + (t - t0)], i) as i32;
+                    wv * xv
+                })
+                .sum()
+        };
+        let tile = n * LANES;
+        for b in 0..s.blocks {
+            let wb = &s.packed[b * s.quads * LANES..(b + 1) * s.quads * LANES];
+            let mut ys = vec![0i32; tile];
+            block_portable(wb, &xq, n, s.quads, &mut ys);
+            #[cfg(target_arch = "x86_64")]
+            if has_avx512_vnni() {
+                let mut yv = vec![0i32; tile];
+                // SAFETY: the CPU has AVX-512F and VNNI; the slices have the sizes `blocks` checks.
+                unsafe { avx512::blocks(wb, 1, &xq, n, s.quads, &mut yv) };
+                assert_eq!(ys, yv, "block {b}");
+            }
+            for t in 0..n {
+                for l in 0..LANES.min(rows - b * LANES) {
+                    assert_eq!(
+                        ys[t * LANES + l],
+                        want(b * LANES + l, t),
+                        "block {b} t {t} l {l}"
+                    );
+                }
+            }
+        }
+    }
+}
