@@ -427,6 +427,23 @@ fn cases() -> Vec<Case> {
                 answer(d, false, &["set.jsonl:1:", "not valid JSON"])
             },
         },
+        Case {
+            name: "set: answer output would overwrite the questions",
+            setup: |d| {
+                model_case(d);
+                write_set(d);
+                let mut setup = answer(d, false, &["--out ./set.jsonl", "--questions"]);
+                let at = setup
+                    .args
+                    .iter()
+                    .position(|a| a == "answers.jsonl")
+                    .unwrap();
+                setup.args[at] = s("./set.jsonl");
+                // The set must survive unchanged; no journal or run record may appear.
+                setup.outputs = vec![d.join("set.jsonl.partial"), d.join("set.jsonl.run.json")];
+                setup
+            },
+        },
         // ---- answers that do not match the set ----
         Case {
             name: "answers: missing id",

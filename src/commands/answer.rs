@@ -122,6 +122,12 @@ pub fn run(args: &AnswerArgs) -> Result<Outcome> {
         )));
     }
     check_out_path(&args.out)?;
+    if fsutil::same_file(&args.out, &args.questions) {
+        return Err(Error::usage(format!(
+            "--out {} is the --questions file; choose another path so the input is not overwritten",
+            args.out.display()
+        )));
+    }
     let settings = AnswerSettings {
         restart: args.restart,
         weights: g.weights,
