@@ -132,9 +132,9 @@ fn sized(v: &mut Vec<f32>, n: usize) -> &mut [f32] {
     &mut v[..n]
 }
 
-/// A linear layer. `w` holds the checkpoint's [out, inp] matrix transposed, [inp, out]
-/// row-major: the layout the matrix-product kernel reads without repacking the weights on
-/// every call (repacking would read and write every weight once more per step).
+/// A linear layer. `w` holds the checkpoint's [out, inp] matrix in panels of 64 output columns
+/// ([`pack_panels_into`]): the layout the products read front to back without repacking the
+/// weights on every call (repacking would read and write every weight once more per step).
 struct Linear {
     w: LinearWeights,
     out: usize,
@@ -164,14 +164,14 @@ impl Linear {
         let out: usize = dims.iter().map(|d| d.0).sum();
         let with_bias = parts.iter().all(|(_, b)| b.is_some());
         let mut w = match format {
-            WeightFormat::F32 => LinearWeights::F32(vec![0.0; inp * out]),
+            WeightFormat::F32 => LinearWeights::F32(vec![0.0; panel_len(out, inp)]),
             WeightFormat::Bf16 => LinearWeights::Bf16(Bf16Matrix::new(out, inp)),
         };
         let mut b = Vec::new();
         let mut at = 0;
         for ((wt, bt), (o, _)) in parts.into_iter().zip(dims) {
             match &mut w {
-                LinearWeights::F32(w) => with_f32(&wt, |a| transpose_into(a, o, inp, w, out, at))?,
+                LinearWeights::F32(w) => with_f32(&wt, |a| pack_panels_into(a, o, inp, w, at))?,
                 LinearWeights::Bf16(m) => with_f32(&wt, |a| m.put_rows(a, o, at))?,
             }
             drop(wt);
@@ -222,118 +222,153 @@ fn flat(t: &Tensor) -> Result<Vec<f32>> {
     with_f32(t, <[f32]>::to_vec)
 }
 
-/// Writes `a` ([rows, cols] row-major) transposed into columns `at..at + rows` of `t`
-/// ([cols, width] row-major), in cache-sized tiles.
-fn transpose_into(a: &[f32], rows: usize, cols: usize, t: &mut [f32], width: usize, at: usize) {
-    const TILE: usize = 32;
-    for r0 in (0..rows).step_by(TILE) {
-        for c0 in (0..cols).step_by(TILE) {
-            for r in r0..(r0 + TILE).min(rows) {
-                for c in c0..(c0 + TILE).min(cols) {
-                    t[c * width + at + r] = a[r * cols + c];
-                }
-            }
+/// Output columns per panel of a linear layer's weights (four 16-lane vectors).
+const PANEL: usize = 64;
+
+/// Values a linear layer of `out` × `inp` takes in the panel layout (the last panel padded).
+fn panel_len(out: usize, inp: usize) -> usize {
+    out.div_ceil(PANEL) * inp * PANEL
+}
+
+/// Writes `a` ([rows, cols] row-major, output rows `at..at + rows` of a layer) into the panel
+/// layout `t`: panel p holds output columns 64p..64p + 64 as [cols, 64] row-major, so one
+/// panel is one contiguous run that the products read front to back.
+fn pack_panels_into(a: &[f32], rows: usize, cols: usize, t: &mut [f32], at: usize) {
+    for r in 0..rows {
+        let j = at + r;
+        let base = (j / PANEL) * cols * PANEL + j % PANEL;
+        for (c, &v) in a[r * cols..(r + 1) * cols].iter().enumerate() {
+            t[base + c * PANEL] = v;
         }
     }
 }
 
 #[cfg(test)]
-fn transpose(a: &[f32], rows: usize, cols: usize) -> Vec<f32> {
-    let mut t = vec![0.0; rows * cols];
-    transpose_into(a, rows, cols, &mut t, rows, 0);
+fn pack_panels(a: &[f32], rows: usize, cols: usize) -> Vec<f32> {
+    let mut t = vec![0.0; panel_len(rows, cols)];
+    pack_panels_into(a, rows, cols, &mut t, 0);
     t
 }
 
 /// Multiply-adds below which a loop stays on the calling thread.
 const PARALLEL_WORK: usize = 1 << 18;
 
-/// Runs the rows of a weight matrix are split into for a single-row product.
-const K_SPLIT: usize = 8;
+/// A pointer to the output of [`matmul`], shared by tasks that write disjoint columns.
+#[derive(Clone, Copy)]
+struct Columns(*mut f32);
 
-thread_local! {
-    /// Partial sums of the single-row product, [K_SPLIT, out], reused across calls.
-    static PARTIAL: std::cell::RefCell<Vec<f32>> = const { std::cell::RefCell::new(Vec::new()) };
+impl Columns {
+    fn get(self) -> *mut f32 {
+        self.0
+    }
 }
 
-/// y[n, out] = x[n, inp] · w, with w [inp, out] row-major, on the rayon pool.
+// SAFETY: `matmul`'s tasks write disjoint sets of columns through it, and the buffer outlives
+// them (they end before `matmul` returns).
+unsafe impl Send for Columns {}
+unsafe impl Sync for Columns {}
+
+/// y[n, out] = x[n, inp] · W, with W in the panel layout ([`pack_panels_into`]), one task per
+/// panel on the rayon pool.
 ///
-/// One row (batch-1 decoding) is bound by reading the weights, so it gets its own loop: the
-/// rows of `w` are split into `K_SPLIT` runs, one task each streaming its run once into a
-/// partial sum, and the partial sums are added in a fixed order (the same result for any
-/// thread count).
+/// Each panel is read once per call, front to back. One row (batch-1 decoding) runs its own
+/// loop with the panel's 64 sums in registers; more rows go through `gemm` per panel, the panel
+/// being a column-major left operand it reads without repacking, with the output columns in
+/// vector lanes. Each output is computed by one task in a fixed order, so the result does not
+/// depend on the thread count.
 fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
-    if n == 1 && inp > 0 {
-        assert!(x.len() >= inp && w.len() >= out * inp && y.len() >= out);
-        let run = inp.div_ceil(K_SPLIT);
-        PARTIAL.with_borrow_mut(|partial| {
-            if partial.len() < K_SPLIT * out {
-                partial.resize(K_SPLIT * out, 0.0);
-            }
-            let partial = &mut partial[..K_SPLIT * out];
-            let one = |(c, p): (usize, &mut [f32])| {
-                p.fill(0.0);
-                let (k0, k1) = ((c * run).min(inp), ((c + 1) * run).min(inp));
-                accumulate_rows(p, &x[k0..k1], &w[k0 * out..k1 * out]);
-            };
-            if out * inp >= PARALLEL_WORK {
-                partial.par_chunks_mut(out).enumerate().for_each(one);
-            } else {
-                partial.chunks_mut(out).enumerate().for_each(one);
-            }
-            let y = &mut y[..out];
-            y.copy_from_slice(&partial[..out]);
-            for p in partial[out..].chunks_exact(out) {
-                for (a, &v) in y.iter_mut().zip(p) {
-                    *a += v;
-                }
-            }
-        });
+    assert!(x.len() >= n * inp && w.len() >= panel_len(out, inp) && y.len() >= n * out);
+    if n == 0 || out == 0 {
         return;
     }
-    gemm_rows(x, n, inp, w, out as isize, 1, out, y);
+    let yc = Columns(y.as_mut_ptr());
+    let one = |p: usize| {
+        let j0 = p * PANEL;
+        let width = PANEL.min(out - j0);
+        let panel = &w[p * inp * PANEL..(p + 1) * inp * PANEL];
+        if n == 1 {
+            let mut acc = [0f32; PANEL];
+            panel_row(&mut acc, &x[..inp], panel);
+            // SAFETY: columns j0..j0 + width of the one output row belong to this task.
+            unsafe {
+                std::ptr::copy_nonoverlapping(acc.as_ptr(), yc.get().add(j0), width);
+            }
+            return;
+        }
+        // SAFETY: lhs (i, k) = panel[k·64 + i] for i < width ≤ 64, k < inp; rhs (k, t) =
+        // x[t·inp + k]; dst (i, t) = y[t·out + j0 + i]: all inside the asserted lengths, and
+        // these columns of y belong to this task.
+        unsafe {
+            gemm::gemm(
+                width,
+                n,
+                inp,
+                yc.get().add(j0),
+                out as isize,
+                1,
+                false,
+                panel.as_ptr(),
+                PANEL as isize,
+                1,
+                x.as_ptr(),
+                inp as isize,
+                1,
+                0.0,
+                1.0,
+                false,
+                false,
+                false,
+                gemm::Parallelism::None,
+            );
+        }
+    };
+    let panels = out.div_ceil(PANEL);
+    if n * inp * out >= PARALLEL_WORK {
+        (0..panels).into_par_iter().for_each(one);
+    } else {
+        (0..panels).for_each(one);
+    }
 }
 
-/// p += Σₖ x[k]·w[k, ..] over the rows of `w` ([x.len(), p.len()] row-major), four rows per
-/// pass so each partial sum is loaded and stored once per four weight rows. With AVX-512 (found
-/// at run time) the same loop is compiled for 16-wide vectors.
-fn accumulate_rows(p: &mut [f32], x: &[f32], w: &[f32]) {
+/// acc[l] = Σₖ x[k]·panel[k·64 + l]. With AVX-512 (found at run time) the loop is compiled for
+/// 16-wide vectors: the 64 sums stay in registers while the panel streams past.
+fn panel_row(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
     #[cfg(target_arch = "x86_64")]
     if std::arch::is_x86_feature_detected!("avx512f") {
         // SAFETY: the CPU has AVX-512F (checked just above).
-        unsafe { accumulate_rows_avx512(p, x, w) };
+        unsafe { panel_row_avx512(acc, x, panel) };
         return;
     }
-    accumulate_rows_body(p, x, w);
+    panel_row_body(acc, x, panel);
 }
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
-unsafe fn accumulate_rows_avx512(p: &mut [f32], x: &[f32], w: &[f32]) {
-    accumulate_rows_body(p, x, w);
+unsafe fn panel_row_avx512(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
+    panel_row_body(acc, x, panel);
 }
 
+/// Two sets of sums, for even and odd k, so consecutive multiply-adds do not wait on each
+/// other; added at the end.
 #[inline(always)]
-fn accumulate_rows_body(p: &mut [f32], x: &[f32], w: &[f32]) {
-    let out = p.len();
-    let mut quads = x.chunks_exact(4);
-    let mut rows = w.chunks_exact(4 * out);
-    for (xs, ws) in (&mut quads).zip(&mut rows) {
-        let (w0, rest) = ws.split_at(out);
-        let (w1, rest) = rest.split_at(out);
-        let (w2, w3) = rest.split_at(out);
-        let (x0, x1, x2, x3) = (xs[0], xs[1], xs[2], xs[3]);
-        for j in 0..out {
-            p[j] += x0 * w0[j] + x1 * w1[j] + x2 * w2[j] + x3 * w3[j];
+fn panel_row_body(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
+    let (mut even, mut odd) = ([0f32; PANEL], [0f32; PANEL]);
+    let mut pairs = panel.chunks_exact(2 * PANEL);
+    let mut xs = x.chunks_exact(2);
+    for (rows, xk) in (&mut pairs).zip(&mut xs) {
+        let (r0, r1) = rows.split_at(PANEL);
+        for l in 0..PANEL {
+            even[l] += xk[0] * r0[l];
+            odd[l] += xk[1] * r1[l];
         }
     }
-    for (&xk, wk) in quads
-        .remainder()
-        .iter()
-        .zip(rows.remainder().chunks_exact(out))
-    {
-        for (a, &wv) in p.iter_mut().zip(wk) {
-            *a += xk * wv;
+    if let (Some(&xk), Some(r0)) = (xs.remainder().first(), pairs.remainder().get(..PANEL)) {
+        for l in 0..PANEL {
+            even[l] += xk * r0[l];
         }
+    }
+    for l in 0..PANEL {
+        acc[l] = even[l] + odd[l];
     }
 }
 
@@ -1158,37 +1193,40 @@ mod tests {
         }
     }
 
-    /// The gemm call's strides: y = x·wᵀ against the textbook triple loop, in both layouts.
+    /// The gemm calls' strides and the panel layout: y = x·wᵀ against the textbook triple
+    /// loop, for the head layout and the panel layout, one row and several, a partial last
+    /// panel, on one task and on the pool.
     #[test]
     fn matmul_t_is_x_times_w_transposed() {
-        let (n, inp, out) = (3, 37, 5);
-        let x: Vec<f32> = (0..n * inp).map(|i| ((i * 7) % 11) as f32 - 5.0).collect();
-        let w: Vec<f32> = (0..out * inp)
-            .map(|i| ((i * 5) % 13) as f32 * 0.25)
-            .collect();
-        let mut y = vec![0.0; n * out];
-        matmul_t(&x, n, inp, &w, out, &mut y);
-        for i in 0..n {
-            for j in 0..out {
-                let want: f32 = (0..inp).map(|k| x[i * inp + k] * w[j * inp + k]).sum();
-                assert!((y[i * out + j] - want).abs() < 1e-3, "({i},{j})");
+        for (n, inp, out) in [(3, 37, 5), (7, 301, 150)] {
+            let x: Vec<f32> = (0..n * inp).map(|i| ((i * 7) % 11) as f32 - 5.0).collect();
+            let w: Vec<f32> = (0..out * inp)
+                .map(|i| ((i * 5) % 13) as f32 * 0.25)
+                .collect();
+            let mut y = vec![0.0; n * out];
+            matmul_t(&x, n, inp, &w, out, &mut y);
+            for i in 0..n {
+                for j in 0..out {
+                    let want: f32 = (0..inp).map(|k| x[i * inp + k] * w[j * inp + k]).sum();
+                    assert!((y[i * out + j] - want).abs() < 1e-3, "({i},{j})");
+                }
             }
-        }
-        let wt = transpose(&w, out, inp);
-        let mut y2 = vec![0.0; n * out];
-        matmul(&x, n, inp, &wt, out, &mut y2);
-        for (a, b) in y.iter().zip(&y2) {
-            assert!((a - b).abs() < 1e-3);
-        }
-        // The single-row paths (batch-1 decoding).
-        let mut y1 = vec![0.0; out];
-        matmul_t(&x[inp..2 * inp], 1, inp, &w, out, &mut y1);
-        for (a, b) in y1.iter().zip(&y[out..2 * out]) {
-            assert!((a - b).abs() < 1e-3);
-        }
-        matmul(&x[inp..2 * inp], 1, inp, &wt, out, &mut y1);
-        for (a, b) in y1.iter().zip(&y[out..2 * out]) {
-            assert!((a - b).abs() < 1e-3);
+            let wp = pack_panels(&w, out, inp);
+            let mut y2 = vec![0.0; n * out];
+            matmul(&x, n, inp, &wp, out, &mut y2);
+            for (a, b) in y.iter().zip(&y2) {
+                assert!((a - b).abs() < 1e-3);
+            }
+            // The single-row paths (batch-1 decoding).
+            let mut y1 = vec![0.0; out];
+            matmul_t(&x[inp..2 * inp], 1, inp, &w, out, &mut y1);
+            for (a, b) in y1.iter().zip(&y[out..2 * out]) {
+                assert!((a - b).abs() < 1e-3);
+            }
+            matmul(&x[inp..2 * inp], 1, inp, &wp, out, &mut y1);
+            for (a, b) in y1.iter().zip(&y[out..2 * out]) {
+                assert!((a - b).abs() < 1e-3);
+            }
         }
     }
 
