@@ -62,8 +62,6 @@ impl Generated {
     }
 }
 
-pub use crate::model::head::{apply_repetition_penalty, argmax};
-
 /// Tokens one forward call takes at most (beyond one per decoding sequence): long prompts are
 /// prefilled in chunks of this size, so the scratch buffers stay small.
 const STEP_TOKENS: usize = 512;
@@ -395,13 +393,6 @@ mod tests {
         // Python 3: " \x1c a \x1f\u3000".strip() == "a" (str.isspace is true for \x1c-\x1f).
         assert_eq!(strip_like_python(" \u{1c} a \u{1f}\u{3000}"), "a");
         assert_eq!(strip_like_python("\u{1b}a"), "\u{1b}a");
-    }
-
-    #[test]
-    fn argmax_ties_go_to_the_lowest_index() {
-        // torch.argmax returns the first maximal index (PyTorch documentation).
-        assert_eq!(argmax(&[1.0, 3.0, 3.0, 2.0]), 1);
-        assert_eq!(argmax(&[-1.0]), 0);
     }
 
     #[test]

@@ -121,13 +121,7 @@ pub fn run(args: &AnswerArgs) -> Result<Outcome> {
             args.questions.display()
         )));
     }
-    check_out_path(&args.out)?;
-    if fsutil::same_file(&args.out, &args.questions) {
-        return Err(Error::usage(format!(
-            "--out {} is the --questions file; choose another path so the input is not overwritten",
-            args.out.display()
-        )));
-    }
+    check_out_path(&args.out, &args.questions)?;
     let settings = AnswerSettings {
         restart: args.restart,
         weights: g.weights,
@@ -140,10 +134,16 @@ pub fn run(args: &AnswerArgs) -> Result<Outcome> {
 }
 
 /// The output must not be a directory and must not overwrite an input.
-fn check_out_path(out: &Path) -> Result<()> {
+fn check_out_path(out: &Path, questions: &Path) -> Result<()> {
     if out.is_dir() {
         return Err(Error::usage(format!(
             "--out {}: is a directory; expected a file path",
+            out.display()
+        )));
+    }
+    if fsutil::same_file(out, questions) {
+        return Err(Error::usage(format!(
+            "--out {} is the --questions file; choose another path so the input is not overwritten",
             out.display()
         )));
     }

@@ -60,6 +60,7 @@ pub struct Screen {
 #[derive(Debug, Default)]
 pub struct Scratch {
     xq: Vec<u32>,
+    rounded: Vec<Option<Rounded>>,
     acc: Vec<i32>,
     per_token: Vec<TokenScratch>,
 }
@@ -71,7 +72,7 @@ struct TokenScratch {
 }
 
 /// What one hidden vector contributes to the bounds.
-#[derive(Clone, Copy)]
+#[derive(Debug, Clone, Copy)]
 struct Rounded {
     tau: f32,
     norm_x: f64,
@@ -162,11 +163,6 @@ impl Screen {
         })
     }
 
-    /// Bytes the screen adds to the model.
-    pub fn bytes(&self) -> usize {
-        self.packed.len() * 4 + self.rows * 16
-    }
-
     /// The greedy token of each of the `n` hidden vectors `x` ([n, cols]) under the head `w`
     /// (the f32 rows this screen was made from), into `out`. `penalty`: the repetition penalty
     /// and, per vector, the ids it applies to (an empty slice: none).
@@ -185,7 +181,8 @@ impl Screen {
         if n == 0 {
             return;
         }
-        let rounded = pack_activations(x, n, cols, &mut scratch.xq);
+        pack_activations(x, n, cols, &mut scratch.xq, &mut scratch.rounded);
+        let rounded: &[Option<Rounded>] = &scratch.rounded;
         let tile = n * LANES;
         if scratch.acc.len() < self.blocks * tile {
             scratch.acc.resize(self.blocks * tile, 0);
@@ -402,21 +399,27 @@ pub fn apply_repetition_penalty(scores: &mut [f32], seen: &[bool], p: f32) {
 
 /// Rounds each vector to 8 bits (p + 128, unsigned) in the kernels' group layout: the group of
 /// `size` vectors starting at t0 occupies `t0·quads .. (t0 + size)·quads`, quad k of vector t at
-/// `k·size + t`. Returns each vector's scale and norms, or None for a vector the screen cannot
-/// take (zero or not finite).
-fn pack_activations(x: &[f32], n: usize, cols: usize, xq: &mut Vec<u32>) -> Vec<Option<Rounded>> {
+/// `k·size + t`. Writes each vector's scale and norms to `rounded`, or None for a vector the
+/// screen cannot take (zero or not finite).
+fn pack_activations(
+    x: &[f32],
+    n: usize,
+    cols: usize,
+    xq: &mut Vec<u32>,
+    rounded: &mut Vec<Option<Rounded>>,
+) {
     let quads = cols.div_ceil(4);
     xq.clear();
     // Padding columns hold p = 0 (byte 128) against zero weights.
     xq.resize(n * quads, 0x8080_8080);
-    let mut out = Vec::with_capacity(n);
+    rounded.clear();
     for (t0, size) in groups(n) {
         let g = &mut xq[t0 * quads..(t0 + size) * quads];
         for t in 0..size {
             let row = &x[(t0 + t) * cols..(t0 + t + 1) * cols];
             let max = row.iter().fold(0f32, |m, v| m.max(v.abs()));
             if !(max.is_finite() && max > 0.0) {
-                out.push(None);
+                rounded.push(None);
                 continue;
             }
             let tau = max / 127.0;
@@ -433,14 +436,13 @@ fn pack_activations(x: &[f32], n: usize, cols: usize, xq: &mut Vec<u32>) -> Vec<
                 g[k * size + t] = word;
             }
             let slack = 1.0 + 1e-9;
-            out.push(Some(Rounded {
+            rounded.push(Some(Rounded {
                 tau,
                 norm_x: x2.sqrt() * slack,
                 norm_err: e2.sqrt() * slack,
             }));
         }
     }
-    out
 }
 
 fn has_avx512_vnni() -> bool {
@@ -606,6 +608,13 @@ mod tests {
     }
 
     #[test]
+    fn argmax_ties_go_to_the_lowest_index() {
+        // torch.argmax returns the first maximal index (PyTorch documentation).
+        assert_eq!(argmax(&[1.0, 3.0, 3.0, 2.0]), 1);
+        assert_eq!(argmax(&[-1.0]), 0);
+    }
+
+    #[test]
     fn pick_is_the_argmax_of_every_f32_logit() {
         let mut g = Gen(0x9e37_79b9_7f4a_7c15);
         for &(rows, cols, n) in &[(1000, 67, 11), (333, 64, 5), (40, 6, 6), (4099, 130, 9)] {
@@ -656,7 +665,8 @@ mod tests {
         let mut scratch = Scratch::default();
         let mut out = Vec::new();
         screen.pick(&w, &x, n, None, &mut scratch, &mut out);
-        let rounded = pack_activations(&x, n, cols, &mut Vec::new());
+        let mut rounded = Vec::new();
+        pack_activations(&x, n, cols, &mut Vec::new(), &mut rounded);
         for (t, r) in rounded.iter().enumerate() {
             let Some(r) = *r else {
                 assert_eq!(t, 3, "only the zero vector is left to the fallback");
@@ -697,7 +707,7 @@ mod tests {
         let x: Vec<f32> = (0..n * cols).map(|_| g.next()).collect();
         let s = Screen::new(&w, rows, cols).expect("screen");
         let mut xq = Vec::new();
-        pack_activations(&x, n, cols, &mut xq);
+        pack_activations(&x, n, cols, &mut xq, &mut Vec::new());
         let byte = |v: u32, i: usize| (v >> (8 * (i % 4))) & 0xff;
         let want = |j: usize, t: usize| -> i32 {
             let (b, l) = (j / LANES, j % LANES);
