@@ -6,7 +6,7 @@
 //! Blank lines are skipped. Every problem names the file, the line and the field.
 
 use crate::error::{Error, Result};
-use crate::fsutil;
+use crate::fsutil::{self, json_kind};
 use serde::{Deserialize, Serialize};
 use std::collections::HashSet;
 use std::path::{Path, PathBuf};
@@ -218,17 +218,6 @@ fn parse_question(path: &Path, line: usize, text: &str) -> Result<Question> {
     })
 }
 
-/// The JSON type name of a value, for messages.
-pub fn json_kind(v: &serde_json::Value) -> &'static str {
-    match v {
-        serde_json::Value::Null => "null",
-        serde_json::Value::Bool(_) => "a boolean",
-        serde_json::Value::Number(_) => "a number",
-        serde_json::Value::String(_) => "a string",
-        serde_json::Value::Array(_) => "an array",
-        serde_json::Value::Object(_) => "an object",
-    }
-}
 
 #[cfg(test)]
 mod tests {

@@ -7,7 +7,7 @@
 //! so adding a family means filling in a spec, not writing another model.
 
 use crate::error::{Error, Result};
-use crate::questions::json_kind;
+use crate::fsutil::json_kind;
 use serde_json::{Map, Value};
 use std::path::Path;
 
