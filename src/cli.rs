@@ -1,7 +1,10 @@
-//! Command-line definition (interface.md, "Flags that must exist"). Parsing only: each command
-//! turns its arguments into validated settings in its own module under `commands`.
+//! Command-line definition (docs/interface.md, "Commands and flags"). Parsing only: each command
+//! turns its arguments into validated settings in its own module under `commands`. Defaults
+//! are the constants of the stage that owns them.
 
+use crate::answer::DEFAULT_BATCH;
 use crate::model::WeightFormat;
+use crate::weigh::{DEFAULT_CONFIDENCE, DEFAULT_RESAMPLES, DEFAULT_SEED};
 use clap::{Args, Parser, Subcommand};
 use std::path::PathBuf;
 
@@ -36,13 +39,13 @@ pub struct GenerationArgs {
     /// System message given to the chat template.
     #[arg(long, value_name = "TEXT")]
     pub system: Option<String>,
-    /// Stop each answer after this many new tokens.
-    #[arg(long, value_name = "N", default_value_t = 128)]
-    pub max_new_tokens: usize,
+    /// Stop each answer after this many new tokens [default: 128; 48 for the bundled demo].
+    #[arg(long, value_name = "N")]
+    pub max_new_tokens: Option<usize>,
     /// Questions decoded together (cache slots; a finished slot takes the next question at
     /// once). Answers do not depend on it; larger batches read each weight once for more
     /// tokens, at the cost of KV-cache memory.
-    #[arg(long, value_name = "N", default_value_t = 16)]
+    #[arg(long, value_name = "N", default_value_t = DEFAULT_BATCH)]
     pub batch: usize,
     /// Compute threads (default: all cores).
     #[arg(long, value_name = "N")]
@@ -89,7 +92,8 @@ pub struct GradeArgs {
     /// Question set (JSONL) the answers belong to.
     #[arg(long, value_name = "FILE")]
     pub questions: PathBuf,
-    /// Answers file written by `liftgate answer`.
+    /// Answers file (JSONL): written by `liftgate answer`, or by any other system; each row
+    /// needs only `id` and `answer`.
     #[arg(long, value_name = "FILE")]
     pub answers: PathBuf,
     /// Grades file to write (JSONL).
@@ -111,13 +115,13 @@ pub struct StatsArgs {
     #[arg(long, value_name = "FILE")]
     pub policy: Option<PathBuf>,
     /// Bootstrap resamples.
-    #[arg(long, value_name = "N", default_value_t = 10_000)]
+    #[arg(long, value_name = "N", default_value_t = DEFAULT_RESAMPLES)]
     pub resamples: usize,
     /// Seed for the bootstrap and permutation tests.
-    #[arg(long, value_name = "N", default_value_t = 7)]
+    #[arg(long, value_name = "N", default_value_t = DEFAULT_SEED)]
     pub seed: u64,
     /// Confidence level of the intervals.
-    #[arg(long, value_name = "C", default_value_t = 0.95)]
+    #[arg(long, value_name = "C", default_value_t = DEFAULT_CONFIDENCE)]
     pub confidence: f64,
 }
 

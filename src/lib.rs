@@ -1,24 +1,24 @@
 //! liftgate: shows, on held-out questions, whether a LoRA fine-tune answers better than its base
 //! model, with paired statistics and a go/no-go verdict, on CPU.
 //!
-//! The pipeline, one module each (see DEVELOPERS.md):
-//! question set → `answer` (model load, LoRA merge, chat template, greedy decode) → answers →
-//! `grade` (scorers) → grades → `weigh` (paired statistics, gate policy) → summary.json and
-//! report.md.
+//! The source is laid out as the pipeline (DEVELOPERS.md maps each stage to its files):
+//! question set → `answer` (model load, LoRA, chat template, greedy decoding) → answers →
+//! `grade` (scorers in `score`) → grades → `weigh` (paired statistics in `stats`, gate
+//! `policy`) → summary → `report` (summary.json, report.md, terminal table). The file formats
+//! between the stages live in `formats`; `commands` turns each subcommand's arguments into
+//! settings and calls the stages.
 
-pub mod answers;
+pub mod answer;
 pub mod chat;
 pub mod cli;
 pub mod commands;
 pub mod error;
+pub mod formats;
 pub mod fsutil;
-pub mod generate;
-pub mod grades;
+pub mod grade;
 pub mod interrupt;
-pub mod journal;
 pub mod model;
 pub mod policy;
-pub mod questions;
 pub mod report;
 pub mod score;
 pub mod stats;

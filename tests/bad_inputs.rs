@@ -526,15 +526,6 @@ fn cases() -> Vec<Case> {
             },
         },
         Case {
-            name: "answers: unknown field",
-            setup: |d| {
-                write_set(d);
-                let rows = answers_for(&IDS).replacen("\"ms\":3", "\"ms\":3,\"score\":1", 3);
-                write(d, "answers.jsonl", &rows);
-                grade(d, &[], &["answers.jsonl:1: field `score`", "unknown field"])
-            },
-        },
-        Case {
             name: "answers: grade output would overwrite the answers",
             setup: |d| {
                 write_set(d);

@@ -1,7 +1,7 @@
 //! The bundled demo: the held-out evaluation set, the training pairs it must not overlap, and
 //! the committed demo models (HF-layout base, peft LoRA adapter).
 
-use liftgate::questions::{Expect, QuestionSet};
+use liftgate::formats::questions::{Expect, QuestionSet};
 use std::collections::{BTreeMap, HashSet};
 use std::path::{Path, PathBuf};
 

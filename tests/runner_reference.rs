@@ -15,9 +15,9 @@
 //! rendered template text and its ids, the decoded answer text, and the template errors
 //! (a system role the template rejects with `raise_exception`).
 
-use liftgate::answers::Finish;
+use liftgate::answer::generate::{generate_batch, Decoding, GenerationSettings};
 use liftgate::chat::ChatTokenizer;
-use liftgate::generate::{generate_batch, Decoding, GenerationSettings};
+use liftgate::formats::answers::Finish;
 use liftgate::model;
 use serde_json::Value;
 use std::path::{Path, PathBuf};
@@ -147,7 +147,7 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
     // Two slots for all the cases: finished slots are refilled while the other decodes.
     let mut refilled: Vec<Option<Vec<u32>>> = vec![None; prompts.len()];
     let todo: Vec<usize> = (0..prompts.len()).rev().collect();
-    liftgate::generate::generate_stream(
+    liftgate::answer::generate::generate_stream(
         &loaded.decoder,
         &prompts,
         &todo,
@@ -266,7 +266,7 @@ fn prompts_answers_and_template_errors_match_the_reference() {
             }
             let text = chat.decode(&out).unwrap();
             assert_eq!(
-                liftgate::generate::strip_like_python(&text),
+                liftgate::answer::generate::strip_like_python(&text),
                 c["answer"].as_str().unwrap(),
                 "{label}: answer"
             );

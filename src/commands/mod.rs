@@ -1,7 +1,9 @@
-//! Command glue: each subcommand validates its arguments, calls the library modules and writes
-//! its outputs atomically.
+//! Command glue, one module per subcommand: arguments to validated settings in one fallible
+//! step, then the pipeline stages (`answer`, `grade`, `weigh`, `report`). Command modules never
+//! import one another; what two of them share lives in `args`.
 
 pub mod answer;
+mod args;
 pub mod grade;
 pub mod vet;
 pub mod weigh;
@@ -16,6 +18,17 @@ pub enum Outcome {
     Success,
     /// Exit 1: `weigh` / `vet` only, the verdict is NO-GO.
     NoGo,
+}
+
+impl Outcome {
+    /// The outcome of a run that ends in a verdict.
+    pub fn from_verdict(go: bool) -> Self {
+        if go {
+            Outcome::Success
+        } else {
+            Outcome::NoGo
+        }
+    }
 }
 
 pub fn run(command: Command) -> Result<Outcome> {

@@ -10,6 +10,7 @@
 
 use super::summary::*;
 use super::Renderer;
+use crate::policy::IntervalKind;
 use std::fmt::Write;
 
 /// Longest user text shown in one table cell, in characters.
@@ -123,27 +124,27 @@ fn rate(r: &Rate) -> String {
     }
 }
 
-fn check_value(c: &Check) -> String {
-    match c.value {
-        Some(v) if c.name == "min_questions" => format!("{v:.0}"),
-        Some(v) if c.name.starts_with("refusal.") => pct(Some(v)),
-        Some(v) => format!("{v:+.3}"),
-        None => "–".into(),
+/// A check's value or threshold on its own scale: a count, a share, or a lift.
+fn check_number(c: &Check, v: f64) -> String {
+    match c.kind() {
+        CheckKind::MinQuestions => format!("{v:.0}"),
+        CheckKind::Refusal => pct(Some(v)),
+        CheckKind::Lift | CheckKind::Category(_) => format!("{v:+.3}"),
     }
 }
 
+fn check_value(c: &Check) -> String {
+    c.value.map_or_else(|| "–".into(), |v| check_number(c, v))
+}
+
 fn check_threshold(c: &Check) -> String {
-    let v = c.threshold;
-    let t = if c.name == "min_questions" {
-        format!("{v:.0}")
-    } else if c.name.starts_with("refusal.") {
-        pct(Some(v))
-    } else {
-        format!("{v:+.3}")
-    };
     format!(
-        "{} {t}",
-        c.comparison.replace('>', "&gt;").replace('<', "&lt;")
+        "{} {}",
+        c.comparison
+            .as_str()
+            .replace('>', "&gt;")
+            .replace('<', "&lt;"),
+        check_number(c, c.threshold)
     )
 }
 
@@ -190,7 +191,10 @@ pub fn render(s: &Summary) -> String {
         "Means over in-scope questions; lift = candidate − baseline, question by question. \
          Interval: {conf} {} bootstrap ({} resamples, seed {}). p-value: paired sign-flip permutation test, two-sided. \
          The gate reads **{}**.\n",
-        if s.settings.interval == "bca" { "BCa" } else { "percentile" },
+        match s.settings.interval {
+            IntervalKind::Bca => "BCa",
+            IntervalKind::Percentile => "percentile",
+        },
         s.settings.resamples,
         s.settings.seed,
         gate.label()

@@ -1,8 +1,9 @@
-//! Reports of a weighing (issue 2, "Reports"): the data (`summary`, the summary.json format)
-//! kept apart from its renderings, one module per format: `markdown` (report.md) and `terminal`
-//! (the short table `weigh` prints). [`write_report_dir`] writes summary.json and report.md
-//! together: both or neither.
+//! Reports of a weighing: the data (`summary`, the summary.json format) kept apart from its
+//! renderings, one module per format: `markdown` (report.md) and `terminal` (the short table
+//! `weigh` and `vet` print). [`write_report_dir`] writes summary.json and report.md together:
+//! both or neither. `dir` claims and locks the report directories of `vet`.
 
+pub mod dir;
 pub mod markdown;
 pub mod summary;
 pub mod terminal;

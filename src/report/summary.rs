@@ -1,6 +1,6 @@
 //! The summary.json format: one serde struct tree, written by `weigh` and `vet`.
 //!
-//! interface.md fixes the core fields and they are kept exactly:
+//! docs/interface.md fixes the core fields and they are kept exactly:
 //! `metrics.<exact_match|token_f1|rouge_l>.{baseline, candidate, lift, ci_low, ci_high,
 //! p_value, n}`, a `refusal` block, a `categories` block, and `verdict.{go, checks[]}` with each
 //! check's `name`, `threshold`, `value` and `pass`. Everything else is an extension (new fields
@@ -10,7 +10,7 @@
 //! [−1, 1]), never a percentage. A number that cannot be computed (no questions) is `null`.
 //! The file holds no timestamps or timings, so the same inputs and seed give identical bytes.
 
-use crate::policy::Policy;
+use crate::policy::{IntervalKind, Policy};
 use crate::stats::Interval;
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
@@ -60,12 +60,7 @@ pub struct Inputs {
     pub approximations: Vec<String>,
 }
 
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct InputFile {
-    /// The path as given on the command line.
-    pub path: String,
-    pub sha256: String,
-}
+pub use crate::formats::run_record::InputFile;
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct PolicySource {
@@ -83,7 +78,7 @@ pub struct Settings {
     /// Confidence level of every interval (bootstrap and Wilson).
     pub confidence: f64,
     /// The interval the gate reads and that `ci_low`/`ci_high` hold: `"bca"` or `"percentile"`.
-    pub interval: String,
+    pub interval: IntervalKind,
     /// How the lift intervals are made.
     pub bootstrap_method: String,
     /// How every `p_value` of a lift is computed.
@@ -243,8 +238,56 @@ pub struct Check {
     /// Null when there was nothing to measure (the check then fails, unless said otherwise).
     pub value: Option<f64>,
     /// How value must compare with threshold to pass: `">"`, `">="` or `"<="`.
-    pub comparison: String,
+    pub comparison: Comparison,
     pub pass: bool,
     /// On failure, why, in plain words for non-engineers.
     pub reason: Option<String>,
+}
+
+/// How a check's value must compare with its threshold.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Deserialize)]
+pub enum Comparison {
+    #[serde(rename = ">")]
+    Above,
+    #[serde(rename = ">=")]
+    AtLeast,
+    #[serde(rename = "<=")]
+    AtMost,
+}
+
+impl Comparison {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Comparison::Above => ">",
+            Comparison::AtLeast => ">=",
+            Comparison::AtMost => "<=",
+        }
+    }
+}
+
+/// What a check measures, read from its stable `name`.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum CheckKind<'a> {
+    /// A count of questions.
+    MinQuestions,
+    /// The lower end of a metric's lift interval.
+    Lift,
+    /// A share of questions declined (`refusal.*`).
+    Refusal,
+    /// A category's lift interval end; the category's name.
+    Category(&'a str),
+}
+
+impl Check {
+    pub fn kind(&self) -> CheckKind<'_> {
+        if self.name == "min_questions" {
+            CheckKind::MinQuestions
+        } else if self.name.starts_with("refusal.") {
+            CheckKind::Refusal
+        } else if let Some(category) = self.name.strip_prefix("category.") {
+            CheckKind::Category(category)
+        } else {
+            CheckKind::Lift
+        }
+    }
 }

@@ -76,7 +76,7 @@ pub fn render(s: &Summary) -> String {
     for ch in &s.verdict.checks {
         c.add_row(vec![
             sanitize(&ch.name),
-            format!("{} {}", ch.comparison, trim(ch.threshold)),
+            format!("{} {}", ch.comparison.as_str(), trim(ch.threshold)),
             ch.value.map(trim).unwrap_or_else(|| "-".into()),
             if ch.pass { "pass" } else { "FAIL" }.to_string(),
         ]);

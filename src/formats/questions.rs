@@ -1,7 +1,8 @@
-//! The question set (interface.md, "Question set"): JSONL, one object a line.
+//! The question set (docs/interface.md, "Question set"): JSONL, one object a line.
 //!
-//! Fields: `id` (string, unique), `question` (non-empty string), `references` (array of strings,
-//! non-empty when `expect` is `answer`), `expect` (`answer` | `refuse`, default `answer`),
+//! Fields: `id` (string, unique), `question` (non-empty string), `references` (array of strings;
+//! grading needs a non-empty one for every `expect: answer` question, see
+//! [`QuestionSet::check_references`]), `expect` (`answer` | `refuse`, default `answer`),
 //! `category` (string, default `general`). Unknown fields are kept in `extra` and ignored.
 //! Blank lines are skipped. Every problem names the file, the line and the field.
 
@@ -104,6 +105,28 @@ impl QuestionSet {
         Ok(questions)
     }
 
+    /// Every `expect: answer` question must have a non-empty reference answer to be scored
+    /// against. Checked by the stages that score (`grade`, and `vet` before it answers), not on
+    /// load: answering needs only ids and questions.
+    pub fn check_references(&self) -> Result<()> {
+        match self
+            .questions
+            .iter()
+            .find(|q| q.expect == Expect::Answer && q.references.iter().all(|r| r.trim().is_empty()))
+        {
+            Some(q) => Err(Error::field(
+                &self.path,
+                Some(q.line),
+                "references",
+                format!(
+                    "question {:?} needs at least one non-empty reference answer to be graded (`expect` is \"answer\")",
+                    q.id
+                ),
+            )),
+            None => Ok(()),
+        }
+    }
+
     pub fn len(&self) -> usize {
         self.questions.len()
     }
@@ -200,14 +223,6 @@ fn parse_question(path: &Path, line: usize, text: &str) -> Result<Question> {
             ))
         }
     };
-    if expect == Expect::Answer && references.iter().all(|r| r.trim().is_empty()) {
-        return Err(Error::field(
-            path,
-            Some(line),
-            "references",
-            "needs at least one non-empty reference answer when `expect` is \"answer\"",
-        ));
-    }
     Ok(Question {
         id,
         question,
@@ -217,7 +232,6 @@ fn parse_question(path: &Path, line: usize, text: &str) -> Result<Question> {
         line,
     })
 }
-
 
 #[cfg(test)]
 mod tests {
@@ -265,13 +279,31 @@ mod tests {
     }
 
     #[test]
+    fn references_are_needed_only_for_grading() {
+        // Answering needs ids and questions only: a set without references loads.
+        let set = load_str(
+            "{\"id\":\"a\",\"question\":\"Q?\",\"references\":[\"R\"]}\n{\"id\":\"b\",\"question\":\"Q2?\"}\n",
+        )
+        .unwrap();
+        let err = set.check_references().unwrap_err();
+        assert_eq!(err.exit_code(), 2);
+        let msg = err.to_string();
+        assert!(msg.contains(":2: field `references`"), "{msg}");
+        assert!(msg.contains("\"b\""), "{msg}");
+        let refuse_only =
+            load_str("{\"id\":\"x\",\"question\":\"Out?\",\"expect\":\"refuse\"}\n").unwrap();
+        refuse_only.check_references().unwrap();
+        let blank = load_str("{\"id\":\"a\",\"question\":\"Q\",\"references\":[\" \"]}").unwrap();
+        assert!(blank.check_references().is_err());
+    }
+
+    #[test]
     fn errors_name_line_and_field() {
         let cases = [
             ("{\"id\":\"a\",\"question\":\"Q\",\"references\":[\"R\"]}\n{\"id\":\"a\",\"question\":\"Q\",\"references\":[\"R\"]}", ":2: field `id`"),
             ("{\"question\":\"Q\",\"references\":[\"R\"]}", ":1: field `id`"),
             ("{\"id\":5,\"question\":\"Q\",\"references\":[\"R\"]}", "field `id`: expected a string, found a number"),
             ("{\"id\":\"a\",\"question\":\"\",\"references\":[\"R\"]}", "field `question`"),
-            ("{\"id\":\"a\",\"question\":\"Q\",\"references\":[]}", "field `references`"),
             ("{\"id\":\"a\",\"question\":\"Q\",\"references\":[\"R\", 3]}", "field `references[1]`"),
             ("{\"id\":\"a\",\"question\":\"Q\",\"references\":[\"R\"],\"expect\":\"maybe\"}", "field `expect`"),
             ("{\"id\":\"a\",", ":1: not valid JSON"),

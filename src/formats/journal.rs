@@ -15,11 +15,11 @@
 //! (a kill or power loss) and is dropped; a bad line before the last one is corruption and an
 //! error. The journal is locked while a run writes it, so two runs cannot append to one file.
 
-use crate::answers::AnswerRecord;
+use super::answers::AnswerRecord;
+use super::questions::QuestionSet;
+use super::run_record::RunInfo;
 use crate::error::{Error, Result};
 use crate::fsutil;
-use crate::generate::RunInfo;
-use crate::questions::QuestionSet;
 use serde::{Deserialize, Serialize};
 use std::collections::HashMap;
 use std::fs::File;
@@ -357,7 +357,7 @@ impl Journal {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::answers::Finish;
+    use crate::formats::answers::Finish;
 
     fn set(dir: &Path) -> QuestionSet {
         let p = dir.join("set.jsonl");
@@ -392,10 +392,11 @@ mod tests {
         AnswerRecord {
             id: id.into(),
             answer: format!("answer {id}"),
-            finish: Finish::Eos,
-            prompt_tokens: 5,
-            new_tokens: 3,
-            ms: 7,
+            finish: Some(Finish::Eos),
+            prompt_tokens: Some(5),
+            new_tokens: Some(3),
+            ms: Some(7),
+            extra: Default::default(),
         }
     }
 

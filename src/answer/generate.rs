@@ -1,13 +1,13 @@
 //! Greedy generation over a batch of prompts with the KV cache, as transformers 5.24
-//! `generate(do_sample=False)` does (model-formats.md §3.2–§3.3).
+//! `generate(do_sample=False)` does (docs/model-formats.md §3.2–§3.3).
 //!
 //! Sequences run in the slots of a preallocated KV cache with no padding: every prompt keeps
-//! position ids 0, 1, 2, … as it would alone (model-formats.md §3.3), a finished slot takes the
+//! position ids 0, 1, 2, … as it would alone (docs/model-formats.md §3.3), a finished slot takes the
 //! next prompt at once, and the prompt prefix shared by every question is computed once
 //! (`generate_stream`).
 
-use crate::answers::Finish;
 use crate::error::{Error, Result};
+use crate::formats::answers::Finish;
 use crate::model::decoder::{Decoder, Segment, Workspace};
 
 /// How the next token is chosen. Only greedy decoding exists; a sampling mode would be a new
@@ -308,80 +308,6 @@ pub fn generate_batch(
 /// Python counts as whitespace and Rust's `str::trim` does not.
 pub fn strip_like_python(s: &str) -> &str {
     s.trim_matches(|c: char| c.is_whitespace() || ('\u{1c}'..='\u{1f}').contains(&c))
-}
-
-/// What produced an answers file: written as `<out>.run.json` (interface.md, "Answers file").
-/// Fingerprints are SHA-256 hex of file contents, so a changed file shows up even under the
-/// same path.
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct RunInfo {
-    pub tool: String,
-    pub tool_version: String,
-    pub model: ModelInfo,
-    pub adapter: Option<AdapterInfo>,
-    pub chat_template: TemplateInfo,
-    pub generation: GenerationInfo,
-    pub questions: QuestionsInfo,
-    /// The dtype every tensor was computed in.
-    pub compute_dtype: String,
-}
-
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct ModelInfo {
-    pub path: String,
-    /// SHA-256 over the per-file SHA-256s of config, generation config, safetensors (and
-    /// index) and tokenizer files, listed in `files`.
-    pub fingerprint: String,
-    pub files: Vec<FileDigest>,
-    pub model_type: String,
-    pub architecture: String,
-    /// The dtype the checkpoint stored its weights in.
-    pub stored_dtype: String,
-}
-
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct FileDigest {
-    pub name: String,
-    pub sha256: String,
-}
-
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct AdapterInfo {
-    pub path: String,
-    pub fingerprint: String,
-    pub modules_merged: usize,
-}
-
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct TemplateInfo {
-    /// SHA-256 of the template source, or of the plain fallback's name.
-    pub fingerprint: String,
-    /// false: the documented plain fallback prompt was used.
-    pub from_model: bool,
-}
-
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct GenerationInfo {
-    pub decoding: String,
-    pub max_new_tokens: usize,
-    pub ignore_eos: bool,
-    pub eos_token_ids: Vec<u32>,
-    /// "generation_config.json" or "config.json".
-    pub eos_source: String,
-    pub system: Option<String>,
-    /// From generation_config.json; null when none.
-    pub repetition_penalty: Option<f64>,
-    /// generation_config.json logits-processor keys that were not applied.
-    pub ignored_generation_config_keys: Vec<String>,
-    pub batch: usize,
-    pub threads: usize,
-}
-
-#[derive(Debug, Clone, PartialEq, serde::Serialize, serde::Deserialize)]
-pub struct QuestionsInfo {
-    pub path: String,
-    pub fingerprint: String,
-    pub count: usize,
 }
 
 #[cfg(test)]

@@ -1,14 +1,15 @@
-//! The grades file (interface.md, "Grades file"), written by `grade`, read by `weigh`.
+//! The grades file (docs/interface.md, "Grades file"), written by `grade`, read by `weigh`.
 //!
 //! JSONL, one object a question: `id`, `category`, `expect`, `exact_match` (0 or 1), `token_f1`,
 //! `rouge_l`, `refused`. The three reference scores are null where the question has no
 //! references (typically `expect: refuse` questions). liftgate adds `answer` (the graded text)
 //! so `weigh` can show both variants' answers side by side without the answers files.
 
-use crate::answers::{check, check_ids, check_set_fingerprint, row_error};
+use super::questions::{Expect, QuestionSet};
+use super::run_record::check_set_fingerprint;
+use super::{check, check_ids, row_error};
 use crate::error::{Error, Result};
 use crate::fsutil;
-use crate::questions::{Expect, QuestionSet};
 use serde::{Deserialize, Serialize};
 use std::path::Path;
 
@@ -28,19 +29,6 @@ pub struct GradeRecord {
     /// The answer text that was graded.
     #[serde(default)]
     pub answer: String,
-}
-
-/// `<grades>.run.json`, written by `grade` beside the grades file: what was graded.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
-pub struct GradeRunInfo {
-    pub tool: String,
-    pub tool_version: String,
-    pub questions: crate::generate::QuestionsInfo,
-    /// The answers file graded: path and SHA-256 of its content.
-    pub answers: crate::report::summary::InputFile,
-    /// The answers' `compute_dtype` (from their run.json), when recorded.
-    #[serde(default, skip_serializing_if = "Option::is_none")]
-    pub compute_dtype: Option<String>,
 }
 
 /// Reads a grades file and checks it matches the question set id for id, in order.

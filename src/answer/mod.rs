@@ -1,0 +1,101 @@
+//! The answering stage: one model variant (a base model, or base + LoRA adapter) answers every
+//! question of a set, greedy, on CPU (docs/interface.md, "liftgate answer").
+//!
+//! - `prompts`: every question through the chat template to token ids, before any model work,
+//!   so a template error stops the run with nothing computed; and a finished generation back to
+//!   an answers-file row.
+//! - `generate`: greedy decoding over a ragged batch with continuous refill.
+//! - `run`: loads the variant, decodes, saves each answer to the resume journal as it finishes,
+//!   and writes the answers file and its run record at the end ([`answer_to`]).
+
+pub mod generate;
+mod prompts;
+mod run;
+
+pub use generate::Decoding;
+pub use run::{answer_to, AnswerRun};
+
+use crate::error::{Error, Result};
+use crate::model::WeightFormat;
+use std::path::{Path, PathBuf};
+
+/// New tokens per answer unless `--max-new-tokens` says otherwise.
+pub const DEFAULT_MAX_NEW_TOKENS: usize = 128;
+/// Questions decoded together unless `--batch` says otherwise.
+pub const DEFAULT_BATCH: usize = 16;
+
+/// How every variant of a run generates: the options that do not depend on the model.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Generation {
+    /// System message given to the chat template.
+    pub system: Option<String>,
+    pub decoding: Decoding,
+    pub max_new_tokens: usize,
+    /// Generate exactly `max_new_tokens`, never stopping on end-of-sequence.
+    pub ignore_eos: bool,
+    /// Cache slots: questions decoded together (answers do not depend on it).
+    pub batch: usize,
+    /// None: all cores.
+    pub threads: Option<usize>,
+    /// How the runner holds the weights of the matrix products.
+    pub weights: WeightFormat,
+}
+
+impl Generation {
+    /// Checks the numbers; a bad one is a usage error (exit 2) naming its flag.
+    pub fn checked(self) -> Result<Self> {
+        if self.max_new_tokens == 0 {
+            return Err(Error::usage("--max-new-tokens must be at least 1"));
+        }
+        if self.batch == 0 {
+            return Err(Error::usage("--batch must be at least 1"));
+        }
+        if self.threads == Some(0) {
+            return Err(Error::usage("--threads must be at least 1"));
+        }
+        Ok(self)
+    }
+}
+
+/// Validated settings of one answering run: which variant, how to generate, and whether to
+/// discard the saved answers of an earlier run.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Settings {
+    pub model: PathBuf,
+    pub adapter: Option<PathBuf>,
+    pub generation: Generation,
+    /// Discard saved answers of an earlier run instead of continuing it.
+    pub restart: bool,
+}
+
+impl Settings {
+    /// Checks that the model (and adapter) are directories; every problem is a usage error
+    /// (exit 2) naming the path. What is inside them is checked when they are loaded.
+    pub fn new(
+        model: &Path,
+        adapter: Option<&Path>,
+        generation: Generation,
+        restart: bool,
+    ) -> Result<Self> {
+        if !model.is_dir() {
+            return Err(Error::usage(format!(
+                "--model {}: not a directory (expected a Hugging Face model directory with config.json, *.safetensors, tokenizer.json)",
+                model.display()
+            )));
+        }
+        if let Some(a) = adapter {
+            if !a.is_dir() {
+                return Err(Error::usage(format!(
+                    "--adapter {}: not a directory (expected a peft adapter directory with adapter_config.json and adapter_model.safetensors)",
+                    a.display()
+                )));
+            }
+        }
+        Ok(Settings {
+            model: model.to_path_buf(),
+            adapter: adapter.map(Path::to_path_buf),
+            generation: generation.checked()?,
+            restart,
+        })
+    }
+}

@@ -1,0 +1,369 @@
+//! One answering run: load the variant, decode every question, save each answer to the resume
+//! journal as it finishes (`crate::formats::journal`), and write the answers file with its run
+//! record at the end. A stopped or killed run is continued by the same command.
+
+use super::generate::{self, GenerationSettings};
+use super::{prompts, Settings};
+use crate::chat::ChatTokenizer;
+use crate::error::{Error, Result};
+use crate::formats::answers::{self, AnswerRecord};
+use crate::formats::journal::{self, Contents, Journal, RunIdentity};
+use crate::formats::questions::QuestionSet;
+use crate::formats::run_record::{
+    self, AdapterInfo, FileDigest, GenerationInfo, ModelInfo, QuestionsInfo, RunInfo, TemplateInfo,
+};
+use crate::fsutil;
+use crate::interrupt::StopFlag;
+use crate::model;
+use indicatif::{ProgressBar, ProgressStyle};
+use std::path::{Path, PathBuf};
+use std::time::Instant;
+
+/// The records of a run and what produced them.
+#[derive(Debug, Clone)]
+pub struct AnswerRun {
+    pub records: Vec<AnswerRecord>,
+    pub info: RunInfo,
+}
+
+/// Sets the compute thread count once per process: rayon's global pool (used by gemm's
+/// parallel matmul) and candle's own pool, which reads `RAYON_NUM_THREADS` when first used
+/// (candle-core 0.11.1 `utils::get_num_threads`).
+fn set_threads(n: Option<usize>) -> usize {
+    if let Some(n) = n {
+        static ONCE: std::sync::Once = std::sync::Once::new();
+        ONCE.call_once(|| {
+            std::env::set_var("RAYON_NUM_THREADS", n.to_string());
+            // An error means the pool already exists (a second run in one process).
+            let _ = rayon::ThreadPoolBuilder::new()
+                .num_threads(n)
+                .build_global();
+        });
+    }
+    candle_core::utils::get_num_threads()
+}
+
+/// What a run needs before decoding: everything loaded and checked, every prompt built.
+struct Prepared {
+    chat: ChatTokenizer,
+    loaded: model::LoadedModel,
+    prompts: Vec<Vec<u32>>,
+    gen: GenerationSettings,
+    info: RunInfo,
+}
+
+/// Loads the model (with the adapter merged) and tokenises every prompt; every input error
+/// surfaces here, before anything is written.
+fn prepare(settings: &Settings, set: &QuestionSet) -> Result<Prepared> {
+    let g = &settings.generation;
+    let threads = set_threads(g.threads);
+    // The config first: a wrong or unsupported model fails before the tokenizer is read.
+    model::config::ModelSpec::load(&settings.model)?;
+    let chat = ChatTokenizer::load(&settings.model)?;
+    // Every prompt before any model work: a template error (e.g. a rejected system role) stops
+    // the run with nothing computed.
+    let prompts = prompts::build(&chat, g.system.as_deref(), set)?;
+    let loaded = model::load_as(&settings.model, settings.adapter.as_deref(), g.weights)?;
+    let spec = &loaded.spec;
+    if let Some((i, bad)) = prompts.iter().enumerate().find_map(|(i, p)| {
+        p.iter()
+            .find(|&&t| t as usize >= spec.vocab_size)
+            .map(|t| (i, *t))
+    }) {
+        return Err(Error::file(
+            settings.model.join("tokenizer.json"),
+            format!(
+                "token id {bad} in the prompt of question {:?} is outside the model's vocabulary ({} rows); tokenizer and weights do not belong together",
+                set.questions[i].id, spec.vocab_size
+            ),
+        ));
+    }
+    if !loaded.generation.unsupported_keys.is_empty() {
+        eprintln!(
+            "liftgate: warning: {} sets {} which transformers applies even under greedy decoding; liftgate ignores them, so answers may differ from the reference library",
+            settings.model.join("generation_config.json").display(),
+            loaded.generation.unsupported_keys.join(", ")
+        );
+    }
+    let gen = GenerationSettings {
+        decoding: g.decoding,
+        max_new_tokens: g.max_new_tokens,
+        eos: loaded.generation.eos.clone(),
+        ignore_eos: g.ignore_eos,
+        repetition_penalty: loaded.generation.repetition_penalty.map(|p| p as f32),
+    };
+    let info = RunInfo {
+        tool: "liftgate".to_string(),
+        tool_version: env!("CARGO_PKG_VERSION").to_string(),
+        model: model_info(&settings.model, &loaded)?,
+        adapter: loaded.adapter.as_ref().map(|(a, summary)| AdapterInfo {
+            path: settings
+                .adapter
+                .as_deref()
+                .map(|p| p.display().to_string())
+                .unwrap_or_default(),
+            fingerprint: a.fingerprint().to_string(),
+            modules_merged: summary.modules_merged,
+        }),
+        chat_template: TemplateInfo {
+            fingerprint: chat.template_fingerprint(),
+            from_model: chat.has_template(),
+        },
+        generation: GenerationInfo {
+            decoding: g.decoding.as_str().to_string(),
+            max_new_tokens: g.max_new_tokens,
+            ignore_eos: g.ignore_eos,
+            eos_token_ids: gen.eos.clone(),
+            eos_source: if loaded.generation.from_generation_config {
+                "generation_config.json".to_string()
+            } else {
+                "config.json".to_string()
+            },
+            system: g.system.clone(),
+            repetition_penalty: loaded.generation.repetition_penalty,
+            ignored_generation_config_keys: loaded.generation.unsupported_keys.clone(),
+            batch: g.batch,
+            threads,
+        },
+        questions: QuestionsInfo {
+            path: set.path.display().to_string(),
+            fingerprint: set.fingerprint.clone(),
+            count: set.len(),
+        },
+        compute_dtype: g.weights.compute_dtype().to_string(),
+    };
+    Ok(Prepared {
+        chat,
+        loaded,
+        prompts,
+        gen,
+        info,
+    })
+}
+
+/// Answers every question of `set` into `out` (and `<out>.run.json`), resumably.
+///
+/// Each finished answer is appended to the journal `<out>.partial` at once. A journal left by
+/// an earlier run with the same [`RunIdentity`] is continued (its questions are not answered
+/// again); one from a different run is refused (exit 2) unless `settings.restart`. A complete
+/// `<out>` from the same identity is kept as it is. When every question is answered, `<out>`
+/// is written in the set's order, atomically, and the journal removed. A stop signal ends the
+/// run with [`Error::Interrupted`] after the answer being saved.
+pub fn answer_to(
+    out: &Path,
+    settings: &Settings,
+    set: &QuestionSet,
+    stop: &StopFlag,
+) -> Result<AnswerRun> {
+    let prep = prepare(settings, set)?;
+    let identity = RunIdentity::of(&prep.info);
+    let jpath = journal::journal_path(out);
+    let n = set.len();
+    if !settings.restart && !jpath.exists() {
+        if let Some(done) = finished_run(out, &identity, set) {
+            eprintln!(
+                "liftgate: {} is already complete for this model, adapter, question set and settings; kept as it is (pass --restart to answer again)",
+                out.display()
+            );
+            return Ok(done);
+        }
+    }
+    stop.check(|| format!("nothing answered yet; {} not written", out.display()))?;
+
+    let mut journal = Journal::open(&jpath)?;
+    let mut rows: Vec<Option<AnswerRecord>> = vec![None; n];
+    let contents = if settings.restart {
+        None
+    } else {
+        Some(journal.read(set)?)
+    };
+    match contents {
+        Some(Contents {
+            identity: Some(old),
+            records,
+            valid_len,
+            dropped_line,
+        }) => {
+            check_same_run(&jpath, &old, &identity)?;
+            journal.resume(valid_len)?;
+            let kept = records.len();
+            for (i, row) in records {
+                rows[i] = Some(row);
+            }
+            let dropped = match dropped_line {
+                Some(line) => format!(" (line {line}, cut off mid-write, dropped)"),
+                None => String::new(),
+            };
+            eprintln!(
+                "liftgate: continuing from {}: {kept} of {n} questions already answered{dropped}",
+                jpath.display()
+            );
+        }
+        _ => journal.start(&identity)?,
+    }
+
+    let Prepared {
+        chat,
+        loaded,
+        prompts,
+        gen,
+        info,
+    } = prep;
+    // Longest prompts first, so the slowest sequences start early and the last slots do not
+    // run alone at the end; the answers do not depend on the order.
+    let mut todo: Vec<usize> = (0..n).filter(|&i| rows[i].is_none()).collect();
+    todo.sort_by_key(|&i| (std::cmp::Reverse(prompts[i].len()), i));
+    // Read by both callbacks below, counted by one.
+    let saved = std::cell::Cell::new(n - todo.len());
+    let saved_note = |saved: usize| {
+        format!(
+            "{saved} of {n} answers saved in {}; {} not written yet",
+            jpath.display(),
+            out.display()
+        )
+    };
+    stop.check(|| saved_note(saved.get()))?;
+    let bar = progress_bar(n as u64);
+    bar.set_position(saved.get() as u64);
+    let started = Instant::now();
+    let mut new_tokens_total = 0usize;
+    let result = if todo.is_empty() {
+        Ok(())
+    } else {
+        generate::generate_stream(
+            &loaded.decoder,
+            &prompts,
+            &todo,
+            &gen,
+            settings.generation.batch,
+            &mut |i, g| {
+                let row = prompts::answer_record(&chat, &set.questions[i].id, g)?;
+                journal.append(&row)?;
+                rows[i] = Some(row);
+                saved.set(saved.get() + 1);
+                bar.inc(1);
+                stop.check(|| saved_note(saved.get()))
+            },
+            &mut |k| {
+                new_tokens_total += k;
+                let secs = started.elapsed().as_secs_f64().max(1e-9);
+                bar.set_message(format!("{:.1} tokens/s", new_tokens_total as f64 / secs));
+                // A stop request ends decoding after this step; answers in flight are
+                // computed again by the next run.
+                stop.check(|| saved_note(saved.get()))
+            },
+        )
+    };
+    bar.finish_and_clear();
+    result?;
+    let secs = started.elapsed().as_secs_f64();
+    eprintln!(
+        "answered {} questions: {new_tokens_total} new tokens in {secs:.3} s ({:.1} tokens/s)",
+        todo.len(),
+        new_tokens_total as f64 / secs.max(1e-9)
+    );
+
+    let mut records = Vec::with_capacity(n);
+    for (q, row) in set.questions.iter().zip(rows) {
+        records.push(
+            row.ok_or_else(|| Error::internal(format!("question {:?} was not answered", q.id)))?,
+        );
+    }
+    let run = AnswerRun { records, info };
+    write_outputs(out, &run)?;
+    journal.remove()?;
+    Ok(run)
+}
+
+/// Refuses to continue a journal written by a different run, naming every field that differs.
+fn check_same_run(journal: &Path, saved: &RunIdentity, now: &RunIdentity) -> Result<()> {
+    let diffs = saved.differences(now);
+    let Some((first, _, _)) = diffs.first() else {
+        return Ok(());
+    };
+    let list: Vec<String> = diffs
+        .iter()
+        .map(|(field, was, is)| format!("{field} was {was}, is now {is}"))
+        .collect();
+    Err(Error::field(
+        journal,
+        Some(1),
+        format!("identity.{first}"),
+        format!(
+            "these saved answers come from a different run ({}); rerun with the model, adapter, question set and settings they were made with to continue, or pass --restart to discard them and start over",
+            list.join("; ")
+        ),
+    ))
+}
+
+/// A complete `out` whose `<out>.run.json` records the same identity, read back.
+fn finished_run(out: &Path, identity: &RunIdentity, set: &QuestionSet) -> Option<AnswerRun> {
+    let info = run_record::read_answers_record(out)?;
+    if RunIdentity::of(&info) != *identity {
+        return None;
+    }
+    let records = answers::load_for_set(out, set).ok()?;
+    Some(AnswerRun { records, info })
+}
+
+/// Questions done, tokens/s and time left on stderr (drawn only when stderr is a terminal).
+fn progress_bar(len: u64) -> ProgressBar {
+    let bar = ProgressBar::new(len);
+    let style = ProgressStyle::with_template(
+        "{spinner} answering [{bar:30}] {pos}/{len} questions, {msg}, {elapsed} elapsed, ETA {eta}",
+    )
+    .unwrap_or_else(|_| ProgressStyle::default_bar())
+    .progress_chars("=> ");
+    bar.set_style(style);
+    bar
+}
+
+/// Content fingerprint of the model directory: SHA-256 over the list of (file, SHA-256) for
+/// config, generation config, weights (and index) and tokenizer files.
+fn model_info(dir: &Path, loaded: &model::LoadedModel) -> Result<ModelInfo> {
+    let mut files: Vec<PathBuf> = Vec::new();
+    for name in [
+        "config.json",
+        "generation_config.json",
+        "model.safetensors.index.json",
+        "tokenizer.json",
+        "tokenizer_config.json",
+        "special_tokens_map.json",
+        "chat_template.jinja",
+    ] {
+        let p = dir.join(name);
+        if p.is_file() {
+            files.push(p);
+        }
+    }
+    files.extend(loaded.weight_files.iter().cloned());
+    files.sort();
+    let mut digests = Vec::with_capacity(files.len());
+    let mut manifest = String::new();
+    for f in &files {
+        let sha = fsutil::sha256_file(f)?;
+        let name = f
+            .file_name()
+            .map(|n| n.to_string_lossy().to_string())
+            .unwrap_or_default();
+        manifest.push_str(&format!("{name}\t{sha}\n"));
+        digests.push(FileDigest { name, sha256: sha });
+    }
+    Ok(ModelInfo {
+        path: dir.display().to_string(),
+        fingerprint: fsutil::sha256_hex(manifest.as_bytes()),
+        files: digests,
+        model_type: loaded.spec.family.model_type().to_string(),
+        architecture: loaded.spec.family.architecture().to_string(),
+        stored_dtype: loaded.stored_dtype.clone(),
+    })
+}
+
+/// `<out>` (JSONL) and `<out>.run.json`, each written atomically.
+pub fn write_outputs(out: &Path, run: &AnswerRun) -> Result<()> {
+    let run_path = run_record::path_beside(out);
+    let json = serde_json::to_vec_pretty(&run.info)
+        .map_err(|e| Error::internal(format!("cannot serialise run.json: {e}")))?;
+    fsutil::write_jsonl_atomic(out, &run.records)?;
+    fsutil::write_atomic(&run_path, &json)
+}

@@ -1,0 +1,186 @@
+//! Run records: `<file>.run.json` beside an answers or grades file, saying what produced it
+//! (docs/interface.md, "Answers file" and "Grades file"). Writers take the path from
+//! [`path_beside`] and the bytes from [`to_bytes`] and stage them with their file; readers go
+//! through [`read`].
+//!
+//! A record is optional for a reader: answers made by another system have none, and every
+//! check that uses one (the question-set fingerprint, the compute dtype) is skipped without it.
+
+use crate::error::{Error, Result};
+use crate::formats::questions::QuestionSet;
+use serde::{Deserialize, Serialize};
+use std::path::{Path, PathBuf};
+
+/// `<file>.run.json`: where the record of `file` lives.
+pub fn path_beside(file: &Path) -> PathBuf {
+    let mut s = file.as_os_str().to_os_string();
+    s.push(".run.json");
+    PathBuf::from(s)
+}
+
+/// The record beside `file` as pretty JSON bytes with a trailing newline, ready to stage.
+pub fn to_bytes<T: Serialize>(record: &T) -> Result<Vec<u8>> {
+    let mut bytes = serde_json::to_vec_pretty(record)
+        .map_err(|e| Error::internal(format!("cannot serialise run.json: {e}")))?;
+    bytes.push(b'\n');
+    Ok(bytes)
+}
+
+/// The record beside `file` parsed as JSON; None when there is none. A record that exists but
+/// cannot be read or parsed is an error naming it.
+pub fn read(file: &Path) -> Result<Option<serde_json::Value>> {
+    let run = path_beside(file);
+    let bytes = match std::fs::read(&run) {
+        Ok(b) => b,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
+        Err(e) => return Err(Error::file(&run, format!("cannot read: {e}"))),
+    };
+    serde_json::from_slice(&bytes)
+        .map(Some)
+        .map_err(|e| Error::line(&run, e.line(), format!("not valid JSON: {e}")))
+}
+
+/// The answers record beside `file` as a [`RunInfo`], when there is one of that shape.
+pub fn read_answers_record(file: &Path) -> Option<RunInfo> {
+    serde_json::from_value(read(file).ok()??).ok()
+}
+
+/// The `compute_dtype` recorded beside `file`, if the record exists and has one.
+pub fn recorded_compute_dtype(file: &Path) -> Option<String> {
+    let value = read(file).ok()??;
+    value.get("compute_dtype")?.as_str().map(str::to_string)
+}
+
+/// When the record beside `file` exists and records the question set's fingerprint
+/// (`questions.fingerprint`), it must be `set`'s: the same ids in a changed set (edited
+/// references, expectations or questions) would otherwise be scored or weighed silently
+/// against answers made for other questions.
+pub fn check_set_fingerprint(file: &Path, set: &QuestionSet) -> Result<()> {
+    let run = path_beside(file);
+    let Some(value) = read(file)? else {
+        return Ok(());
+    };
+    let Some(recorded) = value.pointer("/questions/fingerprint") else {
+        return Ok(());
+    };
+    let recorded = recorded.as_str().ok_or_else(|| {
+        Error::field(
+            &run,
+            None,
+            "questions.fingerprint",
+            "expected a SHA-256 hex string",
+        )
+    })?;
+    if recorded != set.fingerprint {
+        let short = |s: &str| s.chars().take(12).collect::<String>();
+        return Err(Error::field(
+            &run,
+            None,
+            "questions.fingerprint",
+            format!(
+                "{} was made from a different question set (sha256 {}…) than {} (sha256 {}…); \
+                 run it again with this set, or use the set it was made from",
+                file.display(),
+                short(recorded),
+                set.path.display(),
+                short(&set.fingerprint)
+            ),
+        ));
+    }
+    Ok(())
+}
+
+/// A file read as input: the path as given and the SHA-256 of its content.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct InputFile {
+    /// The path as given on the command line.
+    pub path: String,
+    pub sha256: String,
+}
+
+/// `<grades>.run.json`, written by `grade` beside the grades file: what was graded.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct GradeRunInfo {
+    pub tool: String,
+    pub tool_version: String,
+    pub questions: QuestionsInfo,
+    /// The answers file graded: path and SHA-256 of its content.
+    pub answers: InputFile,
+    /// The answers' `compute_dtype` (from their run.json), when recorded.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub compute_dtype: Option<String>,
+}
+
+/// What produced an answers file: written as `<out>.run.json` (docs/interface.md, "Answers file").
+/// Fingerprints are SHA-256 hex of file contents, so a changed file shows up even under the
+/// same path.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RunInfo {
+    pub tool: String,
+    pub tool_version: String,
+    pub model: ModelInfo,
+    pub adapter: Option<AdapterInfo>,
+    pub chat_template: TemplateInfo,
+    pub generation: GenerationInfo,
+    pub questions: QuestionsInfo,
+    /// The dtype every tensor was computed in.
+    pub compute_dtype: String,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ModelInfo {
+    pub path: String,
+    /// SHA-256 over the per-file SHA-256s of config, generation config, safetensors (and
+    /// index) and tokenizer files, listed in `files`.
+    pub fingerprint: String,
+    pub files: Vec<FileDigest>,
+    pub model_type: String,
+    pub architecture: String,
+    /// The dtype the checkpoint stored its weights in.
+    pub stored_dtype: String,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct FileDigest {
+    pub name: String,
+    pub sha256: String,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct AdapterInfo {
+    pub path: String,
+    pub fingerprint: String,
+    pub modules_merged: usize,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct TemplateInfo {
+    /// SHA-256 of the template source, or of the plain fallback's name.
+    pub fingerprint: String,
+    /// false: the documented plain fallback prompt was used.
+    pub from_model: bool,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct GenerationInfo {
+    pub decoding: String,
+    pub max_new_tokens: usize,
+    pub ignore_eos: bool,
+    pub eos_token_ids: Vec<u32>,
+    /// "generation_config.json" or "config.json".
+    pub eos_source: String,
+    pub system: Option<String>,
+    /// From generation_config.json; null when none.
+    pub repetition_penalty: Option<f64>,
+    /// generation_config.json logits-processor keys that were not applied.
+    pub ignored_generation_config_keys: Vec<String>,
+    pub batch: usize,
+    pub threads: usize,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct QuestionsInfo {
+    pub path: String,
+    pub fingerprint: String,
+    pub count: usize,
+}

@@ -1,0 +1,115 @@
+//! The grading stage: every answer scored against its question's references (docs/scoring.md),
+//! one grades row a question in the set's order (docs/interface.md, "Grades file").
+//!
+//! Every row gets exact match, token F1 and ROUGE-L (each the maximum over the question's
+//! non-blank references, `None` when it has none) and the refusal flag. Rows are scored in
+//! parallel; the output order is the set's order.
+
+use crate::error::Result;
+use crate::formats::answers::AnswerRecord;
+use crate::formats::grades::GradeRecord;
+use crate::formats::questions::{Expect, QuestionSet};
+use crate::formats::run_record::{self, GradeRunInfo, InputFile, QuestionsInfo};
+use crate::fsutil;
+use crate::score::{self, RefusalDetector};
+use rayon::prelude::*;
+use std::path::Path;
+
+/// Writes the grades file and `<out>.run.json` (the set's and the answers' fingerprints), both
+/// or neither: both are staged as temporary files first and renamed into place after.
+pub fn write_grades(
+    out: &Path,
+    grades: &[GradeRecord],
+    set: &QuestionSet,
+    answers_path: &Path,
+) -> Result<()> {
+    let info = GradeRunInfo {
+        tool: "liftgate".into(),
+        tool_version: env!("CARGO_PKG_VERSION").into(),
+        questions: QuestionsInfo {
+            path: set.path.display().to_string(),
+            fingerprint: set.fingerprint.clone(),
+            count: set.len(),
+        },
+        answers: InputFile {
+            path: answers_path.display().to_string(),
+            sha256: fsutil::sha256_file(answers_path)?,
+        },
+        compute_dtype: run_record::recorded_compute_dtype(answers_path),
+    };
+    let info_bytes = run_record::to_bytes(&info)?;
+    let mut rows = Vec::new();
+    for g in grades {
+        serde_json::to_writer(&mut rows, g)
+            .map_err(|e| crate::Error::internal(format!("cannot serialise a grade row: {e}")))?;
+        rows.push(b'\n');
+    }
+    let run = run_record::path_beside(out);
+    let staged_rows = fsutil::stage(out, &rows)?;
+    let staged_info = fsutil::stage(&run, &info_bytes)?;
+    fsutil::commit_staged(out, staged_rows)?;
+    fsutil::commit_staged(&run, staged_info)
+}
+
+/// Scores every answer against its question. `answers` must already match `set` id for id, in
+/// order (as [`crate::formats::answers::load_for_set`] guarantees).
+pub fn grade_set(
+    set: &QuestionSet,
+    answers: &[AnswerRecord],
+    detector: &RefusalDetector,
+) -> Vec<GradeRecord> {
+    debug_assert_eq!(
+        set.len(),
+        answers.len(),
+        "answers must match the set row for row"
+    );
+    set.questions
+        .par_iter()
+        .zip(answers.par_iter())
+        .map(|(q, a)| {
+            let scores = score::score_references(&a.answer, &q.references);
+            GradeRecord {
+                id: q.id.clone(),
+                category: q.category.clone(),
+                expect: q.expect,
+                exact_match: scores.map(|s| s.exact_match),
+                token_f1: scores.map(|s| s.token_f1),
+                rouge_l: scores.map(|s| s.rouge_l),
+                refused: detector.is_refusal(&a.answer),
+                answer: a.answer.clone(),
+            }
+        })
+        .collect()
+}
+
+/// One line for stderr: counts and means over the `expect: answer` questions.
+pub fn summary_line(grades: &[GradeRecord], out: &std::path::Path) -> String {
+    let answer_rows: Vec<&GradeRecord> = grades
+        .iter()
+        .filter(|g| g.expect == Expect::Answer)
+        .collect();
+    let mean = |f: &dyn Fn(&GradeRecord) -> Option<f64>| -> Option<f64> {
+        let v: Vec<f64> = answer_rows.iter().filter_map(|g| f(g)).collect();
+        (!v.is_empty()).then(|| v.iter().sum::<f64>() / v.len() as f64)
+    };
+    let fmt = |m: Option<f64>| m.map_or("n/a".to_string(), |m| format!("{m:.3}"));
+    let refuse_rows = grades.len() - answer_rows.len();
+    let refused_out_of_scope = grades
+        .iter()
+        .filter(|g| g.expect == Expect::Refuse && g.refused)
+        .count();
+    let refused_in_scope = answer_rows.iter().filter(|g| g.refused).count();
+    format!(
+        "graded {} answers -> {}: exact match {}, token F1 {}, ROUGE-L {} (mean of {} in-scope); refused {}/{} out-of-scope, {}/{} in-scope",
+        grades.len(),
+        out.display(),
+        fmt(mean(&|g| g.exact_match.map(f64::from))),
+        fmt(mean(&|g| g.token_f1)),
+        fmt(mean(&|g| g.rouge_l)),
+        answer_rows.len(),
+        refused_out_of_scope,
+        refuse_rows,
+        refused_in_scope,
+        answer_rows.len(),
+    )
+}
