@@ -6,25 +6,19 @@
 //! `merge_and_unload`, decoded with `skip_special_tokens=True` and stripped; fixtures made by
 //! tests/reference/make_runner_fixtures.py.
 
+mod common;
+
+use common::Bin;
 use serde_json::Value;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
 
 fn fixture(family: &str) -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR"))
-        .join("tests/fixtures/runner")
-        .join(family)
+    common::fixture("runner").join(family)
 }
 
-fn liftgate(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_liftgate"))
-        .args(args)
-        .output()
-        .expect("the liftgate binary runs")
-}
-
-fn write_questions(path: &Path, questions: &[(usize, &str)]) {
+/// Writes a question set of `questions` (index, text) to `name` in `t`.
+fn write_questions(t: &Bin, name: &str, questions: &[(usize, &str)]) {
     let mut text = String::new();
     for (i, q) in questions {
         text.push_str(
@@ -33,14 +27,14 @@ fn write_questions(path: &Path, questions: &[(usize, &str)]) {
         );
         text.push('\n');
     }
-    std::fs::write(path, text).unwrap();
+    t.write(name, text);
 }
 
 /// Runs `answer` for one variant (and system setting) and compares every answer row with the
 /// fixture's cases. Questions are grouped by the case's max_new_tokens so each run uses the
 /// reference's own limit.
 fn check_end_to_end(family: &str, variant: &str, system: bool) {
-    let dir = tempfile::tempdir().unwrap();
+    let t = Bin::new();
     let root = fixture(family);
     let expected: Value =
         serde_json::from_str(&std::fs::read_to_string(root.join("expected.json")).unwrap())
@@ -66,7 +60,7 @@ fn check_end_to_end(family: &str, variant: &str, system: bool) {
     }
     assert!(!groups.is_empty(), "no cases for {family} {variant}");
     for (max_new, cases) in groups {
-        let qpath = dir.path().join(format!("set-{max_new}.jsonl"));
+        let qname = format!("set-{max_new}.jsonl");
         let qs: Vec<(usize, &str)> = cases
             .iter()
             .map(|c| {
@@ -74,8 +68,8 @@ fn check_end_to_end(family: &str, variant: &str, system: bool) {
                 (i, questions[i].as_str())
             })
             .collect();
-        write_questions(&qpath, &qs);
-        let out = dir.path().join(format!("answers-{max_new}.jsonl"));
+        write_questions(&t, &qname, &qs);
+        let out = t.path(&format!("answers-{max_new}.jsonl"));
         let model = root.join("model");
         let adapter = root.join("adapters").join(variant);
         let max_new_s = max_new.to_string();
@@ -84,7 +78,7 @@ fn check_end_to_end(family: &str, variant: &str, system: bool) {
             "--model",
             model.to_str().unwrap(),
             "--questions",
-            qpath.to_str().unwrap(),
+            &qname,
             "--out",
             out.to_str().unwrap(),
             "--max-new-tokens",
@@ -100,14 +94,9 @@ fn check_end_to_end(family: &str, variant: &str, system: bool) {
         if system {
             args.extend(["--system", system_text.as_str()]);
         }
-        let o = liftgate(&args);
-        assert!(
-            o.status.success(),
-            "{family} {variant}: exit {:?}\n{}",
-            o.status.code(),
-            String::from_utf8_lossy(&o.stderr)
-        );
-        assert!(o.stdout.is_empty(), "stdout stays empty");
+        let o = t.run(&args);
+        o.expect_success();
+        assert!(o.stdout_bytes.is_empty(), "stdout stays empty");
         let rows: Vec<Value> = std::fs::read_to_string(&out)
             .unwrap()
             .lines()
@@ -161,59 +150,50 @@ fn answers_match_the_reference_end_to_end() {
 }
 
 /// A copy of the llama fixture model directory to break in one way.
-fn model_copy(dir: &Path) -> PathBuf {
-    let src = fixture("llama").join("model");
-    let dst = dir.join("model");
-    std::fs::create_dir_all(&dst).unwrap();
-    for e in std::fs::read_dir(&src).unwrap().flatten() {
-        std::fs::copy(e.path(), dst.join(e.file_name())).unwrap();
-    }
-    dst
+fn model_copy(t: &Bin) -> PathBuf {
+    t.copy_dir(&fixture("llama").join("model"), "model")
 }
 
 /// Runs `answer` on `model` and asserts exit 2, the message contains every `needles`, and
 /// neither output file exists.
-fn assert_bad_model(dir: &Path, model: &Path, needles: &[&str]) {
-    let q = dir.join("set.jsonl");
-    write_questions(&q, &[(0, "When does the first ferry leave?")]);
-    let out = dir.join("answers.jsonl");
-    let o = liftgate(&[
+fn assert_bad_model(t: &Bin, model: &Path, needles: &[&str]) {
+    write_questions(t, "set.jsonl", &[(0, "When does the first ferry leave?")]);
+    let o = t.run([
         "answer",
         "--model",
         model.to_str().unwrap(),
         "--questions",
-        q.to_str().unwrap(),
+        "set.jsonl",
         "--out",
-        out.to_str().unwrap(),
+        "answers.jsonl",
     ]);
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert_eq!(o.status.code(), Some(2), "stderr: {err}");
-    for n in needles {
-        assert!(err.contains(n), "stderr lacks {n:?}: {err}");
-    }
-    assert!(!out.exists(), "answers file must not be written");
-    assert!(!dir.join("answers.jsonl.run.json").exists());
+    o.expect_code(2).expect_stderr(needles);
+    assert!(
+        !t.path("answers.jsonl").exists(),
+        "answers file must not be written"
+    );
+    assert!(!t.path("answers.jsonl.run.json").exists());
 }
 
 #[test]
 fn missing_config_is_exit_2_naming_the_file() {
-    let dir = tempfile::tempdir().unwrap();
-    let m = model_copy(dir.path());
+    let t = Bin::new();
+    let m = model_copy(&t);
     std::fs::remove_file(m.join("config.json")).unwrap();
-    assert_bad_model(dir.path(), &m, &["config.json"]);
+    assert_bad_model(&t, &m, &["config.json"]);
 }
 
 #[test]
 fn unsupported_architecture_lists_the_supported_ones() {
-    let dir = tempfile::tempdir().unwrap();
-    let m = model_copy(dir.path());
+    let t = Bin::new();
+    let m = model_copy(&t);
     let text = std::fs::read_to_string(m.join("config.json")).unwrap();
     let mut cfg: Value = serde_json::from_str(&text).unwrap();
     cfg["model_type"] = "gpt2".into();
     cfg["architectures"] = serde_json::json!(["GPT2LMHeadModel"]);
     std::fs::write(m.join("config.json"), cfg.to_string()).unwrap();
     assert_bad_model(
-        dir.path(),
+        &t,
         &m,
         &[
             "config.json",
@@ -227,14 +207,14 @@ fn unsupported_architecture_lists_the_supported_ones() {
 
 #[test]
 fn hidden_size_contradicting_the_weights_names_tensor_and_shapes() {
-    let dir = tempfile::tempdir().unwrap();
-    let m = model_copy(dir.path());
+    let t = Bin::new();
+    let m = model_copy(&t);
     let text = std::fs::read_to_string(m.join("config.json")).unwrap();
     let mut cfg: Value = serde_json::from_str(&text).unwrap();
     cfg["hidden_size"] = 96.into();
     std::fs::write(m.join("config.json"), cfg.to_string()).unwrap();
     assert_bad_model(
-        dir.path(),
+        &t,
         &m,
         &[
             "model.safetensors",
@@ -247,19 +227,19 @@ fn hidden_size_contradicting_the_weights_names_tensor_and_shapes() {
 
 #[test]
 fn pickle_only_checkpoint_is_refused() {
-    let dir = tempfile::tempdir().unwrap();
-    let m = model_copy(dir.path());
+    let t = Bin::new();
+    let m = model_copy(&t);
     std::fs::remove_file(m.join("model.safetensors")).unwrap();
     std::fs::write(m.join("pytorch_model.bin"), b"not really a pickle").unwrap();
-    assert_bad_model(dir.path(), &m, &["pytorch_model.bin", "safetensors"]);
+    assert_bad_model(&t, &m, &["pytorch_model.bin", "safetensors"]);
 }
 
 #[test]
 fn missing_paths_are_usage_errors() {
-    let dir = tempfile::tempdir().unwrap();
-    let missing = dir.path().join("nope");
-    let out = dir.path().join("a.jsonl");
-    let o = liftgate(&[
+    let t = Bin::new();
+    let missing = t.path("nope");
+    let out = t.path("a.jsonl");
+    let o = common::run([
         "answer",
         "--model",
         missing.to_str().unwrap(),
@@ -268,8 +248,7 @@ fn missing_paths_are_usage_errors() {
         "--out",
         out.to_str().unwrap(),
     ]);
-    assert_eq!(o.status.code(), Some(2));
-    assert!(String::from_utf8_lossy(&o.stderr).contains("nope"));
+    o.expect_code(2).expect_stderr(&["nope"]);
     assert!(!out.exists());
 }
 
@@ -278,24 +257,24 @@ fn missing_paths_are_usage_errors() {
 /// expected.json): exit 2 with the template's message, nothing written.
 #[test]
 fn system_message_rejected_by_the_template_is_exit_2() {
-    let dir = tempfile::tempdir().unwrap();
-    let q = dir.path().join("set.jsonl");
-    write_questions(&q, &[(0, "Can I take my bicycle on the boat?")]);
-    let out = dir.path().join("answers.jsonl");
+    let t = Bin::new();
+    write_questions(
+        &t,
+        "set.jsonl",
+        &[(0, "Can I take my bicycle on the boat?")],
+    );
     let model = fixture("gemma").join("model");
-    let o = liftgate(&[
+    let o = t.run([
         "answer",
         "--model",
         model.to_str().unwrap(),
         "--questions",
-        q.to_str().unwrap(),
+        "set.jsonl",
         "--out",
-        out.to_str().unwrap(),
+        "answers.jsonl",
         "--system",
         "Be brief.",
     ]);
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert_eq!(o.status.code(), Some(2), "{err}");
-    assert!(err.contains("no system role"), "{err}");
-    assert!(!out.exists());
+    o.expect_code(2).expect_stderr(&["no system role"]);
+    assert!(!t.path("answers.jsonl").exists());
 }

@@ -5,14 +5,19 @@
 //! or partial, afterwards (not even a leftover temporary file).
 //!
 //! Cases are grouped by the input they break: question sets, answers and grades that do not
-//! match the set, model directories, adapters, chat templates and policy files.
+//! match the set, model directories, adapters, chat templates and policy files. Each case is
+//! its own test, named after the input and the fault, so one runs alone with
+//! `cargo test --test bad_inputs question_set_duplicate_id`, and a group with a prefix
+//! (`cargo test --test bad_inputs adapter_`). `-- --nocapture` shows every message.
 
+mod common;
+
+use common::Bin;
 use serde_json::{json, Value};
 use std::ffi::OsString;
 use std::io::Write;
 use std::path::{Path, PathBuf};
-use std::process::Command;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 /// A valid three-question set (two in scope, one out of scope).
 const SET: &str = r#"{"id": "q1", "question": "When does the first boat leave Gull Point?", "references": ["At 06:50."], "category": "timetables"}
@@ -31,15 +36,23 @@ struct Setup {
     needles: Vec<String>,
 }
 
-struct Case {
-    name: &'static str,
-    setup: fn(&Path) -> Setup,
+/// One test per case: `bad_input!(name, |dir| -> Setup)` makes `#[test] fn name()` that
+/// builds the case in a fresh temp dir with the setup function and checks it with [`check`].
+macro_rules! bad_input {
+    ($name:ident, $setup:expr) => {
+        #[test]
+        fn $name() {
+            check(stringify!($name), $setup);
+        }
+    };
 }
 
+/// The number of cases below; a case that disappears fails
+/// `catalogue_keeps_every_case`, so none is dropped by accident.
+const CASES: usize = 70;
+
 fn runner(family: &str) -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR"))
-        .join("tests/fixtures/runner")
-        .join(family)
+    common::fixture("runner").join(family)
 }
 
 fn s(x: &str) -> OsString {
@@ -165,10 +178,7 @@ fn answer(dir: &Path, adapter: bool, needles_: &[&str]) -> Setup {
 }
 
 fn copy_dir(src: &Path, dst: &Path) {
-    std::fs::create_dir_all(dst).unwrap();
-    for e in std::fs::read_dir(src).unwrap().flatten() {
-        std::fs::copy(e.path(), dst.join(e.file_name())).unwrap();
-    }
+    common::copy_tree(src, dst);
 }
 
 /// set.jsonl plus a copy of the llama fixture model as `model/`.
@@ -254,907 +264,779 @@ fn policy_case(dir: &Path, policy: &str, needles_: &[&str]) -> Setup {
     grade(dir, &["--policy", "policy.toml"], &all)
 }
 
-fn cases() -> Vec<Case> {
-    vec![
-        // ---- question sets ----
-        Case {
-            name: "set: malformed JSON line",
-            setup: |d| {
-                write(
-                    d,
-                    "set.jsonl",
-                    &SET.replacen(r#""q2", "question""#, r#""q2" "question""#, 1),
-                );
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                grade(d, &[], &["set.jsonl:2:", "not valid JSON"])
-            },
-        },
-        Case {
-            name: "set: duplicate id",
-            setup: |d| {
-                write(
-                    d,
-                    "set.jsonl",
-                    &SET.replace(r#""id": "q3""#, r#""id": "q1""#),
-                );
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                grade(d, &[], &["set.jsonl:3: field `id`", "duplicate id \"q1\""])
-            },
-        },
-        Case {
-            name: "set: missing question field",
-            setup: |d| {
-                write(
-                    d,
-                    "set.jsonl",
-                    &SET.replace(r#""question": "Can I bring my dog on the ferry?", "#, ""),
-                );
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                grade(d, &[], &["set.jsonl:2: field `question`", "missing"])
-            },
-        },
-        Case {
-            name: "set: missing references for an answer question",
-            setup: |d| {
-                write(
-                    d,
-                    "set.jsonl",
-                    &SET.replace(r#""references": ["At 06:50."], "#, ""),
-                );
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                grade(d, &[], &["set.jsonl:1: field `references`"])
-            },
-        },
-        Case {
-            name: "set: wrongly typed id",
-            setup: |d| {
-                write(d, "set.jsonl", &SET.replace(r#""id": "q2""#, r#""id": 2"#));
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                grade(
-                    d,
-                    &[],
-                    &[
-                        "set.jsonl:2: field `id`",
-                        "expected a string, found a number",
-                    ],
-                )
-            },
-        },
-        Case {
-            name: "set: references not an array",
-            setup: |d| {
-                write(
-                    d,
-                    "set.jsonl",
-                    &SET.replace(r#"["At 06:50."]"#, r#""At 06:50.""#),
-                );
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                grade(
-                    d,
-                    &[],
-                    &[
-                        "set.jsonl:1: field `references`",
-                        "expected an array of strings",
-                    ],
-                )
-            },
-        },
-        Case {
-            name: "set: unknown expect value",
-            setup: |d| {
-                write(
-                    d,
-                    "set.jsonl",
-                    &SET.replace(r#""expect": "refuse""#, r#""expect": "decline""#),
-                );
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                grade(d, &[], &["set.jsonl:3: field `expect`", "\"decline\""])
-            },
-        },
-        Case {
-            name: "set: a line that is not an object",
-            setup: |d| {
-                write(
-                    d,
-                    "set.jsonl",
-                    &format!("{SET}[\"q4\", \"Where do I park?\"]\n"),
-                );
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                grade(d, &[], &["set.jsonl:4:", "expected a JSON object"])
-            },
-        },
-        Case {
-            name: "set: empty file",
-            setup: |d| {
-                write(d, "set.jsonl", "");
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                grade(d, &[], &["set.jsonl", "empty"])
-            },
-        },
-        Case {
-            name: "set: only blank lines (answer)",
-            setup: |d| {
-                model_case(d);
-                write(d, "set.jsonl", "\n  \n\t\n");
-                answer(d, false, &["set.jsonl", "empty"])
-            },
-        },
-        Case {
-            name: "set: non-UTF-8 bytes",
-            setup: |d| {
-                let mut bytes = SET.as_bytes().to_vec();
-                let at = SET.find("dog").unwrap();
-                bytes[at] = 0xff;
-                std::fs::write(d.join("set.jsonl"), bytes).unwrap();
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                grade(d, &[], &["set.jsonl:2:", "UTF-8"])
-            },
-        },
-        Case {
-            name: "set: a 50 MB single line (weigh)",
-            setup: |d| {
-                let mut f =
-                    std::io::BufWriter::new(std::fs::File::create(d.join("set.jsonl")).unwrap());
-                f.write_all(br#"{"id": "q1", "question": ""#).unwrap();
-                let chunk = vec![b'a'; 1 << 20];
-                for _ in 0..50 {
-                    f.write_all(&chunk).unwrap();
-                }
-                f.write_all(b"\", \"references\": [\"x\"]}\n").unwrap();
-                f.flush().unwrap();
-                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
-                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
-                weigh(d, &[], &["set.jsonl:1:", "longer than"])
-            },
-        },
-        Case {
-            name: "set: JSON nested 100,000 levels deep",
-            setup: |d| {
-                let deep = format!("{}{}", "[".repeat(100_000), "]".repeat(100_000));
-                let line = format!(
-                    r#"{{"id": "q0", "question": "Deep?", "references": ["x"], "note": {deep}}}"#
-                );
-                write(d, "set.jsonl", &format!("{SET}{line}\n"));
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                grade(d, &[], &["set.jsonl:4:", "recursion limit"])
-            },
-        },
-        Case {
-            name: "set: malformed line stops answer before the model loads",
-            setup: |d| {
-                model_case(d);
-                write(d, "set.jsonl", &SET.replacen("}", "", 1));
-                answer(d, false, &["set.jsonl:1:", "not valid JSON"])
-            },
-        },
-        Case {
-            name: "set: answer output would overwrite the questions",
-            setup: |d| {
-                model_case(d);
-                write_set(d);
-                let mut setup = answer(d, false, &["--out ./set.jsonl", "--questions"]);
-                let at = setup
-                    .args
-                    .iter()
-                    .position(|a| a == "answers.jsonl")
-                    .unwrap();
-                setup.args[at] = s("./set.jsonl");
-                // The set must survive unchanged; no journal or run record may appear.
-                setup.outputs = vec![d.join("set.jsonl.partial"), d.join("set.jsonl.run.json")];
-                setup
-            },
-        },
-        // ---- answers that do not match the set ----
-        Case {
-            name: "answers: missing id",
-            setup: |d| {
-                write_set(d);
-                write(d, "answers.jsonl", &answers_for(&["q1", "q2"]));
-                grade(
-                    d,
-                    &[],
-                    &["answers.jsonl", "has 2 rows", "first missing id \"q3\""],
-                )
-            },
-        },
-        Case {
-            name: "answers: extra id",
-            setup: |d| {
-                write_set(d);
-                write(d, "answers.jsonl", &answers_for(&["q1", "q2", "q3", "q4"]));
-                grade(d, &[], &["answers.jsonl:4: field `id`", "extra row \"q4\""])
-            },
-        },
-        Case {
-            name: "answers: reordered ids",
-            setup: |d| {
-                write_set(d);
-                write(d, "answers.jsonl", &answers_for(&["q2", "q1", "q3"]));
-                grade(
-                    d,
-                    &[],
-                    &[
-                        "answers.jsonl:1: field `id`",
-                        "expected \"q1\"",
-                        "found \"q2\"",
-                    ],
-                )
-            },
-        },
-        Case {
-            name: "answers: made from a different set (fingerprint)",
-            setup: |d| {
-                write_set(d);
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                write(
-                    d,
-                    "answers.jsonl.run.json",
-                    &json!({"tool": "liftgate", "questions": {"path": "old.jsonl", "fingerprint": "0".repeat(64), "count": 3}}).to_string(),
-                );
-                grade(
-                    d,
-                    &[],
-                    &[
-                        "answers.jsonl.run.json: field `questions.fingerprint`",
-                        "different question set",
-                    ],
-                )
-            },
-        },
-        Case {
-            name: "answers: wrongly typed field",
-            setup: |d| {
-                write_set(d);
-                let rows =
-                    answers_for(&IDS).replacen("\"finish\":\"eos\"", "\"finish\":\"tired\"", 2);
-                let rows = rows.replacen("\"finish\":\"tired\"", "\"finish\":\"eos\"", 1);
-                write(d, "answers.jsonl", &rows);
-                grade(d, &[], &["answers.jsonl:2: field `finish`", "tired"])
-            },
-        },
-        Case {
-            name: "answers: missing field",
-            setup: |d| {
-                write_set(d);
-                let rows = answers_for(&IDS).replacen(
-                    "\"answer\":\"At 06:50, dogs travel free.\",",
-                    "",
-                    1,
-                );
-                write(d, "answers.jsonl", &rows);
-                grade(d, &[], &["answers.jsonl:1: field `answer`", "missing"])
-            },
-        },
-        Case {
-            name: "answers: grade output would overwrite the answers",
-            setup: |d| {
-                write_set(d);
-                let rows = answers_for(&IDS);
-                write(d, "answers.jsonl", &rows);
-                let mut setup = grade(d, &[], &["--out ./answers.jsonl", "--answers"]);
-                let last = setup.args.len() - 1;
-                setup.args[last] = s("./answers.jsonl");
-                // The input must survive unchanged; only the grades sidecar must not appear.
-                setup.outputs = vec![d.join("answers.jsonl.run.json"), d.join("grades.jsonl")];
-                setup
-            },
-        },
-        // ---- grades that do not match the set ----
-        Case {
-            name: "grades: missing id",
-            setup: |d| {
-                write_set(d);
-                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
-                write(d, "candidate.grades.jsonl", &grades_for(&["q1", "q3"]));
-                weigh(
-                    d,
-                    &[],
-                    &["candidate.grades.jsonl:2: field `id`", "expected \"q2\""],
-                )
-            },
-        },
-        Case {
-            name: "grades: extra id",
-            setup: |d| {
-                write_set(d);
-                write(
-                    d,
-                    "baseline.grades.jsonl",
-                    &grades_for(&["q1", "q2", "q3", "q3"]),
-                );
-                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
-                weigh(
-                    d,
-                    &[],
-                    &["baseline.grades.jsonl:4: field `id`", "extra row"],
-                )
-            },
-        },
-        Case {
-            name: "grades: reordered ids",
-            setup: |d| {
-                write_set(d);
-                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
-                write(
-                    d,
-                    "candidate.grades.jsonl",
-                    &grades_for(&["q1", "q3", "q2"]),
-                );
-                weigh(d, &[], &["candidate.grades.jsonl:2: field `id`"])
-            },
-        },
-        Case {
-            name: "grades: made from a different set (fingerprint)",
-            setup: |d| {
-                write_set(d);
-                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
-                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
-                write(
-                    d,
-                    "baseline.grades.jsonl.run.json",
-                    &json!({"tool": "liftgate", "questions": {"path": "set.jsonl", "fingerprint": "ab".repeat(32), "count": 3}}).to_string(),
-                );
-                weigh(
-                    d,
-                    &[],
-                    &[
-                        "baseline.grades.jsonl.run.json: field `questions.fingerprint`",
-                        "different question set",
-                    ],
-                )
-            },
-        },
-        Case {
-            name: "grades: score out of range",
-            setup: |d| {
-                write_set(d);
-                write(
-                    d,
-                    "baseline.grades.jsonl",
-                    &grades_for(&IDS).replacen("\"token_f1\":1.0", "\"token_f1\":1.5", 1),
-                );
-                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
-                weigh(
-                    d,
-                    &[],
-                    &["baseline.grades.jsonl:1: field `token_f1`", "1.5"],
-                )
-            },
-        },
-        Case {
-            name: "grades: expect contradicts the set",
-            setup: |d| {
-                write_set(d);
-                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
-                let rows =
-                    grades_for(&IDS).replacen("\"expect\":\"refuse\"", "\"expect\":\"answer\"", 1);
-                write(d, "candidate.grades.jsonl", &rows);
-                weigh(d, &[], &["candidate.grades.jsonl:3: field `expect`"])
-            },
-        },
-        Case {
-            name: "grades: wrongly typed field",
-            setup: |d| {
-                write_set(d);
-                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
-                let rows = grades_for(&IDS).replacen("\"refused\":false", "\"refused\":\"no\"", 2);
-                let rows = rows.replacen("\"refused\":\"no\"", "\"refused\":false", 1);
-                write(d, "candidate.grades.jsonl", &rows);
-                weigh(
-                    d,
-                    &[],
-                    &[
-                        "candidate.grades.jsonl:2: field `refused`",
-                        "expected a boolean",
-                    ],
-                )
-            },
-        },
-        Case {
-            name: "report directory: a directory in the way of report.md",
-            setup: |d| {
-                write_set(d);
-                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
-                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
-                std::fs::create_dir_all(d.join("report/report.md")).unwrap();
-                let mut setup = weigh(d, &[], &["report/report.md", "is a directory"]);
-                setup.outputs = vec![d.join("report/summary.json")];
-                setup
-            },
-        },
-        // ---- model directories ----
-        Case {
-            name: "model: missing config.json",
-            setup: |d| {
-                let m = model_case(d);
-                std::fs::remove_file(m.join("config.json")).unwrap();
-                answer(d, false, &["config.json"])
-            },
-        },
-        Case {
-            name: "model: config.json not valid JSON",
-            setup: |d| {
-                let m = model_case(d);
-                let text = std::fs::read_to_string(m.join("config.json")).unwrap();
-                std::fs::write(
-                    m.join("config.json"),
-                    text.replacen("\"hidden_act\": \"silu\",", "\"hidden_act\": silu,", 1),
-                )
-                .unwrap();
-                answer(d, false, &["model/config.json:11:", "not valid JSON"])
-            },
-        },
-        Case {
-            name: "model: config.json field of the wrong type",
-            setup: |d| {
-                let m = model_case(d);
-                edit_json(&m.join("config.json"), |c| {
-                    c["num_hidden_layers"] = json!("two")
-                });
-                answer(d, false, &["config.json", "num_hidden_layers"])
-            },
-        },
-        Case {
-            name: "model: negative rms_norm_eps",
-            setup: |d| {
-                let m = model_case(d);
-                edit_json(&m.join("config.json"), |c| c["rms_norm_eps"] = json!(-1.0));
-                answer(d, false, &["model/config.json: field `rms_norm_eps`", "-1"])
-            },
-        },
-        Case {
-            name: "model: rope_theta zero",
-            setup: |d| {
-                let m = model_case(d);
-                edit_json(&m.join("config.json"), |c| {
-                    c["rope_parameters"]["rope_theta"] = json!(0.0)
-                });
-                answer(d, false, &["model/config.json: field `rope_theta`"])
-            },
-        },
-        Case {
-            name: "model: missing tokenizer.json",
-            setup: |d| {
-                let m = model_case(d);
-                std::fs::remove_file(m.join("tokenizer.json")).unwrap();
-                answer(d, false, &["tokenizer.json"])
-            },
-        },
-        Case {
-            name: "model: missing weights",
-            setup: |d| {
-                let m = model_case(d);
-                std::fs::remove_file(m.join("model.safetensors")).unwrap();
-                answer(d, false, &["model", "no model.safetensors"])
-            },
-        },
-        Case {
-            name: "model: unsupported architecture",
-            setup: |d| {
-                let m = model_case(d);
-                edit_json(&m.join("config.json"), |c| {
-                    c["model_type"] = json!("mamba");
-                    c["architectures"] = json!(["MambaForCausalLM"]);
-                });
-                answer(d, false, &["config.json", "mamba", "LlamaForCausalLM"])
-            },
-        },
-        Case {
-            name: "model: shapes contradict config.json",
-            setup: |d| {
-                let m = model_case(d);
-                edit_json(&m.join("config.json"), |c| {
-                    c["num_key_value_heads"] = json!(4)
-                });
-                answer(
-                    d,
-                    false,
-                    &[
-                        "model.safetensors",
-                        "k_proj.weight`",
-                        "[32, 64]",
-                        "[64, 64]",
-                    ],
-                )
-            },
-        },
-        Case {
-            name: "model: sharded index naming a shard outside the directory",
-            setup: |d| {
-                let m = model_case(d);
-                std::fs::rename(m.join("model.safetensors"), d.join("outside.safetensors"))
-                    .unwrap();
-                write(
-                    &m,
-                    "model.safetensors.index.json",
-                    &json!({"weight_map": {"model.embed_tokens.weight": "../outside.safetensors"}})
-                        .to_string(),
-                );
-                answer(
-                    d,
-                    false,
-                    &[
-                        "model.safetensors.index.json",
-                        "weight_map.model.embed_tokens.weight",
-                    ],
-                )
-            },
-        },
-        Case {
-            name: "model: truncated safetensors",
-            setup: |d| {
-                let m = model_case(d);
-                let p = m.join("model.safetensors");
-                let bytes = std::fs::read(&p).unwrap();
-                std::fs::write(&p, &bytes[..bytes.len() * 3 / 5]).unwrap();
-                answer(d, false, &["model.safetensors", "safetensors"])
-            },
-        },
-        Case {
-            name: "model: safetensors header cut inside",
-            setup: |d| {
-                let m = model_case(d);
-                let p = m.join("model.safetensors");
-                let bytes = std::fs::read(&p).unwrap();
-                std::fs::write(&p, &bytes[..100]).unwrap();
-                answer(d, false, &["model.safetensors", "safetensors"])
-            },
-        },
-        Case {
-            name: "model: oversized safetensors header",
-            setup: |d| {
-                let m = model_case(d);
-                let p = m.join("model.safetensors");
-                let mut bytes = std::fs::read(&p).unwrap();
-                bytes[..8].copy_from_slice(&(1u64 << 40).to_le_bytes());
-                std::fs::write(&p, bytes).unwrap();
-                answer(d, false, &["model.safetensors", "safetensors"])
-            },
-        },
-        Case {
-            name: "model: NaN weight",
-            setup: |d| {
-                let m = model_case(d);
-                poke_f32(
-                    &m.join("model.safetensors"),
-                    "model.layers.1.self_attn.q_proj.weight",
-                    70,
-                    f32::NAN,
-                );
-                answer(
-                    d,
-                    false,
-                    &[
-                        "model.safetensors: field `model.layers.1.self_attn.q_proj.weight`",
-                        "NaN at element [1, 6]",
-                    ],
-                )
-            },
-        },
-        Case {
-            name: "model: Inf weight",
-            setup: |d| {
-                let m = model_case(d);
-                poke_f32(
-                    &m.join("model.safetensors"),
-                    "model.norm.weight",
-                    3,
-                    f32::NEG_INFINITY,
-                );
-                answer(
-                    d,
-                    false,
-                    &[
-                        "model.safetensors: field `model.norm.weight`",
-                        "-Inf at element [3]",
-                    ],
-                )
-            },
-        },
-        Case {
-            name: "model: pickle-only checkpoint is refused",
-            setup: |d| {
-                let m = model_case(d);
-                std::fs::remove_file(m.join("model.safetensors")).unwrap();
-                // Not a real pickle: it must be refused by name, never opened.
-                write(&m, "pytorch_model.bin", "\u{80}\u{2}cos\nsystem\n");
-                answer(d, false, &["pytorch_model.bin", "pickle", "safetensors"])
-            },
-        },
-        // ---- adapters ----
-        Case {
-            name: "adapter: made for another base (shapes)",
-            setup: |d| {
-                let a = adapter_case(d);
-                write_safetensors(
-                    &a.join("adapter_model.safetensors"),
-                    &[
-                        (
-                            "base_model.model.model.layers.0.self_attn.q_proj.lora_A.weight",
-                            &[4, 96],
-                        ),
-                        (
-                            "base_model.model.model.layers.0.self_attn.q_proj.lora_B.weight",
-                            &[96, 4],
-                        ),
-                    ],
-                );
-                answer(d, true, &["adapter_model.safetensors", "q_proj"])
-            },
-        },
-        Case {
-            name: "adapter: made for another architecture (fused modules)",
-            setup: |d| {
-                adapter_case(d);
-                let a = d.join("adapter");
-                std::fs::remove_dir_all(&a).unwrap();
-                copy_dir(&runner("phi3").join("adapters/qv"), &a);
-                answer(d, true, &["adapter", "qkv_proj"])
-            },
-        },
-        Case {
-            name: "adapter: unknown target module",
-            setup: |d| {
-                let a = adapter_case(d);
-                edit_json(&a.join("adapter_config.json"), |c| {
-                    c["target_modules"] = json!(["q_proj", "v_proj", "wq_attn"])
-                });
-                answer(
-                    d,
-                    true,
-                    &["adapter_config.json: field `target_modules`", "wq_attn"],
-                )
-            },
-        },
-        Case {
-            name: "adapter: unknown peft type",
-            setup: |d| {
-                let a = adapter_case(d);
-                edit_json(&a.join("adapter_config.json"), |c| {
-                    c["peft_type"] = json!("LOHA")
-                });
-                answer(d, true, &["adapter_config.json: field `peft_type`", "LOHA"])
-            },
-        },
-        Case {
-            name: "adapter: unsupported option (layer replication)",
-            setup: |d| {
-                let a = adapter_case(d);
-                edit_json(&a.join("adapter_config.json"), |c| {
-                    c["layer_replication"] = json!([[0, 2], [1, 2]])
-                });
-                answer(d, true, &["adapter_config.json: field `layer_replication`"])
-            },
-        },
-        Case {
-            name: "adapter: DoRA flag without magnitude vectors",
-            setup: |d| {
-                let a = adapter_case(d);
-                edit_json(&a.join("adapter_config.json"), |c| {
-                    c["use_dora"] = json!(true)
-                });
-                answer(d, true, &["adapter_model.safetensors", "use_dora"])
-            },
-        },
-        Case {
-            name: "adapter: rank contradicts its tensors",
-            setup: |d| {
-                let a = adapter_case(d);
-                edit_json(&a.join("adapter_config.json"), |c| c["r"] = json!(8));
-                answer(d, true, &["adapter", "lora_A"])
-            },
-        },
-        Case {
-            name: "adapter: NaN in lora_B is caught after the merge",
-            setup: |d| {
-                let a = adapter_case(d);
-                poke_f32(
-                    &a.join("adapter_model.safetensors"),
-                    "base_model.model.model.layers.0.self_attn.v_proj.lora_B.weight",
-                    5,
-                    f32::NAN,
-                );
-                answer(
-                    d,
-                    true,
-                    &[
-                        "adapter_model.safetensors: field `model.layers.0.self_attn.v_proj.weight`",
-                        "NaN",
-                        "after merging",
-                    ],
-                )
-            },
-        },
-        Case {
-            name: "adapter: pickle-only adapter is refused",
-            setup: |d| {
-                let a = adapter_case(d);
-                std::fs::remove_file(a.join("adapter_model.safetensors")).unwrap();
-                write(&a, "adapter_model.bin", "\u{80}\u{2}cos\nsystem\n");
-                answer(d, true, &["adapter_model.bin", "pickle"])
-            },
-        },
-        Case {
-            name: "adapter: bad adapter found by vet removes the report directory it made",
-            setup: |d| {
-                let a = adapter_case(d);
-                edit_json(&a.join("adapter_config.json"), |c| {
-                    c["peft_type"] = json!("LOHA")
-                });
-                Setup {
-                    args: [
-                        "vet",
-                        "--model",
-                        "model",
-                        "--adapter",
-                        "adapter",
-                        "--questions",
-                        "set.jsonl",
-                        "--report",
-                        "rep",
-                        "--max-new-tokens",
-                        "4",
-                    ]
-                    .map(s)
-                    .to_vec(),
-                    outputs: vec![d.join("rep")],
-                    needles: needles(&["adapter/adapter_config.json: field `peft_type`"]),
-                }
-            },
-        },
-        // ---- chat templates (untrusted code) ----
-        Case {
-            name: "template: syntax error",
-            setup: |d| template_case(d, "{% for m in messages %}{{ m.content }\n", &["syntax"]),
-        },
-        Case {
-            name: "template: syntax error in tokenizer_config.json",
-            setup: |d| {
-                let m = model_case(d);
-                edit_json(&m.join("tokenizer_config.json"), |c| {
-                    c["chat_template"] = json!("{% if messages %}{{ messages[0].content }}")
-                });
-                answer(d, false, &["tokenizer_config.json", "chat_template"])
-            },
-        },
-        Case {
-            name: "template: raise_exception",
-            setup: |d| {
-                template_case(
-                    d,
-                    "{{ raise_exception('This model only answers in the harbour office') }}",
-                    &["This model only answers in the harbour office"],
-                )
-            },
-        },
-        Case {
-            name: "template: endless nested loop",
-            setup: |d| {
-                template_case(
-                    d,
-                    "{% for i in range(99999) %}{% for j in range(99999) %}{% for k in range(99999) %}{% endfor %}{% endfor %}{% endfor %}",
-                    &["ran too long"],
-                )
-            },
-        },
-        Case {
-            name: "template: range beyond the sandbox cap",
-            setup: |d| {
-                template_case(
-                    d,
-                    "{% for i in range(999999999) %}x{% endfor %}",
-                    &["range"],
-                )
-            },
-        },
-        Case {
-            name: "template: deep recursion",
-            setup: |d| {
-                template_case(
-                    d,
-                    "{% macro down(n) %}{{ down(n + 1) }}{% endmacro %}{{ down(0) }}",
-                    &["recursion"],
-                )
-            },
-        },
-        Case {
-            name: "template: memory bomb by doubling a string",
-            setup: |d| {
-                template_case(
-                    d,
-                    "{% set ns = namespace(s='ferry') %}{% for i in range(60) %}{% set ns.s = ns.s ~ ns.s %}{% endfor %}{{ ns.s|length }}",
-                    &["ran too long"],
-                )
-            },
-        },
-        Case {
-            name: "template: reading a file is impossible",
-            setup: |d| {
-                template_case(
-                    d,
-                    "{% include '/etc/hostname' %}{% for m in messages %}{{ m.content }}{% endfor %}",
-                    &["template"],
-                )
-            },
-        },
-        // ---- policy files ----
-        Case {
-            name: "policy: unknown key",
-            setup: |d| {
-                policy_case(
-                    d,
-                    "min_questions = 3\n[lift]\nmin_ci_lo = 0.0\n",
-                    &["policy.toml:3: field `lift.min_ci_lo`", "unknown field"],
-                )
-            },
-        },
-        Case {
-            name: "policy: out-of-range value",
-            setup: |d| {
-                policy_case(
-                    d,
-                    "[refusal]\nmin_out_of_scope = 0.5\nmax_false_refusal = 1.5\n",
-                    &["policy.toml:3: field `refusal.max_false_refusal`", "1.5"],
-                )
-            },
-        },
-        Case {
-            name: "policy: wrongly typed value",
-            setup: |d| {
-                policy_case(
-                    d,
-                    "min_questions = \"ten\"\n",
-                    &["policy.toml:1: field `min_questions`", "\"ten\""],
-                )
-            },
-        },
-        Case {
-            name: "policy: unknown metric name",
-            setup: |d| {
-                policy_case(
-                    d,
-                    "[lift]\nmetric = \"bleu\"\n",
-                    &["policy.toml:2: field `lift.metric`", "bleu"],
-                )
-            },
-        },
-        Case {
-            name: "policy: non-UTF-8 bytes",
-            setup: |d| {
-                write_set(d);
-                write(d, "answers.jsonl", &answers_for(&IDS));
-                std::fs::write(
-                    d.join("policy.toml"),
-                    b"[refusal]\nextra_phrases = [\"n\xe3o posso\"]\n",
-                )
-                .unwrap();
-                grade(
-                    d,
-                    &["--policy", "policy.toml"],
-                    &["policy.toml:2:", "UTF-8"],
-                )
-            },
-        },
-        Case {
-            name: "policy: unknown key refused by weigh too",
-            setup: |d| {
-                write_set(d);
-                write(d, "baseline.grades.jsonl", &grades_for(&IDS));
-                write(d, "candidate.grades.jsonl", &grades_for(&IDS));
-                write(
-                    d,
-                    "policy.toml",
-                    "[categories]\nrule = \"clear-regression\"\nmax_regresion = 0.1\n",
-                );
-                weigh(
-                    d,
-                    &["--policy", "policy.toml"],
-                    &["policy.toml:3: field `categories.max_regresion`"],
-                )
-            },
-        },
-    ]
-}
+// ---- question sets ----
+
+bad_input!(question_set_malformed_json_line, |d| {
+    write(
+        d,
+        "set.jsonl",
+        &SET.replacen(r#""q2", "question""#, r#""q2" "question""#, 1),
+    );
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    grade(d, &[], &["set.jsonl:2:", "not valid JSON"])
+});
+
+bad_input!(question_set_duplicate_id, |d| {
+    write(
+        d,
+        "set.jsonl",
+        &SET.replace(r#""id": "q3""#, r#""id": "q1""#),
+    );
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    grade(d, &[], &["set.jsonl:3: field `id`", "duplicate id \"q1\""])
+});
+
+bad_input!(question_set_missing_question_field, |d| {
+    write(
+        d,
+        "set.jsonl",
+        &SET.replace(r#""question": "Can I bring my dog on the ferry?", "#, ""),
+    );
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    grade(d, &[], &["set.jsonl:2: field `question`", "missing"])
+});
+
+bad_input!(
+    question_set_missing_references_for_an_answer_question,
+    |d| {
+        write(
+            d,
+            "set.jsonl",
+            &SET.replace(r#""references": ["At 06:50."], "#, ""),
+        );
+        write(d, "answers.jsonl", &answers_for(&IDS));
+        grade(d, &[], &["set.jsonl:1: field `references`"])
+    }
+);
+
+bad_input!(question_set_wrongly_typed_id, |d| {
+    write(d, "set.jsonl", &SET.replace(r#""id": "q2""#, r#""id": 2"#));
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    grade(
+        d,
+        &[],
+        &[
+            "set.jsonl:2: field `id`",
+            "expected a string, found a number",
+        ],
+    )
+});
+
+bad_input!(question_set_references_not_an_array, |d| {
+    write(
+        d,
+        "set.jsonl",
+        &SET.replace(r#"["At 06:50."]"#, r#""At 06:50.""#),
+    );
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    grade(
+        d,
+        &[],
+        &[
+            "set.jsonl:1: field `references`",
+            "expected an array of strings",
+        ],
+    )
+});
+
+bad_input!(question_set_unknown_expect_value, |d| {
+    write(
+        d,
+        "set.jsonl",
+        &SET.replace(r#""expect": "refuse""#, r#""expect": "decline""#),
+    );
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    grade(d, &[], &["set.jsonl:3: field `expect`", "\"decline\""])
+});
+
+bad_input!(question_set_a_line_that_is_not_an_object, |d| {
+    write(
+        d,
+        "set.jsonl",
+        &format!("{SET}[\"q4\", \"Where do I park?\"]\n"),
+    );
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    grade(d, &[], &["set.jsonl:4:", "expected a JSON object"])
+});
+
+bad_input!(question_set_empty_file, |d| {
+    write(d, "set.jsonl", "");
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    grade(d, &[], &["set.jsonl", "empty"])
+});
+
+bad_input!(question_set_only_blank_lines_answer, |d| {
+    model_case(d);
+    write(d, "set.jsonl", "\n  \n\t\n");
+    answer(d, false, &["set.jsonl", "empty"])
+});
+
+bad_input!(question_set_non_utf8_bytes, |d| {
+    let mut bytes = SET.as_bytes().to_vec();
+    let at = SET.find("dog").unwrap();
+    bytes[at] = 0xff;
+    std::fs::write(d.join("set.jsonl"), bytes).unwrap();
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    grade(d, &[], &["set.jsonl:2:", "UTF-8"])
+});
+
+bad_input!(question_set_a_50mb_single_line_weigh, |d| {
+    let mut f = std::io::BufWriter::new(std::fs::File::create(d.join("set.jsonl")).unwrap());
+    f.write_all(br#"{"id": "q1", "question": ""#).unwrap();
+    let chunk = vec![b'a'; 1 << 20];
+    for _ in 0..50 {
+        f.write_all(&chunk).unwrap();
+    }
+    f.write_all(b"\", \"references\": [\"x\"]}\n").unwrap();
+    f.flush().unwrap();
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+    weigh(d, &[], &["set.jsonl:1:", "longer than"])
+});
+
+bad_input!(question_set_json_nested_100k_levels_deep, |d| {
+    let deep = format!("{}{}", "[".repeat(100_000), "]".repeat(100_000));
+    let line =
+        format!(r#"{{"id": "q0", "question": "Deep?", "references": ["x"], "note": {deep}}}"#);
+    write(d, "set.jsonl", &format!("{SET}{line}\n"));
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    grade(d, &[], &["set.jsonl:4:", "recursion limit"])
+});
+
+bad_input!(
+    question_set_malformed_line_stops_answer_before_the_model_loads,
+    |d| {
+        model_case(d);
+        write(d, "set.jsonl", &SET.replacen("}", "", 1));
+        answer(d, false, &["set.jsonl:1:", "not valid JSON"])
+    }
+);
+
+bad_input!(
+    question_set_answer_output_would_overwrite_the_questions,
+    |d| {
+        model_case(d);
+        write_set(d);
+        let mut setup = answer(d, false, &["--out ./set.jsonl", "--questions"]);
+        let at = setup
+            .args
+            .iter()
+            .position(|a| a == "answers.jsonl")
+            .unwrap();
+        setup.args[at] = s("./set.jsonl");
+        // The set must survive unchanged; no journal or run record may appear.
+        setup.outputs = vec![d.join("set.jsonl.partial"), d.join("set.jsonl.run.json")];
+        setup
+    }
+);
+
+// ---- answers that do not match the set ----
+
+bad_input!(answers_missing_id, |d| {
+    write_set(d);
+    write(d, "answers.jsonl", &answers_for(&["q1", "q2"]));
+    grade(
+        d,
+        &[],
+        &["answers.jsonl", "has 2 rows", "first missing id \"q3\""],
+    )
+});
+
+bad_input!(answers_extra_id, |d| {
+    write_set(d);
+    write(d, "answers.jsonl", &answers_for(&["q1", "q2", "q3", "q4"]));
+    grade(d, &[], &["answers.jsonl:4: field `id`", "extra row \"q4\""])
+});
+
+bad_input!(answers_reordered_ids, |d| {
+    write_set(d);
+    write(d, "answers.jsonl", &answers_for(&["q2", "q1", "q3"]));
+    grade(
+        d,
+        &[],
+        &[
+            "answers.jsonl:1: field `id`",
+            "expected \"q1\"",
+            "found \"q2\"",
+        ],
+    )
+});
+
+bad_input!(answers_made_from_a_different_set_fingerprint, |d| {
+    write_set(d);
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    write(
+            d,
+            "answers.jsonl.run.json",
+            &json!({"tool": "liftgate", "questions": {"path": "old.jsonl", "fingerprint": "0".repeat(64), "count": 3}}).to_string(),
+        );
+    grade(
+        d,
+        &[],
+        &[
+            "answers.jsonl.run.json: field `questions.fingerprint`",
+            "different question set",
+        ],
+    )
+});
+
+bad_input!(answers_wrongly_typed_field, |d| {
+    write_set(d);
+    let rows = answers_for(&IDS).replacen("\"finish\":\"eos\"", "\"finish\":\"tired\"", 2);
+    let rows = rows.replacen("\"finish\":\"tired\"", "\"finish\":\"eos\"", 1);
+    write(d, "answers.jsonl", &rows);
+    grade(d, &[], &["answers.jsonl:2: field `finish`", "tired"])
+});
+
+bad_input!(answers_missing_field, |d| {
+    write_set(d);
+    let rows = answers_for(&IDS).replacen("\"answer\":\"At 06:50, dogs travel free.\",", "", 1);
+    write(d, "answers.jsonl", &rows);
+    grade(d, &[], &["answers.jsonl:1: field `answer`", "missing"])
+});
+
+bad_input!(answers_grade_output_would_overwrite_the_answers, |d| {
+    write_set(d);
+    let rows = answers_for(&IDS);
+    write(d, "answers.jsonl", &rows);
+    let mut setup = grade(d, &[], &["--out ./answers.jsonl", "--answers"]);
+    let last = setup.args.len() - 1;
+    setup.args[last] = s("./answers.jsonl");
+    // The input must survive unchanged; only the grades sidecar must not appear.
+    setup.outputs = vec![d.join("answers.jsonl.run.json"), d.join("grades.jsonl")];
+    setup
+});
+
+// ---- grades that do not match the set ----
+
+bad_input!(grades_missing_id, |d| {
+    write_set(d);
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    write(d, "candidate.grades.jsonl", &grades_for(&["q1", "q3"]));
+    weigh(
+        d,
+        &[],
+        &["candidate.grades.jsonl:2: field `id`", "expected \"q2\""],
+    )
+});
+
+bad_input!(grades_extra_id, |d| {
+    write_set(d);
+    write(
+        d,
+        "baseline.grades.jsonl",
+        &grades_for(&["q1", "q2", "q3", "q3"]),
+    );
+    write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+    weigh(
+        d,
+        &[],
+        &["baseline.grades.jsonl:4: field `id`", "extra row"],
+    )
+});
+
+bad_input!(grades_reordered_ids, |d| {
+    write_set(d);
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    write(
+        d,
+        "candidate.grades.jsonl",
+        &grades_for(&["q1", "q3", "q2"]),
+    );
+    weigh(d, &[], &["candidate.grades.jsonl:2: field `id`"])
+});
+
+bad_input!(grades_made_from_a_different_set_fingerprint, |d| {
+    write_set(d);
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+    write(
+            d,
+            "baseline.grades.jsonl.run.json",
+            &json!({"tool": "liftgate", "questions": {"path": "set.jsonl", "fingerprint": "ab".repeat(32), "count": 3}}).to_string(),
+        );
+    weigh(
+        d,
+        &[],
+        &[
+            "baseline.grades.jsonl.run.json: field `questions.fingerprint`",
+            "different question set",
+        ],
+    )
+});
+
+bad_input!(grades_score_out_of_range, |d| {
+    write_set(d);
+    write(
+        d,
+        "baseline.grades.jsonl",
+        &grades_for(&IDS).replacen("\"token_f1\":1.0", "\"token_f1\":1.5", 1),
+    );
+    write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+    weigh(
+        d,
+        &[],
+        &["baseline.grades.jsonl:1: field `token_f1`", "1.5"],
+    )
+});
+
+bad_input!(grades_expect_contradicts_the_set, |d| {
+    write_set(d);
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    let rows = grades_for(&IDS).replacen("\"expect\":\"refuse\"", "\"expect\":\"answer\"", 1);
+    write(d, "candidate.grades.jsonl", &rows);
+    weigh(d, &[], &["candidate.grades.jsonl:3: field `expect`"])
+});
+
+bad_input!(grades_wrongly_typed_field, |d| {
+    write_set(d);
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    let rows = grades_for(&IDS).replacen("\"refused\":false", "\"refused\":\"no\"", 2);
+    let rows = rows.replacen("\"refused\":\"no\"", "\"refused\":false", 1);
+    write(d, "candidate.grades.jsonl", &rows);
+    weigh(
+        d,
+        &[],
+        &[
+            "candidate.grades.jsonl:2: field `refused`",
+            "expected a boolean",
+        ],
+    )
+});
+
+bad_input!(report_dir_a_directory_in_the_way_of_report_md, |d| {
+    write_set(d);
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+    std::fs::create_dir_all(d.join("report/report.md")).unwrap();
+    let mut setup = weigh(d, &[], &["report/report.md", "is a directory"]);
+    setup.outputs = vec![d.join("report/summary.json")];
+    setup
+});
+
+// ---- model directories ----
+
+bad_input!(model_missing_config_json, |d| {
+    let m = model_case(d);
+    std::fs::remove_file(m.join("config.json")).unwrap();
+    answer(d, false, &["config.json"])
+});
+
+bad_input!(model_config_json_not_valid_json, |d| {
+    let m = model_case(d);
+    let text = std::fs::read_to_string(m.join("config.json")).unwrap();
+    std::fs::write(
+        m.join("config.json"),
+        text.replacen("\"hidden_act\": \"silu\",", "\"hidden_act\": silu,", 1),
+    )
+    .unwrap();
+    answer(d, false, &["model/config.json:11:", "not valid JSON"])
+});
+
+bad_input!(model_config_json_field_of_the_wrong_type, |d| {
+    let m = model_case(d);
+    edit_json(&m.join("config.json"), |c| {
+        c["num_hidden_layers"] = json!("two")
+    });
+    answer(d, false, &["config.json", "num_hidden_layers"])
+});
+
+bad_input!(model_negative_rms_norm_eps, |d| {
+    let m = model_case(d);
+    edit_json(&m.join("config.json"), |c| c["rms_norm_eps"] = json!(-1.0));
+    answer(d, false, &["model/config.json: field `rms_norm_eps`", "-1"])
+});
+
+bad_input!(model_rope_theta_zero, |d| {
+    let m = model_case(d);
+    edit_json(&m.join("config.json"), |c| {
+        c["rope_parameters"]["rope_theta"] = json!(0.0)
+    });
+    answer(d, false, &["model/config.json: field `rope_theta`"])
+});
+
+bad_input!(model_missing_tokenizer_json, |d| {
+    let m = model_case(d);
+    std::fs::remove_file(m.join("tokenizer.json")).unwrap();
+    answer(d, false, &["tokenizer.json"])
+});
+
+bad_input!(model_missing_weights, |d| {
+    let m = model_case(d);
+    std::fs::remove_file(m.join("model.safetensors")).unwrap();
+    answer(d, false, &["model", "no model.safetensors"])
+});
+
+bad_input!(model_unsupported_architecture, |d| {
+    let m = model_case(d);
+    edit_json(&m.join("config.json"), |c| {
+        c["model_type"] = json!("mamba");
+        c["architectures"] = json!(["MambaForCausalLM"]);
+    });
+    answer(d, false, &["config.json", "mamba", "LlamaForCausalLM"])
+});
+
+bad_input!(model_shapes_contradict_config_json, |d| {
+    let m = model_case(d);
+    edit_json(&m.join("config.json"), |c| {
+        c["num_key_value_heads"] = json!(4)
+    });
+    answer(
+        d,
+        false,
+        &[
+            "model.safetensors",
+            "k_proj.weight`",
+            "[32, 64]",
+            "[64, 64]",
+        ],
+    )
+});
+
+bad_input!(
+    model_sharded_index_naming_a_shard_outside_the_directory,
+    |d| {
+        let m = model_case(d);
+        std::fs::rename(m.join("model.safetensors"), d.join("outside.safetensors")).unwrap();
+        write(
+            &m,
+            "model.safetensors.index.json",
+            &json!({"weight_map": {"model.embed_tokens.weight": "../outside.safetensors"}})
+                .to_string(),
+        );
+        answer(
+            d,
+            false,
+            &[
+                "model.safetensors.index.json",
+                "weight_map.model.embed_tokens.weight",
+            ],
+        )
+    }
+);
+
+bad_input!(model_truncated_safetensors, |d| {
+    let m = model_case(d);
+    let p = m.join("model.safetensors");
+    let bytes = std::fs::read(&p).unwrap();
+    std::fs::write(&p, &bytes[..bytes.len() * 3 / 5]).unwrap();
+    answer(d, false, &["model.safetensors", "safetensors"])
+});
+
+bad_input!(model_safetensors_header_cut_inside, |d| {
+    let m = model_case(d);
+    let p = m.join("model.safetensors");
+    let bytes = std::fs::read(&p).unwrap();
+    std::fs::write(&p, &bytes[..100]).unwrap();
+    answer(d, false, &["model.safetensors", "safetensors"])
+});
+
+bad_input!(model_oversized_safetensors_header, |d| {
+    let m = model_case(d);
+    let p = m.join("model.safetensors");
+    let mut bytes = std::fs::read(&p).unwrap();
+    bytes[..8].copy_from_slice(&(1u64 << 40).to_le_bytes());
+    std::fs::write(&p, bytes).unwrap();
+    answer(d, false, &["model.safetensors", "safetensors"])
+});
+
+bad_input!(model_nan_weight, |d| {
+    let m = model_case(d);
+    poke_f32(
+        &m.join("model.safetensors"),
+        "model.layers.1.self_attn.q_proj.weight",
+        70,
+        f32::NAN,
+    );
+    answer(
+        d,
+        false,
+        &[
+            "model.safetensors: field `model.layers.1.self_attn.q_proj.weight`",
+            "NaN at element [1, 6]",
+        ],
+    )
+});
+
+bad_input!(model_inf_weight, |d| {
+    let m = model_case(d);
+    poke_f32(
+        &m.join("model.safetensors"),
+        "model.norm.weight",
+        3,
+        f32::NEG_INFINITY,
+    );
+    answer(
+        d,
+        false,
+        &[
+            "model.safetensors: field `model.norm.weight`",
+            "-Inf at element [3]",
+        ],
+    )
+});
+
+bad_input!(model_pickle_only_checkpoint_is_refused, |d| {
+    let m = model_case(d);
+    std::fs::remove_file(m.join("model.safetensors")).unwrap();
+    // Not a real pickle: it must be refused by name, never opened.
+    write(&m, "pytorch_model.bin", "\u{80}\u{2}cos\nsystem\n");
+    answer(d, false, &["pytorch_model.bin", "pickle", "safetensors"])
+});
+
+// ---- adapters ----
+
+bad_input!(adapter_made_for_another_base_shapes, |d| {
+    let a = adapter_case(d);
+    write_safetensors(
+        &a.join("adapter_model.safetensors"),
+        &[
+            (
+                "base_model.model.model.layers.0.self_attn.q_proj.lora_A.weight",
+                &[4, 96],
+            ),
+            (
+                "base_model.model.model.layers.0.self_attn.q_proj.lora_B.weight",
+                &[96, 4],
+            ),
+        ],
+    );
+    answer(d, true, &["adapter_model.safetensors", "q_proj"])
+});
+
+bad_input!(adapter_made_for_another_architecture_fused_modules, |d| {
+    adapter_case(d);
+    let a = d.join("adapter");
+    std::fs::remove_dir_all(&a).unwrap();
+    copy_dir(&runner("phi3").join("adapters/qv"), &a);
+    answer(d, true, &["adapter", "qkv_proj"])
+});
+
+bad_input!(adapter_unknown_target_module, |d| {
+    let a = adapter_case(d);
+    edit_json(&a.join("adapter_config.json"), |c| {
+        c["target_modules"] = json!(["q_proj", "v_proj", "wq_attn"])
+    });
+    answer(
+        d,
+        true,
+        &["adapter_config.json: field `target_modules`", "wq_attn"],
+    )
+});
+
+bad_input!(adapter_unknown_peft_type, |d| {
+    let a = adapter_case(d);
+    edit_json(&a.join("adapter_config.json"), |c| {
+        c["peft_type"] = json!("LOHA")
+    });
+    answer(d, true, &["adapter_config.json: field `peft_type`", "LOHA"])
+});
+
+bad_input!(adapter_unsupported_option_layer_replication, |d| {
+    let a = adapter_case(d);
+    edit_json(&a.join("adapter_config.json"), |c| {
+        c["layer_replication"] = json!([[0, 2], [1, 2]])
+    });
+    answer(d, true, &["adapter_config.json: field `layer_replication`"])
+});
+
+bad_input!(adapter_dora_flag_without_magnitude_vectors, |d| {
+    let a = adapter_case(d);
+    edit_json(&a.join("adapter_config.json"), |c| {
+        c["use_dora"] = json!(true)
+    });
+    answer(d, true, &["adapter_model.safetensors", "use_dora"])
+});
+
+bad_input!(adapter_rank_contradicts_its_tensors, |d| {
+    let a = adapter_case(d);
+    edit_json(&a.join("adapter_config.json"), |c| c["r"] = json!(8));
+    answer(d, true, &["adapter", "lora_A"])
+});
+
+bad_input!(adapter_nan_in_lora_b_is_caught_after_the_merge, |d| {
+    let a = adapter_case(d);
+    poke_f32(
+        &a.join("adapter_model.safetensors"),
+        "base_model.model.model.layers.0.self_attn.v_proj.lora_B.weight",
+        5,
+        f32::NAN,
+    );
+    answer(
+        d,
+        true,
+        &[
+            "adapter_model.safetensors: field `model.layers.0.self_attn.v_proj.weight`",
+            "NaN",
+            "after merging",
+        ],
+    )
+});
+
+bad_input!(adapter_pickle_only_adapter_is_refused, |d| {
+    let a = adapter_case(d);
+    std::fs::remove_file(a.join("adapter_model.safetensors")).unwrap();
+    write(&a, "adapter_model.bin", "\u{80}\u{2}cos\nsystem\n");
+    answer(d, true, &["adapter_model.bin", "pickle"])
+});
+
+bad_input!(
+    adapter_bad_adapter_found_by_vet_removes_the_report_directory_it_made,
+    |d| {
+        let a = adapter_case(d);
+        edit_json(&a.join("adapter_config.json"), |c| {
+            c["peft_type"] = json!("LOHA")
+        });
+        Setup {
+            args: [
+                "vet",
+                "--model",
+                "model",
+                "--adapter",
+                "adapter",
+                "--questions",
+                "set.jsonl",
+                "--report",
+                "rep",
+                "--max-new-tokens",
+                "4",
+            ]
+            .map(s)
+            .to_vec(),
+            outputs: vec![d.join("rep")],
+            needles: needles(&["adapter/adapter_config.json: field `peft_type`"]),
+        }
+    }
+);
+
+// ---- chat templates (untrusted code) ----
+
+bad_input!(template_syntax_error, |d| template_case(
+    d,
+    "{% for m in messages %}{{ m.content }\n",
+    &["syntax"]
+));
+
+bad_input!(template_syntax_error_in_tokenizer_config_json, |d| {
+    let m = model_case(d);
+    edit_json(&m.join("tokenizer_config.json"), |c| {
+        c["chat_template"] = json!("{% if messages %}{{ messages[0].content }}")
+    });
+    answer(d, false, &["tokenizer_config.json", "chat_template"])
+});
+
+bad_input!(template_raise_exception, |d| {
+    template_case(
+        d,
+        "{{ raise_exception('This model only answers in the harbour office') }}",
+        &["This model only answers in the harbour office"],
+    )
+});
+
+bad_input!(template_endless_nested_loop, |d| {
+    template_case(
+            d,
+            "{% for i in range(99999) %}{% for j in range(99999) %}{% for k in range(99999) %}{% endfor %}{% endfor %}{% endfor %}",
+            &["ran too long"],
+        )
+});
+
+bad_input!(template_range_beyond_the_sandbox_cap, |d| {
+    template_case(
+        d,
+        "{% for i in range(999999999) %}x{% endfor %}",
+        &["range"],
+    )
+});
+
+bad_input!(template_deep_recursion, |d| {
+    template_case(
+        d,
+        "{% macro down(n) %}{{ down(n + 1) }}{% endmacro %}{{ down(0) }}",
+        &["recursion"],
+    )
+});
+
+bad_input!(template_memory_bomb_by_doubling_a_string, |d| {
+    template_case(
+            d,
+            "{% set ns = namespace(s='ferry') %}{% for i in range(60) %}{% set ns.s = ns.s ~ ns.s %}{% endfor %}{{ ns.s|length }}",
+            &["ran too long"],
+        )
+});
+
+bad_input!(template_reading_a_file_is_impossible, |d| {
+    template_case(
+        d,
+        "{% include '/etc/hostname' %}{% for m in messages %}{{ m.content }}{% endfor %}",
+        &["template"],
+    )
+});
+
+// ---- policy files ----
+
+bad_input!(policy_unknown_key, |d| {
+    policy_case(
+        d,
+        "min_questions = 3\n[lift]\nmin_ci_lo = 0.0\n",
+        &["policy.toml:3: field `lift.min_ci_lo`", "unknown field"],
+    )
+});
+
+bad_input!(policy_out_of_range_value, |d| {
+    policy_case(
+        d,
+        "[refusal]\nmin_out_of_scope = 0.5\nmax_false_refusal = 1.5\n",
+        &["policy.toml:3: field `refusal.max_false_refusal`", "1.5"],
+    )
+});
+
+bad_input!(policy_wrongly_typed_value, |d| {
+    policy_case(
+        d,
+        "min_questions = \"ten\"\n",
+        &["policy.toml:1: field `min_questions`", "\"ten\""],
+    )
+});
+
+bad_input!(policy_unknown_metric_name, |d| {
+    policy_case(
+        d,
+        "[lift]\nmetric = \"bleu\"\n",
+        &["policy.toml:2: field `lift.metric`", "bleu"],
+    )
+});
+
+bad_input!(policy_non_utf8_bytes, |d| {
+    write_set(d);
+    write(d, "answers.jsonl", &answers_for(&IDS));
+    std::fs::write(
+        d.join("policy.toml"),
+        b"[refusal]\nextra_phrases = [\"n\xe3o posso\"]\n",
+    )
+    .unwrap();
+    grade(
+        d,
+        &["--policy", "policy.toml"],
+        &["policy.toml:2:", "UTF-8"],
+    )
+});
+
+bad_input!(policy_unknown_key_refused_by_weigh_too, |d| {
+    write_set(d);
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+    write(
+        d,
+        "policy.toml",
+        "[categories]\nrule = \"clear-regression\"\nmax_regresion = 0.1\n",
+    );
+    weigh(
+        d,
+        &["--policy", "policy.toml"],
+        &["policy.toml:3: field `categories.max_regresion`"],
+    )
+});
 
 /// Temporary files the atomic writers leave only when something went wrong.
 fn leftovers(dir: &Path) -> Vec<PathBuf> {
@@ -1173,24 +1055,20 @@ fn leftovers(dir: &Path) -> Vec<PathBuf> {
     out
 }
 
-/// Runs one case; returns a description of every broken promise.
-fn check(case: &Case) -> Vec<String> {
-    let tmp = tempfile::tempdir().unwrap();
-    let dir = tmp.path();
-    let setup = (case.setup)(dir);
-    let start = Instant::now();
-    let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
-        .current_dir(dir)
-        .args(&setup.args)
-        .output()
-        .unwrap();
-    let elapsed = start.elapsed();
-    let stderr = String::from_utf8_lossy(&out.stderr);
+/// Runs one case in a fresh temp dir and asserts the bad-input contract: exit 2, a
+/// `liftgate: ` message naming every needle, no panic, none of the case's outputs and no
+/// temporary file left behind (and, for templates, a stop within the runaway budget). All
+/// broken promises are listed together, with stderr.
+fn check(name: &str, setup: fn(&Path) -> Setup) {
+    let t = Bin::new();
+    let setup = setup(t.dir());
+    let run = t.run(&setup.args);
+    let stderr = &run.stderr;
     // Shown with `--nocapture`, to read every message.
-    println!("[{}] {:.1?}\n{}", case.name, elapsed, stderr.trim_end());
+    println!("[{name}] {:.1?}\n{}", run.elapsed, stderr.trim_end());
     let mut problems = Vec::new();
-    if out.status.code() != Some(2) {
-        problems.push(format!("exit {:?}, expected 2", out.status.code()));
+    if run.code != Some(2) {
+        problems.push(format!("exit {:?}, expected 2", run.code));
     }
     if stderr.contains("panicked") {
         problems.push("panicked".into());
@@ -1208,76 +1086,58 @@ fn check(case: &Case) -> Vec<String> {
             problems.push(format!("output {} exists", o.display()));
         }
     }
-    for l in leftovers(dir) {
+    for l in leftovers(t.dir()) {
         problems.push(format!("temporary file {} left behind", l.display()));
     }
     // Runaway templates must stop on their own budget; a generous bound, not a benchmark.
-    if case.name.starts_with("template:")
-        && elapsed > Duration::from_secs_f64(TEMPLATE_RUNAWAY_SECS)
+    if name.starts_with("template_") && run.elapsed > Duration::from_secs_f64(TEMPLATE_RUNAWAY_SECS)
     {
-        problems.push(format!("took {elapsed:?}"));
-    }
-    if !problems.is_empty() {
-        problems.push(format!("stderr was: {stderr}"));
-    }
-    problems
-}
-
-#[test]
-fn every_bad_input_exits_2_naming_the_file_and_writes_nothing() {
-    let cases = cases();
-    let mut names: Vec<&str> = cases.iter().map(|c| c.name).collect();
-    names.sort();
-    names.dedup();
-    assert_eq!(names.len(), cases.len(), "case names must be distinct");
-    assert!(cases.len() >= 30, "{} cases", cases.len());
-    let mut failures = Vec::new();
-    for case in &cases {
-        let problems = check(case);
-        if !problems.is_empty() {
-            failures.push(format!("[{}]\n  {}", case.name, problems.join("\n  ")));
-        }
+        problems.push(format!("took {:?}", run.elapsed));
     }
     assert!(
-        failures.is_empty(),
-        "{} of {} cases failed:\n{}",
-        failures.len(),
-        cases.len(),
-        failures.join("\n")
+        problems.is_empty(),
+        "[{name}]\n  {}\n{}",
+        problems.join("\n  "),
+        run.describe()
     );
+}
+
+/// Every case above is still there (the macro makes the tests; this counts them in the
+/// source, so deleting one without lowering [`CASES`] fails).
+#[test]
+fn catalogue_keeps_every_case() {
+    let source = include_str!("bad_inputs.rs");
+    let found = source
+        .lines()
+        .filter(|l| l.starts_with("bad_input!("))
+        .count();
+    assert_eq!(found, CASES, "bad_input! cases in tests/bad_inputs.rs");
 }
 
 /// Where a command's output already exists, a failing run leaves it untouched (never a
 /// half-written replacement).
 #[test]
 fn failing_run_keeps_the_previous_output_whole() {
-    let tmp = tempfile::tempdir().unwrap();
-    let d = tmp.path();
+    let t = Bin::new();
+    let d = t.dir();
     write_set(d);
     write(d, "answers.jsonl", &answers_for(&IDS));
     let before = "previous grades, kept byte for byte\n";
     write(d, "grades.jsonl", before);
     write(d, "policy.toml", "[lift]\nmin_ci_low = 7\n");
-    let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
-        .current_dir(d)
-        .args([
-            "grade",
-            "--questions",
-            "set.jsonl",
-            "--answers",
-            "answers.jsonl",
-            "--out",
-            "grades.jsonl",
-            "--policy",
-            "policy.toml",
-        ])
-        .output()
-        .unwrap();
-    assert_eq!(out.status.code(), Some(2));
-    assert_eq!(
-        std::fs::read_to_string(d.join("grades.jsonl")).unwrap(),
-        before
-    );
+    t.run([
+        "grade",
+        "--questions",
+        "set.jsonl",
+        "--answers",
+        "answers.jsonl",
+        "--out",
+        "grades.jsonl",
+        "--policy",
+        "policy.toml",
+    ])
+    .expect_code(2);
+    assert_eq!(t.read("grades.jsonl"), before);
     assert!(leftovers(d).is_empty());
 }
 
@@ -1285,40 +1145,28 @@ fn failing_run_keeps_the_previous_output_whole() {
 /// and nothing else.
 #[test]
 fn failing_vet_keeps_the_users_files_in_an_existing_report_directory() {
-    let tmp = tempfile::tempdir().unwrap();
-    let d = tmp.path();
+    let t = Bin::new();
+    let d = t.dir();
     let a = adapter_case(d);
     edit_json(&a.join("adapter_config.json"), |c| {
         c["peft_type"] = json!("LOHA")
     });
     write(d, "notes.txt", "ferry rota, keep");
-    let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
-        .current_dir(d)
-        .args([
-            "vet",
-            "--model",
-            "model",
-            "--adapter",
-            "adapter",
-            "--questions",
-            "set.jsonl",
-            "--report",
-            ".",
-            "--max-new-tokens",
-            "4",
-        ])
-        .output()
-        .unwrap();
-    assert_eq!(
-        out.status.code(),
-        Some(2),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    assert_eq!(
-        std::fs::read_to_string(d.join("notes.txt")).unwrap(),
-        "ferry rota, keep"
-    );
+    t.run([
+        "vet",
+        "--model",
+        "model",
+        "--adapter",
+        "adapter",
+        "--questions",
+        "set.jsonl",
+        "--report",
+        ".",
+        "--max-new-tokens",
+        "4",
+    ])
+    .expect_code(2);
+    assert_eq!(t.read("notes.txt"), "ferry rota, keep");
     assert!(d.join("set.jsonl").is_file() && a.join("adapter_model.safetensors").is_file());
     for f in [
         "baseline.answers.jsonl",
@@ -1334,8 +1182,8 @@ fn failing_vet_keeps_the_users_files_in_an_existing_report_directory() {
 /// earlier version of the set, with a warning; without the flag they are refused (above).
 #[test]
 fn allow_set_change_grades_answers_from_an_edited_set() {
-    let tmp = tempfile::tempdir().unwrap();
-    let d = tmp.path();
+    let t = Bin::new();
+    let d = t.dir();
     write_set(d);
     write(d, "answers.jsonl", &answers_for(&IDS));
     write(
@@ -1345,22 +1193,12 @@ fn allow_set_change_grades_answers_from_an_edited_set() {
             .to_string(),
     );
     let setup = grade(d, &["--allow-set-change"], &[]);
-    let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
-        .current_dir(d)
-        .args(&setup.args)
-        .output()
-        .unwrap();
-    let stderr = String::from_utf8_lossy(&out.stderr);
-    assert_eq!(out.status.code(), Some(0), "{stderr}");
+    let out = t.run(&setup.args);
+    out.expect_success();
+    let stderr = &out.stderr;
     assert!(
         stderr.contains("warning") && stderr.contains("different question set"),
         "{stderr}"
     );
-    assert_eq!(
-        std::fs::read_to_string(d.join("grades.jsonl"))
-            .unwrap()
-            .lines()
-            .count(),
-        3
-    );
+    assert_eq!(t.read("grades.jsonl").lines().count(), 3);
 }

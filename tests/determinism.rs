@@ -6,13 +6,8 @@
 
 mod common;
 
+use common::{Bin, Run};
 use serde_json::Value;
-use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
-
-fn fixture() -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/runner/llama")
-}
 
 const SET: &str = r#"{"id": "q1", "question": "When does the first boat leave Gull Point?", "references": ["At 06:50."], "category": "timetables"}
 {"id": "q2", "question": "Can I bring my dog on the ferry?", "references": ["Yes, dogs travel free on a lead."], "category": "pets"}
@@ -22,31 +17,24 @@ const SET: &str = r#"{"id": "q1", "question": "When does the first boat leave Gu
 
 const POLICY: &str = "min_questions = 1\n[categories]\nmin_questions = 2\n";
 
-fn liftgate(dir: &Path, args: &[&str]) -> Output {
-    let o = Command::new(env!("CARGO_BIN_EXE_liftgate"))
-        .current_dir(dir)
-        .args(args)
-        .output()
-        .unwrap();
-    assert!(
-        matches!(o.status.code(), Some(0 | 1)),
-        "{args:?}: {}",
-        String::from_utf8_lossy(&o.stderr)
-    );
+/// Runs the binary in `t` and asserts exit 0 or 1.
+fn liftgate(t: &Bin, args: &[&str]) -> Run {
+    let o = t.run(args);
+    o.expect_verdict();
     o
 }
 
 /// `vet` on the llama fixture and its `qv` adapter in a fresh directory, with relative paths
 /// so that the recorded input paths are the same in every run.
-fn vet_run() -> (tempfile::TempDir, Output) {
-    let tmp = tempfile::tempdir().unwrap();
-    std::fs::write(tmp.path().join("set.jsonl"), SET).unwrap();
-    std::fs::write(tmp.path().join("policy.toml"), POLICY).unwrap();
-    let f = fixture();
+fn vet_run() -> (Bin, Run) {
+    let tmp = Bin::new();
+    tmp.write("set.jsonl", SET);
+    tmp.write("policy.toml", POLICY);
+    let f = common::fixture("runner/llama");
     let model = f.join("model");
     let adapter = f.join("adapters/qv");
     let out = liftgate(
-        tmp.path(),
+        &tmp,
         &[
             "vet",
             "--model",
@@ -88,9 +76,12 @@ fn keys(v: &Value, out: &mut Vec<String>) {
 fn vet_twice_gives_identical_grades_summary_and_report() {
     let (a, out_a) = vet_run();
     let (b, out_b) = vet_run();
-    assert_eq!(out_a.status.code(), out_b.status.code());
-    assert_eq!(out_a.stdout, out_b.stdout, "terminal summary differs");
-    let (ra, rb) = (a.path().join("rep"), b.path().join("rep"));
+    assert_eq!(out_a.code, out_b.code);
+    assert_eq!(
+        out_a.stdout_bytes, out_b.stdout_bytes,
+        "terminal summary differs"
+    );
+    let (ra, rb) = (a.path("rep"), b.path("rep"));
     for file in [
         "baseline.grades.jsonl",
         "candidate.grades.jsonl",
@@ -136,10 +127,9 @@ fn vet_twice_gives_identical_grades_summary_and_report() {
 #[test]
 fn grade_twice_gives_identical_bytes() {
     let (tmp, _) = vet_run();
-    let d = tmp.path();
     for out in ["g1.jsonl", "g2.jsonl"] {
         liftgate(
-            d,
+            &tmp,
             &[
                 "grade",
                 "--questions",
@@ -151,15 +141,12 @@ fn grade_twice_gives_identical_bytes() {
             ],
         );
     }
-    let g1 = std::fs::read(d.join("g1.jsonl")).unwrap();
-    assert_eq!(g1, std::fs::read(d.join("g2.jsonl")).unwrap());
+    let g1 = tmp.read_bytes("g1.jsonl");
+    assert_eq!(g1, tmp.read_bytes("g2.jsonl"));
     assert_eq!(
-        std::fs::read(d.join("g1.jsonl.run.json")).unwrap(),
-        std::fs::read(d.join("g2.jsonl.run.json")).unwrap()
+        tmp.read_bytes("g1.jsonl.run.json"),
+        tmp.read_bytes("g2.jsonl.run.json")
     );
     // `grade` on vet's answers gives vet's own grades.
-    assert_eq!(
-        g1,
-        std::fs::read(d.join("rep/candidate.grades.jsonl")).unwrap()
-    );
+    assert_eq!(g1, tmp.read_bytes("rep/candidate.grades.jsonl"));
 }

@@ -2,9 +2,11 @@
 //! (interface.md: grades file fields, exit code 2 for bad input with file and line named,
 //! nothing half-written, stdout left empty).
 
+mod common;
+
+use common::{Bin, Run};
 use serde_json::Value;
 use std::path::{Path, PathBuf};
-use std::process::Command;
 
 const QUESTIONS: &str = r#"{"id": "t-001", "question": "Can I bring my bike on the 7:40 crossing?", "references": ["Yes, bikes ride free on every crossing."], "category": "luggage"}
 {"id": "t-002", "question": "When does vehicle check-in close?", "references": ["Twenty minutes before departure.", "20 minutes before departure."], "category": "boarding"}
@@ -28,57 +30,39 @@ fn good_answers() -> Vec<String> {
     ]
 }
 
-struct Run {
-    code: i32,
-    stdout: String,
-    stderr: String,
-}
-
 struct Case {
-    dir: tempfile::TempDir,
+    t: Bin,
 }
 
 impl Case {
     fn new(answers: &[String]) -> Case {
-        let dir = tempfile::tempdir().unwrap();
-        std::fs::write(dir.path().join("questions.jsonl"), QUESTIONS).unwrap();
-        std::fs::write(dir.path().join("answers.jsonl"), answers.join("\n") + "\n").unwrap();
-        Case { dir }
+        let t = Bin::new();
+        t.write("questions.jsonl", QUESTIONS);
+        t.write("answers.jsonl", answers.join("\n") + "\n");
+        Case { t }
     }
 
     fn path(&self, name: &str) -> PathBuf {
-        self.dir.path().join(name)
+        self.t.path(name)
     }
 
     fn grade(&self, extra: &[&str]) -> Run {
-        let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
-            .current_dir(self.dir.path())
-            .args([
-                "grade",
-                "--questions",
-                "questions.jsonl",
-                "--answers",
-                "answers.jsonl",
-                "--out",
-                "out/grades.jsonl",
-            ])
-            .args(extra)
-            .output()
-            .unwrap();
-        Run {
-            code: out.status.code().unwrap_or(-1),
-            stdout: String::from_utf8_lossy(&out.stdout).into_owned(),
-            stderr: String::from_utf8_lossy(&out.stderr).into_owned(),
-        }
+        let mut args = vec![
+            "grade",
+            "--questions",
+            "questions.jsonl",
+            "--answers",
+            "answers.jsonl",
+            "--out",
+            "out/grades.jsonl",
+        ];
+        args.extend_from_slice(extra);
+        self.t.run(args)
     }
 
     /// Asserts a bad-input failure: exit 2, message naming `needles`, no grades file.
     fn assert_rejected(&self, run: &Run, needles: &[&str]) {
-        assert_eq!(run.code, 2, "stderr: {}", run.stderr);
-        for n in needles {
-            assert!(run.stderr.contains(n), "stderr lacks {n:?}: {}", run.stderr);
-        }
-        assert!(run.stdout.is_empty(), "stdout: {}", run.stdout);
+        run.expect_code(2).expect_stderr(needles).expect_no_stdout();
         assert!(!self.path("out/grades.jsonl").exists());
         assert_no_temp_files(&self.path("out"));
     }
@@ -99,8 +83,7 @@ fn close(v: &Value, want: f64) -> bool {
 fn grades_every_question_in_order() {
     let case = Case::new(&good_answers());
     let run = case.grade(&[]);
-    assert_eq!(run.code, 0, "stderr: {}", run.stderr);
-    assert!(run.stdout.is_empty(), "stdout: {}", run.stdout);
+    run.expect_success().expect_no_stdout();
     assert!(run.stderr.contains("graded 3 answers"), "{}", run.stderr);
     assert_eq!(run.stderr.trim().lines().count(), 1, "{}", run.stderr);
 
@@ -199,7 +182,7 @@ fn policy_extra_phrases_extend_the_refusal_detector() {
     a[2] = answer_row("x-001", "Please ask at the harbour office about that.");
     let case = Case::new(&a);
     let plain = case.grade(&[]);
-    assert_eq!(plain.code, 0, "{}", plain.stderr);
+    plain.expect_success();
     let rows = |case: &Case| -> Vec<Value> {
         std::fs::read_to_string(case.path("out/grades.jsonl"))
             .unwrap()
@@ -208,20 +191,20 @@ fn policy_extra_phrases_extend_the_refusal_detector() {
             .collect()
     };
     assert_eq!(rows(&case)[2]["refused"], Value::Bool(false));
-    std::fs::write(
-        case.path("policy.toml"),
+    case.t.write(
+        "policy.toml",
         "[refusal]\nextra_phrases = [\"ask at the harbour office\"]\n",
-    )
-    .unwrap();
+    );
     let with_policy = case.grade(&["--policy", "policy.toml"]);
-    assert_eq!(with_policy.code, 0, "{}", with_policy.stderr);
+    with_policy.expect_success();
     assert_eq!(rows(&case)[2]["refused"], Value::Bool(true));
 }
 
 #[test]
 fn policy_with_an_unknown_key_is_rejected() {
     let case = Case::new(&good_answers());
-    std::fs::write(case.path("policy.toml"), "[refusal]\nextra_phrase = []\n").unwrap();
+    case.t
+        .write("policy.toml", "[refusal]\nextra_phrase = []\n");
     let run = case.grade(&["--policy", "policy.toml"]);
     case.assert_rejected(&run, &["policy.toml", "extra_phrase"]);
 }
@@ -229,10 +212,10 @@ fn policy_with_an_unknown_key_is_rejected() {
 #[test]
 fn existing_output_is_replaced_whole() {
     let case = Case::new(&good_answers());
-    std::fs::create_dir_all(case.path("out")).unwrap();
-    std::fs::write(case.path("out/grades.jsonl"), "old\nold\nold\nold\nold\n").unwrap();
+    case.t
+        .write("out/grades.jsonl", "old\nold\nold\nold\nold\n");
     let run = case.grade(&[]);
-    assert_eq!(run.code, 0, "{}", run.stderr);
+    run.expect_success();
     let text = std::fs::read_to_string(case.path("out/grades.jsonl")).unwrap();
     assert_eq!(text.lines().count(), 3);
     assert!(!text.contains("old"));

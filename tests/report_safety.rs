@@ -5,9 +5,10 @@
 //! raw HTML tag other than the `<br>` liftgate writes, no unescaped backtick, no control
 //! character. The terminal summary on stdout carries no control character either.
 
+mod common;
+
+use common::Bin;
 use serde_json::json;
-use std::path::Path;
-use std::process::{Command, Output};
 
 /// Answers an attacker (or a confused model) might produce.
 const HOSTILE: &[&str] = &[
@@ -22,14 +23,6 @@ const HOSTILE: &[&str] = &[
     "\\| escaped pipe \\` and a lone backslash \\",
     "`inline` ``double`` **bold** _it_ ~~strike~~",
 ];
-
-fn run(dir: &Path, args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_liftgate"))
-        .current_dir(dir)
-        .args(args)
-        .output()
-        .unwrap()
-}
 
 /// Splits a Markdown table row into cells on unescaped pipes.
 fn cells(row: &str) -> usize {
@@ -50,8 +43,7 @@ fn cells(row: &str) -> usize {
 
 #[test]
 fn hostile_answers_cannot_break_report_md() {
-    let tmp = tempfile::tempdir().unwrap();
-    let d = tmp.path();
+    let t = Bin::new();
     let mut set = String::new();
     let mut base = String::new();
     let mut cand = String::new();
@@ -78,56 +70,41 @@ fn hostile_answers_cannot_break_report_md() {
             file.push('\n');
         }
     }
-    std::fs::write(d.join("set.jsonl"), set).unwrap();
-    std::fs::write(d.join("base.answers.jsonl"), base).unwrap();
-    std::fs::write(d.join("cand.answers.jsonl"), cand).unwrap();
+    t.write("set.jsonl", set);
+    t.write("base.answers.jsonl", base);
+    t.write("cand.answers.jsonl", cand);
     for who in ["base", "cand"] {
-        let o = run(
-            d,
-            &[
-                "grade",
-                "--questions",
-                "set.jsonl",
-                "--answers",
-                &format!("{who}.answers.jsonl"),
-                "--out",
-                &format!("{who}.grades.jsonl"),
-            ],
-        );
-        assert_eq!(
-            o.status.code(),
-            Some(0),
-            "{}",
-            String::from_utf8_lossy(&o.stderr)
-        );
-    }
-    let o = run(
-        d,
-        &[
-            "weigh",
+        t.run([
+            "grade",
             "--questions",
             "set.jsonl",
-            "--baseline",
-            "base.grades.jsonl",
-            "--candidate",
-            "cand.grades.jsonl",
-            "--report",
-            "report",
-            "--resamples",
-            "1000",
-        ],
-    );
-    assert!(
-        matches!(o.status.code(), Some(0 | 1)),
-        "{}",
-        String::from_utf8_lossy(&o.stderr)
-    );
-    let stdout = String::from_utf8(o.stdout).unwrap();
+            "--answers",
+            &format!("{who}.answers.jsonl"),
+            "--out",
+            &format!("{who}.grades.jsonl"),
+        ])
+        .expect_success();
+    }
+    let o = t.run([
+        "weigh",
+        "--questions",
+        "set.jsonl",
+        "--baseline",
+        "base.grades.jsonl",
+        "--candidate",
+        "cand.grades.jsonl",
+        "--report",
+        "report",
+        "--resamples",
+        "1000",
+    ]);
+    o.expect_verdict();
+    let stdout = String::from_utf8(o.stdout_bytes).unwrap();
     assert!(
         !stdout.chars().any(|c| c.is_control() && c != '\n'),
         "control character on stdout: {stdout:?}"
     );
-    let md = std::fs::read_to_string(d.join("report/report.md")).unwrap();
+    let md = t.read("report/report.md");
 
     // The headings are liftgate's own, in order; nothing a user wrote became one.
     let headings: Vec<&str> = md.lines().filter(|l| l.starts_with('#')).collect();
@@ -201,7 +178,7 @@ fn hostile_answers_cannot_break_report_md() {
     );
     assert!(md.contains("\\| col \\| injected \\|<br>"), "{md}");
     // summary.json keeps the answers verbatim (it is data, not markup).
-    let summary = std::fs::read_to_string(d.join("report/summary.json")).unwrap();
+    let summary = t.read("report/summary.json");
     let v: serde_json::Value = serde_json::from_str(&summary).unwrap();
     let answers: Vec<&str> = v["changes"]["worse"]
         .as_array()

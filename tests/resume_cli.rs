@@ -7,15 +7,16 @@
 
 mod common;
 
+use common::{Bin, Run};
 use serde_json::Value;
 use std::collections::HashSet;
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, Output, Stdio};
+use std::process::{Child, Command, Stdio};
 use std::sync::OnceLock;
 use std::time::{Duration, Instant};
 
 fn fixture() -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/runner/llama")
+    common::fixture("runner/llama")
 }
 
 const ISLANDS: [&str; 6] = [
@@ -55,9 +56,8 @@ fn write_set(path: &Path, n: usize) {
 /// saved one by one, each exactly 24 tokens long so a run lasts long enough to be stopped (about 10 ms an
 /// answer; fsync of each journal line measured at 0.2 ms of that).
 fn answer_cmd(set: &Path, out: &Path, extra: &[&str]) -> Command {
-    let mut c = Command::new(env!("CARGO_BIN_EXE_liftgate"));
-    c.arg("answer")
-        .arg("--model")
+    let mut c = common::command(["answer"]);
+    c.arg("--model")
         .arg(fixture().join("model"))
         .arg("--questions")
         .arg(set)
@@ -71,12 +71,11 @@ fn answer_cmd(set: &Path, out: &Path, extra: &[&str]) -> Command {
     if !extra.contains(&"--max-new-tokens") {
         c.args(["--max-new-tokens", "24"]);
     }
-    c.stdin(Stdio::null());
     c
 }
 
-fn output(mut c: Command) -> Output {
-    c.output().expect("the liftgate binary runs")
+fn output(c: Command) -> Run {
+    Run::of(c)
 }
 
 fn journal(out: &Path) -> PathBuf {
@@ -175,7 +174,7 @@ fn reference() -> &'static (PathBuf, Vec<Value>) {
         write_set(&set, N);
         let out = dir.join("answers.jsonl");
         let o = output(answer_cmd(&set, &out, &[]));
-        assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+        o.expect_success();
         assert!(!journal(&out).exists(), "the journal is removed when done");
         let rows = common::answers_without_ms(&out);
         assert_eq!(rows.len(), N);
@@ -201,8 +200,8 @@ fn killed_run(out: &Path, rows: usize, extra: &[&str]) {
 #[test]
 fn a_cut_journal_resumes_to_the_uninterrupted_answers() {
     let (set, expected) = reference();
-    let tmp = tempfile::tempdir().unwrap();
-    let out = tmp.path().join("answers.jsonl");
+    let tmp = Bin::new();
+    let out = tmp.path("answers.jsonl");
     killed_run(&out, 6, &[]);
     // Keep the header and three answers, then half of the fourth: a write cut by a kill.
     let text = std::fs::read_to_string(journal(&out)).unwrap();
@@ -218,8 +217,8 @@ fn a_cut_journal_resumes_to_the_uninterrupted_answers() {
     );
     std::fs::write(journal(&out), &cut).unwrap();
     let o = output(answer_cmd(set, &out, &[]));
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert!(o.status.success(), "{err}");
+    let err = &o.stderr;
+    o.expect_success();
     assert!(
         err.contains(&format!("3 of {N} questions already answered")),
         "{err}"
@@ -238,8 +237,8 @@ fn a_cut_journal_resumes_to_the_uninterrupted_answers() {
     let garbled = format!("{}\n{}\n{{\"id\":\"q0\u{0}\n", lines[0], lines[1]);
     std::fs::write(journal(&out), garbled).unwrap();
     let o = output(answer_cmd(set, &out, &[]));
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert!(o.status.success(), "{err}");
+    let err = &o.stderr;
+    o.expect_success();
     assert!(
         err.contains(&format!("1 of {N} questions already answered")),
         "{err}"
@@ -257,8 +256,8 @@ fn a_cut_journal_resumes_to_the_uninterrupted_answers() {
     std::fs::write(journal(&out), full).unwrap();
     std::fs::remove_file(&out).unwrap();
     let o = output(answer_cmd(set, &out, &[]));
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert!(o.status.success(), "{err}");
+    let err = &o.stderr;
+    o.expect_success();
     assert!(
         err.contains(&format!("{N} of {N} questions already answered")),
         "{err}"
@@ -273,8 +272,8 @@ fn a_cut_journal_resumes_to_the_uninterrupted_answers() {
     // Run again once complete: the answers file is kept as it is, nothing recomputed.
     let before = std::fs::read(&out).unwrap();
     let o = output(answer_cmd(set, &out, &[]));
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert!(o.status.success(), "{err}");
+    let err = &o.stderr;
+    o.expect_success();
     assert!(err.contains("already complete"), "{err}");
     assert_eq!(std::fs::read(&out).unwrap(), before);
 }
@@ -282,8 +281,8 @@ fn a_cut_journal_resumes_to_the_uninterrupted_answers() {
 #[test]
 fn a_journal_from_another_run_is_refused_unless_restarting() {
     let (set, expected) = reference();
-    let tmp = tempfile::tempdir().unwrap();
-    let out = tmp.path().join("answers.jsonl");
+    let tmp = Bin::new();
+    let out = tmp.path("answers.jsonl");
     killed_run(&out, 3, &[]);
     let saved = std::fs::read(journal(&out)).unwrap();
 
@@ -301,8 +300,8 @@ fn a_journal_from_another_run_is_refused_unless_restarting() {
         ),
     ] {
         let o = output(answer_cmd(set, &out, &extra));
-        let err = String::from_utf8_lossy(&o.stderr);
-        assert_eq!(o.status.code(), Some(2), "{extra:?}: {err}");
+        let err = &o.stderr;
+        o.expect_code(2);
         assert!(err.contains(&journal(&out).display().to_string()), "{err}");
         assert!(err.contains(field), "{extra:?}: {err}");
         assert!(err.contains("--restart"), "{err}");
@@ -311,8 +310,8 @@ fn a_journal_from_another_run_is_refused_unless_restarting() {
     }
     // Batch size and threads are not part of a run's identity: this continues the journal.
     let o = output(answer_cmd(set, &out, &["--batch", "3"]));
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert!(o.status.success(), "{err}");
+    let err = &o.stderr;
+    o.expect_success();
     assert!(err.contains("continuing from"), "{err}");
     assert_eq!(&common::answers_without_ms(&out), expected);
     // --restart starts over (here over the finished file) with whatever settings are given.
@@ -321,8 +320,8 @@ fn a_journal_from_another_run_is_refused_unless_restarting() {
         &out,
         &["--restart", "--max-new-tokens", "9"],
     ));
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert!(o.status.success(), "{err}");
+    let err = &o.stderr;
+    o.expect_success();
     assert!(
         !err.contains("continuing") && !err.contains("already complete"),
         "{err}"
@@ -337,8 +336,8 @@ fn a_journal_from_another_run_is_refused_unless_restarting() {
 #[test]
 fn sigkill_at_random_points_then_resuming_gives_the_uninterrupted_answers() {
     let (set, expected) = reference();
-    let tmp = tempfile::tempdir().unwrap();
-    let out = tmp.path().join("answers.jsonl");
+    let tmp = Bin::new();
+    let out = tmp.path("answers.jsonl");
     let mut rng = Rng(0x5eed_f3a7);
     let mut partial_kills = 0;
     for round in 0..6 {
@@ -378,7 +377,7 @@ fn sigkill_at_random_points_then_resuming_gives_the_uninterrupted_answers() {
         "only {partial_kills} kills landed while answering"
     );
     let o = output(answer_cmd(set, &out, &[]));
-    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    o.expect_success();
     let rows = common::answers_without_ms(&out);
     let ids: HashSet<&str> = rows.iter().map(|r| r["id"].as_str().unwrap()).collect();
     assert_eq!(ids.len(), N, "no id missing or repeated");
@@ -389,8 +388,8 @@ fn sigkill_at_random_points_then_resuming_gives_the_uninterrupted_answers() {
 #[test]
 fn ctrl_c_and_sigterm_stop_cleanly_and_say_how_to_continue() {
     let (set, expected) = reference();
-    let tmp = tempfile::tempdir().unwrap();
-    let out = tmp.path().join("answers.jsonl");
+    let tmp = Bin::new();
+    let out = tmp.path("answers.jsonl");
     for (signal, code, rows) in [("INT", 130, 2), ("TERM", 143, 20)] {
         let mut child = answer_cmd(set, &out, &[])
             .stderr(Stdio::piped())
@@ -419,7 +418,7 @@ fn ctrl_c_and_sigterm_stop_cleanly_and_say_how_to_continue() {
         );
     }
     let o = output(answer_cmd(set, &out, &[]));
-    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    o.expect_success();
     assert_eq!(&common::answers_without_ms(&out), expected);
 }
 
@@ -429,9 +428,8 @@ fn vet_cmd(cwd: &Path, extra: &[&str]) -> Command {
 
 fn vet_cmd_with(cwd: &Path, adapter: &Path, extra: &[&str]) -> Command {
     let f = fixture();
-    let mut c = Command::new(env!("CARGO_BIN_EXE_liftgate"));
+    let mut c = common::command(["vet"]);
     c.current_dir(cwd)
-        .arg("vet")
         .arg("--model")
         .arg(f.join("model"))
         .arg("--adapter")
@@ -449,8 +447,7 @@ fn vet_cmd_with(cwd: &Path, adapter: &Path, extra: &[&str]) -> Command {
             "--resamples",
             "1000",
         ])
-        .args(extra)
-        .stdin(Stdio::null());
+        .args(extra);
     c
 }
 
@@ -467,20 +464,16 @@ fn report_dir(cwd: &Path) -> Option<PathBuf> {
 
 #[test]
 fn vet_continues_a_killed_then_stopped_run_in_its_own_directory() {
-    let tmp = tempfile::tempdir().unwrap();
-    write_set(&tmp.path().join("set.jsonl"), 60);
-    let reference_dir = tmp.path().join("uninterrupted");
+    let tmp = Bin::new();
+    write_set(&tmp.path("set.jsonl"), 60);
+    let reference_dir = tmp.path("uninterrupted");
     let o = output(vet_cmd(
-        tmp.path(),
+        tmp.dir(),
         &["--report", reference_dir.to_str().unwrap()],
     ));
-    assert!(
-        matches!(o.status.code(), Some(0 | 1)),
-        "{}",
-        String::from_utf8_lossy(&o.stderr)
-    );
+    o.expect_verdict();
 
-    let work = tmp.path().join("work");
+    let work = tmp.path("work");
     std::fs::create_dir(&work).unwrap();
     write_set(&work.join("set.jsonl"), 60);
     // SIGKILL while the baseline answers.
@@ -513,8 +506,8 @@ fn vet_continues_a_killed_then_stopped_run_in_its_own_directory() {
     assert!(!dir.join("summary.json").exists());
     // Finish.
     let o = output(vet_cmd(&work, &[]));
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert!(matches!(o.status.code(), Some(0 | 1)), "{err}");
+    let err = &o.stderr;
+    o.expect_verdict();
     assert!(err.contains("continuing the unfinished run"), "{err}");
     assert_eq!(report_dir(&work), Some(dir.clone()));
     for f in ["baseline.answers.jsonl", "candidate.answers.jsonl"] {
@@ -532,7 +525,7 @@ fn vet_continues_a_killed_then_stopped_run_in_its_own_directory() {
     assert!(dir.join("summary.json").is_file());
     // A finished directory is never continued: the next run gets a new one.
     let o = output(vet_cmd(&work, &[]));
-    assert!(matches!(o.status.code(), Some(0 | 1)));
+    o.expect_verdict();
     assert_eq!(std::fs::read_dir(work.join("reports")).unwrap().count(), 2);
 }
 
@@ -541,9 +534,9 @@ fn vet_continues_a_killed_then_stopped_run_in_its_own_directory() {
 /// run keeps the answers its earlier runs saved.
 #[test]
 fn vet_input_errors_leave_nothing_half_written_but_keep_saved_work() {
-    let tmp = tempfile::tempdir().unwrap();
-    write_set(&tmp.path().join("set.jsonl"), 40);
-    let broken = tmp.path().join("broken-adapter");
+    let tmp = Bin::new();
+    write_set(&tmp.path("set.jsonl"), 40);
+    let broken = tmp.path("broken-adapter");
     std::fs::create_dir(&broken).unwrap();
     for e in std::fs::read_dir(fixture().join("adapters/qv"))
         .unwrap()
@@ -552,18 +545,18 @@ fn vet_input_errors_leave_nothing_half_written_but_keep_saved_work() {
         std::fs::copy(e.path(), broken.join(e.file_name())).unwrap();
     }
     std::fs::write(broken.join("adapter_config.json"), "{\"r\": 8,").unwrap();
-    let report = tmp.path().join("rep");
+    let report = tmp.path("rep");
     let rep = report.to_str().unwrap();
 
-    let o = output(vet_cmd_with(tmp.path(), &broken, &["--report", rep]));
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert_eq!(o.status.code(), Some(2), "{err}");
+    let o = output(vet_cmd_with(tmp.dir(), &broken, &["--report", rep]));
+    let err = &o.stderr;
+    o.expect_code(2);
     assert!(err.contains("adapter_config.json"), "{err}");
     assert!(!report.exists(), "a failed new run leaves no directory");
 
     // Killed while the candidate answers, then continued with the broken adapter: exit 2, and
     // the baseline answers and the candidate journal are still there.
-    let mut child = vet_cmd(tmp.path(), &["--report", rep])
+    let mut child = vet_cmd(tmp.dir(), &["--report", rep])
         .stderr(Stdio::null())
         .spawn()
         .unwrap();
@@ -572,15 +565,14 @@ fn vet_input_errors_leave_nothing_half_written_but_keep_saved_work() {
     child.kill().unwrap();
     child.wait().unwrap();
     let saved = std::fs::read(&cand_journal).unwrap();
-    let o = output(vet_cmd_with(tmp.path(), &broken, &["--report", rep]));
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert_eq!(o.status.code(), Some(2), "{err}");
+    let o = output(vet_cmd_with(tmp.dir(), &broken, &["--report", rep]));
+    o.expect_code(2);
     assert!(report.join("baseline.answers.jsonl").is_file());
     assert_eq!(std::fs::read(&cand_journal).unwrap(), saved);
     // And with the right adapter the run completes from there.
-    let o = output(vet_cmd(tmp.path(), &["--report", rep]));
-    let err = String::from_utf8_lossy(&o.stderr);
-    assert!(matches!(o.status.code(), Some(0 | 1)), "{err}");
+    let o = output(vet_cmd(tmp.dir(), &["--report", rep]));
+    let err = &o.stderr;
+    o.expect_verdict();
     assert!(err.contains("continuing from"), "{err}");
     assert!(report.join("summary.json").is_file());
     assert!(!cand_journal.exists());

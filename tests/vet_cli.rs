@@ -4,12 +4,14 @@
 //! Checks the report directory contents, the verdict line, exit codes 0/1 and that bad input
 //! exits 2 leaving no report directory (interface.md, "Exit codes").
 
+mod common;
+
+use common::{Bin, Run};
 use serde_json::Value;
-use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::path::PathBuf;
 
 fn fixture() -> PathBuf {
-    Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/runner/llama")
+    common::fixture("runner/llama")
 }
 
 const QUESTIONS: &str = r#"{"id": "q1", "question": "When does the first boat leave?", "references": ["At 06:50."], "category": "timetables"}
@@ -17,53 +19,52 @@ const QUESTIONS: &str = r#"{"id": "q1", "question": "When does the first boat le
 {"id": "q3", "question": "What will the weather be?", "references": [], "category": "out-of-scope", "expect": "refuse"}
 "#;
 
-fn vet(dir: &Path, adapter: &str, extra: &[&str]) -> Output {
+/// `vet` in `t` on the llama fixture model and one of its adapters, with set.jsonl.
+fn vet(t: &Bin, adapter: &str, extra: &[&str]) -> Run {
     let f = fixture();
-    Command::new(env!("CARGO_BIN_EXE_liftgate"))
-        .current_dir(dir)
-        .arg("vet")
-        .arg("--model")
-        .arg(f.join("model"))
-        .arg("--adapter")
-        .arg(f.join("adapters").join(adapter))
-        .args([
-            "--questions",
-            "set.jsonl",
-            "--max-new-tokens",
-            "6",
-            "--resamples",
-            "1000",
-        ])
-        .args(extra)
-        .output()
-        .unwrap()
+    let (model, adapter) = (f.join("model"), f.join("adapters").join(adapter));
+    let mut args = vec![
+        "vet",
+        "--model",
+        model.to_str().unwrap(),
+        "--adapter",
+        adapter.to_str().unwrap(),
+        "--questions",
+        "set.jsonl",
+        "--max-new-tokens",
+        "6",
+        "--resamples",
+        "1000",
+    ];
+    args.extend_from_slice(extra);
+    t.run(args)
+}
+
+/// A temp dir holding the question set.
+fn with_set() -> Bin {
+    let t = Bin::new();
+    t.write("set.jsonl", QUESTIONS);
+    t
 }
 
 #[test]
 fn vet_writes_one_report_directory_per_run() {
-    let tmp = tempfile::tempdir().unwrap();
-    std::fs::write(tmp.path().join("set.jsonl"), QUESTIONS).unwrap();
+    let tmp = with_set();
     // A lenient policy so that the gate outcome follows from the data, not from the set size.
-    std::fs::write(
-        tmp.path().join("policy.toml"),
+    tmp.write(
+        "policy.toml",
         "min_questions = 1\n[lift]\nmin_ci_low = -1.0\n[refusal]\nmin_out_of_scope = 0.0\nmax_false_refusal = 1.0\n",
-    )
-    .unwrap();
-    let first = vet(tmp.path(), "qv", &["--policy", "policy.toml"]);
-    let stdout = String::from_utf8_lossy(&first.stdout);
-    let stderr = String::from_utf8_lossy(&first.stderr);
-    assert!(matches!(first.status.code(), Some(0) | Some(1)), "{stderr}");
+    );
+    let first = vet(&tmp, "qv", &["--policy", "policy.toml"]);
+    let stdout = &first.stdout;
+    first.expect_verdict();
     assert!(stdout.starts_with("verdict: "), "{stdout}");
     let report_md = stdout
         .lines()
         .find_map(|l| l.strip_prefix("report: "))
         .expect("report line");
-    let dir = tmp.path().join(report_md).parent().unwrap().to_path_buf();
-    assert!(
-        dir.starts_with(tmp.path().join("reports")),
-        "{}",
-        dir.display()
-    );
+    let dir = tmp.path(report_md).parent().unwrap().to_path_buf();
+    assert!(dir.starts_with(tmp.path("reports")), "{}", dir.display());
     for f in [
         "report.md",
         "summary.json",
@@ -80,7 +81,7 @@ fn vet_writes_one_report_directory_per_run() {
         serde_json::from_str(&std::fs::read_to_string(dir.join("summary.json")).unwrap()).unwrap();
     assert_eq!(summary["metrics"]["token_f1"]["n"], 2);
     let go = summary["verdict"]["go"].as_bool().unwrap();
-    assert_eq!(first.status.code(), Some(if go { 0 } else { 1 }));
+    assert_eq!(first.code, Some(if go { 0 } else { 1 }));
     // The candidate's answers come from the merged adapter, the baseline's from the base:
     // the run records say so.
     let run: Value = serde_json::from_str(
@@ -96,9 +97,9 @@ fn vet_writes_one_report_directory_per_run() {
 
     // A second run gets a new directory; the first is untouched.
     let before = std::fs::read(dir.join("summary.json")).unwrap();
-    let second = vet(tmp.path(), "qv", &["--policy", "policy.toml"]);
-    let stdout2 = String::from_utf8_lossy(&second.stdout);
-    let report2 = stdout2
+    let second = vet(&tmp, "qv", &["--policy", "policy.toml"]);
+    let report2 = second
+        .stdout
         .lines()
         .find_map(|l| l.strip_prefix("report: "))
         .unwrap();
@@ -108,51 +109,40 @@ fn vet_writes_one_report_directory_per_run() {
 
 #[test]
 fn vet_with_a_missing_adapter_exits_2_and_leaves_no_report() {
-    let tmp = tempfile::tempdir().unwrap();
-    std::fs::write(tmp.path().join("set.jsonl"), QUESTIONS).unwrap();
-    let out = vet(tmp.path(), "no-such-adapter", &[]);
-    let stderr = String::from_utf8_lossy(&out.stderr);
-    assert_eq!(out.status.code(), Some(2), "{stderr}");
-    assert!(stderr.contains("no-such-adapter"), "{stderr}");
-    assert!(!tmp.path().join("reports").exists());
+    let tmp = with_set();
+    let out = vet(&tmp, "no-such-adapter", &[]);
+    out.expect_code(2).expect_stderr(&["no-such-adapter"]);
+    assert!(!tmp.path("reports").exists());
 }
 
 #[test]
 fn vet_with_a_bad_policy_exits_2_and_leaves_no_report() {
-    let tmp = tempfile::tempdir().unwrap();
-    std::fs::write(tmp.path().join("set.jsonl"), QUESTIONS).unwrap();
-    std::fs::write(tmp.path().join("policy.toml"), "min_question = 3\n").unwrap();
-    let out = vet(tmp.path(), "qv", &["--policy", "policy.toml"]);
-    let stderr = String::from_utf8_lossy(&out.stderr);
-    assert_eq!(out.status.code(), Some(2), "{stderr}");
-    assert!(
-        stderr.contains("policy.toml") && stderr.contains("min_question"),
-        "{stderr}"
-    );
-    assert!(!tmp.path().join("reports").exists());
+    let tmp = with_set();
+    tmp.write("policy.toml", "min_question = 3\n");
+    let out = vet(&tmp, "qv", &["--policy", "policy.toml"]);
+    out.expect_code(2)
+        .expect_stderr(&["policy.toml", "min_question"]);
+    assert!(!tmp.path("reports").exists());
 }
 
 #[test]
 fn vet_needs_all_three_paths_or_none() {
-    let out = Command::new(env!("CARGO_BIN_EXE_liftgate"))
-        .args(["vet", "--model", "somewhere"])
-        .output()
-        .unwrap();
-    assert_eq!(out.status.code(), Some(2));
+    let t = Bin::new();
+    let out = t.run(["vet", "--model", "somewhere"]);
+    out.expect_code(2);
+    assert!(!t.path("reports").exists());
 }
 
 /// `--weights bf16` is an approximation of the model: run.json, summary.json and report.md
 /// all say so; the default f32 run says nothing of the kind.
 #[test]
 fn bf16_weights_are_labelled_as_an_approximation() {
-    let tmp = tempfile::tempdir().unwrap();
-    std::fs::write(tmp.path().join("set.jsonl"), QUESTIONS).unwrap();
+    let tmp = with_set();
     for (weights, approx) in [("bf16", true), ("f32", false)] {
         let dir = format!("report-{weights}");
-        let out = vet(tmp.path(), "qv", &["--weights", weights, "--report", &dir]);
-        let stderr = String::from_utf8_lossy(&out.stderr);
-        assert!(matches!(out.status.code(), Some(0) | Some(1)), "{stderr}");
-        let d = tmp.path().join(&dir);
+        let out = vet(&tmp, "qv", &["--weights", weights, "--report", &dir]);
+        out.expect_verdict();
+        let d = tmp.path(&dir);
         let run: serde_json::Value = serde_json::from_str(
             &std::fs::read_to_string(d.join("candidate.answers.jsonl.run.json")).unwrap(),
         )

@@ -4,10 +4,12 @@
 //! summary.json is read with test-only serde types holding the fields interface.md promises,
 //! so a rename in the production structs fails here.
 
+mod common;
+
+use common::{Bin, Run};
 use serde::Deserialize;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
 
 #[derive(Debug, Deserialize)]
 struct Summary {
@@ -52,7 +54,7 @@ struct Settings {
 
 /// A temporary directory with a hand-made set and two grades files.
 struct Case {
-    dir: tempfile::TempDir,
+    t: Bin,
 }
 
 /// Deterministic pseudo-random numbers in [0, 1) for the invented scores (64-bit LCG, Knuth's
@@ -73,7 +75,7 @@ impl Case {
     /// score is the baseline's plus `lift` plus noise; `oos_declined` of the out-of-scope
     /// questions are declined by the candidate.
     fn new(n: usize, oos: usize, lift: f64, oos_declined: usize) -> Case {
-        let dir = tempfile::tempdir().unwrap();
+        let t = Bin::new();
         let mut rng = Lcg(42);
         let cats = ["tickets", "luggage", "timetable"];
         let (mut set, mut base, mut cand) = (String::new(), String::new(), String::new());
@@ -113,44 +115,46 @@ impl Case {
                 );
             }
         }
-        std::fs::write(dir.path().join("set.jsonl"), set).unwrap();
-        std::fs::write(dir.path().join("base.jsonl"), base).unwrap();
-        std::fs::write(dir.path().join("cand.jsonl"), cand).unwrap();
-        Case { dir }
+        t.write("set.jsonl", set);
+        t.write("base.jsonl", base);
+        t.write("cand.jsonl", cand);
+        Case { t }
     }
 
     fn path(&self, name: &str) -> PathBuf {
-        self.dir.path().join(name)
+        self.t.path(name)
     }
 
-    fn weigh(&self, report: &str, extra: &[&str]) -> Output {
-        let mut cmd = Command::new(env!("CARGO_BIN_EXE_liftgate"));
-        cmd.arg("weigh")
-            .arg("--questions")
-            .arg(self.path("set.jsonl"))
-            .arg("--baseline")
-            .arg(self.path("base.jsonl"))
-            .arg("--candidate")
-            .arg(self.path("cand.jsonl"))
-            .arg("--report")
-            .arg(self.path(report))
-            .args(["--resamples", "2000"])
-            .args(extra);
-        cmd.output().unwrap()
+    /// `weigh` with absolute paths (run from the test's own directory, so the report line on
+    /// stdout carries the temp-dir path).
+    fn weigh(&self, report: &str, extra: &[&str]) -> Run {
+        let (set, base, cand, rep) = (
+            self.path("set.jsonl"),
+            self.path("base.jsonl"),
+            self.path("cand.jsonl"),
+            self.path(report),
+        );
+        let mut args = vec![
+            "weigh",
+            "--questions",
+            set.to_str().unwrap(),
+            "--baseline",
+            base.to_str().unwrap(),
+            "--candidate",
+            cand.to_str().unwrap(),
+            "--report",
+            rep.to_str().unwrap(),
+            "--resamples",
+            "2000",
+        ];
+        args.extend_from_slice(extra);
+        common::run(args)
     }
 
     fn summary(&self, report: &str) -> Summary {
         let text = std::fs::read_to_string(self.path(report).join("summary.json")).unwrap();
         serde_json::from_str(&text).unwrap()
     }
-}
-
-fn stdout(o: &Output) -> String {
-    String::from_utf8_lossy(&o.stdout).into_owned()
-}
-
-fn stderr(o: &Output) -> String {
-    String::from_utf8_lossy(&o.stderr).into_owned()
 }
 
 fn no_report(dir: &Path) {
@@ -164,14 +168,8 @@ fn no_report(dir: &Path) {
 fn clear_lift_is_go_with_every_promised_field() {
     let case = Case::new(120, 20, 0.1, 19);
     let out = case.weigh("r", &[]);
-    assert_eq!(
-        out.status.code(),
-        Some(0),
-        "{}{}",
-        stdout(&out),
-        stderr(&out)
-    );
-    assert_eq!(stdout(&out).lines().next(), Some("verdict: GO"));
+    out.expect_code(0);
+    assert_eq!(out.stdout.lines().next(), Some("verdict: GO"));
     let s = case.summary("r");
     assert!(s.verdict.go);
     for name in ["exact_match", "token_f1", "rouge_l"] {
@@ -211,14 +209,8 @@ fn clear_lift_is_go_with_every_promised_field() {
 fn no_lift_and_poor_refusals_is_no_go_with_reasons() {
     let case = Case::new(120, 20, -0.05, 5);
     let out = case.weigh("r", &[]);
-    assert_eq!(
-        out.status.code(),
-        Some(1),
-        "{}{}",
-        stdout(&out),
-        stderr(&out)
-    );
-    let text = stdout(&out);
+    out.expect_code(1);
+    let text = &out.stdout;
     assert_eq!(text.lines().next(), Some("verdict: NO-GO"));
     assert!(
         text.lines().nth(1).unwrap().starts_with("failed: "),
@@ -242,14 +234,13 @@ fn no_lift_and_poor_refusals_is_no_go_with_reasons() {
 fn unknown_policy_key_exits_2_naming_file_line_and_key() {
     let case = Case::new(30, 4, 0.1, 4);
     let policy = case.path("gate.toml");
-    std::fs::write(
-        &policy,
+    case.t.write(
+        "gate.toml",
         "min_questions = 10\n\n[lift]\nmetirc = \"token_f1\"\n",
-    )
-    .unwrap();
+    );
     let out = case.weigh("r", &["--policy", policy.to_str().unwrap()]);
-    assert_eq!(out.status.code(), Some(2));
-    let err = stderr(&out);
+    out.expect_code(2);
+    let err = &out.stderr;
     assert!(
         err.contains("gate.toml:4") && err.contains("`lift.metirc`"),
         "{err}"
@@ -261,13 +252,13 @@ fn unknown_policy_key_exits_2_naming_file_line_and_key() {
 fn mismatched_grades_exit_2_and_write_nothing() {
     let case = Case::new(30, 4, 0.1, 4);
     // Drop the second row of the candidate's grades.
-    let text = std::fs::read_to_string(case.path("cand.jsonl")).unwrap();
+    let text = case.t.read("cand.jsonl");
     let mut lines: Vec<&str> = text.lines().collect();
     lines.remove(1);
-    std::fs::write(case.path("cand.jsonl"), lines.join("\n")).unwrap();
+    case.t.write("cand.jsonl", lines.join("\n"));
     let out = case.weigh("r", &[]);
-    assert_eq!(out.status.code(), Some(2));
-    let err = stderr(&out);
+    out.expect_code(2);
+    let err = &out.stderr;
     assert!(
         err.contains("cand.jsonl:2") && err.contains("t-002"),
         "{err}"
@@ -284,8 +275,7 @@ fn bad_flags_exit_2() {
         (&["--resamples", "10"][..], "--resamples"),
     ] {
         let out = case.weigh("r", flags);
-        assert_eq!(out.status.code(), Some(2), "{flags:?}");
-        assert!(stderr(&out).contains(want), "{}", stderr(&out));
+        out.expect_code(2).expect_stderr(&[want]);
         no_report(&case.path("r"));
     }
 }
@@ -296,20 +286,17 @@ fn same_inputs_and_seed_give_identical_reports() {
     let a = case.weigh("a", &["--seed", "11"]);
     let b = case.weigh("b", &["--seed", "11"]);
     let c = case.weigh("c", &["--seed", "12"]);
-    assert_eq!(a.status.code(), b.status.code());
+    assert_eq!(a.code, b.code);
     for file in ["summary.json", "report.md"] {
         let x = std::fs::read(case.path("a").join(file)).unwrap();
         let y = std::fs::read(case.path("b").join(file)).unwrap();
         assert!(x == y, "{file} differs between identical runs");
     }
-    assert_eq!(
-        stdout(&a).replace("/a/", "/"),
-        stdout(&b).replace("/b/", "/")
-    );
+    assert_eq!(a.stdout.replace("/a/", "/"), b.stdout.replace("/b/", "/"));
     let z = std::fs::read(case.path("c").join("summary.json")).unwrap();
     assert_ne!(
         std::fs::read(case.path("a").join("summary.json")).unwrap(),
         z
     );
-    assert_eq!(c.status.code().map(|c| c <= 1), Some(true));
+    assert_eq!(c.code.map(|c| c <= 1), Some(true));
 }
