@@ -16,6 +16,7 @@ pub mod generate;
 pub mod grades;
 pub mod interrupt;
 pub mod journal;
+pub mod kernels;
 pub mod model;
 pub mod policy;
 pub mod questions;

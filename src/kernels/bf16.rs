@@ -12,9 +12,8 @@
 //! (k, k+1), 16 lanes each holding (w[k][j], w[k+1][j]) as two bf16 in one u32 (low half k),
 //! which is the operand layout of `vdpbf16ps`.
 
-use rayon::prelude::*;
-
-const LANES: usize = 16;
+use super::simd::{block_pairs, features, groups, LANES};
+use super::PARALLEL_WORK;
 
 /// f32 → bf16 bits, round to nearest even (NaN stays NaN).
 pub fn to_bf16(x: f32) -> u16 {
@@ -86,15 +85,13 @@ impl Bf16Matrix {
                 yt.resize(self.blocks * tile, 0.0);
             }
             let xp: &[u32] = xp;
-            let fast = has_avx512_bf16();
-            // Blocks go in pairs: one pass over the activations feeds two weight blocks.
-            let one = |(bp, ys): (usize, &mut [f32])| {
-                let b0 = 2 * bp;
-                let nb = (self.blocks - b0).min(2);
+            let fast = features().avx512_bf16;
+            let parallel = n * out * inp >= PARALLEL_WORK;
+            block_pairs(yt, tile, self.blocks, parallel, |b0, nb, ys| {
                 let wb = &self.packed[b0 * pairs * LANES..(b0 + nb) * pairs * LANES];
                 if fast {
                     #[cfg(target_arch = "x86_64")]
-                    // SAFETY: the CPU has AVX-512F and AVX-512 BF16 (checked by `fast`); `block`
+                    // SAFETY: the CPU has AVX-512F and AVX-512 BF16 (checked by `fast`); `blocks`
                     // checks the slice lengths itself.
                     unsafe {
                         avx512::blocks(wb, nb, xp, n, pairs, ys)
@@ -110,13 +107,7 @@ impl Bf16Matrix {
                         );
                     }
                 }
-            };
-            let work = &mut yt[..self.blocks * tile];
-            if n * out * inp >= 1 << 18 {
-                work.par_chunks_mut(2 * tile).enumerate().for_each(one);
-            } else {
-                work.chunks_mut(2 * tile).enumerate().for_each(one);
-            }
+            });
             for t in 0..n {
                 let yr = &mut y[t * out..(t + 1) * out];
                 for (b, chunk) in yr.chunks_mut(LANES).enumerate() {
@@ -126,17 +117,6 @@ impl Bf16Matrix {
             }
         });
     }
-}
-
-/// Token groups of the kernels: eights, then fours, then ones, in token order.
-pub(crate) fn groups(n: usize) -> impl Iterator<Item = (usize, usize)> {
-    let eights = n / 8 * 8;
-    let fours = eights + (n - eights) / 4 * 4;
-    (0..eights)
-        .step_by(8)
-        .map(|t| (t, 8))
-        .chain((eights..fours).step_by(4).map(|t| (t, 4)))
-        .chain((fours..n).map(|t| (t, 1)))
 }
 
 /// Activations as bf16 pairs, group by group: the group of `size` tokens starting at token
@@ -156,18 +136,6 @@ fn pack_activations(x: &[f32], n: usize, inp: usize, xp: &mut Vec<u32>) {
                 g[p * size + t] = lo | (hi << 16);
             }
         }
-    }
-}
-
-fn has_avx512_bf16() -> bool {
-    #[cfg(target_arch = "x86_64")]
-    {
-        std::arch::is_x86_feature_detected!("avx512f")
-            && std::arch::is_x86_feature_detected!("avx512bf16")
-    }
-    #[cfg(not(target_arch = "x86_64"))]
-    {
-        false
     }
 }
 
@@ -191,12 +159,14 @@ fn block_scalar(wb: &[u32], xp: &[u32], n: usize, pairs: usize, ys: &mut [f32]) 
 
 #[cfg(target_arch = "x86_64")]
 mod avx512 {
-    use super::{groups, LANES};
+    use crate::kernels::simd::{run_groups, GroupKernel, LANES};
     use std::arch::x86_64::*;
 
     /// `nb` (1 or 2) consecutive blocks of 16 output columns for every token, a token group at
     /// a time; outputs [nb][n][16].
-    #[target_feature(enable = "avx512f,avx512bf16")]
+    ///
+    /// # Safety
+    /// The CPU has AVX-512F and AVX-512 BF16.
     pub unsafe fn blocks(
         wb: &[u32],
         nb: usize,
@@ -211,54 +181,58 @@ mod avx512 {
                 && xp.len() >= n * pairs
                 && ys.len() >= nb * n * LANES
         );
-        for (t0, size) in groups(n) {
-            match (nb, size) {
-                (2, 8) => group::<8, 2>(wb, xp, t0, n, pairs, ys),
-                (2, 4) => group::<4, 2>(wb, xp, t0, n, pairs, ys),
-                (2, _) => group::<1, 2>(wb, xp, t0, n, pairs, ys),
-                (_, 8) => group::<8, 1>(wb, xp, t0, n, pairs, ys),
-                (_, 4) => group::<4, 1>(wb, xp, t0, n, pairs, ys),
-                _ => group::<1, 1>(wb, xp, t0, n, pairs, ys),
-            }
-        }
+        let mut k = Blocks {
+            wb,
+            xp,
+            n,
+            pairs,
+            ys,
+        };
+        // SAFETY: the features are the caller's promise; the lengths are asserted above.
+        unsafe { run_groups(&mut k, nb, n) }
     }
 
-    #[target_feature(enable = "avx512f,avx512bf16")]
-    unsafe fn group<const T: usize, const B: usize>(
-        wb: &[u32],
-        xp: &[u32],
-        t0: usize,
+    struct Blocks<'a> {
+        wb: &'a [u32],
+        xp: &'a [u32],
         n: usize,
         pairs: usize,
-        ys: &mut [f32],
-    ) {
-        let mut acc = [[_mm512_setzero_ps(); T]; B];
-        // SAFETY (whole loop): `blocks` checked that wb holds B·pairs·16 values and xp the
-        // group's pairs·T values starting at t0·pairs; the pointers stay inside those ranges.
-        let x = xp.as_ptr().add(t0 * pairs);
-        let w = wb.as_ptr();
-        for p in 0..pairs {
-            let mut wv: [__m512bh; B] = [std::mem::zeroed(); B];
-            for (k, v) in wv.iter_mut().enumerate() {
-                *v = std::mem::transmute::<__m512i, __m512bh>(_mm512_loadu_si512(
-                    w.add((k * pairs + p) * LANES) as *const _,
-                ));
-            }
-            let xr = x.add(p * T);
-            #[allow(clippy::needless_range_loop)]
-            // t walks the activations and accumulators together
-            for t in 0..T {
-                let xv =
-                    std::mem::transmute::<__m512i, __m512bh>(_mm512_set1_epi32(*xr.add(t) as i32));
-                for (ak, &wk) in acc.iter_mut().zip(&wv) {
-                    ak[t] = _mm512_dpbf16_ps(ak[t], xv, wk);
+        ys: &'a mut [f32],
+    }
+
+    impl GroupKernel for Blocks<'_> {
+        #[target_feature(enable = "avx512f,avx512bf16")]
+        unsafe fn group<const T: usize, const B: usize>(&mut self, t0: usize) {
+            let (n, pairs) = (self.n, self.pairs);
+            let mut acc = [[_mm512_setzero_ps(); T]; B];
+            // SAFETY (whole loop): `blocks` checked that wb holds B·pairs·16 values and xp the
+            // group's pairs·T values starting at t0·pairs; the pointers stay inside those ranges.
+            let x = self.xp.as_ptr().add(t0 * pairs);
+            let w = self.wb.as_ptr();
+            for p in 0..pairs {
+                let mut wv: [__m512bh; B] = [std::mem::zeroed(); B];
+                for (k, v) in wv.iter_mut().enumerate() {
+                    *v = std::mem::transmute::<__m512i, __m512bh>(_mm512_loadu_si512(
+                        w.add((k * pairs + p) * LANES) as *const _,
+                    ));
+                }
+                let xr = x.add(p * T);
+                #[allow(clippy::needless_range_loop)]
+                // t walks the activations and accumulators together
+                for t in 0..T {
+                    let xv = std::mem::transmute::<__m512i, __m512bh>(_mm512_set1_epi32(
+                        *xr.add(t) as i32,
+                    ));
+                    for (ak, &wk) in acc.iter_mut().zip(&wv) {
+                        ak[t] = _mm512_dpbf16_ps(ak[t], xv, wk);
+                    }
                 }
             }
-        }
-        for (k, ak) in acc.iter().enumerate() {
-            for (t, a) in ak.iter().enumerate() {
-                let at = (k * n + t0 + t) * LANES;
-                _mm512_storeu_ps(ys[at..at + LANES].as_mut_ptr(), *a);
+            for (k, ak) in acc.iter().enumerate() {
+                for (t, a) in ak.iter().enumerate() {
+                    let at = (k * n + t0 + t) * LANES;
+                    _mm512_storeu_ps(self.ys[at..at + LANES].as_mut_ptr(), *a);
+                }
             }
         }
     }
