@@ -10,8 +10,10 @@
 //! 16 lanes each holding the four i8 of one row, low byte first: the operand layout of
 //! `vpdpbusd`. Activations are packed in token groups (see [`pack_activations`]).
 
+#[cfg(target_arch = "x86_64")]
+use super::simd::Blocks;
 pub use super::simd::LANES;
-use super::simd::{block_pairs, features, groups};
+use super::simd::{block_products, features, groups, BlockKernel};
 use super::PARALLEL_WORK;
 use rayon::prelude::*;
 
@@ -106,38 +108,8 @@ impl Int8Rows {
     /// acc[(b·n + t)·16 + l] = Σ_i q[b·16 + l][i]·(p_t[i] + 128) for every block b, vector t
     /// and lane l, with `xq` from [`pack_activations`] of n vectors of `cols` values. Exact.
     pub fn products(&self, xq: &[u32], n: usize, acc: &mut Vec<i32>) {
-        let (quads, blocks) = (self.quads, self.blocks);
-        assert!(xq.len() >= n * quads);
-        if n == 0 {
-            return;
-        }
-        let tile = n * LANES;
-        if acc.len() < blocks * tile {
-            acc.resize(blocks * tile, 0);
-        }
-        let fast = features().avx512_vnni;
         let parallel = n * self.rows * self.cols >= PARALLEL_WORK;
-        block_pairs(acc, tile, blocks, parallel, |b0, nb, ys| {
-            let wb = &self.packed[b0 * quads * LANES..(b0 + nb) * quads * LANES];
-            if fast {
-                #[cfg(target_arch = "x86_64")]
-                // SAFETY: the CPU has AVX-512F and AVX-512 VNNI (checked by `fast`); `blocks`
-                // checks the slice lengths itself.
-                unsafe {
-                    avx512::blocks(wb, nb, xq, n, quads, ys)
-                }
-            } else {
-                for k in 0..nb {
-                    block_portable(
-                        &wb[k * quads * LANES..(k + 1) * quads * LANES],
-                        xq,
-                        n,
-                        quads,
-                        &mut ys[k * tile..(k + 1) * tile],
-                    );
-                }
-            }
-        });
+        block_products::<Kernel>(&self.packed, self.blocks, self.quads, xq, n, acc, parallel);
     }
 }
 
@@ -202,100 +174,68 @@ pub fn pack_activations(
     }
 }
 
-/// The portable form of one block: per lane, Σ over quads of the four u8·i8 products.
-fn block_portable(wb: &[u32], xq: &[u32], n: usize, quads: usize, ys: &mut [i32]) {
-    for (t0, size) in groups(n) {
-        let g = &xq[t0 * quads..(t0 + size) * quads];
-        for t in 0..size {
-            for l in 0..LANES {
-                let mut acc = 0i32;
-                for k in 0..quads {
-                    let (wv, xv) = (wb[k * LANES + l], g[k * size + t]);
-                    for i in 0..4 {
-                        let a = ((xv >> (8 * i)) & 0xff) as i32;
-                        let b = ((wv >> (8 * i)) & 0xff) as u8 as i8 as i32;
-                        acc += a * b;
+/// The integer products: steps are quads of columns, outputs exact i32 sums.
+struct Kernel;
+
+impl BlockKernel for Kernel {
+    type Out = i32;
+
+    fn fast() -> bool {
+        features().avx512_vnni
+    }
+
+    /// Per lane, Σ over quads of the four u8·i8 products.
+    fn portable(wb: &[u32], xq: &[u32], n: usize, quads: usize, ys: &mut [i32]) {
+        for (t0, size) in groups(n) {
+            let g = &xq[t0 * quads..(t0 + size) * quads];
+            for t in 0..size {
+                for l in 0..LANES {
+                    let mut acc = 0i32;
+                    for k in 0..quads {
+                        let (wv, xv) = (wb[k * LANES + l], g[k * size + t]);
+                        for i in 0..4 {
+                            let a = ((xv >> (8 * i)) & 0xff) as i32;
+                            let b = ((wv >> (8 * i)) & 0xff) as u8 as i8 as i32;
+                            acc += a * b;
+                        }
                     }
+                    ys[(t0 + t) * LANES + l] = acc;
                 }
-                ys[(t0 + t) * LANES + l] = acc;
             }
         }
     }
-}
 
-#[cfg(target_arch = "x86_64")]
-mod avx512 {
-    use crate::kernels::simd::{run_groups, GroupKernel, LANES};
-    use std::arch::x86_64::*;
-
-    /// `nb` (1 or 2) consecutive blocks of 16 rows for every vector, a group at a time;
-    /// outputs [nb][n][16].
-    ///
-    /// # Safety
-    /// The CPU has AVX-512F and AVX-512 VNNI.
-    pub unsafe fn blocks(
-        wb: &[u32],
-        nb: usize,
-        xq: &[u32],
-        n: usize,
-        quads: usize,
-        ys: &mut [i32],
-    ) {
-        assert!(
-            (1..=2).contains(&nb)
-                && wb.len() >= nb * quads * LANES
-                && xq.len() >= n * quads
-                && ys.len() >= nb * n * LANES
-        );
-        let mut k = Blocks {
-            wb,
-            xq,
-            n,
-            quads,
-            ys,
-        };
-        // SAFETY: the features are the caller's promise; the lengths are asserted above.
-        unsafe { run_groups(&mut k, nb, n) }
-    }
-
-    struct Blocks<'a> {
-        wb: &'a [u32],
-        xq: &'a [u32],
-        n: usize,
-        quads: usize,
-        ys: &'a mut [i32],
-    }
-
-    impl GroupKernel for Blocks<'_> {
-        #[target_feature(enable = "avx512f,avx512vnni")]
-        unsafe fn group<const T: usize, const B: usize>(&mut self, t0: usize) {
-            let (n, quads) = (self.n, self.quads);
-            let mut acc = [[_mm512_setzero_si512(); T]; B];
-            // SAFETY (whole loop): `blocks` checked that wb holds B·quads·16 values and xq the
-            // group's quads·T values starting at t0·quads; the pointers stay inside those ranges.
-            let x = self.xq.as_ptr().add(t0 * quads);
-            let w = self.wb.as_ptr();
-            for k in 0..quads {
-                let mut wv = [_mm512_setzero_si512(); B];
-                for (b, v) in wv.iter_mut().enumerate() {
-                    *v = _mm512_loadu_si512(w.add((b * quads + k) * LANES) as *const _);
-                }
-                let xr = x.add(k * T);
-                #[allow(clippy::needless_range_loop)]
-                // t walks the activations and accumulators together
-                for t in 0..T {
-                    let xv = _mm512_set1_epi32(*xr.add(t) as i32);
-                    for (ab, &wb) in acc.iter_mut().zip(&wv) {
-                        // Unsigned bytes of the activations times signed bytes of the weights.
-                        ab[t] = _mm512_dpbusd_epi32(ab[t], xv, wb);
-                    }
+    /// One `vpdpbusd` per quad of columns, 16 rows and vector.
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx512f,avx512vnni")]
+    unsafe fn group<const T: usize, const B: usize>(b: &mut Blocks<'_, i32>, t0: usize) {
+        use std::arch::x86_64::*;
+        let (n, quads) = (b.n, b.steps);
+        let mut acc = [[_mm512_setzero_si512(); T]; B];
+        // SAFETY (whole body): `run_groups` checked that b.w holds B·quads·16 values, b.x the
+        // group's quads·T values from t0·quads and b.out B·n·16; the pointers stay inside.
+        let x = b.x.as_ptr().add(t0 * quads);
+        let w = b.w.as_ptr();
+        for k in 0..quads {
+            let mut wv = [_mm512_setzero_si512(); B];
+            for (j, v) in wv.iter_mut().enumerate() {
+                *v = _mm512_loadu_si512(w.add((j * quads + k) * LANES) as *const _);
+            }
+            let xr = x.add(k * T);
+            #[allow(clippy::needless_range_loop)]
+            // t walks the activations and accumulators together
+            for t in 0..T {
+                let xv = _mm512_set1_epi32(*xr.add(t) as i32);
+                for (ab, &wb) in acc.iter_mut().zip(&wv) {
+                    // Unsigned bytes of the activations times signed bytes of the weights.
+                    ab[t] = _mm512_dpbusd_epi32(ab[t], xv, wb);
                 }
             }
-            for (b, ab) in acc.iter().enumerate() {
-                for (t, a) in ab.iter().enumerate() {
-                    let at = (b * n + t0 + t) * LANES;
-                    _mm512_storeu_si512(self.ys[at..at + LANES].as_mut_ptr() as *mut _, *a);
-                }
+        }
+        for (j, ab) in acc.iter().enumerate() {
+            for (t, a) in ab.iter().enumerate() {
+                let at = (j * n + t0 + t) * LANES;
+                _mm512_storeu_si512(b.out[at..at + LANES].as_mut_ptr() as *mut _, *a);
             }
         }
     }
@@ -349,12 +289,20 @@ mod tests {
         for b in 0..s.blocks {
             let wb = &s.packed[b * s.quads * LANES..(b + 1) * s.quads * LANES];
             let mut ys = vec![0i32; tile];
-            block_portable(wb, &xq, n, s.quads, &mut ys);
+            Kernel::portable(wb, &xq, n, s.quads, &mut ys);
             #[cfg(target_arch = "x86_64")]
-            if features().avx512_vnni {
+            if Kernel::fast() {
                 let mut yv = vec![0i32; tile];
-                // SAFETY: the CPU has AVX-512F and VNNI; the slices have the sizes `blocks` checks.
-                unsafe { avx512::blocks(wb, 1, &xq, n, s.quads, &mut yv) };
+                let mut ops = Blocks {
+                    w: wb,
+                    nb: 1,
+                    x: &xq,
+                    n,
+                    steps: s.quads,
+                    out: &mut yv,
+                };
+                // SAFETY: the CPU has AVX-512F and VNNI (`fast`); `run_groups` checks the sizes.
+                unsafe { crate::kernels::simd::run_groups::<Kernel>(&mut ops) };
                 assert_eq!(ys, yv, "block {b}");
             }
             assert_eq!(ys, all[b * tile..(b + 1) * tile], "block {b}");

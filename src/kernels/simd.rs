@@ -1,10 +1,10 @@
 //! The scaffolding the bf16 and int8 kernels share.
 //!
-//! Both keep a matrix as blocks of 16 output lanes (one 512-bit vector of 32-bit values) and
-//! both walk the activations in token groups; both pick their AVX-512 form at run time. Written
-//! once here: the CPU features (detected once per process), the token groups, the walk over
-//! pairs of blocks, and the dispatch from a (blocks, group size) pair to a kernel compiled for
-//! those constants.
+//! Both keep a matrix as blocks of 16 output lanes (one 512-bit vector of 32-bit values), both
+//! walk the activations in token groups, and both pick their AVX-512 form at run time. Written
+//! once here: the CPU features (detected once per process), the token groups, the tasks over
+//! pairs of blocks, and the dispatch from (blocks, group size) to a kernel compiled for those
+//! constants. A kernel itself ([`BlockKernel`]) is only its portable loop and its AVX-512 loop.
 
 use rayon::prelude::*;
 use std::sync::OnceLock;
@@ -56,20 +56,90 @@ pub fn groups(n: usize) -> impl Iterator<Item = (usize, usize)> {
         .chain((fours..n).map(|t| (t, 1)))
 }
 
-/// Calls `pair(b0, nb, out)` for the weight blocks in pairs, b0 = 0, 2, 4, … with nb = 2 (1 for
-/// an odd last block): one pass over the activations then feeds two weight blocks. `out` holds
-/// [blocks][n][LANES] values, `tile` = n·LANES of them per block (tile > 0); each call gets
-/// the tiles of its blocks. The pairs run on the rayon pool when `parallel`.
-pub fn block_pairs<T: Send>(
-    out: &mut [T],
-    tile: usize,
+/// A kernel over weight blocks of 16 lanes: each block holds `steps`·16 packed weights
+/// ([step][lane]), each token `steps` packed activations (in token groups, see [`groups`]), and
+/// each (block, token) pair gives 16 outputs.
+pub trait BlockKernel {
+    /// The output values (f32 sums, or exact i32 sums).
+    type Out: Copy + Default + Send + Sync;
+
+    /// Whether this CPU runs [`BlockKernel::group`].
+    fn fast() -> bool;
+
+    /// The portable form of one block `w` for every token of `x`: outputs [n][16].
+    fn portable(w: &[u32], x: &[u32], n: usize, steps: usize, out: &mut [Self::Out]);
+
+    /// The AVX-512 form for the T tokens from `t0` and the B blocks of `b`, compiled once per
+    /// token-group size T (8, 4 or 1) and block count B (1 or 2).
+    ///
+    /// # Safety
+    /// [`BlockKernel::fast`] is true on this CPU.
+    #[cfg(target_arch = "x86_64")]
+    unsafe fn group<const T: usize, const B: usize>(b: &mut Blocks<'_, Self::Out>, t0: usize);
+}
+
+/// The operands of one task: `nb` (1 or 2) consecutive weight blocks `w`, the packed
+/// activations `x` of `n` tokens, and their outputs `out`, [nb][n][16].
+#[cfg(target_arch = "x86_64")]
+pub struct Blocks<'a, T> {
+    pub w: &'a [u32],
+    pub nb: usize,
+    pub x: &'a [u32],
+    pub n: usize,
+    pub steps: usize,
+    pub out: &'a mut [T],
+}
+
+/// out[(b·n + t)·16 + l] = the kernel's output for block b, token t and lane l, for every
+/// block of `packed` ([blocks][steps][16]) and the `n` tokens of `x`; `out` grows as needed.
+///
+/// The blocks go in pairs, one task each: one pass over the activations feeds two weight
+/// blocks. The tasks run on the rayon pool when `parallel`. Each output is written by one
+/// task in a fixed order, so the result does not depend on the thread count.
+pub fn block_products<K: BlockKernel>(
+    packed: &[u32],
     blocks: usize,
+    steps: usize,
+    x: &[u32],
+    n: usize,
+    out: &mut Vec<K::Out>,
     parallel: bool,
-    pair: impl Fn(usize, usize, &mut [T]) + Sync + Send,
 ) {
-    let one = |(bp, ys): (usize, &mut [T])| {
+    assert!(packed.len() >= blocks * steps * LANES && x.len() >= n * steps);
+    let tile = n * LANES;
+    if tile == 0 {
+        return;
+    }
+    if out.len() < blocks * tile {
+        out.resize(blocks * tile, K::Out::default());
+    }
+    let fast = K::fast();
+    let one = |(bp, ys): (usize, &mut [K::Out])| {
         let b0 = 2 * bp;
-        pair(b0, (blocks - b0).min(2), ys)
+        let nb = (blocks - b0).min(2);
+        let w = &packed[b0 * steps * LANES..(b0 + nb) * steps * LANES];
+        if fast {
+            #[cfg(target_arch = "x86_64")]
+            {
+                let mut b = Blocks {
+                    w,
+                    nb,
+                    x,
+                    n,
+                    steps,
+                    out: ys,
+                };
+                // SAFETY: `fast` says the CPU runs `group`; the operands hold nb blocks of
+                // steps·16 weights, n·steps activations and nb·n·16 outputs (asserted and
+                // sliced above).
+                unsafe { run_groups::<K>(&mut b) }
+            }
+        } else {
+            for k in 0..nb {
+                let wk = &w[k * steps * LANES..(k + 1) * steps * LANES];
+                K::portable(wk, x, n, steps, &mut ys[k * tile..(k + 1) * tile]);
+            }
+        }
     };
     let work = &mut out[..blocks * tile];
     if parallel {
@@ -79,34 +149,29 @@ pub fn block_pairs<T: Send>(
     }
 }
 
-/// A kernel compiled for each token-group size T (8, 4 or 1) and block count B (1 or 2), with
-/// its operands held by the implementing type.
-#[cfg(target_arch = "x86_64")]
-pub trait GroupKernel {
-    /// Writes the outputs of B blocks for the T tokens starting at `t0`.
-    ///
-    /// # Safety
-    /// The CPU has the features the implementation is compiled for, and the operands hold the
-    /// values the group reads and writes (checked by the caller of [`run_groups`]).
-    unsafe fn group<const T: usize, const B: usize>(&mut self, t0: usize);
-}
-
-/// Runs `kernel` over every token group of `n` tokens for `nb` (1 or 2) blocks.
+/// Runs `K::group` over every token group of `b`; panics unless `b`'s slices hold what its
+/// fields say.
 ///
 /// # Safety
-/// As [`GroupKernel::group`], for every group of `n`.
+/// `K::fast()` is true on this CPU.
 #[cfg(target_arch = "x86_64")]
-pub unsafe fn run_groups<K: GroupKernel>(kernel: &mut K, nb: usize, n: usize) {
-    for (t0, size) in groups(n) {
-        // SAFETY: passed on from the caller.
+pub unsafe fn run_groups<K: BlockKernel>(b: &mut Blocks<'_, K::Out>) {
+    assert!(
+        (1..=2).contains(&b.nb)
+            && b.w.len() >= b.nb * b.steps * LANES
+            && b.x.len() >= b.n * b.steps
+            && b.out.len() >= b.nb * b.n * LANES
+    );
+    for (t0, size) in groups(b.n) {
+        // SAFETY: passed on from the caller; the lengths are asserted above.
         unsafe {
-            match (nb, size) {
-                (2, 8) => kernel.group::<8, 2>(t0),
-                (2, 4) => kernel.group::<4, 2>(t0),
-                (2, _) => kernel.group::<1, 2>(t0),
-                (_, 8) => kernel.group::<8, 1>(t0),
-                (_, 4) => kernel.group::<4, 1>(t0),
-                _ => kernel.group::<1, 1>(t0),
+            match (b.nb, size) {
+                (2, 8) => K::group::<8, 2>(b, t0),
+                (2, 4) => K::group::<4, 2>(b, t0),
+                (2, _) => K::group::<1, 2>(b, t0),
+                (_, 8) => K::group::<8, 1>(b, t0),
+                (_, 4) => K::group::<4, 1>(b, t0),
+                _ => K::group::<1, 1>(b, t0),
             }
         }
     }

@@ -27,6 +27,9 @@
 //! the penalty itself), and the same argument holds after it. When the screen leaves more
 //! than a quarter of the vocabulary (or the hidden vector is zero or not finite), every f32
 //! logit is computed instead; either way the token is the one the full f32 row would give.
+//!
+//! The rounding and the integer products are `crate::kernels::int8`; this module holds the
+//! bounds and the decision, which are what make the pick equal to the f32 argmax.
 
 use crate::kernels::dense::dot;
 use crate::kernels::int8::{pack_activations, Int8Rows, Rounded, LANES, MAX_COLS};
@@ -360,6 +363,33 @@ mod tests {
         x
     }
 
+    /// A head, its hidden vectors and its screen, after one unpenalised pick into `out`.
+    struct Case {
+        w: Vec<f32>,
+        x: Vec<f32>,
+        screen: Screen,
+        scratch: Scratch,
+        out: Vec<u32>,
+    }
+
+    impl Case {
+        fn picked(rows: usize, cols: usize, n: usize, g: &mut Gen) -> Case {
+            let w = head(rows, cols, g);
+            let x = hidden(&w, n, cols, g);
+            let screen = Screen::new(&w, rows, cols).expect("screen");
+            let mut scratch = Scratch::default();
+            let mut out = Vec::new();
+            screen.pick(&w, &x, n, None, &mut scratch, &mut out);
+            Case {
+                w,
+                x,
+                screen,
+                scratch,
+                out,
+            }
+        }
+    }
+
     /// The reference: every f32 logit, the penalty, then the first maximum (torch.argmax's tie
     /// rule, PyTorch documentation; the penalty as transformers' RepetitionPenaltyLogitsProcessor).
     fn reference(
@@ -383,12 +413,13 @@ mod tests {
     fn pick_is_the_argmax_of_every_f32_logit() {
         let mut g = Gen(0x9e37_79b9_7f4a_7c15);
         for &(rows, cols, n) in &[(1000, 67, 11), (333, 64, 5), (40, 6, 6), (4099, 130, 9)] {
-            let w = head(rows, cols, &mut g);
-            let x = hidden(&w, n, cols, &mut g);
-            let screen = Screen::new(&w, rows, cols).expect("screen");
-            let mut scratch = Scratch::default();
-            let mut out = Vec::new();
-            screen.pick(&w, &x, n, None, &mut scratch, &mut out);
+            let Case {
+                w,
+                x,
+                screen,
+                mut scratch,
+                mut out,
+            } = Case::picked(rows, cols, n, &mut g);
             for t in 0..n {
                 let want = reference(&w, &x[t * cols..(t + 1) * cols], rows, cols, None);
                 assert_eq!(out[t], want, "rows {rows} cols {cols} vector {t}");
@@ -424,12 +455,13 @@ mod tests {
     fn bounds_hold_and_screen_out_most_rows() {
         let mut g = Gen(42);
         let (rows, cols, n) = (4099, 130, 9);
-        let w = head(rows, cols, &mut g);
-        let x = hidden(&w, n, cols, &mut g);
-        let screen = Screen::new(&w, rows, cols).expect("screen");
-        let mut scratch = Scratch::default();
-        let mut out = Vec::new();
-        screen.pick(&w, &x, n, None, &mut scratch, &mut out);
+        let Case {
+            w,
+            x,
+            screen,
+            scratch,
+            ..
+        } = Case::picked(rows, cols, n, &mut g);
         let mut rounded = Vec::new();
         pack_activations(&x, n, cols, &mut Vec::new(), &mut rounded);
         for (t, r) in rounded.iter().enumerate() {

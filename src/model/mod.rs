@@ -5,8 +5,10 @@
 //!
 //! The arithmetic under the decoder (matrix products, the bf16 and 8-bit kernels) lives in
 //! `crate::kernels`, which knows nothing of models; the modules here import it, never the
-//! other way round. Within this module the imports run one way too: config ← names ← weights,
-//! lora; kernels ← linear, head ← decoder.
+//! other way round. Within this module the imports run one way too: `names` and `rope` use
+//! `config`; `weights` uses `config` and `names`; `lora` uses `names`; `linear` and `head`
+//! use only the kernels; `decoder` uses all of `config`, `names`, `rope`, `cache`, `linear`
+//! and `head`; nothing uses `decoder` but this file.
 
 pub mod cache;
 pub mod config;

@@ -184,7 +184,7 @@ pub(super) fn parse_activation(c: &Cfg, key: &str, name: &str, gemma: bool) -> R
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::config::tests::{base, spec, with};
+    use crate::model::config::spec::tests::{base, spec, with};
     use serde_json::json;
 
     #[test]

@@ -2,7 +2,7 @@
 //! applies under greedy decoding (docs/model-formats.md §1.4, §3.2).
 
 use super::json::Cfg;
-use super::ModelSpec;
+use super::spec::ModelSpec;
 use crate::error::{Error, Result};
 use serde_json::Value;
 use std::path::Path;
@@ -97,7 +97,7 @@ impl GenerationDefaults {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::config::tests::{base, spec, with};
+    use crate::model::config::spec::tests::{base, spec, with};
     use serde_json::json;
 
     #[test]

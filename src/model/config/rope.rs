@@ -3,8 +3,8 @@
 //! `rope_scaling` and top-level keys (docs/model-formats.md §1.2, §2.3; transformers 5.24.0
 //! `modeling_rope_utils.py`). The frequencies themselves are computed in `crate::model::rope`.
 
+use super::family::Family;
 use super::json::Cfg;
-use super::Family;
 use crate::error::{Error, Result};
 use serde_json::{Map, Value};
 
@@ -242,7 +242,7 @@ fn rope_err(c: &Cfg, field: &str) -> Error {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::model::config::tests::{base, spec, with};
+    use crate::model::config::spec::tests::{base, spec, with};
     use serde_json::json;
 
     #[test]

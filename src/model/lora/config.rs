@@ -9,6 +9,9 @@ use regex::Regex;
 use serde_json::Value;
 use std::path::Path;
 
+/// The config file peft writes.
+pub const CONFIG_FILE: &str = "adapter_config.json";
+
 /// Default `target_modules` when the config has null: peft's
 /// `TRANSFORMERS_MODELS_TO_LORA_TARGET_MODULES_MAPPING` entry for llama, mistral, qwen2, qwen3,
 /// gemma and gemma2 (`peft/utils/constants.py`).
@@ -497,7 +500,7 @@ mod tests {
         for (k, v) in extra.as_object().unwrap() {
             c[k] = v.clone();
         }
-        parse_config(Path::new(super::super::CONFIG_FILE), &c).unwrap()
+        parse_config(Path::new(CONFIG_FILE), &c).unwrap()
     }
 
     #[test]

@@ -3,14 +3,40 @@
 //! tensor changes (docs/model-formats.md §5.3–§5.4; peft 0.21.2
 //! `peft/tuners/lora/{layer,variants,dora}.py`).
 
+use super::adapter::Adapter;
 use super::config::{suffix_match, Config, Targets};
-use super::tensors::LoraModule;
-use super::{Adapter, MergeSummary, MergedModule, ModuleKind, WEIGHTS_FILE};
+use super::tensors::{LoraModule, ModuleKind, WEIGHTS_FILE};
 use crate::error::{Error, Result};
 use crate::model::names::{self, EMBED, EMBED_MODULE_LEAF, HEAD_MODULE, LM_HEAD};
 use candle_core::{DType, Tensor};
 use std::collections::{BTreeMap, BTreeSet, HashMap};
 use std::path::Path;
+
+/// One merged module, for run.json.
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct MergedModule {
+    pub name: String,
+    pub kind: ModuleKind,
+    pub rank: usize,
+    pub alpha: f64,
+    pub scaling: f64,
+    pub dora: bool,
+    /// The base tensor that received ΔW (the embeddings for an `lm_head` LoRA on a tied model).
+    pub into: String,
+}
+
+/// What the merge did (for run.json and messages).
+#[derive(Debug, Clone, PartialEq, serde::Serialize)]
+pub struct MergeSummary {
+    pub modules_merged: usize,
+    /// Base tensors overwritten (or added) by full copies from the adapter, sorted.
+    pub replaced: Vec<String>,
+    pub modules: Vec<MergedModule>,
+    /// `lm_head.weight` was added to the map (a modules_to_save copy untied the embeddings).
+    pub untied: bool,
+    /// An `lm_head` LoRA or copy went into the shared embedding tensor of a tied model.
+    pub head_merged_into_embeddings: bool,
+}
 
 /// One planned change, checked against the base before anything is modified.
 enum Step {

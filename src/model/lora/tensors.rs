@@ -3,16 +3,34 @@
 //! (docs/model-formats.md §5.2; peft 0.21.2 `peft/utils/save_and_load.py`).
 
 use super::config::Config;
-use super::{ModuleKind, WEIGHTS_FILE};
 use crate::error::{Error, Result};
 use candle_core::{DType, Tensor};
 use std::collections::{BTreeMap, HashMap};
 use std::path::Path;
 
+/// The weights file peft writes.
+pub const WEIGHTS_FILE: &str = "adapter_model.safetensors";
+
 /// Prefix peft puts before every checkpoint name in an adapter file.
 pub(super) const KEY_PREFIX: &str = "base_model.model.";
 
 /// One adapted module: its f32 LoRA factors and resolved scaling.
+/// Whether a LoRA module wraps an nn.Linear or an nn.Embedding.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ModuleKind {
+    Linear,
+    Embedding,
+}
+
+impl serde::Serialize for ModuleKind {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> std::result::Result<S::Ok, S::Error> {
+        s.serialize_str(match self {
+            ModuleKind::Linear => "linear",
+            ModuleKind::Embedding => "embedding",
+        })
+    }
+}
+
 #[derive(Debug, Clone)]
 pub(super) struct LoraModule {
     pub(super) kind: ModuleKind,

@@ -2,8 +2,10 @@
 //! file and field), what the merge computes (checked against the published formulas), and that
 //! a failed merge leaves the weights untouched.
 
+use super::adapter::PICKLE_FILE;
 use super::tensors::KEY_PREFIX;
 use super::*;
+use crate::error::Result;
 use crate::model::names::{EMBED, LM_HEAD};
 use candle_core::{Device, Tensor};
 use serde_json::{json, Value};
