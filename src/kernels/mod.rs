@@ -9,7 +9,9 @@
 //! - [`dense`]: f32 weights in 64-column panels, the product over panels, and `dot`.
 //! - [`bf16`]: the optional bf16 weight format and its products.
 //! - [`int8`]: 8-bit rows and activations and their exact integer products (the head screen).
-//! - `simd`: what the bf16 and int8 kernels share (CPU features, token groups, block pairs).
+//! - `simd`: the AVX-512 scaffolding written once: CPU features (detected once, used by all
+//!   three), and for bf16 and int8 the token groups, the tasks over block pairs and the
+//!   dispatch to kernels compiled per group size.
 
 pub mod bf16;
 pub mod dense;

@@ -73,7 +73,8 @@ pub trait BlockKernel {
     /// token-group size T (8, 4 or 1) and block count B (1 or 2).
     ///
     /// # Safety
-    /// [`BlockKernel::fast`] is true on this CPU.
+    /// [`BlockKernel::fast`] is true on this CPU, and `b`'s slices hold what its fields say
+    /// ([`run_groups`], the only caller, checks them).
     #[cfg(target_arch = "x86_64")]
     unsafe fn group<const T: usize, const B: usize>(b: &mut Blocks<'_, Self::Out>, t0: usize);
 }

@@ -16,8 +16,9 @@
 //! every sequence. Each token's arithmetic is the same whatever else is in the call, so batched
 //! output equals batch-1 output.
 //!
-//! Linear weights are [out, in] row-major (y = x·Wᵀ + b); q, k, v (and gate, up) are stacked into
-//! one matrix at load time, which changes no dot product.
+//! Linear weights are [out, in] (y = x·Wᵀ + b); q, k, v (and gate, up) are stacked into one
+//! matrix at load time, which changes no dot product (`linear`). The KV cache is `cache`, RoPE
+//! `rope`, the greedy pick at the output `head`; the products themselves are `crate::kernels`.
 
 use crate::error::{Error, Result};
 use crate::kernels::dense::{dot, matmul_t};

@@ -30,9 +30,10 @@ impl WeightFormat {
     }
 }
 
-/// A linear layer. `w` holds the checkpoint's [out, inp] matrix in panels of 64 output columns
-/// (`crate::kernels::dense`): the layout the products read front to back without repacking the
-/// weights on every call (repacking would read and write every weight once more per step).
+/// A linear layer. `w` holds the checkpoint's [out, inp] matrix in the layout its kernel reads
+/// front to back without repacking on every call (repacking would read and write every weight
+/// once more per step): f32 in panels of 64 output columns (`crate::kernels::dense`), bf16 in
+/// blocks of 16 (`crate::kernels::bf16`).
 pub struct Linear {
     w: LinearWeights,
     pub out: usize,

@@ -336,7 +336,8 @@ pub(super) mod tests {
         v
     }
 
-    // Class defaults below are from transformers 5.24.0 configuration_*.py (docs/model-formats.md §1.2).
+    // Class defaults below are from transformers 5.24.0 configuration_*.py
+    // (docs/model-formats.md §1.2).
     #[test]
     fn head_dim_and_kv_head_defaults_per_family() {
         assert_eq!(spec(base("llama")).unwrap().head_dim, 16);

@@ -18,7 +18,8 @@ pub const CONFIG_FILE: &str = "adapter_config.json";
 const DEFAULT_TARGETS: [&str; 2] = ["q_proj", "v_proj"];
 
 /// `init_lora_weights` values whose adapters assume a base modified at init
-/// (docs/model-formats.md §5.5). Converted adapters carry `init_lora_weights: true` and merge normally.
+/// (docs/model-formats.md §5.5). Converted adapters carry `init_lora_weights: true` and merge
+/// normally.
 const RESIDUAL_INITS: [&str; 5] = ["pissa", "olora", "corda", "loftq", "lora_ga"];
 
 /// Config fields that switch peft to another LoRA variant (`is_lora_variant` in

@@ -4,7 +4,8 @@
 //! The rules follow peft 0.21.2 (`peft/tuners/lora/{config,layer,variants,dora,model}.py`,
 //! `peft/utils/{save_and_load,other}.py`, `peft/tuners/tuners_utils.py`) as summarised in
 //! docs/model-formats.md §5, and the tests compare the result with peft's own
-//! `PeftModel.from_pretrained(base, dir).merge_and_unload()` (tests/reference/make_lora_fixtures.py).
+//! `PeftModel.from_pretrained(base, dir).merge_and_unload()`
+//! (tests/reference/make_lora_fixtures.py).
 //!
 //! What the merge does, in order:
 //! 1. **Replacements.** Every non-LoRA tensor of the adapter (a `modules_to_save` copy, a bias
