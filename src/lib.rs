@@ -17,6 +17,7 @@ pub mod formats;
 pub mod fsutil;
 pub mod grade;
 pub mod interrupt;
+pub mod kernels;
 pub mod model;
 pub mod policy;
 pub mod report;

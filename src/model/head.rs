@@ -27,26 +27,24 @@
 //! the penalty itself), and the same argument holds after it. When the screen leaves more
 //! than a quarter of the vocabulary (or the hidden vector is zero or not finite), every f32
 //! logit is computed instead; either way the token is the one the full f32 row would give.
+//!
+//! The rounding and the integer products are `crate::kernels::int8`; this module holds the
+//! bounds and the decision, which are what make the pick equal to the f32 argmax.
 
-use crate::model::bf16::groups;
+use crate::kernels::dense::dot;
+use crate::kernels::int8::{pack_activations, Int8Rows, Rounded, LANES, MAX_COLS};
 use rayon::prelude::*;
 
-const LANES: usize = 16;
 /// Unit roundoff of f32.
 const F32_UNIT_ROUNDOFF: f64 = 1.0 / 16_777_216.0;
-/// The screen's integer sums must fit an i32: up to 255·127 per product, and 128·127 per
-/// column more while the +128 is taken off.
-const MAX_COLS: usize = (i32::MAX as usize) / (383 * 127);
 
 /// The output head's rows in 8 bits with their error terms, next to the f32 rows.
 pub struct Screen {
     rows: usize,
     cols: usize,
-    quads: usize,
     blocks: usize,
-    /// [block][quad][lane]: four int8 weights of row block·16 + lane, columns 4·quad.., low
-    /// byte first (the operand layout of `vpdpbusd`).
-    packed: Vec<u32>,
+    /// The rows in 8 bits (`crate::kernels::int8`).
+    int8: Int8Rows,
     scale: Vec<f32>,
     /// Σ_i q_ji, to undo the +128 that makes the activations unsigned.
     qsum: Vec<i32>,
@@ -69,14 +67,6 @@ pub struct Scratch {
 struct TokenScratch {
     candidates: Vec<u32>,
     logits: Vec<f32>,
-}
-
-/// What one hidden vector contributes to the bounds.
-#[derive(Debug, Clone, Copy)]
-struct Rounded {
-    tau: f32,
-    norm_x: f64,
-    norm_err: f64,
 }
 
 /// The smallest f32 not below `v`.
@@ -106,60 +96,26 @@ impl Screen {
         if cols == 0 || cols > MAX_COLS || w.len() < rows * cols {
             return None;
         }
-        let quads = cols.div_ceil(4);
-        let blocks = rows.div_ceil(LANES);
         let n = cols as f64 * F32_UNIT_ROUNDOFF;
         let gamma = n / (1.0 - n);
-        let mut packed = vec![0u32; blocks * quads * LANES];
-        // Per row: scale, qsum, err_x, err_q.
-        let mut stats = vec![(0f32, 0i32, 0f32, 0f32); blocks * LANES];
-        packed
-            .par_chunks_mut(quads * LANES)
-            .zip(stats.par_chunks_mut(LANES))
-            .enumerate()
-            .for_each(|(b, (pk, st))| {
-                for (l, stat) in st.iter_mut().enumerate() {
-                    let j = b * LANES + l;
-                    if j >= rows {
-                        break;
-                    }
-                    let row = &w[j * cols..(j + 1) * cols];
-                    let max = row.iter().fold(0f32, |m, v| m.max(v.abs()));
-                    let s = max / 127.0;
-                    let (mut qsum, mut r2, mut w2, mut q2) = (0i32, 0f64, 0f64, 0f64);
-                    for (i, &v) in row.iter().enumerate() {
-                        let q = if s > 0.0 {
-                            (v / s).round().clamp(-127.0, 127.0) as i32
-                        } else {
-                            0
-                        };
-                        let r = v as f64 - s as f64 * q as f64;
-                        r2 += r * r;
-                        w2 += v as f64 * v as f64;
-                        q2 += (q * q) as f64;
-                        qsum += q;
-                        pk[(i / 4) * LANES + l] |= ((q as u8) as u32) << (8 * (i % 4));
-                    }
-                    // The f64 sums of at most 2^16 terms are within 1e-11 relative.
-                    let slack = 1.0 + 1e-9;
-                    *stat = (
-                        s,
-                        qsum,
-                        up((r2.sqrt() + gamma * w2.sqrt()) * slack),
-                        up(s as f64 * q2.sqrt() * slack),
-                    );
-                }
-            });
+        let (int8, stats) = Int8Rows::quantize(w, rows, cols);
+        // The f64 sums of at most 2^16 terms are within 1e-11 relative.
+        let slack = 1.0 + 1e-9;
         Some(Screen {
             rows,
             cols,
-            quads,
-            blocks,
-            packed,
-            scale: stats.iter().map(|s| s.0).collect(),
-            qsum: stats.iter().map(|s| s.1).collect(),
-            err_x: stats.iter().map(|s| s.2).collect(),
-            err_q: stats.iter().map(|s| s.3).collect(),
+            blocks: int8.blocks,
+            int8,
+            scale: stats.iter().map(|s| s.scale).collect(),
+            qsum: stats.iter().map(|s| s.qsum).collect(),
+            err_x: stats
+                .iter()
+                .map(|s| up((s.residual + gamma * s.norm_w) * slack))
+                .collect(),
+            err_q: stats
+                .iter()
+                .map(|s| up(s.scale as f64 * s.norm_q * slack))
+                .collect(),
         })
     }
 
@@ -175,7 +131,7 @@ impl Screen {
         scratch: &mut Scratch,
         out: &mut Vec<u32>,
     ) {
-        let (rows, cols, quads) = (self.rows, self.cols, self.quads);
+        let (rows, cols) = (self.rows, self.cols);
         assert!(w.len() >= rows * cols && x.len() >= n * cols);
         out.clear();
         if n == 0 {
@@ -183,41 +139,7 @@ impl Screen {
         }
         pack_activations(x, n, cols, &mut scratch.xq, &mut scratch.rounded);
         let rounded: &[Option<Rounded>] = &scratch.rounded;
-        let tile = n * LANES;
-        if scratch.acc.len() < self.blocks * tile {
-            scratch.acc.resize(self.blocks * tile, 0);
-        }
-        let xq: &[u32] = &scratch.xq;
-        let fast = has_avx512_vnni();
-        let one = |(bp, ys): (usize, &mut [i32])| {
-            let b0 = 2 * bp;
-            let nb = (self.blocks - b0).min(2);
-            let wb = &self.packed[b0 * quads * LANES..(b0 + nb) * quads * LANES];
-            if fast {
-                #[cfg(target_arch = "x86_64")]
-                // SAFETY: the CPU has AVX-512F and AVX-512 VNNI (checked by `fast`); `blocks`
-                // checks the slice lengths itself.
-                unsafe {
-                    avx512::blocks(wb, nb, xq, n, quads, ys)
-                }
-            } else {
-                for k in 0..nb {
-                    block_portable(
-                        &wb[k * quads * LANES..(k + 1) * quads * LANES],
-                        xq,
-                        n,
-                        quads,
-                        &mut ys[k * tile..(k + 1) * tile],
-                    );
-                }
-            }
-        };
-        let work = &mut scratch.acc[..self.blocks * tile];
-        if n * rows * cols >= 1 << 18 {
-            work.par_chunks_mut(2 * tile).enumerate().for_each(one);
-        } else {
-            work.chunks_mut(2 * tile).enumerate().for_each(one);
-        }
+        self.int8.products(&scratch.xq, n, &mut scratch.acc);
         scratch.per_token.resize_with(n, TokenScratch::default);
         let acc: &[i32] = &scratch.acc;
         out.resize(n, 0);
@@ -325,7 +247,7 @@ impl Screen {
         let mut best: Option<(u32, f32)> = None;
         for &j in &ts.candidates {
             let ju = j as usize;
-            let mut v = crate::model::decoder::dot(&w[ju * cols..(ju + 1) * cols], x);
+            let mut v = dot(&w[ju * cols..(ju + 1) * cols], x);
             if let Some((p, s)) = seen {
                 if s.get(ju).copied().unwrap_or(false) {
                     v = penalize(v, p);
@@ -352,7 +274,7 @@ fn full(
     logits: &mut Vec<f32>,
 ) -> u32 {
     logits.clear();
-    logits.extend((0..rows).map(|j| crate::model::decoder::dot(&w[j * cols..(j + 1) * cols], x)));
+    logits.extend((0..rows).map(|j| dot(&w[j * cols..(j + 1) * cols], x)));
     if let Some((p, s)) = seen {
         apply_repetition_penalty(logits, s, p);
     }
@@ -393,160 +315,6 @@ pub fn apply_repetition_penalty(scores: &mut [f32], seen: &[bool], p: f32) {
     for (s, &hit) in scores.iter_mut().zip(seen) {
         if hit {
             *s = penalize(*s, p);
-        }
-    }
-}
-
-/// Rounds each vector to 8 bits (p + 128, unsigned) in the kernels' group layout: the group of
-/// `size` vectors starting at t0 occupies `t0·quads .. (t0 + size)·quads`, quad k of vector t at
-/// `k·size + t`. Writes each vector's scale and norms to `rounded`, or None for a vector the
-/// screen cannot take (zero or not finite).
-fn pack_activations(
-    x: &[f32],
-    n: usize,
-    cols: usize,
-    xq: &mut Vec<u32>,
-    rounded: &mut Vec<Option<Rounded>>,
-) {
-    let quads = cols.div_ceil(4);
-    xq.clear();
-    // Padding columns hold p = 0 (byte 128) against zero weights.
-    xq.resize(n * quads, 0x8080_8080);
-    rounded.clear();
-    for (t0, size) in groups(n) {
-        let g = &mut xq[t0 * quads..(t0 + size) * quads];
-        for t in 0..size {
-            let row = &x[(t0 + t) * cols..(t0 + t + 1) * cols];
-            let max = row.iter().fold(0f32, |m, v| m.max(v.abs()));
-            if !(max.is_finite() && max > 0.0) {
-                rounded.push(None);
-                continue;
-            }
-            let tau = max / 127.0;
-            let (mut x2, mut e2) = (0f64, 0f64);
-            for (k, quad) in row.chunks(4).enumerate() {
-                let mut word = 0x8080_8080u32;
-                for (i, &v) in quad.iter().enumerate() {
-                    let p = (v / tau).round().clamp(-127.0, 127.0) as i32;
-                    let e = v as f64 - tau as f64 * p as f64;
-                    x2 += v as f64 * v as f64;
-                    e2 += e * e;
-                    word = (word & !(0xff << (8 * i))) | (((p + 128) as u32) << (8 * i));
-                }
-                g[k * size + t] = word;
-            }
-            let slack = 1.0 + 1e-9;
-            rounded.push(Some(Rounded {
-                tau,
-                norm_x: x2.sqrt() * slack,
-                norm_err: e2.sqrt() * slack,
-            }));
-        }
-    }
-}
-
-fn has_avx512_vnni() -> bool {
-    #[cfg(target_arch = "x86_64")]
-    {
-        std::arch::is_x86_feature_detected!("avx512f")
-            && std::arch::is_x86_feature_detected!("avx512vnni")
-    }
-    #[cfg(not(target_arch = "x86_64"))]
-    {
-        false
-    }
-}
-
-/// The portable form of one block: per lane, Σ over quads of the four u8·i8 products.
-fn block_portable(wb: &[u32], xq: &[u32], n: usize, quads: usize, ys: &mut [i32]) {
-    for (t0, size) in groups(n) {
-        let g = &xq[t0 * quads..(t0 + size) * quads];
-        for t in 0..size {
-            for l in 0..LANES {
-                let mut acc = 0i32;
-                for k in 0..quads {
-                    let (wv, xv) = (wb[k * LANES + l], g[k * size + t]);
-                    for i in 0..4 {
-                        let a = ((xv >> (8 * i)) & 0xff) as i32;
-                        let b = ((wv >> (8 * i)) & 0xff) as u8 as i8 as i32;
-                        acc += a * b;
-                    }
-                }
-                ys[(t0 + t) * LANES + l] = acc;
-            }
-        }
-    }
-}
-
-#[cfg(target_arch = "x86_64")]
-mod avx512 {
-    use super::{groups, LANES};
-    use std::arch::x86_64::*;
-
-    /// `nb` (1 or 2) consecutive blocks of 16 rows for every vector, a group at a time;
-    /// outputs [nb][n][16].
-    #[target_feature(enable = "avx512f,avx512vnni")]
-    pub unsafe fn blocks(
-        wb: &[u32],
-        nb: usize,
-        xq: &[u32],
-        n: usize,
-        quads: usize,
-        ys: &mut [i32],
-    ) {
-        assert!(
-            (1..=2).contains(&nb)
-                && wb.len() >= nb * quads * LANES
-                && xq.len() >= n * quads
-                && ys.len() >= nb * n * LANES
-        );
-        for (t0, size) in groups(n) {
-            match (nb, size) {
-                (2, 8) => group::<8, 2>(wb, xq, t0, n, quads, ys),
-                (2, 4) => group::<4, 2>(wb, xq, t0, n, quads, ys),
-                (2, _) => group::<1, 2>(wb, xq, t0, n, quads, ys),
-                (_, 8) => group::<8, 1>(wb, xq, t0, n, quads, ys),
-                (_, 4) => group::<4, 1>(wb, xq, t0, n, quads, ys),
-                _ => group::<1, 1>(wb, xq, t0, n, quads, ys),
-            }
-        }
-    }
-
-    #[target_feature(enable = "avx512f,avx512vnni")]
-    unsafe fn group<const T: usize, const B: usize>(
-        wb: &[u32],
-        xq: &[u32],
-        t0: usize,
-        n: usize,
-        quads: usize,
-        ys: &mut [i32],
-    ) {
-        let mut acc = [[_mm512_setzero_si512(); T]; B];
-        // SAFETY (whole loop): `blocks` checked that wb holds B·quads·16 values and xq the
-        // group's quads·T values starting at t0·quads; the pointers stay inside those ranges.
-        let x = xq.as_ptr().add(t0 * quads);
-        let w = wb.as_ptr();
-        for k in 0..quads {
-            let mut wv = [_mm512_setzero_si512(); B];
-            for (b, v) in wv.iter_mut().enumerate() {
-                *v = _mm512_loadu_si512(w.add((b * quads + k) * LANES) as *const _);
-            }
-            let xr = x.add(k * T);
-            #[allow(clippy::needless_range_loop)]
-            // t walks the activations and accumulators together
-            for t in 0..T {
-                let xv = _mm512_set1_epi32(*xr.add(t) as i32);
-                for (ab, &wb) in acc.iter_mut().zip(&wv) {
-                    // Unsigned bytes of the activations times signed bytes of the weights.
-                    ab[t] = _mm512_dpbusd_epi32(ab[t], xv, wb);
-                }
-            }
-        }
-        for (b, ab) in acc.iter().enumerate() {
-            for (t, a) in ab.iter().enumerate() {
-                let at = (b * n + t0 + t) * LANES;
-                _mm512_storeu_si512(ys[at..at + LANES].as_mut_ptr() as *mut _, *a);
-            }
         }
     }
 }
@@ -595,6 +363,33 @@ mod tests {
         x
     }
 
+    /// A head, its hidden vectors and its screen, after one unpenalised pick into `out`.
+    struct Case {
+        w: Vec<f32>,
+        x: Vec<f32>,
+        screen: Screen,
+        scratch: Scratch,
+        out: Vec<u32>,
+    }
+
+    impl Case {
+        fn picked(rows: usize, cols: usize, n: usize, g: &mut Gen) -> Case {
+            let w = head(rows, cols, g);
+            let x = hidden(&w, n, cols, g);
+            let screen = Screen::new(&w, rows, cols).expect("screen");
+            let mut scratch = Scratch::default();
+            let mut out = Vec::new();
+            screen.pick(&w, &x, n, None, &mut scratch, &mut out);
+            Case {
+                w,
+                x,
+                screen,
+                scratch,
+                out,
+            }
+        }
+    }
+
     /// The reference: every f32 logit, the penalty, then the first maximum (torch.argmax's tie
     /// rule, PyTorch documentation; the penalty as transformers' RepetitionPenaltyLogitsProcessor).
     fn reference(
@@ -618,12 +413,13 @@ mod tests {
     fn pick_is_the_argmax_of_every_f32_logit() {
         let mut g = Gen(0x9e37_79b9_7f4a_7c15);
         for &(rows, cols, n) in &[(1000, 67, 11), (333, 64, 5), (40, 6, 6), (4099, 130, 9)] {
-            let w = head(rows, cols, &mut g);
-            let x = hidden(&w, n, cols, &mut g);
-            let screen = Screen::new(&w, rows, cols).expect("screen");
-            let mut scratch = Scratch::default();
-            let mut out = Vec::new();
-            screen.pick(&w, &x, n, None, &mut scratch, &mut out);
+            let Case {
+                w,
+                x,
+                screen,
+                mut scratch,
+                mut out,
+            } = Case::picked(rows, cols, n, &mut g);
             for t in 0..n {
                 let want = reference(&w, &x[t * cols..(t + 1) * cols], rows, cols, None);
                 assert_eq!(out[t], want, "rows {rows} cols {cols} vector {t}");
@@ -659,12 +455,13 @@ mod tests {
     fn bounds_hold_and_screen_out_most_rows() {
         let mut g = Gen(42);
         let (rows, cols, n) = (4099, 130, 9);
-        let w = head(rows, cols, &mut g);
-        let x = hidden(&w, n, cols, &mut g);
-        let screen = Screen::new(&w, rows, cols).expect("screen");
-        let mut scratch = Scratch::default();
-        let mut out = Vec::new();
-        screen.pick(&w, &x, n, None, &mut scratch, &mut out);
+        let Case {
+            w,
+            x,
+            screen,
+            scratch,
+            ..
+        } = Case::picked(rows, cols, n, &mut g);
         let mut rounded = Vec::new();
         pack_activations(&x, n, cols, &mut Vec::new(), &mut rounded);
         for (t, r) in rounded.iter().enumerate() {
@@ -680,7 +477,7 @@ mod tests {
                 screen.block_bounds(&scratch.acc, n, t, b, r, None, &mut lo, &mut hi);
                 for l in 0..LANES.min(rows - b * LANES) {
                     let j = b * LANES + l;
-                    let f = crate::model::decoder::dot(&w[j * cols..(j + 1) * cols], xt);
+                    let f = dot(&w[j * cols..(j + 1) * cols], xt);
                     assert!(
                         lo[l] <= f && f <= hi[l],
                         "vector {t} row {j}: {} <= {f} <= {}",
@@ -695,54 +492,6 @@ mod tests {
                 kept += hi.iter().filter(|&&h| h >= floor).count();
             }
             assert!(kept <= rows / 4, "vector {t} kept {kept} of {rows}");
-        }
-    }
-
-    /// The VNNI kernel (where the CPU has it) and the portable one against plain integer sums.
-    #[test]
-    fn kernels_give_the_exact_integer_products() {
-        let mut g = Gen(7);
-        let (rows, cols, n) = (37, 45, 13);
-        let w: Vec<f32> = (0..rows * cols).map(|_| g.next()).collect();
-        let x: Vec<f32> = (0..n * cols).map(|_| g.next()).collect();
-        let s = Screen::new(&w, rows, cols).expect("screen");
-        let mut xq = Vec::new();
-        pack_activations(&x, n, cols, &mut xq, &mut Vec::new());
-        let byte = |v: u32, i: usize| (v >> (8 * (i % 4))) & 0xff;
-        let want = |j: usize, t: usize| -> i32 {
-            let (b, l) = (j / LANES, j % LANES);
-            // Group layout of the activations (see pack_activations).
-            let (t0, size) = groups(n).find(|&(t0, size)| t < t0 + size).unwrap();
-            (0..cols)
-                .map(|i| {
-                    let k = i / 4;
-                    let wv = byte(s.packed[(b * s.quads + k) * LANES + l], i) as u8 as i8 as i32;
-                    let xv = byte(xq[t0 * s.quads + k * size + (t - t0)], i) as i32;
-                    wv * xv
-                })
-                .sum()
-        };
-        let tile = n * LANES;
-        for b in 0..s.blocks {
-            let wb = &s.packed[b * s.quads * LANES..(b + 1) * s.quads * LANES];
-            let mut ys = vec![0i32; tile];
-            block_portable(wb, &xq, n, s.quads, &mut ys);
-            #[cfg(target_arch = "x86_64")]
-            if has_avx512_vnni() {
-                let mut yv = vec![0i32; tile];
-                // SAFETY: the CPU has AVX-512F and VNNI; the slices have the sizes `blocks` checks.
-                unsafe { avx512::blocks(wb, 1, &xq, n, s.quads, &mut yv) };
-                assert_eq!(ys, yv, "block {b}");
-            }
-            for t in 0..n {
-                for l in 0..LANES.min(rows - b * LANES) {
-                    assert_eq!(
-                        ys[t * LANES + l],
-                        want(b * LANES + l, t),
-                        "block {b} t {t} l {l}"
-                    );
-                }
-            }
         }
     }
 }

@@ -1,39 +1,31 @@
 //! Loading a Hugging Face-layout model directory for CPU inference: config → spec
-//! (`config`), safetensors → f32 tensors by checkpoint name (`weights`), optional LoRA merge on
-//! that map, then the generic decoder (`decoder`).
+//! (`config`), safetensors → f32 tensors by checkpoint name (`weights`, names in `names`),
+//! optional LoRA merge on that map (`lora`), then the generic decoder (`decoder`, with its
+//! `cache`, `rope`, `linear` layers and the greedy pick at the output `head`).
+//!
+//! The arithmetic under the decoder (matrix products, the bf16 and 8-bit kernels) lives in
+//! `crate::kernels`, which knows nothing of models; the modules here import it, never the
+//! other way round. Within this module the imports run one way too: `names` and `rope` use
+//! `config`; `weights` uses `config` and `names`; `lora` uses `names`; `linear` and `head`
+//! use only the kernels; `decoder` uses all of `config`, `names`, `rope`, `cache`, `linear`
+//! and `head`; nothing uses `decoder` but this file.
 
-pub mod bf16;
+pub mod cache;
 pub mod config;
 pub mod decoder;
 pub mod head;
+mod linear;
 pub mod lora;
+pub mod names;
+pub mod rope;
 pub mod weights;
+
+pub use linear::WeightFormat;
 
 use crate::error::Result;
 use config::{GenerationDefaults, ModelSpec};
 use decoder::Decoder;
 use std::path::{Path, PathBuf};
-
-/// How the runner holds the weights of the matrix products.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, clap::ValueEnum)]
-pub enum WeightFormat {
-    /// f32, as the reference computes: answers equal the reference library's.
-    #[default]
-    F32,
-    /// bf16 weights and activations in the matrix products, f32 accumulation and everything
-    /// else f32: about 1.5x as fast on CPUs with AVX-512 BF16, an approximation of the model.
-    Bf16,
-}
-
-impl WeightFormat {
-    /// The run.json `compute_dtype`.
-    pub fn compute_dtype(self) -> &'static str {
-        match self {
-            WeightFormat::F32 => "f32",
-            WeightFormat::Bf16 => "bf16 matrix products (approximation), f32 elsewhere",
-        }
-    }
-}
 
 /// A model ready to generate, with what it was loaded from.
 pub struct LoadedModel {

@@ -3,20 +3,18 @@
 //!
 //! The map is the one place weights live before the decoder takes them: the LoRA merge
 //! (`crate::model::lora::merge`) edits it in place, so merging never holds a second full copy.
-//! Rules: model-formats.md §1.1 (files, index) and §1.3 (names, tied embeddings).
+//! Rules: docs/model-formats.md §1.1 (files, index) and §1.3 (names, tied embeddings).
 //! Every loaded tensor is checked for NaN and ±Inf ([`check_finite`]): a corrupt or diverged
 //! checkpoint is refused naming the file and the tensor instead of producing garbage answers.
 
 use crate::error::{Error, Result};
 use crate::model::config::ModelSpec;
+use crate::model::names::{self, EMBED, LM_HEAD};
 use candle_core::safetensors::Load;
 use candle_core::{DType, Device, Tensor};
 use safetensors::SafeTensors;
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
-
-pub const EMBED: &str = "model.embed_tokens.weight";
-pub const LM_HEAD: &str = "lm_head.weight";
 
 /// Checkpoint tensors in f32 by name, plus where they came from.
 pub struct Weights {
@@ -187,10 +185,10 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
     let file_of = |name: &str| files[owner.get(name).copied().unwrap_or(0)].clone();
     let config = dir.join("config.json");
 
-    let mut expected = spec.expected_tensors();
+    let mut expected = names::expected_tensors(spec);
     let has_head = owner.contains_key(LM_HEAD);
     let has_embed = owner.contains_key(EMBED);
-    // Tied-embedding rules (model-formats.md §1.3).
+    // Tied-embedding rules (docs/model-formats.md §1.3).
     let tied = if spec.tie_word_embeddings {
         if !has_embed && has_head {
             // Symmetric: the head serves as the embedding too.
@@ -381,7 +379,7 @@ mod tests {
     }
 
     /// A checkpoint re-saved as two shards with a `model.safetensors.index.json` (the layout
-    /// transformers writes, model-formats.md §1.1) and in f16 loads to the same tensors.
+    /// transformers writes, docs/model-formats.md §1.1) and in f16 loads to the same tensors.
     #[test]
     fn sharded_and_f16_checkpoints_load_to_the_same_tensors() {
         let src = llama_fixture();

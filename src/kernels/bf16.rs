@@ -12,9 +12,10 @@
 //! (k, k+1), 16 lanes each holding (w[k][j], w[k+1][j]) as two bf16 in one u32 (low half k),
 //! which is the operand layout of `vdpbf16ps`.
 
-use rayon::prelude::*;
-
-const LANES: usize = 16;
+#[cfg(target_arch = "x86_64")]
+use super::simd::Blocks;
+use super::simd::{block_products, features, groups, BlockKernel, LANES};
+use super::PARALLEL_WORK;
 
 /// f32 → bf16 bits, round to nearest even (NaN stays NaN).
 pub fn to_bf16(x: f32) -> u16 {
@@ -81,42 +82,9 @@ impl Bf16Matrix {
         }
         SCRATCH.with_borrow_mut(|(xp, yt)| {
             pack_activations(x, n, inp, xp);
+            let parallel = n * out * inp >= PARALLEL_WORK;
+            block_products::<Kernel>(&self.packed, self.blocks, pairs, xp, n, yt, parallel);
             let tile = n * LANES;
-            if yt.len() < self.blocks * tile {
-                yt.resize(self.blocks * tile, 0.0);
-            }
-            let xp: &[u32] = xp;
-            let fast = has_avx512_bf16();
-            // Blocks go in pairs: one pass over the activations feeds two weight blocks.
-            let one = |(bp, ys): (usize, &mut [f32])| {
-                let b0 = 2 * bp;
-                let nb = (self.blocks - b0).min(2);
-                let wb = &self.packed[b0 * pairs * LANES..(b0 + nb) * pairs * LANES];
-                if fast {
-                    #[cfg(target_arch = "x86_64")]
-                    // SAFETY: the CPU has AVX-512F and AVX-512 BF16 (checked by `fast`); `block`
-                    // checks the slice lengths itself.
-                    unsafe {
-                        avx512::blocks(wb, nb, xp, n, pairs, ys)
-                    }
-                } else {
-                    for k in 0..nb {
-                        block_scalar(
-                            &wb[k * pairs * LANES..(k + 1) * pairs * LANES],
-                            xp,
-                            n,
-                            pairs,
-                            &mut ys[k * tile..(k + 1) * tile],
-                        );
-                    }
-                }
-            };
-            let work = &mut yt[..self.blocks * tile];
-            if n * out * inp >= 1 << 18 {
-                work.par_chunks_mut(2 * tile).enumerate().for_each(one);
-            } else {
-                work.chunks_mut(2 * tile).enumerate().for_each(one);
-            }
             for t in 0..n {
                 let yr = &mut y[t * out..(t + 1) * out];
                 for (b, chunk) in yr.chunks_mut(LANES).enumerate() {
@@ -126,17 +94,6 @@ impl Bf16Matrix {
             }
         });
     }
-}
-
-/// Token groups of the kernels: eights, then fours, then ones, in token order.
-pub(crate) fn groups(n: usize) -> impl Iterator<Item = (usize, usize)> {
-    let eights = n / 8 * 8;
-    let fours = eights + (n - eights) / 4 * 4;
-    (0..eights)
-        .step_by(8)
-        .map(|t| (t, 8))
-        .chain((eights..fours).step_by(4).map(|t| (t, 4)))
-        .chain((fours..n).map(|t| (t, 1)))
 }
 
 /// Activations as bf16 pairs, group by group: the group of `size` tokens starting at token
@@ -159,84 +116,45 @@ fn pack_activations(x: &[f32], n: usize, inp: usize, xp: &mut Vec<u32>) {
     }
 }
 
-fn has_avx512_bf16() -> bool {
-    #[cfg(target_arch = "x86_64")]
-    {
-        std::arch::is_x86_feature_detected!("avx512f")
-            && std::arch::is_x86_feature_detected!("avx512bf16")
-    }
-    #[cfg(not(target_arch = "x86_64"))]
-    {
-        false
-    }
-}
+/// The bf16 products: steps are pairs of input rows, outputs f32 sums.
+struct Kernel;
 
-/// The portable form of one block: per lane, the sum over pairs of lo·lo + hi·hi in f32.
-fn block_scalar(wb: &[u32], xp: &[u32], n: usize, pairs: usize, ys: &mut [f32]) {
-    for (t0, size) in groups(n) {
-        let g = &xp[t0 * pairs..(t0 + size) * pairs];
-        for t in 0..size {
-            for l in 0..LANES {
-                let mut acc = 0f32;
-                for p in 0..pairs {
-                    let (wv, xv) = (wb[p * LANES + l], g[p * size + t]);
-                    acc += from_bf16(wv as u16) * from_bf16(xv as u16)
-                        + from_bf16((wv >> 16) as u16) * from_bf16((xv >> 16) as u16);
-                }
-                ys[(t0 + t) * LANES + l] = acc;
-            }
-        }
+impl BlockKernel for Kernel {
+    type Out = f32;
+
+    fn fast() -> bool {
+        features().avx512_bf16
     }
-}
 
-#[cfg(target_arch = "x86_64")]
-mod avx512 {
-    use super::{groups, LANES};
-    use std::arch::x86_64::*;
-
-    /// `nb` (1 or 2) consecutive blocks of 16 output columns for every token, a token group at
-    /// a time; outputs [nb][n][16].
-    #[target_feature(enable = "avx512f,avx512bf16")]
-    pub unsafe fn blocks(
-        wb: &[u32],
-        nb: usize,
-        xp: &[u32],
-        n: usize,
-        pairs: usize,
-        ys: &mut [f32],
-    ) {
-        assert!(
-            (1..=2).contains(&nb)
-                && wb.len() >= nb * pairs * LANES
-                && xp.len() >= n * pairs
-                && ys.len() >= nb * n * LANES
-        );
+    /// Per lane, the sum over pairs of lo·lo + hi·hi in f32.
+    fn portable(wb: &[u32], xp: &[u32], n: usize, pairs: usize, ys: &mut [f32]) {
         for (t0, size) in groups(n) {
-            match (nb, size) {
-                (2, 8) => group::<8, 2>(wb, xp, t0, n, pairs, ys),
-                (2, 4) => group::<4, 2>(wb, xp, t0, n, pairs, ys),
-                (2, _) => group::<1, 2>(wb, xp, t0, n, pairs, ys),
-                (_, 8) => group::<8, 1>(wb, xp, t0, n, pairs, ys),
-                (_, 4) => group::<4, 1>(wb, xp, t0, n, pairs, ys),
-                _ => group::<1, 1>(wb, xp, t0, n, pairs, ys),
+            let g = &xp[t0 * pairs..(t0 + size) * pairs];
+            for t in 0..size {
+                for l in 0..LANES {
+                    let mut acc = 0f32;
+                    for p in 0..pairs {
+                        let (wv, xv) = (wb[p * LANES + l], g[p * size + t]);
+                        acc += from_bf16(wv as u16) * from_bf16(xv as u16)
+                            + from_bf16((wv >> 16) as u16) * from_bf16((xv >> 16) as u16);
+                    }
+                    ys[(t0 + t) * LANES + l] = acc;
+                }
             }
         }
     }
 
+    /// One `vdpbf16ps` per pair of input rows, 16 output columns and token.
+    #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx512f,avx512bf16")]
-    unsafe fn group<const T: usize, const B: usize>(
-        wb: &[u32],
-        xp: &[u32],
-        t0: usize,
-        n: usize,
-        pairs: usize,
-        ys: &mut [f32],
-    ) {
+    unsafe fn group<const T: usize, const B: usize>(b: &mut Blocks<'_, f32>, t0: usize) {
+        use std::arch::x86_64::*;
+        let (n, pairs) = (b.n, b.steps);
         let mut acc = [[_mm512_setzero_ps(); T]; B];
-        // SAFETY (whole loop): `blocks` checked that wb holds B·pairs·16 values and xp the
-        // group's pairs·T values starting at t0·pairs; the pointers stay inside those ranges.
-        let x = xp.as_ptr().add(t0 * pairs);
-        let w = wb.as_ptr();
+        // SAFETY (whole body): `run_groups` checked that b.w holds B·pairs·16 values, b.x the
+        // group's pairs·T values from t0·pairs and b.out B·n·16; the pointers stay inside.
+        let x = b.x.as_ptr().add(t0 * pairs);
+        let w = b.w.as_ptr();
         for p in 0..pairs {
             let mut wv: [__m512bh; B] = [std::mem::zeroed(); B];
             for (k, v) in wv.iter_mut().enumerate() {
@@ -258,7 +176,7 @@ mod avx512 {
         for (k, ak) in acc.iter().enumerate() {
             for (t, a) in ak.iter().enumerate() {
                 let at = (k * n + t0 + t) * LANES;
-                _mm512_storeu_ps(ys[at..at + LANES].as_mut_ptr(), *a);
+                _mm512_storeu_ps(b.out[at..at + LANES].as_mut_ptr(), *a);
             }
         }
     }
@@ -313,7 +231,7 @@ mod tests {
         let mut ys = vec![0.0; n * LANES];
         let mut xp = Vec::new();
         pack_activations(&x, n, inp, &mut xp);
-        block_scalar(&m.packed[..m.pairs * LANES], &xp, n, m.pairs, &mut ys);
+        Kernel::portable(&m.packed[..m.pairs * LANES], &xp, n, m.pairs, &mut ys);
         for t in 0..n {
             for l in 0..LANES {
                 assert!(

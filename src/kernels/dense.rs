@@ -1,0 +1,311 @@
+//! Dense f32 matrix products: the layout linear layers keep their weights in, and the
+//! products over it.
+//!
+//! A linear layer's [out, inp] matrix is stored in panels of 64 output columns
+//! ([`pack_panels_into`]): each panel is one contiguous run that a product reads front to back,
+//! so the weights are never repacked per call (repacking would read and write every weight
+//! once more per decoding step). Batches of rows go through `gemm` per panel; a single row
+//! (batch-1 decoding) has its own loop that keeps the panel's 64 sums in registers.
+//!
+//! Every output is computed by one task in a fixed order, so results do not depend on the
+//! thread count, and the decoder's batched output equals its batch-1 output.
+
+use super::simd::features;
+use super::PARALLEL_WORK;
+use rayon::prelude::*;
+
+/// Output columns per panel of a linear layer's weights (four 16-lane vectors).
+pub const PANEL: usize = 64;
+
+/// Values a linear layer of `out` × `inp` takes in the panel layout (the last panel padded).
+pub fn panel_len(out: usize, inp: usize) -> usize {
+    out.div_ceil(PANEL) * inp * PANEL
+}
+
+/// Writes `a` ([rows, cols] row-major, output rows `at..at + rows` of a layer) into the panel
+/// layout `t`: panel p holds output columns 64p..64p + 64 as [cols, 64] row-major, so one
+/// panel is one contiguous run that the products read front to back.
+pub fn pack_panels_into(a: &[f32], rows: usize, cols: usize, t: &mut [f32], at: usize) {
+    for r in 0..rows {
+        let j = at + r;
+        let base = (j / PANEL) * cols * PANEL + j % PANEL;
+        for (c, &v) in a[r * cols..(r + 1) * cols].iter().enumerate() {
+            t[base + c * PANEL] = v;
+        }
+    }
+}
+
+#[cfg(test)]
+fn pack_panels(a: &[f32], rows: usize, cols: usize) -> Vec<f32> {
+    let mut t = vec![0.0; panel_len(rows, cols)];
+    pack_panels_into(a, rows, cols, &mut t, 0);
+    t
+}
+
+/// A pointer to the output of [`matmul`], shared by tasks that write disjoint columns.
+#[derive(Clone, Copy)]
+struct Columns(*mut f32);
+
+impl Columns {
+    fn get(self) -> *mut f32 {
+        self.0
+    }
+}
+
+// SAFETY: `matmul`'s tasks write disjoint sets of columns through it, and the buffer outlives
+// them (they end before `matmul` returns).
+unsafe impl Send for Columns {}
+unsafe impl Sync for Columns {}
+
+/// y[n, out] = x[n, inp] · W, with W in the panel layout ([`pack_panels_into`]), one task per
+/// panel on the rayon pool.
+///
+/// Each panel is read once per call, front to back. One row (batch-1 decoding) runs its own
+/// loop with the panel's 64 sums in registers; more rows go through `gemm` per panel, the panel
+/// being a column-major left operand it reads without repacking, with the output columns in
+/// vector lanes. Each output is computed by one task in a fixed order, so the result does not
+/// depend on the thread count.
+pub fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
+    assert!(x.len() >= n * inp && w.len() >= panel_len(out, inp) && y.len() >= n * out);
+    if n == 0 || out == 0 {
+        return;
+    }
+    let yc = Columns(y.as_mut_ptr());
+    let one = |p: usize| {
+        let j0 = p * PANEL;
+        let width = PANEL.min(out - j0);
+        let panel = &w[p * inp * PANEL..(p + 1) * inp * PANEL];
+        if n == 1 {
+            let mut acc = [0f32; PANEL];
+            panel_row(&mut acc, &x[..inp], panel);
+            // SAFETY: columns j0..j0 + width of the one output row belong to this task.
+            unsafe {
+                std::ptr::copy_nonoverlapping(acc.as_ptr(), yc.get().add(j0), width);
+            }
+            return;
+        }
+        // SAFETY: lhs (i, k) = panel[k·64 + i] for i < width ≤ 64, k < inp; rhs (k, t) =
+        // x[t·inp + k]; dst (i, t) = y[t·out + j0 + i]: all inside the asserted lengths, and
+        // these columns of y belong to this task.
+        unsafe {
+            gemm::gemm(
+                width,
+                n,
+                inp,
+                yc.get().add(j0),
+                out as isize,
+                1,
+                false,
+                panel.as_ptr(),
+                PANEL as isize,
+                1,
+                x.as_ptr(),
+                inp as isize,
+                1,
+                0.0,
+                1.0,
+                false,
+                false,
+                false,
+                gemm::Parallelism::None,
+            );
+        }
+    };
+    let panels = out.div_ceil(PANEL);
+    if n * inp * out >= PARALLEL_WORK {
+        (0..panels).into_par_iter().for_each(one);
+    } else {
+        (0..panels).for_each(one);
+    }
+}
+
+/// acc[l] = Σₖ x[k]·panel[k·64 + l]. With AVX-512 (found at run time) the loop is compiled for
+/// 16-wide vectors: the 64 sums stay in registers while the panel streams past.
+fn panel_row(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
+    #[cfg(target_arch = "x86_64")]
+    if features().avx512f {
+        // SAFETY: the CPU has AVX-512F (checked just above).
+        unsafe { panel_row_avx512(acc, x, panel) };
+        return;
+    }
+    panel_row_body(acc, x, panel);
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn panel_row_avx512(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
+    panel_row_body(acc, x, panel);
+}
+
+/// Two sets of sums, for even and odd k, so consecutive multiply-adds do not wait on each
+/// other; added at the end.
+#[inline(always)]
+fn panel_row_body(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
+    let (mut even, mut odd) = ([0f32; PANEL], [0f32; PANEL]);
+    let mut pairs = panel.chunks_exact(2 * PANEL);
+    let mut xs = x.chunks_exact(2);
+    for (rows, xk) in (&mut pairs).zip(&mut xs) {
+        let (r0, r1) = rows.split_at(PANEL);
+        for l in 0..PANEL {
+            even[l] += xk[0] * r0[l];
+            odd[l] += xk[1] * r1[l];
+        }
+    }
+    if let (Some(&xk), Some(r0)) = (xs.remainder().first(), pairs.remainder().get(..PANEL)) {
+        for l in 0..PANEL {
+            even[l] += xk * r0[l];
+        }
+    }
+    for l in 0..PANEL {
+        acc[l] = even[l] + odd[l];
+    }
+}
+
+/// y[n, out] = x[n, inp] · wᵀ, with w [out, inp] row-major (the lm_head, which is also the
+/// embedding table when tied and so keeps the checkpoint layout).
+pub fn matmul_t(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
+    if n == 1 {
+        // One dot product per contiguous row of w, rows split across tasks.
+        assert!(x.len() >= inp && w.len() >= out * inp && y.len() >= out);
+        let one = |(blk, yb): (usize, &mut [f32])| {
+            for (i, v) in yb.iter_mut().enumerate() {
+                let j = blk * 256 + i;
+                *v = dot(&w[j * inp..(j + 1) * inp], &x[..inp]);
+            }
+        };
+        if out * inp >= PARALLEL_WORK {
+            y[..out].par_chunks_mut(256).enumerate().for_each(one);
+        } else {
+            y[..out].chunks_mut(256).enumerate().for_each(one);
+        }
+        return;
+    }
+    gemm_rows(x, n, inp, w, 1, inp as isize, out, y);
+}
+
+/// y[n, out] = x[n, inp] · B where B(k, j) = w[k·w_rs + j·w_cs].
+#[allow(clippy::too_many_arguments)]
+fn gemm_rows(
+    x: &[f32],
+    n: usize,
+    inp: usize,
+    w: &[f32],
+    w_rs: isize,
+    w_cs: isize,
+    out: usize,
+    y: &mut [f32],
+) {
+    assert!(x.len() >= n * inp && w.len() >= out * inp && y.len() >= n * out);
+    if n == 0 || out == 0 {
+        return;
+    }
+    if inp == 0 {
+        y[..n * out].fill(0.0);
+        return;
+    }
+    let threads = rayon::current_num_threads();
+    let par = if threads > 1 {
+        gemm::Parallelism::Rayon(threads)
+    } else {
+        gemm::Parallelism::None
+    };
+    // SAFETY: the three buffers hold at least n·inp, out·inp and n·out values (asserted
+    // above); the strides address exactly those elements: lhs (i, k) = x[i·inp + k],
+    // rhs (k, j) = w[k·w_rs + j·w_cs] (either stride order covers out·inp values),
+    // dst (i, j) = y[i·out + j]. dst does not alias the inputs.
+    unsafe {
+        gemm::gemm(
+            n,
+            out,
+            inp,
+            y.as_mut_ptr(),
+            1,
+            out as isize,
+            false,
+            x.as_ptr(),
+            1,
+            inp as isize,
+            w.as_ptr(),
+            w_cs,
+            w_rs,
+            0.0,
+            1.0,
+            false,
+            false,
+            false,
+            par,
+        );
+    }
+}
+
+/// Sum of products with sixteen independent partial sums, so the compiler can use vector
+/// registers (a single running sum would force one addition at a time).
+#[inline]
+pub fn dot(a: &[f32], b: &[f32]) -> f32 {
+    let n = a.len().min(b.len());
+    let (a, b) = (&a[..n], &b[..n]);
+    let mut acc = [0f32; 16];
+    let mut ca = a.chunks_exact(16);
+    let mut cb = b.chunks_exact(16);
+    for (x, y) in (&mut ca).zip(&mut cb) {
+        for l in 0..16 {
+            acc[l] += x[l] * y[l];
+        }
+    }
+    let mut s = 0f32;
+    for (x, y) in ca.remainder().iter().zip(cb.remainder()) {
+        s += x * y;
+    }
+    acc.iter().sum::<f32>() + s
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The gemm calls' strides and the panel layout: y = x·wᵀ against the textbook triple
+    /// loop, for the head layout and the panel layout, one row and several, a partial last
+    /// panel, on one task and on the pool.
+    #[test]
+    fn matmul_t_is_x_times_w_transposed() {
+        for (n, inp, out) in [(3, 37, 5), (7, 301, 150)] {
+            let x: Vec<f32> = (0..n * inp).map(|i| ((i * 7) % 11) as f32 - 5.0).collect();
+            let w: Vec<f32> = (0..out * inp)
+                .map(|i| ((i * 5) % 13) as f32 * 0.25)
+                .collect();
+            let mut y = vec![0.0; n * out];
+            matmul_t(&x, n, inp, &w, out, &mut y);
+            for i in 0..n {
+                for j in 0..out {
+                    let want: f32 = (0..inp).map(|k| x[i * inp + k] * w[j * inp + k]).sum();
+                    assert!((y[i * out + j] - want).abs() < 1e-3, "({i},{j})");
+                }
+            }
+            let wp = pack_panels(&w, out, inp);
+            let mut y2 = vec![0.0; n * out];
+            matmul(&x, n, inp, &wp, out, &mut y2);
+            for (a, b) in y.iter().zip(&y2) {
+                assert!((a - b).abs() < 1e-3);
+            }
+            // The single-row paths (batch-1 decoding).
+            let mut y1 = vec![0.0; out];
+            matmul_t(&x[inp..2 * inp], 1, inp, &w, out, &mut y1);
+            for (a, b) in y1.iter().zip(&y[out..2 * out]) {
+                assert!((a - b).abs() < 1e-3);
+            }
+            matmul(&x[inp..2 * inp], 1, inp, &wp, out, &mut y1);
+            for (a, b) in y1.iter().zip(&y[out..2 * out]) {
+                assert!((a - b).abs() < 1e-3);
+            }
+        }
+    }
+
+    #[test]
+    fn dot_handles_every_length() {
+        for n in [0, 1, 15, 16, 17, 64, 100] {
+            let a: Vec<f32> = (0..n).map(|i| i as f32).collect();
+            let want: f32 = a.iter().map(|v| v * v).sum();
+            assert_eq!(dot(&a, &a), want, "length {n}");
+        }
+    }
+}
