@@ -376,10 +376,10 @@ fn verdict_section(o: &mut String, s: &Summary) {
         }
     );
     if go {
-        let _ = write!(
+        let _ = writeln!(
             o,
             "<p>The candidate (fine-tuned) passed all {} checks of the gate policy against the baseline on {} in-scope questions. \
-             The scores below are automatic; read the cautions at the end before rolling out.</p>\n",
+             The scores below are automatic; read the cautions at the end before rolling out.</p>",
             s.verdict.checks.len(),
             in_scope(s)
         );
@@ -499,9 +499,9 @@ fn charts_section(o: &mut String, s: &Summary) {
 
     // Lift per metric.
     let mut t = String::new();
-    let _ = write!(
+    let _ = writeln!(
         t,
-        "<div class=\"tablewrap\"><table><thead><tr><th>metric</th><th class=\"n\">baseline</th><th class=\"n\">candidate</th><th class=\"n\">lift</th><th class=\"n\">{conf} interval</th><th class=\"n\">p-value</th><th class=\"n\">questions</th><th class=\"n\">better / worse / same</th></tr></thead><tbody>\n"
+        "<div class=\"tablewrap\"><table><thead><tr><th>metric</th><th class=\"n\">baseline</th><th class=\"n\">candidate</th><th class=\"n\">lift</th><th class=\"n\">{conf} interval</th><th class=\"n\">p-value</th><th class=\"n\">questions</th><th class=\"n\">better / worse / same</th></tr></thead><tbody>"
     );
     for (name, m) in [
         ("exact match", &s.metrics.exact_match),
@@ -555,9 +555,9 @@ fn charts_section(o: &mut String, s: &Summary) {
 
     // Lift per category.
     let mut t = String::new();
-    let _ = write!(
+    let _ = writeln!(
         t,
-        "<div class=\"tablewrap\"><table><thead><tr><th>category</th><th class=\"n\">questions</th><th class=\"n\">baseline</th><th class=\"n\">candidate</th><th class=\"n\">lift</th><th class=\"n\">{conf} interval</th><th class=\"n\">p-value</th><th class=\"n\">Holm p-value</th><th>checked</th></tr></thead><tbody>\n"
+        "<div class=\"tablewrap\"><table><thead><tr><th>category</th><th class=\"n\">questions</th><th class=\"n\">baseline</th><th class=\"n\">candidate</th><th class=\"n\">lift</th><th class=\"n\">{conf} interval</th><th class=\"n\">p-value</th><th class=\"n\">Holm p-value</th><th>checked</th></tr></thead><tbody>"
     );
     for (name, c) in &s.categories {
         let _ = writeln!(
