@@ -1,4 +1,4 @@
-//! Command-line definition (docs/interface.md, "Commands and flags"). Parsing only: each command
+//! Command-line definition (docs/interface.md, "Flags"). Parsing only: each command
 //! turns its arguments into validated settings in its own module under `commands`. Defaults
 //! are the constants of the stage that owns them.
 

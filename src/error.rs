@@ -1,6 +1,6 @@
 //! Errors and how they map to exit codes.
 //!
-//! interface.md fixes the exit codes: 2 for bad input or usage (with a message naming the file,
+//! docs/interface.md fixes the exit codes: 2 for bad input or usage (with a message naming the file,
 //! line and field), 3 for an internal failure. A NO-GO verdict (exit 1) is not an error; the
 //! commands return it as a value.
 
@@ -99,7 +99,7 @@ impl Error {
         Error::Internal(message.into())
     }
 
-    /// The process exit code for this error (interface.md, "Exit codes"). A stop by a signal
+    /// The process exit code for this error (docs/interface.md, "Exit codes"). A stop by a signal
     /// exits 128 + the signal number, as shells report it (130 for Ctrl-C, 143 for SIGTERM).
     pub fn exit_code(&self) -> i32 {
         match self {

@@ -1,7 +1,7 @@
 //! File helpers shared by every command: atomic writes, reading JSONL with line numbers, and
 //! content fingerprints.
 //!
-//! Nothing half-written (interface.md, exit code 2): every output goes to a temporary file in the
+//! Nothing half-written (docs/interface.md, exit code 2): every output goes to a temporary file in the
 //! destination directory and is renamed into place only when complete.
 
 use crate::error::{Error, Result};

@@ -1,5 +1,5 @@
 //! The `liftgate` binary: parse arguments, run one command, map the outcome to an exit code
-//! (interface.md, "Exit codes": 0 success or GO, 1 NO-GO, 2 bad input, 3 internal failure).
+//! (docs/interface.md, "Exit codes": 0 success or GO, 1 NO-GO, 2 bad input, 3 internal failure).
 
 use clap::Parser;
 use liftgate::cli::Cli;

@@ -1,4 +1,4 @@
-//! The gate policy (issue 2, "Gate policy"): what a candidate must show for a GO verdict.
+//! The gate policy (docs/policy.md): what a candidate must show for a GO verdict.
 //!
 //! A TOML file given with `--policy`, or the built-in default ([`Policy::default`]); the file
 //! format, every key, its range and the default are documented in docs/policy.md. Every table

@@ -1,6 +1,6 @@
 //! The bad-input catalogue: every case runs the real binary on files made in a fresh temp
 //! directory (copies of the tiny fixture models under tests/fixtures/runner/, broken in one
-//! way) and checks the contract of interface.md, "Exit codes": exit 2, a message on stderr
+//! way) and checks the contract of docs/interface.md, "Exit codes": exit 2, a message on stderr
 //! naming the file (and the line and field where there is one), and no output file, complete
 //! or partial, afterwards (not even a leftover temporary file).
 //!

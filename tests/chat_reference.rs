@@ -401,7 +401,7 @@ fn snippets_print_like_jinja2() {
 #[test]
 fn chat_template_jinja_wins_over_tokenizer_config() {
     // transformers 5 `_from_pretrained`: a chat_template.jinja file takes priority over
-    // tokenizer_config.json's chat_template (model-formats.md §1.1).
+    // tokenizer_config.json's chat_template (docs/model-formats.md §1.1).
     let dir = tempfile::tempdir().unwrap();
     std::fs::copy(
         fixtures().join("bpe/tokenizer.json"),

@@ -179,7 +179,7 @@ fn demo_models_are_complete_and_small() {
         .as_u64()
         .expect("num_hidden_layers");
 
-    // Tied embeddings: save_pretrained omits lm_head.weight (model-formats.md §1.3).
+    // Tied embeddings: save_pretrained omits lm_head.weight (docs/model-formats.md §1.3).
     let names = safetensors_names(&base.join("model.safetensors"));
     assert!(names.contains(&"model.embed_tokens.weight".to_string()));
     assert!(!names.contains(&"lm_head.weight".to_string()));
@@ -209,7 +209,7 @@ fn demo_models_are_complete_and_small() {
     }
 
     // LoRA r=16, alpha=32 on the seven projections of every layer, keys as peft saves them
-    // (model-formats.md §5.2): base_model.model.<module>.lora_{A,B}.weight.
+    // (docs/model-formats.md §5.2): base_model.model.<module>.lora_{A,B}.weight.
     let acfg = read_json(&adapter.join("adapter_config.json"));
     assert_eq!(acfg["peft_type"], "LORA");
     assert_eq!(acfg["r"], 16);

@@ -1,5 +1,5 @@
 //! `liftgate grade` end to end: the real binary on small hand-made files in a temp dir
-//! (interface.md: grades file fields, exit code 2 for bad input with file and line named,
+//! (docs/interface.md: grades file fields, exit code 2 for bad input with file and line named,
 //! nothing half-written, stdout left empty).
 
 mod common;

@@ -9,7 +9,7 @@ use serde_json::Value;
 use std::collections::{BTreeSet, HashMap};
 use std::path::{Path, PathBuf};
 
-/// Tolerance on every merged element against peft (f32; the brief for the merge asks 1e-6).
+/// Tolerance on every merged element against peft (f32; a merge that reorders no sums stays within 1e-6).
 const TOL: f32 = 1e-6;
 
 fn fixtures() -> PathBuf {

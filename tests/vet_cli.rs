@@ -2,7 +2,7 @@
 //! model (tests/fixtures/runner/llama, made with transformers 5.24.0 and peft 0.21.2 by
 //! tests/reference/make_runner_fixtures.py), its `qv` adapter and a small question set.
 //! Checks the report directory contents, the verdict line, exit codes 0/1 and that bad input
-//! exits 2 leaving no report directory (interface.md, "Exit codes").
+//! exits 2 leaving no report directory (docs/interface.md, "Exit codes").
 
 mod common;
 

@@ -1,7 +1,7 @@
 //! `liftgate weigh` end to end: the real binary on hand-made question sets and grades files in
-//! a temporary directory (interface.md: flags, summary.json fields, exit codes 0/1/2).
+//! a temporary directory (docs/interface.md: flags, summary.json fields, exit codes 0/1/2).
 //!
-//! summary.json is read with test-only serde types holding the fields interface.md promises,
+//! summary.json is read with test-only serde types holding the fields docs/interface.md promises,
 //! so a rename in the production structs fails here.
 
 mod common;

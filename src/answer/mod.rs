@@ -1,5 +1,5 @@
 //! The answering stage: one model variant (a base model, or base + LoRA adapter) answers every
-//! question of a set, greedy, on CPU (docs/interface.md, "liftgate answer").
+//! question of a set, greedy, on CPU (docs/interface.md, "Commands").
 //!
 //! - `prompts`: every question through the chat template to token ids, before any model work,
 //!   so a template error stops the run with nothing computed; and a finished generation back to

@@ -1,6 +1,6 @@
-//! Tokenizer and chat template of a Hugging Face model directory (issue 3, build step 3).
+//! Tokenizer and chat template of a Hugging Face model directory (docs/model-formats.md §3.4–§4).
 //!
-//! [`ChatTokenizer::load`] reads, as transformers 5 does (model-formats.md §1.1, §3.4, §3.5):
+//! [`ChatTokenizer::load`] reads, as transformers 5 does (docs/model-formats.md §1.1, §3.4, §3.5):
 //! - `tokenizer.json`: the whole `tokenizers` pipeline (required);
 //! - `tokenizer_config.json`: special-token strings, `chat_template`, `pad_token`,
 //!   `clean_up_tokenization_spaces` (optional);
@@ -29,7 +29,7 @@
 //! # Known limits
 //! - For tokenizer classes that transformers 5 rebuilds from vocab and merges
 //!   (`LlamaTokenizer` with model_type llama, `GemmaTokenizer`, `Qwen2Tokenizer`), token ids can
-//!   differ from `tokenizer.json` right after special tokens (model-formats.md §3.4); liftgate
+//!   differ from `tokenizer.json` right after special tokens (docs/model-formats.md §3.4); liftgate
 //!   always uses `tokenizer.json` as written.
 //! - `strftime_now` formats the current UTC time (transformers uses local time); a template that
 //!   calls it renders a different prompt every day.

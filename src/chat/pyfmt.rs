@@ -417,7 +417,7 @@ mod tests {
             serde_json::json!({"a": "é<>", "b": [1, 2.0, null, true]}),
         ));
         let got = json_dumps(&v, &JsonOptions::default()).unwrap();
-        // model-formats.md §4 example (transformers' tojson = json.dumps(ensure_ascii=False)).
+        // docs/model-formats.md §4 example (transformers' tojson = json.dumps(ensure_ascii=False)).
         assert_eq!(got, r#"{"a": "é<>", "b": [1, 2.0, null, true]}"#);
         let ascii = JsonOptions {
             ensure_ascii: true,

@@ -3,7 +3,7 @@
 //! transformers renders with `ImmutableSandboxedEnvironment(trim_blocks=True,
 //! lstrip_blocks=True, extensions=[AssistantTracker, loopcontrols])` plus the globals
 //! `raise_exception`, `strftime_now`, `dict`, `namespace` and a `tojson` filter that is
-//! `json.dumps` (model-formats.md §4; `transformers/utils/chat_template_utils.py`). Where
+//! `json.dumps` (docs/model-formats.md §4; `transformers/utils/chat_template_utils.py`). Where
 //! minijinja differs from Jinja2 this module bridges the gap:
 //!
 //! - **Line endings**: Jinja2 normalises `\r\n` and `\r` in the whole source to `\n` before

@@ -1,9 +1,12 @@
 //! Reports of a weighing: the data (`summary`, the summary.json format) kept apart from its
-//! renderings, one module per format: `markdown` (report.md) and `terminal` (the short table
-//! `weigh` and `vet` print). [`write_report_dir`] writes summary.json and report.md together:
-//! both or neither. `dir` claims and locks the report directories of `vet`.
+//! renderings, one module per format: `markdown` (report.md), `html` (report.html, drawing with
+//! `charts`) and `terminal` (the short table `weigh` and `vet` print). [`write_report_dir`]
+//! writes summary.json, report.md and report.html together: all or none. `dir` claims and
+//! locks the report directories of `vet`.
 
+pub mod charts;
 pub mod dir;
+pub mod html;
 pub mod markdown;
 pub mod summary;
 pub mod terminal;
@@ -29,15 +32,19 @@ pub fn summary_json(summary: &Summary) -> Result<Vec<u8>> {
     Ok(bytes)
 }
 
-/// Writes summary.json and report.md into `dir` (created if needed), both or neither: both
-/// are written to temporary files in `dir` first and renamed into place only when both are
-/// complete.
+/// Writes summary.json, report.md and report.html into `dir` (created if needed), all or
+/// none: each is written to a temporary file in `dir` first and renamed into place only when
+/// all are complete.
 pub fn write_report_dir(dir: &Path, summary: &Summary) -> Result<()> {
     let files: Vec<(&str, Vec<u8>)> = vec![
         ("summary.json", summary_json(summary)?),
         (
             markdown::Markdown.file_name(),
             markdown::Markdown.render(summary).into_bytes(),
+        ),
+        (
+            html::Html.file_name(),
+            html::Html.render(summary).into_bytes(),
         ),
     ];
     // A rename that cannot succeed must fail before any file is renamed (both or neither).

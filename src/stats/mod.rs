@@ -1,4 +1,4 @@
-//! Paired statistics for `weigh` (issue 2, "Statistics"): pure functions over slices.
+//! Paired statistics for `weigh` (README, "Statistics"): pure functions over slices.
 //!
 //! - [`bootstrap`]: paired bootstrap of a mean lift, percentile and BCa intervals (Efron 1987);
 //! - [`permutation`]: paired sign-flip permutation test of a mean lift (the lift p-values);

@@ -112,7 +112,7 @@ def train_wordpiece() -> Tokenizer:
 
 
 # Invented templates in the styles of the common families. Each exercises Jinja2 features that
-# real templates rely on (model-formats.md §4).
+# real templates rely on (docs/model-formats.md §4).
 TEMPLATES = {
     # Header-tag style (Llama-3-like), with a pinned date_string default and |trim.
     "header_tag": (

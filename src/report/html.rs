@@ -1,0 +1,1270 @@
+//! report.html: the weighing as one self-contained page for people who do not read Markdown —
+//! a product owner, a support lead, a reviewer.
+//!
+//! Order: the verdict and its reasons in plain words, warnings, key figures, the charts (lift
+//! per metric, lift per category, refusals against the policy's limits, per-question changes),
+//! the gate checks, the questions that got worse and better with both answers side by side,
+//! cautions, and the inputs with their fingerprints last.
+//!
+//! Self-contained and inert: one file with inline CSS and inline SVG (see [`super::charts`]), no
+//! script, no external resource, no web font (the system's own sans-serif). A
+//! Content-Security-Policy forbids scripts, network access, forms and every style but the page's
+//! own stylesheet (pinned by its SHA-256), so even text that slipped past escaping could not run
+//! or load anything. Every piece of user text (answers, questions, references, ids, categories,
+//! paths, and our sentences quoting them) goes through [`escape`]. A print stylesheet lays the
+//! page out for A4; below 640 px wide the layout becomes one column.
+
+use super::charts::{self, Chart};
+use super::summary::*;
+use super::Renderer;
+use crate::policy::IntervalKind;
+use sha2::{Digest, Sha256};
+use std::fmt::Write;
+
+/// Answers longer than this (in characters) are folded: a preview, and the whole text behind a
+/// `<details>` element that opens without script.
+pub const FOLD_CHARS: usize = 360;
+/// Characters of a folded answer's preview.
+const PREVIEW_CHARS: usize = 240;
+/// Longest user text shown at all; the grades file holds the rest.
+pub const MAX_CHARS: usize = 10_000;
+
+pub struct Html;
+
+impl Renderer for Html {
+    fn file_name(&self) -> &'static str {
+        "report.html"
+    }
+
+    fn render(&self, s: &Summary) -> String {
+        render(s)
+    }
+}
+
+/// Makes text inert in HTML text and in quoted attribute values (both `"` and `'`):
+///
+/// - `& < > " '` become character references, so no tag, entity or attribute can open;
+/// - line breaks (`\r\n`, `\r`, U+0085, U+2028, U+2029) become `\n` (shown as breaks where the
+///   page asks for it with `white-space: pre-wrap`), a tab stays a tab;
+/// - other control characters and the Unicode bidirectional and zero-width format characters
+///   become U+FFFD, so they can neither reorder nor hide text.
+pub fn escape(text: &str) -> String {
+    let mut out = String::with_capacity(text.len() + 16);
+    let mut iter = text.chars().peekable();
+    while let Some(c) = iter.next() {
+        match c {
+            '&' => out.push_str("&amp;"),
+            '<' => out.push_str("&lt;"),
+            '>' => out.push_str("&gt;"),
+            '"' => out.push_str("&quot;"),
+            '\'' => out.push_str("&#39;"),
+            '\r' => {
+                if iter.peek() != Some(&'\n') {
+                    out.push('\n');
+                }
+            }
+            '\n' | '\t' => out.push(c),
+            '\u{85}' | '\u{2028}' | '\u{2029}' => out.push('\n'),
+            c if c.is_control() || is_format_char(c) => out.push('\u{FFFD}'),
+            c => out.push(c),
+        }
+    }
+    out
+}
+
+/// Zero-width and bidirectional formatting characters (Unicode category Cf, the ones that can
+/// hide or reorder text: embeddings, overrides, isolates, marks, joiners, the BOM, interlinear
+/// annotation).
+fn is_format_char(c: char) -> bool {
+    matches!(c as u32,
+        0x00AD | 0x061C | 0x180E | 0x200B..=0x200F | 0x202A..=0x202E | 0x2060..=0x2064
+        | 0x2066..=0x206F | 0xFEFF | 0xFFF9..=0xFFFB)
+}
+
+/// [`escape`] of at most `limit` characters, with "…" when cut.
+fn escape_cut(text: &str, limit: usize) -> String {
+    if text.chars().count() <= limit {
+        escape(text)
+    } else {
+        let cut: String = text.chars().take(limit).collect();
+        format!("{}…", escape(&cut))
+    }
+}
+
+/// User text as an isolated run (`<bdi>`), so right-to-left text cannot reorder what is
+/// around it.
+fn user(text: &str) -> String {
+    format!("<bdi>{}</bdi>", escape_cut(text, MAX_CHARS))
+}
+
+/// The page's stylesheet. Its SHA-256 goes into the Content-Security-Policy, so no other style
+/// can apply.
+pub fn stylesheet() -> String {
+    let mut css = String::from(PAGE_CSS);
+    css.push_str(charts::CSS);
+    css.push_str(PRINT_CSS);
+    css
+}
+
+/// The Content-Security-Policy: nothing may load or run; only the page's own stylesheet
+/// (by hash) applies. `frame-ancestors` and `sandbox` are not allowed in a `<meta>` policy, so
+/// they are left out.
+pub fn content_security_policy(css: &str) -> String {
+    let digest = Sha256::digest(css.as_bytes());
+    format!(
+        "default-src 'none'; style-src 'sha256-{}'; img-src data:; base-uri 'none'; form-action 'none'",
+        base64::encode(digest)
+    )
+}
+
+const PAGE_CSS: &str = "\
+:root{--ink:#1b2631;--soft:#4d5866;--line:#d9dee4;--panel:#f3f5f8;--blue:#1f63a6;--blue-bg:#e5eef8;--orange:#b4530b;--orange-bg:#fbeadc;--orange-ink:#7f3a06;--blue-ink:#164a7e}\
+*{box-sizing:border-box}\
+html{-webkit-text-size-adjust:100%;text-size-adjust:100%}\
+body{margin:0;background:#fff;color:var(--ink);font:16px/1.5 system-ui,-apple-system,\"Segoe UI\",Roboto,\"Noto Sans\",\"Liberation Sans\",Arial,sans-serif}\
+code,.mono{font-family:ui-monospace,\"SFMono-Regular\",Menlo,Consolas,\"Liberation Mono\",monospace;font-size:.88em}\
+.wrap{max-width:980px;margin:0 auto;padding:0 20px}\
+.masthead{border-bottom:3px solid var(--ink);padding:14px 0 10px}\
+.masthead .wrap{display:flex;flex-wrap:wrap;gap:4px 18px;align-items:baseline;justify-content:space-between}\
+.brand{font-weight:800;letter-spacing:.02em;font-size:1.05rem}\
+.brand span{font-weight:400;color:var(--soft)}\
+.masthead .meta{color:var(--soft);font-size:.9rem;overflow-wrap:anywhere}\
+h1{font-size:1.7rem;line-height:1.25;margin:0 0 .5rem}\
+h2{font-size:1.3rem;margin:2.2rem 0 .6rem;padding-bottom:.25rem;border-bottom:1px solid var(--line)}\
+h3{font-size:1.05rem;margin:1.4rem 0 .3rem}\
+p{margin:.5rem 0}\
+.verdict{margin:22px 0 8px;padding:18px 20px;border-left:10px solid;border-radius:4px}\
+.verdict.go{background:var(--blue-bg);border-color:var(--blue)}\
+.verdict.nogo{background:var(--orange-bg);border-color:var(--orange)}\
+.verdict .head{display:flex;gap:14px;align-items:center}\
+.verdict .head svg{flex:none;width:52px;height:52px}\
+.verdict .word{display:block;font-size:.8rem;font-weight:700;letter-spacing:.08em;text-transform:uppercase;color:var(--soft)}\
+.verdict ul{margin:.4rem 0 .2rem;padding-left:1.3rem}\
+.verdict li{margin:.3rem 0}\
+.warnings{margin:14px 0;padding:10px 16px;border:1px solid var(--line);border-radius:4px;background:#fffdf3}\
+.warnings strong{display:block}\
+.warnings ul{margin:.3rem 0;padding-left:1.3rem}\
+.figures{display:grid;grid-template-columns:repeat(auto-fit,minmax(200px,1fr));gap:10px;margin:16px 0 0;padding:0;list-style:none}\
+.figures li{border:1px solid var(--line);border-radius:4px;padding:10px 12px;background:#fff}\
+.figures .k{display:block;font-size:.82rem;color:var(--soft)}\
+.figures .v{display:block;font-size:1.35rem;font-weight:700;line-height:1.25}\
+.figures .s{display:block;font-size:.85rem;color:var(--soft)}\
+.mark{display:inline-flex;align-items:center;gap:5px;font-weight:700;font-size:.82rem;letter-spacing:.04em;padding:1px 8px 1px 4px;border-radius:999px;white-space:nowrap}\
+.mark svg{width:16px;height:16px;flex:none}\
+.mark.pass{background:var(--blue-bg);color:var(--blue-ink)}\
+.mark.fail{background:var(--orange-bg);color:var(--orange-ink)}\
+figure{margin:18px 0 26px;padding:0;break-inside:avoid}\
+figure h3{margin:0 0 .2rem}\
+figcaption{color:var(--soft);font-size:.92rem;margin:0 0 .5rem;max-width:46rem}\
+.chart{overflow-x:auto;-webkit-overflow-scrolling:touch;padding:4px 0 0;background:#fff}\
+.chart svg{max-width:860px}\
+.chart.narrow{display:none}\
+.aside{font-size:.92rem;color:var(--soft)}\
+details.numbers{margin:.5rem 0 0}\
+details.numbers summary{cursor:pointer;color:var(--blue-ink);font-size:.92rem}\
+.tablewrap{overflow-x:auto}\
+table{border-collapse:collapse;width:100%;font-size:.92rem;margin:.4rem 0}\
+th,td{text-align:left;vertical-align:top;padding:6px 8px;border-bottom:1px solid var(--line)}\
+th{font-size:.8rem;text-transform:uppercase;letter-spacing:.04em;color:var(--soft);border-bottom:2px solid var(--ink)}\
+td.n,th.n{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}\
+.checks td .name{display:block;color:var(--soft);font-size:.82rem;overflow-wrap:anywhere}\
+.checks tr.failed td{background:#fdf4ec}\
+.checks .why{display:block;margin-top:.2rem}\
+.change{border:1px solid var(--line);border-radius:4px;margin:14px 0;padding:12px 14px;break-inside:avoid}\
+.change .top{display:flex;flex-wrap:wrap;gap:4px 12px;align-items:baseline;margin-bottom:.3rem}\
+.change .id{font-weight:700;overflow-wrap:anywhere}\
+.change .cat{color:var(--soft);font-size:.88rem;overflow-wrap:anywhere}\
+.delta{margin-left:auto;font-weight:700;font-variant-numeric:tabular-nums;white-space:nowrap}\
+.delta.down{color:var(--orange-ink)}\
+.delta.up{color:var(--blue-ink)}\
+.change .lbl{display:block;font-size:.78rem;font-weight:700;text-transform:uppercase;letter-spacing:.05em;color:var(--soft)}\
+.change .q,.change .ref{margin:.35rem 0}\
+.text{white-space:pre-wrap;overflow-wrap:anywhere}\
+.pair{display:grid;grid-template-columns:1fr 1fr;gap:10px;margin-top:.5rem}\
+.ans{border-radius:3px;padding:8px 10px;background:var(--panel);border-top:4px solid var(--soft)}\
+.ans.cand{border-top-color:var(--blue)}\
+.ans .score{float:right;font-size:.85rem;color:var(--soft);font-variant-numeric:tabular-nums}\
+details.fold summary{cursor:pointer;list-style:none}\
+details.fold summary::-webkit-details-marker{display:none}\
+details.fold summary .more{display:inline-block;margin-top:.3rem;color:var(--blue-ink);font-weight:600;font-size:.88rem;text-decoration:underline}\
+details.fold[open] summary .preview{display:none}\
+details.fold[open] summary .more::after{content:\" (fold)\"}\
+.cautions li{margin:.4rem 0}\
+.inputs td{overflow-wrap:anywhere}\
+.inputs td.hash{font-family:ui-monospace,Menlo,Consolas,\"Liberation Mono\",monospace;font-size:.8rem;word-break:break-all}\
+footer{margin:36px 0 24px;padding-top:10px;border-top:1px solid var(--line);color:var(--soft);font-size:.85rem}\
+.sr{position:absolute;width:1px;height:1px;overflow:hidden;clip:rect(0 0 0 0);white-space:nowrap}\
+@media (max-width:640px){\
+.wrap{padding:0 12px}\
+h1{font-size:1.35rem}\
+.verdict{padding:14px 12px;border-left-width:7px}\
+.verdict .head svg{width:40px;height:40px}\
+.pair{grid-template-columns:1fr}\
+.delta{margin-left:0}\
+table.checks thead{display:none}\
+table.checks tr{display:block;border-bottom:2px solid var(--line);padding:6px 0}\
+table.checks td{display:block;border:0;padding:2px 4px;text-align:left}\
+table.checks td.n{text-align:left;white-space:normal}\
+table.checks td[data-label]::before{content:attr(data-label) \": \";color:var(--soft);font-size:.82rem}\
+.chart.wide{display:none}\
+.chart.narrow{display:block;padding:4px 0 0}\
+.chart.narrow svg{max-width:480px}\
+}\
+";
+
+const PRINT_CSS: &str = "\
+@page{size:A4;margin:14mm 13mm}\
+@media print{\
+body{font-size:10.5pt;-webkit-print-color-adjust:exact;print-color-adjust:exact}\
+.wrap{max-width:none;padding:0}\
+.chart{overflow:visible;border:0;padding:0}\
+.chart svg{max-width:100%}\
+.chart.wide{display:block}\
+.chart.narrow{display:none}\
+h2{break-after:avoid}\
+.verdict,.change,figure,tr{break-inside:avoid}\
+details.fold summary .preview{display:none}\
+details.fold summary .more{display:none}\
+details::details-content{content-visibility:visible;display:block}\
+details.numbers summary{display:none}\
+}\
+";
+
+/// The pass and fail marks: the word and a shape (a circle with a tick, an octagon with a
+/// cross), never colour alone.
+fn mark(pass: bool) -> &'static str {
+    if pass {
+        r##"<span class="mark pass"><svg viewBox="0 0 16 16" aria-hidden="true"><circle cx="8" cy="8" r="7.2" fill="#1f63a6"/><path d="M4.3 8.3l2.5 2.5 5-5.4" fill="none" stroke="#fff" stroke-width="2"/></svg>PASS</span>"##
+    } else {
+        r##"<span class="mark fail"><svg viewBox="0 0 16 16" aria-hidden="true"><path d="M5 .8h6L15.2 5v6L11 15.2H5L.8 11V5z" fill="#b4530b"/><path d="M5.3 5.3l5.4 5.4M10.7 5.3l-5.4 5.4" stroke="#fff" stroke-width="2"/></svg>FAIL</span>"##
+    }
+}
+
+/// The verdict's large symbol: a circle with a tick for GO, an octagon with a bar for NO-GO.
+fn verdict_icon(go: bool) -> &'static str {
+    if go {
+        r##"<svg viewBox="0 0 52 52" aria-hidden="true"><circle cx="26" cy="26" r="24" fill="#1f63a6"/><path d="M14 27l8 8 16-17" fill="none" stroke="#fff" stroke-width="5" stroke-linecap="round" stroke-linejoin="round"/></svg>"##
+    } else {
+        r##"<svg viewBox="0 0 52 52" aria-hidden="true"><path d="M16.5 2h19L50 16.5v19L35.5 50h-19L2 35.5v-19z" fill="#b4530b"/><rect x="12" y="22" width="28" height="8" rx="2" fill="#fff"/></svg>"##
+    }
+}
+
+fn num(x: Option<f64>) -> String {
+    x.map(|v| format!("{v:.3}")).unwrap_or_else(|| "–".into())
+}
+
+fn signed(x: Option<f64>) -> String {
+    x.map(|v| charts::Fmt::Signed(3).show(v))
+        .unwrap_or_else(|| "–".into())
+}
+
+fn pct(x: Option<f64>) -> String {
+    x.map(|v| format!("{:.1}%", 100.0 * v))
+        .unwrap_or_else(|| "–".into())
+}
+
+fn interval(lo: Option<f64>, hi: Option<f64>) -> String {
+    match (lo, hi) {
+        (Some(l), Some(h)) => format!("{} to {}", signed(Some(l)), signed(Some(h))),
+        _ => "–".into(),
+    }
+}
+
+fn p(x: Option<f64>) -> String {
+    match x {
+        Some(v) if v < 0.0001 => "&lt; 0.0001".into(),
+        Some(v) => format!("{v:.4}"),
+        None => "–".into(),
+    }
+}
+
+fn rate(r: &Rate) -> String {
+    match r.share {
+        Some(_) => format!(
+            "{} ({}–{}), {} declined",
+            pct(r.share),
+            pct(r.ci_low),
+            pct(r.ci_high),
+            r.declined
+        ),
+        None => "–".into(),
+    }
+}
+
+fn check_number(c: &Check, v: f64) -> String {
+    match c.kind() {
+        CheckKind::MinQuestions => format!("{v:.0}"),
+        CheckKind::Refusal => pct(Some(v)),
+        CheckKind::Lift | CheckKind::Category(_) => signed(Some(v)),
+    }
+}
+
+fn comparison_words(c: Comparison) -> &'static str {
+    match c {
+        Comparison::Above => "more than",
+        Comparison::AtLeast => "at least",
+        Comparison::AtMost => "at most",
+    }
+}
+
+/// The number of in-scope questions (the larger metric count, as report.md says it).
+fn in_scope(s: &Summary) -> usize {
+    s.metrics.token_f1.n.max(s.metrics.exact_match.n)
+}
+
+/// report.html for a summary. Deterministic: the same summary gives the same bytes.
+pub fn render(s: &Summary) -> String {
+    let css = stylesheet();
+    let mut o = String::with_capacity(64 * 1024);
+    let verdict = if s.verdict.go { "GO" } else { "NO-GO" };
+    let set_name = std::path::Path::new(&s.inputs.questions.path)
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_else(|| s.inputs.questions.path.clone());
+    let _ = write!(
+        o,
+        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n\
+         <meta http-equiv=\"Content-Security-Policy\" content=\"{}\">\n\
+         <meta name=\"referrer\" content=\"no-referrer\">\n\
+         <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n\
+         <meta name=\"generator\" content=\"liftgate {}\">\n\
+         <link rel=\"icon\" href=\"data:,\">\n\
+         <title>{verdict} · fine-tune check · {}</title>\n<style>{css}</style>\n</head>\n<body>\n",
+        content_security_policy(&css),
+        escape(&s.tool_version),
+        escape(&set_name),
+    );
+    let _ = write!(
+        o,
+        "<header class=\"masthead\"><div class=\"wrap\"><div class=\"brand\">liftgate <span>fine-tune check</span></div>\
+         <div class=\"meta\">question set {} · {} in-scope questions · {} out of scope</div></div></header>\n<main class=\"wrap\">\n",
+        user(&s.inputs.questions.path),
+        in_scope(s),
+        s.refusal.out_of_scope.n
+    );
+    verdict_section(&mut o, s);
+    charts_section(&mut o, s);
+    checks_section(&mut o, s);
+    changes_section(&mut o, s, true);
+    changes_section(&mut o, s, false);
+    cautions_section(&mut o);
+    inputs_section(&mut o, s);
+    let _ = write!(
+        o,
+        "</main>\n<footer class=\"wrap\">Written by liftgate {}. This page is one file: it runs no script and loads nothing from the network.</footer>\n</body>\n</html>\n",
+        escape(&s.tool_version)
+    );
+    o
+}
+
+fn verdict_section(o: &mut String, s: &Summary) {
+    let go = s.verdict.go;
+    let failing: Vec<&Check> = s.verdict.checks.iter().filter(|c| !c.pass).collect();
+    let _ = write!(
+        o,
+        "<section id=\"verdict\" class=\"verdict {}\" data-verdict=\"{}\">\n<div class=\"head\">{}<div><span class=\"word\">Verdict</span><h1>{}</h1></div></div>\n",
+        if go { "go" } else { "nogo" },
+        if go { "GO" } else { "NO-GO" },
+        verdict_icon(go),
+        if go {
+            "GO: the fine-tuned model passed every check"
+        } else {
+            "NO-GO: the fine-tuned model is not ready to replace the base model"
+        }
+    );
+    if go {
+        let _ = writeln!(
+            o,
+            "<p>The candidate (fine-tuned) passed all {} checks of the gate policy against the baseline on {} in-scope questions. \
+             The scores below are automatic; read the cautions at the end before rolling out.</p>",
+            s.verdict.checks.len(),
+            in_scope(s)
+        );
+    } else {
+        let _ = write!(
+            o,
+            "<p>The candidate (fine-tuned) did not pass {} of the {} checks of the gate policy. In plain words:</p>\n<ul class=\"reasons\">\n",
+            failing.len(),
+            s.verdict.checks.len()
+        );
+        for c in &failing {
+            let reason = c.reason.clone().unwrap_or_else(|| c.description.clone());
+            let _ = writeln!(o, "<li>{}</li>", user(&reason));
+        }
+        o.push_str("</ul>\n");
+    }
+    o.push_str("</section>\n");
+    if !s.warnings.is_empty() || !s.inputs.approximations.is_empty() {
+        o.push_str("<aside class=\"warnings\" id=\"warnings\"><strong>Warnings</strong><ul>\n");
+        for w in &s.warnings {
+            let _ = writeln!(o, "<li>{}</li>", user(w));
+        }
+        for a in &s.inputs.approximations {
+            let _ = writeln!(
+                o,
+                "<li>Answers computed with an approximation of the model: {}</li>",
+                user(a)
+            );
+        }
+        o.push_str("</ul></aside>\n");
+    }
+    key_figures(o, s);
+}
+
+/// Four figures a reader can take away: the gate metric, both refusal shares, the set size.
+fn key_figures(o: &mut String, s: &Summary) {
+    let gate = s.policy.lift.metric;
+    let m = match gate.as_str() {
+        "exact_match" => &s.metrics.exact_match,
+        "rouge_l" => &s.metrics.rouge_l,
+        _ => &s.metrics.token_f1,
+    };
+    let check = |prefix: &str| s.verdict.checks.iter().find(|c| c.name.starts_with(prefix));
+    let status = |c: Option<&Check>| c.map(|c| mark(c.pass)).unwrap_or("");
+    o.push_str("<ul class=\"figures\" id=\"key-figures\">\n");
+    let _ = writeln!(
+        o,
+        "<li><span class=\"k\">{} lift (gate)</span><span class=\"v\">{} {}</span><span class=\"s\">{} → {}; {:.0}% interval {}</span></li>",
+        gate.label(),
+        signed(m.lift),
+        status(check("lift.")),
+        num(m.baseline),
+        num(m.candidate),
+        100.0 * s.settings.confidence,
+        interval(m.ci_low, m.ci_high)
+    );
+    let r = &s.refusal;
+    let _ = writeln!(
+        o,
+        "<li><span class=\"k\">out-of-scope questions declined</span><span class=\"v\">{} {}</span><span class=\"s\">needs at least {}; base model {}</span></li>",
+        pct(r.out_of_scope.candidate.share),
+        status(check("refusal.out_of_scope")),
+        pct(Some(s.policy.refusal.min_out_of_scope)),
+        pct(r.out_of_scope.baseline.share)
+    );
+    let _ = writeln!(
+        o,
+        "<li><span class=\"k\">in-scope questions wrongly declined</span><span class=\"v\">{} {}</span><span class=\"s\">allows at most {}; base model {}</span></li>",
+        pct(r.false_refusal.candidate.share),
+        status(check("refusal.false_refusal")),
+        pct(Some(s.policy.refusal.max_false_refusal)),
+        pct(r.false_refusal.baseline.share)
+    );
+    let _ = writeln!(
+        o,
+        "<li><span class=\"k\">questions</span><span class=\"v\">{} {}</span><span class=\"s\">in scope (policy needs {}), plus {} out of scope</span></li>",
+        in_scope(s),
+        status(check("min_questions")),
+        s.policy.min_questions,
+        r.out_of_scope.n
+    );
+    o.push_str("</ul>\n");
+}
+
+fn figure(o: &mut String, chart: &Chart, title: &str, numbers: &str) {
+    let _ = write!(
+        o,
+        "<figure id=\"{id}\" data-chart=\"{id}\">\n<h3>{}</h3>\n<figcaption>{}</figcaption>\n<div class=\"chart wide\">{}</div>\n<div class=\"chart narrow\">{}</div>\n",
+        escape(title),
+        escape(&chart.caption),
+        chart.svg,
+        chart.svg_narrow,
+        id = escape(&chart.id),
+    );
+    if !numbers.is_empty() {
+        let _ = write!(
+            o,
+            "<details class=\"numbers\"><summary>The numbers behind this chart</summary>\n{numbers}</details>\n"
+        );
+    }
+    o.push_str("</figure>\n");
+}
+
+fn charts_section(o: &mut String, s: &Summary) {
+    let conf = format!("{:.0}%", 100.0 * s.settings.confidence);
+    let gate = s.policy.lift.metric;
+    o.push_str("<section id=\"charts\">\n<h2>What changed, and how sure we are</h2>\n");
+    let _ = writeln!(
+        o,
+        "<p class=\"aside\">Lift is the candidate's score minus the baseline's, question by question, averaged. \
+         Each bar around a point is a {conf} interval ({} bootstrap, {} resamples, seed {}): the true change is plausibly anywhere along it. \
+         p-values come from a paired sign-flip permutation test, two-sided.</p>",
+        match s.settings.interval {
+            IntervalKind::Bca => "BCa",
+            IntervalKind::Percentile => "percentile",
+        },
+        s.settings.resamples,
+        s.settings.seed
+    );
+
+    // Lift per metric.
+    let mut t = String::new();
+    let _ = writeln!(
+        t,
+        "<div class=\"tablewrap\"><table><thead><tr><th>metric</th><th class=\"n\">baseline</th><th class=\"n\">candidate</th><th class=\"n\">lift</th><th class=\"n\">{conf} interval</th><th class=\"n\">p-value</th><th class=\"n\">questions</th><th class=\"n\">better / worse / same</th></tr></thead><tbody>"
+    );
+    for (name, m) in [
+        ("exact match", &s.metrics.exact_match),
+        ("token F1", &s.metrics.token_f1),
+        ("ROUGE-L", &s.metrics.rouge_l),
+    ] {
+        let _ = writeln!(
+            t,
+            "<tr><td>{name}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{} / {} / {}</td></tr>",
+            num(m.baseline),
+            num(m.candidate),
+            signed(m.lift),
+            interval(m.ci_low, m.ci_high),
+            p(m.p_value),
+            m.n,
+            m.better,
+            m.worse,
+            m.same
+        );
+    }
+    t.push_str("</tbody></table></div>\n");
+    let mc = &s.mcnemar;
+    let _ = writeln!(
+        t,
+        "<p class=\"aside\">Exact match changed on {} questions: {} now right that were wrong, {} now wrong that were right (exact McNemar test p = {}).</p>",
+        mc.baseline_only + mc.candidate_only,
+        mc.candidate_only,
+        mc.baseline_only,
+        p(Some(mc.p_value))
+    );
+    match s.mde.value {
+        Some(v) => {
+            let _ = writeln!(
+                t,
+                "<p class=\"aside\">Sample size: with {} questions, a true {} lift of {v:.3} or more would be detected {:.0}% of the time (two-sided, {:.0}% level; normal approximation).</p>",
+                s.mde.n,
+                gate.label(),
+                100.0 * s.mde.power,
+                100.0 * s.mde.alpha
+            );
+        }
+        None => {
+            let _ = writeln!(
+                t,
+                "<p class=\"aside\">Sample size: the minimum detectable lift could not be estimated ({}).</p>",
+                user(s.mde.note.as_deref().unwrap_or("not enough data"))
+            );
+        }
+    }
+    figure(o, &charts::lift_chart(s), "Lift per metric", &t);
+
+    // Lift per category.
+    let mut t = String::new();
+    let _ = writeln!(
+        t,
+        "<div class=\"tablewrap\"><table><thead><tr><th>category</th><th class=\"n\">questions</th><th class=\"n\">baseline</th><th class=\"n\">candidate</th><th class=\"n\">lift</th><th class=\"n\">{conf} interval</th><th class=\"n\">p-value</th><th class=\"n\">Holm p-value</th><th>checked</th></tr></thead><tbody>"
+    );
+    for (name, c) in &s.categories {
+        let _ = writeln!(
+            t,
+            "<tr><td>{}</td><td class=\"n\">{}{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td>{}</td></tr>",
+            user(name),
+            c.n,
+            if c.refuse_questions > 0 {
+                format!(" (+{} out of scope)", c.refuse_questions)
+            } else {
+                String::new()
+            },
+            num(c.baseline),
+            num(c.candidate),
+            signed(c.lift),
+            interval(c.ci_low, c.ci_high),
+            p(c.p_value),
+            p(c.p_value_holm),
+            if c.judged {
+                "yes"
+            } else if c.n == 0 {
+                "no (no in-scope questions)"
+            } else {
+                "no (too few)"
+            }
+        );
+    }
+    t.push_str("</tbody></table></div>\n");
+    let _ = writeln!(
+        t,
+        "<p class=\"aside\">Intervals per category are not adjusted for the number of categories; the Holm-adjusted p-values are. Only categories with at least {} in-scope questions are checked.</p>",
+        s.policy.categories.min_questions
+    );
+    figure(
+        o,
+        &charts::category_chart(s),
+        &format!("{} lift per category", gate.label()),
+        &t,
+    );
+
+    // Refusals.
+    let r = &s.refusal;
+    let t = format!(
+        "<div class=\"tablewrap\"><table><thead><tr><th>questions</th><th class=\"n\">count</th><th class=\"n\">baseline</th><th class=\"n\">candidate</th></tr></thead><tbody>\n\
+         <tr><td>out of scope, should be declined</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>\n\
+         <tr><td>in scope, wrongly declined</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>\n\
+         </tbody></table></div>\n",
+        r.out_of_scope.n,
+        rate(&r.out_of_scope.baseline),
+        rate(&r.out_of_scope.candidate),
+        r.false_refusal.n,
+        rate(&r.false_refusal.baseline),
+        rate(&r.false_refusal.candidate)
+    );
+    figure(o, &charts::refusal_chart(s), "Refusals", &t);
+
+    // Per-question changes.
+    figure(
+        o,
+        &charts::changes_chart(s),
+        "Questions that scored better, worse or the same",
+        "",
+    );
+    o.push_str("</section>\n");
+}
+
+fn checks_section(o: &mut String, s: &Summary) {
+    let passed = s.verdict.checks.iter().filter(|c| c.pass).count();
+    let _ = write!(
+        o,
+        "<section id=\"checks\">\n<h2>Gate checks</h2>\n<p>{passed} of {} checks passed. Every check must pass for a GO.</p>\n\
+         <div class=\"tablewrap\"><table class=\"checks\"><thead><tr><th>result</th><th>what is checked</th><th class=\"n\">needs</th><th class=\"n\">measured</th></tr></thead><tbody>\n",
+        s.verdict.checks.len()
+    );
+    for c in &s.verdict.checks {
+        let why = match (&c.reason, c.pass) {
+            (Some(r), false) => format!("<span class=\"why\">{}</span>", user(r)),
+            _ => String::new(),
+        };
+        let _ = writeln!(
+            o,
+            "<tr class=\"{}\" data-check=\"{}\"><td data-label=\"result\">{}</td><td><bdi>{}</bdi><span class=\"name mono\">{}</span>{why}</td><td class=\"n\" data-label=\"needs\">{} {}</td><td class=\"n\" data-label=\"measured\">{}</td></tr>",
+            if c.pass { "passed" } else { "failed" },
+            escape(&c.name),
+            mark(c.pass),
+            escape_cut(&c.description, MAX_CHARS),
+            escape_cut(&c.name, MAX_CHARS),
+            comparison_words(c.comparison),
+            check_number(c, c.threshold),
+            c.value
+                .map(|v| check_number(c, v))
+                .unwrap_or_else(|| "nothing to measure".into())
+        );
+    }
+    o.push_str("</tbody></table></div>\n</section>\n");
+}
+
+/// An answer, folded behind `<details>` when long.
+fn answer_block(text: &str) -> String {
+    if text.is_empty() {
+        return "<div class=\"text\"><em>(empty answer)</em></div>".into();
+    }
+    let n = text.chars().count();
+    if n <= FOLD_CHARS {
+        return format!("<div class=\"text\"><bdi>{}</bdi></div>", escape(text));
+    }
+    format!(
+        "<details class=\"fold\"><summary><span class=\"preview text\"><bdi>{}</bdi></span><span class=\"more\">show the whole answer ({n} characters)</span></summary><div class=\"text\"><bdi>{}</bdi>{}</div></details>",
+        escape_cut(text, PREVIEW_CHARS),
+        escape_cut(text, MAX_CHARS),
+        if n > MAX_CHARS {
+            format!(
+                " <em>(cut at {MAX_CHARS} characters; the grades file holds the whole answer)</em>"
+            )
+        } else {
+            String::new()
+        }
+    )
+}
+
+fn changes_section(o: &mut String, s: &Summary, worse: bool) {
+    let gate = s.policy.lift.metric;
+    let (id, title, list, empty) = if worse {
+        (
+            "worse",
+            "Questions that got worse",
+            &s.changes.worse,
+            "No question scored lower.",
+        )
+    } else {
+        (
+            "better",
+            "Questions that got better",
+            &s.changes.better,
+            "No question scored higher.",
+        )
+    };
+    let _ = write!(o, "<section id=\"{id}\">\n<h2>{title}</h2>\n");
+    if list.is_empty() {
+        let _ = writeln!(o, "<p>{empty}</p>\n</section>");
+        return;
+    }
+    let _ = writeln!(
+        o,
+        "<p>Largest changes in {} first (up to {}). Read both answers: a higher score means more words in common with the reference, not necessarily a better answer.</p>",
+        gate.label(),
+        crate::weigh::CHANGES_LISTED
+    );
+    for (k, ch) in list.iter().enumerate() {
+        let arrow = if ch.change < 0.0 { "▼" } else { "▲" };
+        let _ = write!(
+            o,
+            "<article class=\"change\" id=\"{id}-{}\">\n<div class=\"top\"><span class=\"id mono\"><bdi>{}</bdi></span><span class=\"cat\">category <bdi>{}</bdi></span>\
+             <span class=\"delta {}\">{arrow} {} {}</span></div>\n\
+             <p class=\"q\"><span class=\"lbl\">Question</span><span class=\"text\">{}</span></p>\n",
+            k + 1,
+            escape_cut(&ch.id, 200),
+            escape_cut(&ch.category, 200),
+            if ch.change < 0.0 { "down" } else { "up" },
+            signed(Some(ch.change)),
+            gate.label(),
+            user(&ch.question)
+        );
+        match ch.references.split_first() {
+            Some((first, rest)) => {
+                let _ = writeln!(
+                    o,
+                    "<p class=\"ref\"><span class=\"lbl\">Reference answer</span><span class=\"text\">{}</span>{}</p>",
+                    user(first),
+                    if rest.is_empty() {
+                        String::new()
+                    } else {
+                        format!(
+                            " <span class=\"aside\">(and {} more accepted)</span>",
+                            rest.len()
+                        )
+                    }
+                );
+            }
+            None => {
+                o.push_str("<p class=\"ref\"><span class=\"lbl\">Reference answer</span>none</p>\n")
+            }
+        }
+        let _ = write!(
+            o,
+            "<div class=\"pair\">\n<div class=\"ans base\"><span class=\"score\">{:.2}</span><span class=\"lbl\">Baseline answer</span>{}</div>\n\
+             <div class=\"ans cand\"><span class=\"score\">{:.2}</span><span class=\"lbl\">Candidate answer</span>{}</div>\n</div>\n</article>\n",
+            ch.baseline_score,
+            answer_block(&ch.baseline_answer),
+            ch.candidate_score,
+            answer_block(&ch.candidate_answer)
+        );
+    }
+    o.push_str("</section>\n");
+}
+
+fn cautions_section(o: &mut String) {
+    o.push_str(
+        "<section id=\"cautions\" class=\"cautions\">\n<h2>Cautions</h2>\n<ul>\n\
+         <li>These scores measure word overlap with the reference answers. They cannot show whether an answer is factually right \
+         beyond that overlap, whether its tone fits, whether it gives harmful advice, or whether it follows your organisation's policies.</li>\n\
+         <li>Before rolling out, have a person read a random sample of answers from both models (30 to 50 is a common rule of thumb), \
+         and every answer in sensitive categories.</li>\n\
+         <li>For regulated or high-stakes topics such as refunds, safety, health and money, your organisation's own review rules come first; \
+         a GO here does not replace them.</li>\n\
+         <li>The questions must be held out from the fine-tuning data; otherwise the lift overstates what users will see.</li>\n\
+         </ul>\n</section>\n",
+    );
+}
+
+fn inputs_section(o: &mut String, s: &Summary) {
+    let i = &s.inputs;
+    o.push_str("<section id=\"inputs\">\n<h2>Inputs and fingerprints</h2>\n<div class=\"tablewrap\"><table class=\"inputs\"><thead><tr><th>input</th><th>path</th><th>SHA-256</th></tr></thead><tbody>\n");
+    for (label, f) in [
+        ("questions", &i.questions),
+        ("baseline grades", &i.baseline),
+        ("candidate grades", &i.candidate),
+    ] {
+        let _ = writeln!(
+            o,
+            "<tr><td>{label}</td><td>{}</td><td class=\"hash\">{}</td></tr>",
+            user(&f.path),
+            escape(&f.sha256)
+        );
+    }
+    match (&i.policy.path, &i.policy.sha256) {
+        (Some(path), Some(sha)) => {
+            let _ = writeln!(
+                o,
+                "<tr><td>policy</td><td>{}</td><td class=\"hash\">{}</td></tr>",
+                user(path),
+                escape(sha)
+            );
+        }
+        _ => o.push_str("<tr><td>policy</td><td>built-in default</td><td>–</td></tr>\n"),
+    }
+    o.push_str("</tbody></table></div>\n");
+    let st = &s.settings;
+    let pol = &s.policy;
+    let _ = write!(
+        o,
+        "<h3>Settings</h3>\n<ul>\n\
+         <li>{} resamples, seed {}, {:.0}% intervals ({}); {}; p-values: {}; random numbers: {}.</li>\n\
+         <li>Policy: at least {} in-scope questions; the lower end of the {} lift interval above {} (target {}); \
+         out-of-scope questions declined at least {}; in-scope questions wrongly declined at most {}; \
+         categories with at least {} in-scope questions may lose at most {} ({} rule).</li>\n\
+         <li>liftgate {}, summary format {}.</li>\n</ul>\n</section>\n",
+        st.resamples,
+        st.seed,
+        100.0 * st.confidence,
+        escape(st.interval.as_str()),
+        escape(&st.bootstrap_method),
+        escape(&st.p_value_method),
+        escape(&st.rng),
+        pol.min_questions,
+        pol.lift.metric.label(),
+        signed(Some(pol.lift.min_ci_low)),
+        signed(Some(pol.lift.target)),
+        pct(Some(pol.refusal.min_out_of_scope)),
+        pct(Some(pol.refusal.max_false_refusal)),
+        pol.categories.min_questions,
+        num(Some(pol.categories.max_regression)),
+        pol.categories.rule.as_str(),
+        escape(&s.tool_version),
+        escape(&s.format)
+    );
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::policy::Policy;
+    use std::collections::BTreeMap;
+
+    /// Answers an attacker (or a confused model) might produce.
+    const HOSTILE: &[&str] = &[
+        "<img src=x onerror=alert(1)><script>window.__pwned=1</script>",
+        "</div></article><style>body{display:none}</style><link rel=stylesheet href=http://tracker.invalid/x.css>",
+        "<a href=\"javascript:alert(1)\">pay here</a> <a href='http://phish.invalid'>x</a>",
+        "\" onmouseover=\"alert(1)\" x=' <svg onload=alert(1)><foreignObject>",
+        "\u{202e}desrever\u{2066}isolate\u{2069}\u{200b}zero\u{feff}bom",
+        "\u{1b}[31mred\u{7}bell\u{0}nul\r\nline\u{2028}sep",
+        "<!-- open comment <![CDATA[ x ]]> &amp; &lt;b&gt; <meta http-equiv=refresh content=0;url=http://x.invalid>",
+        "<iframe srcdoc=\"<script>parent.__pwned=1</script>\"></iframe><object data=x></object>",
+    ];
+
+    fn metric(lift: f64, n: usize) -> MetricSummary {
+        MetricSummary {
+            baseline: Some(0.05),
+            candidate: Some(0.05 + lift),
+            lift: Some(lift),
+            ci_low: Some(lift - 0.03),
+            ci_high: Some(lift + 0.04),
+            p_value: Some(0.00001),
+            n,
+            percentile: None,
+            bca: None,
+            p_value_method: "sign-flip".into(),
+            better: n / 2,
+            worse: n / 5,
+            same: n - n / 2 - n / 5,
+        }
+    }
+
+    fn rate(declined: u64, n: u64) -> Rate {
+        let share = declined as f64 / n as f64;
+        Rate {
+            declined,
+            share: Some(share),
+            ci_low: Some((share - 0.1).max(0.0)),
+            ci_high: Some((share + 0.1).min(1.0)),
+        }
+    }
+
+    fn file(path: &str) -> InputFile {
+        InputFile {
+            path: path.into(),
+            sha256: "ab".repeat(32),
+        }
+    }
+
+    /// A summary whose every user-text field holds hostile text.
+    fn summary(hostile: bool) -> Summary {
+        let h = |i: usize, plain: &str| {
+            if hostile {
+                format!("{plain} {}", HOSTILE[i % HOSTILE.len()])
+            } else {
+                plain.to_string()
+            }
+        };
+        let mut categories = BTreeMap::new();
+        for (k, name) in ["fares", "pets", "timetables"].iter().enumerate() {
+            categories.insert(
+                h(k, name),
+                CategorySummary {
+                    n: 4 + 8 * k,
+                    refuse_questions: k,
+                    baseline: Some(0.1),
+                    candidate: Some(0.15),
+                    lift: Some(0.05 - 0.04 * k as f64),
+                    ci_low: Some(-0.05),
+                    ci_high: Some(0.12),
+                    p_value: Some(0.3),
+                    p_value_holm: Some(0.6),
+                    judged: k > 0,
+                },
+            );
+        }
+        let changes = |sign: f64| -> Vec<Change> {
+            HOSTILE
+                .iter()
+                .enumerate()
+                .map(|(i, a)| Change {
+                    id: h(i, &format!("q{i}")),
+                    category: h(i + 1, "pets"),
+                    question: h(i + 2, "Can I bring my dog?"),
+                    references: vec![h(i + 3, "Yes, on a lead."), "Yes.".into()],
+                    baseline_answer: if hostile {
+                        a.to_string()
+                    } else {
+                        "Dogs travel free.".into()
+                    },
+                    candidate_answer: if hostile {
+                        format!("{a} {}", "long ".repeat(100))
+                    } else {
+                        "Yes, dogs travel free on a lead.".into()
+                    },
+                    baseline_score: 0.5,
+                    candidate_score: 0.5 + sign * 0.25,
+                    change: sign * 0.25,
+                })
+                .collect()
+        };
+        let policy = Policy::default();
+        Summary {
+            format: FORMAT.into(),
+            tool_version: "0.1.0".into(),
+            inputs: Inputs {
+                questions: file(&h(0, "eval-sets/ferry.jsonl")),
+                baseline: file(&h(1, "base.grades.jsonl")),
+                candidate: file(&h(2, "cand.grades.jsonl")),
+                policy: PolicySource {
+                    path: Some(h(3, "gate.toml")),
+                    sha256: Some("cd".repeat(32)),
+                    source: "file".into(),
+                },
+                approximations: vec![h(4, "candidate: bf16")],
+            },
+            settings: Settings {
+                resamples: 1000,
+                seed: 7,
+                confidence: 0.95,
+                interval: IntervalKind::Bca,
+                bootstrap_method: "paired".into(),
+                p_value_method: "sign-flip".into(),
+                rng: "chacha".into(),
+            },
+            policy,
+            metrics: Metrics {
+                exact_match: metric(0.0, 40),
+                token_f1: metric(0.08, 40),
+                rouge_l: metric(0.06, 40),
+            },
+            mcnemar: McNemar {
+                baseline_only: 1,
+                candidate_only: 2,
+                both: 3,
+                neither: 34,
+                p_value: 1.0,
+                method: "exact".into(),
+            },
+            refusal: Refusal {
+                out_of_scope: RefusalRates {
+                    n: 10,
+                    baseline: rate(2, 10),
+                    candidate: rate(7, 10),
+                },
+                false_refusal: RefusalRates {
+                    n: 40,
+                    baseline: rate(1, 40),
+                    candidate: rate(6, 40),
+                },
+                interval: "wilson".into(),
+            },
+            categories,
+            mde: Mde {
+                metric: "token_f1".into(),
+                alpha: 0.05,
+                power: 0.8,
+                value: Some(0.05),
+                sd_diff: Some(0.1),
+                n: 40,
+                target: 0.03,
+                questions_for_target: Some(280),
+                method: "normal".into(),
+                note: None,
+            },
+            changes: Changes {
+                metric: "token_f1".into(),
+                worse: changes(-1.0),
+                better: changes(1.0),
+            },
+            warnings: vec![h(5, "The set is small.")],
+            verdict: Verdict {
+                go: false,
+                checks: vec![
+                    Check {
+                        name: "refusal.out_of_scope".into(),
+                        description: "share declined".into(),
+                        threshold: 0.8,
+                        value: Some(0.7),
+                        comparison: Comparison::AtLeast,
+                        pass: false,
+                        reason: Some("The fine-tuned model declines only 70.0%.".into()),
+                    },
+                    Check {
+                        name: h(6, "category.pets"),
+                        description: h(7, "upper end in category"),
+                        threshold: -0.05,
+                        value: Some(0.12),
+                        comparison: Comparison::AtLeast,
+                        pass: !hostile,
+                        reason: hostile.then(|| h(0, "Category got clearly worse:")),
+                    },
+                ],
+            },
+        }
+    }
+
+    #[test]
+    fn escape_makes_markup_and_format_characters_inert() {
+        let e = escape("<a href='x' title=\"y\">&amp;</a>");
+        assert_eq!(
+            e,
+            "&lt;a href=&#39;x&#39; title=&quot;y&quot;&gt;&amp;amp;&lt;/a&gt;"
+        );
+        let e = escape("a\u{202e}b\u{2066}c\u{200b}d\u{1b}e\u{0}f\r\ng\u{2028}h\ti");
+        assert_eq!(e, "a\u{FFFD}b\u{FFFD}c\u{FFFD}d\u{FFFD}e\u{FFFD}f\ng\nh\ti");
+        // Legitimate right-to-left and non-Latin text is kept.
+        assert_eq!(escape("שלום · Ελλάδα · 東京"), "שלום · Ελλάδα · 東京");
+    }
+
+    /// The tags and attributes the page itself writes; anything else in the output would be
+    /// live markup from user text.
+    const OUR_TAGS: &[&str] = &[
+        "html",
+        "head",
+        "meta",
+        "link",
+        "title",
+        "style",
+        "body",
+        "header",
+        "div",
+        "span",
+        "main",
+        "section",
+        "h1",
+        "h2",
+        "h3",
+        "p",
+        "ul",
+        "li",
+        "aside",
+        "strong",
+        "svg",
+        "circle",
+        "path",
+        "rect",
+        "figure",
+        "figcaption",
+        "desc",
+        "defs",
+        "pattern",
+        "line",
+        "text",
+        "details",
+        "summary",
+        "table",
+        "thead",
+        "tbody",
+        "tr",
+        "th",
+        "td",
+        "article",
+        "bdi",
+        "em",
+        "footer",
+    ];
+
+    /// Every tag in `html`, in order (a minimal scanner: '<' starts a tag, as an HTML parser
+    /// would read it in text).
+    fn tags(html: &str) -> Vec<String> {
+        let mut out = Vec::new();
+        let mut rest = html;
+        while let Some(i) = rest.find('<') {
+            rest = &rest[i + 1..];
+            let name: String = rest
+                .trim_start_matches('/')
+                .chars()
+                .take_while(|c| c.is_ascii_alphanumeric() || *c == '!')
+                .collect();
+            out.push(name.to_ascii_lowercase());
+        }
+        out
+    }
+
+    #[test]
+    fn hostile_text_stays_text() {
+        let page = render(&summary(true));
+        // No tag the page does not write itself: no script, style, img, a, iframe, object,
+        // link to a stylesheet, meta refresh, foreignObject, comment or CDATA from user text.
+        for t in tags(&page) {
+            assert!(
+                t == "!doctype" || OUR_TAGS.contains(&t.as_str()),
+                "unexpected tag <{t}> in page"
+            );
+        }
+        assert_eq!(page.matches("<style>").count(), 1);
+        assert_eq!(page.matches("<link ").count(), 1);
+        assert!(page.contains("<link rel=\"icon\" href=\"data:,\">"));
+        assert_eq!(page.matches("<meta ").count(), 5);
+        assert!(!page.to_ascii_lowercase().contains("<script"));
+        assert!(!page.contains("javascript:alert(1)\">"));
+        // No attribute quote broken out of: every '"' belongs to an attribute we wrote, so
+        // the count of `="` openings equals half the quotes.
+        let body = page.replace(&format!("<style>{}</style>", stylesheet()), "");
+        let quotes = body.matches('"').count();
+        let openings = body.matches("=\"").count();
+        assert_eq!(quotes, 2 * openings, "a stray quote in the page");
+        // No event-handler attribute anywhere outside text: every "on...=" is escaped text.
+        for handler in ["onerror=", "onload=", "onmouseover="] {
+            for (i, _) in page.match_indices(handler) {
+                let before = &page[..i];
+                let last_lt = before.rfind('<').unwrap_or(0);
+                let last_gt = before.rfind('>').unwrap_or(0);
+                assert!(
+                    last_gt > last_lt,
+                    "{handler} inside a tag near {}",
+                    &page[i.saturating_sub(60)..i]
+                );
+            }
+        }
+        // Bidirectional overrides and isolates, zero-width and control characters are gone.
+        for c in page.chars() {
+            assert!(
+                !matches!(c as u32, 0x200B..=0x200F | 0x202A..=0x202E | 0x2066..=0x2069 | 0xFEFF),
+                "format character U+{:04X}",
+                c as u32
+            );
+            assert!(!c.is_control() || c == '\n' || c == '\t', "control {c:?}");
+        }
+        // The hostile text is shown, made inert, not dropped.
+        assert!(page.contains(
+            "&lt;img src=x onerror=alert(1)&gt;&lt;script&gt;window.__pwned=1&lt;/script&gt;"
+        ));
+        assert!(page.contains("&lt;a href=&quot;javascript:alert(1)&quot;&gt;pay here"));
+        assert!(page.contains("\u{FFFD}desrever\u{FFFD}isolate"));
+    }
+
+    #[test]
+    fn the_page_loads_nothing_and_runs_nothing() {
+        let page = render(&summary(false));
+        let css = stylesheet();
+        let csp = content_security_policy(&css);
+        assert!(page.contains(&format!(
+            "<meta http-equiv=\"Content-Security-Policy\" content=\"{csp}\">"
+        )));
+        assert!(csp.starts_with("default-src 'none'; style-src 'sha256-"));
+        assert!(!csp.contains("script-src") && !csp.contains("unsafe"));
+        // The hash is of the exact stylesheet in the page (the browser hashes the element's
+        // text): base64 of 32 bytes is 44 characters.
+        assert!(page.contains(&format!("<style>{css}</style>")));
+        let hash = csp
+            .split("'sha256-")
+            .nth(1)
+            .unwrap()
+            .split('\'')
+            .next()
+            .unwrap();
+        assert_eq!(hash.len(), 44);
+        // No reference to any network resource: the only URLs are the SVG namespace (an
+        // identifier, never fetched).
+        let without_ns = page.replace("xmlns=\"http://www.w3.org/2000/svg\"", "");
+        assert!(!without_ns.contains("http://") && !without_ns.contains("https://"));
+        assert!(!without_ns.contains("url(http") && !without_ns.contains("@import"));
+        assert!(!page.contains(" src=") && !page.contains(" href=\"http"));
+        assert!(!page.to_ascii_lowercase().contains("<script"));
+    }
+
+    #[test]
+    fn sections_come_in_the_documented_order() {
+        let page = render(&summary(false));
+        let order = [
+            "id=\"verdict\"",
+            "id=\"key-figures\"",
+            "data-chart=\"chart-lift\"",
+            "data-chart=\"chart-categories\"",
+            "data-chart=\"chart-refusals\"",
+            "data-chart=\"chart-changes\"",
+            "id=\"checks\"",
+            "id=\"worse\"",
+            "id=\"better\"",
+            "id=\"cautions\"",
+            "id=\"inputs\"",
+        ];
+        let mut last = 0;
+        for key in order {
+            let at = page.find(key).unwrap_or_else(|| panic!("{key} missing"));
+            assert!(at > last, "{key} out of order");
+            last = at;
+        }
+        // The verdict is in words and carries the failing reason.
+        assert!(page.contains("data-verdict=\"NO-GO\""));
+        assert!(page.contains("The fine-tuned model declines only 70.0%."));
+        // Pass and fail in words, not colour only.
+        assert!(page.contains("PASS</span>") && page.contains("FAIL</span>"));
+        // Every chart has a title, a description and a caption.
+        for id in [
+            "chart-lift",
+            "chart-categories",
+            "chart-refusals",
+            "chart-changes",
+        ] {
+            assert!(page.contains(&format!("<title id=\"{id}-title\">")), "{id}");
+            assert!(page.contains(&format!("<desc id=\"{id}-desc\">")), "{id}");
+        }
+        assert_eq!(page.matches("<figcaption>").count(), 4);
+        // The cautions recommend human review and defer to the organisation's rules.
+        assert!(page.contains("have a person read a random sample"));
+        assert!(page.contains("your organisation's own review rules come first"));
+        // Full fingerprints are shown.
+        assert!(page.contains(&"ab".repeat(32)));
+    }
+
+    #[test]
+    fn long_answers_fold_without_script() {
+        let long = "word ".repeat(200);
+        let block = answer_block(&long);
+        assert!(block.starts_with("<details class=\"fold\"><summary>"));
+        assert!(block.contains("show the whole answer (1000 characters)"));
+        // The whole text is inside the details, the preview in the summary.
+        assert!(block.contains(&escape(&long)));
+        let short = answer_block("Yes.");
+        assert!(!short.contains("<details"));
+        // An absurdly long answer is cut, and says so.
+        let huge = "x".repeat(MAX_CHARS + 5);
+        assert!(answer_block(&huge).contains("cut at 10000 characters"));
+    }
+
+    #[test]
+    fn rendering_is_deterministic() {
+        assert_eq!(render(&summary(true)), render(&summary(true)));
+        assert_eq!(render(&summary(false)), render(&summary(false)));
+    }
+
+    #[test]
+    fn go_verdict_says_so_in_words() {
+        let mut s = summary(false);
+        s.verdict.go = true;
+        for c in &mut s.verdict.checks {
+            c.pass = true;
+            c.reason = None;
+        }
+        let page = render(&s);
+        assert!(page.contains("data-verdict=\"GO\""));
+        assert!(page.contains("passed all 2 checks"));
+        assert!(!page.contains("FAIL</span>"));
+    }
+}
