@@ -14,6 +14,7 @@ pub mod error;
 pub mod fsutil;
 pub mod generate;
 pub mod grades;
+pub mod history;
 pub mod interrupt;
 pub mod journal;
 pub mod model;

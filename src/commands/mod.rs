@@ -3,6 +3,8 @@
 
 pub mod answer;
 pub mod grade;
+pub mod record;
+pub mod trend;
 pub mod vet;
 pub mod weigh;
 
@@ -24,5 +26,7 @@ pub fn run(command: Command) -> Result<Outcome> {
         Command::Grade(args) => grade::run(&args),
         Command::Weigh(args) => weigh::run(&args),
         Command::Vet(args) => vet::run(&args),
+        Command::Trend(args) => trend::run(&args),
+        Command::Record(args) => record::run(&args),
     }
 }

@@ -24,6 +24,7 @@ use crate::cli::VetArgs;
 use crate::error::{Error, Result};
 use crate::fsutil;
 use crate::generate::RunInfo;
+use crate::history::{self, RecordOptions};
 use crate::interrupt::StopFlag;
 use crate::journal::{self, RunIdentity};
 use crate::policy::Policy;
@@ -83,6 +84,8 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
     let stats = Settings::new(args.stats.resamples, args.stats.seed, args.stats.confidence)?;
     let policy = Policy::load_or_default(args.stats.policy.as_deref())?;
     let set = QuestionSet::load(&inputs.questions)?;
+    let reports_parent = args.report.as_deref().map_or("reports".into(), history::parent_of);
+    let history = RecordOptions::resolve(&args.history, &reports_parent, "vet")?;
 
     let stop = StopFlag::install()?;
 
@@ -118,6 +121,7 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
         &set,
         args,
         &stop,
+        history.as_ref(),
     ) {
         Ok(outcome) => Ok(outcome),
         Err(e @ Error::Interrupted { .. }) => Err(e),
@@ -295,6 +299,7 @@ fn vet_into(
     set: &QuestionSet,
     args: &VetArgs,
     stop: &StopFlag,
+    history: Option<&RecordOptions>,
 ) -> Result<Outcome> {
     let detector = RefusalDetector::with_extra_phrases(&policy.refusal.extra_phrases);
     let mut grade_paths = Vec::new();
@@ -345,6 +350,8 @@ fn vet_into(
         inputs: summary_inputs,
     })?;
     report::write_report_dir(dir, &summary)?;
+    let graded = history::two((baseline, baseline_path), (candidate, candidate_path));
+    history::record_after_report(history, set, &graded, &summary, dir);
     print!("{}", report::terminal::render(&summary));
     println!("report: {}", dir.join("report.md").display());
     Ok(if summary.verdict.go {

@@ -7,6 +7,7 @@ use crate::cli::WeighArgs;
 use crate::error::Result;
 use crate::fsutil;
 use crate::grades;
+use crate::history::{self, RecordOptions};
 use crate::policy::Policy;
 use crate::questions::QuestionSet;
 use crate::report::{self, summary};
@@ -16,6 +17,7 @@ use std::path::Path;
 pub fn run(args: &WeighArgs) -> Result<Outcome> {
     let settings = Settings::new(args.stats.resamples, args.stats.seed, args.stats.confidence)?;
     let policy = Policy::load_or_default(args.stats.policy.as_deref())?;
+    let history = RecordOptions::resolve(&args.history, &history::parent_of(&args.report), "weigh")?;
     let set = QuestionSet::load(&args.questions)?;
     let baseline = grades::load_for_set(&args.baseline, &set)?;
     let candidate = grades::load_for_set(&args.candidate, &set)?;
@@ -40,6 +42,8 @@ pub fn run(args: &WeighArgs) -> Result<Outcome> {
         inputs,
     })?;
     report::write_report_dir(&args.report, &summary)?;
+    let graded = history::two((&baseline, &args.baseline), (&candidate, &args.candidate));
+    history::record_after_report(history.as_ref(), &set, &graded, &summary, &args.report);
     print!("{}", report::terminal::render(&summary));
     println!("report: {}", args.report.join("report.md").display());
     Ok(if summary.verdict.go {
