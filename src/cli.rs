@@ -204,6 +204,10 @@ pub struct TrendArgs {
     /// Compare the candidates of these two runs (ids or labels) instead of consecutive runs.
     #[arg(long, num_args = 2, value_names = ["A", "B"])]
     pub between: Option<Vec<String>>,
+    /// Without --between: compare the candidates of the last N consecutive pairs of runs of
+    /// each set (0: every consecutive pair; each comparison is a bootstrap).
+    #[arg(long, value_name = "N", default_value_t = 10)]
+    pub pairs: usize,
     /// Directory to write trend.md and trend.json into.
     #[arg(long, value_name = "DIR")]
     pub out: Option<PathBuf>,

@@ -33,6 +33,7 @@ pub fn run(args: &TrendArgs) -> Result<Outcome> {
             set: args.set.clone(),
             last: args.last,
             between,
+            pairs: (args.pairs > 0).then_some(args.pairs),
             boot: BootSettings {
                 resamples: stats.resamples,
                 confidence: stats.confidence,

@@ -597,6 +597,8 @@ pub struct TrendOptions {
     pub last: Option<usize>,
     /// Compare these two runs (ids or labels) instead of consecutive runs.
     pub between: Option<(String, String)>,
+    /// Without `between`: only the last N consecutive pairs of each set (None: all).
+    pub pairs: Option<usize>,
     pub boot: trend::BootSettings,
 }
 
@@ -636,31 +638,45 @@ pub fn build_trend(store: &Store, opts: &TrendOptions) -> Result<trend::Trend> {
     let mut series = Vec::new();
     for (name, runs) in &by_set {
         let revs: Vec<&[QuestionKey]> = runs.iter().map(|r| rev(r)).collect();
-        let common = trend::common_unchanged(&revs);
+        // Work per distinct revision, not per run: a long history has few revisions.
         let distinct: std::collections::BTreeSet<&str> =
             runs.iter().map(|r| r.set_fingerprint.as_str()).collect();
+        let distinct_revs: Vec<&[QuestionKey]> =
+            distinct.iter().map(|fp| revisions[*fp].as_slice()).collect();
+        let common = trend::common_unchanged(&distinct_revs);
+        let at_of: BTreeMap<&str, Vec<usize>> = distinct
+            .iter()
+            .map(|fp| (*fp, trend::positions(&revisions[*fp], &common)))
+            .collect();
         let mut out_runs = Vec::with_capacity(runs.len());
         for (k, r) in runs.iter().enumerate() {
-            let change = (k > 0).then(|| trend::set_change(revs[k - 1], revs[k]));
+            // The same file fingerprint is the same bytes: unchanged.
+            let change = (k > 0).then(|| {
+                if runs[k - 1].set_fingerprint == r.set_fingerprint {
+                    trend::SetChange::default()
+                } else {
+                    trend::set_change(revs[k - 1], revs[k])
+                }
+            });
             let (b, c) = (baseline_idx(r), candidate_idx(r));
             for idx in [b, c] {
                 if !scores_cache.contains_key(&(r.id, idx)) {
                     scores_cache.insert((r.id, idx), store.scores(r.id, idx)?);
                 }
             }
-            let at = trend::positions(revs[k], &common);
             let lfl = trend::means_at(
                 revs[k],
                 &scores_cache[&(r.id, b)],
                 &scores_cache[&(r.id, c)],
-                &at,
+                &at_of[r.set_fingerprint.as_str()],
             );
-            // Only the candidate's grades are needed again (for comparisons).
+            // Only the candidates' grades of the compared runs are needed again.
             scores_cache.remove(&(r.id, b));
+            scores_cache.remove(&(r.id, c));
             out_runs.push(trend_run(r, revs[k].len(), change, lfl));
         }
         let set_changed = distinct.len() > 1
-            || revs
+            || distinct_revs
                 .iter()
                 .any(|r| r.iter().any(|q| q.content_hash.is_none()));
         series.push(trend::Series {
@@ -695,7 +711,11 @@ pub fn build_trend(store: &Store, opts: &TrendOptions) -> Result<trend::Trend> {
         pairs.push(("between", earlier, later));
     } else {
         for runs in by_set.values() {
-            for w in runs.windows(2) {
+            let windows: Vec<&[&StoredRun]> = runs.windows(2).collect();
+            let skip = opts
+                .pairs
+                .map_or(0, |n| windows.len().saturating_sub(n));
+            for w in &windows[skip..] {
                 pairs.push(("consecutive", w[0], w[1]));
             }
         }

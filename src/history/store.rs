@@ -356,7 +356,12 @@ impl Store {
                 format!("cannot switch the history file to WAL journal mode (SQLite kept {mode:?}); concurrent runs could not record safely"),
             ));
         }
-        retry_busy(&path, || self.conn.execute_batch("PRAGMA foreign_keys = ON"))?;
+        // Reads of the grade blobs go through the OS page cache directly (no copy into
+        // SQLite's own cache): `trend` over a long history reads every run's grades.
+        retry_busy(&path, || {
+            self.conn
+                .execute_batch("PRAGMA foreign_keys = ON; PRAGMA mmap_size = 1073741824;")
+        })?;
         if version < SCHEMA_VERSION {
             migrate(&mut self.conn, &path, MIGRATIONS)?;
         }
@@ -420,6 +425,7 @@ impl Store {
             self.conn
                 .prepare_cached(
                     "SELECT exact_match, token_f1, rouge_l, refused FROM variants WHERE run_id = ?1 AND idx = ?2",
+
                 )?
                 .query_row(params![run, idx as i64], |r| {
                     Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))

@@ -537,6 +537,10 @@ pub fn comparison_sentence(
         );
     };
     let mut s = format!("{head}: {} {}", gate.label(), signed(diff));
+    if d.ci_low == Some(diff) && d.ci_high == Some(diff) && diff == 0.0 {
+        s.push_str("; the two candidates score the same on every one of these questions");
+        return s;
+    }
     if let (Some(lo), Some(hi)) = (d.ci_low, d.ci_high) {
         s.push_str(&format!(" ({} to {})", signed(lo), signed(hi)));
     }
