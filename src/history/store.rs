@@ -364,6 +364,9 @@ impl Store {
         })?;
         if version < SCHEMA_VERSION {
             migrate(&mut self.conn, &path, MIGRATIONS)?;
+            // Another process may have migrated further meanwhile.
+            let (version, app, tables) = retry_busy(&path, || identity(&self.conn))?;
+            check_identity(&path, version, app, tables)?;
         }
         Ok(())
     }
@@ -493,9 +496,7 @@ pub fn migrate(conn: &mut Connection, path: &Path, migrations: &[&str]) -> Resul
             ))?;
         }
         tx.commit()
-    })?;
-    let (version, app, tables) = retry_busy(path, || identity(conn))?;
-    check_identity(path, version, app, tables)
+    })
 }
 
 fn insert_run_tx(conn: &mut Connection, run: &NewRun) -> rusqlite::Result<i64> {
