@@ -61,7 +61,11 @@ fn grades(set: &QuestionSet, rng: &mut Mix, quality: f64) -> Vec<GradeRecord> {
                 exact_match: answer.then_some((f1 > 0.9) as u8),
                 token_f1: answer.then_some(f1),
                 rouge_l: answer.then_some((f1 * 0.9).clamp(0.0, 1.0)),
-                refused: if answer { rng.next() < 0.05 } else { rng.next() < 0.8 },
+                refused: if answer {
+                    rng.next() < 0.05
+                } else {
+                    rng.next() < 0.8
+                },
                 answer: String::new(),
             }
         })
@@ -70,7 +74,10 @@ fn grades(set: &QuestionSet, rng: &mut Mix, quality: f64) -> Vec<GradeRecord> {
 
 fn main() {
     let args: Vec<String> = std::env::args().collect();
-    let file = PathBuf::from(args.get(1).expect("usage: history_fill FILE [RUNS] [QUESTIONS]"));
+    let file = PathBuf::from(
+        args.get(1)
+            .expect("usage: history_fill FILE [RUNS] [QUESTIONS]"),
+    );
     let runs: usize = args.get(2).map_or(1000, |s| s.parse().expect("RUNS"));
     let n: usize = args.get(3).map_or(2000, |s| s.parse().expect("QUESTIONS"));
     let policy = Policy::default();
@@ -133,7 +140,11 @@ fn main() {
         )
         .expect("record");
         if (r + 1) % 100 == 0 {
-            eprintln!("{} runs recorded ({:.1} s)", r + 1, t0.elapsed().as_secs_f64());
+            eprintln!(
+                "{} runs recorded ({:.1} s)",
+                r + 1,
+                t0.elapsed().as_secs_f64()
+            );
         }
     }
 }

@@ -55,8 +55,16 @@ fn edited_demo_set(path: &Path) {
         }
     }
     for (id, q, r) in [
-        ("new-001", "Can I pay for my crossing on board?", "Yes, cards are taken on board."),
-        ("new-002", "Is there a cafe on the ferry?", "Yes, a small cafe opens on every crossing."),
+        (
+            "new-001",
+            "Can I pay for my crossing on board?",
+            "Yes, cards are taken on board.",
+        ),
+        (
+            "new-002",
+            "Is there a cafe on the ferry?",
+            "Yes, a small cafe opens on every crossing.",
+        ),
     ] {
         rows.push(serde_json::json!({"id": id, "question": q, "references": [r], "category": "onboard", "expect": "answer"}));
     }
@@ -68,8 +76,15 @@ fn edited_demo_set(path: &Path) {
 fn two_demo_runs_show_in_the_trend_with_the_set_change_and_like_for_like() {
     let tmp = tempfile::tempdir().unwrap();
     let dir = tmp.path();
-    let first = liftgate(dir, &["vet", "--resamples", "1000", "--label", "adapter v1"]);
-    assert!(matches!(first.status.code(), Some(0 | 1)), "{}", text(&first.stderr));
+    let first = liftgate(
+        dir,
+        &["vet", "--resamples", "1000", "--label", "adapter v1"],
+    );
+    assert!(
+        matches!(first.status.code(), Some(0 | 1)),
+        "{}",
+        text(&first.stderr)
+    );
     assert!(text(&first.stderr).contains("recorded as run 1 in reports/history.sqlite"));
     let first_dir = report_dir(dir, &first);
 
@@ -94,7 +109,11 @@ fn two_demo_runs_show_in_the_trend_with_the_set_change_and_like_for_like() {
             "adapter v2",
         ],
     );
-    assert!(matches!(second.status.code(), Some(0 | 1)), "{}", text(&second.stderr));
+    assert!(
+        matches!(second.status.code(), Some(0 | 1)),
+        "{}",
+        text(&second.stderr)
+    );
     assert!(text(&second.stderr).contains("recorded as run 2"));
     let second_dir = report_dir(dir, &second);
     assert!(dir.join("reports/history.sqlite").is_file());
@@ -102,12 +121,17 @@ fn two_demo_runs_show_in_the_trend_with_the_set_change_and_like_for_like() {
     let trend = liftgate(dir, &["trend", "--out", "trend-out", "--resamples", "1000"]);
     let stdout = text(&trend.stdout);
     assert_eq!(trend.status.code(), Some(0), "{}", text(&trend.stderr));
-    assert!(stdout.contains("adapter v1") && stdout.contains("adapter v2"), "{stdout}");
+    assert!(
+        stdout.contains("adapter v1") && stdout.contains("adapter v2"),
+        "{stdout}"
+    );
     assert!(stdout.contains("2 added, 3 edited"), "{stdout}");
     assert!(stdout.contains("NOT one like-for-like series"), "{stdout}");
     // 141 demo questions, 3 edited: 138 common and unchanged.
     assert!(
-        stdout.contains("run 2 (adapter v2) vs run 1 (adapter v1) on 138 shared unchanged questions: token F1"),
+        stdout.contains(
+            "run 2 (adapter v2) vs run 1 (adapter v1) on 138 shared unchanged questions: token F1"
+        ),
         "{stdout}"
     );
     let md = std::fs::read_to_string(dir.join("trend-out/trend.md")).unwrap();
@@ -132,7 +156,15 @@ fn two_demo_runs_show_in_the_trend_with_the_set_change_and_like_for_like() {
     for (run, rdir) in runs.iter().zip([&first_dir, &second_dir]) {
         let s = json(&rdir.join("summary.json"));
         for m in ["exact_match", "token_f1", "rouge_l"] {
-            for f in ["baseline", "candidate", "lift", "ci_low", "ci_high", "p_value", "n"] {
+            for f in [
+                "baseline",
+                "candidate",
+                "lift",
+                "ci_low",
+                "ci_high",
+                "p_value",
+                "n",
+            ] {
                 assert_eq!(run["metrics"][m][f], s["metrics"][m][f], "{m}.{f}");
             }
         }
@@ -161,7 +193,14 @@ fn two_demo_runs_show_in_the_trend_with_the_set_change_and_like_for_like() {
     // --between by label gives the same pair.
     let between = liftgate(
         dir,
-        &["trend", "--between", "adapter v1", "2", "--resamples", "1000"],
+        &[
+            "trend",
+            "--between",
+            "adapter v1",
+            "2",
+            "--resamples",
+            "1000",
+        ],
     );
     assert_eq!(between.status.code(), Some(0), "{}", text(&between.stderr));
     assert!(text(&between.stdout).contains("run 2 (adapter v2) vs run 1 (adapter v1)"));
@@ -177,7 +216,11 @@ const SET: &str = r#"{"id": "a1", "question": "When does the first boat leave?",
 "#;
 
 fn grade_row(id: &str, f1: Option<f64>, refused: bool) -> String {
-    let expect = if id.starts_with('x') { "refuse" } else { "answer" };
+    let expect = if id.starts_with('x') {
+        "refuse"
+    } else {
+        "answer"
+    };
     serde_json::json!({
         "id": id, "category": "c", "expect": expect,
         "exact_match": f1.map(|v| (v == 1.0) as u8), "token_f1": f1, "rouge_l": f1,
@@ -260,7 +303,15 @@ fn eight_weighs_finishing_at_once_are_all_recorded() {
     }
     let trend = liftgate(
         dir,
-        &["trend", "--history", "shared/history.sqlite", "--out", "t", "--resamples", "1000"],
+        &[
+            "trend",
+            "--history",
+            "shared/history.sqlite",
+            "--out",
+            "t",
+            "--resamples",
+            "1000",
+        ],
     );
     assert_eq!(trend.status.code(), Some(0), "{}", text(&trend.stderr));
     let t = json(&dir.join("t/trend.json"));
@@ -271,7 +322,10 @@ fn eight_weighs_finishing_at_once_are_all_recorded() {
         .map(|r| r["label"].as_str().unwrap().to_string())
         .collect();
     labels.sort();
-    assert_eq!(labels, (0..8).map(|i| format!("writer {i}")).collect::<Vec<_>>());
+    assert_eq!(
+        labels,
+        (0..8).map(|i| format!("writer {i}")).collect::<Vec<_>>()
+    );
     // Same set throughout: no like-for-like table, the comparisons find no change.
     assert_eq!(t["series"][0]["set_changed"], false);
 }
@@ -284,7 +338,10 @@ fn damaged_or_foreign_history_files_exit_2_and_stay_untouched() {
     let mut damaged = b"SQLite format 3\0".to_vec();
     damaged.extend(std::iter::repeat_n(0xa5u8, 4096));
     for (name, bytes) in [
-        ("notes.sqlite", b"these are my notes, not a database\n".to_vec()),
+        (
+            "notes.sqlite",
+            b"these are my notes, not a database\n".to_vec(),
+        ),
         ("damaged.sqlite", damaged),
     ] {
         let path = dir.join(name);
@@ -292,7 +349,10 @@ fn damaged_or_foreign_history_files_exit_2_and_stay_untouched() {
         let out = weigh(dir, "reports/r", &["--history", name]);
         assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
         assert!(text(&out.stderr).contains(name), "{}", text(&out.stderr));
-        assert!(!dir.join("reports/r/summary.json").exists(), "weigh ran anyway");
+        assert!(
+            !dir.join("reports/r/summary.json").exists(),
+            "weigh ran anyway"
+        );
         let out = liftgate(dir, &["trend", "--history", name]);
         assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
         assert!(text(&out.stderr).contains(name));
@@ -306,7 +366,11 @@ fn a_newer_schema_is_refused_and_left_unchanged() {
     let dir = tmp.path();
     weigh_inputs(dir);
     let out = weigh(dir, "reports/one", &[]);
-    assert!(matches!(out.status.code(), Some(0 | 1)), "{}", text(&out.stderr));
+    assert!(
+        matches!(out.status.code(), Some(0 | 1)),
+        "{}",
+        text(&out.stderr)
+    );
     let history = dir.join("reports/history.sqlite");
     {
         let conn = rusqlite::Connection::open(&history).unwrap();
@@ -318,7 +382,10 @@ fn a_newer_schema_is_refused_and_left_unchanged() {
     let stderr = text(&out.stderr);
     assert_eq!(out.status.code(), Some(2), "{stderr}");
     assert!(stderr.contains("history.sqlite"), "{stderr}");
-    assert!(stderr.contains("schema version 7") && stderr.contains("version 1"), "{stderr}");
+    assert!(
+        stderr.contains("schema version 7") && stderr.contains("version 1"),
+        "{stderr}"
+    );
     let out = weigh(dir, "reports/two", &[]);
     assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
     assert_eq!(std::fs::read(&history).unwrap(), before);
@@ -331,7 +398,11 @@ fn a_failed_recording_keeps_the_report_and_says_how_to_record_it() {
     weigh_inputs(dir);
     // A history path that cannot be created (its parent is a file).
     std::fs::write(dir.join("blocker"), "x").unwrap();
-    let out = weigh(dir, "reports/r", &["--history", "blocker/history.sqlite", "--label", "try 1"]);
+    let out = weigh(
+        dir,
+        "reports/r",
+        &["--history", "blocker/history.sqlite", "--label", "try 1"],
+    );
     let stderr = text(&out.stderr);
     let summary = json(&dir.join("reports/r/summary.json"));
     let go = summary["verdict"]["go"].as_bool().unwrap();
@@ -342,24 +413,45 @@ fn a_failed_recording_keeps_the_report_and_says_how_to_record_it() {
         "{stderr}"
     );
     // The import, into a usable file.
-    let rec = liftgate(dir, &["record", "reports/r", "--history", "h.sqlite", "--label", "try 1"]);
+    let rec = liftgate(
+        dir,
+        &[
+            "record",
+            "reports/r",
+            "--history",
+            "h.sqlite",
+            "--label",
+            "try 1",
+        ],
+    );
     assert_eq!(rec.status.code(), Some(0), "{}", text(&rec.stderr));
     assert!(text(&rec.stdout).contains("as run 1"));
     // A second import of the same report is refused.
     let again = liftgate(dir, &["record", "reports/r", "--history", "h.sqlite"]);
     assert_eq!(again.status.code(), Some(2));
-    assert!(text(&again.stderr).contains("already recorded"), "{}", text(&again.stderr));
+    assert!(
+        text(&again.stderr).contains("already recorded"),
+        "{}",
+        text(&again.stderr)
+    );
     let trend = liftgate(dir, &["trend", "--history", "h.sqlite", "--out", "t"]);
     assert_eq!(trend.status.code(), Some(0), "{}", text(&trend.stderr));
     let t = json(&dir.join("t/trend.json"));
     let run = &t["series"][0]["runs"][0];
     assert_eq!(run["source"], "record");
     assert_eq!(run["label"], "try 1");
-    assert_eq!(run["metrics"]["token_f1"]["lift"], summary["metrics"]["token_f1"]["lift"]);
+    assert_eq!(
+        run["metrics"]["token_f1"]["lift"],
+        summary["metrics"]["token_f1"]["lift"]
+    );
     assert_eq!(run["like_for_like"]["token_f1"]["n"], 3);
 
     // --no-history records nothing.
     let out = weigh(dir, "reports/quiet", &["--no-history"]);
-    assert!(!text(&out.stderr).contains("recorded"), "{}", text(&out.stderr));
+    assert!(
+        !text(&out.stderr).contains("recorded"),
+        "{}",
+        text(&out.stderr)
+    );
     assert!(!dir.join("reports/history.sqlite").exists());
 }

@@ -26,7 +26,11 @@ pub fn run(args: &RecordArgs) -> Result<Outcome> {
         for w in warnings {
             eprintln!("liftgate: warning: {}: {w}", dir.display());
         }
-        println!("recorded {} as run {id} in {}", dir.display(), opts.path.display());
+        println!(
+            "recorded {} as run {id} in {}",
+            dir.display(),
+            opts.path.display()
+        );
     }
     Ok(Outcome::Success)
 }

@@ -50,7 +50,10 @@ pub fn run(args: &TrendArgs) -> Result<Outcome> {
         for (name, bytes) in &files {
             let path = out.join(name);
             if path.is_dir() {
-                return Err(Error::file(&path, "is a directory; cannot write the trend there"));
+                return Err(Error::file(
+                    &path,
+                    "is a directory; cannot write the trend there",
+                ));
             }
             staged.push((path.clone(), fsutil::stage(&path, bytes)?));
         }

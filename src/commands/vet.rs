@@ -84,7 +84,10 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
     let stats = Settings::new(args.stats.resamples, args.stats.seed, args.stats.confidence)?;
     let policy = Policy::load_or_default(args.stats.policy.as_deref())?;
     let set = QuestionSet::load(&inputs.questions)?;
-    let reports_parent = args.report.as_deref().map_or("reports".into(), history::parent_of);
+    let reports_parent = args
+        .report
+        .as_deref()
+        .map_or("reports".into(), history::parent_of);
     let history = RecordOptions::resolve(&args.history, &reports_parent, "vet")?;
 
     let stop = StopFlag::install()?;

@@ -17,7 +17,8 @@ use std::path::Path;
 pub fn run(args: &WeighArgs) -> Result<Outcome> {
     let settings = Settings::new(args.stats.resamples, args.stats.seed, args.stats.confidence)?;
     let policy = Policy::load_or_default(args.stats.policy.as_deref())?;
-    let history = RecordOptions::resolve(&args.history, &history::parent_of(&args.report), "weigh")?;
+    let history =
+        RecordOptions::resolve(&args.history, &history::parent_of(&args.report), "weigh")?;
     let set = QuestionSet::load(&args.questions)?;
     let baseline = grades::load_for_set(&args.baseline, &set)?;
     let candidate = grades::load_for_set(&args.candidate, &set)?;

@@ -21,6 +21,7 @@ use crate::grades::GradeRecord;
 use crate::policy::Metric;
 use crate::questions::{Expect, QuestionSet};
 use crate::report::summary::Summary;
+use std::collections::btree_map::Entry;
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use store::{NewQuestion, NewRun, NewVariant, Store, StoredRun};
@@ -132,10 +133,7 @@ pub fn record_after_report(
     let opts = opts?;
     match record(opts, set, variants, summary, report_dir, finished_now()) {
         Ok(id) => {
-            eprintln!(
-                "liftgate: recorded as run {id} in {}",
-                opts.path.display()
-            );
+            eprintln!("liftgate: recorded as run {id} in {}", opts.path.display());
             Some(id)
         }
         Err(e) => {
@@ -224,7 +222,12 @@ pub fn record(
 
 /// SHA-256 of a question's content: the JSON array `[question, references, expect,
 /// category]`, compact. The id is the key, not content; the line number is not content.
-pub fn content_hash(question: &str, references: &[String], expect: Expect, category: &str) -> String {
+pub fn content_hash(
+    question: &str,
+    references: &[String],
+    expect: Expect,
+    category: &str,
+) -> String {
     let value = serde_json::json!([question, references, expect.as_str(), category]);
     fsutil::sha256_hex(value.to_string().as_bytes())
 }
@@ -309,7 +312,11 @@ fn json<T: serde::Serialize>(v: &T) -> Result<String> {
 
 fn new_variant(v: &VariantGrades, summary: &Summary) -> NewVariant {
     let scores = Scores {
-        exact_match: v.grades.iter().map(|g| g.exact_match.map(f64::from)).collect(),
+        exact_match: v
+            .grades
+            .iter()
+            .map(|g| g.exact_match.map(f64::from))
+            .collect(),
         token_f1: v.grades.iter().map(|g| g.token_f1).collect(),
         rouge_l: v.grades.iter().map(|g| g.rouge_l).collect(),
         refused: v.grades.iter().map(|g| g.refused).collect(),
@@ -448,8 +455,16 @@ pub fn import_report(opts: &RecordOptions, req: &ImportRequest) -> Result<(i64, 
     // The grades files: in the report directory (vet), else where the summary says (weigh).
     let mut grades_paths = Vec::new();
     for (role, name, input) in [
-        (Role::Baseline, "baseline.grades.jsonl", &summary.inputs.baseline),
-        (Role::Candidate, "candidate.grades.jsonl", &summary.inputs.candidate),
+        (
+            Role::Baseline,
+            "baseline.grades.jsonl",
+            &summary.inputs.baseline,
+        ),
+        (
+            Role::Candidate,
+            "candidate.grades.jsonl",
+            &summary.inputs.candidate,
+        ),
     ] {
         let local = dir.join(name);
         let path = if local.is_file() {
@@ -506,7 +521,11 @@ pub fn import_report(opts: &RecordOptions, req: &ImportRequest) -> Result<(i64, 
         Some(set) => {
             let mut loaded = Vec::new();
             for (role, path) in &grades_paths {
-                loaded.push((*role, crate::grades::load_for_set(path, &set)?, path.clone()));
+                loaded.push((
+                    *role,
+                    crate::grades::load_for_set(path, &set)?,
+                    path.clone(),
+                ));
             }
             let variants: Vec<VariantGrades> = loaded
                 .iter()
@@ -629,7 +648,10 @@ pub fn build_trend(store: &Store, opts: &TrendOptions) -> Result<trend::Trend> {
     for runs in by_set.values() {
         for r in runs {
             if !revisions.contains_key(&r.set_fingerprint) {
-                revisions.insert(r.set_fingerprint.clone(), store.revision(&r.set_fingerprint)?);
+                revisions.insert(
+                    r.set_fingerprint.clone(),
+                    store.revision(&r.set_fingerprint)?,
+                );
             }
         }
     }
@@ -641,8 +663,10 @@ pub fn build_trend(store: &Store, opts: &TrendOptions) -> Result<trend::Trend> {
         // Work per distinct revision, not per run: a long history has few revisions.
         let distinct: std::collections::BTreeSet<&str> =
             runs.iter().map(|r| r.set_fingerprint.as_str()).collect();
-        let distinct_revs: Vec<&[QuestionKey]> =
-            distinct.iter().map(|fp| revisions[*fp].as_slice()).collect();
+        let distinct_revs: Vec<&[QuestionKey]> = distinct
+            .iter()
+            .map(|fp| revisions[*fp].as_slice())
+            .collect();
         let common = trend::common_unchanged(&distinct_revs);
         let at_of: BTreeMap<&str, Vec<usize>> = distinct
             .iter()
@@ -660,8 +684,8 @@ pub fn build_trend(store: &Store, opts: &TrendOptions) -> Result<trend::Trend> {
             });
             let (b, c) = (baseline_idx(r), candidate_idx(r));
             for idx in [b, c] {
-                if !scores_cache.contains_key(&(r.id, idx)) {
-                    scores_cache.insert((r.id, idx), store.scores(r.id, idx)?);
+                if let Entry::Vacant(e) = scores_cache.entry((r.id, idx)) {
+                    e.insert(store.scores(r.id, idx)?);
                 }
             }
             let lfl = trend::means_at(
@@ -692,11 +716,12 @@ pub fn build_trend(store: &Store, opts: &TrendOptions) -> Result<trend::Trend> {
     if let Some((a, b)) = &opts.between {
         let ra = find_run(&all, a, store.path())?;
         let rb = find_run(&all, b, store.path())?;
-        let (earlier, later) = if (ra.finished_at.as_str(), ra.id) <= (rb.finished_at.as_str(), rb.id) {
-            (ra, rb)
-        } else {
-            (rb, ra)
-        };
+        let (earlier, later) =
+            if (ra.finished_at.as_str(), ra.id) <= (rb.finished_at.as_str(), rb.id) {
+                (ra, rb)
+            } else {
+                (rb, ra)
+            };
         if earlier.id == later.id {
             return Err(Error::usage(format!(
                 "--between {a} {b}: both name run {}; give two different runs",
@@ -705,16 +730,17 @@ pub fn build_trend(store: &Store, opts: &TrendOptions) -> Result<trend::Trend> {
         }
         for r in [earlier, later] {
             if !revisions.contains_key(&r.set_fingerprint) {
-                revisions.insert(r.set_fingerprint.clone(), store.revision(&r.set_fingerprint)?);
+                revisions.insert(
+                    r.set_fingerprint.clone(),
+                    store.revision(&r.set_fingerprint)?,
+                );
             }
         }
         pairs.push(("between", earlier, later));
     } else {
         for runs in by_set.values() {
             let windows: Vec<&[&StoredRun]> = runs.windows(2).collect();
-            let skip = opts
-                .pairs
-                .map_or(0, |n| windows.len().saturating_sub(n));
+            let skip = opts.pairs.map_or(0, |n| windows.len().saturating_sub(n));
             for w in &windows[skip..] {
                 pairs.push(("consecutive", w[0], w[1]));
             }
@@ -722,12 +748,15 @@ pub fn build_trend(store: &Store, opts: &TrendOptions) -> Result<trend::Trend> {
     }
     let mut comparisons = Vec::new();
     for (k, (kind, e, l)) in pairs.into_iter().enumerate() {
-        let (re, rl) = (&revisions[&e.set_fingerprint], &revisions[&l.set_fingerprint]);
+        let (re, rl) = (
+            &revisions[&e.set_fingerprint],
+            &revisions[&l.set_fingerprint],
+        );
         let ids = trend::common_unchanged(&[re, rl]);
         let (ce, cl) = (candidate_idx(e), candidate_idx(l));
         for (run, idx) in [(e.id, ce), (l.id, cl)] {
-            if !scores_cache.contains_key(&(run, idx)) {
-                scores_cache.insert((run, idx), store.scores(run, idx)?);
+            if let Entry::Vacant(e) = scores_cache.entry((run, idx)) {
+                e.insert(store.scores(run, idx)?);
             }
         }
         let metrics = trend::compare_candidates(
@@ -845,11 +874,7 @@ fn trend_run(
             .or(variant("candidate"))
             .map_or(0, |v| f(v).0),
         baseline: variant("baseline").and_then(|v| f(v).1),
-        candidate: r
-            .variants
-            .iter()
-            .find(|v| v.idx == c)
-            .and_then(|v| f(v).1),
+        candidate: r.variants.iter().find(|v| v.idx == c).and_then(|v| f(v).1),
     };
     trend::TrendRun {
         run: r.id,
@@ -898,9 +923,7 @@ pub fn finished_now() -> String {
 
 /// A time as `YYYY-MM-DDTHH:MM:SS.mmmZ` (UTC): sorts as text in time order.
 pub fn rfc3339(t: std::time::SystemTime) -> String {
-    let d = t
-        .duration_since(std::time::UNIX_EPOCH)
-        .unwrap_or_default();
+    let d = t.duration_since(std::time::UNIX_EPOCH).unwrap_or_default();
     let secs = d.as_secs() as i64;
     let (y, m, day) = civil_from_days(secs.div_euclid(86_400));
     let s = secs.rem_euclid(86_400);
@@ -964,6 +987,9 @@ mod tests {
             "liftgate record reports/2026-01-02-faq --questions sets/faq.jsonl --history reports/history.sqlite --label 'training data v3'"
         );
         assert_eq!(parent_of(Path::new("out")), PathBuf::from("."));
-        assert_eq!(parent_of(Path::new("reports/latest")), PathBuf::from("reports"));
+        assert_eq!(
+            parent_of(Path::new("reports/latest")),
+            PathBuf::from("reports")
+        );
     }
 }

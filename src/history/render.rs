@@ -118,7 +118,10 @@ fn whole_set_rows(s: &super::trend::Series) -> (Vec<&'static str>, Vec<Vec<Strin
                 r.set.short.clone(),
                 change_cell(r),
                 r.set.questions.to_string(),
-                arrow(r.metrics.exact_match.baseline, r.metrics.exact_match.candidate),
+                arrow(
+                    r.metrics.exact_match.baseline,
+                    r.metrics.exact_match.candidate,
+                ),
                 arrow(r.metrics.token_f1.baseline, r.metrics.token_f1.candidate),
                 arrow(r.metrics.rouge_l.baseline, r.metrics.rouge_l.candidate),
                 format!("{}: {}", g.label(), lift_cell(r.metrics.get(g))),

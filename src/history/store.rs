@@ -242,7 +242,8 @@ fn jitter(max: Duration) -> Duration {
         .duration_since(std::time::UNIX_EPOCH)
         .map(|d| d.subsec_nanos())
         .unwrap_or(0);
-    let mix = (nanos as u64 ^ ((std::process::id() as u64) << 17)).wrapping_mul(0x9e37_79b9_7f4a_7c15);
+    let mix =
+        (nanos as u64 ^ ((std::process::id() as u64) << 17)).wrapping_mul(0x9e37_79b9_7f4a_7c15);
     Duration::from_nanos((mix >> 11) % (max.as_nanos() as u64).max(1))
 }
 
@@ -711,10 +712,7 @@ pub fn decode_scores(em: &[u8], f1: &[u8], rl: &[u8], refused: &[u8]) -> Option<
             .collect()
     };
     Some(Scores {
-        exact_match: em
-            .iter()
-            .map(|&b| (b != 255).then_some(b as f64))
-            .collect(),
+        exact_match: em.iter().map(|&b| (b != 255).then_some(b as f64)).collect(),
         token_f1: f64s(f1),
         rouge_l: f64s(rl),
         refused: refused.iter().map(|&b| b != 0).collect(),
@@ -749,20 +747,29 @@ mod tests {
             "ALTER TABLE a ADD COLUMN y TEXT; INSERT INTO a VALUES (1, 'one');",
         ];
         migrate(&mut conn, &path, &steps[..1]).unwrap();
-        let v: i64 = conn.query_row("PRAGMA user_version", [], |r| r.get(0)).unwrap();
+        let v: i64 = conn
+            .query_row("PRAGMA user_version", [], |r| r.get(0))
+            .unwrap();
         assert_eq!(v, 1);
         // From version 1 only the second step runs; running again changes nothing.
         migrate(&mut conn, &path, &steps).unwrap();
         migrate(&mut conn, &path, &steps).unwrap();
-        let rows: i64 = conn.query_row("SELECT count(*) FROM a", [], |r| r.get(0)).unwrap();
+        let rows: i64 = conn
+            .query_row("SELECT count(*) FROM a", [], |r| r.get(0))
+            .unwrap();
         assert_eq!(rows, 1);
-        let app: i32 = conn.query_row("PRAGMA application_id", [], |r| r.get(0)).unwrap();
+        let app: i32 = conn
+            .query_row("PRAGMA application_id", [], |r| r.get(0))
+            .unwrap();
         assert_eq!(app, APPLICATION_ID);
         // A file at version 99 is refused, naming both versions.
         conn.execute_batch("PRAGMA user_version = 99").unwrap();
         drop(conn);
         let err = Store::check_existing(&path).unwrap_err().to_string();
-        assert!(err.contains("schema version 99") && err.contains("version 1"), "{err}");
+        assert!(
+            err.contains("schema version 99") && err.contains("version 1"),
+            "{err}"
+        );
     }
 
     #[test]

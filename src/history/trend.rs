@@ -111,8 +111,7 @@ impl SetChange {
 
 /// Questions added, removed, edited and unverified from `earlier` to `later`, matched by id.
 pub fn set_change(earlier: &[QuestionKey], later: &[QuestionKey]) -> SetChange {
-    let before: HashMap<&str, &QuestionKey> =
-        earlier.iter().map(|q| (q.id.as_str(), q)).collect();
+    let before: HashMap<&str, &QuestionKey> = earlier.iter().map(|q| (q.id.as_str(), q)).collect();
     let after: HashSet<&str> = later.iter().map(|q| q.id.as_str()).collect();
     let mut change = SetChange::default();
     for q in later {
@@ -320,8 +319,7 @@ pub fn compare_candidates(
         .map(|(x, y)| y.iter().zip(x).map(|(b, a)| b - a).collect())
         .collect();
     let same_rows = rows.iter().all(|r| *r == rows[0]);
-    let lifts: Vec<Option<crate::stats::bootstrap::Lift>> = if same_rows && !diffs[0].is_empty()
-    {
+    let lifts: Vec<Option<crate::stats::bootstrap::Lift>> = if same_rows && !diffs[0].is_empty() {
         let cols: Vec<&[f64]> = diffs.iter().map(Vec::as_slice).collect();
         let boots = resample_means(&cols, boot.resamples, boot.seed, domain);
         diffs
@@ -573,7 +571,10 @@ mod tests {
 
     fn scores(f1: &[Option<f64>]) -> Scores {
         Scores {
-            exact_match: f1.iter().map(|v| v.map(|x| (x >= 1.0) as u8 as f64)).collect(),
+            exact_match: f1
+                .iter()
+                .map(|v| v.map(|x| (x >= 1.0) as u8 as f64))
+                .collect(),
             token_f1: f1.to_vec(),
             rouge_l: f1.to_vec(),
             refused: vec![false; f1.len()],
@@ -625,7 +626,11 @@ mod tests {
             key("q1", Some("h1-new")),
             key("q4", None),
         ];
-        let r3 = [key("q2", Some("h2")), key("q3", Some("h3")), key("q9", Some("h9"))];
+        let r3 = [
+            key("q2", Some("h2")),
+            key("q3", Some("h3")),
+            key("q9", Some("h9")),
+        ];
         assert_eq!(common_unchanged(&[&r1, &r2]), vec!["q2", "q3"]);
         assert_eq!(common_unchanged(&[&r1, &r2, &r3]), vec!["q2", "q3"]);
         // Unknown content is never taken as unchanged, even against itself.
@@ -637,7 +642,11 @@ mod tests {
 
     #[test]
     fn means_follow_weigh_rules_on_the_chosen_questions() {
-        let mut rev = vec![key("a", Some("1")), key("b", Some("2")), key("c", Some("3"))];
+        let mut rev = vec![
+            key("a", Some("1")),
+            key("b", Some("2")),
+            key("c", Some("3")),
+        ];
         rev[2].expect = Expect::Refuse;
         let base = scores(&[Some(0.5), None, None]);
         let cand = scores(&[Some(1.0), Some(0.25), None]);
@@ -692,7 +701,12 @@ mod tests {
         assert!(d.ci_low.unwrap() <= want && want <= d.ci_high.unwrap());
         let s = comparison_sentence("run 1", "run 2", 40, Metric::TokenF1, d, 0.95);
         assert!(s.contains("REGRESSION"), "{s}");
-        assert!(s.starts_with("run 2 vs run 1 on 40 shared unchanged questions: token F1 \u{2212}0.199"), "{s}");
+        assert!(
+            s.starts_with(
+                "run 2 vs run 1 on 40 shared unchanged questions: token F1 \u{2212}0.199"
+            ),
+            "{s}"
+        );
 
         // Same seed, same result; no difference gives a zero-width interval, no flag.
         let again = compare_candidates(
@@ -720,9 +734,7 @@ mod tests {
 
     #[test]
     fn noisy_equal_candidates_are_not_flagged() {
-        let rev: Vec<QuestionKey> = (0..60)
-            .map(|i| key(&format!("q{i}"), Some("h")))
-            .collect();
+        let rev: Vec<QuestionKey> = (0..60).map(|i| key(&format!("q{i}"), Some("h"))).collect();
         // Differences alternate +0.3 / −0.3: mean 0, wide interval around it.
         let e: Vec<Option<f64>> = (0..60).map(|_| Some(0.5)).collect();
         let l: Vec<Option<f64>> = (0..60)
