@@ -213,7 +213,7 @@ fn md_table(header: &[&str], rows: &[Vec<String>]) -> String {
 pub fn markdown(t: &Trend) -> String {
     let mut out = String::from("# Trend of recorded runs\n\n");
     out.push_str(&format!(
-        "History: `{}`. Each run's whole-set numbers are copied from its own summary.json. Arrows read baseline → candidate.\n\n",
+        "History: {}. Each run's whole-set numbers are copied from its own summary.json. Arrows read baseline → candidate.\n\n",
         escape(&t.history)
     ));
     for s in &t.series {
