@@ -31,6 +31,11 @@ pub enum Command {
     /// The whole job: answer with base and with base + adapter, grade both, weigh.
     /// With no arguments it runs the bundled demo.
     Vet(VetArgs),
+    /// The recorded runs of a question set in time order, like for like where the set changed,
+    /// and candidate-against-candidate comparisons (docs/history.md).
+    Trend(TrendArgs),
+    /// Record earlier report directories (summary.json and grades) in the history.
+    Record(RecordArgs),
 }
 
 /// Generation settings shared by `answer` and `vet`.
@@ -141,6 +146,8 @@ pub struct WeighArgs {
     pub report: PathBuf,
     #[command(flatten)]
     pub stats: StatsArgs,
+    #[command(flatten)]
+    pub history: HistoryArgs,
 }
 
 #[derive(Debug, Args)]
@@ -168,6 +175,72 @@ pub struct VetArgs {
     pub stats: StatsArgs,
     #[command(flatten)]
     pub generation: GenerationArgs,
+    #[command(flatten)]
+    pub history: HistoryArgs,
+}
+
+/// Where `weigh` and `vet` record the run they finish (docs/history.md).
+#[derive(Debug, Args, Clone, Default)]
+pub struct HistoryArgs {
+    /// History file (SQLite) to record this run in [default: history.sqlite beside the report
+    /// directory, e.g. reports/history.sqlite].
+    #[arg(long, value_name = "FILE", conflicts_with = "no_history")]
+    pub history: Option<PathBuf>,
+    /// Do not record this run in any history file.
+    #[arg(long)]
+    pub no_history: bool,
+    /// A label for this run in the history, e.g. "training data v3".
+    #[arg(long, value_name = "TEXT")]
+    pub label: Option<String>,
+}
+
+#[derive(Debug, Args)]
+pub struct TrendArgs {
+    /// History file to read.
+    #[arg(long, value_name = "FILE", default_value = "reports/history.sqlite")]
+    pub history: PathBuf,
+    /// Only runs of this question set (the set file's name without extension).
+    #[arg(long, value_name = "NAME")]
+    pub set: Option<String>,
+    /// Only the last N runs of each question set.
+    #[arg(long, value_name = "N")]
+    pub last: Option<usize>,
+    /// Compare the candidates of these two runs (ids or labels) instead of consecutive runs.
+    #[arg(long, num_args = 2, value_names = ["A", "B"])]
+    pub between: Option<Vec<String>>,
+    /// Without --between: compare the candidates of the last N consecutive pairs of runs of
+    /// each set (0: every consecutive pair; each comparison is a bootstrap).
+    #[arg(long, value_name = "N", default_value_t = 10)]
+    pub pairs: usize,
+    /// Directory to write trend.md and trend.json into.
+    #[arg(long, value_name = "DIR")]
+    pub out: Option<PathBuf>,
+    /// Bootstrap resamples of each comparison.
+    #[arg(long, value_name = "N", default_value_t = 2000)]
+    pub resamples: usize,
+    /// Seed of the comparisons' bootstrap.
+    #[arg(long, value_name = "N", default_value_t = 7)]
+    pub seed: u64,
+    /// Confidence level of the comparisons' intervals.
+    #[arg(long, value_name = "C", default_value_t = 0.95)]
+    pub confidence: f64,
+}
+
+#[derive(Debug, Args)]
+pub struct RecordArgs {
+    /// Report directories written by `weigh` or `vet` (each with summary.json).
+    #[arg(value_name = "REPORT_DIR", required = true)]
+    pub reports: Vec<PathBuf>,
+    /// History file to record them in.
+    #[arg(long, value_name = "FILE", default_value = "reports/history.sqlite")]
+    pub history: PathBuf,
+    /// The question set the reports were made with, when it is no longer at the path their
+    /// summary.json records (it must have the recorded SHA-256).
+    #[arg(long, value_name = "FILE")]
+    pub questions: Option<PathBuf>,
+    /// A label for the recorded runs.
+    #[arg(long, value_name = "TEXT")]
+    pub label: Option<String>,
 }
 
 #[cfg(test)]

@@ -16,6 +16,7 @@ pub mod error;
 pub mod formats;
 pub mod fsutil;
 pub mod grade;
+pub mod history;
 pub mod interrupt;
 pub mod kernels;
 pub mod model;

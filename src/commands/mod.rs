@@ -5,6 +5,8 @@
 pub mod answer;
 mod args;
 pub mod grade;
+pub mod record;
+pub mod trend;
 pub mod vet;
 pub mod weigh;
 
@@ -37,5 +39,7 @@ pub fn run(command: Command) -> Result<Outcome> {
         Command::Grade(args) => grade::run(&args),
         Command::Weigh(args) => weigh::run(&args),
         Command::Vet(args) => vet::run(&args),
+        Command::Trend(args) => trend::run(&args),
+        Command::Record(args) => record::run(&args),
     }
 }

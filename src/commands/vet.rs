@@ -18,6 +18,7 @@ use crate::cli::VetArgs;
 use crate::error::{Error, Result};
 use crate::formats::questions::QuestionSet;
 use crate::grade;
+use crate::history::{self, RecordOptions};
 use crate::interrupt::StopFlag;
 use crate::policy::Policy;
 use crate::report::{self, dir};
@@ -34,6 +35,8 @@ const DEMO_MAX_NEW_TOKENS: usize = 48;
 
 /// Everything a vet run needs, checked against each other before any work.
 struct Settings {
+    /// Where the finished run is recorded; None with --no-history.
+    history: Option<RecordOptions>,
     baseline: answer::Settings,
     candidate: answer::Settings,
     questions: PathBuf,
@@ -82,7 +85,13 @@ fn settings(args: &VetArgs) -> Result<Settings> {
         )));
     }
     let (stats, policy) = args::stats(&args.stats)?;
+    let reports_parent = args
+        .report
+        .as_deref()
+        .map_or("reports".into(), history::parent_of);
+    let history = RecordOptions::resolve(&args.history, &reports_parent, "vet")?;
     Ok(Settings {
+        history,
         baseline,
         candidate,
         questions,
@@ -184,6 +193,8 @@ fn vet_into(
         inputs,
     })?;
     report::write_report_dir(dir, &summary)?;
+    let graded = history::two((baseline, baseline_path), (candidate, candidate_path));
+    history::record_after_report(settings.history.as_ref(), set, &graded, &summary, dir);
     print!("{}", report::terminal::render(&summary));
     println!("report: {}", dir.join("report.md").display());
     Ok(Outcome::from_verdict(summary.verdict.go))

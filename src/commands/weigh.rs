@@ -7,11 +7,14 @@ use crate::cli::WeighArgs;
 use crate::error::Result;
 use crate::formats::grades;
 use crate::formats::questions::QuestionSet;
+use crate::history::{self, RecordOptions};
 use crate::report;
 use crate::weigh::{self, WeighInput};
 
 pub fn run(args: &WeighArgs) -> Result<Outcome> {
     let (settings, policy) = args::stats(&args.stats)?;
+    let history =
+        RecordOptions::resolve(&args.history, &history::parent_of(&args.report), "weigh")?;
     let set = QuestionSet::load(&args.questions)?;
     let baseline = grades::load_for_set(&args.baseline, &set)?;
     let candidate = grades::load_for_set(&args.candidate, &set)?;
@@ -36,6 +39,8 @@ pub fn run(args: &WeighArgs) -> Result<Outcome> {
         inputs,
     })?;
     report::write_report_dir(&args.report, &summary)?;
+    let graded = history::two((&baseline, &args.baseline), (&candidate, &args.candidate));
+    history::record_after_report(history.as_ref(), &set, &graded, &summary, &args.report);
     print!("{}", report::terminal::render(&summary));
     println!("report: {}", args.report.join("report.md").display());
     Ok(Outcome::from_verdict(summary.verdict.go))
