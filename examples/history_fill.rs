@@ -6,9 +6,9 @@
 //! Usage: cargo run --release --example history_fill -- FILE [RUNS] [QUESTIONS]
 
 use liftgate::formats::grades::GradeRecord;
+use liftgate::formats::questions::{Expect, QuestionSet};
 use liftgate::history::{self, RecordOptions};
 use liftgate::policy::Policy;
-use liftgate::formats::questions::{Expect, QuestionSet};
 use liftgate::report::summary::{InputFile, Inputs, PolicySource};
 use liftgate::weigh::{self, Settings, WeighInput};
 use std::path::{Path, PathBuf};

@@ -183,9 +183,31 @@ pub fn json_kind(v: &serde_json::Value) -> &'static str {
     }
 }
 
+/// `s` as one POSIX shell word: unchanged when it holds only safe characters, else in single
+/// quotes (a single quote inside becomes `'\''`).
+pub fn shell_quote(s: &str) -> String {
+    let safe = !s.is_empty()
+        && s.chars()
+            .all(|c| c.is_ascii_alphanumeric() || "-_./=:,+@%".contains(c));
+    if safe {
+        s.to_string()
+    } else {
+        format!("'{}'", s.replace('\'', "'\\''"))
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn shell_words_survive_quoting() {
+        assert_eq!(shell_quote("--max-new-tokens"), "--max-new-tokens");
+        assert_eq!(shell_quote("models/base"), "models/base");
+        assert_eq!(shell_quote("Be brief."), "'Be brief.'");
+        assert_eq!(shell_quote("it's"), "'it'\\''s'");
+        assert_eq!(shell_quote(""), "''");
+    }
 
     #[test]
     fn atomic_write_replaces_whole_file() {

@@ -35,34 +35,7 @@ fn main() {
 /// The command line of this process, quoted for a POSIX shell, to repeat it.
 fn this_command() -> String {
     std::env::args_os()
-        .map(|a| shell_quote(&a.to_string_lossy()))
+        .map(|a| liftgate::fsutil::shell_quote(&a.to_string_lossy()))
         .collect::<Vec<_>>()
         .join(" ")
-}
-
-/// `s` as one POSIX shell word: unchanged when it holds only safe characters, else in single
-/// quotes (a single quote inside becomes `'\''`).
-fn shell_quote(s: &str) -> String {
-    let safe = !s.is_empty()
-        && s.chars()
-            .all(|c| c.is_ascii_alphanumeric() || "-_./=:,+@%".contains(c));
-    if safe {
-        s.to_string()
-    } else {
-        format!("'{}'", s.replace('\'', "'\\''"))
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::shell_quote;
-
-    #[test]
-    fn shell_words_survive_quoting() {
-        assert_eq!(shell_quote("--max-new-tokens"), "--max-new-tokens");
-        assert_eq!(shell_quote("models/base"), "models/base");
-        assert_eq!(shell_quote("Be brief."), "'Be brief.'");
-        assert_eq!(shell_quote("it's"), "'it'\\''s'");
-        assert_eq!(shell_quote(""), "''");
-    }
 }

@@ -154,29 +154,17 @@ pub fn import_command(opts: &RecordOptions, report_dir: &Path, set_path: &Path) 
     let mut words = vec![
         "liftgate".to_string(),
         "record".into(),
-        shell_quote(&report_dir.display().to_string()),
+        crate::fsutil::shell_quote(&report_dir.display().to_string()),
         "--questions".into(),
-        shell_quote(&set_path.display().to_string()),
+        crate::fsutil::shell_quote(&set_path.display().to_string()),
         "--history".into(),
-        shell_quote(&opts.path.display().to_string()),
+        crate::fsutil::shell_quote(&opts.path.display().to_string()),
     ];
     if let Some(label) = &opts.label {
         words.push("--label".into());
-        words.push(shell_quote(label));
+        words.push(crate::fsutil::shell_quote(label));
     }
     words.join(" ")
-}
-
-/// `s` as one POSIX shell word.
-fn shell_quote(s: &str) -> String {
-    let safe = !s.is_empty()
-        && s.chars()
-            .all(|c| c.is_ascii_alphanumeric() || "-_./=:,+@%".contains(c));
-    if safe {
-        s.to_string()
-    } else {
-        format!("'{}'", s.replace('\'', "'\\''"))
-    }
 }
 
 /// Records one run; the error says why not.
@@ -921,7 +909,7 @@ pub fn finished_now() -> String {
 pub fn rfc3339(t: std::time::SystemTime) -> String {
     let d = t.duration_since(std::time::UNIX_EPOCH).unwrap_or_default();
     let secs = d.as_secs() as i64;
-    let (y, m, day) = civil_from_days(secs.div_euclid(86_400));
+    let (y, m, day) = crate::report::dir::civil_from_days(secs.div_euclid(86_400));
     let s = secs.rem_euclid(86_400);
     format!(
         "{y:04}-{m:02}-{day:02}T{:02}:{:02}:{:02}.{:03}Z",
@@ -930,21 +918,6 @@ pub fn rfc3339(t: std::time::SystemTime) -> String {
         s % 60,
         d.subsec_millis()
     )
-}
-
-/// Days since 1970-01-01 to a proleptic Gregorian (year, month, day): H. Hinnant's
-/// `civil_from_days` ("chrono-Compatible Low-Level Date Algorithms").
-fn civil_from_days(z: i64) -> (i64, u32, u32) {
-    let z = z + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z.rem_euclid(146_097);
-    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
-    let y = yoe + era * 400;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let d = (doy - (153 * mp + 2) / 5 + 1) as u32;
-    let m = if mp < 10 { mp + 3 } else { mp - 9 } as u32;
-    (if m <= 2 { y + 1 } else { y }, m, d)
 }
 
 #[cfg(test)]

@@ -261,7 +261,7 @@ fn utc_date_today() -> String {
 
 /// Days since 1970-01-01 to a proleptic Gregorian (year, month, day): H. Hinnant's
 /// `civil_from_days` algorithm ("chrono-Compatible Low-Level Date Algorithms").
-fn civil_from_days(z: i64) -> (i64, u32, u32) {
+pub fn civil_from_days(z: i64) -> (i64, u32, u32) {
     let z = z + 719_468;
     let era = z.div_euclid(146_097);
     let doe = z.rem_euclid(146_097);
