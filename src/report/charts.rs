@@ -11,7 +11,7 @@
 //! Every chart returns a [`Chart`]: an `<svg>` string with a `<title>` and a `<desc>` (for
 //! screen readers) and a one-line caption in plain words for the page.
 //!
-//! Every piece of text drawn goes through [`super::html::escape`]. Nothing relies on colour
+//! Every piece of text drawn goes through [`super::inert::escape`]. Nothing relies on colour
 //! alone: series differ by marker shape too, limits are labelled in words, failing regions are
 //! hatched, and exact numbers are printed beside each point.
 //!
@@ -23,7 +23,7 @@ mod figures;
 pub use drawings::*;
 pub use figures::*;
 
-use super::html::escape;
+use super::inert::escape;
 use std::fmt::Write;
 
 /// One finished chart.

@@ -348,7 +348,7 @@ pub fn render(s: &Summary) -> String {
             o,
             "Largest changes in {} first (up to {}).\n",
             gate.label(),
-            crate::weigh::CHANGES_LISTED
+            CHANGES_LISTED
         );
         let _ = writeln!(
             o,

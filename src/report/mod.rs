@@ -7,6 +7,7 @@
 pub mod charts;
 pub mod dir;
 pub mod html;
+mod inert;
 pub mod markdown;
 pub mod summary;
 pub mod terminal;

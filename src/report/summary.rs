@@ -15,6 +15,9 @@ use crate::stats::Interval;
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
 
+/// Questions listed under "worse" and under "better" in [`Changes`].
+pub const CHANGES_LISTED: usize = 10;
+
 /// Value of [`Summary::format`]; bumped when a field changes meaning.
 pub const FORMAT: &str = "liftgate-summary/1";
 

@@ -1,7 +1,7 @@
 //! The blocks of a summary besides the gate checks: per-metric lifts, McNemar, refusal rates,
 //! categories, the minimum detectable lift and the listed changes.
 
-use super::{mean, Paired, WeighInput, CHANGES_LISTED};
+use super::{mean, Paired, WeighInput};
 use crate::formats::questions::Expect;
 use crate::policy::{IntervalKind, Metric, Policy};
 use crate::report::summary::*;

@@ -44,8 +44,6 @@ pub const DEFAULT_CONFIDENCE: f64 = 0.95;
 pub const MIN_RESAMPLES: usize = 1000;
 /// Most resamples accepted (memory: 8 bytes per resample per metric).
 pub const MAX_RESAMPLES: usize = 10_000_000;
-/// Questions listed under "worse" and under "better".
-pub const CHANGES_LISTED: usize = 10;
 
 /// Validated statistics settings.
 #[derive(Debug, Clone, Copy, PartialEq)]
