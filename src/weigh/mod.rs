@@ -305,3 +305,6 @@ pub fn describe_inputs(
         approximations,
     })
 }
+
+#[cfg(test)]
+mod tests;

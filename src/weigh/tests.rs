@@ -1,0 +1,272 @@
+//! Unit tests of the weighing logic on small hand-made grades: the category rules, questions
+//! without a score, and which interval the gate reads.
+
+use super::*;
+use crate::policy::{IntervalKind, RegressionRule};
+use crate::report::summary::{CheckKind, PolicySource};
+
+/// A set of `n` in-scope questions in category "a" (ids q0, q1, ...) followed by `refuse`
+/// out-of-scope ones in category "oos".
+fn set(n: usize, refuse: usize) -> QuestionSet {
+    let mut text = String::new();
+    for i in 0..n {
+        text.push_str(&format!(
+            "{{\"id\":\"q{i}\",\"question\":\"Q{i}?\",\"references\":[\"r\"],\"category\":\"a\"}}\n"
+        ));
+    }
+    for i in 0..refuse {
+        text.push_str(&format!(
+            "{{\"id\":\"x{i}\",\"question\":\"X{i}?\",\"expect\":\"refuse\",\"category\":\"oos\"}}\n"
+        ));
+    }
+    QuestionSet::parse(Path::new("set.jsonl"), text.as_bytes()).unwrap()
+}
+
+/// Grades of `set` with token F1 and ROUGE-L `f1[i]` on in-scope question i (exact match 1 when
+/// it is 1), and `refused` on every out-of-scope one.
+fn grades(set: &QuestionSet, f1: &[Option<f64>], refused: bool) -> Vec<GradeRecord> {
+    set.questions
+        .iter()
+        .enumerate()
+        .map(|(i, q)| {
+            let score = if q.expect == Expect::Answer {
+                f1[i]
+            } else {
+                None
+            };
+            GradeRecord {
+                id: q.id.clone(),
+                category: q.category.clone(),
+                expect: q.expect,
+                exact_match: score.map(|s| u8::from(s == 1.0)),
+                token_f1: score,
+                rouge_l: score,
+                refused: q.expect == Expect::Refuse && refused,
+                answer: String::new(),
+            }
+        })
+        .collect()
+}
+
+fn inputs() -> Inputs {
+    let file = |p: &str| InputFile {
+        path: p.into(),
+        sha256: "0".repeat(64),
+    };
+    Inputs {
+        questions: file("set.jsonl"),
+        baseline: file("base.grades"),
+        candidate: file("cand.grades"),
+        policy: PolicySource {
+            path: None,
+            sha256: None,
+            source: "built-in".into(),
+        },
+        approximations: vec![],
+    }
+}
+
+fn run(set: &QuestionSet, base: &[GradeRecord], cand: &[GradeRecord], policy: &Policy) -> Summary {
+    weigh(&WeighInput {
+        set,
+        baseline: base,
+        candidate: cand,
+        policy,
+        settings: Settings::new(2000, 7, 0.95).unwrap(),
+        inputs: inputs(),
+    })
+    .unwrap()
+}
+
+/// Scores that alternate around a mean, so the lift interval has width.
+fn wobble(n: usize, mean: f64, spread: f64) -> Vec<Option<f64>> {
+    (0..n)
+        .map(|i| {
+            let s = if i % 2 == 0 { spread } else { -spread };
+            Some((mean + s * ((i % 5) as f64 / 4.0)).clamp(0.0, 1.0))
+        })
+        .collect()
+}
+
+fn category_check(s: &Summary) -> &Check {
+    s.verdict
+        .checks
+        .iter()
+        .find(|c| c.kind() == CheckKind::Category("a"))
+        .expect("category a is judged")
+}
+
+#[test]
+fn a_small_uncertain_loss_fails_non_inferiority_but_not_clear_regression() {
+    // 20 questions lose 0.02 on average with a wide spread: the loss is within the 0.05
+    // allowance on average, but the interval reaches below −0.05.
+    let set = set(20, 0);
+    let base = grades(&set, &wobble(20, 0.5, 0.0), false);
+    let cand = grades(&set, &wobble(20, 0.48, 0.3), false);
+    let mut policy = Policy::default();
+
+    policy.categories.rule = RegressionRule::ClearRegression;
+    let s = run(&set, &base, &cand, &policy);
+    let c = &s.categories["a"];
+    let (lo, hi) = (c.ci_low.unwrap(), c.ci_high.unwrap());
+    assert!(
+        lo < -0.05 && hi > -0.05,
+        "interval {lo} to {hi} straddles the allowance"
+    );
+    let check = category_check(&s);
+    assert!(check.pass, "the data do not show a clear loss beyond 0.05");
+    assert_eq!(check.value, Some(hi));
+    assert_eq!(check.comparison, Comparison::AtLeast);
+
+    policy.categories.rule = RegressionRule::NonInferiority;
+    let s = run(&set, &base, &cand, &policy);
+    let check = category_check(&s);
+    assert!(!check.pass, "the data cannot rule out a loss beyond 0.05");
+    assert_eq!(check.value, Some(lo));
+    assert_eq!(check.comparison, Comparison::Above);
+    assert!(check
+        .reason
+        .as_deref()
+        .unwrap()
+        .contains("may have got worse"));
+}
+
+#[test]
+fn a_clear_large_loss_fails_both_rules() {
+    let set = set(20, 0);
+    let base = grades(&set, &wobble(20, 0.8, 0.05), false);
+    let cand = grades(&set, &wobble(20, 0.3, 0.05), false);
+    for rule in [
+        RegressionRule::ClearRegression,
+        RegressionRule::NonInferiority,
+    ] {
+        let mut policy = Policy::default();
+        policy.categories.rule = rule;
+        let s = run(&set, &base, &cand, &policy);
+        assert!(!category_check(&s).pass, "{rule:?}");
+        assert!(!s.verdict.go);
+    }
+}
+
+#[test]
+fn categories_below_the_minimum_are_shown_but_not_judged() {
+    let set = set(5, 0);
+    let base = grades(&set, &wobble(5, 0.9, 0.0), false);
+    let cand = grades(&set, &wobble(5, 0.1, 0.0), false);
+    let s = run(&set, &base, &cand, &Policy::default());
+    assert!(!s.categories["a"].judged);
+    assert_eq!(s.categories["a"].n, 5);
+    assert!(s
+        .verdict
+        .checks
+        .iter()
+        .all(|c| !matches!(c.kind(), CheckKind::Category(_))));
+    assert!(s.warnings.iter().any(|w| w.contains("No category has 10")));
+}
+
+#[test]
+fn unscored_questions_are_left_out_of_the_lift_with_a_warning() {
+    let set = set(12, 0);
+    let mut f1 = wobble(12, 0.5, 0.2);
+    let base = grades(&set, &f1, false);
+    // The candidate's grades lack a score on two questions (say, graded against a set whose
+    // references were blank there).
+    f1[3] = None;
+    f1[7] = None;
+    let cand = grades(&set, &f1, false);
+    let s = run(&set, &base, &cand, &Policy::default());
+    assert_eq!(s.metrics.token_f1.n, 10);
+    assert_eq!(s.metrics.token_f1.lift, Some(0.0));
+    assert!(s
+        .warnings
+        .iter()
+        .any(|w| w.starts_with("2 in-scope question(s) have no token F1 score")));
+    // The question count the policy checks is the set's, not the scored ones.
+    let min = s
+        .verdict
+        .checks
+        .iter()
+        .find(|c| c.kind() == CheckKind::MinQuestions)
+        .unwrap();
+    assert_eq!(min.value, Some(12.0));
+}
+
+#[test]
+fn metrics_scored_on_different_questions_are_resampled_one_by_one() {
+    // Exact match missing where token F1 is present: the metrics no longer cover the same
+    // questions, so each gets its own bootstrap (the joint resampling needs equal rows).
+    let set = set(12, 0);
+    let base = grades(&set, &wobble(12, 0.4, 0.2), false);
+    let mut cand = grades(&set, &wobble(12, 0.6, 0.35), false);
+    cand[0].exact_match = None;
+    let s = run(&set, &base, &cand, &Policy::default());
+    assert_eq!(s.metrics.exact_match.n, 11);
+    assert_eq!(s.metrics.token_f1.n, 12);
+    let f1 = &s.metrics.token_f1;
+    assert!(
+        f1.ci_low < f1.ci_high,
+        "a varying difference gives an interval of some width"
+    );
+    for m in [
+        &s.metrics.exact_match,
+        &s.metrics.token_f1,
+        &s.metrics.rouge_l,
+    ] {
+        let (lo, hi, lift) = (m.ci_low.unwrap(), m.ci_high.unwrap(), m.lift.unwrap());
+        assert!(
+            lo - 1e-12 <= lift && lift <= hi + 1e-12,
+            "{lo} <= {lift} <= {hi}"
+        );
+    }
+}
+
+#[test]
+fn no_scored_question_gives_empty_metrics_and_a_failed_lift_check() {
+    let set = set(0, 3);
+    let base = grades(&set, &[], false);
+    let cand = grades(&set, &[], true);
+    let s = run(&set, &base, &cand, &Policy::default());
+    assert_eq!(s.metrics.token_f1.n, 0);
+    assert_eq!(s.metrics.token_f1.lift, None);
+    let lift = s
+        .verdict
+        .checks
+        .iter()
+        .find(|c| c.kind() == CheckKind::Lift)
+        .unwrap();
+    assert!(!lift.pass);
+    assert!(lift
+        .reason
+        .as_deref()
+        .unwrap()
+        .starts_with("No in-scope question"));
+    assert_eq!(s.refusal.out_of_scope.candidate.share, Some(1.0));
+    // No in-scope questions: the false-refusal share cannot be computed and the check fails.
+    assert_eq!(s.refusal.false_refusal.candidate.share, None);
+}
+
+#[test]
+fn the_gate_reads_the_interval_the_policy_names() {
+    let set = set(30, 0);
+    let base = grades(&set, &wobble(30, 0.4, 0.3), false);
+    let cand = grades(&set, &wobble(30, 0.45, 0.3), false);
+    for kind in [IntervalKind::Bca, IntervalKind::Percentile] {
+        let mut policy = Policy::default();
+        policy.lift.interval = kind;
+        let s = run(&set, &base, &cand, &policy);
+        let m = &s.metrics.token_f1;
+        let want = match kind {
+            IntervalKind::Bca => m.bca.unwrap(),
+            IntervalKind::Percentile => m.percentile.unwrap(),
+        };
+        assert_eq!((m.ci_low, m.ci_high), (Some(want.low), Some(want.high)));
+        assert_eq!(s.settings.interval, kind);
+        let lift = s
+            .verdict
+            .checks
+            .iter()
+            .find(|c| c.kind() == CheckKind::Lift)
+            .unwrap();
+        assert_eq!(lift.value, Some(want.low));
+    }
+}
