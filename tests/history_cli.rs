@@ -136,6 +136,23 @@ fn two_demo_runs_show_in_the_trend_with_the_set_change_and_like_for_like() {
     );
     let md = std::fs::read_to_string(dir.join("trend-out/trend.md")).unwrap();
     assert!(md.contains("Like for like: the 138 questions"), "{md}");
+    // trend.html: the same trend for people, self-contained (the browser test in
+    // tests/browser/ opens it in Chromium).
+    let html = std::fs::read_to_string(dir.join("trend-out/trend.html")).unwrap();
+    assert_eq!(html.matches("data-chart=\"chart-trend-").count(), 3);
+    assert!(
+        html.contains("2 added, 0 removed, 3 edited"),
+        "the set change is shown"
+    );
+    assert!(html.contains("138 question(s) are in every run with unchanged content"));
+    assert!(html.contains("<strong>The set changed between these runs</strong>"));
+    assert!(!html.contains("<script"));
+    for reference in ["src=\"http", "href=\"http", "url(http", "@import"] {
+        assert!(
+            !html.contains(reference),
+            "no outside resource: {reference}"
+        );
+    }
 
     let t = json(&dir.join("trend-out/trend.json"));
     assert_eq!(t["format"], "liftgate-trend/1");

@@ -1,5 +1,5 @@
 //! `liftgate trend`: read the history, print the trend on stdout, and with `--out DIR` write
-//! trend.md and trend.json there (both or neither). docs/history.md describes the output.
+//! trend.md, trend.json and trend.html there (all or none). docs/history.md describes the output.
 
 use super::Outcome;
 use crate::cli::TrendArgs;
@@ -21,7 +21,7 @@ pub fn run(args: &TrendArgs) -> Result<Outcome> {
     if let Some(out) = &args.out {
         if out.is_file() {
             return Err(Error::usage(format!(
-                "--out {}: is a file; give a directory for trend.md and trend.json",
+                "--out {}: is a file; give a directory for trend.md, trend.json and trend.html",
                 out.display()
             )));
         }
@@ -45,6 +45,7 @@ pub fn run(args: &TrendArgs) -> Result<Outcome> {
         let files = [
             ("trend.json", render::trend_json(&trend)?),
             ("trend.md", render::markdown(&trend).into_bytes()),
+            ("trend.html", history::html::render(&trend).into_bytes()),
         ];
         let mut staged = Vec::new();
         for (name, bytes) in &files {

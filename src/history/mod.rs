@@ -12,6 +12,7 @@
 //! ([`RecordOptions::resolve`]) and stops it with exit 2 before any work is done.
 
 mod build;
+pub mod html;
 mod import;
 pub mod render;
 pub mod store;

@@ -54,7 +54,7 @@ fn escape_cut(text: &str, limit: usize) -> String {
 
 /// User text as an isolated run (`<bdi>`), so right-to-left text cannot reorder what is
 /// around it.
-fn user(text: &str) -> String {
+pub(crate) fn user(text: &str) -> String {
     format!("<bdi>{}</bdi>", escape_cut(text, MAX_CHARS))
 }
 
@@ -422,7 +422,7 @@ fn key_figures(o: &mut String, s: &Summary) {
     o.push_str("</ul>\n");
 }
 
-fn figure(o: &mut String, chart: &Chart, title: &str, numbers: &str) {
+pub(crate) fn figure(o: &mut String, chart: &Chart, title: &str, numbers: &str) {
     let _ = write!(
         o,
         "<figure id=\"{id}\" data-chart=\"{id}\">\n<h3>{}</h3>\n<figcaption>{}</figcaption>\n<div class=\"chart wide\">{}</div>\n<div class=\"chart narrow\">{}</div>\n",

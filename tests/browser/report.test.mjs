@@ -88,6 +88,7 @@ function hostileReport(demoDir, work) {
     dir,
     "--resamples",
     "1000",
+    "--no-history",
   ];
   if (summary.inputs.policy.path) weighArgs.push("--policy", summary.inputs.policy.path);
   try {
@@ -226,6 +227,7 @@ async function run() {
   } finally {
     await context.close();
   }
+  await checkTrend(args.demo, hostileDir, work);
   fs.rmSync(work, { recursive: true, force: true });
 
   console.log(`screenshots: ${args.out}`);
@@ -237,6 +239,64 @@ async function run() {
 }
 
 const HOSTILE_SCRIPT_TEXT = HOSTILE_SCRIPT;
+
+/**
+ * trend.html: the demo report and the hostile one recorded in a fresh history (the second under
+ * a hostile label), `liftgate trend --out`, then the page at desktop and phone width.
+ */
+async function checkTrend(demoDir, hostileDir, work) {
+  const history = path.join(work, "trend-history.sqlite");
+  const out = path.join(work, "trend");
+  const lf = (extra) =>
+    execFileSync(args.liftgate, extra, { cwd: args.root, stdio: ["ignore", "ignore", "inherit"] });
+  lf(["record", demoDir, "--history", history, "--label", "demo"]);
+  lf(["record", hostileDir, "--history", history, "--label", HOSTILE_SCRIPT]);
+  lf(["trend", "--history", history, "--out", out, "--resamples", "1000"]);
+  const file = path.join(out, "trend.html");
+  check(fs.existsSync(file), "trend.html written");
+  for (const [width, height, name] of [
+    [1280, 900, "desktop"],
+    [390, 844, "phone"],
+  ]) {
+    const profile = fs.mkdtempSync(path.join(work, `profile-trend-${name}-`));
+    const context = await chromium.launchPersistentContext(profile, {
+      executablePath: CHROMIUM,
+      headless: true,
+      args: FLAGS,
+      viewport: { width, height },
+    });
+    try {
+      const { page, log, url } = await openPage(context, file);
+      const label = `trend ${name}`;
+      check(log.errors.length === 0, `${label}: no page errors ${JSON.stringify(log.errors)}`);
+      check(log.console.length === 0, `${label}: no console errors or warnings ${JSON.stringify(log.console)}`);
+      const others = log.requests.filter((u) => u !== url);
+      check(others.length === 0, `${label}: no request but the page itself ${JSON.stringify(others)}`);
+      check((await page.locator("section.series").count()) === 1, `${label}: one question set`);
+      const layout = width < 640 ? "narrow" : "wide";
+      const charts = page.locator(`figure[data-chart^="chart-trend-"]`);
+      check((await charts.count()) === 3, `${label}: a chart per metric (${await charts.count()})`);
+      const box = await charts.first().locator(`.chart.${layout} svg`).boundingBox();
+      check(box !== null && box.width > 200 && box.height > 60, `${label}: trend chart drawn (${JSON.stringify(box)})`);
+      check((await page.locator("table.runs tbody tr").count()) === 2, `${label}: both runs in the table`);
+      check((await page.locator("table.like").count()) === 1, `${label}: the like-for-like table`);
+      const pwned = await page.evaluate(() => typeof window.__pwned);
+      check(pwned === "undefined", `${label}: the hostile label did not run (window.__pwned ${pwned})`);
+      check(log.dialogs.length === 0, `${label}: no dialog opened`);
+      const live = await page.locator("script, img, iframe, object, embed").count();
+      check(live === 0, `${label}: no script or image element in the DOM (${live})`);
+      const text = await page.locator("body").innerText();
+      check(text.includes(HOSTILE_SCRIPT_TEXT), `${label}: the hostile label is shown as text`);
+      const scrollWidth = await page.evaluate(() => document.documentElement.scrollWidth);
+      check(scrollWidth <= width, `${label}: no sideways scrolling (${scrollWidth} px in ${width})`);
+      fs.mkdirSync(args.out, { recursive: true });
+      await page.screenshot({ path: path.join(args.out, `trend-${name}.png`), fullPage: true });
+      await page.close();
+    } finally {
+      await context.close();
+    }
+  }
+}
 
 run().catch((e) => {
   console.error(e);
