@@ -7,13 +7,23 @@
 set -euo pipefail
 here=$(cd "$(dirname "$0")" && pwd)
 root=$(cd "$here/../.." && pwd)
+# A report directory given as a relative path is read from the caller's directory, before this
+# script changes directory.
+given=""
+if [ $# -ge 1 ]; then
+  given=$(cd "$1" && pwd)
+fi
 
 if [ ! -x /usr/bin/chromium ]; then
   echo "== installing chromium (Debian package)"
   apt-get update
   DEBIAN_FRONTEND=noninteractive apt-get install -y chromium
 fi
-command -v node >/dev/null || { echo "node is needed (Debian package nodejs)"; exit 1; }
+if ! command -v npm >/dev/null; then
+  echo "== installing node and npm (Debian packages)"
+  apt-get update
+  DEBIAN_FRONTEND=noninteractive apt-get install -y nodejs npm
+fi
 
 echo "== npm ci (playwright-core, no browser download)"
 cd "$here"
@@ -27,8 +37,8 @@ fi
 
 work=$(mktemp -d)
 trap 'rm -rf "$work"' EXIT
-if [ $# -ge 1 ]; then
-  demo=$(cd "$1" && pwd)
+if [ -n "$given" ]; then
+  demo=$given
 else
   echo "== the bundled demo"
   set +e
