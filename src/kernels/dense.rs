@@ -9,6 +9,13 @@
 //!
 //! Every output is computed by one task in a fixed order, so results do not depend on the
 //! thread count, and the decoder's batched output equals its batch-1 output.
+//!
+//! Checkpoints stored in bf16 or f16 keep their weights 16-bit in the same panel layout
+//! ([`matmul_half`]): each weight is widened to f32 inside the product, just before its
+//! multiply-add, in the same order as the f32 product. Widening bf16 or f16 to f32 is exact, so
+//! the result is bit for bit the one the f32 product gives on the widened matrix (which is what
+//! the reference computes after loading the checkpoint with dtype float32), while a batch-1
+//! step reads half the bytes.
 
 use super::simd::features;
 use super::PARALLEL_WORK;
@@ -25,7 +32,7 @@ pub fn panel_len(out: usize, inp: usize) -> usize {
 /// Writes `a` ([rows, cols] row-major, output rows `at..at + rows` of a layer) into the panel
 /// layout `t`: panel p holds output columns 64p..64p + 64 as [cols, 64] row-major, so one
 /// panel is one contiguous run that the products read front to back.
-pub fn pack_panels_into(a: &[f32], rows: usize, cols: usize, t: &mut [f32], at: usize) {
+pub fn pack_panels_into<T: Copy>(a: &[T], rows: usize, cols: usize, t: &mut [T], at: usize) {
     for r in 0..rows {
         let j = at + r;
         let base = (j / PANEL) * cols * PANEL + j % PANEL;
@@ -84,38 +91,160 @@ pub fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f
             }
             return;
         }
-        // SAFETY: lhs (i, k) = panel[k·64 + i] for i < width ≤ 64, k < inp; rhs (k, t) =
-        // x[t·inp + k]; dst (i, t) = y[t·out + j0 + i]: all inside the asserted lengths, and
-        // these columns of y belong to this task.
-        unsafe {
-            gemm::gemm(
-                width,
-                n,
-                inp,
-                yc.get().add(j0),
-                out as isize,
-                1,
-                false,
-                panel.as_ptr(),
-                PANEL as isize,
-                1,
-                x.as_ptr(),
-                inp as isize,
-                1,
-                0.0,
-                1.0,
-                false,
-                false,
-                false,
-                gemm::Parallelism::None,
-            );
-        }
+        // SAFETY: the panel holds inp·64 values, x at least n·inp (asserted above), and
+        // columns j0..j0 + width of y belong to this task.
+        unsafe { panel_gemm(width, n, inp, yc.get().add(j0), out, panel, x) };
     };
     let panels = out.div_ceil(PANEL);
     if n * inp * out >= PARALLEL_WORK {
         (0..panels).into_par_iter().for_each(one);
     } else {
         (0..panels).for_each(one);
+    }
+}
+
+/// dst columns 0..width of rows 0..n (row stride `out`) = x[n, inp] · panel.
+///
+/// # Safety
+/// `panel` holds inp·64 values, `x` at least n·inp, width ≤ 64, and `dst` addresses n rows of
+/// `out` values from which columns 0..width are written by this call alone.
+unsafe fn panel_gemm(
+    width: usize,
+    n: usize,
+    inp: usize,
+    dst: *mut f32,
+    out: usize,
+    panel: &[f32],
+    x: &[f32],
+) {
+    // SAFETY: lhs (i, k) = panel[k·64 + i] for i < width ≤ 64, k < inp; rhs (k, t) =
+    // x[t·inp + k]; dst (i, t) = dst[t·out + i]: inside the lengths the caller promises.
+    unsafe {
+        gemm::gemm(
+            width,
+            n,
+            inp,
+            dst,
+            out as isize,
+            1,
+            false,
+            panel.as_ptr(),
+            PANEL as isize,
+            1,
+            x.as_ptr(),
+            inp as isize,
+            1,
+            0.0,
+            1.0,
+            false,
+            false,
+            false,
+            gemm::Parallelism::None,
+        );
+    }
+}
+
+/// A 16-bit float format a checkpoint stores its weights in, widened exactly to f32.
+pub trait Half: Copy + Send + Sync + 'static {
+    /// dst[i] = src[i] as f32 (exact). Uses the CPU's conversion instructions where present.
+    fn widen(src: &[Self], dst: &mut [f32]);
+}
+
+impl Half for half::bf16 {
+    fn widen(src: &[Self], dst: &mut [f32]) {
+        use half::slice::HalfFloatSliceExt;
+        src.convert_to_f32_slice(dst);
+    }
+}
+
+impl Half for half::f16 {
+    fn widen(src: &[Self], dst: &mut [f32]) {
+        use half::slice::HalfFloatSliceExt;
+        src.convert_to_f32_slice(dst);
+    }
+}
+
+thread_local! {
+    /// One widened panel, for the products of several rows over 16-bit weights.
+    static WIDE: std::cell::RefCell<Vec<f32>> = const { std::cell::RefCell::new(Vec::new()) };
+}
+
+/// As [`matmul`], with W stored 16-bit in the panel layout and widened inside the product:
+/// bit for bit the result of [`matmul`] on the widened weights. One row streams each panel
+/// through a small buffer in pieces of [`PIECE_ROWS`] rows; several rows widen the whole panel
+/// once per call (into a per-thread buffer) and run the same `gemm` as the f32 product.
+pub fn matmul_half<H: Half>(x: &[f32], n: usize, inp: usize, w: &[H], out: usize, y: &mut [f32]) {
+    assert!(x.len() >= n * inp && w.len() >= panel_len(out, inp) && y.len() >= n * out);
+    if n == 0 || out == 0 {
+        return;
+    }
+    let yc = Columns(y.as_mut_ptr());
+    let one = |p: usize| {
+        let j0 = p * PANEL;
+        let width = PANEL.min(out - j0);
+        let panel = &w[p * inp * PANEL..(p + 1) * inp * PANEL];
+        if n == 1 {
+            let mut acc = [0f32; PANEL];
+            panel_row_half(&mut acc, &x[..inp], panel);
+            // SAFETY: columns j0..j0 + width of the one output row belong to this task.
+            unsafe {
+                std::ptr::copy_nonoverlapping(acc.as_ptr(), yc.get().add(j0), width);
+            }
+            return;
+        }
+        WIDE.with(|buf| {
+            let mut buf = buf.borrow_mut();
+            buf.resize(inp * PANEL, 0.0);
+            H::widen(panel, &mut buf);
+            // SAFETY: the widened panel holds inp·64 values, x at least n·inp (asserted
+            // above), and columns j0..j0 + width of y belong to this task.
+            unsafe { panel_gemm(width, n, inp, yc.get().add(j0), out, &buf, x) };
+        });
+    };
+    let panels = out.div_ceil(PANEL);
+    if n * inp * out >= PARALLEL_WORK {
+        (0..panels).into_par_iter().for_each(one);
+    } else {
+        (0..panels).for_each(one);
+    }
+}
+
+/// Rows of a 16-bit panel widened at a time by the one-row product: an even number (so the
+/// pairing of rows in [`accumulate`] is the one of the whole panel), 8 KB of f32 that stay in
+/// the first-level cache.
+pub const PIECE_ROWS: usize = 32;
+
+/// [`panel_row`] over a 16-bit panel, widened piece by piece: the same sums in the same order.
+fn panel_row_half<H: Half>(acc: &mut [f32; PANEL], x: &[f32], panel: &[H]) {
+    #[cfg(target_arch = "x86_64")]
+    if features().avx512f {
+        // SAFETY: the CPU has AVX-512F (checked just above).
+        unsafe { panel_row_half_avx512(acc, x, panel) };
+        return;
+    }
+    panel_row_half_body(acc, x, panel);
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn panel_row_half_avx512<H: Half>(acc: &mut [f32; PANEL], x: &[f32], panel: &[H]) {
+    panel_row_half_body(acc, x, panel);
+}
+
+#[inline(always)]
+fn panel_row_half_body<H: Half>(acc: &mut [f32; PANEL], x: &[f32], panel: &[H]) {
+    let (mut even, mut odd) = ([0f32; PANEL], [0f32; PANEL]);
+    let mut wide = [0f32; PIECE_ROWS * PANEL];
+    let mut k0 = 0;
+    while k0 < x.len() {
+        let k1 = (k0 + PIECE_ROWS).min(x.len());
+        let piece = &mut wide[..(k1 - k0) * PANEL];
+        H::widen(&panel[k0 * PANEL..k1 * PANEL], piece);
+        accumulate(&mut even, &mut odd, &x[k0..k1], piece);
+        k0 = k1;
+    }
+    for l in 0..PANEL {
+        acc[l] = even[l] + odd[l];
     }
 }
 
@@ -142,6 +271,16 @@ unsafe fn panel_row_avx512(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
 #[inline(always)]
 fn panel_row_body(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
     let (mut even, mut odd) = ([0f32; PANEL], [0f32; PANEL]);
+    accumulate(&mut even, &mut odd, x, panel);
+    for l in 0..PANEL {
+        acc[l] = even[l] + odd[l];
+    }
+}
+
+/// Adds x[k]·rows[k·64 + l] to `even` (even k) and `odd` (odd k), k counted from the start of
+/// `x`, which must start at an even row of the panel.
+#[inline(always)]
+fn accumulate(even: &mut [f32; PANEL], odd: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
     let mut pairs = panel.chunks_exact(2 * PANEL);
     let mut xs = x.chunks_exact(2);
     for (rows, xk) in (&mut pairs).zip(&mut xs) {
@@ -155,9 +294,6 @@ fn panel_row_body(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
         for l in 0..PANEL {
             even[l] += xk * r0[l];
         }
-    }
-    for l in 0..PANEL {
-        acc[l] = even[l] + odd[l];
     }
 }
 
@@ -297,6 +433,49 @@ mod tests {
             for (a, b) in y1.iter().zip(&y[out..2 * out]) {
                 assert!((a - b).abs() < 1e-3);
             }
+        }
+    }
+
+    /// Widening is exact, so 16-bit weights give bit for bit the f32 product over the widened
+    /// weights: one row (pieces of 32 rows, an odd last row) and several (whole panel), a
+    /// partial last panel, on one task and on the pool.
+    #[test]
+    fn half_weights_give_the_f32_product_of_the_widened_weights_exactly() {
+        for (n, inp, out) in [
+            (1, 37, 5),
+            (1, 301, 150),
+            (3, 37, 5),
+            (4, 301, 300),
+            (1, 64, 64),
+        ] {
+            let x: Vec<f32> = (0..n * inp)
+                .map(|i| ((i * 7) % 11) as f32 * 0.3 - 1.7)
+                .collect();
+            let raw: Vec<f32> = (0..out * inp)
+                .map(|i| ((i * 5) % 13) as f32 * 0.173 - 1.01)
+                .collect();
+            let check = |wide: Vec<f32>, y_half: Vec<f32>| {
+                let wp = pack_panels(&wide, out, inp);
+                let mut want = vec![0.0; n * out];
+                matmul(&x, n, inp, &wp, out, &mut want);
+                let same = want
+                    .iter()
+                    .zip(&y_half)
+                    .all(|(a, b)| a.to_bits() == b.to_bits());
+                assert!(same, "n {n} inp {inp} out {out}");
+            };
+            let b: Vec<half::bf16> = raw.iter().map(|&v| half::bf16::from_f32(v)).collect();
+            let mut bp = vec![half::bf16::ZERO; panel_len(out, inp)];
+            pack_panels_into(&b, out, inp, &mut bp, 0);
+            let mut y = vec![0.0; n * out];
+            matmul_half(&x, n, inp, &bp, out, &mut y);
+            check(b.iter().map(|v| v.to_f32()).collect(), y);
+            let h: Vec<half::f16> = raw.iter().map(|&v| half::f16::from_f32(v)).collect();
+            let mut hp = vec![half::f16::ZERO; panel_len(out, inp)];
+            pack_panels_into(&h, out, inp, &mut hp, 0);
+            let mut y = vec![0.0; n * out];
+            matmul_half(&x, n, inp, &hp, out, &mut y);
+            check(h.iter().map(|v| v.to_f32()).collect(), y);
         }
     }
 

@@ -6,8 +6,8 @@
 
 use crate::error::{Error, Result};
 use crate::kernels::bf16::Bf16Matrix;
-use crate::kernels::dense::{matmul, pack_panels_into, panel_len};
-use candle_core::Tensor;
+use crate::kernels::dense::{matmul, matmul_half, pack_panels_into, panel_len};
+use candle_core::{DType, Tensor, WithDType};
 
 /// How the runner holds the weights of the matrix products.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, clap::ValueEnum)]
@@ -34,6 +34,11 @@ impl WeightFormat {
 /// front to back without repacking on every call (repacking would read and write every weight
 /// once more per step): f32 in panels of 64 output columns (`crate::kernels::dense`), bf16 in
 /// blocks of 16 (`crate::kernels::bf16`).
+///
+/// With the f32 format, a matrix stored bf16 or f16 in the checkpoint stays 16-bit in the same
+/// panels and is widened inside the product: exact (the same f32 values the reference computes
+/// on after loading with dtype float32) at half the memory. A matrix changed by an adapter
+/// merge is f32 and stays f32.
 pub struct Linear {
     w: LinearWeights,
     pub out: usize,
@@ -43,6 +48,11 @@ pub struct Linear {
 
 enum LinearWeights {
     F32(Vec<f32>),
+    /// Stored bf16, widened exactly inside the product.
+    StoredBf16(Vec<half::bf16>),
+    /// Stored f16, widened exactly inside the product.
+    StoredF16(Vec<half::f16>),
+    /// The bf16 approximation (`--weights bf16`).
     Bf16(Bf16Matrix),
 }
 
@@ -62,15 +72,32 @@ impl Linear {
         }
         let out: usize = dims.iter().map(|d| d.0).sum();
         let with_bias = parts.iter().all(|(_, b)| b.is_some());
-        let mut w = match format {
-            WeightFormat::F32 => LinearWeights::F32(vec![0.0; panel_len(out, inp)]),
-            WeightFormat::Bf16 => LinearWeights::Bf16(Bf16Matrix::new(out, inp)),
+        let stored = parts.first().map_or(DType::F32, |(w, _)| w.dtype());
+        let stored = if parts.iter().all(|(w, _)| w.dtype() == stored) {
+            stored
+        } else {
+            DType::F32
+        };
+        let len = panel_len(out, inp);
+        let mut w = match (format, stored) {
+            (WeightFormat::F32, DType::BF16) => {
+                LinearWeights::StoredBf16(vec![half::bf16::ZERO; len])
+            }
+            (WeightFormat::F32, DType::F16) => LinearWeights::StoredF16(vec![half::f16::ZERO; len]),
+            (WeightFormat::F32, _) => LinearWeights::F32(vec![0.0; len]),
+            (WeightFormat::Bf16, _) => LinearWeights::Bf16(Bf16Matrix::new(out, inp)),
         };
         let mut b = Vec::new();
         let mut at = 0;
         for ((wt, bt), (o, _)) in parts.into_iter().zip(dims) {
             match &mut w {
                 LinearWeights::F32(w) => with_f32(&wt, |a| pack_panels_into(a, o, inp, w, at))?,
+                LinearWeights::StoredBf16(w) => {
+                    with_values(&wt, |a| pack_panels_into(a, o, inp, w, at))?
+                }
+                LinearWeights::StoredF16(w) => {
+                    with_values(&wt, |a| pack_panels_into(a, o, inp, w, at))?
+                }
                 LinearWeights::Bf16(m) => with_f32(&wt, |a| m.put_rows(a, o, at))?,
             }
             drop(wt);
@@ -91,6 +118,8 @@ impl Linear {
     pub fn forward(&self, x: &[f32], n: usize, y: &mut [f32]) {
         match &self.w {
             LinearWeights::F32(w) => matmul(x, n, self.inp, w, self.out, y),
+            LinearWeights::StoredBf16(w) => matmul_half(x, n, self.inp, w, self.out, y),
+            LinearWeights::StoredF16(w) => matmul_half(x, n, self.inp, w, self.out, y),
             LinearWeights::Bf16(m) => m.matmul(x, n, y),
         }
         if let Some(b) = &self.b {
@@ -103,18 +132,23 @@ impl Linear {
     }
 }
 
-/// Calls `f` on the f32 values of `t` in row-major order, borrowing its storage when it is
-/// contiguous (no copy).
+/// Calls `f` on the f32 values of `t` in row-major order (widened when stored 16-bit).
 fn with_f32<R>(t: &Tensor, f: impl FnOnce(&[f32]) -> R) -> Result<R> {
-    {
+    with_values(t, f)
+}
+
+/// Calls `f` on the values of `t` as `T` in row-major order, borrowing its storage when it is
+/// contiguous and already of type `T` (no copy), converting otherwise.
+fn with_values<T: WithDType, R>(t: &Tensor, f: impl FnOnce(&[T]) -> R) -> Result<R> {
+    if t.dtype() == T::DTYPE {
         let (storage, layout) = t.storage_and_layout();
         if let (candle_core::Storage::Cpu(cpu), Some((a, b))) =
             (&*storage, layout.contiguous_offsets())
         {
-            return Ok(f(&cpu.as_slice::<f32>()?[a..b]));
+            return Ok(f(&cpu.as_slice::<T>()?[a..b]));
         }
     }
-    Ok(f(&t.flatten_all()?.to_vec1::<f32>()?))
+    Ok(f(&t.to_dtype(T::DTYPE)?.flatten_all()?.to_vec1::<T>()?))
 }
 
 /// The f32 values of `t` in row-major order.

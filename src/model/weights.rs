@@ -166,7 +166,9 @@ fn mmap_file(file: &Path) -> Result<Mapped> {
     Ok(m)
 }
 
-/// Loads and validates every tensor the spec expects, up-cast to f32.
+/// Loads and validates every tensor the spec expects, in the dtype the checkpoint stores
+/// (f32, bf16 or f16): the decoder widens 16-bit values to f32 where it computes (exact), so a
+/// 16-bit checkpoint takes its own size in memory rather than twice that.
 pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
     let files = safetensors_files(dir)?;
     let maps: Vec<Mapped> = files.iter().map(|f| mmap_file(f)).collect::<Result<_>>()?;
@@ -208,6 +210,22 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
     };
     if has_head {
         expected.push((LM_HEAD.to_string(), vec![spec.vocab_size, spec.hidden_size]));
+    }
+
+    // Refuse before reading a byte of weights when the model cannot fit.
+    let needed: u64 = expected
+        .iter()
+        .filter_map(|(name, _)| {
+            let view = owner.get(name).and_then(|&i| parsed[i].tensor(name).ok())?;
+            Some(resident_bytes(
+                name,
+                view.shape(),
+                view.dtype().bitsize().div_ceil(8),
+            ))
+        })
+        .sum();
+    if let Some(available) = available_memory() {
+        check_fits(dir, needed, available)?;
     }
 
     let mut tensors = HashMap::with_capacity(expected.len());
@@ -261,17 +279,14 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
         if stored_dtype.is_empty() {
             stored_dtype = dt.to_string();
         }
-        let t = view
-            .load(&Device::Cpu)
-            .and_then(|t| t.to_dtype(DType::F32))
-            .map_err(|e| {
-                Error::field(
-                    file_of(name),
-                    None,
-                    name.as_str(),
-                    format!("cannot read: {e}"),
-                )
-            })?;
+        let t = view.load(&Device::Cpu).map_err(|e| {
+            Error::field(
+                file_of(name),
+                None,
+                name.as_str(),
+                format!("cannot read: {e}"),
+            )
+        })?;
         if let Some(i) = src {
             maps[i].release(view.data());
         }
@@ -291,6 +306,40 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
         stored_dtype,
         tied,
     })
+}
+
+/// Bytes a tensor takes once the decoder holds it: the matrices of the linear layers at their
+/// stored size (16-bit stays 16-bit), the embedding table, the output head and the norm
+/// vectors widened to f32.
+fn resident_bytes(name: &str, shape: &[usize], stored_size: usize) -> u64 {
+    let values: u64 = shape.iter().map(|&d| d as u64).product();
+    let wide = name == EMBED || name == LM_HEAD || shape.len() < 2;
+    values * if wide { 4 } else { stored_size as u64 }
+}
+
+/// The kernel's estimate of memory available to a new process without swapping
+/// (`MemAvailable` in /proc/meminfo), when the system reports one.
+fn available_memory() -> Option<u64> {
+    let info = std::fs::read_to_string("/proc/meminfo").ok()?;
+    let line = info.lines().find(|l| l.starts_with("MemAvailable:"))?;
+    let kib: u64 = line.split_whitespace().nth(1)?.parse().ok()?;
+    Some(kib * 1024)
+}
+
+/// An `Input` error (exit 2) when the weights need more memory than is available.
+fn check_fits(dir: &Path, needed: u64, available: u64) -> Result<()> {
+    if needed <= available {
+        return Ok(());
+    }
+    let gib = |b: u64| b as f64 / (1u64 << 30) as f64;
+    Err(Error::file(
+        dir,
+        format!(
+            "the model's weights need about {:.1} GiB of memory ({needed} bytes; matrices at their stored precision, embeddings, head and norms in f32) and {:.1} GiB ({available} bytes) are available; free memory or use a machine with more",
+            gib(needed),
+            gib(available)
+        ),
+    ))
 }
 
 /// Where the first NaN or ±Inf of `values` is, with its value.
@@ -379,7 +428,8 @@ mod tests {
     }
 
     /// A checkpoint re-saved as two shards with a `model.safetensors.index.json` (the layout
-    /// transformers writes, docs/model-formats.md §1.1) and in f16 loads to the same tensors.
+    /// transformers writes, docs/model-formats.md §1.1) and in f16 loads to the same tensors,
+    /// kept f16 in memory.
     #[test]
     fn sharded_and_f16_checkpoints_load_to_the_same_tensors() {
         let src = llama_fixture();
@@ -428,7 +478,10 @@ mod tests {
                 .unwrap()
                 .to_vec1()
                 .unwrap();
+            assert_eq!(sharded.tensors[name].dtype(), DType::F16, "{name}");
             let got: Vec<f32> = sharded.tensors[name]
+                .to_dtype(DType::F32)
+                .unwrap()
                 .flatten_all()
                 .unwrap()
                 .to_vec1()
@@ -442,6 +495,29 @@ mod tests {
             err.contains("model.safetensors.index.json") && err.contains("00002"),
             "{err}"
         );
+    }
+
+    /// Linear-layer matrices count at their stored size; the embedding, head and norms at f32.
+    #[test]
+    fn memory_is_estimated_per_tensor_and_a_model_too_large_is_refused() {
+        assert_eq!(
+            resident_bytes("model.layers.0.mlp.up_proj.weight", &[8, 4], 2),
+            64
+        );
+        assert_eq!(resident_bytes(EMBED, &[8, 4], 2), 128);
+        assert_eq!(resident_bytes(LM_HEAD, &[8, 4], 2), 128);
+        assert_eq!(resident_bytes("model.norm.weight", &[4], 2), 16);
+        let dir = Path::new("/models/large");
+        assert!(check_fits(dir, 100, 100).is_ok());
+        let e = check_fits(dir, 3 << 30, 1 << 30).unwrap_err();
+        assert_eq!(e.exit_code(), 2);
+        let text = e.to_string();
+        assert!(text.contains("/models/large"), "{text}");
+        assert!(
+            text.contains("3.0 GiB") && text.contains("1.0 GiB"),
+            "{text}"
+        );
+        assert!(available_memory().is_some_and(|b| b > 0));
     }
 
     #[test]

@@ -222,8 +222,8 @@ pub fn merge(
                 weights.insert(LM_HEAD.to_string(), embed);
             }
             Step::Replace { target, tensor } => {
-                let dtype = weights.get(&target).map_or(DType::F32, |t| t.dtype());
-                weights.insert(target.clone(), tensor.to_dtype(dtype)?);
+                // Computed on in f32, as the reference does with the model loaded in float32.
+                weights.insert(target.clone(), tensor.to_dtype(DType::F32)?);
                 replaced.insert(target);
             }
         }
@@ -233,18 +233,18 @@ pub fn merge(
         let base = weights.remove(&into).ok_or_else(|| {
             Error::internal(format!("base tensor {into} vanished during the merge"))
         })?;
-        let dtype = base.dtype();
+        // Merged in f32 and kept f32 (`merge_and_unload` on the model loaded in float32): a
+        // 16-bit base matrix is widened first, exactly.
         let new = merge_one(&base.to_dtype(DType::F32)?, lora)?;
         drop(base);
-        weights.insert(into.clone(), new.to_dtype(dtype)?);
+        weights.insert(into.clone(), new);
         if let Some((_, b_bias)) = &lora.b_bias {
             let bias_name = names::bias(module);
             let bias = weights
                 .remove(&bias_name)
                 .ok_or_else(|| Error::internal(format!("base bias {bias_name} vanished")))?;
-            let dtype = bias.dtype();
             let new = (bias.to_dtype(DType::F32)? + b_bias.affine(lora.scaling, 0.0)?)?;
-            weights.insert(bias_name, new.to_dtype(dtype)?);
+            weights.insert(bias_name, new);
         }
         merged.push(MergedModule {
             name: module.clone(),
