@@ -10,25 +10,18 @@
 use super::trend::{run_name, Comparison, Series, Trend, TrendRun};
 use crate::policy::Metric;
 use crate::report::charts::{trend_chart, TrendPoint};
-use crate::report::html::{content_security_policy, escape, figure, stylesheet, user};
+use crate::report::html::{escape, figure, page_head, stylesheet, user};
 use std::fmt::Write;
 
 /// trend.html for a trend. Deterministic: the same trend gives the same bytes.
 pub fn render(t: &Trend) -> String {
     let css = stylesheet();
     let mut o = String::with_capacity(32 * 1024);
-    let _ = write!(
-        o,
-        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n\
-         <meta http-equiv=\"Content-Security-Policy\" content=\"{}\">\n\
-         <meta name=\"referrer\" content=\"no-referrer\">\n\
-         <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n\
-         <meta name=\"generator\" content=\"liftgate {}\">\n\
-         <link rel=\"icon\" href=\"data:,\">\n\
-         <title>Runs over time · liftgate</title>\n<style>{css}</style>\n</head>\n<body>\n",
-        content_security_policy(&css),
-        escape(&t.tool_version),
-    );
+    o.push_str(&page_head(
+        "Runs over time · liftgate",
+        &t.tool_version,
+        &css,
+    ));
     let _ = write!(
         o,
         "<header class=\"masthead\"><div class=\"wrap\"><div class=\"brand\">liftgate <span>runs over time</span></div>\

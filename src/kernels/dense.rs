@@ -73,6 +73,42 @@ unsafe impl Sync for Columns {}
 /// vector lanes. Each output is computed by one task in a fixed order, so the result does not
 /// depend on the thread count.
 pub fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
+    products(x, n, inp, w, out, y);
+}
+
+/// How a product reads a panel of weights: f32 as stored, 16-bit widened.
+trait PanelRead: Copy + Sync {
+    /// acc[l] = Σₖ x[k]·panel[k·64 + l] (one row, batch-1 decoding).
+    fn row(acc: &mut [f32; PANEL], x: &[f32], panel: &[Self]);
+    /// Calls `f` on the panel as f32 values (several rows).
+    fn as_f32(panel: &[Self], f: impl FnOnce(&[f32]));
+}
+
+impl PanelRead for f32 {
+    fn row(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
+        panel_row(acc, x, panel);
+    }
+    fn as_f32(panel: &[f32], f: impl FnOnce(&[f32])) {
+        f(panel);
+    }
+}
+
+impl<H: Half> PanelRead for H {
+    fn row(acc: &mut [f32; PANEL], x: &[f32], panel: &[H]) {
+        panel_row_half(acc, x, panel);
+    }
+    fn as_f32(panel: &[H], f: impl FnOnce(&[f32])) {
+        WIDE.with(|buf| {
+            let mut buf = buf.borrow_mut();
+            buf.resize(panel.len(), 0.0);
+            H::widen(panel, &mut buf);
+            f(&buf);
+        });
+    }
+}
+
+/// y[n, out] = x[n, inp] · W over the panels of `w`, one task per panel (see [`matmul`]).
+fn products<T: PanelRead>(x: &[f32], n: usize, inp: usize, w: &[T], out: usize, y: &mut [f32]) {
     assert!(x.len() >= n * inp && w.len() >= panel_len(out, inp) && y.len() >= n * out);
     if n == 0 || out == 0 {
         return;
@@ -84,7 +120,7 @@ pub fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f
         let panel = &w[p * inp * PANEL..(p + 1) * inp * PANEL];
         if n == 1 {
             let mut acc = [0f32; PANEL];
-            panel_row(&mut acc, &x[..inp], panel);
+            T::row(&mut acc, &x[..inp], panel);
             // SAFETY: columns j0..j0 + width of the one output row belong to this task.
             unsafe {
                 std::ptr::copy_nonoverlapping(acc.as_ptr(), yc.get().add(j0), width);
@@ -93,7 +129,9 @@ pub fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f
         }
         // SAFETY: the panel holds inp·64 values, x at least n·inp (asserted above), and
         // columns j0..j0 + width of y belong to this task.
-        unsafe { panel_gemm(width, n, inp, yc.get().add(j0), out, panel, x) };
+        T::as_f32(panel, |panel| unsafe {
+            panel_gemm(width, n, inp, yc.get().add(j0), out, panel, x)
+        });
     };
     let panels = out.div_ceil(PANEL);
     if n * inp * out >= PARALLEL_WORK {
@@ -174,39 +212,7 @@ thread_local! {
 /// through a small buffer in pieces of [`PIECE_ROWS`] rows; several rows widen the whole panel
 /// once per call (into a per-thread buffer) and run the same `gemm` as the f32 product.
 pub fn matmul_half<H: Half>(x: &[f32], n: usize, inp: usize, w: &[H], out: usize, y: &mut [f32]) {
-    assert!(x.len() >= n * inp && w.len() >= panel_len(out, inp) && y.len() >= n * out);
-    if n == 0 || out == 0 {
-        return;
-    }
-    let yc = Columns(y.as_mut_ptr());
-    let one = |p: usize| {
-        let j0 = p * PANEL;
-        let width = PANEL.min(out - j0);
-        let panel = &w[p * inp * PANEL..(p + 1) * inp * PANEL];
-        if n == 1 {
-            let mut acc = [0f32; PANEL];
-            panel_row_half(&mut acc, &x[..inp], panel);
-            // SAFETY: columns j0..j0 + width of the one output row belong to this task.
-            unsafe {
-                std::ptr::copy_nonoverlapping(acc.as_ptr(), yc.get().add(j0), width);
-            }
-            return;
-        }
-        WIDE.with(|buf| {
-            let mut buf = buf.borrow_mut();
-            buf.resize(inp * PANEL, 0.0);
-            H::widen(panel, &mut buf);
-            // SAFETY: the widened panel holds inp·64 values, x at least n·inp (asserted
-            // above), and columns j0..j0 + width of y belong to this task.
-            unsafe { panel_gemm(width, n, inp, yc.get().add(j0), out, &buf, x) };
-        });
-    };
-    let panels = out.div_ceil(PANEL);
-    if n * inp * out >= PARALLEL_WORK {
-        (0..panels).into_par_iter().for_each(one);
-    } else {
-        (0..panels).for_each(one);
-    }
+    products(x, n, inp, w, out, y);
 }
 
 /// Rows of a 16-bit panel widened at a time by the one-row product: an even number (so the

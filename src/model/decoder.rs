@@ -21,7 +21,7 @@
 //! `rope`, the greedy pick at the output `head`; the products themselves are `crate::kernels`.
 
 use crate::error::{Error, Result};
-use crate::kernels::dense::{dot, matmul_t};
+use crate::kernels::dense::{dot, matmul_t, Half};
 use crate::kernels::PARALLEL_WORK;
 use crate::model::config::{Activation, ModelSpec, NormStyle};
 use crate::model::head::{apply_repetition_penalty, argmax, Scratch as HeadScratch, Screen};
@@ -111,7 +111,7 @@ struct Layer {
 pub struct Decoder {
     spec: ModelSpec,
     /// [vocab, hidden]
-    embed: Vec<f32>,
+    embed: Embedding,
     /// [vocab, hidden]; None when tied to the embedding. The head stays f32 in every weight
     /// format: its greedy pick goes through `screen`, which is cheaper than a bf16 head.
     lm_head: Option<Vec<f32>>,
@@ -120,6 +120,52 @@ pub struct Decoder {
     final_norm: Vec<f32>,
     layers: Vec<Layer>,
     eps: f32,
+}
+
+/// The embedding table, [vocab, hidden]. With its own output head the table is only looked up,
+/// so a bf16 or f16 table stays 16-bit and each looked-up row is widened (exact); tied to the
+/// head it is f32, since the head's products and screen read it as f32.
+enum Embedding {
+    F32(Vec<f32>),
+    Bf16(Vec<half::bf16>),
+    F16(Vec<half::f16>),
+}
+
+impl Embedding {
+    fn from_tensor(t: &Tensor, keep_16_bit: bool) -> Result<Embedding> {
+        let values = |t: &Tensor| -> Result<_> { Ok(t.flatten_all()?) };
+        Ok(match (keep_16_bit, t.dtype()) {
+            (true, candle_core::DType::BF16) => Embedding::Bf16(values(t)?.to_vec1()?),
+            (true, candle_core::DType::F16) => Embedding::F16(values(t)?.to_vec1()?),
+            _ => Embedding::F32(flat(t)?),
+        })
+    }
+
+    fn len(&self) -> usize {
+        match self {
+            Embedding::F32(v) => v.len(),
+            Embedding::Bf16(v) => v.len(),
+            Embedding::F16(v) => v.len(),
+        }
+    }
+
+    /// The f32 table, when it is held in f32.
+    fn as_f32(&self) -> Option<&[f32]> {
+        match self {
+            Embedding::F32(v) => Some(v),
+            _ => None,
+        }
+    }
+
+    /// Writes row `tok` (of `dst.len()` values) into `dst` as f32.
+    fn row_into(&self, tok: usize, dst: &mut [f32]) {
+        let (a, b) = (tok * dst.len(), (tok + 1) * dst.len());
+        match self {
+            Embedding::F32(v) => dst.copy_from_slice(&v[a..b]),
+            Embedding::Bf16(v) => Half::widen(&v[a..b], dst),
+            Embedding::F16(v) => Half::widen(&v[a..b], dst),
+        }
+    }
 }
 
 impl Decoder {
@@ -135,6 +181,7 @@ impl Decoder {
         mut w: HashMap<String, Tensor>,
         format: WeightFormat,
     ) -> Result<Self> {
+        let own_head = w.contains_key(LM_HEAD);
         let mut take = |name: &str| -> Result<Tensor> {
             w.remove(name)
                 .ok_or_else(|| Error::internal(format!("tensor {name} was not loaded")))
@@ -146,7 +193,7 @@ impl Decoder {
                 NormStyle::Gemma => v.into_iter().map(|x| 1.0 + x).collect(),
             })
         };
-        let embed = flat(&take(EMBED)?)?;
+        let embed = Embedding::from_tensor(&take(EMBED)?, own_head)?;
         let mut layers = Vec::with_capacity(spec.num_layers);
         for l in 0..spec.num_layers {
             let tensor = names::Layer::new(l);
@@ -211,14 +258,14 @@ impl Decoder {
         }
         let final_norm = norm(take(FINAL_NORM)?)?;
         let lm_head = w.remove(LM_HEAD).map(|h| flat(&h)).transpose()?;
+        let head = lm_head
+            .as_deref()
+            .or(embed.as_f32())
+            .ok_or_else(|| Error::internal("a tied embedding table must be f32"))?;
         // The soft-cap's tanh can round distinct logits to one f32 value, so a capped head
         // computes every logit.
         let screen = match spec.final_softcap {
-            None => Screen::new(
-                lm_head.as_deref().unwrap_or(&embed),
-                spec.vocab_size,
-                spec.hidden_size,
-            ),
+            None => Screen::new(head, spec.vocab_size, spec.hidden_size),
             Some(_) => None,
         };
         let d = Decoder {
@@ -353,7 +400,11 @@ impl Decoder {
 
     /// The f32 output head, [vocab, hidden].
     fn head(&self) -> &[f32] {
-        self.lm_head.as_deref().unwrap_or(&self.embed)
+        // Neither is refused when the decoder is built.
+        self.lm_head
+            .as_deref()
+            .or(self.embed.as_f32())
+            .unwrap_or(&[])
     }
 
     /// The model up to the final norm: each segment's last hidden state, normed, into
@@ -410,16 +461,13 @@ impl Decoder {
         let mut t = 0;
         for seg in segs {
             for &tok in seg.tokens {
-                let row = &self.embed[tok as usize * hidden..(tok as usize + 1) * hidden];
                 let dst = &mut h[t * hidden..(t + 1) * hidden];
-                match s.embed_scale {
-                    Some(sc) => {
-                        let sc = sc as f32;
-                        for (d, &v) in dst.iter_mut().zip(row) {
-                            *d = v * sc;
-                        }
+                self.embed.row_into(tok as usize, dst);
+                if let Some(sc) = s.embed_scale {
+                    let sc = sc as f32;
+                    for d in dst.iter_mut() {
+                        *d *= sc;
                     }
-                    None => dst.copy_from_slice(row),
                 }
                 t += 1;
             }

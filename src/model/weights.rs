@@ -217,11 +217,8 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
         .iter()
         .filter_map(|(name, _)| {
             let view = owner.get(name).and_then(|&i| parsed[i].tensor(name).ok())?;
-            Some(resident_bytes(
-                name,
-                view.shape(),
-                view.dtype().bitsize().div_ceil(8),
-            ))
+            let size = view.dtype().bitsize().div_ceil(8);
+            Some(resident_bytes(name, view.shape(), size, has_head))
         })
         .sum();
     if let Some(available) = available_memory() {
@@ -309,11 +306,11 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
 }
 
 /// Bytes a tensor takes once the decoder holds it: the matrices of the linear layers at their
-/// stored size (16-bit stays 16-bit), the embedding table, the output head and the norm
-/// vectors widened to f32.
-fn resident_bytes(name: &str, shape: &[usize], stored_size: usize) -> u64 {
+/// stored size (16-bit stays 16-bit), and so the embedding table when the model has its own
+/// output head; the head, an embedding table tied to it and the norm vectors in f32.
+fn resident_bytes(name: &str, shape: &[usize], stored_size: usize, own_head: bool) -> u64 {
     let values: u64 = shape.iter().map(|&d| d as u64).product();
-    let wide = name == EMBED || name == LM_HEAD || shape.len() < 2;
+    let wide = (name == EMBED && !own_head) || name == LM_HEAD || shape.len() < 2;
     values * if wide { 4 } else { stored_size as u64 }
 }
 
@@ -497,16 +494,16 @@ mod tests {
         );
     }
 
-    /// Linear-layer matrices count at their stored size; the embedding, head and norms at f32.
+    /// Linear-layer matrices and an untied embedding count at their stored size; the head, a
+    /// tied embedding and the norms at f32.
     #[test]
     fn memory_is_estimated_per_tensor_and_a_model_too_large_is_refused() {
-        assert_eq!(
-            resident_bytes("model.layers.0.mlp.up_proj.weight", &[8, 4], 2),
-            64
-        );
-        assert_eq!(resident_bytes(EMBED, &[8, 4], 2), 128);
-        assert_eq!(resident_bytes(LM_HEAD, &[8, 4], 2), 128);
-        assert_eq!(resident_bytes("model.norm.weight", &[4], 2), 16);
+        let up = "model.layers.0.mlp.up_proj.weight";
+        assert_eq!(resident_bytes(up, &[8, 4], 2, true), 64);
+        assert_eq!(resident_bytes(EMBED, &[8, 4], 2, false), 128);
+        assert_eq!(resident_bytes(EMBED, &[8, 4], 2, true), 64);
+        assert_eq!(resident_bytes(LM_HEAD, &[8, 4], 2, true), 128);
+        assert_eq!(resident_bytes("model.norm.weight", &[4], 2, true), 16);
         let dir = Path::new("/models/large");
         assert!(check_fits(dir, 100, 100).is_ok());
         let e = check_fits(dir, 3 << 30, 1 << 30).unwrap_err();

@@ -273,6 +273,23 @@ fn in_scope(s: &Summary) -> usize {
     s.metrics.token_f1.n.max(s.metrics.exact_match.n)
 }
 
+/// The page's start up to `<body>`: the content-security policy that allows only the inline
+/// stylesheet `css`, no referrer, the phone viewport, the generator and the `title` (already
+/// escaped).
+pub(crate) fn page_head(title: &str, tool_version: &str, css: &str) -> String {
+    format!(
+        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n\
+         <meta http-equiv=\"Content-Security-Policy\" content=\"{}\">\n\
+         <meta name=\"referrer\" content=\"no-referrer\">\n\
+         <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n\
+         <meta name=\"generator\" content=\"liftgate {}\">\n\
+         <link rel=\"icon\" href=\"data:,\">\n\
+         <title>{title}</title>\n<style>{css}</style>\n</head>\n<body>\n",
+        content_security_policy(css),
+        escape(tool_version),
+    )
+}
+
 /// report.html for a summary. Deterministic: the same summary gives the same bytes.
 pub fn render(s: &Summary) -> String {
     let css = stylesheet();
@@ -282,19 +299,8 @@ pub fn render(s: &Summary) -> String {
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_else(|| s.inputs.questions.path.clone());
-    let _ = write!(
-        o,
-        "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n\
-         <meta http-equiv=\"Content-Security-Policy\" content=\"{}\">\n\
-         <meta name=\"referrer\" content=\"no-referrer\">\n\
-         <meta name=\"viewport\" content=\"width=device-width, initial-scale=1\">\n\
-         <meta name=\"generator\" content=\"liftgate {}\">\n\
-         <link rel=\"icon\" href=\"data:,\">\n\
-         <title>{verdict} · fine-tune check · {}</title>\n<style>{css}</style>\n</head>\n<body>\n",
-        content_security_policy(&css),
-        escape(&s.tool_version),
-        escape(&set_name),
-    );
+    let title = format!("{verdict} · fine-tune check · {}", escape(&set_name));
+    o.push_str(&page_head(&title, &s.tool_version, &css));
     let _ = write!(
         o,
         "<header class=\"masthead\"><div class=\"wrap\"><div class=\"brand\">liftgate <span>fine-tune check</span></div>\
