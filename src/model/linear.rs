@@ -6,7 +6,7 @@
 
 use crate::error::{Error, Result};
 use crate::kernels::bf16::Bf16Matrix;
-use crate::kernels::dense::{matmul, matmul_half, pack_panels_into, panel_len};
+use crate::kernels::dense::{matmul, matmul_half, pack_panels_into, panel_len, Half};
 use candle_core::{DType, Tensor, WithDType};
 
 /// How the runner holds the weights of the matrix products.
@@ -151,7 +151,20 @@ fn with_values<T: WithDType, R>(t: &Tensor, f: impl FnOnce(&[T]) -> R) -> Result
     Ok(f(&t.to_dtype(T::DTYPE)?.flatten_all()?.to_vec1::<T>()?))
 }
 
-/// The f32 values of `t` in row-major order.
+/// The f32 values of `t` in row-major order. A 16-bit tensor is widened straight into the
+/// result, so only the result is allocated (an output head of an 8B-class model is 2 GB in
+/// f32).
 pub fn flat(t: &Tensor) -> Result<Vec<f32>> {
-    with_f32(t, <[f32]>::to_vec)
+    fn widened<H: Half + WithDType>(t: &Tensor) -> Result<Vec<f32>> {
+        with_values(t, |s: &[H]| {
+            let mut v = vec![0.0; s.len()];
+            H::widen(s, &mut v);
+            v
+        })
+    }
+    match t.dtype() {
+        DType::BF16 => widened::<half::bf16>(t),
+        DType::F16 => widened::<half::f16>(t),
+        _ => with_f32(t, <[f32]>::to_vec),
+    }
 }
