@@ -6,6 +6,8 @@ tokenizer's vocabulary are never produced by it, which changes nothing about mem
 
     python bench/make_random_checkpoint.py OUT_DIR --shape 1b     # ~1.5 GB, a quick look
     python bench/make_random_checkpoint.py OUT_DIR --shape 8b     # Llama-3-8B dimensions, ~16 GB
+    python bench/make_random_checkpoint.py OUT_DIR --shape 1b --adapter ADAPTER_DIR --rank 16
+                                       # also a random LoRA adapter (f32, every linear layer)
 
 Generated files live outside git (bench/models is ignored) and should be removed when done.
 The values are random normal * 0.02 rounded to bf16 by truncation; safetensors is written by
@@ -60,13 +62,54 @@ def bf16_bytes(rng, shape, norm):
     return out
 
 
+def write_adapter(out, s, rank, rng):
+    """A peft-layout LoRA adapter on every linear layer of the shape, f32, random A and B (B is
+    not zero, so the adapter changes the outputs), alpha = 2 * rank."""
+    out.mkdir(parents=True, exist_ok=True)
+    h, d = s["hidden"], s["hidden"] // s["heads"]
+    kv = s["kv_heads"] * d
+    dims = {"self_attn.q_proj": (h, h), "self_attn.k_proj": (kv, h), "self_attn.v_proj": (kv, h),
+            "self_attn.o_proj": (h, h), "mlp.gate_proj": (s["inter"], h),
+            "mlp.up_proj": (s["inter"], h), "mlp.down_proj": (h, s["inter"])}
+    layout = []
+    for i in range(s["layers"]):
+        for mod, (o, n) in dims.items():
+            key = f"base_model.model.model.layers.{i}.{mod}"
+            layout.append((key + ".lora_A.weight", (rank, n)))
+            layout.append((key + ".lora_B.weight", (o, rank)))
+    header, offset = {}, 0
+    for name, shape in layout:
+        size = int(np.prod(shape)) * 4
+        header[name] = {"dtype": "F32", "shape": list(shape), "data_offsets": [offset, offset + size]}
+        offset += size
+    head = json.dumps(header, separators=(",", ":")).encode()
+    head += b" " * (-len(head) % 8)
+    with open(out / "adapter_model.safetensors", "wb") as f:
+        f.write(struct.pack("<Q", len(head)))
+        f.write(head)
+        for name, shape in layout:
+            f.write((rng.standard_normal(int(np.prod(shape)), np.float32) * 0.02).tobytes())
+    config = {"peft_type": "LORA", "task_type": "CAUSAL_LM", "r": rank, "lora_alpha": 2 * rank,
+              "target_modules": ["q_proj", "k_proj", "v_proj", "o_proj", "gate_proj", "up_proj", "down_proj"],
+              "lora_dropout": 0.0, "bias": "none", "fan_in_fan_out": False, "use_rslora": False,
+              "use_dora": False, "init_lora_weights": True, "modules_to_save": None}
+    (out / "adapter_config.json").write_text(json.dumps(config, indent=2))
+    print(f"{out}: rank-{rank} adapter, {offset / 2**20:.1f} MiB")
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("out", type=Path)
     ap.add_argument("--shape", choices=sorted(SHAPES), default="1b")
     ap.add_argument("--seed", type=int, default=7)
+    ap.add_argument("--adapter", type=Path, help="also write a random LoRA adapter here")
+    ap.add_argument("--rank", type=int, default=16)
     a = ap.parse_args()
     s = SHAPES[a.shape]
+    if a.adapter:
+        write_adapter(a.adapter, s, a.rank, np.random.default_rng(a.seed + 1))
+        if (a.out / "model.safetensors").exists():
+            return
     demo = Path(__file__).resolve().parent.parent / "demo" / "models" / "base"
     a.out.mkdir(parents=True, exist_ok=True)
     for f in ["tokenizer.json", "tokenizer_config.json", "chat_template.jinja", "generation_config.json"]:

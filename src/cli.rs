@@ -3,7 +3,7 @@
 //! are the constants of the stage that owns them.
 
 use crate::answer::DEFAULT_BATCH;
-use crate::model::WeightFormat;
+use crate::model::{Merge, WeightFormat};
 use crate::weigh::{DEFAULT_CONFIDENCE, DEFAULT_RESAMPLES, DEFAULT_SEED};
 use clap::{Args, Parser, Subcommand};
 use std::path::PathBuf;
@@ -72,8 +72,17 @@ pub struct AnswerArgs {
     #[arg(long, value_name = "DIR")]
     pub model: PathBuf,
     /// LoRA adapter directory written by peft (adapter_config.json, adapter_model.safetensors).
+    /// Applied unmerged, as trained, unless --merge says otherwise.
     #[arg(long, value_name = "DIR")]
     pub adapter: Option<PathBuf>,
+    /// Merge the adapter into the base first: `f32` (in f32, as peft's merge_and_unload on the
+    /// base loaded in float32), `bf16` or `f16` (as a team gets when it merges on a base loaded
+    /// in that dtype and saves the merged checkpoint: every weight rounded to it).
+    #[arg(long, value_enum, value_name = "DTYPE", requires = "adapter")]
+    pub merge: Option<Merge>,
+    /// A short name for this variant, recorded in the run record.
+    #[arg(long, value_name = "NAME")]
+    pub name: Option<String>,
     /// Question set (JSONL).
     #[arg(long, value_name = "FILE")]
     pub questions: PathBuf,
@@ -152,15 +161,27 @@ pub struct WeighArgs {
 
 #[derive(Debug, Args)]
 pub struct VetArgs {
-    /// Base model directory (omit all three of --model/--adapter/--questions to run the demo).
-    #[arg(long, value_name = "DIR", requires_all = ["adapter", "questions"])]
+    /// The baseline: a base model directory (omit --model, --adapter and --questions to run
+    /// the bundled demo).
+    #[arg(long, value_name = "DIR", requires = "questions")]
     pub model: Option<PathBuf>,
-    /// LoRA adapter directory.
-    #[arg(long, value_name = "DIR", requires_all = ["model", "questions"])]
+    /// A LoRA adapter directory: the candidate named `candidate`, the baseline's model plus
+    /// this adapter, unmerged (as trained).
+    #[arg(long, value_name = "DIR", requires = "model")]
     pub adapter: Option<PathBuf>,
     /// Held-out question set (JSONL).
-    #[arg(long, value_name = "FILE", requires_all = ["model", "adapter"])]
+    #[arg(long, value_name = "FILE", requires = "model")]
     pub questions: Option<PathBuf>,
+    /// A candidate, as comma-separated KEY=VALUE pairs: `name=` (letters, digits, `.`, `_`,
+    /// `-`), `adapter=DIR`, `model=DIR` (default: the baseline's model), `merge=f32|bf16|f16`
+    /// (default: unmerged), `from=NAME` (the candidate this artifact was made from, for "how
+    /// much of the lift it keeps"). Repeat for several candidates, e.g.
+    /// `--candidate name=epoch2,adapter=runs/e2 --candidate name=e2-bf16,adapter=runs/e2,merge=bf16`.
+    #[arg(long, value_name = "SPEC")]
+    pub candidate: Vec<String>,
+    /// The baseline's name in file names and the report.
+    #[arg(long, value_name = "NAME", default_value = "baseline")]
+    pub baseline_name: String,
     /// Report directory (default: reports/<date>-<set name>, never overwriting an earlier run).
     /// An unfinished run (stopped or killed while answering) is continued by the same command:
     /// in DIR when given, else in the newest unfinished directory under reports/ for the same

@@ -10,6 +10,12 @@ use std::io::{BufRead, BufReader, Read, Write};
 use std::path::Path;
 
 /// Writes `bytes` to `path` atomically: a temporary file beside it, fsync, rename.
+/// Creates `dir` (and its parents) unless it exists, naming it on failure.
+pub fn create_dir(dir: &Path) -> Result<()> {
+    std::fs::create_dir_all(dir)
+        .map_err(|e| Error::file(dir, format!("cannot create the directory: {e}")))
+}
+
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
     commit_staged(path, stage(path, bytes)?)
 }

@@ -49,7 +49,7 @@ macro_rules! bad_input {
 
 /// The number of cases below; a case that disappears fails
 /// `catalogue_keeps_every_case`, so none is dropped by accident.
-const CASES: usize = 70;
+const CASES: usize = 74;
 
 fn runner(family: &str) -> PathBuf {
     common::fixture("runner").join(family)
@@ -862,13 +862,98 @@ bad_input!(adapter_nan_in_lora_b_is_caught_after_the_merge, |d| {
         5,
         f32::NAN,
     );
-    answer(
+    let mut setup = answer(
         d,
         true,
         &[
             "adapter_model.safetensors: field `model.layers.0.self_attn.v_proj.weight`",
             "NaN",
             "after merging",
+        ],
+    );
+    setup.args.extend([s("--merge"), s("f32")]);
+    setup
+});
+
+bad_input!(adapter_nan_unmerged_is_refused_naming_the_tensor, |d| {
+    let a = adapter_case(d);
+    poke_f32(
+        &a.join("adapter_model.safetensors"),
+        "base_model.model.model.layers.0.self_attn.v_proj.lora_B.weight",
+        5,
+        f32::NAN,
+    );
+    answer(
+        d,
+        true,
+        &[
+            "adapter_model.safetensors: field `base_model.model.model.layers.0.self_attn.v_proj.lora_B.weight`",
+            "NaN",
+        ],
+    )
+});
+
+/// `vet` on the llama fixture under `d` with extra arguments, writing into `rep/`.
+fn vet_with(d: &Path, extra: &[&str], needles_: &[&str]) -> Setup {
+    let mut args = [
+        "vet",
+        "--model",
+        "model",
+        "--questions",
+        "set.jsonl",
+        "--report",
+        "rep",
+        "--max-new-tokens",
+        "4",
+    ]
+    .map(s)
+    .to_vec();
+    args.extend(extra.iter().map(|a| s(a)));
+    Setup {
+        args,
+        outputs: vec![d.join("rep")],
+        needles: needles(needles_),
+    }
+}
+
+bad_input!(vet_two_candidates_with_one_name, |d| {
+    adapter_case(d);
+    vet_with(
+        d,
+        &[
+            "--adapter",
+            "adapter",
+            "--candidate",
+            "name=Candidate,adapter=adapter,merge=f32",
+        ],
+        &["the name `Candidate` is used by two variants"],
+    )
+});
+
+bad_input!(vet_candidate_spec_with_an_unknown_key, |d| {
+    adapter_case(d);
+    vet_with(
+        d,
+        &["--candidate", "name=e2,adapters=adapter"],
+        &["--candidate name=e2,adapters=adapter: unknown key `adapters`"],
+    )
+});
+
+bad_input!(vet_candidate_adapter_made_for_another_base, |d| {
+    adapter_case(d);
+    let other = d.join("other");
+    copy_dir(&runner("phi3").join("adapters/qv"), &other);
+    vet_with(
+        d,
+        &[
+            "--adapter",
+            "adapter",
+            "--candidate",
+            "name=other,adapter=other",
+        ],
+        &[
+            "other/adapter_config.json: field `target_modules`",
+            "another base model",
         ],
     )
 });

@@ -477,7 +477,8 @@ fn vet_continues_a_killed_then_stopped_run_in_its_own_directory() {
     let work = tmp.path("work");
     std::fs::create_dir(&work).unwrap();
     write_set(&work.join("set.jsonl"), 60);
-    // SIGKILL while the baseline answers.
+    // SIGKILL while the baseline and the candidate answer (together: one copy of the base,
+    // the rows of both in the same steps).
     let mut child = vet_cmd(&work, &[]).stderr(Stdio::null()).spawn().unwrap();
     let start = Instant::now();
     let dir = loop {
@@ -491,19 +492,18 @@ fn vet_continues_a_killed_then_stopped_run_in_its_own_directory() {
     assert!(wait_for_rows(&mut child, &base_journal, 4));
     child.kill().unwrap();
     child.wait().unwrap();
-    // Ctrl-C while the candidate answers: the same command continues in the same directory.
+    // Ctrl-C once the continued run has saved answers of its own: the same command continues
+    // in the same directory.
+    let cand_journal = dir.join("candidate.answers.jsonl.partial");
+    let before = saved_rows(&cand_journal);
     let mut child = vet_cmd(&work, &[]).stderr(Stdio::piped()).spawn().unwrap();
-    assert!(wait_for_rows(
-        &mut child,
-        &dir.join("candidate.answers.jsonl.partial"),
-        3
-    ));
+    assert!(wait_for_rows(&mut child, &cand_journal, before + 2));
     send(&child, "INT");
     let o = child.wait_with_output().unwrap();
     let err = String::from_utf8_lossy(&o.stderr);
     assert_eq!(o.status.code(), Some(130), "{err}");
     assert!(err.contains("continuing the unfinished run"), "{err}");
-    assert!(dir.join("baseline.answers.jsonl").is_file());
+    assert!(base_journal.is_file() || dir.join("baseline.answers.jsonl").is_file());
     assert!(!dir.join("summary.json").exists());
     // Finish.
     let o = output(vet_cmd(&work, &[]));
@@ -535,9 +535,9 @@ fn vet_continues_a_killed_then_stopped_run_in_its_own_directory() {
     assert_eq!(dirs, 2);
 }
 
-/// An input error found after the baseline was answered (a damaged adapter_config.json is only
-/// read when the candidate loads): a new run leaves no report directory behind; a continued
-/// run keeps the answers its earlier runs saved.
+/// An input error (a damaged adapter_config.json): a new run leaves no report directory behind;
+/// a continued run keeps the answers its earlier runs saved, the baseline's and the
+/// candidate's.
 #[test]
 fn vet_input_errors_leave_nothing_half_written_but_keep_saved_work() {
     let tmp = Bin::new();
@@ -571,9 +571,13 @@ fn vet_input_errors_leave_nothing_half_written_but_keep_saved_work() {
     child.kill().unwrap();
     child.wait().unwrap();
     let saved = std::fs::read(&cand_journal).unwrap();
+    let base_saved = std::fs::read(report.join("baseline.answers.jsonl.partial")).unwrap();
     let o = output(vet_cmd_with(tmp.dir(), &broken, &["--report", rep]));
     o.expect_code(2);
-    assert!(report.join("baseline.answers.jsonl").is_file());
+    assert_eq!(
+        std::fs::read(report.join("baseline.answers.jsonl.partial")).unwrap(),
+        base_saved
+    );
     assert_eq!(std::fs::read(&cand_journal).unwrap(), saved);
     // And with the right adapter the run completes from there.
     let o = output(vet_cmd(tmp.dir(), &["--report", rep]));

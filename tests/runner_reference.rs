@@ -18,7 +18,7 @@
 use liftgate::answer::generate::{generate_batch, Decoding, GenerationSettings};
 use liftgate::chat::ChatTokenizer;
 use liftgate::formats::answers::Finish;
-use liftgate::model;
+use liftgate::model::{self, Merge};
 use serde_json::Value;
 use std::path::{Path, PathBuf};
 
@@ -65,12 +65,14 @@ struct Case {
     logits: Vec<f32>,
 }
 
-/// Runs every non-error case of one variant; returns the worst first-step logit difference.
-fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
+/// Runs every non-error case of one variant with its adapter applied as `merge` says; returns
+/// the worst first-step logit difference. Unmerged, the expected ids are peft's unmerged
+/// forward (`unmerged.output_ids`); merged, `merge_and_unload()`'s.
+fn check_variant(family: &Path, expected: &Value, variant: &str, merge: Merge) -> f32 {
     let model_dir = family.join("model");
     let adapter_dir = family.join("adapters").join(variant);
     let adapter = (variant != "base").then_some(adapter_dir.as_path());
-    let loaded = model::load(&model_dir, adapter)
+    let loaded = model::load_as(&model_dir, adapter, merge, model::WeightFormat::F32)
         .unwrap_or_else(|e| panic!("{}: loading {variant}: {e}", family.display()));
     let mut eos = loaded.generation.eos.clone();
     eos.sort();
@@ -81,13 +83,16 @@ fn check_variant(family: &Path, expected: &Value, variant: &str) -> f32 {
         .filter(|c| c["variant"] == variant && c.get("error").is_none_or(Value::is_null))
         .map(|c| Case {
             label: format!(
-                "{} {variant} system={} q{}",
+                "{} {variant} {merge:?} system={} q{}",
                 family.file_name().unwrap().to_string_lossy(),
                 c["system"],
                 c["question_index"]
             ),
             prompt: ids(&c["prompt_ids"]),
-            output: ids(&c["output_ids"]),
+            output: match (merge, c.get("unmerged")) {
+                (Merge::Unmerged, Some(u)) if !u.is_null() => ids(&u["output_ids"]),
+                _ => ids(&c["output_ids"]),
+            },
             finish: match c["finish"].as_str() {
                 Some("eos") => Finish::Eos,
                 _ => Finish::Length,
@@ -206,11 +211,18 @@ fn greedy_outputs_match_the_reference_for_every_family_and_variant() {
             .map(|v| v.as_str().unwrap().to_string())
             .collect();
         for variant in variants {
-            let worst = check_variant(&family, &expected, &variant);
-            report.push(format!(
-                "{} {variant}: max |Δ first-step logit| = {worst:.2e}",
-                family.file_name().unwrap().to_string_lossy()
-            ));
+            let modes: &[Merge] = if variant == "base" {
+                &[Merge::Unmerged]
+            } else {
+                &[Merge::Unmerged, Merge::F32]
+            };
+            for &merge in modes {
+                let worst = check_variant(&family, &expected, &variant, merge);
+                report.push(format!(
+                    "{} {variant} {merge:?}: max |Δ first-step logit| = {worst:.2e}",
+                    family.file_name().unwrap().to_string_lossy()
+                ));
+            }
         }
     }
     eprintln!("{}", report.join("\n"));
@@ -280,7 +292,11 @@ fn logits_at_every_position(decoder: &liftgate::model::decoder::Decoder, ids: &[
     let mut ws = liftgate::model::decoder::Workspace::default();
     let mut out = Vec::new();
     for t in ids.chunks(1) {
-        let seg = [liftgate::model::decoder::Segment { slot: 0, tokens: t }];
+        let seg = [liftgate::model::decoder::Segment {
+            slot: 0,
+            tokens: t,
+            variant: 0,
+        }];
         out.extend_from_slice(decoder.forward(&seg, &mut cache, &mut ws).unwrap());
     }
     out
@@ -392,8 +408,13 @@ fn bf16_weights_agree_with_the_reference_within_rounding() {
         let expected: Value =
             serde_json::from_str(&std::fs::read_to_string(family.join("expected.json")).unwrap())
                 .unwrap();
-        let loaded =
-            model::load_as(&family.join("model"), None, model::WeightFormat::Bf16).unwrap();
+        let loaded = model::load_as(
+            &family.join("model"),
+            None,
+            Merge::Unmerged,
+            model::WeightFormat::Bf16,
+        )
+        .unwrap();
         let (mut fam_same, mut fam_total, mut worst_rel) = (0, 0, 0f32);
         for c in expected["cases"].as_array().unwrap() {
             if c["variant"] != "base" || !c.get("error").is_none_or(Value::is_null) {
@@ -449,4 +470,98 @@ fn bf16_weights_agree_with_the_reference_within_rounding() {
         100.0 * same as f64 / total as f64,
         lines.join("\n")
     );
+}
+
+/// One copy of the base with the base and every adapter that can run unmerged as variants of
+/// one decoder, all their rows decoded in the same steps (two slots per variant, refilled):
+/// each variant's answers must equal the reference, as each does alone. Source: the same
+/// fixtures (peft 0.21.2 unmerged forward; transformers 5.24.0 for the base).
+#[test]
+fn variants_sharing_one_base_answer_as_each_does_alone() {
+    use liftgate::answer::generate::{generate_jobs, Job};
+    for family in families() {
+        let expected: Value =
+            serde_json::from_str(&std::fs::read_to_string(family.join("expected.json")).unwrap())
+                .unwrap();
+        let mut variants = vec!["base".to_string()];
+        for v in expected["variants"].as_array().unwrap() {
+            let v = v.as_str().unwrap();
+            let dir = family.join("adapters").join(v);
+            if v != "base"
+                && model::lora::Adapter::load(&dir)
+                    .unwrap()
+                    .needs_merge()
+                    .is_none()
+            {
+                variants.push(v.to_string());
+            }
+        }
+        if variants.len() < 2 {
+            continue;
+        }
+        let dirs: Vec<Option<PathBuf>> = variants
+            .iter()
+            .map(|v| (v != "base").then(|| family.join("adapters").join(v)))
+            .collect();
+        let refs: Vec<Option<&Path>> = dirs.iter().map(|d| d.as_deref()).collect();
+        let loaded =
+            model::load_group(&family.join("model"), &refs, model::WeightFormat::F32).unwrap();
+        let cases: Vec<&Value> = expected["cases"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .filter(|c| c.get("error").is_none_or(Value::is_null))
+            .collect();
+        let mut prompts: Vec<Vec<u32>> = Vec::new();
+        let mut jobs = Vec::new();
+        let mut want = Vec::new();
+        for c in &cases {
+            let Some(variant) = variants.iter().position(|v| c["variant"] == v.as_str()) else {
+                continue;
+            };
+            let out = match c.get("unmerged") {
+                Some(u) if !u.is_null() => ids(&u["output_ids"]),
+                _ => ids(&c["output_ids"]),
+            };
+            prompts.push(ids(&c["prompt_ids"]));
+            jobs.push(Job {
+                prompt: prompts.len() - 1,
+                variant,
+            });
+            want.push((out, c["max_new_tokens"].as_u64().unwrap() as usize));
+        }
+        let max_new = want.iter().map(|w| w.1).max().unwrap();
+        let settings = GenerationSettings {
+            decoding: Decoding::Greedy,
+            max_new_tokens: max_new,
+            eos: loaded.generation.eos.clone(),
+            ignore_eos: false,
+            repetition_penalty: None,
+        };
+        let mut got: Vec<Option<Vec<u32>>> = vec![None; jobs.len()];
+        generate_jobs(
+            &loaded.decoder,
+            &prompts,
+            &jobs,
+            &settings,
+            2 * variants.len(),
+            &mut |job, g| {
+                got[job.prompt] = Some(g.tokens);
+                Ok(())
+            },
+            &mut |_| Ok(()),
+        )
+        .unwrap();
+        for (k, ((out, n), g)) in want.iter().zip(&got).enumerate() {
+            let g = g.as_ref().expect("every job answered");
+            let m = (*n).min(g.len()).min(out.len());
+            assert_eq!(
+                &g[..m],
+                &out[..m],
+                "{} {} (job {k}): shared-base output vs reference",
+                family.display(),
+                variants[jobs[k].variant]
+            );
+        }
+    }
 }

@@ -158,3 +158,119 @@ fn bf16_weights_are_labelled_as_an_approximation() {
         );
     }
 }
+
+/// Several candidates in one run: the adapter as trained, the same adapter merged in f32 and in
+/// bf16, and a second adapter. One report directory holds every variant's answers and grades,
+/// a full report per candidate in `<name>/`, and the lineup (lineup.json, report.md). Each
+/// variant's answers equal a run of that variant alone with `liftgate answer` (the baseline
+/// and the unmerged adapters share one copy of the base and decode in the same steps), and the
+/// merged-in-f32 artifact answers as the adapter does (peft 0.21.2: the fixture's unmerged and
+/// merged outputs are identical, tests/reference/make_runner_fixtures.py).
+#[test]
+fn vet_compares_several_candidates_in_one_report() {
+    let tmp = with_set();
+    tmp.write(
+        "policy.toml",
+        "min_questions = 1\n[lift]\nmin_ci_low = -1.0\n[refusal]\nmin_out_of_scope = 0.0\nmax_false_refusal = 1.0\n",
+    );
+    let f = fixture();
+    let qv = f.join("adapters/qv");
+    let all = f.join("adapters/all");
+    let spec = |extra: &str, a: &PathBuf| format!("{extra},adapter={}", a.display());
+    let (c1, c2, c3) = (
+        spec("name=qv-f32,merge=f32", &qv),
+        spec("name=qv-bf16,merge=bf16", &qv),
+        spec("name=all", &all),
+    );
+    let run = vet(
+        &tmp,
+        "qv",
+        &[
+            "--policy",
+            "policy.toml",
+            "--report",
+            "rep",
+            "--no-history",
+            "--candidate",
+            &c1,
+            "--candidate",
+            &c2,
+            "--candidate",
+            &c3,
+        ],
+    );
+    run.expect_verdict();
+    let out = &run.stdout;
+    for name in ["candidate", "qv-f32", "qv-bf16", "all"] {
+        assert!(out.contains(&format!("verdict {name}: ")), "{out}");
+        for f in [
+            format!("{name}.answers.jsonl"),
+            format!("{name}.grades.jsonl"),
+            format!("{name}/report.md"),
+            format!("{name}/report.html"),
+            format!("{name}/summary.json"),
+        ] {
+            assert!(tmp.path("rep").join(&f).is_file(), "missing {f}");
+        }
+    }
+    let lineup: Value = serde_json::from_str(&tmp.read("rep/lineup.json")).unwrap();
+    assert_eq!(lineup["format"], "liftgate-lineup/1");
+    assert_eq!(lineup["candidates"].as_array().unwrap().len(), 4);
+    // Holm over four p-values: each adjusted value is at least its raw value.
+    for row in lineup["candidates"].as_array().unwrap() {
+        assert!(row["p_holm"].as_f64().unwrap() >= row["p_value"].as_f64().unwrap());
+    }
+    // The merged artifacts of qv come from `candidate` (same adapter, unmerged).
+    let kept = lineup["kept"].as_array().unwrap();
+    assert_eq!(kept.len(), 2, "{lineup}");
+    assert!(kept.iter().all(|k| k["from"] == "candidate"));
+    let summary: Value = serde_json::from_str(&tmp.read("rep/all/summary.json")).unwrap();
+    let checks = summary["verdict"]["checks"].as_array().unwrap();
+    assert!(checks.iter().any(|c| c["name"] == "lift.token_f1.holm"));
+    let md = tmp.read("rep/report.md");
+    assert!(
+        md.contains("How much of the lift each artifact keeps"),
+        "{md}"
+    );
+
+    let answers = |p: &str| -> Vec<String> {
+        tmp.read(p)
+            .lines()
+            .map(|l| serde_json::from_str::<Value>(l).unwrap()["answer"].to_string())
+            .collect()
+    };
+    assert_eq!(
+        answers("rep/candidate.answers.jsonl"),
+        answers("rep/qv-f32.answers.jsonl")
+    );
+    let model = f.join("model");
+    for (name, adapter) in [
+        ("baseline", None),
+        ("candidate", Some(&qv)),
+        ("all", Some(&all)),
+    ] {
+        let mut args = vec![
+            "answer".to_string(),
+            "--model".into(),
+            model.display().to_string(),
+            "--questions".into(),
+            "set.jsonl".into(),
+            "--out".into(),
+            format!("alone-{name}.jsonl"),
+            "--max-new-tokens".into(),
+            "6".into(),
+        ];
+        if let Some(a) = adapter {
+            args.extend(["--adapter".into(), a.display().to_string()]);
+        }
+        tmp.run(&args).expect_success();
+        assert_eq!(
+            answers(&format!("alone-{name}.jsonl")),
+            answers(&format!("rep/{name}.answers.jsonl")),
+            "{name}: in the lineup vs alone"
+        );
+    }
+    let run: Value = serde_json::from_str(&tmp.read("rep/qv-bf16.answers.jsonl.run.json")).unwrap();
+    assert_eq!(run["adapter"]["applied"], "merged and saved in bf16");
+    assert_eq!(run["variant"], "qv-bf16");
+}

@@ -66,9 +66,17 @@ impl Generated {
 /// prefilled in chunks of this size, so the scratch buffers stay small.
 const STEP_TOKENS: usize = 512;
 
+/// One sequence to generate: a prompt, answered by one model variant of the decoder
+/// ([`crate::model::decoder::Segment::variant`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Job {
+    pub prompt: usize,
+    pub variant: usize,
+}
+
 /// A sequence in a cache slot: its prompt tail still to feed, then one token a step.
 struct Active {
-    job: usize,
+    job: Job,
     /// Tokens to feed; `fed` of them are in the cache.
     pending: Vec<u32>,
     fed: usize,
@@ -118,14 +126,42 @@ pub fn generate_stream(
     on_done: &mut dyn FnMut(usize, Generated) -> Result<()>,
     on_step: &mut dyn FnMut(usize) -> Result<()>,
 ) -> Result<()> {
+    let jobs: Vec<Job> = todo
+        .iter()
+        .map(|&prompt| Job { prompt, variant: 0 })
+        .collect();
+    generate_jobs(
+        decoder,
+        prompts,
+        &jobs,
+        settings,
+        slots,
+        &mut |job, g| on_done(job.prompt, g),
+        on_step,
+    )
+}
+
+/// As [`generate_stream`], for jobs that name their model variant as well as their prompt:
+/// rows of several variants of one decoder (the base and unmerged adapters on it) run in the
+/// same steps, through the same products over the shared base weights. The shared prefix is
+/// computed once per variant, since an adapter changes its keys and values.
+pub fn generate_jobs(
+    decoder: &Decoder,
+    prompts: &[Vec<u32>],
+    todo: &[Job],
+    settings: &GenerationSettings,
+    slots: usize,
+    on_done: &mut dyn FnMut(Job, Generated) -> Result<()>,
+    on_step: &mut dyn FnMut(usize) -> Result<()>,
+) -> Result<()> {
     if slots == 0 {
         return Err(Error::internal("generate_stream needs at least one slot"));
     }
-    if let Some(&i) = todo.iter().find(|&&i| i >= prompts.len()) {
-        return Err(Error::internal(format!("job {i} has no prompt")));
+    if let Some(j) = todo.iter().find(|j| j.prompt >= prompts.len()) {
+        return Err(Error::internal(format!("job {} has no prompt", j.prompt)));
     }
-    if let Some(&i) = todo.iter().find(|&&i| prompts[i].is_empty()) {
-        return Err(Error::internal(format!("prompt {i} is empty")));
+    if let Some(j) = todo.iter().find(|j| prompts[j.prompt].is_empty()) {
+        return Err(Error::internal(format!("prompt {} is empty", j.prompt)));
     }
     let fresh = |i: usize| Generated {
         tokens: Vec::new(),
@@ -137,28 +173,40 @@ pub fn generate_stream(
         return Ok(());
     }
     if settings.max_new_tokens == 0 {
-        for &i in todo {
-            on_done(i, fresh(i))?;
+        for &j in todo {
+            on_done(j, fresh(j.prompt))?;
         }
         return Ok(());
     }
     let slots = slots.min(todo.len());
-    let longest = todo.iter().map(|&i| prompts[i].len()).max().unwrap_or(0);
+    let longest = todo
+        .iter()
+        .map(|j| prompts[j.prompt].len())
+        .max()
+        .unwrap_or(0);
     let mut cache = decoder.new_cache(slots, longest + settings.max_new_tokens);
     let mut ws = Workspace::default();
-    let prefix = if todo.len() > 1 {
-        shared_prefix_len(prompts, todo)
+    let todo_prompts: Vec<usize> = todo.iter().map(|j| j.prompt).collect();
+    // One prompt (however many variants answer it) shares nothing with another.
+    let prefix = if todo_prompts.iter().any(|&p| p != todo_prompts[0]) {
+        shared_prefix_len(prompts, &todo_prompts)
     } else {
         0
     };
     if prefix > 0 {
-        let seg = [Segment {
-            slot: 0,
-            tokens: &prompts[todo[0]][..prefix],
-        }];
-        decoder.forward(&seg, &mut cache, &mut ws)?;
-        cache.save_prefix(0);
-        cache.reset(0);
+        let mut variants: Vec<usize> = todo.iter().map(|j| j.variant).collect();
+        variants.sort_unstable();
+        variants.dedup();
+        for variant in variants {
+            let seg = [Segment {
+                slot: 0,
+                tokens: &prompts[todo[0].prompt][..prefix],
+                variant,
+            }];
+            decoder.forward(&seg, &mut cache, &mut ws)?;
+            cache.save_prefix(0, variant);
+            cache.reset(0);
+        }
     }
     let vocab = decoder.spec().vocab_size;
     let mut queue = todo.iter().copied();
@@ -168,11 +216,11 @@ pub fn generate_stream(
         for (slot, a) in active.iter_mut().enumerate() {
             if a.is_none() {
                 if let Some(job) = queue.next() {
-                    let p = cache.load_prefix(slot);
+                    let p = cache.load_prefix(slot, job.variant);
                     let seen = match settings.repetition_penalty {
                         Some(_) => {
                             let mut s = vec![false; vocab];
-                            for &t in &prompts[job] {
+                            for &t in &prompts[job.prompt] {
                                 if let Some(x) = s.get_mut(t as usize) {
                                     *x = true;
                                 }
@@ -183,9 +231,9 @@ pub fn generate_stream(
                     };
                     *a = Some(Active {
                         job,
-                        pending: prompts[job][p..].to_vec(),
+                        pending: prompts[job.prompt][p..].to_vec(),
                         fed: 0,
-                        out: fresh(job),
+                        out: fresh(job.prompt),
                         seen,
                         started: std::time::Instant::now(),
                     });
@@ -217,6 +265,7 @@ pub fn generate_stream(
                 Segment {
                     slot,
                     tokens: &a.pending[a.fed..a.fed + take],
+                    variant: a.job.variant,
                 }
             })
             .collect();

@@ -13,10 +13,10 @@ mod prompts;
 mod run;
 
 pub use generate::Decoding;
-pub use run::{answer_to, AnswerRun};
+pub use run::{answer_group, answer_to, AnswerRun, Member};
 
 use crate::error::{Error, Result};
-use crate::model::WeightFormat;
+use crate::model::{Merge, WeightFormat};
 use std::path::{Path, PathBuf};
 
 /// New tokens per answer unless `--max-new-tokens` says otherwise.
@@ -61,8 +61,12 @@ impl Generation {
 /// discard the saved answers of an earlier run.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Settings {
+    /// The variant's name, recorded in the run record.
+    pub name: Option<String>,
     pub model: PathBuf,
     pub adapter: Option<PathBuf>,
+    /// How the adapter is applied (unmerged unless a merge is asked for).
+    pub merge: Merge,
     pub generation: Generation,
     /// Discard saved answers of an earlier run instead of continuing it.
     pub restart: bool,
@@ -74,9 +78,15 @@ impl Settings {
     pub fn new(
         model: &Path,
         adapter: Option<&Path>,
+        merge: Merge,
         generation: Generation,
         restart: bool,
     ) -> Result<Self> {
+        if adapter.is_none() && merge != Merge::Unmerged {
+            return Err(Error::usage(
+                "a merge needs an adapter: give --adapter with --merge",
+            ));
+        }
         if !model.is_dir() {
             return Err(Error::usage(format!(
                 "--model {}: not a directory (expected a Hugging Face model directory with config.json, *.safetensors, tokenizer.json)",
@@ -92,6 +102,8 @@ impl Settings {
             }
         }
         Ok(Settings {
+            name: None,
+            merge,
             model: model.to_path_buf(),
             adapter: adapter.map(Path::to_path_buf),
             generation: generation.checked()?,

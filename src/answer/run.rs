@@ -2,7 +2,7 @@
 //! journal as it finishes (`crate::formats::journal`), and write the answers file with its run
 //! record at the end. A stopped or killed run is continued by the same command.
 
-use super::generate::{self, GenerationSettings};
+use super::generate::{self, GenerationSettings, Job};
 use super::{prompts, Settings};
 use crate::chat::ChatTokenizer;
 use crate::error::{Error, Result};
@@ -14,7 +14,7 @@ use crate::formats::run_record::{
 };
 use crate::fsutil;
 use crate::interrupt::StopFlag;
-use crate::model;
+use crate::model::{self, Merge};
 use indicatif::{ProgressBar, ProgressStyle};
 use std::path::{Path, PathBuf};
 use std::time::Instant;
@@ -49,21 +49,49 @@ struct Prepared {
     loaded: model::LoadedModel,
     prompts: Vec<Vec<u32>>,
     gen: GenerationSettings,
-    info: RunInfo,
+    /// Per variant.
+    infos: Vec<RunInfo>,
 }
 
-/// Loads the model (with the adapter merged) and tokenises every prompt; every input error
-/// surfaces here, before anything is written.
-fn prepare(settings: &Settings, set: &QuestionSet) -> Result<Prepared> {
-    let g = &settings.generation;
+/// Loads the model (one copy of the base with every variant's adapter) and tokenises every
+/// prompt; every input error surfaces here, before anything is written.
+fn prepare(members: &[Member], set: &QuestionSet) -> Result<Prepared> {
+    let first = members
+        .first()
+        .ok_or_else(|| Error::internal("an answering group needs a variant"))?
+        .settings;
+    if members.iter().any(|m| {
+        m.settings.model != first.model
+            || m.settings.generation != first.generation
+            || (members.len() > 1 && m.settings.merge != Merge::Unmerged)
+    }) {
+        return Err(Error::internal(
+            "the variants of one answering group must share model, generation and be unmerged",
+        ));
+    }
+    let g = &first.generation;
     let threads = set_threads(g.threads);
     // The config first: a wrong or unsupported model fails before the tokenizer is read.
-    model::config::ModelSpec::load(&settings.model)?;
-    let chat = ChatTokenizer::load(&settings.model)?;
+    model::config::ModelSpec::load(&first.model)?;
+    let chat = ChatTokenizer::load(&first.model)?;
     // Every prompt before any model work: a template error (e.g. a rejected system role) stops
     // the run with nothing computed.
     let prompts = prompts::build(&chat, g.system.as_deref(), set)?;
-    let loaded = model::load_as(&settings.model, settings.adapter.as_deref(), g.weights)?;
+    let loaded = match members {
+        [one] => model::load_as(
+            &first.model,
+            one.settings.adapter.as_deref(),
+            one.settings.merge,
+            g.weights,
+        )?,
+        _ => {
+            let adapters: Vec<Option<&Path>> = members
+                .iter()
+                .map(|m| m.settings.adapter.as_deref())
+                .collect();
+            model::load_group(&first.model, &adapters, g.weights)?
+        }
+    };
     let spec = &loaded.spec;
     if let Some((i, bad)) = prompts.iter().enumerate().find_map(|(i, p)| {
         p.iter()
@@ -71,7 +99,7 @@ fn prepare(settings: &Settings, set: &QuestionSet) -> Result<Prepared> {
             .map(|t| (i, *t))
     }) {
         return Err(Error::file(
-            settings.model.join("tokenizer.json"),
+            first.model.join("tokenizer.json"),
             format!(
                 "token id {bad} in the prompt of question {:?} is outside the model's vocabulary ({} rows); tokenizer and weights do not belong together",
                 set.questions[i].id, spec.vocab_size
@@ -81,7 +109,7 @@ fn prepare(settings: &Settings, set: &QuestionSet) -> Result<Prepared> {
     if !loaded.generation.unsupported_keys.is_empty() {
         eprintln!(
             "liftgate: warning: {} sets {} which transformers applies even under greedy decoding; liftgate ignores them, so answers may differ from the reference library",
-            settings.model.join("generation_config.json").display(),
+            first.model.join("generation_config.json").display(),
             loaded.generation.unsupported_keys.join(", ")
         );
     }
@@ -92,53 +120,77 @@ fn prepare(settings: &Settings, set: &QuestionSet) -> Result<Prepared> {
         ignore_eos: g.ignore_eos,
         repetition_penalty: loaded.generation.repetition_penalty.map(|p| p as f32),
     };
-    let info = RunInfo {
-        tool: "liftgate".to_string(),
-        tool_version: env!("CARGO_PKG_VERSION").to_string(),
-        model: model_info(&settings.model, &loaded)?,
-        adapter: loaded.adapter.as_ref().map(|(a, summary)| AdapterInfo {
-            path: settings
-                .adapter
-                .as_deref()
-                .map(|p| p.display().to_string())
-                .unwrap_or_default(),
-            fingerprint: a.fingerprint().to_string(),
-            modules_merged: summary.modules_merged,
-        }),
-        chat_template: TemplateInfo {
-            fingerprint: chat.template_fingerprint(),
-            from_model: chat.has_template(),
-        },
-        generation: GenerationInfo {
-            decoding: g.decoding.as_str().to_string(),
-            max_new_tokens: g.max_new_tokens,
-            ignore_eos: g.ignore_eos,
-            eos_token_ids: gen.eos.clone(),
-            eos_source: if loaded.generation.from_generation_config {
-                "generation_config.json".to_string()
-            } else {
-                "config.json".to_string()
+    let model = model_info(&first.model, &loaded)?;
+    let mut infos = Vec::with_capacity(members.len());
+    for (m, applied) in members.iter().zip(&loaded.adapters) {
+        if let Some(why) = applied.as_ref().and_then(|a| a.merged_because.as_deref()) {
+            eprintln!(
+                "liftgate: {}: applied merged in f32, not unmerged: {why}",
+                m.settings
+                    .adapter
+                    .as_deref()
+                    .unwrap_or(Path::new(""))
+                    .display()
+            );
+        }
+        infos.push(RunInfo {
+            tool: "liftgate".to_string(),
+            tool_version: env!("CARGO_PKG_VERSION").to_string(),
+            variant: m.settings.name.clone(),
+            model: model.clone(),
+            adapter: applied.as_ref().map(|a| AdapterInfo {
+                path: m
+                    .settings
+                    .adapter
+                    .as_deref()
+                    .map(|p| p.display().to_string())
+                    .unwrap_or_default(),
+                fingerprint: a.adapter.fingerprint().to_string(),
+                modules_merged: a.modules,
+                applied: a.merge.describe().to_string(),
+                merged_because: a.merged_because.clone(),
+            }),
+            chat_template: TemplateInfo {
+                fingerprint: chat.template_fingerprint(),
+                from_model: chat.has_template(),
             },
-            system: g.system.clone(),
-            repetition_penalty: loaded.generation.repetition_penalty,
-            ignored_generation_config_keys: loaded.generation.unsupported_keys.clone(),
-            batch: g.batch,
-            threads,
-        },
-        questions: QuestionsInfo {
-            path: set.path.display().to_string(),
-            fingerprint: set.fingerprint.clone(),
-            count: set.len(),
-        },
-        compute_dtype: g.weights.compute_dtype().to_string(),
-    };
+            generation: GenerationInfo {
+                decoding: g.decoding.as_str().to_string(),
+                max_new_tokens: g.max_new_tokens,
+                ignore_eos: g.ignore_eos,
+                eos_token_ids: gen.eos.clone(),
+                eos_source: if loaded.generation.from_generation_config {
+                    "generation_config.json".to_string()
+                } else {
+                    "config.json".to_string()
+                },
+                system: g.system.clone(),
+                repetition_penalty: loaded.generation.repetition_penalty,
+                ignored_generation_config_keys: loaded.generation.unsupported_keys.clone(),
+                batch: g.batch,
+                threads,
+            },
+            questions: QuestionsInfo {
+                path: set.path.display().to_string(),
+                fingerprint: set.fingerprint.clone(),
+                count: set.len(),
+            },
+            compute_dtype: g.weights.compute_dtype().to_string(),
+        });
+    }
     Ok(Prepared {
         chat,
         loaded,
         prompts,
         gen,
-        info,
+        infos,
     })
+}
+
+/// One variant of an answering group: its settings and where its answers go.
+pub struct Member<'a> {
+    pub out: &'a Path,
+    pub settings: &'a Settings,
 }
 
 /// Answers every question of `set` into `out` (and `<out>.run.json`), resumably.
@@ -155,51 +207,90 @@ pub fn answer_to(
     set: &QuestionSet,
     stop: &StopFlag,
 ) -> Result<AnswerRun> {
-    let prep = prepare(settings, set)?;
-    let identity = RunIdentity::of(&prep.info);
-    let jpath = journal::journal_path(out);
-    let n = set.len();
-    if !settings.restart && !jpath.exists() {
-        if let Some(done) = finished_run(out, &identity, set) {
-            eprintln!(
-                "liftgate: {} is already complete for this model, adapter, question set and settings; kept as it is (pass --restart to answer again)",
-                out.display()
-            );
-            return Ok(done);
-        }
-    }
-    stop.check(|| format!("nothing answered yet; {} not written", out.display()))?;
+    let mut runs = answer_group(&[Member { out, settings }], set, stop)?;
+    runs.pop()
+        .ok_or_else(|| Error::internal("an answering group returned no run"))
+}
 
-    let mut journal = Journal::open(&jpath)?;
-    let mut rows: Vec<Option<AnswerRecord>> = vec![None; n];
-    let contents = if settings.restart {
-        None
-    } else {
-        Some(journal.read(set)?)
-    };
-    match contents {
-        Some(Contents {
-            identity: Some(old),
-            records,
-            valid_len,
-            dropped_line,
-        }) => {
-            check_same_run(&jpath, &old, &identity)?;
-            journal.resume(valid_len)?;
-            let kept = records.len();
-            for (i, row) in records {
-                rows[i] = Some(row);
+/// One variant's state while its group answers.
+struct Pending {
+    /// None for a variant complete already.
+    journal: Option<Journal>,
+    jpath: PathBuf,
+    rows: Vec<Option<AnswerRecord>>,
+    /// Complete already (kept as it was).
+    done: Option<AnswerRun>,
+}
+
+/// As [`answer_to`] for several variants of one model (the base and unmerged adapters on it),
+/// loaded once: their rows run through the same decoding steps over the shared base weights,
+/// each variant saved to its own journal and answers file. Each variant's answers equal a run
+/// of that variant alone.
+pub fn answer_group(
+    members: &[Member],
+    set: &QuestionSet,
+    stop: &StopFlag,
+) -> Result<Vec<AnswerRun>> {
+    let prep = prepare(members, set)?;
+    let n = set.len();
+    let mut pending = Vec::with_capacity(members.len());
+    for (m, info) in members.iter().zip(&prep.infos) {
+        let identity = RunIdentity::of(info);
+        let jpath = journal::journal_path(m.out);
+        let restart = m.settings.restart;
+        if !restart && !jpath.exists() {
+            if let Some(done) = finished_run(m.out, &identity, set) {
+                eprintln!(
+                    "liftgate: {} is already complete for this model, adapter, question set and settings; kept as it is (pass --restart to answer again)",
+                    m.out.display()
+                );
+                pending.push(Pending {
+                    journal: None,
+                    jpath,
+                    rows: Vec::new(),
+                    done: Some(done),
+                });
+                continue;
             }
-            let dropped = match dropped_line {
-                Some(line) => format!(" (line {line}, cut off mid-write, dropped)"),
-                None => String::new(),
-            };
-            eprintln!(
-                "liftgate: continuing from {}: {kept} of {n} questions already answered{dropped}",
-                jpath.display()
-            );
         }
-        _ => journal.start(&identity)?,
+        stop.check(|| format!("nothing answered yet; {} not written", m.out.display()))?;
+        let mut journal = Journal::open(&jpath)?;
+        let mut rows: Vec<Option<AnswerRecord>> = vec![None; n];
+        let contents = if restart {
+            None
+        } else {
+            Some(journal.read(set)?)
+        };
+        match contents {
+            Some(Contents {
+                identity: Some(old),
+                records,
+                valid_len,
+                dropped_line,
+            }) => {
+                check_same_run(&jpath, &old, &identity)?;
+                journal.resume(valid_len)?;
+                let kept = records.len();
+                for (i, row) in records {
+                    rows[i] = Some(row);
+                }
+                let dropped = match dropped_line {
+                    Some(line) => format!(" (line {line}, cut off mid-write, dropped)"),
+                    None => String::new(),
+                };
+                eprintln!(
+                    "liftgate: continuing from {}: {kept} of {n} questions already answered{dropped}",
+                    jpath.display()
+                );
+            }
+            _ => journal.start(&identity)?,
+        }
+        pending.push(Pending {
+            journal: Some(journal),
+            jpath,
+            rows,
+            done: None,
+        });
     }
 
     let Prepared {
@@ -207,39 +298,60 @@ pub fn answer_to(
         loaded,
         prompts,
         gen,
-        info,
+        infos,
     } = prep;
     // Longest prompts first, so the slowest sequences start early and the last slots do not
-    // run alone at the end; the answers do not depend on the order.
-    let mut todo: Vec<usize> = (0..n).filter(|&i| rows[i].is_none()).collect();
-    todo.sort_by_key(|&i| (std::cmp::Reverse(prompts[i].len()), i));
-    // Read by both callbacks below, counted by one.
-    let saved = std::cell::Cell::new(n - todo.len());
-    let saved_note = |saved: usize| {
-        format!(
-            "{saved} of {n} answers saved in {}; {} not written yet",
-            jpath.display(),
-            out.display()
+    // run alone at the end; a question's variants side by side, so their rows share steps. The
+    // answers do not depend on the order.
+    let mut todo: Vec<Job> = Vec::new();
+    for (variant, p) in pending.iter().enumerate() {
+        if p.done.is_none() {
+            todo.extend(
+                (0..n)
+                    .filter(|&i| p.rows[i].is_none())
+                    .map(|prompt| Job { prompt, variant }),
+            );
+        }
+    }
+    todo.sort_by_key(|j| {
+        (
+            std::cmp::Reverse(prompts[j.prompt].len()),
+            j.prompt,
+            j.variant,
         )
+    });
+    let total = pending.iter().filter(|p| p.done.is_none()).count() * n;
+    // Read by both callbacks below, counted by one.
+    let saved = std::cell::Cell::new(total - todo.len());
+    let where_saved = match &pending[..] {
+        [one] => one.jpath.display().to_string(),
+        _ => "the .partial journals beside the answers files".to_string(),
+    };
+    let saved_note = |saved: usize| {
+        format!("{saved} of {total} answers saved in {where_saved}; the answers files are not written yet")
     };
     stop.check(|| saved_note(saved.get()))?;
-    let bar = progress_bar(n as u64);
+    let bar = progress_bar(total as u64);
     bar.set_position(saved.get() as u64);
     let started = Instant::now();
     let mut new_tokens_total = 0usize;
     let result = if todo.is_empty() {
         Ok(())
     } else {
-        generate::generate_stream(
+        generate::generate_jobs(
             &loaded.decoder,
             &prompts,
             &todo,
             &gen,
-            settings.generation.batch,
-            &mut |i, g| {
-                let row = prompts::answer_record(&chat, &set.questions[i].id, g)?;
-                journal.append(&row)?;
-                rows[i] = Some(row);
+            // --batch counts the sequences of each variant decoded together.
+            members[0].settings.generation.batch * members.len(),
+            &mut |job, g| {
+                let row = prompts::answer_record(&chat, &set.questions[job.prompt].id, g)?;
+                let p = &mut pending[job.variant];
+                if let Some(j) = p.journal.as_mut() {
+                    j.append(&row)?;
+                }
+                p.rows[job.prompt] = Some(row);
                 saved.set(saved.get() + 1);
                 bar.inc(1);
                 stop.check(|| saved_note(saved.get()))
@@ -263,16 +375,28 @@ pub fn answer_to(
         new_tokens_total as f64 / secs.max(1e-9)
     );
 
-    let mut records = Vec::with_capacity(n);
-    for (q, row) in set.questions.iter().zip(rows) {
-        records.push(
-            row.ok_or_else(|| Error::internal(format!("question {:?} was not answered", q.id)))?,
-        );
+    let mut runs = Vec::with_capacity(members.len());
+    for ((m, p), info) in members.iter().zip(pending).zip(infos) {
+        if let Some(done) = p.done {
+            runs.push(done);
+            continue;
+        }
+        let mut records = Vec::with_capacity(n);
+        for (q, row) in set.questions.iter().zip(p.rows) {
+            records.push(
+                row.ok_or_else(|| {
+                    Error::internal(format!("question {:?} was not answered", q.id))
+                })?,
+            );
+        }
+        let run = AnswerRun { records, info };
+        write_outputs(m.out, &run)?;
+        if let Some(j) = p.journal {
+            j.remove()?;
+        }
+        runs.push(run);
     }
-    let run = AnswerRun { records, info };
-    write_outputs(out, &run)?;
-    journal.remove()?;
-    Ok(run)
+    Ok(runs)
 }
 
 /// Refuses to continue a journal written by a different run, naming every field that differs.

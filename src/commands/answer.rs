@@ -9,12 +9,17 @@ use crate::fsutil;
 use crate::interrupt::StopFlag;
 
 pub fn run(args: &AnswerArgs) -> Result<Outcome> {
-    let settings = answer::Settings::new(
+    let mut settings = answer::Settings::new(
         &args.model,
         args.adapter.as_deref(),
+        args.merge.unwrap_or_default(),
         args::default_generation(&args.generation)?,
         args.restart,
     )?;
+    if let Some(name) = &args.name {
+        args::check_name("--name", name)?;
+        settings.name = Some(name.clone());
+    }
     if !args.questions.is_file() {
         return Err(Error::usage(format!(
             "--questions {}: no such file",

@@ -4,9 +4,11 @@
 
 use crate::answer::{self, Decoding, Generation};
 use crate::cli::{GenerationArgs, StatsArgs};
-use crate::error::Result;
+use crate::error::{Error, Result};
+use crate::model::Merge;
 use crate::policy::Policy;
 use crate::weigh;
+use std::path::{Path, PathBuf};
 
 /// The generation options; `max_new_tokens` applies when `--max-new-tokens` is not given.
 pub fn generation(args: &GenerationArgs, max_new_tokens: usize) -> Result<Generation> {
@@ -32,4 +34,125 @@ pub fn stats(args: &StatsArgs) -> Result<(weigh::Settings, Policy)> {
     let settings = weigh::Settings::new(args.resamples, args.seed, args.confidence)?;
     let policy = Policy::load_or_default(args.policy.as_deref())?;
     Ok((settings, policy))
+}
+
+/// A variant named on the command line: settings plus the candidate it was made from.
+pub struct NamedVariant {
+    pub settings: answer::Settings,
+    /// `from=NAME`: the candidate this artifact was made from.
+    pub from: Option<String>,
+}
+
+/// Letters, digits, `.`, `_` and `-`, 1 to 40 characters, not starting with `.` (it goes into
+/// file names).
+pub fn check_name(flag: &str, name: &str) -> Result<()> {
+    let ok = !name.is_empty()
+        && name.len() <= 40
+        && !name.starts_with('.')
+        && name
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || matches!(c, '.' | '_' | '-'));
+    if ok {
+        Ok(())
+    } else {
+        Err(Error::usage(format!(
+            "{flag}: the name `{name}` is not usable in file names: use 1 to 40 letters, digits, `.`, `_` or `-`, not starting with `.`"
+        )))
+    }
+}
+
+/// Parses one `--candidate` SPEC (`name=…,adapter=…,model=…,merge=…,from=…`) into settings;
+/// `model` defaults to `default_model`. Without `name=` the name is the adapter's (else the
+/// model's) directory name, with the merge dtype appended.
+pub fn candidate(
+    spec: &str,
+    default_model: &Path,
+    generation: &Generation,
+    restart: bool,
+) -> Result<NamedVariant> {
+    let flag = format!("--candidate {spec}");
+    let (mut name, mut model, mut adapter, mut merge, mut from) = (None, None, None, None, None);
+    for pair in spec.split(',').filter(|p| !p.trim().is_empty()) {
+        let Some((key, value)) = pair.split_once('=') else {
+            return Err(Error::usage(format!(
+                "{flag}: `{pair}` is not KEY=VALUE (keys: name, adapter, model, merge, from)"
+            )));
+        };
+        let value = value.trim();
+        let slot = match key.trim() {
+            "name" => &mut name,
+            "adapter" => &mut adapter,
+            "model" => &mut model,
+            "merge" => &mut merge,
+            "from" => &mut from,
+            other => {
+                return Err(Error::usage(format!(
+                    "{flag}: unknown key `{other}` (keys: name, adapter, model, merge, from)"
+                )))
+            }
+        };
+        if slot.replace(value.to_string()).is_some() {
+            return Err(Error::usage(format!(
+                "{flag}: `{}` is given twice",
+                key.trim()
+            )));
+        }
+    }
+    let merge = match merge.as_deref() {
+        None => Merge::Unmerged,
+        Some(v) => <Merge as clap::ValueEnum>::from_str(v, true)
+            .map_err(|_| Error::usage(format!("{flag}: merge={v}: expected f32, bf16 or f16")))?,
+    };
+    if adapter.is_none() && model.is_none() {
+        return Err(Error::usage(format!(
+            "{flag}: give adapter=DIR (the baseline's model plus that adapter) or model=DIR (a merged checkpoint), or both"
+        )));
+    }
+    let model_path = model
+        .map(PathBuf::from)
+        .unwrap_or_else(|| default_model.to_path_buf());
+    let adapter_path = adapter.map(PathBuf::from);
+    let name = match name {
+        Some(n) => n,
+        None => {
+            let dir = adapter_path.as_deref().unwrap_or(&model_path);
+            let base = dir
+                .file_name()
+                .map(|n| n.to_string_lossy().to_string())
+                .unwrap_or_else(|| "candidate".to_string());
+            let base: String = base
+                .chars()
+                .map(|c| {
+                    if c.is_ascii_alphanumeric() || matches!(c, '.' | '_' | '-') {
+                        c
+                    } else {
+                        '-'
+                    }
+                })
+                .collect();
+            match merge {
+                Merge::Unmerged => base,
+                Merge::F32 => format!("{base}-merged-f32"),
+                Merge::Bf16 => format!("{base}-merged-bf16"),
+                Merge::F16 => format!("{base}-merged-f16"),
+            }
+        }
+    };
+    check_name(&flag, &name)?;
+    if let Some(f) = &from {
+        check_name(&flag, f)?;
+    }
+    let mut settings = answer::Settings::new(
+        &model_path,
+        adapter_path.as_deref(),
+        merge,
+        generation.clone(),
+        restart,
+    )
+    .map_err(|e| match e {
+        Error::Usage(m) => Error::usage(format!("{flag}: {m}")),
+        other => other,
+    })?;
+    settings.name = Some(name);
+    Ok(NamedVariant { settings, from })
 }

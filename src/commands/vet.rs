@@ -1,6 +1,9 @@
-//! `liftgate vet`: the whole job in one command. Answer the held-out set with the base model and
-//! with base + adapter, grade both, weigh, write everything into one report directory and print
-//! the verdict. The stages are the same functions `answer`, `grade` and `weigh` call.
+//! `liftgate vet`: the whole job in one command. Answer the held-out set with the baseline and
+//! every candidate (base + adapter, merged checkpoints, ...), grade each, weigh each candidate
+//! against the baseline, write everything into one report directory and print the verdict.
+//! The stages are the same functions `answer`, `grade` and `weigh` call; with several
+//! candidates `weigh::lineup` adds the Holm check and "lift kept", and each candidate's full
+//! report goes into `<name>/`.
 //!
 //! With no `--model/--adapter/--questions` it runs the bundled demo: the Tidewren Ferry
 //! Cooperative base model and adapter under `demo/models/` and `eval-sets/ferry-faq.jsonl`.
@@ -12,17 +15,22 @@
 //! given, else in the newest unfinished directory under `reports/` made for the same question
 //! set and generation settings.
 
-use super::{args, Outcome};
-use crate::answer;
+use super::args::{self, NamedVariant};
+use super::Outcome;
+use crate::answer::{self, Member};
 use crate::cli::VetArgs;
 use crate::error::{Error, Result};
 use crate::formats::questions::QuestionSet;
+use crate::fsutil;
 use crate::grade;
 use crate::history::{self, RecordOptions};
 use crate::interrupt::StopFlag;
+use crate::model::lora::Adapter;
+use crate::model::Merge;
 use crate::policy::Policy;
 use crate::report::{self, dir};
 use crate::score::RefusalDetector;
+use crate::weigh::lineup::Candidate;
 use crate::weigh::{self, WeighInput};
 use std::path::{Path, PathBuf};
 
@@ -32,52 +40,85 @@ const DEMO_ADAPTER: &str = "demo/models/adapter";
 const DEMO_QUESTIONS: &str = "eval-sets/ferry-faq.jsonl";
 /// Demo answers are one or two sentences; the cap keeps the demo quick.
 const DEMO_MAX_NEW_TOKENS: usize = 48;
+/// The name of the candidate `--adapter` gives.
+const DEFAULT_CANDIDATE: &str = "candidate";
 
 /// Everything a vet run needs, checked against each other before any work.
 struct Settings {
     /// Where the finished run is recorded; None with --no-history.
     history: Option<RecordOptions>,
-    baseline: answer::Settings,
-    candidate: answer::Settings,
+    /// The baseline first, then the candidates; names unique.
+    variants: Vec<NamedVariant>,
     questions: PathBuf,
     stats: weigh::Settings,
     policy: Policy,
 }
 
-/// The demo when no model is given, else the user's three paths (clap makes them all-or-none).
+/// The demo when no model is given, else the user's paths (clap makes --model and --questions
+/// go together).
 fn settings(args: &VetArgs) -> Result<Settings> {
-    let (model, adapter, questions, generation) =
-        match (&args.model, &args.adapter, &args.questions) {
-            (Some(model), Some(adapter), Some(questions)) => (
-                model.clone(),
-                adapter.clone(),
-                questions.clone(),
-                args::default_generation(&args.generation)?,
-            ),
-            (None, None, None) => {
-                let root = demo_root().ok_or_else(|| {
-                    Error::usage(format!(
-                        "the bundled demo was not found: run `liftgate vet` from the liftgate project directory (it needs {DEMO_MODEL}, {DEMO_ADAPTER} and {DEMO_QUESTIONS}), or give --model, --adapter and --questions"
-                    ))
-                })?;
-                (
-                    root.join(DEMO_MODEL),
-                    root.join(DEMO_ADAPTER),
-                    root.join(DEMO_QUESTIONS),
-                    args::generation(&args.generation, DEMO_MAX_NEW_TOKENS)?,
-                )
-            }
-            _ => {
-                return Err(Error::usage(
-                    "give all three of --model, --adapter and --questions, or none of them to run the bundled demo",
+    let (model, adapter, questions, generation) = match (&args.model, &args.questions) {
+        (Some(model), Some(questions)) => (
+            model.clone(),
+            args.adapter.clone(),
+            questions.clone(),
+            args::default_generation(&args.generation)?,
+        ),
+        (None, None) if args.adapter.is_none() => {
+            let root = demo_root().ok_or_else(|| {
+                Error::usage(format!(
+                    "the bundled demo was not found: run `liftgate vet` from the liftgate project directory (it needs {DEMO_MODEL}, {DEMO_ADAPTER} and {DEMO_QUESTIONS}), or give --model, --adapter and --questions"
                 ))
-            }
-        };
-    let variant = |adapter: Option<&Path>| {
-        answer::Settings::new(&model, adapter, generation.clone(), args.restart)
+            })?;
+            (
+                root.join(DEMO_MODEL),
+                Some(root.join(DEMO_ADAPTER)),
+                root.join(DEMO_QUESTIONS),
+                args::generation(&args.generation, DEMO_MAX_NEW_TOKENS)?,
+            )
+        }
+        _ => {
+            return Err(Error::usage(
+                "give --model and --questions with --adapter or --candidate, or none of --model, --adapter and --questions to run the bundled demo",
+            ))
+        }
     };
-    let baseline = variant(None)?;
-    let candidate = variant(Some(&adapter))?;
+    args::check_name("--baseline-name", &args.baseline_name)?;
+    let mut baseline = answer::Settings::new(
+        &model,
+        None,
+        Merge::Unmerged,
+        generation.clone(),
+        args.restart,
+    )?;
+    baseline.name = Some(args.baseline_name.clone());
+    let mut variants = vec![NamedVariant {
+        settings: baseline,
+        from: None,
+    }];
+    if let Some(adapter) = &adapter {
+        let mut candidate = answer::Settings::new(
+            &model,
+            Some(adapter),
+            Merge::Unmerged,
+            generation.clone(),
+            args.restart,
+        )?;
+        candidate.name = Some(DEFAULT_CANDIDATE.to_string());
+        variants.push(NamedVariant {
+            settings: candidate,
+            from: None,
+        });
+    }
+    for spec in &args.candidate {
+        variants.push(args::candidate(spec, &model, &generation, args.restart)?);
+    }
+    if variants.len() < 2 {
+        return Err(Error::usage(
+            "nothing to compare: give --adapter DIR or at least one --candidate SPEC",
+        ));
+    }
+    check_names(&mut variants)?;
     if !questions.is_file() {
         return Err(Error::usage(format!(
             "--questions {}: no such file",
@@ -92,12 +133,91 @@ fn settings(args: &VetArgs) -> Result<Settings> {
     let history = RecordOptions::resolve(&args.history, &reports_parent, "vet")?;
     Ok(Settings {
         history,
-        baseline,
-        candidate,
+        variants,
         questions,
         stats,
         policy,
     })
+}
+
+/// Names must be unique (they name files), and `from=` must name another candidate. An
+/// artifact of the same adapter as an unmerged candidate comes from it unless `from=` says
+/// otherwise.
+fn check_names(variants: &mut [NamedVariant]) -> Result<()> {
+    let names: Vec<String> = variants.iter().map(|v| name_of(v).to_string()).collect();
+    for (i, n) in names.iter().enumerate() {
+        if names[..i].iter().any(|m| m.eq_ignore_ascii_case(n)) {
+            return Err(Error::usage(format!(
+                "the name `{n}` is used by two variants (names are file names and report rows, so each must be unique, ignoring case); set name= in --candidate, or --baseline-name"
+            )));
+        }
+    }
+    for i in 1..variants.len() {
+        if let Some(f) = &variants[i].from {
+            if !names[1..].iter().any(|m| m == f) || f == &names[i] {
+                return Err(Error::usage(format!(
+                    "--candidate name={}: from={f} names no other candidate (candidates: {})",
+                    names[i],
+                    names[1..].join(", ")
+                )));
+            }
+            continue;
+        }
+        let s = &variants[i].settings;
+        if s.merge == Merge::Unmerged || s.adapter.is_none() {
+            continue;
+        }
+        let same = |a: &Path, b: &Path| {
+            a == b || matches!((a.canonicalize(), b.canonicalize()), (Ok(x), Ok(y)) if x == y)
+        };
+        let source = (1..variants.len()).find(|&j| {
+            let t = &variants[j].settings;
+            j != i
+                && t.merge == Merge::Unmerged
+                && same(&t.model, &s.model)
+                && matches!((&t.adapter, &s.adapter), (Some(x), Some(y)) if same(x, y))
+        });
+        variants[i].from = source.map(|j| names[j].clone());
+    }
+    Ok(())
+}
+
+fn name_of(v: &NamedVariant) -> &str {
+    v.settings.name.as_deref().unwrap_or(DEFAULT_CANDIDATE)
+}
+
+/// The variant in words, for the report.
+fn describe(s: &answer::Settings) -> String {
+    match (&s.adapter, s.merge) {
+        (None, _) => format!("model {}", s.model.display()),
+        (Some(a), m) => format!(
+            "{} + adapter {}, {}",
+            s.model.display(),
+            a.display(),
+            m.describe()
+        ),
+    }
+}
+
+/// Which variants share one loaded copy of their base: the unmerged variants of one model
+/// directory (adapters that can only be merged excepted) answer together; every other variant
+/// answers alone. Groups come in the order of their first variant.
+fn groups(variants: &[NamedVariant]) -> Result<Vec<Vec<usize>>> {
+    let mut out: Vec<(Option<PathBuf>, Vec<usize>)> = Vec::new();
+    for (i, v) in variants.iter().enumerate() {
+        let s = &v.settings;
+        let shares = s.merge == Merge::Unmerged
+            && match &s.adapter {
+                None => true,
+                Some(a) => Adapter::load(a)?.needs_merge().is_none(),
+            };
+        let key = shares.then(|| s.model.canonicalize().unwrap_or_else(|_| s.model.clone()));
+        match out.iter_mut().find(|(k, _)| key.is_some() && *k == key) {
+            Some((_, members)) => members.push(i),
+            None => out.push((key, vec![i])),
+        }
+    }
+    Ok(out.into_iter().map(|(_, m)| m).collect())
 }
 
 pub fn run(args: &VetArgs) -> Result<Outcome> {
@@ -109,8 +229,9 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
 
     let reports = Path::new("reports");
     let name = dir::set_name(&settings.questions);
+    let generation = &settings.variants[0].settings.generation;
     let unfinished = match (&args.report, args.restart) {
-        (None, false) => dir::find_unfinished(reports, &name, &set, &settings.baseline.generation),
+        (None, false) => dir::find_unfinished(reports, &name, &set, generation),
         _ => None,
     };
     let claim = match (&args.report, unfinished) {
@@ -143,61 +264,159 @@ fn vet_into(
     args: &VetArgs,
     stop: &StopFlag,
 ) -> Result<Outcome> {
-    let detector = RefusalDetector::with_extra_phrases(&settings.policy.refusal.extra_phrases);
-    let mut graded = Vec::new();
-    for (label, variant, answers_name, grades_name) in [
-        (
-            "baseline (base model)",
-            &settings.baseline,
-            dir::BASELINE_ANSWERS,
-            dir::BASELINE_GRADES,
-        ),
-        (
-            "candidate (base + adapter)",
-            &settings.candidate,
-            dir::CANDIDATE_ANSWERS,
-            dir::CANDIDATE_GRADES,
-        ),
-    ] {
+    let variants = &settings.variants;
+    let names: Vec<&str> = variants.iter().map(name_of).collect();
+    let answers_paths: Vec<PathBuf> = names
+        .iter()
+        .map(|n| dir.join(dir::answers_file(n)))
+        .collect();
+    let mut runs: Vec<Option<answer::AnswerRun>> = vec![None; variants.len()];
+    for group in groups(variants)? {
         stop.check(|| format!("the answers saved so far are kept in {}", dir.display()))?;
+        let who: Vec<&str> = group.iter().map(|&i| names[i]).collect();
         eprintln!(
-            "liftgate: vet: answering {} questions with the {label}",
-            set.len()
+            "liftgate: vet: answering {} questions with {}{}",
+            set.len(),
+            who.join(", "),
+            if group.len() > 1 {
+                " (one copy of the base, rows of each variant in the same steps)"
+            } else {
+                ""
+            }
         );
-        let answers_path = dir.join(answers_name);
-        let run = answer::answer_to(&answers_path, variant, set, stop)?;
+        let members: Vec<Member> = group
+            .iter()
+            .map(|&i| Member {
+                out: &answers_paths[i],
+                settings: &variants[i].settings,
+            })
+            .collect();
+        let got = answer::answer_group(&members, set, stop)?;
+        for (&i, run) in group.iter().zip(got) {
+            runs[i] = Some(run);
+        }
+    }
+    let runs: Vec<answer::AnswerRun> = runs
+        .into_iter()
+        .map(|r| r.ok_or_else(|| Error::internal("a variant was not answered")))
+        .collect::<Result<_>>()?;
+    stop.check(|| format!("all answers are saved in {}", dir.display()))?;
+    let template_warnings = template_warnings(&names, &runs);
+    for w in &template_warnings {
+        eprintln!("liftgate: warning: {w}");
+    }
+
+    let detector = RefusalDetector::with_extra_phrases(&settings.policy.refusal.extra_phrases);
+    let mut graded = Vec::with_capacity(runs.len());
+    for (n, run) in names.iter().zip(&runs) {
         let grades = grade::grade_set(set, &run.records, &detector);
-        let grades_path = dir.join(grades_name);
-        grade::write_grades(&grades_path, &grades, set, &answers_path)?;
+        let grades_path = dir.join(dir::grades_file(n));
+        grade::write_grades(&grades_path, &grades, set, &dir.join(dir::answers_file(n)))?;
         graded.push((grades_path, grades));
     }
-    stop.check(|| format!("all answers are saved in {}", dir.display()))?;
-    let (baseline_path, baseline) = &graded[0];
-    let (candidate_path, candidate) = &graded[1];
-    let inputs = weigh::describe_inputs(
-        set,
-        baseline_path,
-        candidate_path,
-        args.stats.policy.as_deref(),
-    )?;
     eprintln!(
         "liftgate: vet: weighing ({} resamples, seed {})",
         settings.stats.resamples, settings.stats.seed
     );
-    let summary = weigh::weigh(&WeighInput {
+    let (baseline_path, baseline) = &graded[0];
+    let mut summaries = Vec::with_capacity(graded.len() - 1);
+    for (candidate_path, candidate) in &graded[1..] {
+        let inputs = weigh::describe_inputs(
+            set,
+            baseline_path,
+            candidate_path,
+            args.stats.policy.as_deref(),
+        )?;
+        let mut summary = weigh::weigh(&WeighInput {
+            set,
+            baseline,
+            candidate,
+            policy: &settings.policy,
+            settings: settings.stats,
+            inputs,
+        })?;
+        summary.warnings.extend(template_warnings.iter().cloned());
+        summaries.push(summary);
+    }
+    if summaries.len() == 1 {
+        let summary = &summaries[0];
+        let (candidate_path, candidate) = &graded[1];
+        report::write_report_dir(dir, summary)?;
+        let graded = history::two((baseline, baseline_path), (candidate, candidate_path));
+        history::record_after_report(settings.history.as_ref(), set, &graded, summary, dir);
+        print!("{}", report::terminal::render(summary));
+        println!("report: {}", dir.join("report.md").display());
+        return Ok(Outcome::from_verdict(summary.verdict.go));
+    }
+
+    let mut candidates: Vec<Candidate> = summaries
+        .iter_mut()
+        .zip(&graded[1..])
+        .zip(&variants[1..])
+        .map(|((summary, (_, grades)), v)| Candidate {
+            name: name_of(v),
+            describe: describe(&v.settings),
+            from: v.from.as_deref(),
+            grades,
+            summary,
+        })
+        .collect();
+    let lineup = weigh::lineup::lineup(
         set,
+        names[0],
+        describe(&variants[0].settings),
         baseline,
-        candidate,
-        policy: &settings.policy,
-        settings: settings.stats,
-        inputs,
-    })?;
-    report::write_report_dir(dir, &summary)?;
-    let graded = history::two((baseline, baseline_path), (candidate, candidate_path));
-    history::record_after_report(settings.history.as_ref(), set, &graded, &summary, dir);
-    print!("{}", report::terminal::render(&summary));
+        &mut candidates,
+        &settings.policy,
+        settings.stats,
+    );
+    drop(candidates);
+    for (summary, n) in summaries.iter().zip(&names[1..]) {
+        let sub = dir.join(n);
+        fsutil::create_dir(&sub)?;
+        report::write_report_dir(&sub, summary)?;
+    }
+    report::lineup::write(dir, &lineup)?;
+    for ((summary, (candidate_path, candidate)), n) in
+        summaries.iter().zip(&graded[1..]).zip(&names[1..])
+    {
+        let opts = settings.history.as_ref().map(|o| o.for_candidate(n));
+        let pair = history::two((baseline, baseline_path), (candidate, candidate_path));
+        history::record_after_report(opts.as_ref(), set, &pair, summary, &dir.join(n));
+    }
+    print!("{}", report::lineup::terminal(&lineup));
     println!("report: {}", dir.join("report.md").display());
-    Ok(Outcome::from_verdict(summary.verdict.go))
+    Ok(Outcome::from_verdict(lineup.go))
+}
+
+/// A candidate whose chat template or tokenizer differs from the baseline's is also measured
+/// on that difference: say so.
+fn template_warnings(names: &[&str], runs: &[answer::AnswerRun]) -> Vec<String> {
+    let tokenizer = |r: &answer::AnswerRun| {
+        r.info
+            .model
+            .files
+            .iter()
+            .find(|f| f.name == "tokenizer.json")
+            .map(|f| f.sha256.clone())
+    };
+    let base = &runs[0].info;
+    let mut out = Vec::new();
+    for (n, r) in names.iter().zip(runs).skip(1) {
+        if r.info.chat_template.fingerprint != base.chat_template.fingerprint {
+            out.push(format!(
+                "{n} renders prompts with another chat template than {} ({} against {}): the comparison then measures the template as well as the weights.",
+                names[0], r.info.model.path, base.model.path
+            ));
+        }
+        if tokenizer(r) != tokenizer(&runs[0]) {
+            out.push(format!(
+                "{n} has another tokenizer.json than {} ({} against {}): the comparison then measures the tokenizer as well as the weights.",
+                names[0], r.info.model.path, base.model.path
+            ));
+        }
+    }
+    out
 }
 
 /// The project directory holding the demo: the current directory when it has one, else the

@@ -38,6 +38,9 @@ pub struct RunIdentity {
     /// The dtype the checkpoint stores its weights in.
     pub stored_dtype: String,
     pub adapter_fingerprint: Option<String>,
+    /// How the adapter was applied (merged answers are not unmerged answers).
+    #[serde(default)]
+    pub adapter_applied: Option<String>,
     pub chat_template_fingerprint: String,
     pub chat_template_from_model: bool,
     pub system: Option<String>,
@@ -57,6 +60,7 @@ impl RunIdentity {
             model_fingerprint: info.model.fingerprint.clone(),
             stored_dtype: info.model.stored_dtype.clone(),
             adapter_fingerprint: info.adapter.as_ref().map(|a| a.fingerprint.clone()),
+            adapter_applied: info.adapter.as_ref().map(|a| a.applied.clone()),
             chat_template_fingerprint: info.chat_template.fingerprint.clone(),
             chat_template_from_model: info.chat_template.from_model,
             system: info.generation.system.clone(),
@@ -375,6 +379,7 @@ mod tests {
             model_fingerprint: "m".repeat(64),
             stored_dtype: "F32".into(),
             adapter_fingerprint: None,
+            adapter_applied: None,
             chat_template_fingerprint: "t".repeat(64),
             chat_template_from_model: true,
             system: None,

@@ -118,6 +118,9 @@ pub struct GradeRunInfo {
 pub struct RunInfo {
     pub tool: String,
     pub tool_version: String,
+    /// The variant's name in its run (`vet`'s baseline and candidates; `answer --name`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub variant: Option<String>,
     pub model: ModelInfo,
     pub adapter: Option<AdapterInfo>,
     pub chat_template: TemplateInfo,
@@ -150,7 +153,20 @@ pub struct FileDigest {
 pub struct AdapterInfo {
     pub path: String,
     pub fingerprint: String,
+    /// LoRA modules applied (merged or beside the base).
     pub modules_merged: usize,
+    /// How it was applied: "unmerged (the adapter as trained)", "merged in f32", "merged and
+    /// saved in bf16", "merged and saved in f16". Records written before variants say nothing
+    /// here and were merged in f32.
+    #[serde(default = "merged_in_f32")]
+    pub applied: String,
+    /// Why an unmerged request was merged instead.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub merged_because: Option<String>,
+}
+
+fn merged_in_f32() -> String {
+    "merged in f32".to_string()
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]

@@ -46,6 +46,19 @@ pub struct RecordOptions {
 }
 
 impl RecordOptions {
+    /// The options for one candidate of a lineup: its name joins the label, so each
+    /// candidate's comparison is a run of its own in the history.
+    pub fn for_candidate(&self, name: &str) -> RecordOptions {
+        RecordOptions {
+            path: self.path.clone(),
+            label: Some(match &self.label {
+                Some(l) => format!("{l} [{name}]"),
+                None => name.to_string(),
+            }),
+            source: self.source,
+        }
+    }
+
     /// The options of `--history`, `--no-history` and `--label`: `None` with `--no-history`,
     /// else the given file or `<reports_parent>/history.sqlite`. An existing file is checked
     /// here, before the run does any work: damaged, foreign or newer-schema files exit 2.

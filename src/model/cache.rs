@@ -21,7 +21,8 @@ pub struct KvCache {
     pub(super) v: Vec<Vec<f32>>,
     /// Positions each slot holds.
     pub(super) lens: Vec<usize>,
-    prefix: Option<SavedPrefix>,
+    /// Saved prefixes by key (one per model variant: an adapter changes the keys and values).
+    prefixes: Vec<Option<SavedPrefix>>,
 }
 
 /// A saved shared prefix: its length and, per layer, k and v as [len, kv_dim].
@@ -44,7 +45,7 @@ impl KvCache {
             k: (0..layers).map(|_| vec![0.0; per_layer]).collect(),
             v: (0..layers).map(|_| vec![0.0; per_layer]).collect(),
             lens: vec![0; slots],
-            prefix: None,
+            prefixes: Vec::new(),
         }
     }
 
@@ -53,22 +54,26 @@ impl KvCache {
         self.lens[slot] = 0;
     }
 
-    /// Keeps a copy of what `slot` holds as the shared prefix.
-    pub fn save_prefix(&mut self, slot: usize) {
+    /// Keeps a copy of what `slot` holds as the shared prefix under `key`.
+    pub fn save_prefix(&mut self, slot: usize, key: usize) {
         let n = self.lens[slot] * self.kv_dim;
         let at = slot * self.capacity * self.kv_dim;
         let k = self.k.iter().map(|l| l[at..at + n].to_vec()).collect();
         let v = self.v.iter().map(|l| l[at..at + n].to_vec()).collect();
-        self.prefix = Some(SavedPrefix {
+        if self.prefixes.len() <= key {
+            self.prefixes.resize_with(key + 1, || None);
+        }
+        self.prefixes[key] = Some(SavedPrefix {
             len: self.lens[slot],
             k,
             v,
         });
     }
 
-    /// Makes `slot` hold exactly the saved prefix; returns its length (0 when none is saved).
-    pub fn load_prefix(&mut self, slot: usize) -> usize {
-        let Some(SavedPrefix { len, k, v }) = &self.prefix else {
+    /// Makes `slot` hold exactly the prefix saved under `key`; returns its length (0 when none
+    /// is saved).
+    pub fn load_prefix(&mut self, slot: usize, key: usize) -> usize {
+        let Some(Some(SavedPrefix { len, k, v })) = self.prefixes.get(key) else {
             self.lens[slot] = 0;
             return 0;
         };
@@ -101,8 +106,9 @@ mod tests {
             }
         }
         c.lens[1] = 2;
-        c.save_prefix(1);
-        assert_eq!(c.load_prefix(2), 2);
+        c.save_prefix(1, 1);
+        assert_eq!(c.load_prefix(2, 1), 2);
+        assert_eq!(c.load_prefix(0, 0), 0, "nothing saved under another key");
         assert_eq!(c.lens[2], 2);
         let at2 = 2 * 5 * 4;
         for l in 0..2 {
@@ -112,6 +118,6 @@ mod tests {
         c.reset(2);
         assert_eq!(c.lens[2], 0);
         let mut fresh = KvCache::new(1, 1, 2, 1);
-        assert_eq!(fresh.load_prefix(0), 0);
+        assert_eq!(fresh.load_prefix(0, 0), 0);
     }
 }

@@ -26,6 +26,7 @@ use crate::kernels::PARALLEL_WORK;
 use crate::model::config::{Activation, ModelSpec, NormStyle};
 use crate::model::head::{apply_repetition_penalty, argmax, Scratch as HeadScratch, Screen};
 use crate::model::linear::{flat, Linear, WeightFormat};
+use crate::model::lora::LowRank;
 use crate::model::names::{self, EMBED, FINAL_NORM, LM_HEAD};
 use crate::model::rope::{rope_frequencies, rope_in_place};
 use candle_core::Tensor;
@@ -34,11 +35,14 @@ use std::collections::HashMap;
 
 pub use crate::model::cache::KvCache;
 
-/// A run of new tokens of the sequence in `slot`, placed right after what the slot holds.
+/// A run of new tokens of the sequence in `slot`, placed right after what the slot holds,
+/// computed by model variant `variant` (0 with no unmerged adapters; see
+/// [`Decoder::with_adapters`]).
 #[derive(Debug, Clone, Copy)]
 pub struct Segment<'a> {
     pub slot: usize,
     pub tokens: &'a [u32],
+    pub variant: usize,
 }
 
 /// Scratch buffers of the forward pass, grown to the largest call seen and then reused, so
@@ -57,6 +61,7 @@ pub struct Workspace {
     sin: Vec<f32>,
     tok_slot: Vec<usize>,
     tok_pos: Vec<usize>,
+    tok_variant: Vec<usize>,
     /// Which slots this call names (each at most once).
     slot_used: Vec<bool>,
     last: Vec<f32>,
@@ -178,9 +183,32 @@ impl Decoder {
     /// As [`Decoder::new`], with the matrix products' weights in `format`.
     pub fn with_format(
         spec: &ModelSpec,
-        mut w: HashMap<String, Tensor>,
+        w: HashMap<String, Tensor>,
         format: WeightFormat,
     ) -> Result<Self> {
+        Decoder::with_adapters(spec, w, format, Vec::new())
+    }
+
+    /// As [`Decoder::with_format`], with unmerged adapters laid beside the one copy of the base:
+    /// `adapters` pairs a variant number with its low-rank terms. A segment of that variant
+    /// gets the terms added to the outputs of the layers they adapt; a segment of any other
+    /// number runs the base alone. Several variants thus share every base weight, and their
+    /// rows go through the same products in one call.
+    pub fn with_adapters(
+        spec: &ModelSpec,
+        mut w: HashMap<String, Tensor>,
+        format: WeightFormat,
+        adapters: Vec<(usize, Vec<LowRank>)>,
+    ) -> Result<Self> {
+        let mut terms: HashMap<String, Vec<(usize, LowRank)>> = HashMap::new();
+        for (variant, list) in adapters {
+            for lr in list {
+                terms
+                    .entry(lr.module.clone())
+                    .or_default()
+                    .push((variant, lr));
+            }
+        }
         let own_head = w.contains_key(LM_HEAD);
         let mut take = |name: &str| -> Result<Tensor> {
             w.remove(name)
@@ -198,17 +226,18 @@ impl Decoder {
         for l in 0..spec.num_layers {
             let tensor = names::Layer::new(l);
             let mut t = |name: String| take(&name);
-            let mut part = |module: &str, bias: bool| -> Result<(Tensor, Option<Tensor>)> {
+            let mut part = |module: &str, bias: bool| -> Result<Part> {
                 let w = t(tensor.weight(module))?;
                 let b = if bias {
                     Some(t(tensor.bias(module))?)
                 } else {
                     None
                 };
-                Ok((w, b))
+                Ok((tensor.module(module), w, b))
             };
+            let mut stack = |parts: Vec<Part>| stack_with_terms(parts, format, &mut terms);
             let qkv = if spec.fused_qkv {
-                Linear::stack(vec![part(names::QKV_PROJ, false)?], format)?
+                stack(vec![part(names::QKV_PROJ, false)?])?
             } else {
                 let b = spec.qkv_bias;
                 let parts = vec![
@@ -216,17 +245,17 @@ impl Decoder {
                     part(names::K_PROJ, b)?,
                     part(names::V_PROJ, b)?,
                 ];
-                Linear::stack(parts, format)?
+                stack(parts)?
             };
-            let o = Linear::stack(vec![part(names::O_PROJ, spec.o_bias)?], format)?;
+            let o = stack(vec![part(names::O_PROJ, spec.o_bias)?])?;
             let gate_up = if spec.fused_gate_up {
-                Linear::stack(vec![part(names::GATE_UP_PROJ, false)?], format)?
+                stack(vec![part(names::GATE_UP_PROJ, false)?])?
             } else {
                 let b = spec.mlp_bias;
                 let parts = vec![part(names::GATE_PROJ, b)?, part(names::UP_PROJ, b)?];
-                Linear::stack(parts, format)?
+                stack(parts)?
             };
-            let down = Linear::stack(vec![part(names::DOWN_PROJ, spec.mlp_bias)?], format)?;
+            let down = stack(vec![part(names::DOWN_PROJ, spec.mlp_bias)?])?;
             let qk_norm = if spec.qk_norm {
                 // Always Llama style (Qwen3RMSNorm), per head over head_dim.
                 Some((
@@ -255,6 +284,11 @@ impl Decoder {
                 down,
                 window: spec.layer_windows.get(l).copied().flatten(),
             });
+        }
+        if let Some(module) = terms.keys().next() {
+            return Err(Error::internal(format!(
+                "the unmerged adapter term of `{module}` has no linear layer to go to"
+            )));
         }
         let final_norm = norm(take(FINAL_NORM)?)?;
         let lm_head = w.remove(LM_HEAD).map(|h| flat(&h)).transpose()?;
@@ -332,6 +366,7 @@ impl Decoder {
         let seg = [Segment {
             slot: 0,
             tokens: prompt,
+            variant: 0,
         }];
         Ok(self.forward(&seg, &mut cache, &mut ws)?.to_vec())
     }
@@ -421,6 +456,7 @@ impl Decoder {
         // Validate and lay out the tokens.
         ws.tok_slot.clear();
         ws.tok_pos.clear();
+        ws.tok_variant.clear();
         let seen = &mut ws.slot_used;
         seen.clear();
         seen.resize(cache.slots, false);
@@ -450,6 +486,7 @@ impl Decoder {
             for i in 0..seg.tokens.len() {
                 ws.tok_slot.push(seg.slot);
                 ws.tok_pos.push(start + i);
+                ws.tok_variant.push(seg.variant);
             }
         }
         let n = ws.tok_slot.len();
@@ -494,6 +531,7 @@ impl Decoder {
         let (cos, sin) = (&ws.cos[..n * half], &ws.sin[..n * half]);
         let tok_slot = &ws.tok_slot[..];
         let tok_pos = &ws.tok_pos[..];
+        let rows = &ws.tok_variant[..];
         let h = &mut ws.h[..n * hidden];
         let x = sized(&mut ws.x, n * hidden);
         let qkv = sized(&mut ws.qkv, n * qkv_w);
@@ -505,7 +543,7 @@ impl Decoder {
         let eps = self.eps;
         for (li, layer) in self.layers.iter().enumerate() {
             rms_norm_rows(h, &layer.input_norm, eps, hidden, x);
-            layer.qkv.forward(x, n, qkv);
+            layer.qkv.forward(x, n, qkv, rows);
             // q/k norms, RoPE, and the new keys and values into the cache.
             let (ck, cv) = (&mut cache.k[li], &mut cache.v[li]);
             for t in 0..n {
@@ -584,7 +622,7 @@ impl Decoder {
                     .enumerate()
                     .for_each(one);
             }
-            layer.o.forward(attn, n, out);
+            layer.o.forward(attn, n, out, rows);
             if layer.ff_norms.is_some() {
                 // Gemma2: post_attention_layernorm normalises the attention output.
                 rms_norm_rows(out, &layer.post_attn_norm, eps, hidden, x);
@@ -597,7 +635,7 @@ impl Decoder {
                 None => &layer.post_attn_norm,
             };
             rms_norm_rows(h, pre, eps, hidden, x);
-            layer.gate_up.forward(x, n, gate_up);
+            layer.gate_up.forward(x, n, gate_up, rows);
             for (gu, a) in gate_up
                 .chunks_exact(2 * inter)
                 .zip(act.chunks_exact_mut(inter))
@@ -607,7 +645,7 @@ impl Decoder {
                     *a = activation(s.activation, g) * u;
                 }
             }
-            layer.down.forward(act, n, out);
+            layer.down.forward(act, n, out, rows);
             match &layer.ff_norms {
                 Some((_, post)) => {
                     rms_norm_rows(out, post, eps, hidden, x);
@@ -632,6 +670,34 @@ impl Decoder {
         rms_norm_rows(last, &self.final_norm, eps, hidden, normed);
         Ok(())
     }
+}
+
+/// One checkpoint matrix of a stacked layer: its module name, weight and bias.
+type Part = (String, Tensor, Option<Tensor>);
+
+/// Stacks the parts into one layer and attaches the unmerged adapter terms of each part's
+/// module at that part's rows, taking them out of `terms`.
+fn stack_with_terms(
+    parts: Vec<Part>,
+    format: WeightFormat,
+    terms: &mut HashMap<String, Vec<(usize, LowRank)>>,
+) -> Result<Linear> {
+    let mut places = Vec::with_capacity(parts.len());
+    let mut at = 0;
+    let mut tensors = Vec::with_capacity(parts.len());
+    for (module, w, b) in parts {
+        let rows = w.dims2()?.0;
+        places.push((module, at));
+        at += rows;
+        tensors.push((w, b));
+    }
+    let mut linear = Linear::stack(tensors, format)?;
+    for (module, at) in places {
+        for (variant, lr) in terms.remove(&module).unwrap_or_default() {
+            linear.attach(variant, at, lr)?;
+        }
+    }
+    Ok(linear)
 }
 
 fn add(h: &mut [f32], d: &[f32]) {

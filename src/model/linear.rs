@@ -6,8 +6,11 @@
 
 use crate::error::{Error, Result};
 use crate::kernels::bf16::Bf16Matrix;
-use crate::kernels::dense::{matmul, matmul_half, pack_panels_into, panel_len, Half};
+use crate::kernels::dense::{dot, matmul, matmul_half, pack_panels_into, panel_len, Half};
+use crate::kernels::PARALLEL_WORK;
+use crate::model::lora::LowRank;
 use candle_core::{DType, Tensor, WithDType};
+use rayon::prelude::*;
 
 /// How the runner holds the weights of the matrix products.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default, clap::ValueEnum)]
@@ -44,6 +47,16 @@ pub struct Linear {
     pub out: usize,
     pub inp: usize,
     b: Option<Vec<f32>>,
+    /// Unmerged adapters: low-rank terms added to the output rows of the tokens of one variant.
+    terms: Vec<Term>,
+}
+
+/// A low-rank term of one variant over the output rows `at..at + lr.out` (its module's place in
+/// the stacked matrix).
+struct Term {
+    variant: usize,
+    at: usize,
+    lr: LowRank,
 }
 
 enum LinearWeights {
@@ -111,11 +124,25 @@ impl Linear {
             out,
             inp,
             b: with_bias.then_some(b),
+            terms: Vec::new(),
         })
     }
 
-    /// x: [n, inp] → y: [n, out]
-    pub fn forward(&self, x: &[f32], n: usize, y: &mut [f32]) {
+    /// Adds `variant`'s low-rank term over the output rows starting at `at`.
+    pub fn attach(&mut self, variant: usize, at: usize, lr: LowRank) -> Result<()> {
+        if lr.inp != self.inp || at + lr.out > self.out {
+            return Err(Error::internal(format!(
+                "the low-rank term of {} ([{}, {}] at row {at}) does not fit its layer [{}, {}]",
+                lr.module, lr.out, lr.inp, self.out, self.inp
+            )));
+        }
+        self.terms.push(Term { variant, at, lr });
+        Ok(())
+    }
+
+    /// x: [n, inp] → y: [n, out]. `rows[t]` is the variant of row t: rows of a variant with an
+    /// unmerged adapter get its low-rank terms on top of the shared base product.
+    pub fn forward(&self, x: &[f32], n: usize, y: &mut [f32], rows: &[usize]) {
         match &self.w {
             LinearWeights::F32(w) => matmul(x, n, self.inp, w, self.out, y),
             LinearWeights::StoredBf16(w) => matmul_half(x, n, self.inp, w, self.out, y),
@@ -128,6 +155,42 @@ impl Linear {
                     *v += bb;
                 }
             }
+        }
+        if self.terms.is_empty() {
+            return;
+        }
+        let one = |(t, yr): (usize, &mut [f32])| {
+            let xr = &x[t * self.inp..(t + 1) * self.inp];
+            let mut z = Vec::new();
+            for term in self
+                .terms
+                .iter()
+                .filter(|tm| rows.get(t) == Some(&tm.variant))
+            {
+                let lr = &term.lr;
+                // z = x·Aᵀ, then u = z·Bᵀ + b_B, then y += u·s (peft's order of operations).
+                z.clear();
+                z.extend(lr.a.chunks_exact(lr.inp).map(|ar| dot(ar, xr)));
+                let dst = &mut yr[term.at..term.at + lr.out];
+                for (o, (v, br)) in dst.iter_mut().zip(lr.b.chunks_exact(lr.rank)).enumerate() {
+                    let mut u = dot(br, &z);
+                    if let Some(bb) = &lr.b_bias {
+                        u += bb[o];
+                    }
+                    *v += u * lr.scaling;
+                }
+            }
+        };
+        let per_row: usize = self
+            .terms
+            .iter()
+            .map(|t| t.lr.rank * (t.lr.inp + t.lr.out))
+            .sum();
+        let y = &mut y[..n * self.out];
+        if n > 1 && n * per_row >= PARALLEL_WORK {
+            y.par_chunks_mut(self.out).enumerate().for_each(one);
+        } else {
+            y.chunks_mut(self.out).enumerate().for_each(one);
         }
     }
 }

@@ -1,14 +1,16 @@
 //! Loading a Hugging Face-layout model directory for CPU inference: config → spec
 //! (`config`), safetensors → f32 tensors by checkpoint name (`weights`, names in `names`),
-//! optional LoRA merge on that map (`lora`), then the generic decoder (`decoder`, with its
-//! `cache`, `rope`, `linear` layers and the greedy pick at the output `head`).
+//! LoRA adapters laid beside the base or merged into that map (`lora`), then the generic
+//! decoder (`decoder`, with its `cache`, `rope`, `linear` layers and the greedy pick at the
+//! output `head`).
 //!
 //! The arithmetic under the decoder (matrix products, the bf16 and 8-bit kernels) lives in
 //! `crate::kernels`, which knows nothing of models; the modules here import it, never the
 //! other way round. Within this module the imports run one way too: `names` and `rope` use
-//! `config`; `weights` uses `config` and `names`; `lora` uses `names`; `linear` and `head`
-//! use only the kernels; `decoder` uses all of `config`, `names`, `rope`, `cache`, `linear`
-//! and `head`; nothing uses `decoder` but this file.
+//! `config`; `weights` uses `config` and `names`; `lora` uses `names`; `linear` uses the
+//! kernels and `lora`'s low-rank terms; `head` uses only the kernels; `decoder` uses all of
+//! `config`, `names`, `rope`, `cache`, `linear`, `lora` and `head`; nothing uses `decoder` but
+//! this file.
 
 pub mod cache;
 pub mod config;
@@ -22,12 +24,53 @@ pub mod weights;
 
 pub use linear::WeightFormat;
 
-use crate::error::Result;
+use crate::error::{Error, Result};
+use candle_core::DType;
 use config::{GenerationDefaults, ModelSpec};
 use decoder::Decoder;
 use std::path::{Path, PathBuf};
 
-/// A model ready to generate, with what it was loaded from.
+/// How an adapter is applied to its base.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, clap::ValueEnum)]
+pub enum Merge {
+    /// Not merged: the adapter as trained, its low-rank terms added beside the base (as peft
+    /// computes an adapter model at inference).
+    #[default]
+    #[value(skip)]
+    Unmerged,
+    /// Merged into the base in f32 (peft `merge_and_unload` on the base loaded in float32).
+    F32,
+    /// Merged on the base loaded in bf16 and saved in bf16: every weight rounded to bf16.
+    Bf16,
+    /// Merged on the base loaded in f16 and saved in f16: every weight rounded to f16.
+    F16,
+}
+
+impl Merge {
+    /// The words run records and reports use.
+    pub fn describe(self) -> &'static str {
+        match self {
+            Merge::Unmerged => "unmerged (the adapter as trained)",
+            Merge::F32 => "merged in f32",
+            Merge::Bf16 => "merged and saved in bf16",
+            Merge::F16 => "merged and saved in f16",
+        }
+    }
+}
+
+/// One adapter of a loaded model and how it was applied.
+pub struct AppliedAdapter {
+    pub adapter: lora::Adapter,
+    /// How it was applied (an unmerged request that had to be merged says `F32`).
+    pub merge: Merge,
+    /// LoRA modules applied.
+    pub modules: usize,
+    /// Why an unmerged request was merged instead.
+    pub merged_because: Option<String>,
+}
+
+/// A model ready to generate, with what it was loaded from. Its decoder may carry several
+/// variants: variant i is the base plus `adapters[i]` (the base alone where that is None).
 pub struct LoadedModel {
     pub decoder: Decoder,
     pub spec: ModelSpec,
@@ -36,30 +79,35 @@ pub struct LoadedModel {
     pub weight_files: Vec<PathBuf>,
     /// Stored dtype of the checkpoint ("f32", "bf16", "f16"); computation is f32.
     pub stored_dtype: String,
-    /// The merged adapter and what the merge did, when one was given.
-    pub adapter: Option<(lora::Adapter, lora::MergeSummary)>,
+    /// Per variant, its adapter and how it was applied.
+    pub adapters: Vec<Option<AppliedAdapter>>,
 }
 
-/// Reads config, generation config and weights of `dir`, merges the LoRA adapter in
-/// `adapter` (if any) into the loaded f32 tensors in place, and builds the decoder.
+/// Reads config, generation config and weights of `dir`, applies the LoRA adapter in
+/// `adapter` (if any) unmerged, and builds the decoder.
 pub fn load(dir: &Path, adapter: Option<&Path>) -> Result<LoadedModel> {
-    load_as(dir, adapter, WeightFormat::F32)
+    load_as(dir, adapter, Merge::Unmerged, WeightFormat::F32)
 }
 
-/// As [`load`], with the decoder's matrix-product weights in `format` (the LoRA merge is done
-/// in f32 first).
-pub fn load_as(dir: &Path, adapter: Option<&Path>, format: WeightFormat) -> Result<LoadedModel> {
+/// As [`load`], with the adapter applied as `merge` says and the decoder's matrix-product
+/// weights in `format`. An unmerged adapter that can only be merged
+/// ([`lora::Adapter::needs_merge`]) is merged in f32, and the result says why.
+pub fn load_as(
+    dir: &Path,
+    adapter: Option<&Path>,
+    merge: Merge,
+    format: WeightFormat,
+) -> Result<LoadedModel> {
+    if merge == Merge::Unmerged {
+        return load_group(dir, &[adapter], format);
+    }
     let spec = ModelSpec::load(dir)?;
     let generation = GenerationDefaults::load(dir, &spec)?;
     // Read the adapter first: a broken adapter fails before the weights are read.
     let adapter = adapter.map(lora::Adapter::load).transpose()?;
     let mut w = weights::load(dir, &spec)?;
-    let adapter = match adapter {
-        Some(a) => {
-            let summary = lora::merge(&mut w.tensors, &a, w.tied)?;
-            check_merged_finite(&w.tensors, &a, &summary)?;
-            Some((a, summary))
-        }
+    let applied = match adapter {
+        Some(a) => Some(merged(&mut w, a, merge, None)?),
         None => None,
     };
     let decoder = Decoder::with_format(&spec, w.tensors, format)?;
@@ -69,8 +117,110 @@ pub fn load_as(dir: &Path, adapter: Option<&Path>, format: WeightFormat) -> Resu
         generation,
         weight_files: w.files,
         stored_dtype: w.stored_dtype,
-        adapter,
+        adapters: vec![applied],
     })
+}
+
+/// One copy of the base in `dir` with several variants on it: variant i is the base plus the
+/// unmerged adapter `adapters[i]` (the base alone where None). Every adapter is checked
+/// against the base as a merge would check it. With a single variant whose adapter can only
+/// be merged, it is merged in f32; with several, such an adapter is an internal error (the
+/// caller gives it a model of its own).
+pub fn load_group(
+    dir: &Path,
+    adapters: &[Option<&Path>],
+    format: WeightFormat,
+) -> Result<LoadedModel> {
+    let spec = ModelSpec::load(dir)?;
+    let generation = GenerationDefaults::load(dir, &spec)?;
+    let loaded: Vec<Option<lora::Adapter>> = adapters
+        .iter()
+        .map(|a| a.map(lora::Adapter::load).transpose())
+        .collect::<Result<_>>()?;
+    let mut w = weights::load(dir, &spec)?;
+    let mut terms = Vec::new();
+    let mut applied = Vec::with_capacity(loaded.len());
+    let single = loaded.len() == 1;
+    for (variant, adapter) in loaded.into_iter().enumerate() {
+        let Some(adapter) = adapter else {
+            applied.push(None);
+            continue;
+        };
+        match lora::unmerged(&w.tensors, &adapter, w.tied)? {
+            lora::Unmerged::Terms(list) => {
+                check_terms_finite(&adapter, &list)?;
+                applied.push(Some(AppliedAdapter {
+                    modules: list.len(),
+                    adapter,
+                    merge: Merge::Unmerged,
+                    merged_because: None,
+                }));
+                terms.push((variant, list));
+            }
+            lora::Unmerged::MustMerge(why) if single => {
+                applied.push(Some(merged(&mut w, adapter, Merge::F32, Some(why))?));
+            }
+            lora::Unmerged::MustMerge(why) => {
+                return Err(Error::internal(format!(
+                    "{} cannot share its base unmerged: {why}",
+                    adapter.config_path().display()
+                )))
+            }
+        }
+    }
+    let decoder = Decoder::with_adapters(&spec, w.tensors, format, terms)?;
+    Ok(LoadedModel {
+        decoder,
+        spec,
+        generation,
+        weight_files: w.files,
+        stored_dtype: w.stored_dtype,
+        adapters: applied,
+    })
+}
+
+/// Merges `adapter` into the loaded weights as `merge` says and checks the result.
+fn merged(
+    w: &mut weights::Weights,
+    adapter: lora::Adapter,
+    merge: Merge,
+    merged_because: Option<String>,
+) -> Result<AppliedAdapter> {
+    let summary = match merge {
+        Merge::Bf16 => lora::merge_16(&mut w.tensors, &adapter, w.tied, DType::BF16)?,
+        Merge::F16 => lora::merge_16(&mut w.tensors, &adapter, w.tied, DType::F16)?,
+        Merge::F32 | Merge::Unmerged => lora::merge(&mut w.tensors, &adapter, w.tied)?,
+    };
+    check_merged_finite(&w.tensors, &adapter, &summary)?;
+    Ok(AppliedAdapter {
+        adapter,
+        merge: if merge == Merge::Unmerged {
+            Merge::F32
+        } else {
+            merge
+        },
+        modules: summary.modules_merged,
+        merged_because,
+    })
+}
+
+/// NaN or Inf in an unmerged adapter's factors is refused naming its weights file.
+fn check_terms_finite(adapter: &lora::Adapter, terms: &[lora::LowRank]) -> Result<()> {
+    for t in terms {
+        for (key, values) in [(&t.keys.0, &t.a), (&t.keys.1, &t.b)] {
+            if let Some((i, v)) = weights::first_non_finite(values) {
+                return Err(Error::field(
+                    adapter.weights_path(),
+                    None,
+                    key,
+                    format!(
+                        "holds {v} at flat index {i}; an adapter with NaN or Inf values cannot be evaluated"
+                    ),
+                ));
+            }
+        }
+    }
+    Ok(())
 }
 
 /// The tensors the merge changed must still be finite: NaN or Inf in the adapter's tensors (or

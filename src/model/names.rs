@@ -62,6 +62,11 @@ impl Layer {
         }
     }
 
+    /// The full name of `module` in this layer (what adapters name).
+    pub fn module(&self, module: &str) -> String {
+        format!("{}{module}", self.prefix)
+    }
+
     /// The full name of `module`'s weight in this layer.
     pub fn weight(&self, module: &str) -> String {
         format!("{}{module}.weight", self.prefix)

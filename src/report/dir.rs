@@ -13,11 +13,39 @@ use crate::formats::run_record;
 use crate::fsutil;
 use std::path::{Path, PathBuf};
 
-/// File names inside a report directory.
-pub const BASELINE_ANSWERS: &str = "baseline.answers.jsonl";
-pub const CANDIDATE_ANSWERS: &str = "candidate.answers.jsonl";
-pub const BASELINE_GRADES: &str = "baseline.grades.jsonl";
-pub const CANDIDATE_GRADES: &str = "candidate.grades.jsonl";
+/// File names inside a report directory: `<variant name>` plus one of these.
+const ANSWERS_SUFFIX: &str = ".answers.jsonl";
+const GRADES_SUFFIX: &str = ".grades.jsonl";
+
+/// The answers file of the variant `name`, e.g. `baseline.answers.jsonl`.
+pub fn answers_file(name: &str) -> String {
+    format!("{name}{ANSWERS_SUFFIX}")
+}
+
+/// The grades file of the variant `name`, e.g. `candidate.grades.jsonl`.
+pub fn grades_file(name: &str) -> String {
+    format!("{name}{GRADES_SUFFIX}")
+}
+
+/// The answers files (finished or journaled) in `dir`, by their `<name>.answers.jsonl` path.
+fn answers_in(dir: &Path) -> Vec<PathBuf> {
+    let mut out = Vec::new();
+    for entry in std::fs::read_dir(dir).into_iter().flatten().flatten() {
+        let file = entry.file_name().to_string_lossy().into_owned();
+        let stem = file
+            .strip_suffix(".partial")
+            .or_else(|| file.strip_suffix(".run.json"))
+            .unwrap_or(&file);
+        if stem.ends_with(ANSWERS_SUFFIX) {
+            let p = dir.join(stem);
+            if !out.contains(&p) {
+                out.push(p);
+            }
+        }
+    }
+    out.sort();
+    out
+}
 
 /// A report directory this run writes into, locked for as long as the value lives.
 pub struct Claim {
@@ -64,40 +92,40 @@ impl Claim {
             let _ = std::fs::remove_dir_all(&self.dir);
             return;
         }
-        for name in stage_files() {
+        for name in stage_files(&self.dir) {
             let _ = std::fs::remove_file(self.dir.join(name));
         }
     }
 }
 
-/// Every file a run writes into its report directory before the report itself.
-fn stage_files() -> Vec<String> {
+/// Every file a run writes into its report directory before the report itself: answers,
+/// their journals and records, grades and their records.
+fn stage_files(dir: &Path) -> Vec<String> {
     let mut names = Vec::new();
-    for answers in [BASELINE_ANSWERS, CANDIDATE_ANSWERS] {
-        names.push(answers.to_string());
-        names.push(format!("{answers}.run.json"));
-        names.push(format!("{answers}.partial"));
-    }
-    for grades in [BASELINE_GRADES, CANDIDATE_GRADES] {
-        names.push(grades.to_string());
-        names.push(format!("{grades}.run.json"));
+    for entry in std::fs::read_dir(dir).into_iter().flatten().flatten() {
+        let file = entry.file_name().to_string_lossy().into_owned();
+        let stem = file
+            .strip_suffix(".partial")
+            .or_else(|| file.strip_suffix(".run.json"))
+            .unwrap_or(&file);
+        if stem.ends_with(ANSWERS_SUFFIX) || stem.ends_with(GRADES_SUFFIX) {
+            names.push(file);
+        }
     }
     names
 }
 
 /// Whether `dir` holds answers (finished or journaled) of an earlier run.
 fn has_saved_work(dir: &Path) -> bool {
-    [BASELINE_ANSWERS, CANDIDATE_ANSWERS].iter().any(|a| {
-        let out = dir.join(a);
-        journal::journal_path(&out).exists() || run_record::path_beside(&out).exists()
-    })
+    answers_in(dir)
+        .iter()
+        .any(|out| journal::journal_path(out).exists() || run_record::path_beside(out).exists())
 }
 
 /// The identities of the answers saved in a report directory (journals and finished files).
 fn saved_identities(dir: &Path) -> Vec<RunIdentity> {
     let mut ids = Vec::new();
-    for a in [BASELINE_ANSWERS, CANDIDATE_ANSWERS] {
-        let out = dir.join(a);
+    for out in answers_in(dir) {
         if let Some(id) = journal::read_identity(&journal::journal_path(&out)) {
             ids.push(id);
         } else if let Some(info) = run_record::read_answers_record(&out) {

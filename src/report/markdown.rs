@@ -371,26 +371,7 @@ pub fn render(s: &Summary) -> String {
         o.push('\n');
     }
 
-    let _ = writeln!(o, "## Cautions\n");
-    let _ = writeln!(
-        o,
-        "- These scores measure word overlap with the reference answers. They cannot show whether an answer is factually right \
-         beyond that overlap, whether its tone fits, whether it gives harmful advice, or whether it follows your organisation's policies."
-    );
-    let _ = writeln!(
-        o,
-        "- Before rolling out, have a person read a random sample of answers from both models (30 to 50 is a common rule of thumb), \
-         and every answer in sensitive categories."
-    );
-    let _ = writeln!(
-        o,
-        "- For regulated or high-stakes topics such as refunds, safety, health and money, your organisation's own review rules come first; \
-         a GO here does not replace them."
-    );
-    let _ = writeln!(
-        o,
-        "- The questions must be held out from the fine-tuning data; otherwise the lift overstates what users will see.\n"
-    );
+    write_cautions(&mut o);
 
     let _ = writeln!(o, "## Inputs\n");
     let i = &s.inputs;
@@ -421,6 +402,31 @@ pub fn render(s: &Summary) -> String {
     }
     let _ = writeln!(o, "- liftgate {}", s.tool_version);
     o
+}
+
+/// The cautions every report ends with: what automatic scores cannot show, the human review
+/// they need, and the organisation's own rules first.
+pub(crate) fn write_cautions(o: &mut String) {
+    let _ = writeln!(o, "## Cautions\n");
+    let _ = writeln!(
+        o,
+        "- These scores measure word overlap with the reference answers. They cannot show whether an answer is factually right \
+         beyond that overlap, whether its tone fits, whether it gives harmful advice, or whether it follows your organisation's policies."
+    );
+    let _ = writeln!(
+        o,
+        "- Before rolling out, have a person read a random sample of answers from both models (30 to 50 is a common rule of thumb), \
+         and every answer in sensitive categories."
+    );
+    let _ = writeln!(
+        o,
+        "- For regulated or high-stakes topics such as refunds, safety, health and money, your organisation's own review rules come first; \
+         a GO here does not replace them."
+    );
+    let _ = writeln!(
+        o,
+        "- The questions must be held out from the fine-tuning data; otherwise the lift overstates what users will see.\n"
+    );
 }
 
 /// Our own sentences can quote user text (category names); escape them whole, without the

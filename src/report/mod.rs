@@ -8,6 +8,7 @@ pub mod charts;
 pub mod dir;
 pub mod html;
 mod inert;
+pub mod lineup;
 pub mod markdown;
 pub mod summary;
 pub mod terminal;

@@ -24,6 +24,8 @@ pub const DOMAIN_METRICS_PERMUTATION: u32 = 16;
 pub const DOMAIN_CATEGORY_BOOTSTRAP: u32 = 1 << 20;
 /// Domains of the per-category permutation tests: this plus the category's index.
 pub const DOMAIN_CATEGORY_PERMUTATION: u32 = 1 << 21;
+/// "Lift kept" of lineup artifact k: domain + k.
+pub const DOMAIN_LINEUP_BOOTSTRAP: u32 = 1 << 22;
 
 /// The generator for one chunk of one domain.
 pub fn chunk_rng(seed: u64, domain: u32, chunk: u32) -> Xoshiro256PlusPlus {

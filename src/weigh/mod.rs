@@ -16,6 +16,7 @@
 
 mod blocks;
 mod gate;
+pub mod lineup;
 
 use crate::error::{Error, Result};
 use crate::formats::grades::GradeRecord;

@@ -2,8 +2,9 @@
 //! both files, refused early when the files disagree with each other.
 
 use super::config::{Config, CONFIG_FILE};
-use super::tensors::{parse_tensors, LoraModule, Replacement, WEIGHTS_FILE};
+use super::tensors::{parse_tensors, LoraModule, ModuleKind, Replacement, WEIGHTS_FILE};
 use crate::error::{Error, Result};
+use crate::model::names::HEAD_MODULE;
 use candle_core::Device;
 use sha2::{Digest, Sha256};
 use std::collections::BTreeMap;
@@ -106,6 +107,26 @@ impl Adapter {
     }
 
     /// Whether the adapter is DoRA.
+    /// Why this adapter cannot run beside an unchanged base (None when it can): whole-tensor
+    /// replacements, embedding or output-head LoRA, and DoRA are applied by merging.
+    pub fn needs_merge(&self) -> Option<String> {
+        if !self.replacements.is_empty() {
+            return Some("it replaces whole base tensors (modules_to_save or trained biases), which gives the variant weights of its own".into());
+        }
+        for (module, lora) in &self.modules {
+            if lora.magnitude.is_some() {
+                return Some(format!("it uses DoRA on `{module}`, whose rescaling by the norm of W + ΔW changes the weights themselves"));
+            }
+            if lora.kind == ModuleKind::Embedding {
+                return Some(format!("it adapts the embedding table (`{module}`)"));
+            }
+            if module.as_str() == HEAD_MODULE {
+                return Some("it adapts the output head, whose greedy pick screens the vocabulary with an 8-bit copy of the head matrix".into());
+            }
+        }
+        None
+    }
+
     pub fn is_dora(&self) -> bool {
         self.config.use_dora
     }

@@ -47,9 +47,20 @@ enum Step {
     KeepHeadFromEmbed,
 }
 
-/// Merges the adapter into `weights` in place. ΔW is computed in f32 and added with one
-/// rounding to the base dtype (docs/model-formats.md §5.3). `tied`: lm_head shares the
-/// embedding tensor (tie_word_embeddings and no `lm_head.weight` in the map).
+/// Every change the adapter makes, checked against the base before anything is modified.
+pub(super) struct Plan<'a> {
+    steps: Vec<Step>,
+    /// (module, its LoRA factors, the base tensor that receives ΔW).
+    pub(super) modules: Vec<(&'a String, &'a LoraModule, String)>,
+    still_tied: bool,
+    head_into_embed: bool,
+    tied: bool,
+}
+
+/// Merges the adapter into `weights` in place. ΔW is computed in f32 and added in f32; the
+/// changed matrices are f32 (`merge_and_unload` on the base loaded in float32;
+/// docs/model-formats.md §5.3). `tied`: lm_head shares the embedding tensor
+/// (tie_word_embeddings and no `lm_head.weight` in the map).
 ///
 /// Everything is checked before the first tensor changes, so on error `weights` is untouched.
 /// Only one tensor is rebuilt at a time: the map never holds a second copy of the weights.
@@ -58,6 +69,46 @@ pub fn merge(
     adapter: &Adapter,
     tied: bool,
 ) -> Result<MergeSummary> {
+    let plan = plan(weights, adapter, tied)?;
+    apply(weights, plan, None)
+}
+
+/// What a team gets when it loads the base in the 16-bit `dtype`, merges with peft and saves:
+/// every tensor of the map in `dtype` (f32 values rounded once), and each merged matrix
+/// W' = round(W₁₆ + round(s·(B·A))) with ΔW computed in f32 and the sum rounded once more
+/// (docs/model-formats.md §5.6; peft 0.21.2 `LoraLayer.get_delta_weight` and
+/// `Linear.merge`). The result is what the reference computes on after loading the saved
+/// checkpoint with dtype float32.
+pub fn merge_16(
+    weights: &mut HashMap<String, Tensor>,
+    adapter: &Adapter,
+    tied: bool,
+    dtype: DType,
+) -> Result<MergeSummary> {
+    if !matches!(dtype, DType::BF16 | DType::F16) {
+        return Err(Error::internal("merge_16 needs bf16 or f16"));
+    }
+    let plan = plan(weights, adapter, tied)?;
+    let names: Vec<String> = weights.keys().cloned().collect();
+    for name in names {
+        if let Some(t) = weights.remove(&name) {
+            let t = if t.dtype() == dtype {
+                t
+            } else {
+                t.to_dtype(dtype)?
+            };
+            weights.insert(name, t);
+        }
+    }
+    apply(weights, plan, Some(dtype))
+}
+
+/// Checks the adapter against the base and lays out every change; modifies nothing.
+pub(super) fn plan<'a>(
+    weights: &HashMap<String, Tensor>,
+    adapter: &'a Adapter,
+    tied: bool,
+) -> Result<Plan<'a>> {
     let wpath = &adapter.weights_path;
     let cpath = &adapter.config_path;
     let config = &adapter.config;
@@ -210,9 +261,30 @@ pub fn merge(
         }
     }
 
-    // Everything fits: apply.
+    Ok(Plan {
+        steps,
+        modules: plans,
+        still_tied,
+        head_into_embed,
+        tied,
+    })
+}
+
+/// Applies a checked plan. `rounding`: None merges in f32 and keeps the changed tensors f32;
+/// Some(dtype) rounds ΔW and each sum to that dtype (the map is already in it).
+fn apply(
+    weights: &mut HashMap<String, Tensor>,
+    plan: Plan,
+    rounding: Option<DType>,
+) -> Result<MergeSummary> {
+    let kept = |t: Tensor| -> Result<Tensor> {
+        Ok(match rounding {
+            Some(d) => t.to_dtype(d)?,
+            None => t,
+        })
+    };
     let mut replaced = BTreeSet::new();
-    for step in steps {
+    for step in plan.steps {
         match step {
             Step::KeepHeadFromEmbed => {
                 let embed = weights
@@ -222,20 +294,20 @@ pub fn merge(
                 weights.insert(LM_HEAD.to_string(), embed);
             }
             Step::Replace { target, tensor } => {
-                // Computed on in f32, as the reference does with the model loaded in float32.
-                weights.insert(target.clone(), tensor.to_dtype(DType::F32)?);
+                // Computed on in f32, as the reference does with the model loaded in float32
+                // (in the 16-bit dtype for a 16-bit merge, as peft loads it onto that base).
+                weights.insert(target.clone(), kept(tensor.to_dtype(DType::F32)?)?);
                 replaced.insert(target);
             }
         }
     }
     let mut merged = Vec::new();
-    for (module, lora, into) in plans {
+    for (module, lora, into) in plan.modules {
         let base = weights.remove(&into).ok_or_else(|| {
             Error::internal(format!("base tensor {into} vanished during the merge"))
         })?;
-        // Merged in f32 and kept f32 (`merge_and_unload` on the model loaded in float32): a
-        // 16-bit base matrix is widened first, exactly.
-        let new = merge_one(&base.to_dtype(DType::F32)?, lora)?;
+        // A 16-bit base matrix is widened first, exactly.
+        let new = merge_one(&base.to_dtype(DType::F32)?, lora, rounding)?;
         drop(base);
         weights.insert(into.clone(), new);
         if let Some((_, b_bias)) = &lora.b_bias {
@@ -243,7 +315,8 @@ pub fn merge(
             let bias = weights
                 .remove(&bias_name)
                 .ok_or_else(|| Error::internal(format!("base bias {bias_name} vanished")))?;
-            let new = (bias.to_dtype(DType::F32)? + b_bias.affine(lora.scaling, 0.0)?)?;
+            let delta = kept(b_bias.affine(lora.scaling, 0.0)?)?.to_dtype(DType::F32)?;
+            let new = kept((bias.to_dtype(DType::F32)? + delta)?)?;
             weights.insert(bias_name, new);
         }
         merged.push(MergedModule {
@@ -260,8 +333,8 @@ pub fn merge(
         modules_merged: merged.len(),
         replaced: replaced.into_iter().collect(),
         modules: merged,
-        untied: tied && !still_tied,
-        head_merged_into_embeddings: head_into_embed,
+        untied: plan.tied && !plan.still_tied,
+        head_merged_into_embeddings: plan.head_into_embed,
     })
 }
 
@@ -353,8 +426,9 @@ fn check_lora_shapes(
     Ok(())
 }
 
-/// W' for one module, all in f32. `base` is W [out, in] or E [vocab, hidden].
-fn merge_one(base: &Tensor, lora: &LoraModule) -> Result<Tensor> {
+/// W' for one module. `base` is W [out, in] or E [vocab, hidden] in f32. Without `rounding`
+/// everything is f32; with it ΔW is rounded to that dtype before the add and the sum after it.
+fn merge_one(base: &Tensor, lora: &LoraModule, rounding: Option<DType>) -> Result<Tensor> {
     // peft get_delta_weight: (B @ A) * scaling; embeddings transpose B_e @ A_e to [vocab, hidden].
     let ba = lora.b.matmul(&lora.a)?;
     let delta = match lora.kind {
@@ -362,9 +436,18 @@ fn merge_one(base: &Tensor, lora: &LoraModule) -> Result<Tensor> {
         ModuleKind::Embedding => ba.t()?.contiguous()?,
     }
     .affine(lora.scaling, 0.0)?;
-    let v = (base + delta)?;
+    let round = |t: Tensor| -> Result<Tensor> {
+        Ok(match rounding {
+            Some(d) => t.to_dtype(d)?.to_dtype(DType::F32)?,
+            None => t,
+        })
+    };
+    let v = round((base + round(delta)?)?)?;
     let Some((_, m)) = &lora.magnitude else {
-        return Ok(v);
+        return Ok(match rounding {
+            Some(d) => v.to_dtype(d)?,
+            None => v,
+        });
     };
     // DoRA (Liu et al. 2024; peft DoraLinearVariant / DoraEmbeddingVariant merge): rescale each
     // output row (Linear) or hidden column (Embedding) of V = W + ΔW to the magnitude m.
@@ -380,5 +463,8 @@ fn merge_one(base: &Tensor, lora: &LoraModule) -> Result<Tensor> {
             v.broadcast_mul(&factor)?
         }
     };
-    Ok(out)
+    Ok(match rounding {
+        Some(d) => out.to_dtype(d)?,
+        None => out,
+    })
 }

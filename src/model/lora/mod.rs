@@ -33,9 +33,15 @@
 //! mirrors the merged model, since that is what gets shipped. A `modules_to_save` copy of the
 //! head or of the embeddings gives that module its own tensor and unties the pair.
 //!
+//! Without a merge (the default, "the adapter as trained"), `unmerged` checks the adapter the
+//! same way and hands the decoder one low-rank term per adapted linear layer, added to that
+//! layer's output beside the unchanged base; adapters that change more than linear layers'
+//! outputs (whole-tensor copies, embedding or head LoRA, DoRA) are merged instead, and the
+//! run record says why. `merge_16` is the merge a team does on a 16-bit base before saving.
+//!
 //! `config` reads adapter_config.json and decides which modules it selects, `tensors` sorts the
 //! adapter's tensors, `adapter` reads a directory into an [`Adapter`], `merge` applies it to
-//! the base.
+//! the base, `unmerged` lays it beside the base.
 
 mod adapter;
 mod config;
@@ -43,8 +49,10 @@ mod merge;
 mod tensors;
 #[cfg(test)]
 mod tests;
+mod unmerged;
 
 pub use adapter::Adapter;
 pub use config::{Config, CONFIG_FILE};
-pub use merge::{merge, MergeSummary, MergedModule};
+pub use merge::{merge, merge_16, MergeSummary, MergedModule};
 pub use tensors::{ModuleKind, WEIGHTS_FILE};
+pub use unmerged::{unmerged, LowRank, Unmerged};
