@@ -21,6 +21,7 @@ use crate::grade;
 use crate::history::{self, RecordOptions};
 use crate::interrupt::StopFlag;
 use crate::policy::Policy;
+use crate::report::summary::Leakage;
 use crate::report::{self, dir};
 use crate::score::RefusalDetector;
 use crate::weigh::{self, WeighInput};
@@ -105,6 +106,12 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
     let set = QuestionSet::load(&settings.questions)?;
     // Grading needs references: refuse before hours of answering, not after.
     set.check_references()?;
+    // Likewise a bad training file.
+    let leakage = args
+        .train
+        .as_deref()
+        .map(|t| leakage(&set, t))
+        .transpose()?;
     let stop = StopFlag::install()?;
 
     let reports = Path::new("reports");
@@ -126,7 +133,7 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
             claim.dir.display()
         );
     }
-    match vet_into(&claim.dir, &settings, &set, args, &stop) {
+    match vet_into(&claim.dir, &settings, &set, args, leakage, &stop) {
         Ok(outcome) => Ok(outcome),
         Err(e @ Error::Interrupted { .. }) => Err(e),
         Err(e) => {
@@ -141,6 +148,7 @@ fn vet_into(
     settings: &Settings,
     set: &QuestionSet,
     args: &VetArgs,
+    leakage: Option<Leakage>,
     stop: &StopFlag,
 ) -> Result<Outcome> {
     let detector = RefusalDetector::with_extra_phrases(&settings.policy.refusal.extra_phrases);
@@ -184,7 +192,7 @@ fn vet_into(
         "liftgate: vet: weighing ({} resamples, seed {})",
         settings.stats.resamples, settings.stats.seed
     );
-    let summary = weigh::weigh(&WeighInput {
+    let mut summary = weigh::weigh(&WeighInput {
         set,
         baseline,
         candidate,
@@ -192,6 +200,16 @@ fn vet_into(
         settings: settings.stats,
         inputs,
     })?;
+    if let Some(l) = leakage {
+        let flagged = l.exact + l.normalised + l.near;
+        if flagged > 0 {
+            summary.warnings.push(format!(
+                "{flagged} held-out question(s) repeat or closely reword a question of the training file {} ({} exact, {} after normalising, {} near duplicates): the fine-tune may have seen their answers, which inflates the lift. List them with `liftgate leaks`.",
+                l.train.path, l.exact, l.normalised, l.near
+            ));
+        }
+        summary.leakage = Some(l);
+    }
     report::write_report_dir(dir, &summary)?;
     let graded = history::two((baseline, baseline_path), (candidate, candidate_path));
     history::record_after_report(settings.history.as_ref(), set, &graded, &summary, dir);
@@ -210,4 +228,28 @@ fn demo_root() -> Option<PathBuf> {
     }
     let built = PathBuf::from(env!("CARGO_MANIFEST_DIR"));
     has_demo(&built).then_some(built)
+}
+
+/// The leak check of `--train`: counts by kind and the flagged ids.
+fn leakage(set: &QuestionSet, train: &Path) -> Result<Leakage> {
+    use crate::score::leaks::{find_leaks, LeakKind, DEFAULT_THRESHOLD};
+    let rows = crate::formats::training::load_questions(train)?;
+    let questions: Vec<&str> = set.questions.iter().map(|q| q.question.as_str()).collect();
+    let texts: Vec<&str> = rows.iter().map(|(_, t)| t.as_str()).collect();
+    let leaks = find_leaks(&questions, &texts, DEFAULT_THRESHOLD);
+    let count = |k: LeakKind| leaks.iter().filter(|l| l.kind == k).count();
+    Ok(Leakage {
+        train: crate::formats::run_record::InputFile {
+            path: train.display().to_string(),
+            sha256: crate::fsutil::sha256_file(train)?,
+        },
+        exact: count(LeakKind::Exact),
+        normalised: count(LeakKind::Normalised),
+        near: count(LeakKind::Near),
+        threshold: DEFAULT_THRESHOLD,
+        ids: leaks
+            .iter()
+            .map(|l| set.questions[l.question].id.clone())
+            .collect(),
+    })
 }
