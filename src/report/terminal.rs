@@ -56,33 +56,10 @@ pub fn render(s: &Summary) -> String {
         ("token_f1", &s.metrics.token_f1),
         ("rouge_l", &s.metrics.rouge_l),
     ] {
-        t.add_row(vec![
-            name.to_string(),
-            f(m.baseline, false),
-            f(m.candidate, false),
-            f(m.lift, true),
-            f(m.ci_low, true),
-            f(m.ci_high, true),
-            m.p_value
-                .map(|p| format!("{p:.4}"))
-                .unwrap_or_else(|| "-".into()),
-            m.n.to_string(),
-        ]);
+        t.add_row(metric_row(name, m));
     }
     if let Some(fa) = &s.facts {
-        let m = &fa.recall;
-        t.add_row(vec![
-            "fact_recall".to_string(),
-            f(m.baseline, false),
-            f(m.candidate, false),
-            f(m.lift, true),
-            f(m.ci_low, true),
-            f(m.ci_high, true),
-            m.p_value
-                .map(|p| format!("{p:.4}"))
-                .unwrap_or_else(|| "-".into()),
-            m.n.to_string(),
-        ]);
+        t.add_row(metric_row("fact_recall", &fa.recall));
         let c = &fa.contradiction;
         let lift = match (c.baseline.share, c.candidate.share) {
             (Some(b), Some(c)) => Some(c - b),
@@ -115,6 +92,21 @@ pub fn render(s: &Summary) -> String {
     out.push_str(&c.to_string());
     out.push('\n');
     out
+}
+
+fn metric_row(name: &str, m: &MetricSummary) -> Vec<String> {
+    vec![
+        name.to_string(),
+        f(m.baseline, false),
+        f(m.candidate, false),
+        f(m.lift, true),
+        f(m.ci_low, true),
+        f(m.ci_high, true),
+        m.p_value
+            .map(|p| format!("{p:.4}"))
+            .unwrap_or_else(|| "-".into()),
+        m.n.to_string(),
+    ]
 }
 
 fn trim(v: f64) -> String {
