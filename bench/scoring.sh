@@ -7,6 +7,8 @@
 # env:   PYTHON  a Python 3 with rouge-score installed (default: python3); without rouge-score the
 #                reference timing is skipped.
 #        WORK    scratch directory (default: a new temporary directory, removed at the end)
+#        BEFORE  another liftgate binary (e.g. a copy of an earlier build) to time on the same
+#                files in the same run, before this one, for a side-by-side comparison
 set -euo pipefail
 cd "$(dirname "$0")/.."
 PAIRS="${1:-100000}"
@@ -15,7 +17,6 @@ WORK="${WORK:-$(mktemp -d)}"
 trap '[ -z "${KEEP:-}" ] && rm -rf "$WORK"' EXIT
 
 cargo build --release --quiet
-BIN=target/release/liftgate
 "$PYTHON" bench/make_pairs.py "$WORK" --pairs "$PAIRS"
 
 now() { date +%s.%N; }
@@ -25,26 +26,36 @@ cpu() { local out="$1"; shift; /usr/bin/time -f "%U %S" -o "$out" "$@"; }
 cpus() { awk '{ printf "%.3f", $1 + $2 }' "$1"; }
 secs() { awk -v a="$1" -v b="$2" 'BEGIN { printf "%.3f", b - a }'; }
 
-t0=$(now)
-cpu "$WORK/cpu.grade" "$BIN" grade --questions "$WORK/set.jsonl" --answers "$WORK/tuned.jsonl" --out "$WORK/tuned.grades.jsonl"
-t1=$(now)
-"$BIN" grade --questions "$WORK/set.jsonl" --answers "$WORK/base.jsonl" --out "$WORK/base.grades.jsonl"
-t2=$(now)
-set +e
-cpu "$WORK/cpu.weigh" "$BIN" weigh --questions "$WORK/set.jsonl" --baseline "$WORK/base.grades.jsonl" \
-  --candidate "$WORK/tuned.grades.jsonl" --report "$WORK/report" --resamples 10000 > "$WORK/weigh.txt"
-code=$?
-set -e
-t3=$(now)
-[ "$code" -le 1 ] || { echo "weigh failed with exit $code" >&2; exit "$code"; }
+# One timing of grade (both files) and weigh with binary $2, labelled $1.
+run() {
+  local label="$1" BIN="$2" out="$WORK/$1"
+  mkdir -p "$out"
+  t0=$(now)
+  cpu "$out/cpu.grade" "$BIN" grade --questions "$WORK/set.jsonl" --answers "$WORK/tuned.jsonl" --out "$out/tuned.grades.jsonl"
+  t1=$(now)
+  "$BIN" grade --questions "$WORK/set.jsonl" --answers "$WORK/base.jsonl" --out "$out/base.grades.jsonl"
+  t2=$(now)
+  set +e
+  cpu "$out/cpu.weigh" "$BIN" weigh --questions "$WORK/set.jsonl" --baseline "$out/base.grades.jsonl" \
+    --candidate "$out/tuned.grades.jsonl" --report "$out/report" --resamples 10000 > "$out/weigh.txt"
+  code=$?
+  set -e
+  t3=$(now)
+  [ "$code" -le 1 ] || { echo "weigh failed with exit $code" >&2; exit "$code"; }
 
-grade=$(secs "$t0" "$t1")
-weigh=$(secs "$t2" "$t3")
-total=$(awk -v a="$grade" -v b="$weigh" 'BEGIN { printf "%.3f", a + b }')
-echo "{\"kind\": \"liftgate_grade\", \"pairs\": $PAIRS, \"seconds\": $grade, \"cpu_seconds\": $(cpus "$WORK/cpu.grade")}"
-echo "{\"kind\": \"liftgate_grade_second_file\", \"pairs\": $PAIRS, \"seconds\": $(secs "$t1" "$t2")}"
-echo "{\"kind\": \"liftgate_weigh\", \"questions\": $PAIRS, \"resamples\": 10000, \"seconds\": $weigh, \"cpu_seconds\": $(cpus "$WORK/cpu.weigh"), \"verdict\": \"$(head -1 "$WORK/weigh.txt")\"}"
-echo "{\"kind\": \"liftgate_grade_plus_weigh\", \"pairs\": $PAIRS, \"seconds\": $total, \"cores\": $(nproc), \"load_average\": \"$(cut -d' ' -f1-3 /proc/loadavg)\"}"
+  grade=$(secs "$t0" "$t1")
+  weigh=$(secs "$t2" "$t3")
+  total=$(awk -v a="$grade" -v b="$weigh" 'BEGIN { printf "%.3f", a + b }')
+  echo "{\"binary\": \"$label\", \"kind\": \"liftgate_grade\", \"pairs\": $PAIRS, \"seconds\": $grade, \"cpu_seconds\": $(cpus "$out/cpu.grade")}"
+  echo "{\"binary\": \"$label\", \"kind\": \"liftgate_grade_second_file\", \"pairs\": $PAIRS, \"seconds\": $(secs "$t1" "$t2")}"
+  echo "{\"binary\": \"$label\", \"kind\": \"liftgate_weigh\", \"questions\": $PAIRS, \"resamples\": 10000, \"seconds\": $weigh, \"cpu_seconds\": $(cpus "$out/cpu.weigh"), \"verdict\": \"$(head -1 "$out/weigh.txt")\"}"
+  echo "{\"binary\": \"$label\", \"kind\": \"liftgate_grade_plus_weigh\", \"pairs\": $PAIRS, \"seconds\": $total, \"cores\": $(nproc), \"load_average\": \"$(cut -d' ' -f1-3 /proc/loadavg)\"}"
+}
+
+if [ -n "${BEFORE:-}" ]; then
+  run before "$BEFORE"
+fi
+run current target/release/liftgate
 
 if "$PYTHON" -c "import rouge_score" 2>/dev/null; then
   "$PYTHON" - "$WORK/pairs.jsonl" "$grade" <<'PY'

@@ -66,6 +66,8 @@ fn grades(set: &QuestionSet, rng: &mut Mix, quality: f64) -> Vec<GradeRecord> {
                 } else {
                     rng.next() < 0.8
                 },
+                fact_recall: None,
+                fact_contradiction: None,
                 answer: String::new(),
             }
         })

@@ -36,6 +36,8 @@ pub enum Command {
     Trend(TrendArgs),
     /// Record earlier report directories (summary.json and grades) in the history.
     Record(RecordArgs),
+    /// List held-out questions that repeat or closely reword a training question.
+    Leaks(LeaksArgs),
 }
 
 /// Generation settings shared by `answer` and `vet`.
@@ -122,6 +124,21 @@ pub struct GradeArgs {
     pub allow_set_change: bool,
 }
 
+#[derive(Debug, Args)]
+pub struct LeaksArgs {
+    /// Held-out question set (JSONL).
+    #[arg(long, value_name = "FILE")]
+    pub questions: PathBuf,
+    /// Training pairs the fine-tune used (JSONL; a `question` string or a chat `messages` list
+    /// a row).
+    #[arg(long, value_name = "FILE")]
+    pub train: PathBuf,
+    /// Flag a question when at least this share of its word triples occur in one training
+    /// question (containment, in (0, 1]).
+    #[arg(long, value_name = "X", default_value_t = crate::score::leaks::DEFAULT_THRESHOLD)]
+    pub threshold: f64,
+}
+
 /// Statistics settings shared by `weigh` and `vet`.
 #[derive(Debug, Args, Clone)]
 pub struct StatsArgs {
@@ -192,6 +209,11 @@ pub struct VetArgs {
     /// saved in DIR.
     #[arg(long)]
     pub restart: bool,
+    /// Training file of the fine-tune (JSONL, a `question` or chat `messages` a row): held-out
+    /// questions that repeat or closely reword a training question are counted in the report,
+    /// with a warning (as `liftgate leaks` lists them).
+    #[arg(long, value_name = "FILE")]
+    pub train: Option<PathBuf>,
     #[command(flatten)]
     pub stats: StatsArgs,
     #[command(flatten)]

@@ -2,7 +2,8 @@
 //! one grades row a question in the set's order (docs/interface.md, "Grades file").
 //!
 //! Every row gets exact match, token F1 and ROUGE-L (each the maximum over the question's
-//! non-blank references, `None` when it has none) and the refusal flag. Rows are scored in
+//! non-blank references, `None` when it has none), the refusal flag, and fact recall and
+//! contradiction when a reference states a fact (`score::facts`). Rows are scored in
 //! parallel; the output order is the set's order.
 
 use crate::error::Result;
@@ -68,6 +69,7 @@ pub fn grade_set(
         .zip(answers.par_iter())
         .map(|(q, a)| {
             let scores = score::score_references(&a.answer, &q.references);
+            let facts = score::facts::score_facts(&a.answer, &q.references, &q.question);
             GradeRecord {
                 id: q.id.clone(),
                 category: q.category.clone(),
@@ -76,6 +78,8 @@ pub fn grade_set(
                 token_f1: scores.map(|s| s.token_f1),
                 rouge_l: scores.map(|s| s.rouge_l),
                 refused: detector.is_refusal(&a.answer),
+                fact_recall: facts.map(|f| f.recall),
+                fact_contradiction: facts.map(|f| f.contradiction),
                 answer: a.answer.clone(),
             }
         })

@@ -20,6 +20,8 @@
 //! max_regression = 0.05
 //! min_questions = 10
 //! rule = "clear-regression"  # clear-regression | non-inferiority
+//! [facts]
+//! max_contradiction_increase = 0.0   # optional; absent: contradictions are not checked
 //! ```
 
 use crate::error::{Error, Result};
@@ -116,6 +118,9 @@ pub struct Policy {
     pub lift: LiftPolicy,
     pub refusal: RefusalPolicy,
     pub categories: CategoryPolicy,
+    /// Left out of summary.json while unset, so reports of policies without it are unchanged.
+    #[serde(skip_serializing_if = "FactPolicy::is_unset")]
+    pub facts: FactPolicy,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -153,6 +158,22 @@ pub struct CategoryPolicy {
     pub rule: RegressionRule,
 }
 
+#[derive(Debug, Clone, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct FactPolicy {
+    /// When set, the candidate's share of questions with a contradicted fact may exceed the
+    /// baseline's by at most this (0.0: no more contradictions than the baseline). Unset: no
+    /// check.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub max_contradiction_increase: Option<f64>,
+}
+
+impl FactPolicy {
+    pub fn is_unset(&self) -> bool {
+        self.max_contradiction_increase.is_none()
+    }
+}
+
 impl Default for Policy {
     fn default() -> Self {
         Policy {
@@ -160,6 +181,7 @@ impl Default for Policy {
             lift: LiftPolicy::default(),
             refusal: RefusalPolicy::default(),
             categories: CategoryPolicy::default(),
+            facts: FactPolicy::default(),
         }
     }
 }
@@ -281,6 +303,9 @@ impl Policy {
             0.0,
             1.0,
         )?;
+        if let Some(v) = self.facts.max_contradiction_increase {
+            unit("facts", "max_contradiction_increase", v, 0.0, 1.0)?;
+        }
         if self.categories.min_questions < 2 {
             let v = self.categories.min_questions.to_string();
             return Err(range_error(
@@ -477,6 +502,9 @@ mod tests {
             vec!["not my department".to_string()]
         );
         assert_eq!(p.categories.rule, RegressionRule::NonInferiority);
+        assert_eq!(p.facts.max_contradiction_increase, None);
+        let p = parse("[facts]\nmax_contradiction_increase = 0.02\n").unwrap();
+        assert_eq!(p.facts.max_contradiction_increase, Some(0.02));
     }
 
     #[test]
@@ -523,6 +551,13 @@ mod tests {
             .unwrap_err()
             .to_string();
         assert!(err.contains("gate.toml:2") && err.contains("bleu"), "{err}");
+        let err = parse("[facts]\nmax_contradiction_increase = -0.1\n")
+            .unwrap_err()
+            .to_string();
+        assert!(
+            err.contains("gate.toml:2: field `facts.max_contradiction_increase`"),
+            "{err}"
+        );
         let err = parse("[refusal]\nextra_phrases = [\" \"]\n")
             .unwrap_err()
             .to_string();

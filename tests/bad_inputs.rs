@@ -49,7 +49,7 @@ macro_rules! bad_input {
 
 /// The number of cases below; a case that disappears fails
 /// `catalogue_keeps_every_case`, so none is dropped by accident.
-const CASES: usize = 74;
+const CASES: usize = 77;
 
 fn runner(family: &str) -> PathBuf {
     common::fixture("runner").join(family)
@@ -1090,6 +1090,55 @@ bad_input!(policy_unknown_metric_name, |d| {
         "[lift]\nmetric = \"bleu\"\n",
         &["policy.toml:2: field `lift.metric`", "bleu"],
     )
+});
+
+bad_input!(policy_contradiction_allowance_out_of_range, |d| {
+    policy_case(
+        d,
+        "[facts]\nmax_contradiction_increase = 2\n",
+        &[
+            "policy.toml:2: field `facts.max_contradiction_increase`",
+            "from 0 to 1",
+        ],
+    )
+});
+
+bad_input!(grades_fact_recall_out_of_range, |d| {
+    write_set(d);
+    let rows: Vec<String> = IDS
+        .iter()
+        .enumerate()
+        .map(|(i, id)| {
+            let mut row = grade_row(id);
+            if i == 1 {
+                row["fact_recall"] = json!(1.5);
+            }
+            row.to_string()
+        })
+        .collect();
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    write(d, "candidate.grades.jsonl", &(rows.join("\n") + "\n"));
+    weigh(d, &[], &["candidate.grades.jsonl:2", "fact_recall", "1.5"])
+});
+
+bad_input!(training_file_row_without_question, |d| {
+    write_set(d);
+    write(
+        d,
+        "train.jsonl",
+        "{\"question\": \"Dogs?\"}\n{\"answer\": \"Free.\"}\n",
+    );
+    Setup {
+        args: vec![
+            s("leaks"),
+            s("--questions"),
+            s("set.jsonl"),
+            s("--train"),
+            s("train.jsonl"),
+        ],
+        outputs: vec![],
+        needles: needles(&["train.jsonl:2", "question"]),
+    }
 });
 
 bad_input!(policy_non_utf8_bytes, |d| {

@@ -114,6 +114,7 @@ fn hostile_answers_cannot_break_report_md() {
             "# Verdict: NO-GO",
             "## Scores",
             "## Refusals",
+            "## Facts",
             "## Categories",
             "## Gate checks",
             "## Questions that got worse",

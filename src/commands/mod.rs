@@ -5,6 +5,7 @@
 pub mod answer;
 mod args;
 pub mod grade;
+pub mod leaks;
 pub mod record;
 pub mod trend;
 pub mod vet;
@@ -41,5 +42,6 @@ pub fn run(command: Command) -> Result<Outcome> {
         Command::Vet(args) => vet::run(&args),
         Command::Trend(args) => trend::run(&args),
         Command::Record(args) => record::run(&args),
+        Command::Leaks(args) => leaks::run(&args),
     }
 }

@@ -28,6 +28,7 @@ use crate::interrupt::StopFlag;
 use crate::model::lora::Adapter;
 use crate::model::Merge;
 use crate::policy::Policy;
+use crate::report::summary::Leakage;
 use crate::report::{self, dir};
 use crate::score::RefusalDetector;
 use crate::weigh::lineup::Candidate;
@@ -225,6 +226,12 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
     let set = QuestionSet::load(&settings.questions)?;
     // Grading needs references: refuse before hours of answering, not after.
     set.check_references()?;
+    // Likewise a bad training file.
+    let leakage = args
+        .train
+        .as_deref()
+        .map(|t| leakage(&set, t))
+        .transpose()?;
     let stop = StopFlag::install()?;
 
     let reports = Path::new("reports");
@@ -247,7 +254,7 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
             claim.dir.display()
         );
     }
-    match vet_into(&claim.dir, &settings, &set, args, &stop) {
+    match vet_into(&claim.dir, &settings, &set, args, leakage, &stop) {
         Ok(outcome) => Ok(outcome),
         Err(e @ Error::Interrupted { .. }) => Err(e),
         Err(e) => {
@@ -262,6 +269,7 @@ fn vet_into(
     settings: &Settings,
     set: &QuestionSet,
     args: &VetArgs,
+    leakage: Option<Leakage>,
     stop: &StopFlag,
 ) -> Result<Outcome> {
     let variants = &settings.variants;
@@ -336,6 +344,16 @@ fn vet_into(
             inputs,
         })?;
         summary.warnings.extend(template_warnings.iter().cloned());
+        if let Some(l) = &leakage {
+            let flagged = l.exact + l.normalised + l.near;
+            if flagged > 0 {
+                summary.warnings.push(format!(
+                    "{flagged} held-out question(s) repeat or closely reword a question of the training file {} ({} exact, {} after normalising, {} near duplicates): the fine-tune may have seen their answers, which inflates the lift. List them with `liftgate leaks`.",
+                    l.train.path, l.exact, l.normalised, l.near
+                ));
+            }
+            summary.leakage = Some(l.clone());
+        }
         summaries.push(summary);
     }
     if summaries.len() == 1 {
@@ -429,4 +447,28 @@ fn demo_root() -> Option<PathBuf> {
     }
     let built = PathBuf::from(env!("CARGO_MANIFEST_DIR"));
     has_demo(&built).then_some(built)
+}
+
+/// The leak check of `--train`: counts by kind and the flagged ids.
+fn leakage(set: &QuestionSet, train: &Path) -> Result<Leakage> {
+    use crate::score::leaks::{find_leaks, LeakKind, DEFAULT_THRESHOLD};
+    let rows = crate::formats::training::load_questions(train)?;
+    let questions: Vec<&str> = set.questions.iter().map(|q| q.question.as_str()).collect();
+    let texts: Vec<&str> = rows.iter().map(|(_, t)| t.as_str()).collect();
+    let leaks = find_leaks(&questions, &texts, DEFAULT_THRESHOLD);
+    let count = |k: LeakKind| leaks.iter().filter(|l| l.kind == k).count();
+    Ok(Leakage {
+        train: crate::formats::run_record::InputFile {
+            path: train.display().to_string(),
+            sha256: crate::fsutil::sha256_file(train)?,
+        },
+        exact: count(LeakKind::Exact),
+        normalised: count(LeakKind::Normalised),
+        near: count(LeakKind::Near),
+        threshold: DEFAULT_THRESHOLD,
+        ids: leaks
+            .iter()
+            .map(|l| set.questions[l.question].id.clone())
+            .collect(),
+    })
 }

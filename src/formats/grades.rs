@@ -2,7 +2,9 @@
 //!
 //! JSONL, one object a question: `id`, `category`, `expect`, `exact_match` (0 or 1), `token_f1`,
 //! `rouge_l`, `refused`. The three reference scores are null where the question has no
-//! references (typically `expect: refuse` questions). liftgate adds `answer` (the graded text)
+//! references (typically `expect: refuse` questions). `fact_recall` and `fact_contradiction`
+//! are optional (absent when no reference states a fact, and in older files). liftgate adds
+//! `answer` (the graded text)
 //! so `weigh` can show both variants' answers side by side without the answers files.
 
 use super::questions::{Expect, QuestionSet};
@@ -26,6 +28,13 @@ pub struct GradeRecord {
     pub rouge_l: Option<f64>,
     /// Whether the answer declines to answer (refusal detector).
     pub refused: bool,
+    /// Share of the references' facts (times, prices, dates, ...) the answer states; absent or
+    /// null when no reference states a fact, or in files graded before fact scoring.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub fact_recall: Option<f64>,
+    /// Whether the answer states a fact conflicting with the references; null like `fact_recall`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub fact_contradiction: Option<bool>,
     /// The answer text that was graded.
     #[serde(default)]
     pub answer: String,
@@ -51,6 +60,8 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<GradeRecord>> 
                     ("token_f1", false, check::<Option<f64>>),
                     ("rouge_l", false, check::<Option<f64>>),
                     ("refused", true, check::<bool>),
+                    ("fact_recall", false, check::<Option<f64>>),
+                    ("fact_contradiction", false, check::<Option<bool>>),
                     ("answer", false, check::<String>),
                 ],
             )
@@ -65,7 +76,11 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<GradeRecord>> 
                 ));
             }
         }
-        for (name, v) in [("token_f1", row.token_f1), ("rouge_l", row.rouge_l)] {
+        for (name, v) in [
+            ("token_f1", row.token_f1),
+            ("rouge_l", row.rouge_l),
+            ("fact_recall", row.fact_recall),
+        ] {
             if let Some(v) = v {
                 if !(0.0..=1.0).contains(&v) {
                     return Err(Error::field(

@@ -11,6 +11,7 @@ pub mod grades;
 pub mod journal;
 pub mod questions;
 pub mod run_record;
+pub mod training;
 
 use crate::error::{Error, Result};
 use questions::QuestionSet;

@@ -252,10 +252,47 @@ fn rate(r: &Rate) -> String {
     }
 }
 
+fn share(x: &Share) -> String {
+    match x.share {
+        Some(_) => format!(
+            "{} ({}–{}), {} questions",
+            pct(x.share),
+            pct(x.ci_low),
+            pct(x.ci_high),
+            x.count
+        ),
+        None => "–".into(),
+    }
+}
+
+/// Fact recall and contradictions: a table, no chart (the numbers are two rows).
+fn facts_table(o: &mut String, f: &Facts, conf: &str) {
+    let m = &f.recall;
+    let c = &f.contradiction;
+    let _ = write!(
+        o,
+        "<figure id=\"facts\">\n<h3>Facts</h3>\n<figcaption>Times, prices, dates, durations, counts, percentages and ages the references state, on the {} in-scope questions whose references state any. \
+         Recall: share of a reference's facts the answer states. Contradiction: the answer states a different value of a kind the references give.</figcaption>\n\
+         <div class=\"tablewrap\"><table><thead><tr><th></th><th class=\"n\">baseline</th><th class=\"n\">candidate</th><th class=\"n\">lift</th><th class=\"n\">{conf} interval</th><th class=\"n\">p-value</th></tr></thead><tbody>\n\
+         <tr><td>fact recall</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td></tr>\n\
+         <tr><td>contradicted a fact ({conf} Wilson)</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td></td><td></td><td></td></tr>\n\
+         </tbody></table></div>\n</figure>\n",
+        f.n,
+        num(m.baseline),
+        num(m.candidate),
+        signed(m.lift),
+        interval(m.ci_low, m.ci_high),
+        p(m.p_value),
+        share(&c.baseline),
+        share(&c.candidate)
+    );
+}
+
 fn check_number(c: &Check, v: f64) -> String {
     match c.kind() {
         CheckKind::MinQuestions => format!("{v:.0}"),
         CheckKind::Refusal => pct(Some(v)),
+        CheckKind::Facts => format!("{:+.1} points", 100.0 * v),
         CheckKind::Lift | CheckKind::Category(_) => signed(Some(v)),
     }
 }
@@ -580,6 +617,9 @@ fn charts_section(o: &mut String, s: &Summary) {
         rate(&r.false_refusal.candidate)
     );
     figure(o, &charts::refusal_chart(s), "Refusals", &t);
+    if let Some(f) = &s.facts {
+        facts_table(o, f, &conf);
+    }
 
     // Per-question changes.
     figure(

@@ -153,6 +153,8 @@ fn summary(hostile: bool) -> Summary {
             },
             interval: "wilson".into(),
         },
+        facts: None,
+        leakage: None,
         categories,
         mde: Mde {
             metric: "token_f1".into(),

@@ -129,6 +129,7 @@ fn check_number(c: &Check, v: f64) -> String {
     match c.kind() {
         CheckKind::MinQuestions => format!("{v:.0}"),
         CheckKind::Refusal => pct(Some(v)),
+        CheckKind::Facts => format!("{:+.1} points", 100.0 * v),
         CheckKind::Lift | CheckKind::Category(_) => format!("{v:+.3}"),
     }
 }
@@ -146,6 +147,52 @@ fn check_threshold(c: &Check) -> String {
             .replace('<', "&lt;"),
         check_number(c, c.threshold)
     )
+}
+
+fn share(x: &Share) -> String {
+    match x.share {
+        Some(_) => format!(
+            "{} ({}–{}), {} questions",
+            pct(x.share),
+            pct(x.ci_low),
+            pct(x.ci_high),
+            x.count
+        ),
+        None => "–".into(),
+    }
+}
+
+/// "## Facts": fact recall like a metric row, contradiction shares like refusal rates.
+fn facts_section(o: &mut String, f: &Facts, conf: &str) {
+    let _ = writeln!(o, "## Facts\n");
+    let _ = writeln!(
+        o,
+        "Times, prices, dates, durations, counts, percentages and ages the references state (docs/scoring.md, \"Facts\"), on the {} in-scope questions whose references state any. \
+         Recall: share of a reference's facts the answer states. Contradiction: the answer states a different value of a kind the references give.\n",
+        f.n
+    );
+    let m = &f.recall;
+    let _ = writeln!(
+        o,
+        "| | baseline | candidate | lift | {conf} interval | p-value |"
+    );
+    let _ = writeln!(o, "|---|---:|---:|---:|---:|---:|");
+    let _ = writeln!(
+        o,
+        "| fact recall | {} | {} | {} | {} | {} |",
+        num(m.baseline),
+        num(m.candidate),
+        signed(m.lift),
+        interval(m.ci_low, m.ci_high),
+        p(m.p_value)
+    );
+    let c = &f.contradiction;
+    let _ = writeln!(
+        o,
+        "| contradicted a fact ({conf} Wilson) | {} | {} | | | |\n",
+        share(&c.baseline),
+        share(&c.candidate)
+    );
 }
 
 /// report.md for a summary. Deterministic: the same summary gives the same bytes.
@@ -269,6 +316,9 @@ pub fn render(s: &Summary) -> String {
         rate(&r.false_refusal.baseline),
         rate(&r.false_refusal.candidate)
     );
+    if let Some(f) = &s.facts {
+        facts_section(&mut o, f, &conf);
+    }
 
     let _ = writeln!(o, "## Categories\n");
     let _ = writeln!(

@@ -39,6 +39,13 @@ pub struct Summary {
     /// Exact McNemar test on the exact-match discordant pairs.
     pub mcnemar: McNemar,
     pub refusal: Refusal,
+    /// Fact recall and contradictions; absent when the grades files hold no fact scores
+    /// (graded before fact scoring).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub facts: Option<Facts>,
+    /// Held-out questions found in the training file (`vet --train`); absent without it.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub leakage: Option<Leakage>,
     /// Per category (sorted by name), the gate metric's comparison.
     pub categories: BTreeMap<String, CategorySummary>,
     /// Minimum detectable lift of the gate metric for this sample size.
@@ -162,6 +169,52 @@ pub struct Rate {
     pub ci_high: Option<f64>,
 }
 
+/// The leak check of `vet --train` (docs/scoring.md, "Leakage").
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Leakage {
+    /// The training file checked, with its SHA-256.
+    pub train: InputFile,
+    /// Held-out questions flagged, by kind.
+    pub exact: usize,
+    pub normalised: usize,
+    pub near: usize,
+    /// Containment at or above which a question counts as a near duplicate.
+    pub threshold: f64,
+    /// The flagged questions' ids, in the set's order.
+    pub ids: Vec<String>,
+}
+
+/// The fact scorer's results (docs/scoring.md, "Facts") over the in-scope questions whose
+/// references state a fact and which both grades files score.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Facts {
+    /// Questions compared.
+    pub n: usize,
+    /// Fact recall per variant and its paired lift, as for the other metrics (same interval
+    /// kind, confidence and p-value method).
+    pub recall: MetricSummary,
+    /// Share of the questions where each variant states a conflicting fact.
+    pub contradiction: ContradictionRates,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct ContradictionRates {
+    pub baseline: Share,
+    pub candidate: Share,
+    /// `"wilson"`, at `settings.confidence`.
+    pub interval: String,
+}
+
+/// A count of questions out of [`Facts::n`], its share and the share's interval.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct Share {
+    pub count: u64,
+    /// `count / n`; null when n = 0.
+    pub share: Option<f64>,
+    pub ci_low: Option<f64>,
+    pub ci_high: Option<f64>,
+}
+
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct CategorySummary {
     /// `expect: answer` questions compared on the gate metric.
@@ -233,7 +286,7 @@ pub struct Verdict {
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Check {
     /// Stable identifier, e.g. `min_questions`, `lift.token_f1`, `refusal.out_of_scope`,
-    /// `refusal.false_refusal`, `category.<name>`.
+    /// `refusal.false_refusal`, `facts.contradiction`, `category.<name>`.
     pub name: String,
     /// What is checked, in plain words.
     pub description: String,
@@ -277,6 +330,8 @@ pub enum CheckKind<'a> {
     Lift,
     /// A share of questions declined (`refusal.*`).
     Refusal,
+    /// A difference of two shares of questions (`facts.contradiction`).
+    Facts,
     /// A category's lift interval end; the category's name.
     Category(&'a str),
 }
@@ -287,6 +342,8 @@ impl Check {
             CheckKind::MinQuestions
         } else if self.name.starts_with("refusal.") {
             CheckKind::Refusal
+        } else if self.name.starts_with("facts.") {
+            CheckKind::Facts
         } else if let Some(category) = self.name.strip_prefix("category.") {
             CheckKind::Category(category)
         } else {

@@ -1,6 +1,7 @@
 //! The terminal summary `weigh` prints on stdout: scriptable first line `verdict: GO` or
 //! `verdict: NO-GO`, then `failed: <check names>` when any failed, then one compact ASCII table
-//! of the metrics and one of the gate checks. No colours, no terminal-width dependence.
+//! of the metrics (with `fact_recall` and `fact_contradiction` rows when the grades hold fact
+//! scores; the contradiction row's lift is the difference of shares) and one of the gate checks. No colours, no terminal-width dependence.
 
 use super::summary::*;
 use super::Renderer;
@@ -55,17 +56,24 @@ pub fn render(s: &Summary) -> String {
         ("token_f1", &s.metrics.token_f1),
         ("rouge_l", &s.metrics.rouge_l),
     ] {
+        t.add_row(metric_row(name, m));
+    }
+    if let Some(fa) = &s.facts {
+        t.add_row(metric_row("fact_recall", &fa.recall));
+        let c = &fa.contradiction;
+        let lift = match (c.baseline.share, c.candidate.share) {
+            (Some(b), Some(c)) => Some(c - b),
+            _ => None,
+        };
         t.add_row(vec![
-            name.to_string(),
-            f(m.baseline, false),
-            f(m.candidate, false),
-            f(m.lift, true),
-            f(m.ci_low, true),
-            f(m.ci_high, true),
-            m.p_value
-                .map(|p| format!("{p:.4}"))
-                .unwrap_or_else(|| "-".into()),
-            m.n.to_string(),
+            "fact_contradiction".to_string(),
+            f(c.baseline.share, false),
+            f(c.candidate.share, false),
+            f(lift, true),
+            "-".into(),
+            "-".into(),
+            "-".into(),
+            fa.n.to_string(),
         ]);
     }
     out.push_str(&t.to_string());
@@ -84,6 +92,21 @@ pub fn render(s: &Summary) -> String {
     out.push_str(&c.to_string());
     out.push('\n');
     out
+}
+
+fn metric_row(name: &str, m: &MetricSummary) -> Vec<String> {
+    vec![
+        name.to_string(),
+        f(m.baseline, false),
+        f(m.candidate, false),
+        f(m.lift, true),
+        f(m.ci_low, true),
+        f(m.ci_high, true),
+        m.p_value
+            .map(|p| format!("{p:.4}"))
+            .unwrap_or_else(|| "-".into()),
+        m.n.to_string(),
+    ]
 }
 
 fn trim(v: f64) -> String {

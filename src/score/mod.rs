@@ -3,10 +3,13 @@
 //!
 //! - [`squad`]: exact match and token F1 (SQuAD v1.1 evaluation definitions);
 //! - [`rouge`]: ROUGE-L F-measure (Lin, 2004) over rouge-score tokens;
-//! - [`refusal`]: whether an answer declines to answer (phrase matching).
+//! - [`refusal`]: whether an answer declines to answer (phrase matching);
+//! - [`facts`]: fact recall and contradiction against the references' times, prices, dates, ...
 //!
 //! [`score_references`] combines the first two for one answer and a question's references.
 
+pub mod facts;
+pub mod leaks;
 pub mod refusal;
 pub mod rouge;
 pub mod squad;

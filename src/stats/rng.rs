@@ -20,6 +20,10 @@ pub const CHUNK: usize = 64;
 pub const DOMAIN_METRICS_BOOTSTRAP: u32 = 1;
 /// Domains of the permutation tests of the metric lifts: this plus the metric's index.
 pub const DOMAIN_METRICS_PERMUTATION: u32 = 16;
+/// Domain of the bootstrap of the fact-recall lift.
+pub const DOMAIN_FACTS_BOOTSTRAP: u32 = 32;
+/// Domain of the permutation test of the fact-recall lift.
+pub const DOMAIN_FACTS_PERMUTATION: u32 = 33;
 /// Domains of the per-category bootstraps: this plus the category's index.
 pub const DOMAIN_CATEGORY_BOOTSTRAP: u32 = 1 << 20;
 /// Domains of the per-category permutation tests: this plus the category's index.

@@ -116,6 +116,69 @@ pub(super) fn refusal_block(input: &WeighInput, confidence: f64) -> Refusal {
     }
 }
 
+/// Fact recall (paired, like the metrics) and contradiction shares (Wilson), over in-scope
+/// questions both grades files give fact scores. `None` when neither file has any (grades
+/// written before fact scoring).
+pub(super) fn facts_block(input: &WeighInput) -> Option<Facts> {
+    let has =
+        |rows: &[crate::formats::grades::GradeRecord]| rows.iter().any(|g| g.fact_recall.is_some());
+    if !has(input.baseline) && !has(input.candidate) {
+        return None;
+    }
+    let s = input.settings;
+    let mut p = Paired {
+        index: vec![],
+        base: vec![],
+        cand: vec![],
+        diff: vec![],
+    };
+    let (mut cb, mut cc) = (0u64, 0u64);
+    for (i, (b, c)) in input.baseline.iter().zip(input.candidate).enumerate() {
+        if b.expect != Expect::Answer {
+            continue;
+        }
+        if let (Some(x), Some(y)) = (b.fact_recall, c.fact_recall) {
+            p.index.push(i);
+            p.base.push(x);
+            p.cand.push(y);
+            p.diff.push(y - x);
+            cb += u64::from(b.fact_contradiction == Some(true));
+            cc += u64::from(c.fact_contradiction == Some(true));
+        }
+    }
+    let lift = (!p.diff.is_empty()).then(|| {
+        paired_bootstrap(
+            &p.diff,
+            s.resamples,
+            s.confidence,
+            s.seed,
+            rng::DOMAIN_FACTS_BOOTSTRAP,
+        )
+    });
+    let p_value = (!p.diff.is_empty()).then(|| {
+        sign_flip_test(&p.diff, s.resamples, s.seed, rng::DOMAIN_FACTS_PERMUTATION).p_value
+    });
+    let n = p.diff.len() as u64;
+    let share = |count: u64| {
+        let r = rate(count, n, s.confidence);
+        Share {
+            count,
+            share: r.share,
+            ci_low: r.ci_low,
+            ci_high: r.ci_high,
+        }
+    };
+    Some(Facts {
+        n: p.diff.len(),
+        recall: metric_summary(&p, lift.as_ref(), p_value, input.policy),
+        contradiction: ContradictionRates {
+            baseline: share(cb),
+            candidate: share(cc),
+            interval: "wilson".to_string(),
+        },
+    })
+}
+
 pub(super) fn categories_block(
     input: &WeighInput,
     gate: &Paired,

@@ -14,6 +14,7 @@ pub(super) fn checks(
     answer_total: usize,
     gate: &MetricSummary,
     refusal: &Refusal,
+    facts: Option<&Facts>,
     categories: &BTreeMap<String, CategorySummary>,
 ) -> Vec<Check> {
     let mut out = Vec::new();
@@ -119,6 +120,10 @@ pub(super) fn checks(
         reason,
     });
 
+    if let Some(bar) = policy.facts.max_contradiction_increase {
+        out.push(contradiction_check(bar, facts));
+    }
+
     let allowance = policy.categories.max_regression;
     for (name, c) in categories.iter().filter(|(_, c)| c.judged) {
         let (value, comparison, pass) = match policy.categories.rule {
@@ -168,4 +173,48 @@ pub(super) fn checks(
         });
     }
     out
+}
+
+/// `facts.contradiction`: the candidate's share of questions with a contradicted fact minus the
+/// baseline's, at most `bar`.
+fn contradiction_check(bar: f64, facts: Option<&Facts>) -> Check {
+    let measured = facts.and_then(|f| {
+        let c = &f.contradiction;
+        Some((c.candidate.share? - c.baseline.share?, f))
+    });
+    let (value, pass, reason) = match measured {
+        // A hair of slack so that shares like 3/10 − 2/10 = 0.1000…02 meet a 0.1 allowance.
+        Some((v, _)) if v <= bar + 1e-12 => (Some(v), true, None),
+        Some((v, f)) => (
+            Some(v),
+            false,
+            Some(format!(
+                "The fine-tuned model states a wrong time, price, date or other fact in {} of the questions with facts ({} of {}), against {} for the base model ({}); the policy allows at most {} more.",
+                pct(f.contradiction.candidate.share.unwrap_or(0.0)),
+                f.contradiction.candidate.count,
+                f.n,
+                pct(f.contradiction.baseline.share.unwrap_or(0.0)),
+                f.contradiction.baseline.count,
+                pct(bar)
+            )),
+        ),
+        None => (
+            None,
+            false,
+            Some(match facts {
+                None => "The grades files hold no fact scores (graded by an older liftgate); grade the answers again to check contradictions.".to_string(),
+                Some(_) => "No in-scope question has a reference stating a time, price, date or other checkable fact, so contradictions could not be checked.".to_string(),
+            }),
+        ),
+    };
+    Check {
+        name: "facts.contradiction".into(),
+        description:
+            "candidate's share of questions with a contradicted fact, minus the baseline's".into(),
+        threshold: bar,
+        value,
+        comparison: Comparison::AtMost,
+        pass,
+        reason,
+    }
 }

@@ -10,6 +10,8 @@
 //!   jointly, same indices), and a sign-flip permutation p-value;
 //! - exact McNemar on exact match;
 //! - refusal rates with Wilson intervals;
+//! - fact recall (paired, like the metrics) and contradiction shares (Wilson), when the grades
+//!   hold fact scores;
 //! - per category, the gate metric's lift, interval, p-value and Holm-adjusted p-value;
 //! - the minimum detectable lift of the gate metric;
 //! - the gate checks and the verdict.
@@ -29,8 +31,8 @@ use crate::stats::bootstrap::{lift_intervals, paired_bootstrap, resample_means, 
 use crate::stats::permutation::{self, sign_flip_test};
 use crate::stats::rng;
 use blocks::{
-    categories_block, changes_block, empty_metric, mcnemar_block, mde_block, metric_summary,
-    refusal_block,
+    categories_block, changes_block, empty_metric, facts_block, mcnemar_block, mde_block,
+    metric_summary, refusal_block,
 };
 use std::path::Path;
 
@@ -223,6 +225,7 @@ pub fn weigh(input: &WeighInput) -> Result<Summary> {
 
     let mcnemar = mcnemar_block(input);
     let refusal = refusal_block(input, s.confidence);
+    let facts = facts_block(input);
     let categories = categories_block(input, &pairs[gate.index()]);
     let mde = mde_block(&pairs[gate.index()].diff, policy, &mut warnings);
     let changes = changes_block(input, &pairs[gate.index()], gate);
@@ -232,7 +235,14 @@ pub fn weigh(input: &WeighInput) -> Result<Summary> {
         Metric::TokenF1 => &metrics.token_f1,
         Metric::RougeL => &metrics.rouge_l,
     };
-    let checks = gate::checks(policy, answer_total, gate_summary, &refusal, &categories);
+    let checks = gate::checks(
+        policy,
+        answer_total,
+        gate_summary,
+        &refusal,
+        facts.as_ref(),
+        &categories,
+    );
     if !categories.values().any(|c| c.judged) {
         warnings.push(format!(
             "No category has {} or more in-scope questions, so no category was checked for a regression.",
@@ -258,6 +268,8 @@ pub fn weigh(input: &WeighInput) -> Result<Summary> {
         metrics,
         mcnemar,
         refusal,
+        facts,
+        leakage: None,
         categories,
         mde,
         changes,

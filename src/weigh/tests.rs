@@ -42,6 +42,8 @@ fn grades(set: &QuestionSet, f1: &[Option<f64>], refused: bool) -> Vec<GradeReco
                 token_f1: score,
                 rouge_l: score,
                 refused: q.expect == Expect::Refuse && refused,
+                fact_recall: None,
+                fact_contradiction: None,
                 answer: String::new(),
             }
         })
@@ -269,4 +271,90 @@ fn the_gate_reads_the_interval_the_policy_names() {
             .unwrap();
         assert_eq!(lift.value, Some(want.low));
     }
+}
+
+/// `grades` with fact scores: recall `recall[i]` and a contradiction where `contra[i]`.
+fn with_facts(mut rows: Vec<GradeRecord>, recall: &[f64], contra: &[bool]) -> Vec<GradeRecord> {
+    for (i, r) in rows.iter_mut().enumerate() {
+        if r.expect == Expect::Answer {
+            r.fact_recall = Some(recall[i % recall.len()]);
+            r.fact_contradiction = Some(contra[i % contra.len()]);
+        }
+    }
+    rows
+}
+
+fn facts_check(s: &Summary) -> Option<&Check> {
+    s.verdict
+        .checks
+        .iter()
+        .find(|c| c.kind() == CheckKind::Facts)
+}
+
+#[test]
+fn facts_are_weighed_only_when_the_grades_hold_them() {
+    let set = set(20, 0);
+    let base = grades(&set, &wobble(20, 0.5, 0.1), false);
+    let cand = grades(&set, &wobble(20, 0.6, 0.1), false);
+    let s = run(&set, &base, &cand, &Policy::default());
+    assert_eq!(s.facts, None);
+    assert!(facts_check(&s).is_none());
+
+    // Baseline: recall 0.5 everywhere, 2 of 20 contradicted; candidate: recall 1 on every
+    // other question (mean 0.75), 5 of 20 contradicted (every fourth).
+    let base = with_facts(
+        base,
+        &[0.5],
+        &[
+            false, false, false, false, false, false, false, false, false, true,
+        ],
+    );
+    let cand = with_facts(cand, &[1.0, 0.5], &[true, false, false, false]);
+    let s = run(&set, &base, &cand, &Policy::default());
+    let f = s.facts.as_ref().unwrap();
+    assert_eq!(f.n, 20);
+    assert_eq!(f.recall.baseline, Some(0.5));
+    assert_eq!(f.recall.candidate, Some(0.75));
+    assert!((f.recall.lift.unwrap() - 0.25).abs() < 1e-12);
+    assert!(f.recall.ci_low.unwrap() > 0.0 && f.recall.ci_high.unwrap() <= 0.5 + 1e-12);
+    assert_eq!(f.contradiction.baseline.count, 2);
+    assert_eq!(f.contradiction.candidate.count, 5);
+    assert_eq!(f.contradiction.candidate.share, Some(0.25));
+    let iv = crate::stats::proportions::wilson(5, 20, 0.95).unwrap();
+    assert_eq!(f.contradiction.candidate.ci_low, Some(iv.low));
+    // Not gated unless the policy asks.
+    assert!(facts_check(&s).is_none());
+
+    let mut policy = Policy::default();
+    policy.facts.max_contradiction_increase = Some(0.0);
+    let s = run(&set, &base, &cand, &policy);
+    let c = facts_check(&s).unwrap();
+    assert!(!c.pass);
+    assert!((c.value.unwrap() - 0.15).abs() < 1e-12);
+    assert!(
+        c.reason.as_deref().unwrap().contains("5 of 20"),
+        "{:?}",
+        c.reason
+    );
+    policy.facts.max_contradiction_increase = Some(0.15);
+    let s = run(&set, &base, &cand, &policy);
+    assert!(facts_check(&s).unwrap().pass);
+}
+
+#[test]
+fn a_contradiction_check_without_fact_scores_fails_with_a_reason() {
+    let set = set(20, 0);
+    let base = grades(&set, &wobble(20, 0.5, 0.1), false);
+    let cand = grades(&set, &wobble(20, 0.6, 0.1), false);
+    let mut policy = Policy::default();
+    policy.facts.max_contradiction_increase = Some(0.0);
+    let s = run(&set, &base, &cand, &policy);
+    let c = facts_check(&s).unwrap();
+    assert!(!c.pass);
+    assert_eq!(c.value, None);
+    assert!(c
+        .reason
+        .as_deref()
+        .unwrap()
+        .contains("grade the answers again"));
 }
