@@ -315,7 +315,11 @@ fn apply(
             let bias = weights
                 .remove(&bias_name)
                 .ok_or_else(|| Error::internal(format!("base bias {bias_name} vanished")))?;
-            let delta = kept(b_bias.affine(lora.scaling, 0.0)?)?.to_dtype(DType::F32)?;
+            // peft: bias' = bias + lora_B.bias * scaling, the sum rounded once in 16 bits.
+            let delta = match rounding {
+                Some(_) => b_bias.to_dtype(DType::F32)?.affine(lora.scaling as f32 as f64, 0.0)?,
+                None => b_bias.affine(lora.scaling, 0.0)?,
+            };
             let new = kept((bias.to_dtype(DType::F32)? + delta)?)?;
             weights.insert(bias_name, new);
         }
@@ -336,6 +340,35 @@ fn apply(
         untied: plan.tied && !plan.still_tied,
         head_merged_into_embeddings: plan.head_into_embed,
     })
+}
+
+/// s·(B·A) in f32 as torch computes it on the CPU for a 16-bit merge: each element an FMA
+/// chain over the rank in ascending order, then one f32 multiply by the scaling rounded to f32
+/// (what the reference's MKL kernel gives, and what makes the merged 16-bit weights bit-equal
+/// to peft's; tests/reference/make_merged16_fixtures.py checks the formula).
+fn delta_fma(b: &Tensor, a: &Tensor, scaling: f64) -> Result<Tensor> {
+    use rayon::prelude::*;
+    let (out, r) = b.dims2()?;
+    let (r2, inp) = a.dims2()?;
+    if r != r2 {
+        return Err(Error::internal("LoRA factors of different rank"));
+    }
+    let bv: Vec<f32> = b.to_dtype(DType::F32)?.flatten_all()?.to_vec1()?;
+    let av: Vec<f32> = a.to_dtype(DType::F32)?.flatten_all()?.to_vec1()?;
+    let s = scaling as f32;
+    let mut d = vec![0f32; out * inp];
+    d.par_chunks_mut(inp.max(1)).enumerate().for_each(|(o, row)| {
+        for k in 0..r {
+            let bk = bv[o * r + k];
+            for (acc, &x) in row.iter_mut().zip(&av[k * inp..(k + 1) * inp]) {
+                *acc = bk.mul_add(x, *acc);
+            }
+        }
+        for v in row.iter_mut() {
+            *v *= s;
+        }
+    });
+    Ok(Tensor::from_vec(d, (out, inp), &candle_core::Device::Cpu)?)
 }
 
 /// The embedding's shape, which the head of a tied model shares.
@@ -430,19 +463,32 @@ fn check_lora_shapes(
 /// everything is f32; with it ΔW is rounded to that dtype before the add and the sum after it.
 fn merge_one(base: &Tensor, lora: &LoraModule, rounding: Option<DType>) -> Result<Tensor> {
     // peft get_delta_weight: (B @ A) * scaling; embeddings transpose B_e @ A_e to [vocab, hidden].
-    let ba = lora.b.matmul(&lora.a)?;
-    let delta = match lora.kind {
-        ModuleKind::Linear => ba,
-        ModuleKind::Embedding => ba.t()?.contiguous()?,
-    }
-    .affine(lora.scaling, 0.0)?;
-    let round = |t: Tensor| -> Result<Tensor> {
-        Ok(match rounding {
-            Some(d) => t.to_dtype(d)?.to_dtype(DType::F32)?,
-            None => t,
-        })
+    let delta = match rounding {
+        None => {
+            let ba = lora.b.matmul(&lora.a)?;
+            match lora.kind {
+                ModuleKind::Linear => ba,
+                ModuleKind::Embedding => ba.t()?.contiguous()?,
+            }
+            .affine(lora.scaling, 0.0)?
+        }
+        Some(d) => {
+            let ba = delta_fma(&lora.b, &lora.a, lora.scaling)?;
+            match lora.kind {
+                // Linear: ΔW stays f32 and is added to the 16-bit weight with one rounding
+                // (peft `Linear.merge`: `base_layer.weight.data += delta_weight`).
+                ModuleKind::Linear => ba,
+                // Embedding: peft casts ΔE to the base dtype before adding
+                // (`Embedding.get_delta_weight`, `.to(orig_dtype)`): two roundings.
+                ModuleKind::Embedding => ba.t()?.contiguous()?.to_dtype(d)?.to_dtype(DType::F32)?,
+            }
+        }
     };
-    let v = round((base + round(delta)?)?)?;
+    let v = (base + delta)?;
+    let v = match rounding {
+        Some(d) => v.to_dtype(d)?.to_dtype(DType::F32)?,
+        None => v,
+    };
     let Some((_, m)) = &lora.magnitude else {
         return Ok(match rounding {
             Some(d) => v.to_dtype(d)?,
