@@ -315,6 +315,38 @@ def answer_all():
     return questions, variants
 
 
+def verify_merge16():
+    """Recompute every tensor of the saved bf16 merge from the formula of
+    make_merged16_fixtures.py (W' = rne16(f32(W16) + rne32(fma_chain(B, A) * f32(scaling)))) and
+    require bit equality; tensors without LoRA must be the base's bytes."""
+    sys.path.insert(0, str(Path(__file__).resolve().parent))
+    import make_merged16_fixtures as M16
+
+    cfg = json.loads((ADAPTER_DIR / "adapter_config.json").read_text())
+    assert not cfg.get("use_rslora") and not cfg.get("rank_pattern") and not cfg.get("alpha_pattern")
+    scaling = cfg["lora_alpha"] / cfg["r"]
+    base = M16.stored_base(MODEL_DIR)
+    ad = M16.read_st_f32(ADAPTER_DIR / "adapter_model.safetensors")
+    merged = M16.read_saved(MERGED16_DIR)
+    assert set(merged) == set(base), sorted(set(merged) ^ set(base))
+    n_lora = n_same = 0
+    for name, t in merged.items():
+        key = "base_model.model." + name[: -len(".weight")]
+        if key + ".lora_A.weight" in ad:
+            A = ad[key + ".lora_A.weight"].numpy()
+            B = ad[key + ".lora_B.weight"].numpy()
+            w16 = base[name].float().numpy()
+            want = M16.linear_merge_formula(w16, A, B, scaling, torch.bfloat16)
+            assert np.array_equal(want, M16.to_bits16(t)), f"{name}: merge formula differs"
+            n_lora += 1
+        else:
+            assert torch.equal(t.view(torch.int16), base[name].view(torch.int16)), f"{name} changed"
+            n_same += 1
+    log(f"bf16 merge verified bit for bit: {n_lora} LoRA tensors, {n_same} unchanged")
+    return dict(lora_tensors_bit_equal=n_lora, unchanged_tensors=n_same, scaling=scaling,
+                formula="W' = rne16(f32(W16) + rne32(fma_chain_k(B[o,k]*A[k,i]) * f32(scaling)))")
+
+
 # --------------------------------------------------------------------------------------
 
 
@@ -358,13 +390,18 @@ def main():
     if args.reuse and (MODEL_DIR / "model.safetensors").exists() and (ADAPTER_DIR / "adapter_model.safetensors").exists():
         conv, training = prev.get("conversion", {}), prev.get("training", {})
         TIMINGS.update({k: v for k, v in prev.get("timings_s", {}).items() if k in ("convert_s", "train_s")})
+        reused = True
     else:
+        reused = False
         conv = convert()
         training = train(args.steps)
     questions, variants = answer_all()
+    merge_check = verify_merge16()
     cfg = json.loads((MODEL_DIR / "config.json").read_text())
     gen = json.loads((MODEL_DIR / "generation_config.json").read_text()) if (MODEL_DIR / "generation_config.json").exists() else None
-    TIMINGS["total_s"] = round(time.time() - t_all, 1)
+    # with --reuse, convert_s/train_s are carried over from the run that made model/ and adapter/
+    TIMINGS["this_run_s"] = round(time.time() - t_all, 1)
+    TIMINGS["reused_model_and_adapter"] = bool(reused)
     import importlib.metadata as md
     doc = dict(
         generator="tests/reference/make_real_model_fixture.py",
@@ -386,6 +423,7 @@ def main():
         eos_token_id=(gen or {}).get("eos_token_id", cfg.get("eos_token_id")),
         conversion=conv,
         training=training,
+        merge16_check=merge_check,
         timings_s=TIMINGS,
         question_ids=[q["id"] for q in questions],
         max_new_tokens=MAX_NEW,
@@ -394,7 +432,7 @@ def main():
     )
     OUT.parent.mkdir(parents=True, exist_ok=True)
     OUT.write_text(dump(doc))
-    log(f"wrote {OUT} ({OUT.stat().st_size} bytes) in {TIMINGS['total_s']}s")
+    log(f"wrote {OUT} ({OUT.stat().st_size} bytes) in {TIMINGS['this_run_s']}s")
     for name, cases in variants.items():
         log(f"{name}: finish {[c['finish'] for c in cases].count('eos')} eos; min margin "
             f"{min(c['min_margin'] for c in cases):.3g}; flagged {[c['id'] for c in cases if not c['margin_ok']]}")
