@@ -317,7 +317,9 @@ fn apply(
                 .ok_or_else(|| Error::internal(format!("base bias {bias_name} vanished")))?;
             // peft: bias' = bias + lora_B.bias * scaling, the sum rounded once in 16 bits.
             let delta = match rounding {
-                Some(_) => b_bias.to_dtype(DType::F32)?.affine(lora.scaling as f32 as f64, 0.0)?,
+                Some(_) => b_bias
+                    .to_dtype(DType::F32)?
+                    .affine(lora.scaling as f32 as f64, 0.0)?,
                 None => b_bias.affine(lora.scaling, 0.0)?,
             };
             let new = kept((bias.to_dtype(DType::F32)? + delta)?)?;
@@ -357,17 +359,19 @@ fn delta_fma(b: &Tensor, a: &Tensor, scaling: f64) -> Result<Tensor> {
     let av: Vec<f32> = a.to_dtype(DType::F32)?.flatten_all()?.to_vec1()?;
     let s = scaling as f32;
     let mut d = vec![0f32; out * inp];
-    d.par_chunks_mut(inp.max(1)).enumerate().for_each(|(o, row)| {
-        for k in 0..r {
-            let bk = bv[o * r + k];
-            for (acc, &x) in row.iter_mut().zip(&av[k * inp..(k + 1) * inp]) {
-                *acc = bk.mul_add(x, *acc);
+    d.par_chunks_mut(inp.max(1))
+        .enumerate()
+        .for_each(|(o, row)| {
+            for k in 0..r {
+                let bk = bv[o * r + k];
+                for (acc, &x) in row.iter_mut().zip(&av[k * inp..(k + 1) * inp]) {
+                    *acc = bk.mul_add(x, *acc);
+                }
             }
-        }
-        for v in row.iter_mut() {
-            *v *= s;
-        }
-    });
+            for v in row.iter_mut() {
+                *v *= s;
+            }
+        });
     Ok(Tensor::from_vec(d, (out, inp), &candle_core::Device::Cpu)?)
 }
 
