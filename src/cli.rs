@@ -24,6 +24,9 @@ pub struct Cli {
 pub enum Command {
     /// Answer every question of a set with one model variant (base, or base + adapter), on CPU.
     Answer(AnswerArgs),
+    /// Join the answers of every shard of one run (`answer --shard`) into the answers file and
+    /// run record a whole run writes.
+    Gather(GatherArgs),
     /// Score an answers file against the set's references: one row of scores per question.
     Grade(GradeArgs),
     /// Compare a baseline's grades with a candidate's: paired statistics, gate checks, verdict.
@@ -99,8 +102,28 @@ pub struct AnswerArgs {
     /// changed).
     #[arg(long)]
     pub restart: bool,
+    /// Answer only shard K of N of the set (K counted from 0: 0/4 … 3/4), for one task of a
+    /// cluster job array; `auto` reads K and N from the scheduler (a Slurm array's
+    /// SLURM_ARRAY_TASK_ID, or a Kubernetes Indexed Job's JOB_COMPLETION_INDEX with
+    /// LIFTGATE_SHARD_COUNT). Without this flag the LIFTGATE_SHARD environment variable, when
+    /// set, gives the same values. Join the shards with `liftgate gather`.
+    #[arg(long, value_name = "K/N|auto")]
+    pub shard: Option<String>,
     #[command(flatten)]
     pub generation: GenerationArgs,
+}
+
+#[derive(Debug, Args)]
+pub struct GatherArgs {
+    /// Question set (JSONL) the shards answered.
+    #[arg(long, value_name = "FILE")]
+    pub questions: PathBuf,
+    /// Answers file to write (JSONL); `<FILE>.run.json` is written beside it.
+    #[arg(long, value_name = "FILE")]
+    pub out: PathBuf,
+    /// The answers file of every shard of the run (each with its `.run.json` beside it).
+    #[arg(value_name = "SHARD_ANSWERS", required = true)]
+    pub shards: Vec<PathBuf>,
 }
 
 #[derive(Debug, Args)]

@@ -50,13 +50,18 @@ pub fn commit_staged(path: &Path, tmp: tempfile::NamedTempFile) -> Result<()> {
 
 /// Serialises `rows` as JSONL (one compact object a line) and writes the file atomically.
 pub fn write_jsonl_atomic<T: serde::Serialize>(path: &Path, rows: &[T]) -> Result<()> {
+    write_atomic(path, &jsonl_bytes(rows)?)
+}
+
+/// `rows` as JSONL bytes: one compact object a line.
+pub fn jsonl_bytes<T: serde::Serialize>(rows: &[T]) -> Result<Vec<u8>> {
     let mut out = Vec::new();
     for row in rows {
         serde_json::to_writer(&mut out, row)
             .map_err(|e| Error::internal(format!("cannot serialise a row: {e}")))?;
         out.push(b'\n');
     }
-    write_atomic(path, &out)
+    Ok(out)
 }
 
 /// Longest accepted line in a JSONL input. A question set is text; a line past this is a

@@ -5,7 +5,8 @@
 //! or partial, afterwards (not even a leftover temporary file).
 //!
 //! Cases are grouped by the input they break: question sets, answers and grades that do not
-//! match the set, model directories, adapters, chat templates and policy files. Each case is
+//! match the set, model directories, adapters, chat templates, policy files and shards that do
+//! not belong together. Each case is
 //! its own test, named after the input and the fault, so one runs alone with
 //! `cargo test --test bad_inputs question_set_duplicate_id`, and a group with a prefix
 //! (`cargo test --test bad_inputs adapter_`). `-- --nocapture` shows every message.
@@ -49,7 +50,7 @@ macro_rules! bad_input {
 
 /// The number of cases below; a case that disappears fails
 /// `catalogue_keeps_every_case`, so none is dropped by accident.
-const CASES: usize = 77;
+const CASES: usize = 80;
 
 fn runner(family: &str) -> PathBuf {
     common::fixture("runner").join(family)
@@ -889,6 +890,106 @@ bad_input!(adapter_nan_unmerged_is_refused_naming_the_tensor, |d| {
         &[
             "adapter_model.safetensors: field `base_model.model.model.layers.0.self_attn.v_proj.lora_B.weight`",
             "NaN",
+        ],
+    )
+});
+
+// ---- shards given to `gather` ----
+
+/// Answers shard `k` of 3 of set.jsonl with the llama model under `d` into `shard-<k>.jsonl`
+/// (with `max_new` new tokens: a different count makes a shard of another run).
+fn answer_shard(d: &Path, k: usize, max_new: &str) {
+    let mut c = common::command([
+        "answer",
+        "--model",
+        "model",
+        "--questions",
+        "set.jsonl",
+        "--out",
+        &format!("shard-{k}.jsonl"),
+        "--max-new-tokens",
+        max_new,
+        "--shard",
+        &format!("{k}/3"),
+    ]);
+    c.current_dir(d).env_remove("LIFTGATE_SHARD");
+    let out = c.output().unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}
+
+/// `gather --questions set.jsonl --out gathered.jsonl` of the given shard files.
+fn gather(d: &Path, shards: &[&str], needles_: &[&str]) -> Setup {
+    let mut args = [
+        "gather",
+        "--questions",
+        "set.jsonl",
+        "--out",
+        "gathered.jsonl",
+    ]
+    .map(s)
+    .to_vec();
+    args.extend(shards.iter().map(|a| s(a)));
+    Setup {
+        args,
+        outputs: vec![d.join("gathered.jsonl"), d.join("gathered.jsonl.run.json")],
+        needles: needles(needles_),
+    }
+}
+
+bad_input!(gather_missing_shard, |d| {
+    model_case(d);
+    for k in [0, 2] {
+        answer_shard(d, k, "4");
+    }
+    gather(
+        d,
+        &["shard-0.jsonl", "shard-2.jsonl"],
+        &[
+            "shard 1 of 3 is missing (shards are numbered from 0 to 2)",
+            "shard-0.jsonl (shard 0)",
+            "shard-2.jsonl (shard 2)",
+        ],
+    )
+});
+
+bad_input!(gather_shard_given_twice, |d| {
+    model_case(d);
+    for k in 0..3 {
+        answer_shard(d, k, "4");
+    }
+    std::fs::copy(d.join("shard-1.jsonl"), d.join("copy.jsonl")).unwrap();
+    std::fs::copy(
+        d.join("shard-1.jsonl.run.json"),
+        d.join("copy.jsonl.run.json"),
+    )
+    .unwrap();
+    gather(
+        d,
+        &[
+            "shard-0.jsonl",
+            "shard-1.jsonl",
+            "copy.jsonl",
+            "shard-2.jsonl",
+        ],
+        &["copy.jsonl: shard 1 of 3 is given twice", "shard-1.jsonl"],
+    )
+});
+
+bad_input!(gather_foreign_shard, |d| {
+    model_case(d);
+    answer_shard(d, 0, "4");
+    answer_shard(d, 1, "4");
+    answer_shard(d, 2, "5");
+    gather(
+        d,
+        &["shard-0.jsonl", "shard-1.jsonl", "shard-2.jsonl"],
+        &[
+            "shard-2.jsonl.run.json: field `identity.max_new_tokens`",
+            "different run than shard-0.jsonl",
         ],
     )
 });

@@ -7,13 +7,19 @@
 //! - `generate`: greedy decoding over a ragged batch with continuous refill.
 //! - `run`: loads the variant, decodes, saves each answer to the resume journal as it finishes,
 //!   and writes the answers file and its run record at the end ([`answer_to`]).
+//! - `shard`: the split of a set over the tasks of a job array, and the scheduler's shard index;
+//!   `gather`: the shards' answers files joined into the one a whole run writes.
 
+mod gather;
 pub mod generate;
 mod prompts;
 mod run;
+pub mod shard;
 
+pub use gather::gather;
 pub use generate::Decoding;
 pub use run::{answer_group, answer_to, AnswerRun, Member};
+pub use shard::{ShardSpec, Split};
 
 use crate::error::{Error, Result};
 use crate::model::{Merge, WeightFormat};
@@ -70,6 +76,8 @@ pub struct Settings {
     pub generation: Generation,
     /// Discard saved answers of an earlier run instead of continuing it.
     pub restart: bool,
+    /// Answer only this shard of the set (`answer --shard`); None: the whole set.
+    pub shard: Option<ShardSpec>,
 }
 
 impl Settings {
@@ -108,6 +116,7 @@ impl Settings {
             adapter: adapter.map(Path::to_path_buf),
             generation: generation.checked()?,
             restart,
+            shard: None,
         })
     }
 }

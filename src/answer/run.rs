@@ -3,19 +3,21 @@
 //! record at the end. A stopped or killed run is continued by the same command.
 
 use super::generate::{self, GenerationSettings, Job};
-use super::{prompts, Settings};
+use super::{prompts, Settings, Split};
 use crate::chat::ChatTokenizer;
 use crate::error::{Error, Result};
 use crate::formats::answers::{self, AnswerRecord};
 use crate::formats::journal::{self, Contents, Journal, RunIdentity};
 use crate::formats::questions::QuestionSet;
 use crate::formats::run_record::{
-    self, AdapterInfo, FileDigest, GenerationInfo, ModelInfo, QuestionsInfo, RunInfo, TemplateInfo,
+    self, AdapterInfo, FileDigest, GenerationInfo, ModelInfo, QuestionsInfo, RunInfo, ShardInfo,
+    TemplateInfo,
 };
 use crate::fsutil;
 use crate::interrupt::StopFlag;
 use crate::model::{self, Merge};
 use indicatif::{ProgressBar, ProgressStyle};
+use std::borrow::Cow;
 use std::path::{Path, PathBuf};
 use std::time::Instant;
 
@@ -54,8 +56,14 @@ struct Prepared {
 }
 
 /// Loads the model (one copy of the base with every variant's adapter) and tokenises every
-/// prompt; every input error surfaces here, before anything is written.
-fn prepare(members: &[Member], set: &QuestionSet) -> Result<Prepared> {
+/// prompt of `part` (the whole `set`, or one shard of it); every input error surfaces here,
+/// before anything is written.
+fn prepare(
+    members: &[Member],
+    set: &QuestionSet,
+    part: &QuestionSet,
+    shard: Option<&ShardInfo>,
+) -> Result<Prepared> {
     let first = members
         .first()
         .ok_or_else(|| Error::internal("an answering group needs a variant"))?
@@ -63,10 +71,11 @@ fn prepare(members: &[Member], set: &QuestionSet) -> Result<Prepared> {
     if members.iter().any(|m| {
         m.settings.model != first.model
             || m.settings.generation != first.generation
+            || m.settings.shard != first.shard
             || (members.len() > 1 && m.settings.merge != Merge::Unmerged)
     }) {
         return Err(Error::internal(
-            "the variants of one answering group must share model, generation and be unmerged",
+            "the variants of one answering group must share model, generation, shard and be unmerged",
         ));
     }
     let g = &first.generation;
@@ -76,7 +85,7 @@ fn prepare(members: &[Member], set: &QuestionSet) -> Result<Prepared> {
     let chat = ChatTokenizer::load(&first.model)?;
     // Every prompt before any model work: a template error (e.g. a rejected system role) stops
     // the run with nothing computed.
-    let prompts = prompts::build(&chat, g.system.as_deref(), set)?;
+    let prompts = prompts::build(&chat, g.system.as_deref(), part)?;
     let loaded = match members {
         [one] => model::load_as(
             &first.model,
@@ -102,7 +111,7 @@ fn prepare(members: &[Member], set: &QuestionSet) -> Result<Prepared> {
             first.model.join("tokenizer.json"),
             format!(
                 "token id {bad} in the prompt of question {:?} is outside the model's vocabulary ({} rows); tokenizer and weights do not belong together",
-                set.questions[i].id, spec.vocab_size
+                part.questions[i].id, spec.vocab_size
             ),
         ));
     }
@@ -176,6 +185,7 @@ fn prepare(members: &[Member], set: &QuestionSet) -> Result<Prepared> {
                 count: set.len(),
             },
             compute_dtype: g.weights.compute_dtype().to_string(),
+            shard: shard.cloned(),
         });
     }
     Ok(Prepared {
@@ -193,7 +203,8 @@ pub struct Member<'a> {
     pub settings: &'a Settings,
 }
 
-/// Answers every question of `set` into `out` (and `<out>.run.json`), resumably.
+/// Answers every question of `set` (of its shard `settings.shard`, when given) into `out` (and
+/// `<out>.run.json`), resumably.
 ///
 /// Each finished answer is appended to the journal `<out>.partial` at once. A journal left by
 /// an earlier run with the same [`RunIdentity`] is continued (its questions are not answered
@@ -231,7 +242,19 @@ pub fn answer_group(
     set: &QuestionSet,
     stop: &StopFlag,
 ) -> Result<Vec<AnswerRun>> {
-    let prep = prepare(members, set)?;
+    let spec = members.first().and_then(|m| m.settings.shard);
+    let (part, shard) = match spec {
+        Some(s) => {
+            let split = Split::of(set, s.count)?;
+            (
+                Cow::Owned(split.part(set, s.index)),
+                Some(split.info(s.index)),
+            )
+        }
+        None => (Cow::Borrowed(set), None),
+    };
+    let prep = prepare(members, set, &part, shard.as_ref())?;
+    let set: &QuestionSet = &part;
     let n = set.len();
     let mut pending = Vec::with_capacity(members.len());
     for (m, info) in members.iter().zip(&prep.infos) {
@@ -483,11 +506,14 @@ fn model_info(dir: &Path, loaded: &model::LoadedModel) -> Result<ModelInfo> {
     })
 }
 
-/// `<out>` (JSONL) and `<out>.run.json`, each written atomically.
+/// `<out>` (JSONL) and `<out>.run.json`: both staged completely before either is renamed into
+/// place, so a failure leaves neither half-written.
 pub fn write_outputs(out: &Path, run: &AnswerRun) -> Result<()> {
     let run_path = run_record::path_beside(out);
     let json = serde_json::to_vec_pretty(&run.info)
         .map_err(|e| Error::internal(format!("cannot serialise run.json: {e}")))?;
-    fsutil::write_jsonl_atomic(out, &run.records)?;
-    fsutil::write_atomic(&run_path, &json)
+    let staged_rows = fsutil::stage(out, &fsutil::jsonl_bytes(&run.records)?)?;
+    let staged_json = fsutil::stage(&run_path, &json)?;
+    fsutil::commit_staged(out, staged_rows)?;
+    fsutil::commit_staged(&run_path, staged_json)
 }

@@ -1,5 +1,5 @@
-//! Arguments to settings, shared by the commands that answer (`answer`, `vet`) and the ones that
-//! weigh (`weigh`, `vet`): one fallible step each, every default taken from the stage that owns
+//! Arguments to settings, shared by the commands that answer (`answer`, `vet`, `gather`) and the
+//! ones that weigh (`weigh`, `vet`): one fallible step each, every default taken from the stage that owns
 //! it.
 
 use crate::answer::{self, Decoding, Generation};
@@ -27,6 +27,29 @@ pub fn generation(args: &GenerationArgs, max_new_tokens: usize) -> Result<Genera
 /// [`generation`] with the default number of new tokens.
 pub fn default_generation(args: &GenerationArgs) -> Result<Generation> {
     generation(args, answer::DEFAULT_MAX_NEW_TOKENS)
+}
+
+/// `--questions` is a file and `--out` a file path other than it (`answer`, `gather`).
+pub fn check_questions_and_out(questions: &Path, out: &Path) -> Result<()> {
+    if !questions.is_file() {
+        return Err(Error::usage(format!(
+            "--questions {}: no such file",
+            questions.display()
+        )));
+    }
+    if out.is_dir() {
+        return Err(Error::usage(format!(
+            "--out {}: is a directory; expected a file path",
+            out.display()
+        )));
+    }
+    if crate::fsutil::same_file(out, questions) {
+        return Err(Error::usage(format!(
+            "--out {} is the --questions file; choose another path so the input is not overwritten",
+            out.display()
+        )));
+    }
+    Ok(())
 }
 
 /// The statistics settings and the policy (the file's, or the built-in default).

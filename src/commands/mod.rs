@@ -4,6 +4,7 @@
 
 pub mod answer;
 mod args;
+pub mod gather;
 pub mod grade;
 pub mod leaks;
 pub mod record;
@@ -37,6 +38,7 @@ impl Outcome {
 pub fn run(command: Command) -> Result<Outcome> {
     match command {
         Command::Answer(args) => answer::run(&args),
+        Command::Gather(args) => gather::run(&args),
         Command::Grade(args) => grade::run(&args),
         Command::Weigh(args) => weigh::run(&args),
         Command::Vet(args) => vet::run(&args),

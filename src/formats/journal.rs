@@ -5,8 +5,9 @@
 //! - line 1, the header: `{"journal": "liftgate answers journal", "version": 1, "identity": {...}}`,
 //!   where `identity` ([`RunIdentity`]) holds everything that decides the answers: tool version,
 //!   model, adapter and chat-template fingerprints, generation settings, question-set
-//!   fingerprint. Batch size, threads, paths and timings are left out: they do not change greedy
-//!   f32 output, and a moved model directory should still resume.
+//!   fingerprint, and for a sharded run its shard. Batch size, threads, paths and timings are
+//!   left out: they do not change greedy f32 output, and a moved model directory should still
+//!   resume.
 //! - then one answer row a line, exactly as in the answers file, in the order the answers
 //!   finished. Each row is written with one `write` and synced before the next answer counts as
 //!   saved.
@@ -17,7 +18,7 @@
 
 use super::answers::AnswerRecord;
 use super::questions::QuestionSet;
-use super::run_record::RunInfo;
+use super::run_record::{RunInfo, ShardInfo};
 use crate::error::{Error, Result};
 use crate::fsutil;
 use serde::{Deserialize, Serialize};
@@ -51,6 +52,10 @@ pub struct RunIdentity {
     pub repetition_penalty: Option<f64>,
     pub questions_fingerprint: String,
     pub compute_dtype: String,
+    /// The part of the set a sharded run answers: a shard's saved answers continue only that
+    /// shard.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub shard: Option<ShardInfo>,
 }
 
 impl RunIdentity {
@@ -71,6 +76,7 @@ impl RunIdentity {
             repetition_penalty: info.generation.repetition_penalty,
             questions_fingerprint: info.questions.fingerprint.clone(),
             compute_dtype: info.compute_dtype.clone(),
+            shard: info.shard.clone(),
         }
     }
 
@@ -390,6 +396,7 @@ mod tests {
             repetition_penalty: None,
             questions_fingerprint: "q".repeat(64),
             compute_dtype: "f32".into(),
+            shard: None,
         }
     }
 

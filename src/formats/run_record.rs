@@ -128,6 +128,24 @@ pub struct RunInfo {
     pub questions: QuestionsInfo,
     /// The dtype every tensor was computed in.
     pub compute_dtype: String,
+    /// Present when this file holds one shard of the set (`answer --shard`); a whole run and a
+    /// gathered run have none.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub shard: Option<ShardInfo>,
+}
+
+/// Which part of the question set a sharded run answered (docs/interface.md, "Sharding").
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ShardInfo {
+    /// 0-based: shard `index` of `count`.
+    pub index: usize,
+    pub count: usize,
+    /// SHA-256 of the split (the shard of every question of the set): every shard of one run
+    /// records the same value.
+    pub split: String,
+    /// Questions in this shard.
+    pub questions: usize,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
