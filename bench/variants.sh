@@ -11,19 +11,9 @@
 # First run: creates bench/.venv-numpy (numpy from PyPI), the checkpoint and the adapter under
 # bench/models (git-ignored; remove them when done).
 set -euo pipefail
-here="$(cd "$(dirname "$0")" && pwd)"
-root="$(dirname "$here")"
-shape="${SHAPE:-1b}"
-venv="$here/.venv-numpy"
-model="$here/models/random-$shape-bf16"
+source "$(dirname "$0")/random-checkpoint.sh"
 adapter="$here/models/random-$shape-adapter-r16"
-if [ ! -x "$venv/bin/python" ]; then
-  "${PYTHON:-python3}" -m venv "$venv"
-  "$venv/bin/pip" install --quiet numpy
-fi
-[ -f "$model/model.safetensors" ] || "$venv/bin/python" "$here/make_random_checkpoint.py" "$model" --shape "$shape"
 [ -f "$adapter/adapter_model.safetensors" ] || "$venv/bin/python" "$here/make_random_checkpoint.py" "$model" --shape "$shape" --adapter "$adapter" --rank 16
-(cd "$root" && cargo build --release --locked --quiet)
 bin="$root/target/release/liftgate"
 work=$(mktemp -d)
 trap 'rm -rf "$work"' EXIT
