@@ -9,17 +9,7 @@
 # First run: creates bench/.venv-numpy (numpy from PyPI) and the checkpoint under bench/models
 # (git-ignored; remove it when done).
 set -euo pipefail
-here="$(cd "$(dirname "$0")" && pwd)"
-root="$(dirname "$here")"
-shape="${SHAPE:-1b}"
-venv="$here/.venv-numpy"
-model="$here/models/random-$shape-bf16"
-if [ ! -x "$venv/bin/python" ]; then
-  "${PYTHON:-python3}" -m venv "$venv"
-  "$venv/bin/pip" install --quiet numpy
-fi
-[ -f "$model/model.safetensors" ] || "$venv/bin/python" "$here/make_random_checkpoint.py" "$model" --shape "$shape"
-(cd "$root" && cargo build --release --locked --quiet)
+source "$(dirname "$0")/random-checkpoint.sh"
 work=$(mktemp -d)
 trap 'rm -rf "$work"' EXIT
 head -n 8 "$root/eval-sets/ferry-faq.jsonl" >"$work/q.jsonl"

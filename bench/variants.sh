@@ -11,19 +11,9 @@
 # First run: creates bench/.venv-numpy (numpy from PyPI), the checkpoint and the adapter under
 # bench/models (git-ignored; remove them when done).
 set -euo pipefail
-here="$(cd "$(dirname "$0")" && pwd)"
-root="$(dirname "$here")"
-shape="${SHAPE:-1b}"
-venv="$here/.venv-numpy"
-model="$here/models/random-$shape-bf16"
+source "$(dirname "$0")/random-checkpoint.sh"
 adapter="$here/models/random-$shape-adapter-r16"
-if [ ! -x "$venv/bin/python" ]; then
-  "${PYTHON:-python3}" -m venv "$venv"
-  "$venv/bin/pip" install --quiet numpy
-fi
-[ -f "$model/model.safetensors" ] || "$venv/bin/python" "$here/make_random_checkpoint.py" "$model" --shape "$shape"
 [ -f "$adapter/adapter_model.safetensors" ] || "$venv/bin/python" "$here/make_random_checkpoint.py" "$model" --shape "$shape" --adapter "$adapter" --rank 16
-(cd "$root" && cargo build --release --locked --quiet)
 bin="$root/target/release/liftgate"
 work=$(mktemp -d)
 trap 'rm -rf "$work"' EXIT
@@ -42,7 +32,7 @@ for batch in 1 2 4; do
     --resamples 1000 "${common[@]}" 2>"$work/e3" >/dev/null || true
   read -r t3 s3 < <(tokens_secs "$work/e3")
   cmp -s <(sed 's/"ms":[0-9]*//' "$work/tuned.jsonl") <(sed 's/"ms":[0-9]*//' "$work/rep/candidate.answers.jsonl") && same=same || same=DIFFERENT
-  awk -v b="$batch" -v t1="$t1" -v s1="$s1" -v t2="$t2" -v s2="$s2" -v t3="$t3" -v s3="$s3" -v same="$same" -v rss="$(cat "$work/rss")" 'BEGIN {
+  awk -v b="$batch" -v t1="$t1" -v s1="$s1" -v t2="$t2" -v s2="$s2" -v t3="$t3" -v s3="$s3" -v same="$same" -v rss="$(tail -n 1 "$work/rss")" 'BEGIN {
     one = (t1 + t2) / (s1 + s2); both = t3 / s3;
     printf "batch %d: one after the other %.1f tokens/s, together %.1f tokens/s (%.2fx), peak RSS together %d MiB, answers %s\n", b, one, both, both / one, rss / 1024, same }'
 done

@@ -67,8 +67,10 @@ unsafe impl Sync for Columns {}
 /// y[n, out] = x[n, inp] · W, with W in the panel layout ([`pack_panels_into`]), one task per
 /// panel on the rayon pool.
 ///
-/// Each panel is read once per call, front to back. One row (batch-1 decoding) runs its own
-/// loop with the panel's 64 sums in registers; more rows go through `gemm` per panel, the panel
+/// Each panel is read once per call, front to back. Up to [`FEW_ROWS`] rows (small-batch
+/// decoding) run their own loop with the panel's 64 sums per row in registers or the
+/// first-level cache, each row summed as it would be alone; more rows go through `gemm` per
+/// panel, the panel
 /// being a column-major left operand it reads without repacking, with the output columns in
 /// vector lanes. Each output is computed by one task in a fixed order, so the result does not
 /// depend on the thread count.
@@ -78,15 +80,16 @@ pub fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f
 
 /// How a product reads a panel of weights: f32 as stored, 16-bit widened.
 trait PanelRead: Copy + Sync {
-    /// acc[l] = Σₖ x[k]·panel[k·64 + l] (one row, batch-1 decoding).
-    fn row(acc: &mut [f32; PANEL], x: &[f32], panel: &[Self]);
-    /// Calls `f` on the panel as f32 values (several rows).
+    /// The f32 values of `src` (rows of a panel): `src` itself, or widened into `buf`.
+    fn piece<'a>(src: &'a [Self], buf: &'a mut [f32]) -> &'a [f32];
+    /// Calls `f` on the panel as f32 values (many rows).
     fn as_f32(panel: &[Self], f: impl FnOnce(&[f32]));
 }
 
 impl PanelRead for f32 {
-    fn row(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
-        panel_row(acc, x, panel);
+    #[inline(always)]
+    fn piece<'a>(src: &'a [f32], _buf: &'a mut [f32]) -> &'a [f32] {
+        src
     }
     fn as_f32(panel: &[f32], f: impl FnOnce(&[f32])) {
         f(panel);
@@ -94,8 +97,11 @@ impl PanelRead for f32 {
 }
 
 impl<H: Half> PanelRead for H {
-    fn row(acc: &mut [f32; PANEL], x: &[f32], panel: &[H]) {
-        panel_row_half(acc, x, panel);
+    #[inline(always)]
+    fn piece<'a>(src: &'a [H], buf: &'a mut [f32]) -> &'a [f32] {
+        let piece = &mut buf[..src.len()];
+        H::widen(src, piece);
+        piece
     }
     fn as_f32(panel: &[H], f: impl FnOnce(&[f32])) {
         WIDE.with(|buf| {
@@ -106,6 +112,11 @@ impl<H: Half> PanelRead for H {
         });
     }
 }
+
+/// Rows up to which a product reads each panel once for all rows with the one-row loop
+/// ([`panel_rows`]) instead of `gemm`: small batches, where decoding waits on memory, and where
+/// several model variants share one step. Each row's sums are then those of batch 1.
+pub const FEW_ROWS: usize = 4;
 
 /// y[n, out] = x[n, inp] · W over the panels of `w`, one task per panel (see [`matmul`]).
 fn products<T: PanelRead>(x: &[f32], n: usize, inp: usize, w: &[T], out: usize, y: &mut [f32]) {
@@ -118,12 +129,14 @@ fn products<T: PanelRead>(x: &[f32], n: usize, inp: usize, w: &[T], out: usize, 
         let j0 = p * PANEL;
         let width = PANEL.min(out - j0);
         let panel = &w[p * inp * PANEL..(p + 1) * inp * PANEL];
-        if n == 1 {
-            let mut acc = [0f32; PANEL];
-            T::row(&mut acc, &x[..inp], panel);
-            // SAFETY: columns j0..j0 + width of the one output row belong to this task.
-            unsafe {
-                std::ptr::copy_nonoverlapping(acc.as_ptr(), yc.get().add(j0), width);
+        if n <= FEW_ROWS {
+            let mut acc = [[0f32; PANEL]; FEW_ROWS];
+            panel_rows(&mut acc[..n], &x[..n * inp], inp, panel);
+            for (t, a) in acc[..n].iter().enumerate() {
+                // SAFETY: columns j0..j0 + width of each output row belong to this task.
+                unsafe {
+                    std::ptr::copy_nonoverlapping(a.as_ptr(), yc.get().add(t * out + j0), width);
+                }
             }
             return;
         }
@@ -208,78 +221,86 @@ thread_local! {
 }
 
 /// As [`matmul`], with W stored 16-bit in the panel layout and widened inside the product:
-/// bit for bit the result of [`matmul`] on the widened weights. One row streams each panel
-/// through a small buffer in pieces of [`PIECE_ROWS`] rows; several rows widen the whole panel
-/// once per call (into a per-thread buffer) and run the same `gemm` as the f32 product.
+/// bit for bit the result of [`matmul`] on the widened weights. Up to [`FEW_ROWS`] rows stream
+/// each panel through a small buffer in pieces of [`PIECE_ROWS`] rows; more rows widen the
+/// whole panel once per call (into a per-thread buffer) and run the same `gemm` as the f32
+/// product.
 pub fn matmul_half<H: Half>(x: &[f32], n: usize, inp: usize, w: &[H], out: usize, y: &mut [f32]) {
     products(x, n, inp, w, out, y);
 }
 
-/// Rows of a 16-bit panel widened at a time by the one-row product: an even number (so the
-/// pairing of rows in [`accumulate`] is the one of the whole panel), 8 KB of f32 that stay in
-/// the first-level cache.
+/// Rows of a panel taken at a time by the few-rows product: an even number (so the pairing of
+/// rows in [`accumulate`] is the one of the whole panel), 8 KB of f32 that stay in the
+/// first-level cache.
 pub const PIECE_ROWS: usize = 32;
 
-/// [`panel_row`] over a 16-bit panel, widened piece by piece: the same sums in the same order.
-fn panel_row_half<H: Half>(acc: &mut [f32; PANEL], x: &[f32], panel: &[H]) {
+/// acc[t][l] = Σₖ x[t·inp + k]·panel[k·64 + l] for each of the n = acc.len() ≤ [`FEW_ROWS`]
+/// rows, reading the panel once: piece by piece ([`PIECE_ROWS`] rows, widened first when
+/// 16-bit), each piece added into every row's sums while it is in the first-level cache. Each
+/// row's sums are in the same order as alone, so a row's result does not depend on the others.
+/// With AVX-512 (found at run time) the loop is compiled for 16-wide vectors.
+fn panel_rows<T: PanelRead>(acc: &mut [[f32; PANEL]], x: &[f32], inp: usize, panel: &[T]) {
     #[cfg(target_arch = "x86_64")]
     if features().avx512f {
         // SAFETY: the CPU has AVX-512F (checked just above).
-        unsafe { panel_row_half_avx512(acc, x, panel) };
+        unsafe { panel_rows_avx512(acc, x, inp, panel) };
         return;
     }
-    panel_row_half_body(acc, x, panel);
+    panel_rows_any(acc, x, inp, panel);
 }
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
-unsafe fn panel_row_half_avx512<H: Half>(acc: &mut [f32; PANEL], x: &[f32], panel: &[H]) {
-    panel_row_half_body(acc, x, panel);
+unsafe fn panel_rows_avx512<T: PanelRead>(
+    acc: &mut [[f32; PANEL]],
+    x: &[f32],
+    inp: usize,
+    panel: &[T],
+) {
+    panel_rows_any(acc, x, inp, panel);
 }
 
+/// One copy of the loop per row count, so one row keeps its 64 sums in registers.
 #[inline(always)]
-fn panel_row_half_body<H: Half>(acc: &mut [f32; PANEL], x: &[f32], panel: &[H]) {
-    let (mut even, mut odd) = ([0f32; PANEL], [0f32; PANEL]);
-    let mut wide = [0f32; PIECE_ROWS * PANEL];
+fn panel_rows_any<T: PanelRead>(acc: &mut [[f32; PANEL]], x: &[f32], inp: usize, panel: &[T]) {
+    match acc.len() {
+        1 => panel_rows_body::<T, 1>(acc, x, inp, panel),
+        2 => panel_rows_body::<T, 2>(acc, x, inp, panel),
+        3 => panel_rows_body::<T, 3>(acc, x, inp, panel),
+        _ => panel_rows_body::<T, FEW_ROWS>(acc, x, inp, panel),
+    }
+}
+
+/// Two sets of sums per row, for even and odd k, so consecutive multiply-adds do not wait on
+/// each other; added at the end.
+#[inline(always)]
+fn panel_rows_body<T: PanelRead, const N: usize>(
+    acc: &mut [[f32; PANEL]],
+    x: &[f32],
+    inp: usize,
+    panel: &[T],
+) {
+    let mut even = [[0f32; PANEL]; N];
+    let mut odd = [[0f32; PANEL]; N];
+    let mut buf = [0f32; PIECE_ROWS * PANEL];
     let mut k0 = 0;
-    while k0 < x.len() {
-        let k1 = (k0 + PIECE_ROWS).min(x.len());
-        let piece = &mut wide[..(k1 - k0) * PANEL];
-        H::widen(&panel[k0 * PANEL..k1 * PANEL], piece);
-        accumulate(&mut even, &mut odd, &x[k0..k1], piece);
+    while k0 < inp {
+        let k1 = (k0 + PIECE_ROWS).min(inp);
+        let piece = T::piece(&panel[k0 * PANEL..k1 * PANEL], &mut buf);
+        for t in 0..N {
+            accumulate(
+                &mut even[t],
+                &mut odd[t],
+                &x[t * inp + k0..t * inp + k1],
+                piece,
+            );
+        }
         k0 = k1;
     }
-    for l in 0..PANEL {
-        acc[l] = even[l] + odd[l];
-    }
-}
-
-/// acc[l] = Σₖ x[k]·panel[k·64 + l]. With AVX-512 (found at run time) the loop is compiled for
-/// 16-wide vectors: the 64 sums stay in registers while the panel streams past.
-fn panel_row(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
-    #[cfg(target_arch = "x86_64")]
-    if features().avx512f {
-        // SAFETY: the CPU has AVX-512F (checked just above).
-        unsafe { panel_row_avx512(acc, x, panel) };
-        return;
-    }
-    panel_row_body(acc, x, panel);
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx512f")]
-unsafe fn panel_row_avx512(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
-    panel_row_body(acc, x, panel);
-}
-
-/// Two sets of sums, for even and odd k, so consecutive multiply-adds do not wait on each
-/// other; added at the end.
-#[inline(always)]
-fn panel_row_body(acc: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
-    let (mut even, mut odd) = ([0f32; PANEL], [0f32; PANEL]);
-    accumulate(&mut even, &mut odd, x, panel);
-    for l in 0..PANEL {
-        acc[l] = even[l] + odd[l];
+    for t in 0..N {
+        for l in 0..PANEL {
+            acc[t][l] = even[t][l] + odd[t][l];
+        }
     }
 }
 
@@ -482,6 +503,46 @@ mod tests {
             let mut y = vec![0.0; n * out];
             matmul_half(&x, n, inp, &hp, out, &mut y);
             check(h.iter().map(|v| v.to_f32()).collect(), y);
+        }
+    }
+
+    /// Up to FEW_ROWS rows read each panel once for all rows, and each row's result is bit for
+    /// bit the one it gets alone (which is what lets rows of several model variants share a
+    /// step without changing any answer); f32 and bf16, partial panels, one task and the pool.
+    #[test]
+    fn few_rows_each_equal_their_row_alone() {
+        for (n, inp, out) in [(2, 37, 5), (3, 301, 150), (4, 64, 64), (4, 2048, 300)] {
+            let x: Vec<f32> = (0..n * inp)
+                .map(|i| ((i * 7) % 11) as f32 * 0.3 - 1.7)
+                .collect();
+            let raw: Vec<f32> = (0..out * inp)
+                .map(|i| ((i * 5) % 13) as f32 * 0.173 - 1.01)
+                .collect();
+            let wp = pack_panels(&raw, out, inp);
+            let b: Vec<half::bf16> = raw.iter().map(|&v| half::bf16::from_f32(v)).collect();
+            let mut bp = vec![half::bf16::ZERO; panel_len(out, inp)];
+            pack_panels_into(&b, out, inp, &mut bp, 0);
+            let mut all = vec![0.0; n * out];
+            let mut all_b = vec![0.0; n * out];
+            matmul(&x, n, inp, &wp, out, &mut all);
+            matmul_half(&x, n, inp, &bp, out, &mut all_b);
+            for t in 0..n {
+                let xt = &x[t * inp..(t + 1) * inp];
+                let (mut one, mut one_b) = (vec![0.0; out], vec![0.0; out]);
+                matmul(xt, 1, inp, &wp, out, &mut one);
+                matmul_half(xt, 1, inp, &bp, out, &mut one_b);
+                let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+                assert_eq!(
+                    bits(&all[t * out..(t + 1) * out]),
+                    bits(&one),
+                    "f32 n {n} row {t}"
+                );
+                assert_eq!(
+                    bits(&all_b[t * out..(t + 1) * out]),
+                    bits(&one_b),
+                    "bf16 n {n} row {t}"
+                );
+            }
         }
     }
 

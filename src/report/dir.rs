@@ -27,15 +27,26 @@ pub fn grades_file(name: &str) -> String {
     format!("{name}{GRADES_SUFFIX}")
 }
 
-/// The answers files (finished or journaled) in `dir`, by their `<name>.answers.jsonl` path.
-fn answers_in(dir: &Path) -> Vec<PathBuf> {
+/// The files of `dir` with the name each stands for: `<x>.partial` and `<x>.run.json` stand
+/// for `<x>` (a journal and a record of the file they go with).
+fn entries(dir: &Path) -> Vec<(String, String)> {
     let mut out = Vec::new();
     for entry in std::fs::read_dir(dir).into_iter().flatten().flatten() {
         let file = entry.file_name().to_string_lossy().into_owned();
         let stem = file
             .strip_suffix(".partial")
             .or_else(|| file.strip_suffix(".run.json"))
-            .unwrap_or(&file);
+            .unwrap_or(&file)
+            .to_string();
+        out.push((file, stem));
+    }
+    out
+}
+
+/// The answers files (finished or journaled) in `dir`, by their `<name>.answers.jsonl` path.
+fn answers_in(dir: &Path) -> Vec<PathBuf> {
+    let mut out = Vec::new();
+    for (_, stem) in entries(dir) {
         if stem.ends_with(ANSWERS_SUFFIX) {
             let p = dir.join(stem);
             if !out.contains(&p) {
@@ -101,18 +112,11 @@ impl Claim {
 /// Every file a run writes into its report directory before the report itself: answers,
 /// their journals and records, grades and their records.
 fn stage_files(dir: &Path) -> Vec<String> {
-    let mut names = Vec::new();
-    for entry in std::fs::read_dir(dir).into_iter().flatten().flatten() {
-        let file = entry.file_name().to_string_lossy().into_owned();
-        let stem = file
-            .strip_suffix(".partial")
-            .or_else(|| file.strip_suffix(".run.json"))
-            .unwrap_or(&file);
-        if stem.ends_with(ANSWERS_SUFFIX) || stem.ends_with(GRADES_SUFFIX) {
-            names.push(file);
-        }
-    }
-    names
+    entries(dir)
+        .into_iter()
+        .filter(|(_, stem)| stem.ends_with(ANSWERS_SUFFIX) || stem.ends_with(GRADES_SUFFIX))
+        .map(|(file, _)| file)
+        .collect()
 }
 
 /// Whether `dir` holds answers (finished or journaled) of an earlier run.

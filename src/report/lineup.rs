@@ -85,6 +85,18 @@ fn num(x: Option<f64>, signed: bool) -> String {
     }
 }
 
+/// The numbers of a row as both tables show them: means, lift, interval, p, Holm p, verdict.
+fn cells(r: &LineupRow) -> [String; 6] {
+    [
+        format!("{} → {}", num(r.baseline, false), num(r.candidate, false)),
+        num(r.lift, true),
+        format!("{} to {}", num(r.ci_low, true), num(r.ci_high, true)),
+        r.p_value.map_or("-".into(), |p| format!("{p:.4}")),
+        format!("{:.4}", r.p_holm),
+        verdict(r.go).to_string(),
+    ]
+}
+
 fn verdict(go: bool) -> &'static str {
     if go {
         "GO"
@@ -115,19 +127,12 @@ pub fn markdown(l: &Lineup) -> String {
     );
     let _ = writeln!(o, "|---|---|---|---|---|---|---|---|---|");
     for r in &l.candidates {
+        let [means, lift, interval, p, holm, v] = cells(r);
         let _ = writeln!(
             o,
-            "| {} | {} | {} → {} | {} | {} to {} | {} | {:.4} | **{}** | [{}]({}) |",
+            "| {} | {} | {means} | {lift} | {interval} | {p} | {holm} | **{v}** | [{}]({}) |",
             md(&r.name),
             md(&r.describe),
-            num(r.baseline, false),
-            num(r.candidate, false),
-            num(r.lift, true),
-            num(r.ci_low, true),
-            num(r.ci_high, true),
-            r.p_value.map_or("-".into(), |p| format!("{p:.4}")),
-            r.p_holm,
-            verdict(r.go),
             md(&r.report),
             r.report
         );
@@ -191,20 +196,13 @@ pub fn html(l: &Lineup) -> String {
         100.0 * l.confidence
     );
     for r in &l.candidates {
+        let [means, lift, interval, p, holm, v] = cells(r);
         let _ = writeln!(
             o,
-            "<tr><td><a href=\"{}\">{}</a></td><td>{}</td><td>{} → {}</td><td>{}</td><td>{} to {}</td><td>{}</td><td>{:.4}</td><td><strong>{}</strong></td></tr>",
+            "<tr><td><a href=\"{}\">{}</a></td><td>{}</td><td>{means}</td><td>{lift}</td><td>{interval}</td><td>{p}</td><td>{holm}</td><td><strong>{v}</strong></td></tr>",
             escape(&format!("{}/report.html", r.name)),
             user(&r.name),
             user(&r.describe),
-            num(r.baseline, false),
-            num(r.candidate, false),
-            num(r.lift, true),
-            num(r.ci_low, true),
-            num(r.ci_high, true),
-            r.p_value.map_or("-".into(), |p| format!("{p:.4}")),
-            r.p_holm,
-            verdict(r.go)
         );
     }
     o.push_str("</tbody></table></div>\n");
@@ -252,13 +250,14 @@ pub fn terminal(l: &Lineup) -> String {
         "verdict",
     ]);
     for r in &l.candidates {
+        let [means, lift, interval, _, holm, v] = cells(r);
         t.add_row(vec![
             clean(&r.name),
-            format!("{} -> {}", num(r.baseline, false), num(r.candidate, false)),
-            num(r.lift, true),
-            format!("{} to {}", num(r.ci_low, true), num(r.ci_high, true)),
-            format!("{:.4}", r.p_holm),
-            verdict(r.go).to_string(),
+            means.replace('→', "->"),
+            lift,
+            interval,
+            holm,
+            v,
         ]);
     }
     let _ = writeln!(out, "{t}");
