@@ -274,3 +274,47 @@ fn vet_compares_several_candidates_in_one_report() {
     assert_eq!(run["adapter"]["applied"], "merged and saved in bf16");
     assert_eq!(run["variant"], "qv-bf16");
 }
+
+/// A merged-checkpoint candidate whose chat template differs from the baseline's (here the
+/// default system line reworded, as happens when a model directory is saved with another
+/// template): the comparison then also measures the template, and `vet` says so on stderr and
+/// in that candidate's report, and still finishes.
+#[test]
+fn a_candidate_with_another_chat_template_is_warned_about() {
+    let tmp = with_set();
+    let f = fixture();
+    let other = tmp.copy_dir(&f.join("model"), "other-template");
+    let cfg_path = other.join("tokenizer_config.json");
+    let mut cfg: Value =
+        serde_json::from_str(&std::fs::read_to_string(&cfg_path).unwrap()).unwrap();
+    let t = cfg["chat_template"].as_str().unwrap().replace(
+        "You answer questions from ferry passengers.",
+        "You help ferry passengers.",
+    );
+    cfg["chat_template"] = Value::String(t);
+    std::fs::write(&cfg_path, serde_json::to_string(&cfg).unwrap()).unwrap();
+    let spec = format!("name=reworded,model={}", other.display());
+    let run = vet(
+        &tmp,
+        "qv",
+        &["--report", "rep", "--no-history", "--candidate", &spec],
+    );
+    run.expect_verdict();
+    assert!(
+        run.stderr
+            .contains("reworded renders prompts with another chat template than baseline"),
+        "{}",
+        run.stderr
+    );
+    let summary: Value = serde_json::from_str(&tmp.read("rep/reworded/summary.json")).unwrap();
+    let warned = summary["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .any(|w| w.as_str().unwrap().contains("another chat template"));
+    assert!(warned, "{summary}");
+    let plain: Value = serde_json::from_str(&tmp.read("rep/candidate/summary.json")).unwrap();
+    assert!(!plain["warnings"]
+        .to_string()
+        .contains("another chat template"));
+}

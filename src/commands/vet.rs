@@ -309,8 +309,9 @@ fn vet_into(
         .map(|r| r.ok_or_else(|| Error::internal("a variant was not answered")))
         .collect::<Result<_>>()?;
     stop.check(|| format!("all answers are saved in {}", dir.display()))?;
+    // Per variant: what its comparison also measures besides the weights.
     let template_warnings = template_warnings(&names, &runs);
-    for w in &template_warnings {
+    for w in template_warnings.iter().flatten() {
         eprintln!("liftgate: warning: {w}");
     }
 
@@ -328,7 +329,7 @@ fn vet_into(
     );
     let (baseline_path, baseline) = &graded[0];
     let mut summaries = Vec::with_capacity(graded.len() - 1);
-    for (candidate_path, candidate) in &graded[1..] {
+    for ((candidate_path, candidate), warnings) in graded[1..].iter().zip(&template_warnings[1..]) {
         let inputs = weigh::describe_inputs(
             set,
             baseline_path,
@@ -343,7 +344,7 @@ fn vet_into(
             settings: settings.stats,
             inputs,
         })?;
-        summary.warnings.extend(template_warnings.iter().cloned());
+        summary.warnings.extend(warnings.iter().cloned());
         if let Some(l) = &leakage {
             let flagged = l.exact + l.normalised + l.near;
             if flagged > 0 {
@@ -408,8 +409,9 @@ fn vet_into(
 }
 
 /// A candidate whose chat template or tokenizer differs from the baseline's is also measured
-/// on that difference: say so.
-fn template_warnings(names: &[&str], runs: &[answer::AnswerRun]) -> Vec<String> {
+/// on that difference: say so, in that candidate's warnings (one list per variant; the
+/// baseline's is empty).
+fn template_warnings(names: &[&str], runs: &[answer::AnswerRun]) -> Vec<Vec<String>> {
     let tokenizer = |r: &answer::AnswerRun| {
         r.info
             .model
@@ -419,20 +421,22 @@ fn template_warnings(names: &[&str], runs: &[answer::AnswerRun]) -> Vec<String> 
             .map(|f| f.sha256.clone())
     };
     let base = &runs[0].info;
-    let mut out = Vec::new();
+    let mut out = vec![Vec::new()];
     for (n, r) in names.iter().zip(runs).skip(1) {
+        let mut mine = Vec::new();
         if r.info.chat_template.fingerprint != base.chat_template.fingerprint {
-            out.push(format!(
+            mine.push(format!(
                 "{n} renders prompts with another chat template than {} ({} against {}): the comparison then measures the template as well as the weights.",
                 names[0], r.info.model.path, base.model.path
             ));
         }
         if tokenizer(r) != tokenizer(&runs[0]) {
-            out.push(format!(
+            mine.push(format!(
                 "{n} has another tokenizer.json than {} ({} against {}): the comparison then measures the tokenizer as well as the weights.",
                 names[0], r.info.model.path, base.model.path
             ));
         }
+        out.push(mine);
     }
     out
 }
