@@ -16,6 +16,7 @@
 
 use super::charts::{self, Chart};
 pub use super::inert::escape;
+use super::markdown::{pct, rate, share};
 use super::summary::*;
 use super::Renderer;
 use crate::policy::IntervalKind;
@@ -219,11 +220,6 @@ fn signed(x: Option<f64>) -> String {
         .unwrap_or_else(|| "–".into())
 }
 
-fn pct(x: Option<f64>) -> String {
-    x.map(|v| format!("{:.1}%", 100.0 * v))
-        .unwrap_or_else(|| "–".into())
-}
-
 fn interval(lo: Option<f64>, hi: Option<f64>) -> String {
     match (lo, hi) {
         (Some(l), Some(h)) => format!("{} to {}", signed(Some(l)), signed(Some(h))),
@@ -235,32 +231,6 @@ fn p(x: Option<f64>) -> String {
     match x {
         Some(v) if v < 0.0001 => "&lt; 0.0001".into(),
         Some(v) => format!("{v:.4}"),
-        None => "–".into(),
-    }
-}
-
-fn rate(r: &Rate) -> String {
-    match r.share {
-        Some(_) => format!(
-            "{} ({}–{}), {} declined",
-            pct(r.share),
-            pct(r.ci_low),
-            pct(r.ci_high),
-            r.declined
-        ),
-        None => "–".into(),
-    }
-}
-
-fn share(x: &Share) -> String {
-    match x.share {
-        Some(_) => format!(
-            "{} ({}–{}), {} questions",
-            pct(x.share),
-            pct(x.ci_low),
-            pct(x.ci_high),
-            x.count
-        ),
         None => "–".into(),
     }
 }

@@ -91,7 +91,8 @@ fn signed(x: Option<f64>) -> String {
     x.map(|v| format!("{v:+.3}")).unwrap_or_else(|| "–".into())
 }
 
-fn pct(x: Option<f64>) -> String {
+/// A share as a percentage; report.md and report.html write numbers alike.
+pub(crate) fn pct(x: Option<f64>) -> String {
     x.map(|v| format!("{:.1}%", 100.0 * v))
         .unwrap_or_else(|| "–".into())
 }
@@ -111,7 +112,8 @@ fn p(x: Option<f64>) -> String {
     }
 }
 
-fn rate(r: &Rate) -> String {
+/// A refusal rate with its Wilson interval and count (both reports).
+pub(crate) fn rate(r: &Rate) -> String {
     match r.share {
         Some(_) => format!(
             "{} ({}–{}), {} declined",
@@ -149,7 +151,8 @@ fn check_threshold(c: &Check) -> String {
     )
 }
 
-fn share(x: &Share) -> String {
+/// A share with its interval and count (both reports).
+pub(crate) fn share(x: &Share) -> String {
     match x.share {
         Some(_) => format!(
             "{} ({}–{}), {} questions",
