@@ -237,6 +237,13 @@ pub struct VetArgs {
     /// with a warning (as `liftgate leaks` lists them).
     #[arg(long, value_name = "FILE")]
     pub train: Option<PathBuf>,
+    /// Answer only shard K of N of the set (K counted from 0), with every variant, into
+    /// `--report DIR`/shards/, and stop: one task of a cluster job array (`auto` reads K and N
+    /// from the scheduler, as `answer --shard`; LIFTGATE_SHARD stands for the flag). When every
+    /// task is done, the same command without --shard (and without LIFTGATE_SHARD) gathers the
+    /// shards and grades, weighs and reports as a single-machine run.
+    #[arg(long, value_name = "K/N|auto", requires = "report")]
+    pub shard: Option<String>,
     #[command(flatten)]
     pub stats: StatsArgs,
     #[command(flatten)]

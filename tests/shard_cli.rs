@@ -263,3 +263,154 @@ fn kubernetes_indexed_job_variables_give_the_shard() {
     assert!(record(&t, "whole.jsonl").get("shard").is_none());
     assert_eq!(t.read("whole.jsonl").lines().count(), QUESTIONS.len());
 }
+
+/// `vet --shard K/N --report DIR` with every variant, then `vet --report DIR`: the gathered
+/// answers and the report equal a whole `vet` run's.
+#[test]
+fn vet_in_shards_then_gathered_equals_a_whole_vet() {
+    let t = with_set();
+    let m = model();
+    let adapter = common::fixture("runner/llama/adapters/all");
+    let spec = format!("name=merged,adapter={},merge=f32", adapter.display());
+    let vet = |report: &str, extra: &[&str], env: &[(&str, &str)]| {
+        let mut args = vec![
+            "vet",
+            "--model",
+            m.to_str().unwrap(),
+            "--adapter",
+            adapter.to_str().unwrap(),
+            "--candidate",
+            &spec,
+            "--questions",
+            "set.jsonl",
+            "--report",
+            report,
+            "--max-new-tokens",
+            "8",
+            "--threads",
+            "1",
+            "--no-history",
+        ];
+        args.extend_from_slice(extra);
+        let mut c = t.command(args);
+        for v in SCHEDULER_VARS {
+            c.env_remove(v);
+        }
+        for (k, v) in env {
+            c.env(k, v);
+        }
+        Run::of(c)
+    };
+    let whole = vet("whole", &[], &[]);
+    for k in 0..3 {
+        let (flag, env): (Vec<&str>, Vec<(&str, &str)>) = if k == 2 {
+            // The last task as a Slurm array would start it.
+            (
+                vec!["--shard", "auto"],
+                vec![
+                    ("SLURM_ARRAY_TASK_ID", "12"),
+                    ("SLURM_ARRAY_TASK_MIN", "10"),
+                    ("SLURM_ARRAY_TASK_MAX", "12"),
+                    ("SLURM_ARRAY_TASK_COUNT", "3"),
+                    ("SLURM_ARRAY_TASK_STEP", "1"),
+                ],
+            )
+        } else {
+            (vec!["--shard", if k == 0 { "0/3" } else { "1/3" }], vec![])
+        };
+        vet("array", &flag, &env)
+            .expect_success()
+            .expect_no_stdout()
+            .expect_stderr(&[&format!("answering shard {k} of 3")]);
+        for name in ["baseline", "candidate", "merged"] {
+            assert!(t
+                .path(&format!("array/shards/{name}.{k}-of-3.answers.jsonl"))
+                .is_file());
+        }
+        assert!(!t.path("array/summary.json").exists());
+    }
+    let gathered = vet("array", &[], &[]);
+    gathered.expect_stderr(&["gathering 3 shard answers files of merged", "kept as it is"]);
+    assert_eq!(gathered.expect_verdict(), whole.expect_verdict());
+    assert_eq!(
+        gathered.stdout.replace("array", "DIR"),
+        whole.stdout.replace("whole", "DIR")
+    );
+    for name in ["baseline", "candidate", "merged"] {
+        let answers = format!("{name}.answers.jsonl");
+        assert_eq!(
+            without_ms(&t.read_bytes(&format!("array/{answers}"))),
+            without_ms(&t.read_bytes(&format!("whole/{answers}")))
+        );
+        assert_eq!(
+            t.read(&format!("array/{answers}.run.json")),
+            t.read(&format!("whole/{answers}.run.json"))
+        );
+    }
+    let lineup = |dir: &str| t.read(&format!("{dir}/lineup.json")).replace(dir, "DIR");
+    assert_eq!(lineup("array"), lineup("whole"));
+    assert_eq!(
+        t.read("array/candidate/summary.json")
+            .replace("array", "DIR"),
+        t.read("whole/candidate/summary.json")
+            .replace("whole", "DIR")
+    );
+}
+
+/// The gathering `vet` refuses shards answered with other settings rather than answering the
+/// whole set again on one machine, and a task without `--report` is refused.
+#[test]
+fn vet_gathering_refuses_shards_of_other_settings() {
+    let t = with_set();
+    let m = model();
+    let adapter = common::fixture("runner/llama/adapters/all");
+    let vet = |extra: &[&str]| {
+        let mut args = vec![
+            "vet",
+            "--model",
+            m.to_str().unwrap(),
+            "--adapter",
+            adapter.to_str().unwrap(),
+            "--questions",
+            "set.jsonl",
+            "--threads",
+            "1",
+            "--no-history",
+        ];
+        args.extend_from_slice(extra);
+        let mut c = t.command(args);
+        for v in SCHEDULER_VARS {
+            c.env_remove(v);
+        }
+        Run::of(c)
+    };
+    for k in ["0/2", "1/2"] {
+        vet(&["--shard", k, "--report", "r", "--max-new-tokens", "8"]).expect_success();
+    }
+    let run = vet(&["--report", "r", "--max-new-tokens", "6"]);
+    run.expect_code(2).expect_stderr(&[
+        "r/baseline.answers.jsonl.run.json",
+        "max_new_tokens was 8, is now 6",
+        "same model, adapters, question set and settings as the shard tasks",
+    ]);
+    assert!(!t.path("r/summary.json").exists());
+    assert!(t.path("r/shards/candidate.1-of-2.answers.jsonl").is_file());
+
+    let mut c = t.command([
+        "vet",
+        "--model",
+        m.to_str().unwrap(),
+        "--adapter",
+        adapter.to_str().unwrap(),
+        "--questions",
+        "set.jsonl",
+        "--no-history",
+    ]);
+    for v in SCHEDULER_VARS {
+        c.env_remove(v);
+    }
+    c.env("LIFTGATE_SHARD", "0/2");
+    Run::of(c)
+        .expect_code(2)
+        .expect_stderr(&["LIFTGATE_SHARD=0/2", "give --report DIR"]);
+}

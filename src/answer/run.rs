@@ -201,6 +201,9 @@ fn prepare(
 pub struct Member<'a> {
     pub out: &'a Path,
     pub settings: &'a Settings,
+    /// `out` holds answers gathered from the shards of a job array: they must be this run's
+    /// (same identity), and are never answered again on the gathering machine.
+    pub gathered: bool,
 }
 
 /// Answers every question of `set` (of its shard `settings.shard`, when given) into `out` (and
@@ -218,7 +221,15 @@ pub fn answer_to(
     set: &QuestionSet,
     stop: &StopFlag,
 ) -> Result<AnswerRun> {
-    let mut runs = answer_group(&[Member { out, settings }], set, stop)?;
+    let mut runs = answer_group(
+        &[Member {
+            out,
+            settings,
+            gathered: false,
+        }],
+        set,
+        stop,
+    )?;
     runs.pop()
         .ok_or_else(|| Error::internal("an answering group returned no run"))
 }
@@ -275,6 +286,9 @@ pub fn answer_group(
                 });
                 continue;
             }
+        }
+        if m.gathered {
+            return Err(gathered_elsewhere(m.out, &identity));
         }
         stop.check(|| format!("nothing answered yet; {} not written", m.out.display()))?;
         let mut journal = Journal::open(&jpath)?;
@@ -441,6 +455,30 @@ fn check_same_run(journal: &Path, saved: &RunIdentity, now: &RunIdentity) -> Res
             list.join("; ")
         ),
     ))
+}
+
+/// Answers gathered from shards that this run cannot keep: made with other settings (named),
+/// or unreadable. Answering the whole set again on the gathering machine would undo the job
+/// array, so this is refused.
+fn gathered_elsewhere(out: &Path, now: &RunIdentity) -> Error {
+    let record = run_record::path_beside(out);
+    let why = match run_record::read_answers_record(out) {
+        Some(info) => RunIdentity::of(&info)
+            .differences(now)
+            .iter()
+            .map(|(field, was, is)| format!("{field} was {was}, is now {is}"))
+            .collect::<Vec<_>>()
+            .join("; "),
+        None => "its run record cannot be read".to_string(),
+    };
+    Error::field(
+        &record,
+        None,
+        "identity",
+        format!(
+            "the answers gathered from the shards were made with other settings than this command gives ({why}); give the gathering command the same model, adapters, question set and settings as the shard tasks"
+        ),
+    )
 }
 
 /// A complete `out` whose `<out>.run.json` records the same identity, read back.

@@ -45,7 +45,7 @@ pub fn run(args: &AnswerArgs) -> Result<Outcome> {
 
 /// The shard to answer and where it was taken from: `--shard` (`flag`), else `LIFTGATE_SHARD`
 /// read through `env`; `auto` asks the scheduler's variables.
-fn shard_spec(
+pub(super) fn shard_spec(
     flag: Option<&str>,
     env: impl Fn(&str) -> Option<String>,
 ) -> Result<Option<(ShardSpec, String)>> {

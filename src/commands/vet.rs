@@ -233,6 +233,11 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
         .map(|t| leakage(&set, t))
         .transpose()?;
     let stop = StopFlag::install()?;
+    if let Some((spec, from)) =
+        super::answer::shard_spec(args.shard.as_deref(), |k| std::env::var(k).ok())?
+    {
+        return answer_shard(args, &settings, &set, spec, &from, &stop);
+    }
 
     let reports = Path::new("reports");
     let name = dir::set_name(&settings.questions);
@@ -264,6 +269,102 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
     }
 }
 
+/// One task of a job array: every variant answers shard `spec` of the set into
+/// `--report DIR`/shards (one copy of each base, as a whole run), nothing is graded or weighed.
+/// Tasks of one array write into the same directory at once, so none of them claims it; each
+/// shard file has its own journal lock.
+fn answer_shard(
+    args: &VetArgs,
+    settings: &Settings,
+    set: &QuestionSet,
+    spec: answer::ShardSpec,
+    from: &str,
+    stop: &StopFlag,
+) -> Result<Outcome> {
+    let report = args.report.as_deref().ok_or_else(|| {
+        Error::usage(format!(
+            "{from}: the tasks of a job array must write into one directory: give --report DIR on storage every task sees"
+        ))
+    })?;
+    if report.join("summary.json").exists() || report.join("report.md").exists() {
+        return Err(Error::usage(format!(
+            "--report {}: already holds a finished report; choose a new directory for this job array",
+            report.display()
+        )));
+    }
+    let shards = report.join(dir::SHARDS_DIR);
+    fsutil::create_dir(&shards)?;
+    let info = answer::Split::of(set, spec.count)?.info(spec.index);
+    eprintln!(
+        "liftgate: vet: answering shard {} of {} (counted from 0; taken from {from}): {} of the {} questions, split {}",
+        spec.index,
+        spec.count,
+        info.questions,
+        set.len(),
+        info.split.chars().take(12).collect::<String>()
+    );
+    let variants: Vec<answer::Settings> = settings
+        .variants
+        .iter()
+        .map(|v| answer::Settings {
+            shard: Some(spec),
+            ..v.settings.clone()
+        })
+        .collect();
+    let outs: Vec<PathBuf> = settings
+        .variants
+        .iter()
+        .map(|v| shards.join(dir::shard_answers_file(name_of(v), spec.index, spec.count)))
+        .collect();
+    for group in groups(&settings.variants)? {
+        stop.check(|| format!("the answers saved so far are kept in {}", shards.display()))?;
+        let members: Vec<Member> = group
+            .iter()
+            .map(|&i| Member {
+                out: &outs[i],
+                settings: &variants[i],
+                gathered: false,
+            })
+            .collect();
+        answer::answer_group(&members, set, stop)?;
+    }
+    eprintln!(
+        "liftgate: vet: shard {} of {} answered into {}; when every shard is answered, run the same command without --shard to gather, grade and weigh",
+        spec.index,
+        spec.count,
+        shards.display()
+    );
+    Ok(Outcome::Success)
+}
+
+/// Joins the shard answers under `dir`/shards of every variant that has no answers file yet
+/// (exit 2 naming a missing, unfinished or foreign shard); returns which variants were gathered.
+fn gather_shards(dir: &Path, names: &[&str], set: &QuestionSet) -> Result<Vec<bool>> {
+    let mut gathered = vec![false; names.len()];
+    if !dir::has_shards(dir) {
+        return Ok(gathered);
+    }
+    for (i, n) in names.iter().enumerate() {
+        let out = dir.join(dir::answers_file(n));
+        let parts = dir::shard_files(dir, n);
+        if parts.is_empty() {
+            return Err(Error::usage(format!(
+                "{}: holds shard answers, but none of {n} (files {n}.K-of-N.answers.jsonl): answer every shard with every variant of this command (vet --shard) before gathering",
+                dir.join(dir::SHARDS_DIR).display()
+            )));
+        }
+        if !out.exists() {
+            eprintln!(
+                "liftgate: vet: gathering {} shard answers files of {n}",
+                parts.len()
+            );
+            answer::gather(set, &parts, &out)?;
+        }
+        gathered[i] = true;
+    }
+    Ok(gathered)
+}
+
 fn vet_into(
     dir: &Path,
     settings: &Settings,
@@ -278,6 +379,7 @@ fn vet_into(
         .iter()
         .map(|n| dir.join(dir::answers_file(n)))
         .collect();
+    let gathered = gather_shards(dir, &names, set)?;
     let mut runs: Vec<Option<answer::AnswerRun>> = vec![None; variants.len()];
     for group in groups(variants)? {
         stop.check(|| format!("the answers saved so far are kept in {}", dir.display()))?;
@@ -297,6 +399,7 @@ fn vet_into(
             .map(|&i| Member {
                 out: &answers_paths[i],
                 settings: &variants[i].settings,
+                gathered: gathered[i],
             })
             .collect();
         let got = answer::answer_group(&members, set, stop)?;

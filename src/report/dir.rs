@@ -27,6 +27,51 @@ pub fn grades_file(name: &str) -> String {
     format!("{name}{GRADES_SUFFIX}")
 }
 
+/// The subdirectory of a report directory that the tasks of a job array (`vet --shard`) write
+/// their answers into.
+pub const SHARDS_DIR: &str = "shards";
+
+/// The answers file of shard `index` of `count` of the variant `name`, e.g.
+/// `baseline.2-of-4.answers.jsonl`.
+pub fn shard_answers_file(name: &str, index: usize, count: usize) -> String {
+    format!("{name}.{index}-of-{count}{ANSWERS_SUFFIX}")
+}
+
+/// The shard answers files of the variant `name` under `dir`/shards (finished ones: a shard
+/// still answering has only its `.partial` journal, which `gather` then names as missing or
+/// unfinished). Sorted by shard number.
+pub fn shard_files(dir: &Path, name: &str) -> Vec<PathBuf> {
+    let shards = dir.join(SHARDS_DIR);
+    let mut found: Vec<(usize, PathBuf)> = Vec::new();
+    for entry in std::fs::read_dir(&shards).into_iter().flatten().flatten() {
+        let file = entry.file_name().to_string_lossy().into_owned();
+        let middle = file
+            .strip_prefix(name)
+            .and_then(|f| f.strip_prefix('.'))
+            .and_then(|f| f.strip_suffix(ANSWERS_SUFFIX));
+        let index = middle.and_then(|m| {
+            let (k, n) = m.split_once("-of-")?;
+            let digits = |t: &str| !t.is_empty() && t.bytes().all(|b| b.is_ascii_digit());
+            (digits(k) && digits(n)).then(|| k.parse::<usize>().ok())?
+        });
+        if let Some(k) = index {
+            found.push((k, shards.join(&file)));
+        }
+    }
+    found.sort();
+    found.into_iter().map(|(_, p)| p).collect()
+}
+
+/// Any shard answers, finished or not, under `dir`/shards.
+pub fn has_shards(dir: &Path) -> bool {
+    std::fs::read_dir(dir.join(SHARDS_DIR))
+        .into_iter()
+        .flatten()
+        .flatten()
+        .next()
+        .is_some()
+}
+
 /// The files of `dir` with the name each stands for: `<x>.partial` and `<x>.run.json` stand
 /// for `<x>` (a journal and a record of the file they go with).
 fn entries(dir: &Path) -> Vec<(String, String)> {
@@ -119,11 +164,13 @@ fn stage_files(dir: &Path) -> Vec<String> {
         .collect()
 }
 
-/// Whether `dir` holds answers (finished or journaled) of an earlier run.
+/// Whether `dir` holds answers (finished or journaled) of an earlier run, or of the tasks of a
+/// job array.
 fn has_saved_work(dir: &Path) -> bool {
-    answers_in(dir)
-        .iter()
-        .any(|out| journal::journal_path(out).exists() || run_record::path_beside(out).exists())
+    has_shards(dir)
+        || answers_in(dir)
+            .iter()
+            .any(|out| journal::journal_path(out).exists() || run_record::path_beside(out).exists())
 }
 
 /// The identities of the answers saved in a report directory (journals and finished files).
