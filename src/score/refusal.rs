@@ -22,24 +22,32 @@
 //!
 //! **Decision.** An answer is a refusal when a phrase matches and the answer does not go on to
 //! answer anyway:
-//! 1. an *opening* phrase counts when its sentence is the answer's opening (the first sentence,
-//!    or any sentence starting within the first [`OPENING_CHARS`] characters) and the words
-//!    before it in that sentence are only courtesy words ("sorry", "unfortunately", "thanks for
-//!    asking", "I'm afraid", "I'd love to help, but", ...) or end with a linking "so", "as",
-//!    "because" or "since";
+//! 1. an *opening* phrase counts when its sentence starts within the first [`OPENING_CHARS`]
+//!    characters, every sentence before it only *leads in* (courtesy words only, the question
+//!    repeated and ending in "?", a self-frame, or the assistant describing itself:
+//!    [`SELF_DESCRIPTION`]), and the words before it in its own sentence are only courtesy
+//!    words ("sorry", "unfortunately", "thanks for asking", "I'm sorry for any confusion",
+//!    ...), or end with a linking "so", "as", "because" or "since", or include a *self-frame*
+//!    ("as a|an ..." after courtesy words or a contrast word: "..., but as a chatbot designed to
+//!    assist with travel, I'm unable to ..."). After a self-frame (in the sentence or a lead-in
+//!    sentence) a first-person "I can't / I'm unable to / ..." counts with any object, since it
+//!    speaks of the assistant, not of the service's rules. A decline after a sentence of
+//!    content is a disclaimer added to an answer, not a refusal. These structural rules were
+//!    written on real output of a small instruct model (tests/fixtures/refusal_real_dev.jsonl);
 //! 2. an *anywhere* phrase (declines of the whole request: "I can't help with that", "I can only
 //!    answer questions about", "my instructions", and every extra phrase) counts wherever it
 //!    stands;
 //! 3. **hedge rule**: a matched phrase does not count when, after it, a contrast word ("but",
-//!    "however", "although", "though", "still") introduces at least three words that neither
-//!    redirect ("contact", "ask", "check", "visit", "call", "help", ...) nor match a phrase:
+//!    "however", "although", "though", "still") introduces at least three content words (not
+//!    courtesy words, not "not") that neither redirect ("contact", "ask", "check", "visit",
+//!    "call", "help", "other", ...) nor match a phrase:
 //!    "I can't say for sure, but the morning sailings usually fill first" gives the information,
 //!    so it is an answer.
 //!
 //! So an answer that merely contains "sorry" ("Sorry for the wait: the 7:40 crossing runs
 //! daily") or that apologises and then answers is not a refusal. Precision and recall on the
-//! labelled set `tests/fixtures/refusal_labelled.jsonl` are checked by a test and reported in
-//! docs/scoring.md.
+//! labelled sets `tests/fixtures/refusal_*.jsonl` (invented answers and real model output) are
+//! checked by tests/refusal_labelled.rs and reported in docs/scoring.md.
 
 use super::FxHasher;
 use std::borrow::Cow;
@@ -47,12 +55,13 @@ use std::collections::{HashMap, HashSet};
 use std::hash::BuildHasherDefault;
 
 /// How far into an answer (in characters) a sentence may start and still be its opening.
-pub const OPENING_CHARS: usize = 160;
+pub const OPENING_CHARS: usize = 320;
 
 /// Longest gap a `*` in a phrase stands for, in words.
 pub const MAX_GAP_WORDS: usize = 6;
 
-/// Fewest words after a contrast word that make a hedged answer rather than a refusal.
+/// Fewest content words (not courtesy words, not "not") after a contrast word that make a
+/// hedged answer rather than a refusal.
 const HEDGE_MIN_WORDS: usize = 3;
 
 /// First-person forms of "cannot / will not". Each is combined with every entry of
@@ -121,6 +130,12 @@ const DECLINE_OBJECTS: &[&str] = &[
     "provide any information",
     "provide details",
     "provide advice",
+    "provide assistance",
+    "provide any assistance",
+    "offer assistance",
+    "accommodate your request",
+    "accommodate that",
+    "accommodate this",
     "provide guidance",
     "provide that",
     "provide this",
@@ -174,6 +189,30 @@ pub const OPENING_PHRASES: &[&str] = &[
     "i do not have * access",
     "i do not have that",
     "i do not have the ability",
+    // The assistant's own limits, whatever the object: a statement about what the assistant
+    // is, never a rule of the service ("we cannot refund" is a rule; "I'm not equipped to
+    // handle refunds" is not).
+    "i am not equipped to",
+    "i am not equipped for",
+    "i am not designed to",
+    "i am not designed for",
+    "i am not programmed to",
+    "i am not built to",
+    "i am not trained to",
+    "i do not have the capability",
+    "i do not have the capabilities",
+    "i do not have the capacity",
+    "i do not have the means",
+    "i do not have the tools",
+    "i do not have the authority",
+    "i lack the ability",
+    "i lack the capability",
+    "i lack the means",
+    "i am not the best * to",
+    "i am not the right * to",
+    "i am not here to",
+    "i am not capable of",
+    "i am incapable of",
     "that is something i can not",
     "that is not something i know",
     "you would need to ask * about that",
@@ -204,8 +243,6 @@ pub const OPENING_PHRASES: &[&str] = &[
     "this is not something i",
     "that is not a question i",
     "that is not a topic i",
-    "i am not the right * to ask",
-    "i am not the best * to ask",
     "i must decline",
     "i have to decline",
     "i need to decline",
@@ -353,6 +390,22 @@ const COURTESY_WORDS: &[&str] = &[
     "like",
     "help",
     "hmm",
+    "no",
+    "we",
+    "are",
+    "apologise",
+    "any",
+    "confusion",
+    "misunderstanding",
+    "inconvenience",
+    "loss",
+    "trouble",
+    "frustration",
+    "has",
+    "caused",
+    "happy",
+    "glad",
+    "with",
 ];
 
 /// Words that, after a contrast word, show the answer redirects or restates its scope rather
@@ -381,9 +434,40 @@ const REDIRECT_WORDS: &[&str] = &[
     "glad",
     "elsewhere",
     "website",
+    "other",
 ];
 
 const CONTRAST_WORDS: &[&str] = &["but", "however", "although", "though", "still"];
+
+/// Phrases of a sentence in which the assistant describes itself ("as a support assistant, I
+/// specialise in ...", "my primary role is to assist"): like courtesy, such a sentence leads in
+/// to a decline rather than answering.
+const SELF_DESCRIPTION: &[&str] = &[
+    "i am here to",
+    "i am designed to",
+    "i am programmed to",
+    "i specialize",
+    "i specialise",
+    "i focus on",
+    "my role",
+    "my primary role",
+    "my main role",
+    "my function",
+    "my primary function",
+    "my main function",
+    "my purpose",
+    "my primary purpose",
+    "my job",
+    "i am a chatbot",
+    "i am an ai",
+    "i am a customer * assistant",
+    "i am a virtual assistant",
+    "i am an assistant",
+    "i am a language model",
+    "i would be happy to help",
+    "i would be glad to help",
+    "i am happy to help",
+];
 
 const FILLER_WORDS: &[&str] = &[
     "really",
@@ -419,8 +503,11 @@ struct Normalised<'a> {
     toks: Vec<Tok<'a>>,
     /// For each token, the index of the first token of its sentence.
     sentence_start: Vec<usize>,
-    /// For each token, whether its sentence belongs to the opening.
+    /// For each token, whether its sentence starts within the first [`OPENING_CHARS`].
     in_opening: Vec<bool>,
+    /// For each token, whether it ends a sentence with a question mark (an answer that first
+    /// repeats the question: "The best phone this year? I'm sorry, but ...").
+    question_end: Vec<bool>,
 }
 
 fn is_apostrophe(c: char) -> bool {
@@ -574,6 +661,7 @@ fn normalise(text: &str) -> Normalised<'_> {
     let mut toks = Vec::with_capacity(tokens.len());
     let mut sentence_start = Vec::with_capacity(tokens.len());
     let mut in_opening = Vec::with_capacity(tokens.len());
+    let mut question_end = Vec::with_capacity(tokens.len());
     let mut start = 0usize;
     let mut start_opening = true;
     for (i, (tok, pos)) in tokens.into_iter().enumerate() {
@@ -582,6 +670,7 @@ fn normalise(text: &str) -> Normalised<'_> {
             start = i;
             start_opening = i == 0 || pos < opening_bytes;
         }
+        question_end.push(matches!(tok, Tok::End) && text[pos..].starts_with('?'));
         toks.push(tok);
         sentence_start.push(start);
         in_opening.push(start_opening);
@@ -590,6 +679,7 @@ fn normalise(text: &str) -> Normalised<'_> {
         toks,
         sentence_start,
         in_opening,
+        question_end,
     }
 }
 
@@ -713,6 +803,12 @@ impl Trie {
 pub struct RefusalDetector {
     opening: Trie,
     anywhere: Trie,
+    /// [`SELF_DESCRIPTION`] phrases.
+    describes_self: Trie,
+    /// The first-person singular [`INABILITY`] forms with any object: they count once the
+    /// speaker has framed itself ("as a support assistant, ... I'm unable to give pickup
+    /// times"), where "I can't X" is about the assistant, not a rule of the service.
+    framed_inability: Trie,
     courtesy: HashSet<&'static str, BuildHasherDefault<FxHasher>>,
 }
 
@@ -737,9 +833,28 @@ impl Default for RefusalDetector {
                 anywhere.insert(&p);
             }
         }
+        let mut framed_inability = Trie::new();
+        // "Allowed" and "permitted" stay rules even after a frame ("as a guide dog, I'm not
+        // allowed in the lounge").
+        for subject in INABILITY
+            .iter()
+            .filter(|s| s.starts_with("i ") && !s.contains("allowed") && !s.contains("permitted"))
+        {
+            if let Some(p) = compile_phrase(subject) {
+                framed_inability.insert(&p);
+            }
+        }
+        let mut describes_self = Trie::new();
+        for phrase in SELF_DESCRIPTION {
+            if let Some(p) = compile_phrase(phrase) {
+                describes_self.insert(&p);
+            }
+        }
         RefusalDetector {
             opening,
             anywhere,
+            describes_self,
+            framed_inability,
             courtesy: COURTESY_WORDS.iter().copied().collect(),
         }
     }
@@ -764,21 +879,50 @@ impl RefusalDetector {
         let n = normalise(answer);
         // Whether every word so far in the current sentence is a courtesy word.
         let mut all_courtesy = true;
+        // Whether the current sentence framed the speaker ("as a chatbot designed to ...,").
+        let mut framed = false;
+        // Whether every earlier sentence only leads in (courtesy, or the question repeated):
+        // a decline after a sentence of content is a disclaimer added to an answer.
+        let mut lead_in = true;
+        // Whether the current sentence describes the assistant (a lead-in too).
+        let mut self_described = false;
+        // Whether the current sentence has had a contrast word ("..., but as a ...").
+        let mut contrasted = false;
+        // Whether a lead-in sentence so far framed or described the assistant.
+        let mut framed_lead = false;
         for i in 0..n.toks.len() {
             let Tok::Word(w) = &n.toks[i] else {
+                lead_in &= all_courtesy || framed || self_described || n.question_end[i];
+                framed_lead |= lead_in && (framed || self_described);
                 all_courtesy = true;
+                framed = false;
+                self_described = false;
+                contrasted = false;
                 continue;
             };
-            if i == n.sentence_start[i] {
-                all_courtesy = true;
+            if !self_described && self.describes_self.match_at(&n.toks, i).is_some() {
+                self_described = true;
             }
             let mut found = self.anywhere.match_at(&n.toks, i);
             if found.is_none()
                 && n.in_opening[i]
-                && (all_courtesy || (i > n.sentence_start[i] && linking_word(&n.toks[i - 1])))
+                && lead_in
+                && (all_courtesy
+                    || framed
+                    || (i > n.sentence_start[i] && linking_word(&n.toks[i - 1])))
             {
                 found = self.opening.match_at(&n.toks, i);
+                if found.is_none() && (framed || framed_lead) {
+                    found = self.framed_inability.match_at(&n.toks, i);
+                }
             }
+            if (all_courtesy || contrasted)
+                && w == "as"
+                && matches!(n.toks.get(i + 1), Some(Tok::Word(a)) if a == "a" || a == "an")
+            {
+                framed = true;
+            }
+            contrasted |= CONTRAST_WORDS.contains(&w.as_ref());
             if all_courtesy {
                 all_courtesy = self.courtesy.contains(w.as_ref());
             }
@@ -807,7 +951,12 @@ impl RefusalDetector {
                 Tok::End => None,
             })
             .collect();
-        if words.len() < HEDGE_MIN_WORDS || words.iter().any(|w| REDIRECT_WORDS.contains(w)) {
+        // Content words: a trailing "However, I'm not" adds nothing.
+        let content = words
+            .iter()
+            .filter(|w| **w != "not" && !self.courtesy.contains(*w))
+            .count();
+        if content < HEDGE_MIN_WORDS || words.iter().any(|w| REDIRECT_WORDS.contains(w)) {
             return false;
         }
         let phrase_in_rest = (0..rest.len()).any(|k| {

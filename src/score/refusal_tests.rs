@@ -81,10 +81,14 @@ fn phrases_beyond_the_opening() {
     let d = RefusalDetector::default();
     let long_intro = "Thank you for getting in touch with the ferry cooperative about your \
         plans for the long weekend on the islands; we always like hearing from travellers who \
-        are planning a trip across the sound in the spring. ";
+        are planning a trip across the sound in the spring, and we hope the crossing, the \
+        harbour cafe and the walk up to the lighthouse on the far side all live up to what \
+        you have been told about them. ";
     assert!(long_intro.chars().count() > OPENING_CHARS);
     // An opening phrase after the opening does not count ...
     assert!(!d.is_refusal(&format!("{long_intro}I can't say whether it will rain.")));
+    // ... nor after a sentence of content, however close to the start ...
+    assert!(!d.is_refusal("The desk opens at 08:00. Sorry, as a chatbot I can't access live data."));
     // ... an anywhere phrase does.
     assert!(d.is_refusal(&format!(
         "{long_intro}I can only help with ferry questions."
@@ -113,4 +117,44 @@ fn gaps_stay_inside_one_sentence() {
     assert!(d.is_refusal("alpha one two omega"));
     assert!(!d.is_refusal("alpha one. two omega"));
     assert!(!d.is_refusal("alpha 1 2 3 4 5 6 7 omega"));
+}
+
+/// Declines in a real small instruct model's own words (SmolLM2-135M-Instruct; the labelled
+/// sets tests/fixtures/refusal_real_*.jsonl hold many more).
+#[test]
+fn declines_by_structure() {
+    let d = RefusalDetector::default();
+    // Apology, a self-framing "as a ...", then a limit of the assistant itself.
+    assert!(d.is_refusal(
+        "I'm sorry for the confusion, but as a chatbot designed to assist with the most recent information, I'm unable to assist with your specific needs."
+    ));
+    assert!(d.is_refusal(
+        "I'm sorry for your loss, but as a chatbot, I don't have the ability to carry a surfboard."
+    ));
+    // A sentence describing the assistant leads in like courtesy does.
+    assert!(d.is_refusal(
+        "I'm sorry for any confusion, but as a customer support assistant, my primary role is to assist. I'm here to help with questions about your trip. I'm not here to book a table for two."
+    ));
+    // Company voice, framed: declines help with the request, then offers other services.
+    assert!(d.is_refusal(
+        "We're sorry for the inconvenience, but as a ferry cooperative, we're unable to assist with your transportation needs. However, we do have a number of other services available."
+    ));
+    // The question repeated first.
+    assert!(d.is_refusal(
+        "The best phone this year? Sorry, but as a support assistant I'm not equipped to give advice on phones."
+    ));
+    // Declines, then answers after all: an answer.
+    assert!(!d.is_refusal(
+        "We're sorry, but as a cooperative we're unable to assist with wheelchair boats. However, we do have a fleet of boats with ramps for wheelchair users at every pier."
+    ));
+    // Answers, then a disclaimer: an answer.
+    assert!(!d.is_refusal(
+        "No, I'm sorry for your loss. You can still buy your ticket from the crew, but I must clarify, I'm not a customer service AI. I'm not equipped to process payments."
+    ));
+    // A rule of the service in the company's voice is not a decline.
+    assert!(!d.is_refusal("We can't refund saver fares, but you can change them once."));
+    // A trailing fragment after a contrast word adds no content.
+    assert!(d.is_refusal(
+        "I'm sorry, but as a chatbot I'm unable to assist with refunds. If you need help, ask. However, I'm not"
+    ));
 }
