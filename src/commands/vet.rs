@@ -26,7 +26,7 @@ use crate::grade;
 use crate::history::{self, RecordOptions};
 use crate::interrupt::StopFlag;
 use crate::model::lora::Adapter;
-use crate::model::Merge;
+use crate::model::{BaseQuant, Merge};
 use crate::policy::Policy;
 use crate::report::summary::Leakage;
 use crate::report::{self, dir};
@@ -204,7 +204,7 @@ fn describe(s: &answer::Settings) -> String {
 /// directory (adapters that can only be merged excepted) answer together; every other variant
 /// answers alone. Groups come in the order of their first variant.
 fn groups(variants: &[NamedVariant]) -> Result<Vec<Vec<usize>>> {
-    let mut out: Vec<(Option<PathBuf>, Vec<usize>)> = Vec::new();
+    let mut out: Vec<(Option<(PathBuf, Option<BaseQuant>)>, Vec<usize>)> = Vec::new();
     for (i, v) in variants.iter().enumerate() {
         let s = &v.settings;
         let shares = s.merge == Merge::Unmerged
@@ -212,7 +212,12 @@ fn groups(variants: &[NamedVariant]) -> Result<Vec<Vec<usize>>> {
                 None => true,
                 Some(a) => Adapter::load(a)?.needs_merge().is_none(),
             };
-        let key = shares.then(|| s.model.canonicalize().unwrap_or_else(|_| s.model.clone()));
+        let key = shares.then(|| {
+            (
+                s.model.canonicalize().unwrap_or_else(|_| s.model.clone()),
+                s.base,
+            )
+        });
         match out.iter_mut().find(|(k, _)| key.is_some() && *k == key) {
             Some((_, members)) => members.push(i),
             None => out.push((key, vec![i])),

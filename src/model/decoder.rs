@@ -25,7 +25,7 @@ use crate::kernels::dense::{dot, matmul_t, Half};
 use crate::kernels::PARALLEL_WORK;
 use crate::model::config::{Activation, ModelSpec, NormStyle};
 use crate::model::head::{apply_repetition_penalty, argmax, Scratch as HeadScratch, Screen};
-use crate::model::linear::{flat, Linear, WeightFormat};
+use crate::model::linear::{flat, BaseQuant, Linear, WeightFormat};
 use crate::model::lora::LowRank;
 use crate::model::names::{self, EMBED, FINAL_NORM, LM_HEAD};
 use crate::model::rope::{rope_frequencies, rope_in_place};
@@ -186,7 +186,7 @@ impl Decoder {
         w: HashMap<String, Tensor>,
         format: WeightFormat,
     ) -> Result<Self> {
-        Decoder::with_adapters(spec, w, format, Vec::new())
+        Decoder::with_adapters(spec, w, format, Vec::new(), None)
     }
 
     /// As [`Decoder::with_format`], with unmerged adapters laid beside the one copy of the base:
@@ -194,11 +194,17 @@ impl Decoder {
     /// gets the terms added to the outputs of the layers they adapt; a segment of any other
     /// number runs the base alone. Several variants thus share every base weight, and their
     /// rows go through the same products in one call.
+    ///
+    /// With `quant`, the linear layers of the blocks (attention and MLP projections) are
+    /// quantised to 4 bits as bitsandbytes does; embeddings, norms and the output head stay as
+    /// they are, as transformers leaves them (`get_keys_to_not_convert` keeps the output head,
+    /// and only `nn.Linear` modules are replaced).
     pub fn with_adapters(
         spec: &ModelSpec,
         mut w: HashMap<String, Tensor>,
         format: WeightFormat,
         adapters: Vec<(usize, Vec<LowRank>)>,
+        quant: Option<BaseQuant>,
     ) -> Result<Self> {
         let mut terms: HashMap<String, Vec<(usize, LowRank)>> = HashMap::new();
         for (variant, list) in adapters {
@@ -235,7 +241,7 @@ impl Decoder {
                 };
                 Ok((tensor.module(module), w, b))
             };
-            let mut stack = |parts: Vec<Part>| stack_with_terms(parts, format, &mut terms);
+            let mut stack = |parts: Vec<Part>| stack_with_terms(parts, format, quant, &mut terms);
             let qkv = if spec.fused_qkv {
                 stack(vec![part(names::QKV_PROJ, false)?])?
             } else {
@@ -680,6 +686,7 @@ type Part = (String, Tensor, Option<Tensor>);
 fn stack_with_terms(
     parts: Vec<Part>,
     format: WeightFormat,
+    quant: Option<BaseQuant>,
     terms: &mut HashMap<String, Vec<(usize, LowRank)>>,
 ) -> Result<Linear> {
     let mut places = Vec::with_capacity(parts.len());
@@ -691,7 +698,7 @@ fn stack_with_terms(
         at += rows;
         tensors.push((w, b));
     }
-    let mut linear = Linear::stack(tensors, format)?;
+    let mut linear = Linear::stack(tensors, format, quant)?;
     for (module, at) in places {
         for (variant, lr) in terms.remove(&module).unwrap_or_default() {
             linear.attach(variant, at, lr)?;
