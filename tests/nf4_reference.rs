@@ -105,12 +105,8 @@ fn dequantised_weights_equal_bitsandbytes_bit_for_bit() {
                     .to_vec1()
                     .unwrap();
                 let qd = nf4::quantise(&values, q.codebook(), q.double_quant());
-                let table = q.codebook().values();
-                let deq: Vec<f32> = qd
-                    .codes
-                    .iter()
-                    .enumerate()
-                    .map(|(i, &c)| table[c as usize] * qd.scales[i / nf4::BLOCK])
+                let deq: Vec<f32> = (0..values.len())
+                    .map(|i| qd.value(q.codebook(), i))
                     .collect();
                 assert_eq!(
                     sha_f32(&deq),

@@ -133,13 +133,13 @@ impl Settings {
         };
         if self.merge != Merge::Unmerged {
             return Err(Error::usage(format!(
-                "a {} base takes the adapter unmerged, as QLoRA trains it; a merge is another artifact (merge into the base as stored, without the 4-bit base)",
+                "a 4-bit base ({}) takes the adapter unmerged, as QLoRA trains it; a merge is another artifact (merge into the base as stored, without the 4-bit base)",
                 q.name()
             )));
         }
         if self.generation.weights != WeightFormat::F32 {
             return Err(Error::usage(format!(
-                "a {} base computes in f32 (bnb_4bit_compute_dtype=float32, the default); bf16 computation on it is not supported: drop --weights bf16",
+                "a 4-bit base ({}) computes in f32 (bnb_4bit_compute_dtype=float32, the default); bf16 computation on it is not supported: drop --weights bf16",
                 q.name()
             )));
         }

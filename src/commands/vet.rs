@@ -189,14 +189,13 @@ fn name_of(v: &NamedVariant) -> &str {
 
 /// The variant in words, for the report.
 fn describe(s: &answer::Settings) -> String {
+    let base = match s.base {
+        None => s.model.display().to_string(),
+        Some(q) => format!("{} in {}", s.model.display(), q.describe()),
+    };
     match (&s.adapter, s.merge) {
-        (None, _) => format!("model {}", s.model.display()),
-        (Some(a), m) => format!(
-            "{} + adapter {}, {}",
-            s.model.display(),
-            a.display(),
-            m.describe()
-        ),
+        (None, _) => format!("model {base}"),
+        (Some(a), m) => format!("{base} + adapter {}, {}", a.display(), m.describe()),
     }
 }
 

@@ -42,17 +42,20 @@ impl CodeMatrix {
         }
     }
 
-    /// Writes output rows `at..at + rows`: `codes` one code (0..16) per value, [rows, inp]
-    /// row-major; `scales` one per block, [rows, inp / block].
+    /// Writes output rows `at..at + rows`: `codes` two per byte over [rows, inp] row-major
+    /// (value 2i in the low half of byte i, as `nf4::Quantised` holds them); `scales` one per
+    /// block, [rows, inp / block].
     pub fn put_rows(&mut self, codes: &[u8], scales: &[f32], rows: usize, at: usize) {
         let blocks = self.inp / self.block;
-        assert!(codes.len() >= rows * self.inp && scales.len() >= rows * blocks);
+        assert!(codes.len() * 2 >= rows * self.inp && scales.len() >= rows * blocks);
         assert!(at + rows <= self.out);
         for r in 0..rows {
             let j = at + r;
             let (p, l) = (j / PANEL, j % PANEL);
             let shift = 4 * (l % 2);
-            for (k, &c) in codes[r * self.inp..(r + 1) * self.inp].iter().enumerate() {
+            for k in 0..self.inp {
+                let i = r * self.inp + k;
+                let c = (codes[i / 2] >> (4 * (i % 2))) & 0xF;
                 let byte = &mut self.codes[(p * self.inp + k) * PANEL / 2 + l / 2];
                 *byte = (*byte & !(0xF << shift)) | ((c & 0xF) << shift);
             }
@@ -125,15 +128,17 @@ mod tests {
             let codes: Vec<u8> = (0..out * inp)
                 .map(|i| ((i * 7 + i / 3) % 16) as u8)
                 .collect();
+            let packed: Vec<u8> = codes.chunks(2).map(|p| p[0] | (p[1] << 4)).collect();
             let scales: Vec<f32> = (0..out * blocks)
                 .map(|i| 0.01 + (i % 13) as f32 * 0.037)
                 .collect();
             let mut m = CodeMatrix::new(out, inp, 64, table);
             // Two parts stacked, as q | k | v are.
             let first = out / 3;
-            m.put_rows(&codes[..first * inp], &scales[..first * blocks], first, 0);
+            let half = first * inp / 2;
+            m.put_rows(&packed[..half], &scales[..first * blocks], first, 0);
             m.put_rows(
-                &codes[first * inp..],
+                &packed[half..],
                 &scales[first * blocks..],
                 out - first,
                 first,

@@ -362,12 +362,30 @@ pub const DYNAMIC: [f32; 256] = [
     1.0,
 ];
 
-/// A weight quantised to 4 bits: one code per value (0..16, not yet packed) and the f32 scale
-/// of each block of 64 values as the linear layer multiplies by it (after the double
-/// quantisation's round trip, when there is one).
+/// A weight quantised to 4 bits: the codes, two per byte (value 2i in the low half of byte i,
+/// 2i + 1 in the high half), and the f32 scale of each block of 64 values as the linear layer
+/// multiplies by it (after the double quantisation's round trip, when there is one).
 pub struct Quantised {
     pub codes: Vec<u8>,
     pub scales: Vec<f32>,
+}
+
+impl Quantised {
+    /// The code of value i.
+    #[inline]
+    pub fn code(&self, i: usize) -> u8 {
+        (self.codes[i / 2] >> (4 * (i % 2))) & 0xF
+    }
+
+    /// The f32 value of value i as the 4-bit layer multiplies by it: table[code] · scale.
+    pub fn value(&self, book: Codebook, i: usize) -> f32 {
+        book.values()[self.code(i) as usize] * self.scales[i / BLOCK]
+    }
+
+    /// Bytes held.
+    pub fn bytes(&self) -> usize {
+        self.codes.len() + 4 * self.scales.len()
+    }
 }
 
 /// Quantises `values` (a weight's row-major values, widened exactly to f32 from its stored
@@ -380,7 +398,8 @@ pub struct Quantised {
 pub fn quantise(values: &[f32], book: Codebook, double: bool) -> Quantised {
     debug_assert_eq!(values.len() % BLOCK, 0);
     let (order, mids) = book.bounds();
-    let mut codes = Vec::with_capacity(values.len());
+    let mut codes = Vec::with_capacity(values.len().div_ceil(2));
+    let mut n = 0usize;
     let mut absmax = Vec::with_capacity(values.len() / BLOCK);
     // bitsandbytes/backends/default/ops.py lines 233-260 (`quantize_4bit`, no CPU override):
     //   absmax = A_com.abs().max(dim=-1)[0]
@@ -392,8 +411,13 @@ pub fn quantise(values: &[f32], book: Codebook, double: bool) -> Quantised {
         for &v in block {
             let s = (v * recip).clamp(-1.0, 1.0);
             // bucketize (right=False): the number of bounds strictly below s.
-            let q = mids.partition_point(|&m| m < s);
-            codes.push(order[q]);
+            let q = order[mids.partition_point(|&m| m < s)];
+            if n % 2 == 0 {
+                codes.push(q);
+            } else if let Some(last) = codes.last_mut() {
+                *last |= q << 4;
+            }
+            n += 1;
         }
         absmax.push(am);
     }
@@ -588,7 +612,8 @@ mod tests {
             Codebook::Fp4,
             false,
         );
-        assert_eq!((q.codes[0], q.codes[1], q.codes[2]), (3, 8, 0));
+        assert_eq!((q.code(0), q.code(1), q.code(2)), (3, 8, 0));
+        assert_eq!(q.codes[0], 3 | (8 << 4));
     }
 
     /// Hand-worked block: absmax 2, so scaled values are v/2; 0.5·… checks each NF4 bucket edge
@@ -602,10 +627,12 @@ mod tests {
         v[3] = 2.0 * 0.05; // above it → code 8
         v[4] = 2.0 * -0.05; // between -0.0455 and 0 → -0.05 < -0.0455 → code 6
         let q = quantise(&v, Codebook::Nf4, false);
-        assert_eq!(&q.codes[..6], &[15, 0, 7, 8, 6, 7]);
+        let codes: Vec<u8> = (0..6).map(|i| q.code(i)).collect();
+        assert_eq!(codes, [15, 0, 7, 8, 6, 7]);
         assert_eq!(q.scales, vec![2.0]);
         let z = quantise(&[0.0; 64], Codebook::Nf4, false);
-        assert!(z.codes.iter().all(|&c| c == 7));
+        assert!((0..64).all(|i| z.code(i) == 7));
+        assert_eq!(z.codes.len(), 32);
         assert_eq!(z.scales, vec![0.0]);
     }
 

@@ -25,10 +25,11 @@ use crate::kernels::dense::{dot, matmul_t, Half};
 use crate::kernels::PARALLEL_WORK;
 use crate::model::config::{Activation, ModelSpec, NormStyle};
 use crate::model::head::{apply_repetition_penalty, argmax, Scratch as HeadScratch, Screen};
-use crate::model::linear::{flat, BaseQuant, Linear, WeightFormat};
+use crate::model::linear::{flat, Linear, WeightFormat};
 use crate::model::lora::LowRank;
 use crate::model::names::{self, EMBED, FINAL_NORM, LM_HEAD};
 use crate::model::rope::{rope_frequencies, rope_in_place};
+use crate::model::weights::QuantisedBase;
 use candle_core::Tensor;
 use rayon::prelude::*;
 use std::collections::HashMap;
@@ -195,16 +196,17 @@ impl Decoder {
     /// number runs the base alone. Several variants thus share every base weight, and their
     /// rows go through the same products in one call.
     ///
-    /// With `quant`, the linear layers of the blocks (attention and MLP projections) are
-    /// quantised to 4 bits as bitsandbytes does; embeddings, norms and the output head stay as
-    /// they are, as transformers leaves them (`get_keys_to_not_convert` keeps the output head,
-    /// and only `nn.Linear` modules are replaced).
+    /// With `quantised`, the linear layers of the blocks (attention and MLP projections) come
+    /// quantised to 4 bits as bitsandbytes does (their entries in `w` give only the shapes);
+    /// embeddings, norms and the output head stay as they are, as transformers leaves them
+    /// (`get_keys_to_not_convert` keeps the output head, and only `nn.Linear` modules are
+    /// replaced).
     pub fn with_adapters(
         spec: &ModelSpec,
         mut w: HashMap<String, Tensor>,
         format: WeightFormat,
         adapters: Vec<(usize, Vec<LowRank>)>,
-        quant: Option<BaseQuant>,
+        mut quantised: Option<QuantisedBase>,
     ) -> Result<Self> {
         let mut terms: HashMap<String, Vec<(usize, LowRank)>> = HashMap::new();
         for (variant, list) in adapters {
@@ -241,7 +243,8 @@ impl Decoder {
                 };
                 Ok((tensor.module(module), w, b))
             };
-            let mut stack = |parts: Vec<Part>| stack_with_terms(parts, format, quant, &mut terms);
+            let mut stack =
+                |parts: Vec<Part>| stack_with_terms(parts, format, quantised.as_mut(), &mut terms);
             let qkv = if spec.fused_qkv {
                 stack(vec![part(names::QKV_PROJ, false)?])?
             } else {
@@ -686,19 +689,29 @@ type Part = (String, Tensor, Option<Tensor>);
 fn stack_with_terms(
     parts: Vec<Part>,
     format: WeightFormat,
-    quant: Option<BaseQuant>,
+    quantised: Option<&mut QuantisedBase>,
     terms: &mut HashMap<String, Vec<(usize, LowRank)>>,
 ) -> Result<Linear> {
     let mut places = Vec::with_capacity(parts.len());
     let mut at = 0;
     let mut tensors = Vec::with_capacity(parts.len());
+    let mut codes = quantised.map(|q| (q, Vec::new()));
     for (module, w, b) in parts {
+        if let Some((q, list)) = &mut codes {
+            let name = names::weight(&module);
+            let m = q
+                .matrices
+                .remove(&name)
+                .ok_or_else(|| Error::internal(format!("{name} was not quantised")))?;
+            list.push(m);
+        }
         let rows = w.dims2()?.0;
         places.push((module, at));
         at += rows;
         tensors.push((w, b));
     }
-    let mut linear = Linear::stack(tensors, format, quant)?;
+    let codes = codes.map(|(q, list)| (q.book, list));
+    let mut linear = Linear::stack(tensors, format, codes)?;
     for (module, at) in places {
         for (variant, lr) in terms.remove(&module).unwrap_or_default() {
             linear.attach(variant, at, lr)?;

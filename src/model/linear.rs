@@ -10,7 +10,7 @@ use crate::kernels::blocks::CodeMatrix;
 use crate::kernels::dense::{
     dot, matmul, matmul_half, matmul_panels, pack_panels_into, panel_len, Half,
 };
-use crate::kernels::nf4::{self, Codebook};
+use crate::kernels::nf4::{self, Codebook, Quantised};
 use crate::kernels::PARALLEL_WORK;
 use crate::model::lora::LowRank;
 use candle_core::{DType, Tensor, WithDType};
@@ -79,6 +79,18 @@ impl BaseQuant {
         }
     }
 
+    /// The quantisation in words, for reports.
+    pub fn describe(self) -> &'static str {
+        match self {
+            BaseQuant::Nf4 => {
+                "NF4 (4-bit, blocks of 64, scales double-quantised: the base QLoRA trains on)"
+            }
+            BaseQuant::Nf4Single => "NF4 (4-bit, blocks of 64, f32 scales)",
+            BaseQuant::Fp4 => "FP4 (4-bit, blocks of 64, scales double-quantised)",
+            BaseQuant::Fp4Single => "FP4 (4-bit, blocks of 64, f32 scales)",
+        }
+    }
+
     /// bitsandbytes' `bnb_4bit_quant_type`.
     pub fn quant_type(self) -> &'static str {
         match self.codebook() {
@@ -131,13 +143,14 @@ impl Linear {
     /// Stacks the rows of one or more checkpoint matrices (with their biases, if any),
     /// transposing (f32) or packing (bf16) each straight into place.
     ///
-    /// With `quant`, each checkpoint matrix is quantised to 4 bits on its
-    /// own (as bitsandbytes quantises each `nn.Linear` weight) and the layer keeps the codes.
-    /// The input size must be a multiple of the block size (64), which the loader checks first.
+    /// With `codes`, the checkpoint matrices come quantised to 4 bits (one [`Quantised`] per
+    /// part, each quantised on its own as bitsandbytes quantises each `nn.Linear` weight; the
+    /// parts' tensors then only give the shapes) and the layer keeps the codes. The input size
+    /// must be a multiple of the block size (64), which the loader checks first.
     pub fn stack(
         parts: Vec<(Tensor, Option<Tensor>)>,
         format: WeightFormat,
-        quant: Option<BaseQuant>,
+        codes: Option<(Codebook, Vec<Quantised>)>,
     ) -> Result<Linear> {
         let mut dims = Vec::with_capacity(parts.len());
         for (wt, _) in &parts {
@@ -159,13 +172,13 @@ impl Linear {
         };
         let len = panel_len(out, inp);
         let mut w = match (format, stored) {
-            _ if quant.is_some() => {
+            _ if codes.is_some() => {
                 if inp % nf4::BLOCK != 0 {
                     return Err(Error::internal(
                         "a 4-bit layer's input size must be a multiple of 64",
                     ));
                 }
-                let book = quant.map_or(Codebook::Nf4, BaseQuant::codebook);
+                let book = codes.as_ref().map_or(Codebook::Nf4, |c| c.0);
                 LinearWeights::Codes(CodeMatrix::new(out, inp, nf4::BLOCK, book.values()))
             }
             (WeightFormat::F32, DType::BF16) => {
@@ -175,6 +188,7 @@ impl Linear {
             (WeightFormat::F32, _) => LinearWeights::F32(vec![0.0; len]),
             (WeightFormat::Bf16, _) => LinearWeights::Bf16(Bf16Matrix::new(out, inp)),
         };
+        let mut quantised = codes.map(|c| c.1).unwrap_or_default().into_iter();
         let mut b = Vec::new();
         let mut at = 0;
         for ((wt, bt), (o, _)) in parts.into_iter().zip(dims) {
@@ -188,11 +202,13 @@ impl Linear {
                 }
                 LinearWeights::Bf16(m) => with_f32(&wt, |a| m.put_rows(a, o, at))?,
                 LinearWeights::Codes(m) => {
-                    let q = quant.ok_or_else(|| Error::internal("4-bit layer without a quant"))?;
-                    // Quantised from the exact f32 widening of the stored values, as
-                    // bitsandbytes' quantize_4bit does (`A.reshape(-1).float()`).
-                    let qd = with_f32(&wt, |a| nf4::quantise(a, q.codebook(), q.double_quant()))?;
-                    m.put_rows(&qd.codes, &qd.scales, o, at);
+                    let q = quantised
+                        .next()
+                        .ok_or_else(|| Error::internal("a 4-bit layer part without its codes"))?;
+                    if q.codes.len() * 2 != o * inp {
+                        return Err(Error::internal("4-bit codes of the wrong size"));
+                    }
+                    m.put_rows(&q.codes, &q.scales, o, at);
                 }
             }
             drop(wt);

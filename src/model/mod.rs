@@ -155,7 +155,10 @@ pub fn load_group_as(
         .iter()
         .map(|a| a.map(lora::Adapter::load).transpose())
         .collect::<Result<_>>()?;
-    let mut w = weights::load(dir, &spec)?;
+    let mut w = match quant {
+        Some(q) => weights::load_4bit(dir, &spec, q.codebook(), q.double_quant())?,
+        None => weights::load(dir, &spec)?,
+    };
     let mut terms = Vec::new();
     let mut applied = Vec::with_capacity(loaded.len());
     let single = loaded.len() == 1;
@@ -194,7 +197,7 @@ pub fn load_group_as(
             }
         }
     }
-    let decoder = Decoder::with_adapters(&spec, w.tensors, format, terms, quant)?;
+    let decoder = Decoder::with_adapters(&spec, w.tensors, format, terms, w.quantised)?;
     Ok(LoadedModel {
         decoder,
         spec,
@@ -217,7 +220,7 @@ fn check_quantisable(
 ) -> Result<()> {
     if format != WeightFormat::F32 {
         return Err(Error::usage(format!(
-            "a {} base computes in f32 (bnb_4bit_compute_dtype=float32); --weights {} is not available with it",
+            "a 4-bit base ({}) computes in f32 (bnb_4bit_compute_dtype=float32); --weights {} is not available with it",
             quant.name(),
             clap::ValueEnum::to_possible_value(&format).map_or_else(String::new, |v| v.get_name().to_string())
         )));
@@ -237,7 +240,7 @@ fn check_quantisable(
                 None,
                 field,
                 format!(
-                    "{size} is not a multiple of {block}: a {} base quantises each linear layer's rows in blocks of {block} inputs, which this model's sizes do not allow",
+                    "{size} is not a multiple of {block}: a 4-bit base ({}) quantises each linear layer's rows in blocks of {block} inputs, which this model's sizes do not allow",
                     quant.name()
                 ),
             ));
