@@ -896,8 +896,6 @@ bad_input!(adapter_nan_unmerged_is_refused_naming_the_tensor, |d| {
 
 // ---- shards given to `gather` ----
 
-/// Answers shard `k` of 3 of set.jsonl with the llama model under `d` into `shard-<k>.jsonl`
-/// (with `max_new` new tokens: a different count makes a shard of another run).
 bad_input!(base_quant_unknown_name_in_a_candidate_spec, |d| {
     adapter_case(d);
     vet_with(
@@ -962,6 +960,8 @@ bad_input!(base_quant_with_an_adapter_that_only_merges, |d| {
     setup
 });
 
+/// Answers shard `k` of 3 of set.jsonl with the llama model under `d` into `shard-<k>.jsonl`
+/// (with `max_new` new tokens: a different count makes a shard of another run).
 fn answer_shard(d: &Path, k: usize, max_new: &str) {
     let mut c = common::command([
         "answer",

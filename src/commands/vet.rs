@@ -203,7 +203,9 @@ fn describe(s: &answer::Settings) -> String {
 /// directory (adapters that can only be merged excepted) answer together; every other variant
 /// answers alone. Groups come in the order of their first variant.
 fn groups(variants: &[NamedVariant]) -> Result<Vec<Vec<usize>>> {
-    let mut out: Vec<(Option<(PathBuf, Option<BaseQuant>)>, Vec<usize>)> = Vec::new();
+    // Key: the model directory and how its base is held; None: a variant that answers alone.
+    type Key = Option<(PathBuf, Option<BaseQuant>)>;
+    let mut out: Vec<(Key, Vec<usize>)> = Vec::new();
     for (i, v) in variants.iter().enumerate() {
         let s = &v.settings;
         let shares = s.merge == Merge::Unmerged

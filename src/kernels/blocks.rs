@@ -30,7 +30,7 @@ impl CodeMatrix {
     /// An all-zero-code matrix of `out` × `inp`; `inp` must be a multiple of `block`, and
     /// `block` a multiple of [`PIECE_ROWS`].
     pub fn new(out: usize, inp: usize, block: usize, table: [f32; 16]) -> CodeMatrix {
-        assert!(block > 0 && inp % block == 0 && block % PIECE_ROWS == 0);
+        assert!(block > 0 && inp.is_multiple_of(block) && block.is_multiple_of(PIECE_ROWS));
         let panels = out.div_ceil(PANEL);
         CodeMatrix {
             out,

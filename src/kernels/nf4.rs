@@ -412,7 +412,7 @@ pub fn quantise(values: &[f32], book: Codebook, double: bool) -> Quantised {
             let s = (v * recip).clamp(-1.0, 1.0);
             // bucketize (right=False): the number of bounds strictly below s.
             let q = order[mids.partition_point(|&m| m < s)];
-            if n % 2 == 0 {
+            if n.is_multiple_of(2) {
                 codes.push(q);
             } else if let Some(last) = codes.last_mut() {
                 *last |= q << 4;
@@ -542,10 +542,10 @@ fn multi_row_sum<const W: usize>(
             i += 1;
         }
         for j in 1..LEVELS {
-            for k in 0..4 {
-                let lower = acc[j - 1][k];
-                add(&mut acc[j][k], &lower);
-                acc[j - 1][k] = [0.0; W];
+            let (below, above) = acc.split_at_mut(j);
+            for (lower, upper) in below[j - 1].iter_mut().zip(above[0].iter_mut()) {
+                add(upper, lower);
+                *lower = [0.0; W];
             }
             if i & (mask << (j * power)) != 0 {
                 break;
@@ -558,13 +558,13 @@ fn multi_row_sum<const W: usize>(
         }
         i += 1;
     }
-    for j in 1..LEVELS {
-        for k in 0..4 {
-            let upper = acc[j][k];
-            add(&mut acc[0][k], &upper);
+    let [mut total, rest @ ..] = acc;
+    for level in rest {
+        for (t, upper) in total.iter_mut().zip(&level) {
+            add(t, upper);
         }
     }
-    acc[0]
+    total
 }
 
 #[inline]

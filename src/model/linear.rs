@@ -173,7 +173,7 @@ impl Linear {
         let len = panel_len(out, inp);
         let mut w = match (format, stored) {
             _ if codes.is_some() => {
-                if inp % nf4::BLOCK != 0 {
+                if !inp.is_multiple_of(nf4::BLOCK) {
                     return Err(Error::internal(
                         "a 4-bit layer's input size must be a multiple of 64",
                     ));

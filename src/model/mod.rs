@@ -234,7 +234,7 @@ fn check_quantisable(
             spec.num_heads * spec.head_dim,
         ),
     ] {
-        if size % block != 0 {
+        if !size.is_multiple_of(block) {
             return Err(Error::field(
                 dir.join("config.json"),
                 None,
