@@ -7,10 +7,10 @@
 //! The arithmetic under the decoder (matrix products, the bf16 and 8-bit kernels) lives in
 //! `crate::kernels`, which knows nothing of models; the modules here import it, never the
 //! other way round. Within this module the imports run one way too: `names` and `rope` use
-//! `config`; `weights` uses `config` and `names`; `lora` uses `names`; `linear` uses the
-//! kernels and `lora`'s low-rank terms; `head` uses only the kernels; `decoder` uses all of
-//! `config`, `names`, `rope`, `cache`, `linear`, `lora` and `head`; nothing uses `decoder` but
-//! this file.
+//! `config`; `weights` uses `config`, `names` and the kernels' 4-bit quantiser; `lora` uses
+//! `names`; `linear` uses the kernels and `lora`'s low-rank terms; `head` uses only the
+//! kernels; `decoder` uses all of `config`, `names`, `rope`, `cache`, `linear`, `lora`, `head`
+//! and the 4-bit matrices `weights` hands over; nothing uses `decoder` but this file.
 
 pub mod cache;
 pub mod config;
