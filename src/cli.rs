@@ -3,7 +3,7 @@
 //! are the constants of the stage that owns them.
 
 use crate::answer::DEFAULT_BATCH;
-use crate::model::{Merge, WeightFormat};
+use crate::model::{BaseQuant, Merge, WeightFormat};
 use crate::weigh::{DEFAULT_CONFIDENCE, DEFAULT_RESAMPLES, DEFAULT_SEED};
 use clap::{Args, Parser, Subcommand};
 use std::path::PathBuf;
@@ -85,6 +85,13 @@ pub struct AnswerArgs {
     /// in that dtype and saves the merged checkpoint: every weight rounded to it).
     #[arg(long, value_enum, value_name = "DTYPE", requires = "adapter")]
     pub merge: Option<Merge>,
+    /// Hold the base model's linear layers quantised to 4 bits as bitsandbytes does for QLoRA
+    /// (blocks of 64, absmax scales), computing in f32: `nf4` (with double quantisation of the
+    /// scales, the base QLoRA trains against), `nf4-single`, `fp4`, `fp4-single` (scales kept
+    /// in f32). Embeddings, norms and the output head stay as stored. Default: the base as
+    /// stored.
+    #[arg(long, value_enum, value_name = "QUANT")]
+    pub base: Option<BaseQuant>,
     /// A short name for this variant, recorded in the run record.
     #[arg(long, value_name = "NAME")]
     pub name: Option<String>,
@@ -214,7 +221,8 @@ pub struct VetArgs {
     pub questions: Option<PathBuf>,
     /// A candidate, as comma-separated KEY=VALUE pairs: `name=` (letters, digits, `.`, `_`,
     /// `-`), `adapter=DIR`, `model=DIR` (default: the baseline's model), `merge=f32|bf16|f16`
-    /// (default: unmerged), `from=NAME` (the candidate this artifact was made from, for "how
+    /// (default: unmerged), `base=nf4|nf4-single|fp4|fp4-single` (the adapter on its base
+    /// quantised to 4 bits as QLoRA trains it, see `answer --base`), `from=NAME` (the candidate this artifact was made from, for "how
     /// much of the lift it keeps"). Repeat for several candidates, e.g.
     /// `--candidate name=epoch2,adapter=runs/e2 --candidate name=e2-bf16,adapter=runs/e2,merge=bf16`.
     #[arg(long, value_name = "SPEC")]

@@ -50,7 +50,7 @@ macro_rules! bad_input {
 
 /// The number of cases below; a case that disappears fails
 /// `catalogue_keeps_every_case`, so none is dropped by accident.
-const CASES: usize = 80;
+const CASES: usize = 85;
 
 fn runner(family: &str) -> PathBuf {
     common::fixture("runner").join(family)
@@ -895,6 +895,70 @@ bad_input!(adapter_nan_unmerged_is_refused_naming_the_tensor, |d| {
 });
 
 // ---- shards given to `gather` ----
+
+bad_input!(base_quant_unknown_name_in_a_candidate_spec, |d| {
+    adapter_case(d);
+    vet_with(
+        d,
+        &["--candidate", "name=q,adapter=adapter,base=nf5"],
+        &["--candidate name=q,adapter=adapter,base=nf5: base=nf5: expected nf4, nf4-single, fp4 or fp4-single"],
+    )
+});
+
+bad_input!(base_quant_with_bf16_weights, |d| {
+    adapter_case(d);
+    let mut setup = answer(
+        d,
+        true,
+        &["a 4-bit base (nf4) computes in f32", "--weights bf16"],
+    );
+    setup
+        .args
+        .extend([s("--base"), s("nf4"), s("--weights"), s("bf16")]);
+    setup
+});
+
+bad_input!(base_quant_with_a_merge, |d| {
+    adapter_case(d);
+    let mut setup = answer(d, true, &["a 4-bit base (fp4) takes the adapter unmerged"]);
+    setup
+        .args
+        .extend([s("--base"), s("fp4"), s("--merge"), s("f32")]);
+    setup
+});
+
+bad_input!(base_quant_on_sizes_not_a_multiple_of_the_block, |d| {
+    let m = model_case(d);
+    edit_json(&m.join("config.json"), |c| {
+        c["intermediate_size"] = json!(96)
+    });
+    let mut setup = answer(
+        d,
+        false,
+        &[
+            "config.json",
+            "intermediate_size",
+            "96 is not a multiple of 64",
+        ],
+    );
+    setup.args.extend([s("--base"), s("nf4")]);
+    setup
+});
+
+bad_input!(base_quant_with_an_adapter_that_only_merges, |d| {
+    model_case(d);
+    copy_dir(&runner("llama").join("adapters/head"), &d.join("adapter"));
+    let mut setup = answer(
+        d,
+        true,
+        &[
+            "adapter_config.json",
+            "a 4-bit base takes adapters unmerged only",
+        ],
+    );
+    setup.args.extend([s("--base"), s("nf4-single")]);
+    setup
+});
 
 /// Answers shard `k` of 3 of set.jsonl with the llama model under `d` into `shard-<k>.jsonl`
 /// (with `max_new` new tokens: a different count makes a shard of another run).

@@ -318,3 +318,114 @@ fn a_candidate_with_another_chat_template_is_warned_about() {
         .to_string()
         .contains("another chat template"));
 }
+
+/// Adapters on the base quantised to 4 bits as QLoRA trains against it (`base=nf4`): two
+/// candidates share one NF4 copy of the base in the lineup (a third has an FP4 base of its
+/// own), each answers as `answer --base nf4`
+/// alone, the run records say how the base was quantised (transformers' BitsAndBytesConfig
+/// settings) and the lineup names the quantisation. Their tokens are checked against
+/// bitsandbytes + peft in tests/nf4_reference.rs.
+#[test]
+fn adapters_on_a_4_bit_base_take_part_in_the_lineup() {
+    let tmp = with_set();
+    tmp.write(
+        "policy.toml",
+        "min_questions = 1\n[lift]\nmin_ci_low = -1.0\n[refusal]\nmin_out_of_scope = 0.0\nmax_false_refusal = 1.0\n",
+    );
+    let f = fixture();
+    let (qv, all) = (f.join("adapters/qv"), f.join("adapters/all"));
+    let c1 = format!(
+        "name=qv-nf4,base=nf4,adapter={},from=candidate",
+        qv.display()
+    );
+    let c2 = format!("base=nf4,adapter={}", all.display());
+    let c3 = format!("base=fp4-single,adapter={}", all.display());
+    let run = vet(
+        &tmp,
+        "qv",
+        &[
+            "--policy",
+            "policy.toml",
+            "--report",
+            "rep",
+            "--no-history",
+            "--candidate",
+            &c1,
+            "--candidate",
+            &c2,
+            "--candidate",
+            &c3,
+        ],
+    );
+    run.expect_verdict();
+    for name in ["candidate", "qv-nf4", "all-nf4", "all-fp4-single"] {
+        assert!(
+            run.stdout.contains(&format!("verdict {name}: ")),
+            "{}",
+            run.stdout
+        );
+    }
+    let record: Value =
+        serde_json::from_str(&tmp.read("rep/qv-nf4.answers.jsonl.run.json")).unwrap();
+    let q = &record["base_quant"];
+    assert_eq!(q["name"], "nf4");
+    assert_eq!(q["quant_type"], "nf4");
+    assert_eq!(q["block_size"], 64);
+    assert_eq!(q["double_quant"], true);
+    assert_eq!(q["double_quant_block_size"], 256);
+    assert_eq!(q["compute_dtype"], "float32");
+    assert_eq!(
+        record["adapter"]["applied"],
+        "unmerged (the adapter as trained)"
+    );
+    let record: Value =
+        serde_json::from_str(&tmp.read("rep/all-fp4-single.answers.jsonl.run.json")).unwrap();
+    assert_eq!(record["base_quant"]["double_quant"], false);
+    assert!(record["base_quant"]
+        .get("double_quant_block_size")
+        .is_none());
+    let record: Value =
+        serde_json::from_str(&tmp.read("rep/candidate.answers.jsonl.run.json")).unwrap();
+    assert!(record.get("base_quant").is_none());
+    let md = tmp.read("rep/report.md");
+    assert!(
+        md.contains("NF4 (4-bit, blocks of 64, scales double-quantised"),
+        "{md}"
+    );
+
+    let answers = |p: &str| -> Vec<String> {
+        tmp.read(p)
+            .lines()
+            .map(|l| serde_json::from_str::<Value>(l).unwrap()["answer"].to_string())
+            .collect()
+    };
+    for (name, adapter, base) in [
+        ("qv-nf4", &qv, "nf4"),
+        ("all-nf4", &all, "nf4"),
+        ("all-fp4-single", &all, "fp4-single"),
+    ] {
+        let model = f.join("model");
+        let out = format!("alone-{name}.jsonl");
+        tmp.run([
+            "answer",
+            "--model",
+            model.to_str().unwrap(),
+            "--adapter",
+            adapter.to_str().unwrap(),
+            "--base",
+            base,
+            "--questions",
+            "set.jsonl",
+            "--out",
+            &out,
+            "--max-new-tokens",
+            "6",
+        ])
+        .expect_success();
+        assert_eq!(
+            answers(&out),
+            answers(&format!("rep/{name}.answers.jsonl")),
+            "{name}: in the lineup vs alone"
+        );
+    }
+}

@@ -22,7 +22,7 @@ pub use run::{answer_group, answer_to, AnswerRun, Member};
 pub use shard::{ShardSpec, Split};
 
 use crate::error::{Error, Result};
-use crate::model::{Merge, WeightFormat};
+use crate::model::{BaseQuant, Merge, WeightFormat};
 use std::path::{Path, PathBuf};
 
 /// New tokens per answer unless `--max-new-tokens` says otherwise.
@@ -73,6 +73,9 @@ pub struct Settings {
     pub adapter: Option<PathBuf>,
     /// How the adapter is applied (unmerged unless a merge is asked for).
     pub merge: Merge,
+    /// The base's linear layers quantised to 4 bits (the base as QLoRA trains against it);
+    /// None: the base as stored.
+    pub base: Option<BaseQuant>,
     pub generation: Generation,
     /// Discard saved answers of an earlier run instead of continuing it.
     pub restart: bool,
@@ -112,11 +115,35 @@ impl Settings {
         Ok(Settings {
             name: None,
             merge,
+            base: None,
             model: model.to_path_buf(),
             adapter: adapter.map(Path::to_path_buf),
             generation: generation.checked()?,
             restart,
             shard: None,
         })
+    }
+
+    /// The same variant on its base quantised to 4 bits as `base` says (`--base`, `base=`):
+    /// the adapter then stays unmerged and the products compute in f32, as bitsandbytes' 4-bit
+    /// layers do with `bnb_4bit_compute_dtype=float32`; anything else is a usage error.
+    pub fn on_base(mut self, base: Option<BaseQuant>) -> Result<Self> {
+        let Some(q) = base else {
+            return Ok(self);
+        };
+        if self.merge != Merge::Unmerged {
+            return Err(Error::usage(format!(
+                "a 4-bit base ({}) takes the adapter unmerged, as QLoRA trains it; a merge is another artifact (merge into the base as stored, without the 4-bit base)",
+                q.name()
+            )));
+        }
+        if self.generation.weights != WeightFormat::F32 {
+            return Err(Error::usage(format!(
+                "a 4-bit base ({}) computes in f32 (bnb_4bit_compute_dtype=float32, the default); bf16 computation on it is not supported: drop --weights bf16",
+                q.name()
+            )));
+        }
+        self.base = Some(q);
+        Ok(self)
     }
 }

@@ -10,8 +10,8 @@ use crate::formats::answers::{self, AnswerRecord};
 use crate::formats::journal::{self, Contents, Journal, RunIdentity};
 use crate::formats::questions::QuestionSet;
 use crate::formats::run_record::{
-    self, AdapterInfo, FileDigest, GenerationInfo, ModelInfo, QuestionsInfo, RunInfo, ShardInfo,
-    TemplateInfo,
+    self, AdapterInfo, BaseQuantInfo, FileDigest, GenerationInfo, ModelInfo, QuestionsInfo,
+    RunInfo, ShardInfo, TemplateInfo,
 };
 use crate::fsutil;
 use crate::interrupt::StopFlag;
@@ -72,10 +72,11 @@ fn prepare(
         m.settings.model != first.model
             || m.settings.generation != first.generation
             || m.settings.shard != first.shard
+            || m.settings.base != first.base
             || (members.len() > 1 && m.settings.merge != Merge::Unmerged)
     }) {
         return Err(Error::internal(
-            "the variants of one answering group must share model, generation, shard and be unmerged",
+            "the variants of one answering group must share model, base, generation, shard and be unmerged",
         ));
     }
     let g = &first.generation;
@@ -87,7 +88,7 @@ fn prepare(
     // the run with nothing computed.
     let prompts = prompts::build(&chat, g.system.as_deref(), part)?;
     let loaded = match members {
-        [one] => model::load_as(
+        [one] if first.base.is_none() => model::load_as(
             &first.model,
             one.settings.adapter.as_deref(),
             one.settings.merge,
@@ -98,7 +99,7 @@ fn prepare(
                 .iter()
                 .map(|m| m.settings.adapter.as_deref())
                 .collect();
-            model::load_group(&first.model, &adapters, g.weights)?
+            model::load_group_as(&first.model, &adapters, g.weights, first.base)?
         }
     };
     let spec = &loaded.spec;
@@ -185,6 +186,7 @@ fn prepare(
                 count: set.len(),
             },
             compute_dtype: g.weights.compute_dtype().to_string(),
+            base_quant: loaded.quant.map(base_quant_info),
             shard: shard.cloned(),
         });
     }
@@ -542,6 +544,22 @@ fn model_info(dir: &Path, loaded: &model::LoadedModel) -> Result<ModelInfo> {
         architecture: loaded.spec.family.architecture().to_string(),
         stored_dtype: loaded.stored_dtype.clone(),
     })
+}
+
+/// The run record's account of a 4-bit base.
+fn base_quant_info(q: model::BaseQuant) -> BaseQuantInfo {
+    let double = q.double_quant();
+    BaseQuantInfo {
+        name: q.name().to_string(),
+        method: "bitsandbytes 4-bit (QLoRA): blocks with an absmax scale, codes dequantised to f32 inside the products".to_string(),
+        quant_type: q.quant_type().to_string(),
+        block_size: crate::kernels::nf4::BLOCK,
+        double_quant: double,
+        double_quant_block_size: double.then_some(crate::kernels::nf4::BLOCK2),
+        compute_dtype: "float32".to_string(),
+        quantised: "the attention and MLP projections of every layer".to_string(),
+        kept_as_stored: "embeddings, norms, output head, adapter weights".to_string(),
+    }
 }
 
 /// `<out>` (JSONL) and `<out>.run.json`: both staged completely before either is renamed into

@@ -18,7 +18,8 @@ pub fn run(args: &AnswerArgs) -> Result<Outcome> {
         args.merge.unwrap_or_default(),
         args::default_generation(&args.generation)?,
         args.restart,
-    )?;
+    )?
+    .on_base(args.base)?;
     if let Some(name) = &args.name {
         args::check_name("--name", name)?;
         settings.name = Some(name.clone());

@@ -5,7 +5,7 @@
 use crate::answer::{self, Decoding, Generation};
 use crate::cli::{GenerationArgs, StatsArgs};
 use crate::error::{Error, Result};
-use crate::model::Merge;
+use crate::model::{BaseQuant, Merge};
 use crate::policy::Policy;
 use crate::weigh;
 use std::path::{Path, PathBuf};
@@ -84,9 +84,9 @@ pub fn check_name(flag: &str, name: &str) -> Result<()> {
     }
 }
 
-/// Parses one `--candidate` SPEC (`name=…,adapter=…,model=…,merge=…,from=…`) into settings;
+/// Parses one `--candidate` SPEC (`name=…,adapter=…,model=…,merge=…,base=…,from=…`) into settings;
 /// `model` defaults to `default_model`. Without `name=` the name is the adapter's (else the
-/// model's) directory name, with the merge dtype appended.
+/// model's) directory name, with the merge dtype (or the 4-bit base) appended.
 pub fn candidate(
     spec: &str,
     default_model: &Path,
@@ -94,11 +94,12 @@ pub fn candidate(
     restart: bool,
 ) -> Result<NamedVariant> {
     let flag = format!("--candidate {spec}");
-    let (mut name, mut model, mut adapter, mut merge, mut from) = (None, None, None, None, None);
+    let (mut name, mut model, mut adapter, mut merge, mut base, mut from) =
+        (None, None, None, None, None, None);
     for pair in spec.split(',').filter(|p| !p.trim().is_empty()) {
         let Some((key, value)) = pair.split_once('=') else {
             return Err(Error::usage(format!(
-                "{flag}: `{pair}` is not KEY=VALUE (keys: name, adapter, model, merge, from)"
+                "{flag}: `{pair}` is not KEY=VALUE (keys: name, adapter, model, merge, base, from)"
             )));
         };
         let value = value.trim();
@@ -107,10 +108,11 @@ pub fn candidate(
             "adapter" => &mut adapter,
             "model" => &mut model,
             "merge" => &mut merge,
+            "base" => &mut base,
             "from" => &mut from,
             other => {
                 return Err(Error::usage(format!(
-                    "{flag}: unknown key `{other}` (keys: name, adapter, model, merge, from)"
+                    "{flag}: unknown key `{other}` (keys: name, adapter, model, merge, base, from)"
                 )))
             }
         };
@@ -126,6 +128,16 @@ pub fn candidate(
         Some(v) => <Merge as clap::ValueEnum>::from_str(v, true)
             .map_err(|_| Error::usage(format!("{flag}: merge={v}: expected f32, bf16 or f16")))?,
     };
+    let base = match base.as_deref() {
+        None => None,
+        Some(v) => Some(
+            <BaseQuant as clap::ValueEnum>::from_str(v, false).map_err(|_| {
+                Error::usage(format!(
+                    "{flag}: base={v}: expected nf4, nf4-single, fp4 or fp4-single"
+                ))
+            })?,
+        ),
+    };
     if adapter.is_none() && model.is_none() {
         return Err(Error::usage(format!(
             "{flag}: give adapter=DIR (the baseline's model plus that adapter) or model=DIR (a merged checkpoint), or both"
@@ -139,11 +151,11 @@ pub fn candidate(
         Some(n) => n,
         None => {
             let dir = adapter_path.as_deref().unwrap_or(&model_path);
-            let base = dir
+            let stem = dir
                 .file_name()
                 .map(|n| n.to_string_lossy().to_string())
                 .unwrap_or_else(|| "candidate".to_string());
-            let base: String = base
+            let stem: String = stem
                 .chars()
                 .map(|c| {
                     if c.is_ascii_alphanumeric() || matches!(c, '.' | '_' | '-') {
@@ -153,11 +165,12 @@ pub fn candidate(
                     }
                 })
                 .collect();
-            match merge {
-                Merge::Unmerged => base,
-                Merge::F32 => format!("{base}-merged-f32"),
-                Merge::Bf16 => format!("{base}-merged-bf16"),
-                Merge::F16 => format!("{base}-merged-f16"),
+            match (merge, base) {
+                (Merge::Unmerged, Some(q)) => format!("{stem}-{}", q.name()),
+                (Merge::Unmerged, None) => stem,
+                (Merge::F32, _) => format!("{stem}-merged-f32"),
+                (Merge::Bf16, _) => format!("{stem}-merged-bf16"),
+                (Merge::F16, _) => format!("{stem}-merged-f16"),
             }
         }
     };
@@ -172,6 +185,7 @@ pub fn candidate(
         generation.clone(),
         restart,
     )
+    .and_then(|s| s.on_base(base))
     .map_err(|e| match e {
         Error::Usage(m) => Error::usage(format!("{flag}: {m}")),
         other => other,

@@ -26,7 +26,7 @@ use crate::grade;
 use crate::history::{self, RecordOptions};
 use crate::interrupt::StopFlag;
 use crate::model::lora::Adapter;
-use crate::model::Merge;
+use crate::model::{BaseQuant, Merge};
 use crate::policy::Policy;
 use crate::report::summary::Leakage;
 use crate::report::{self, dir};
@@ -189,14 +189,13 @@ fn name_of(v: &NamedVariant) -> &str {
 
 /// The variant in words, for the report.
 fn describe(s: &answer::Settings) -> String {
+    let base = match s.base {
+        None => s.model.display().to_string(),
+        Some(q) => format!("{} in {}", s.model.display(), q.describe()),
+    };
     match (&s.adapter, s.merge) {
-        (None, _) => format!("model {}", s.model.display()),
-        (Some(a), m) => format!(
-            "{} + adapter {}, {}",
-            s.model.display(),
-            a.display(),
-            m.describe()
-        ),
+        (None, _) => format!("model {base}"),
+        (Some(a), m) => format!("{base} + adapter {}, {}", a.display(), m.describe()),
     }
 }
 
@@ -204,7 +203,9 @@ fn describe(s: &answer::Settings) -> String {
 /// directory (adapters that can only be merged excepted) answer together; every other variant
 /// answers alone. Groups come in the order of their first variant.
 fn groups(variants: &[NamedVariant]) -> Result<Vec<Vec<usize>>> {
-    let mut out: Vec<(Option<PathBuf>, Vec<usize>)> = Vec::new();
+    // Key: the model directory and how its base is held; None: a variant that answers alone.
+    type Key = Option<(PathBuf, Option<BaseQuant>)>;
+    let mut out: Vec<(Key, Vec<usize>)> = Vec::new();
     for (i, v) in variants.iter().enumerate() {
         let s = &v.settings;
         let shares = s.merge == Merge::Unmerged
@@ -212,7 +213,12 @@ fn groups(variants: &[NamedVariant]) -> Result<Vec<Vec<usize>>> {
                 None => true,
                 Some(a) => Adapter::load(a)?.needs_merge().is_none(),
             };
-        let key = shares.then(|| s.model.canonicalize().unwrap_or_else(|_| s.model.clone()));
+        let key = shares.then(|| {
+            (
+                s.model.canonicalize().unwrap_or_else(|_| s.model.clone()),
+                s.base,
+            )
+        });
         match out.iter_mut().find(|(k, _)| key.is_some() && *k == key) {
             Some((_, members)) => members.push(i),
             None => out.push((key, vec![i])),

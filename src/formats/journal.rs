@@ -52,6 +52,9 @@ pub struct RunIdentity {
     pub repetition_penalty: Option<f64>,
     pub questions_fingerprint: String,
     pub compute_dtype: String,
+    /// The 4-bit quantisation of the base (`nf4`, ...), when there is one.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub base_quant: Option<String>,
     /// The part of the set a sharded run answers: a shard's saved answers continue only that
     /// shard.
     #[serde(default, skip_serializing_if = "Option::is_none")]
@@ -76,6 +79,7 @@ impl RunIdentity {
             repetition_penalty: info.generation.repetition_penalty,
             questions_fingerprint: info.questions.fingerprint.clone(),
             compute_dtype: info.compute_dtype.clone(),
+            base_quant: info.base_quant.as_ref().map(|q| q.name.clone()),
             shard: info.shard.clone(),
         }
     }
@@ -396,6 +400,7 @@ mod tests {
             repetition_penalty: None,
             questions_fingerprint: "q".repeat(64),
             compute_dtype: "f32".into(),
+            base_quant: None,
             shard: None,
         }
     }

@@ -128,10 +128,36 @@ pub struct RunInfo {
     pub questions: QuestionsInfo,
     /// The dtype every tensor was computed in.
     pub compute_dtype: String,
+    /// Present when the base's linear layers were quantised to 4 bits (`--base`, `base=`).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub base_quant: Option<BaseQuantInfo>,
     /// Present when this file holds one shard of the set (`answer --shard`); a whole run and a
     /// gathered run have none.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub shard: Option<ShardInfo>,
+}
+
+/// The 4-bit quantisation of the base (docs/interface.md, "Answers file"): the settings of
+/// transformers' `BitsAndBytesConfig` it reproduces.
+#[derive(Debug, Clone, PartialEq, Eq, Serialize, Deserialize)]
+pub struct BaseQuantInfo {
+    /// `nf4`, `nf4-single`, `fp4` or `fp4-single`.
+    pub name: String,
+    pub method: String,
+    /// `bnb_4bit_quant_type`: `nf4` or `fp4`.
+    pub quant_type: String,
+    /// Weights per block with one absmax scale (bitsandbytes' `blocksize`).
+    pub block_size: usize,
+    /// `bnb_4bit_use_double_quant`: the scales quantised again to 8 bits.
+    pub double_quant: bool,
+    /// Scales per block of that second quantisation.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub double_quant_block_size: Option<usize>,
+    /// `bnb_4bit_compute_dtype`.
+    pub compute_dtype: String,
+    /// Which layers were quantised, and which kept as stored.
+    pub quantised: String,
+    pub kept_as_stored: String,
 }
 
 /// Which part of the question set a sharded run answered (docs/interface.md, "Sharding").

@@ -75,7 +75,8 @@ unsafe impl Sync for Columns {}
 /// vector lanes. Each output is computed by one task in a fixed order, so the result does not
 /// depend on the thread count.
 pub fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
-    products(x, n, inp, w, out, y);
+    assert!(w.len() >= panel_len(out, inp));
+    products(x, n, inp, &Stored { w, inp }, out, y);
 }
 
 /// How a product reads a panel of weights: f32 as stored, 16-bit widened.
@@ -104,13 +105,52 @@ impl<H: Half> PanelRead for H {
         piece
     }
     fn as_f32(panel: &[H], f: impl FnOnce(&[f32])) {
-        WIDE.with(|buf| {
-            let mut buf = buf.borrow_mut();
-            buf.resize(panel.len(), 0.0);
-            H::widen(panel, &mut buf);
-            f(&buf);
+        with_panel_buffer(panel.len(), |buf| {
+            H::widen(panel, buf);
+            f(buf);
         });
     }
+}
+
+/// The weights of a linear layer in the panel layout, however they are held: the seam between
+/// the products and the weight formats. A product asks for the f32 values of a piece of a
+/// panel (rows k0..k1, [k1 - k0, 64]) or of a whole panel; a format answers by lending them
+/// (f32 as stored) or by writing them into the buffer it is given (16-bit widened, block
+/// quantised codes times their scales), so the product never sees the stored form and every
+/// format gets the same sums on the same f32 values.
+pub trait Panels: Sync {
+    /// Rows `k0..k1` of panel `p` as f32, [k1 - k0, 64]; `buf` holds at least that many.
+    /// `k0` is a multiple of [`PIECE_ROWS`].
+    fn piece<'a>(&'a self, p: usize, k0: usize, k1: usize, buf: &'a mut [f32]) -> &'a [f32];
+    /// Calls `f` on panel `p` as f32 values, [inp, 64].
+    fn whole(&self, p: usize, f: &mut dyn FnMut(&[f32]));
+}
+
+/// A panel-layout slice of f32 or 16-bit values with its input size.
+struct Stored<'a, T> {
+    w: &'a [T],
+    inp: usize,
+}
+
+impl<T: PanelRead> Panels for Stored<'_, T> {
+    #[inline(always)]
+    fn piece<'a>(&'a self, p: usize, k0: usize, k1: usize, buf: &'a mut [f32]) -> &'a [f32] {
+        let base = p * self.inp * PANEL;
+        T::piece(&self.w[base + k0 * PANEL..base + k1 * PANEL], buf)
+    }
+    fn whole(&self, p: usize, f: &mut dyn FnMut(&[f32])) {
+        T::as_f32(&self.w[p * self.inp * PANEL..(p + 1) * self.inp * PANEL], f);
+    }
+}
+
+/// Calls `f` on this thread's panel buffer of `len` values (for formats that must write a
+/// whole panel out as f32 before `gemm` reads it).
+pub fn with_panel_buffer(len: usize, f: impl FnOnce(&mut [f32])) {
+    WIDE.with(|buf| {
+        let mut buf = buf.borrow_mut();
+        buf.resize(len, 0.0);
+        f(&mut buf);
+    });
 }
 
 /// Rows up to which a product reads each panel once for all rows with the one-row loop
@@ -119,8 +159,8 @@ impl<H: Half> PanelRead for H {
 pub const FEW_ROWS: usize = 4;
 
 /// y[n, out] = x[n, inp] · W over the panels of `w`, one task per panel (see [`matmul`]).
-fn products<T: PanelRead>(x: &[f32], n: usize, inp: usize, w: &[T], out: usize, y: &mut [f32]) {
-    assert!(x.len() >= n * inp && w.len() >= panel_len(out, inp) && y.len() >= n * out);
+fn products<W: Panels>(x: &[f32], n: usize, inp: usize, w: &W, out: usize, y: &mut [f32]) {
+    assert!(x.len() >= n * inp && y.len() >= n * out);
     if n == 0 || out == 0 {
         return;
     }
@@ -128,10 +168,9 @@ fn products<T: PanelRead>(x: &[f32], n: usize, inp: usize, w: &[T], out: usize, 
     let one = |p: usize| {
         let j0 = p * PANEL;
         let width = PANEL.min(out - j0);
-        let panel = &w[p * inp * PANEL..(p + 1) * inp * PANEL];
         if n <= FEW_ROWS {
             let mut acc = [[0f32; PANEL]; FEW_ROWS];
-            panel_rows(&mut acc[..n], &x[..n * inp], inp, panel);
+            panel_rows(&mut acc[..n], &x[..n * inp], inp, w, p);
             for (t, a) in acc[..n].iter().enumerate() {
                 // SAFETY: columns j0..j0 + width of each output row belong to this task.
                 unsafe {
@@ -140,10 +179,11 @@ fn products<T: PanelRead>(x: &[f32], n: usize, inp: usize, w: &[T], out: usize, 
             }
             return;
         }
-        // SAFETY: the panel holds inp·64 values, x at least n·inp (asserted above), and
-        // columns j0..j0 + width of y belong to this task.
-        T::as_f32(panel, |panel| unsafe {
-            panel_gemm(width, n, inp, yc.get().add(j0), out, panel, x)
+        w.whole(p, &mut |panel| {
+            assert!(panel.len() >= inp * PANEL);
+            // SAFETY: the panel holds inp·64 values (asserted), x at least n·inp (asserted
+            // above), and columns j0..j0 + width of y belong to this task.
+            unsafe { panel_gemm(width, n, inp, yc.get().add(j0), out, panel, x) }
         });
     };
     let panels = out.div_ceil(PANEL);
@@ -226,6 +266,13 @@ thread_local! {
 /// whole panel once per call (into a per-thread buffer) and run the same `gemm` as the f32
 /// product.
 pub fn matmul_half<H: Half>(x: &[f32], n: usize, inp: usize, w: &[H], out: usize, y: &mut [f32]) {
+    assert!(w.len() >= panel_len(out, inp));
+    products(x, n, inp, &Stored { w, inp }, out, y);
+}
+
+/// As [`matmul`], with W held in any format that reads out as f32 panels ([`Panels`]): bit for
+/// bit [`matmul`] on the f32 values the format gives.
+pub fn matmul_panels<W: Panels>(x: &[f32], n: usize, inp: usize, w: &W, out: usize, y: &mut [f32]) {
     products(x, n, inp, w, out, y);
 }
 
@@ -239,46 +286,48 @@ pub const PIECE_ROWS: usize = 32;
 /// 16-bit), each piece added into every row's sums while it is in the first-level cache. Each
 /// row's sums are in the same order as alone, so a row's result does not depend on the others.
 /// With AVX-512 (found at run time) the loop is compiled for 16-wide vectors.
-fn panel_rows<T: PanelRead>(acc: &mut [[f32; PANEL]], x: &[f32], inp: usize, panel: &[T]) {
+fn panel_rows<W: Panels>(acc: &mut [[f32; PANEL]], x: &[f32], inp: usize, w: &W, p: usize) {
     #[cfg(target_arch = "x86_64")]
     if features().avx512f {
         // SAFETY: the CPU has AVX-512F (checked just above).
-        unsafe { panel_rows_avx512(acc, x, inp, panel) };
+        unsafe { panel_rows_avx512(acc, x, inp, w, p) };
         return;
     }
-    panel_rows_any(acc, x, inp, panel);
+    panel_rows_any(acc, x, inp, w, p);
 }
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
-unsafe fn panel_rows_avx512<T: PanelRead>(
+unsafe fn panel_rows_avx512<W: Panels>(
     acc: &mut [[f32; PANEL]],
     x: &[f32],
     inp: usize,
-    panel: &[T],
+    w: &W,
+    p: usize,
 ) {
-    panel_rows_any(acc, x, inp, panel);
+    panel_rows_any(acc, x, inp, w, p);
 }
 
 /// One copy of the loop per row count, so one row keeps its 64 sums in registers.
 #[inline(always)]
-fn panel_rows_any<T: PanelRead>(acc: &mut [[f32; PANEL]], x: &[f32], inp: usize, panel: &[T]) {
+fn panel_rows_any<W: Panels>(acc: &mut [[f32; PANEL]], x: &[f32], inp: usize, w: &W, p: usize) {
     match acc.len() {
-        1 => panel_rows_body::<T, 1>(acc, x, inp, panel),
-        2 => panel_rows_body::<T, 2>(acc, x, inp, panel),
-        3 => panel_rows_body::<T, 3>(acc, x, inp, panel),
-        _ => panel_rows_body::<T, FEW_ROWS>(acc, x, inp, panel),
+        1 => panel_rows_body::<W, 1>(acc, x, inp, w, p),
+        2 => panel_rows_body::<W, 2>(acc, x, inp, w, p),
+        3 => panel_rows_body::<W, 3>(acc, x, inp, w, p),
+        _ => panel_rows_body::<W, FEW_ROWS>(acc, x, inp, w, p),
     }
 }
 
 /// Two sets of sums per row, for even and odd k, so consecutive multiply-adds do not wait on
 /// each other; added at the end.
 #[inline(always)]
-fn panel_rows_body<T: PanelRead, const N: usize>(
+fn panel_rows_body<W: Panels, const N: usize>(
     acc: &mut [[f32; PANEL]],
     x: &[f32],
     inp: usize,
-    panel: &[T],
+    w: &W,
+    p: usize,
 ) {
     let mut even = [[0f32; PANEL]; N];
     let mut odd = [[0f32; PANEL]; N];
@@ -286,7 +335,7 @@ fn panel_rows_body<T: PanelRead, const N: usize>(
     let mut k0 = 0;
     while k0 < inp {
         let k1 = (k0 + PIECE_ROWS).min(inp);
-        let piece = T::piece(&panel[k0 * PANEL..k1 * PANEL], &mut buf);
+        let piece = w.piece(p, k0, k1, &mut buf);
         for t in 0..N {
             accumulate(
                 &mut even[t],

@@ -8,14 +8,19 @@
 //!
 //! - [`dense`]: f32 weights in 64-column panels, the product over panels, and `dot`.
 //! - [`bf16`]: the optional bf16 weight format and its products.
+//! - [`blocks`]: block-quantised weights (4-bit codes with a scale per block) in the panel
+//!   layout, read by `dense`'s products through its `Panels` seam; [`nf4`]: bitsandbytes'
+//!   NF4/FP4 quantiser and the double quantisation of the scales, bit for bit.
 //! - [`int8`]: 8-bit rows and activations and their exact integer products (the head screen).
 //! - `simd`: the AVX-512 scaffolding written once: CPU features (detected once, used by all
 //!   three), and for bf16 and int8 the token groups, the tasks over block pairs and the
 //!   dispatch to kernels compiled per group size.
 
 pub mod bf16;
+pub mod blocks;
 pub mod dense;
 pub mod int8;
+pub mod nf4;
 mod simd;
 
 /// Multiply-adds below which a kernel stays on the calling thread: handing work to the rayon

@@ -29,6 +29,7 @@ use crate::model::linear::{flat, Linear, WeightFormat};
 use crate::model::lora::LowRank;
 use crate::model::names::{self, EMBED, FINAL_NORM, LM_HEAD};
 use crate::model::rope::{rope_frequencies, rope_in_place};
+use crate::model::weights::QuantisedBase;
 use candle_core::Tensor;
 use rayon::prelude::*;
 use std::collections::HashMap;
@@ -186,7 +187,7 @@ impl Decoder {
         w: HashMap<String, Tensor>,
         format: WeightFormat,
     ) -> Result<Self> {
-        Decoder::with_adapters(spec, w, format, Vec::new())
+        Decoder::with_adapters(spec, w, format, Vec::new(), None)
     }
 
     /// As [`Decoder::with_format`], with unmerged adapters laid beside the one copy of the base:
@@ -194,11 +195,18 @@ impl Decoder {
     /// gets the terms added to the outputs of the layers they adapt; a segment of any other
     /// number runs the base alone. Several variants thus share every base weight, and their
     /// rows go through the same products in one call.
+    ///
+    /// With `quantised`, the linear layers of the blocks (attention and MLP projections) come
+    /// quantised to 4 bits as bitsandbytes does (their entries in `w` give only the shapes);
+    /// embeddings, norms and the output head stay as they are, as transformers leaves them
+    /// (`get_keys_to_not_convert` keeps the output head, and only `nn.Linear` modules are
+    /// replaced).
     pub fn with_adapters(
         spec: &ModelSpec,
         mut w: HashMap<String, Tensor>,
         format: WeightFormat,
         adapters: Vec<(usize, Vec<LowRank>)>,
+        mut quantised: Option<QuantisedBase>,
     ) -> Result<Self> {
         let mut terms: HashMap<String, Vec<(usize, LowRank)>> = HashMap::new();
         for (variant, list) in adapters {
@@ -235,7 +243,8 @@ impl Decoder {
                 };
                 Ok((tensor.module(module), w, b))
             };
-            let mut stack = |parts: Vec<Part>| stack_with_terms(parts, format, &mut terms);
+            let mut stack =
+                |parts: Vec<Part>| stack_with_terms(parts, format, quantised.as_mut(), &mut terms);
             let qkv = if spec.fused_qkv {
                 stack(vec![part(names::QKV_PROJ, false)?])?
             } else {
@@ -680,18 +689,29 @@ type Part = (String, Tensor, Option<Tensor>);
 fn stack_with_terms(
     parts: Vec<Part>,
     format: WeightFormat,
+    quantised: Option<&mut QuantisedBase>,
     terms: &mut HashMap<String, Vec<(usize, LowRank)>>,
 ) -> Result<Linear> {
     let mut places = Vec::with_capacity(parts.len());
     let mut at = 0;
     let mut tensors = Vec::with_capacity(parts.len());
+    let mut codes = quantised.map(|q| (q, Vec::new()));
     for (module, w, b) in parts {
+        if let Some((q, list)) = &mut codes {
+            let name = names::weight(&module);
+            let m = q
+                .matrices
+                .remove(&name)
+                .ok_or_else(|| Error::internal(format!("{name} was not quantised")))?;
+            list.push(m);
+        }
         let rows = w.dims2()?.0;
         places.push((module, at));
         at += rows;
         tensors.push((w, b));
     }
-    let mut linear = Linear::stack(tensors, format)?;
+    let codes = codes.map(|(q, list)| (q.book, list));
+    let mut linear = Linear::stack(tensors, format, codes)?;
     for (module, at) in places {
         for (variant, lr) in terms.remove(&module).unwrap_or_default() {
             linear.attach(variant, at, lr)?;

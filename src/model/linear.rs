@@ -6,7 +6,11 @@
 
 use crate::error::{Error, Result};
 use crate::kernels::bf16::Bf16Matrix;
-use crate::kernels::dense::{dot, matmul, matmul_half, pack_panels_into, panel_len, Half};
+use crate::kernels::blocks::CodeMatrix;
+use crate::kernels::dense::{
+    dot, matmul, matmul_half, matmul_panels, pack_panels_into, panel_len, Half,
+};
+use crate::kernels::nf4::{self, Codebook, Quantised};
 use crate::kernels::PARALLEL_WORK;
 use crate::model::lora::LowRank;
 use candle_core::{DType, Tensor, WithDType};
@@ -29,6 +33,69 @@ impl WeightFormat {
         match self {
             WeightFormat::F32 => "f32",
             WeightFormat::Bf16 => "bf16 matrix products (approximation), f32 elsewhere",
+        }
+    }
+}
+
+/// The base model's linear layers quantised to 4 bits as bitsandbytes does for QLoRA
+/// (transformers' `BitsAndBytesConfig(load_in_4bit=True, bnb_4bit_quant_type=...,
+/// bnb_4bit_use_double_quant=...)`): blocks of 64 weights, each with an absmax scale.
+#[derive(
+    Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum, serde::Serialize, serde::Deserialize,
+)]
+#[serde(rename_all = "kebab-case")]
+pub enum BaseQuant {
+    /// NF4 with double quantisation of the scales: how QLoRA trains (`nf4`, double quant on).
+    Nf4,
+    /// NF4, scales kept in f32 (`bnb_4bit_use_double_quant=False`).
+    Nf4Single,
+    /// bitsandbytes' FP4 with double quantisation.
+    Fp4,
+    /// FP4, scales kept in f32.
+    Fp4Single,
+}
+
+impl BaseQuant {
+    /// The 4-bit code.
+    pub fn codebook(self) -> Codebook {
+        match self {
+            BaseQuant::Nf4 | BaseQuant::Nf4Single => Codebook::Nf4,
+            BaseQuant::Fp4 | BaseQuant::Fp4Single => Codebook::Fp4,
+        }
+    }
+
+    /// Whether the scales are quantised again (8-bit, blocks of 256).
+    pub fn double_quant(self) -> bool {
+        matches!(self, BaseQuant::Nf4 | BaseQuant::Fp4)
+    }
+
+    /// The name on the command line and in run records.
+    pub fn name(self) -> &'static str {
+        match self {
+            BaseQuant::Nf4 => "nf4",
+            BaseQuant::Nf4Single => "nf4-single",
+            BaseQuant::Fp4 => "fp4",
+            BaseQuant::Fp4Single => "fp4-single",
+        }
+    }
+
+    /// The quantisation in words, for reports.
+    pub fn describe(self) -> &'static str {
+        match self {
+            BaseQuant::Nf4 => {
+                "NF4 (4-bit, blocks of 64, scales double-quantised: the base QLoRA trains on)"
+            }
+            BaseQuant::Nf4Single => "NF4 (4-bit, blocks of 64, f32 scales)",
+            BaseQuant::Fp4 => "FP4 (4-bit, blocks of 64, scales double-quantised)",
+            BaseQuant::Fp4Single => "FP4 (4-bit, blocks of 64, f32 scales)",
+        }
+    }
+
+    /// bitsandbytes' `bnb_4bit_quant_type`.
+    pub fn quant_type(self) -> &'static str {
+        match self.codebook() {
+            Codebook::Nf4 => "nf4",
+            Codebook::Fp4 => "fp4",
         }
     }
 }
@@ -67,12 +134,24 @@ enum LinearWeights {
     StoredF16(Vec<half::f16>),
     /// The bf16 approximation (`--weights bf16`).
     Bf16(Bf16Matrix),
+    /// 4-bit codes with a scale per block (a base quantised as bitsandbytes does for QLoRA),
+    /// dequantised to f32 inside the product.
+    Codes(CodeMatrix),
 }
 
 impl Linear {
     /// Stacks the rows of one or more checkpoint matrices (with their biases, if any),
     /// transposing (f32) or packing (bf16) each straight into place.
-    pub fn stack(parts: Vec<(Tensor, Option<Tensor>)>, format: WeightFormat) -> Result<Linear> {
+    ///
+    /// With `codes`, the checkpoint matrices come quantised to 4 bits (one [`Quantised`] per
+    /// part, each quantised on its own as bitsandbytes quantises each `nn.Linear` weight; the
+    /// parts' tensors then only give the shapes) and the layer keeps the codes. The input size
+    /// must be a multiple of the block size (64), which the loader checks first.
+    pub fn stack(
+        parts: Vec<(Tensor, Option<Tensor>)>,
+        format: WeightFormat,
+        codes: Option<(Codebook, Vec<Quantised>)>,
+    ) -> Result<Linear> {
         let mut dims = Vec::with_capacity(parts.len());
         for (wt, _) in &parts {
             dims.push(wt.dims2()?);
@@ -93,6 +172,15 @@ impl Linear {
         };
         let len = panel_len(out, inp);
         let mut w = match (format, stored) {
+            _ if codes.is_some() => {
+                if !inp.is_multiple_of(nf4::BLOCK) {
+                    return Err(Error::internal(
+                        "a 4-bit layer's input size must be a multiple of 64",
+                    ));
+                }
+                let book = codes.as_ref().map_or(Codebook::Nf4, |c| c.0);
+                LinearWeights::Codes(CodeMatrix::new(out, inp, nf4::BLOCK, book.values()))
+            }
             (WeightFormat::F32, DType::BF16) => {
                 LinearWeights::StoredBf16(vec![half::bf16::ZERO; len])
             }
@@ -100,6 +188,7 @@ impl Linear {
             (WeightFormat::F32, _) => LinearWeights::F32(vec![0.0; len]),
             (WeightFormat::Bf16, _) => LinearWeights::Bf16(Bf16Matrix::new(out, inp)),
         };
+        let mut quantised = codes.map(|c| c.1).unwrap_or_default().into_iter();
         let mut b = Vec::new();
         let mut at = 0;
         for ((wt, bt), (o, _)) in parts.into_iter().zip(dims) {
@@ -112,6 +201,15 @@ impl Linear {
                     with_values(&wt, |a| pack_panels_into(a, o, inp, w, at))?
                 }
                 LinearWeights::Bf16(m) => with_f32(&wt, |a| m.put_rows(a, o, at))?,
+                LinearWeights::Codes(m) => {
+                    let q = quantised
+                        .next()
+                        .ok_or_else(|| Error::internal("a 4-bit layer part without its codes"))?;
+                    if q.codes.len() * 2 != o * inp {
+                        return Err(Error::internal("4-bit codes of the wrong size"));
+                    }
+                    m.put_rows(&q.codes, &q.scales, o, at);
+                }
             }
             drop(wt);
             if let (true, Some(bt)) = (with_bias, bt) {
@@ -148,6 +246,7 @@ impl Linear {
             LinearWeights::StoredBf16(w) => matmul_half(x, n, self.inp, w, self.out, y),
             LinearWeights::StoredF16(w) => matmul_half(x, n, self.inp, w, self.out, y),
             LinearWeights::Bf16(m) => m.matmul(x, n, y),
+            LinearWeights::Codes(m) => matmul_panels(x, n, self.inp, m, self.out, y),
         }
         if let Some(b) = &self.b {
             for row in y.chunks_exact_mut(self.out) {

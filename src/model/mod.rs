@@ -7,10 +7,10 @@
 //! The arithmetic under the decoder (matrix products, the bf16 and 8-bit kernels) lives in
 //! `crate::kernels`, which knows nothing of models; the modules here import it, never the
 //! other way round. Within this module the imports run one way too: `names` and `rope` use
-//! `config`; `weights` uses `config` and `names`; `lora` uses `names`; `linear` uses the
-//! kernels and `lora`'s low-rank terms; `head` uses only the kernels; `decoder` uses all of
-//! `config`, `names`, `rope`, `cache`, `linear`, `lora` and `head`; nothing uses `decoder` but
-//! this file.
+//! `config`; `weights` uses `config`, `names` and the kernels' 4-bit quantiser; `lora` uses
+//! `names`; `linear` uses the kernels and `lora`'s low-rank terms; `head` uses only the
+//! kernels; `decoder` uses all of `config`, `names`, `rope`, `cache`, `linear`, `lora`, `head`
+//! and the 4-bit matrices `weights` hands over; nothing uses `decoder` but this file.
 
 pub mod cache;
 pub mod config;
@@ -22,7 +22,7 @@ pub mod names;
 pub mod rope;
 pub mod weights;
 
-pub use linear::WeightFormat;
+pub use linear::{BaseQuant, WeightFormat};
 
 use crate::error::{Error, Result};
 use candle_core::DType;
@@ -81,6 +81,8 @@ pub struct LoadedModel {
     pub stored_dtype: String,
     /// Per variant, its adapter and how it was applied.
     pub adapters: Vec<Option<AppliedAdapter>>,
+    /// The 4-bit quantisation of the base's linear layers, if any.
+    pub quant: Option<BaseQuant>,
 }
 
 /// Reads config, generation config and weights of `dir`, applies the LoRA adapter in
@@ -118,6 +120,7 @@ pub fn load_as(
         weight_files: w.files,
         stored_dtype: w.stored_dtype,
         adapters: vec![applied],
+        quant: None,
     })
 }
 
@@ -131,13 +134,31 @@ pub fn load_group(
     adapters: &[Option<&Path>],
     format: WeightFormat,
 ) -> Result<LoadedModel> {
+    load_group_as(dir, adapters, format, None)
+}
+
+/// As [`load_group`], with the base's linear layers quantised to 4 bits as `quant` says (the
+/// base as QLoRA trains against it) when given. Every adapter then stays unmerged: one that
+/// can only be merged is refused, since a merge into a 4-bit base is another artifact.
+pub fn load_group_as(
+    dir: &Path,
+    adapters: &[Option<&Path>],
+    format: WeightFormat,
+    quant: Option<BaseQuant>,
+) -> Result<LoadedModel> {
     let spec = ModelSpec::load(dir)?;
+    if let Some(q) = quant {
+        check_quantisable(dir, &spec, q, format)?;
+    }
     let generation = GenerationDefaults::load(dir, &spec)?;
     let loaded: Vec<Option<lora::Adapter>> = adapters
         .iter()
         .map(|a| a.map(lora::Adapter::load).transpose())
         .collect::<Result<_>>()?;
-    let mut w = weights::load(dir, &spec)?;
+    let mut w = match quant {
+        Some(q) => weights::load_4bit(dir, &spec, q.codebook(), q.double_quant())?,
+        None => weights::load(dir, &spec)?,
+    };
     let mut terms = Vec::new();
     let mut applied = Vec::with_capacity(loaded.len());
     let single = loaded.len() == 1;
@@ -157,6 +178,14 @@ pub fn load_group(
                 }));
                 terms.push((variant, list));
             }
+            lora::Unmerged::MustMerge(why) if quant.is_some() => {
+                return Err(Error::file(
+                    adapter.config_path(),
+                    format!(
+                        "this adapter cannot run unmerged ({why}), and a 4-bit base takes adapters unmerged only; evaluate it on the base as stored"
+                    ),
+                ))
+            }
             lora::Unmerged::MustMerge(why) if single => {
                 applied.push(Some(merged(&mut w, adapter, Merge::F32, Some(why))?));
             }
@@ -168,7 +197,7 @@ pub fn load_group(
             }
         }
     }
-    let decoder = Decoder::with_adapters(&spec, w.tensors, format, terms)?;
+    let decoder = Decoder::with_adapters(&spec, w.tensors, format, terms, w.quantised)?;
     Ok(LoadedModel {
         decoder,
         spec,
@@ -176,7 +205,48 @@ pub fn load_group(
         weight_files: w.files,
         stored_dtype: w.stored_dtype,
         adapters: applied,
+        quant,
     })
+}
+
+/// A 4-bit base needs every linear layer's input size to be a multiple of the block size (64;
+/// bitsandbytes lets a block run across rows, liftgate keeps blocks within a row) and f32
+/// computation (bitsandbytes' `bnb_4bit_compute_dtype=float32`, the default).
+fn check_quantisable(
+    dir: &Path,
+    spec: &ModelSpec,
+    quant: BaseQuant,
+    format: WeightFormat,
+) -> Result<()> {
+    if format != WeightFormat::F32 {
+        return Err(Error::usage(format!(
+            "a 4-bit base ({}) computes in f32 (bnb_4bit_compute_dtype=float32); --weights {} is not available with it",
+            quant.name(),
+            clap::ValueEnum::to_possible_value(&format).map_or_else(String::new, |v| v.get_name().to_string())
+        )));
+    }
+    let block = crate::kernels::nf4::BLOCK;
+    for (field, size) in [
+        ("hidden_size", spec.hidden_size),
+        ("intermediate_size", spec.intermediate_size),
+        (
+            "num_attention_heads × head_dim",
+            spec.num_heads * spec.head_dim,
+        ),
+    ] {
+        if !size.is_multiple_of(block) {
+            return Err(Error::field(
+                dir.join("config.json"),
+                None,
+                field,
+                format!(
+                    "{size} is not a multiple of {block}: a 4-bit base ({}) quantises each linear layer's rows in blocks of {block} inputs, which this model's sizes do not allow",
+                    quant.name()
+                ),
+            ));
+        }
+    }
+    Ok(())
 }
 
 /// Merges `adapter` into the loaded weights as `merge` says and checks the result.

@@ -8,6 +8,7 @@
 //! checkpoint is refused naming the file and the tensor instead of producing garbage answers.
 
 use crate::error::{Error, Result};
+use crate::kernels::nf4::{self, Codebook, Quantised};
 use crate::model::config::ModelSpec;
 use crate::model::names::{self, EMBED, LM_HEAD};
 use candle_core::safetensors::Load;
@@ -25,6 +26,45 @@ pub struct Weights {
     pub stored_dtype: String,
     /// Whether `lm_head` reuses the embedding matrix (tie true and lm_head.weight absent).
     pub tied: bool,
+    /// With a 4-bit base ([`load_4bit`]): the linear layers' weights, quantised as they were
+    /// read. Their entries in `tensors` are then stand-ins of the right shape and dtype that
+    /// hold no values (for the adapter's checks against the base).
+    pub quantised: Option<QuantisedBase>,
+}
+
+/// The linear layers of a base quantised to 4 bits, by checkpoint name.
+pub struct QuantisedBase {
+    pub book: Codebook,
+    pub double_quant: bool,
+    pub matrices: HashMap<String, Quantised>,
+}
+
+/// The checkpoint names of the weights of the attention and MLP projections of every layer:
+/// the `nn.Linear` modules transformers replaces with 4-bit layers (all but the output head).
+pub fn linear_weight_names(spec: &ModelSpec) -> Vec<String> {
+    let mut out = Vec::new();
+    for l in 0..spec.num_layers {
+        let layer = names::Layer::new(l);
+        let attention: &[&str] = if spec.fused_qkv {
+            &[names::QKV_PROJ]
+        } else {
+            &[names::Q_PROJ, names::K_PROJ, names::V_PROJ]
+        };
+        let mlp: &[&str] = if spec.fused_gate_up {
+            &[names::GATE_UP_PROJ]
+        } else {
+            &[names::GATE_PROJ, names::UP_PROJ]
+        };
+        for m in attention
+            .iter()
+            .chain(&[names::O_PROJ])
+            .chain(mlp)
+            .chain(&[names::DOWN_PROJ])
+        {
+            out.push(layer.weight(m));
+        }
+    }
+    out
 }
 
 /// The safetensors files of a model directory: the index's shards, or `model.safetensors`, or
@@ -170,6 +210,26 @@ fn mmap_file(file: &Path) -> Result<Mapped> {
 /// (f32, bf16 or f16): the decoder widens 16-bit values to f32 where it computes (exact), so a
 /// 16-bit checkpoint takes its own size in memory rather than twice that.
 pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
+    load_inner(dir, spec, None)
+}
+
+/// As [`load`], quantising the linear layers' weights ([`linear_weight_names`]) to 4 bits with
+/// `book` (and double quantisation of the scales when `double_quant`) one at a time as they are
+/// read, so memory never holds more than one of them at full precision.
+pub fn load_4bit(
+    dir: &Path,
+    spec: &ModelSpec,
+    book: Codebook,
+    double_quant: bool,
+) -> Result<Weights> {
+    load_inner(dir, spec, Some((book, double_quant)))
+}
+
+fn load_inner(dir: &Path, spec: &ModelSpec, quant: Option<(Codebook, bool)>) -> Result<Weights> {
+    let linear: std::collections::HashSet<String> = match quant {
+        Some(_) => linear_weight_names(spec).into_iter().collect(),
+        None => Default::default(),
+    };
     let files = safetensors_files(dir)?;
     let maps: Vec<Mapped> = files.iter().map(|f| mmap_file(f)).collect::<Result<_>>()?;
     let parsed: Vec<SafeTensors> = maps
@@ -218,7 +278,12 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
         .filter_map(|(name, _)| {
             let view = owner.get(name).and_then(|&i| parsed[i].tensor(name).ok())?;
             let size = view.dtype().bitsize().div_ceil(8);
-            Some(resident_bytes(name, view.shape(), size, has_head))
+            Some(if linear.contains(name) {
+                let values: u64 = view.shape().iter().map(|&d| d as u64).product();
+                values / 2 + values / nf4::BLOCK as u64 * 4
+            } else {
+                resident_bytes(name, view.shape(), size, has_head)
+            })
         })
         .sum();
     if let Some(available) = available_memory() {
@@ -226,6 +291,7 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
     }
 
     let mut tensors = HashMap::with_capacity(expected.len());
+    let mut matrices = HashMap::new();
     let mut stored_dtype = String::new();
     for (name, shape) in &expected {
         let src = owner.get(name).copied();
@@ -288,6 +354,15 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
             maps[i].release(view.data());
         }
         check_finite(name, &file_of(name), &t, "")?;
+        if let (Some((book, double)), true) = (quant, linear.contains(name)) {
+            // bitsandbytes quantises the exact f32 widening of the stored values.
+            let values: Vec<f32> = t.to_dtype(DType::F32)?.flatten_all()?.to_vec1()?;
+            let stand_in = Tensor::zeros((), t.dtype(), &Device::Cpu)?.broadcast_as(t.dims())?;
+            drop(t);
+            matrices.insert(name.clone(), nf4::quantise(&values, book, double));
+            tensors.insert(name.clone(), stand_in);
+            continue;
+        }
         tensors.insert(name.clone(), t);
     }
     if !tensors.contains_key(EMBED) {
@@ -302,6 +377,11 @@ pub fn load(dir: &Path, spec: &ModelSpec) -> Result<Weights> {
         files,
         stored_dtype,
         tied,
+        quantised: quant.map(|(book, double_quant)| QuantisedBase {
+            book,
+            double_quant,
+            matrices,
+        }),
     })
 }
 
