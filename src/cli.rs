@@ -145,6 +145,11 @@ pub struct GradeArgs {
     /// warning), e.g. after correcting a reference answer; the ids must still match.
     #[arg(long)]
     pub allow_set_change: bool,
+    /// Sentence-embedding model directory (sentence-transformers layout: modules.json,
+    /// config.json, model.safetensors, tokenizer.json, 1_Pooling/config.json): adds the
+    /// `semantic` score, the answer's cosine similarity to the closest reference.
+    #[arg(long, value_name = "DIR")]
+    pub embedder: Option<PathBuf>,
 }
 
 #[derive(Debug, Args)]
@@ -160,6 +165,15 @@ pub struct LeaksArgs {
     /// question (containment, in (0, 1]).
     #[arg(long, value_name = "X", default_value_t = crate::score::leaks::DEFAULT_THRESHOLD)]
     pub threshold: f64,
+    /// Sentence-embedding model directory (as for `grade --embedder`): also lists each held-out
+    /// question's nearest training question by embedding cosine when it reaches
+    /// --cosine-threshold.
+    #[arg(long, value_name = "DIR")]
+    pub embedder: Option<PathBuf>,
+    /// With --embedder: flag a question whose nearest training question has at least this
+    /// cosine similarity (in (0, 1]).
+    #[arg(long, value_name = "X", default_value_t = crate::score::leaks::DEFAULT_COSINE_THRESHOLD, requires = "embedder")]
+    pub cosine_threshold: f64,
 }
 
 /// Statistics settings shared by `weigh` and `vet`.
@@ -237,6 +251,11 @@ pub struct VetArgs {
     /// with a warning (as `liftgate leaks` lists them).
     #[arg(long, value_name = "FILE")]
     pub train: Option<PathBuf>,
+    /// Sentence-embedding model directory (sentence-transformers layout: modules.json,
+    /// config.json, model.safetensors, tokenizer.json, 1_Pooling/config.json): adds the
+    /// `semantic` score, the answer's cosine similarity to the closest reference.
+    #[arg(long, value_name = "DIR")]
+    pub embedder: Option<PathBuf>,
     #[command(flatten)]
     pub stats: StatsArgs,
     #[command(flatten)]

@@ -271,10 +271,8 @@ fn new_run(
     }
     let mut metrics = Vec::new();
     for m in Metric::ALL {
-        let s = match m {
-            Metric::ExactMatch => &summary.metrics.exact_match,
-            Metric::TokenF1 => &summary.metrics.token_f1,
-            Metric::RougeL => &summary.metrics.rouge_l,
+        let Some(s) = summary.metrics.get(m) else {
+            continue;
         };
         metrics.push((
             1,
