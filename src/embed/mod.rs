@@ -19,6 +19,7 @@ use candle_core::{DType, Device, Tensor};
 use candle_nn::VarBuilder;
 use candle_transformers::models::bert::{BertModel, Config};
 use layout::{Layout, Pooling};
+use rayon::prelude::*;
 use std::path::Path;
 use tokenizers::{Tokenizer, TruncationParams};
 
@@ -104,15 +105,26 @@ impl Embedder {
         order.sort_by_key(|&i| ids[i].len());
         let mut out = vec![Vec::new(); texts.len()];
         let mut done = 0;
-        for batch in order.chunks(BATCH) {
-            let rows: Vec<&[u32]> = batch.iter().map(|&i| ids[i].as_slice()).collect();
-            let vecs = self
-                .forward(&rows)
-                .map_err(|e| Error::internal(format!("the embedding model failed: {e}")))?;
-            for (&i, v) in batch.iter().zip(vecs) {
-                out[i] = v;
+        // Batches run in parallel, a round of them at a time (one forward pass of a small
+        // encoder keeps about one core busy); progress is reported after each round.
+        let batches: Vec<&[usize]> = order.chunks(BATCH).collect();
+        let round = 4 * rayon::current_num_threads().max(1);
+        for group in batches.chunks(round) {
+            let results: Vec<candle_core::Result<Vec<Vec<f32>>>> = group
+                .par_iter()
+                .map(|batch| {
+                    let rows: Vec<&[u32]> = batch.iter().map(|&i| ids[i].as_slice()).collect();
+                    self.forward(&rows)
+                })
+                .collect();
+            for (batch, vecs) in group.iter().zip(results) {
+                let vecs =
+                    vecs.map_err(|e| Error::internal(format!("the embedding model failed: {e}")))?;
+                for (&i, v) in batch.iter().zip(vecs) {
+                    out[i] = v;
+                }
+                done += batch.len();
             }
-            done += batch.len();
             progress(done);
         }
         Ok(out)
