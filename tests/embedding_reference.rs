@@ -216,3 +216,115 @@ fn grade_with_an_embedder_writes_the_semantic_score() {
     .expect_success();
     assert!(!bin.read("plain.jsonl").contains("semantic"));
 }
+
+/// `weigh` of two grades files with semantic scores reports `metrics.semantic` (summary.json
+/// and report.md); `leaks --embedder` adds each row's cosine and the questions flagged by
+/// embedding cosine alone, with the values the library computes.
+#[test]
+fn weigh_reports_semantic_similarity_and_leaks_lists_embedding_neighbours() {
+    let (root, doc) = fixture_doc();
+    let s = sentences(&doc);
+    let bin = Bin::new();
+    bin.copy_dir(&root.join("mean"), "emb");
+    // Twelve questions (sentences 19, 18, ...), each with another sentence as its reference;
+    // the baseline answers with the next sentence, the candidate with the reference itself
+    // (semantic 1.0). Sentence 10 is the empty one: never a question or a reference.
+    let q_idx = [19, 18, 17, 16, 15, 14, 13, 12, 11, 9, 8, 7];
+    let r_idx = [0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 11, 12];
+    let (mut set, mut base, mut cand) = (String::new(), String::new(), String::new());
+    for (i, (&q, &r)) in q_idx.iter().zip(&r_idx).enumerate() {
+        let row = serde_json::json!({"id": format!("q{i}"), "question": s[q], "references": [s[r]], "category": "c"});
+        set.push_str(&format!("{row}\n"));
+        let answer = |a: &str| serde_json::json!({"id": format!("q{i}"), "answer": a}).to_string();
+        base.push_str(&(answer(s[r + 1]) + "\n"));
+        cand.push_str(&(answer(s[r]) + "\n"));
+    }
+    bin.write("set.jsonl", &set);
+    bin.write("base.jsonl", base);
+    bin.write("cand.jsonl", cand);
+    for v in ["base", "cand"] {
+        bin.run([
+            "grade",
+            "--questions",
+            "set.jsonl",
+            "--answers",
+            &format!("{v}.jsonl"),
+            "--out",
+            &format!("{v}.grades.jsonl"),
+            "--embedder",
+            "emb",
+        ])
+        .expect_success();
+    }
+    bin.run([
+        "weigh",
+        "--questions",
+        "set.jsonl",
+        "--baseline",
+        "base.grades.jsonl",
+        "--candidate",
+        "cand.grades.jsonl",
+        "--report",
+        "report",
+        "--no-history",
+        "--resamples",
+        "1000",
+    ])
+    .expect_verdict();
+    let summary: Value = serde_json::from_str(&bin.read("report/summary.json")).unwrap();
+    let m = &summary["metrics"]["semantic"];
+    assert_eq!(m["n"], 12);
+    assert!((m["candidate"].as_f64().unwrap() - 1.0).abs() < 1e-6, "{m}");
+    assert!(bin
+        .read("report/report.md")
+        .contains("| semantic similarity |"));
+
+    // Training questions: the set's questions reworded by a prefix, and two unrelated ones.
+    let embedder = Embedder::load(&root.join("mean")).unwrap();
+    let train_texts = [s[19], s[5]];
+    let mut train = String::new();
+    for t in train_texts {
+        train.push_str(&format!("{}\n", serde_json::json!({"question": t})));
+    }
+    bin.write("train.jsonl", train);
+    let run = bin.run([
+        "leaks",
+        "--questions",
+        "set.jsonl",
+        "--train",
+        "train.jsonl",
+        "--embedder",
+        "emb",
+        "--cosine-threshold",
+        "0.000001",
+    ]);
+    run.expect_success();
+    let rows: Vec<Value> = run
+        .stdout
+        .lines()
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect();
+    let qs: Vec<&str> = q_idx.iter().map(|&i| s[i]).collect();
+    let qv = embedder.embed(&qs, |_| {}).unwrap();
+    let tv = embedder.embed(&train_texts, |_| {}).unwrap();
+    let mut semantic_rows = 0;
+    for row in &rows {
+        let i: usize = row["id"].as_str().unwrap()[1..].parse().unwrap();
+        let j = row["train_line"].as_u64().unwrap() as usize - 1;
+        let want = liftgate::score::semantic::cosine(&qv[i], &tv[j]);
+        assert!(
+            (row["cosine"].as_f64().unwrap() - want).abs() < 1e-9,
+            "{row}"
+        );
+        if row["kind"] == "semantic" {
+            semantic_rows += 1;
+            // The nearest training question by cosine.
+            let other = liftgate::score::semantic::cosine(&qv[i], &tv[1 - j]);
+            assert!(want >= other, "{row}");
+        }
+    }
+    // q0's question (sentence 19) is a training question verbatim: exact; every other
+    // question whose nearest cosine is positive is listed as semantic.
+    assert!(rows.iter().any(|r| r["kind"] == "exact"));
+    assert!(semantic_rows >= 1, "{}", run.stdout);
+}
