@@ -50,7 +50,7 @@ macro_rules! bad_input {
 
 /// The number of cases below; a case that disappears fails
 /// `catalogue_keeps_every_case`, so none is dropped by accident.
-const CASES: usize = 85;
+const CASES: usize = 86;
 
 fn runner(family: &str) -> PathBuf {
     common::fixture("runner").join(family)
@@ -1280,6 +1280,14 @@ bad_input!(embedder_not_bert, |d| {
         &["--embedder", "emb"],
         &["config.json", "model_type", "xlm-roberta", "BERT"],
     )
+});
+
+bad_input!(policy_gates_on_semantic_without_semantic_scores, |d| {
+    write_set(d);
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+    write(d, "policy.toml", "[lift]\nmetric = \"semantic\"\n");
+    weigh(d, &["--policy", "policy.toml"], &["semantic", "--embedder"])
 });
 
 bad_input!(grades_semantic_out_of_range, |d| {

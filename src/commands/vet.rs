@@ -233,8 +233,13 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
         .as_deref()
         .map(|t| leakage(&set, t))
         .transpose()?;
-    // And a bad embedding model directory.
+    // And a bad embedding model directory, or a policy gating on a score that needs one.
     let embedder = args.embedder.as_deref().map(Embedder::load).transpose()?;
+    if settings.policy.lift.metric == crate::policy::Metric::Semantic && embedder.is_none() {
+        return Err(Error::usage(
+            "the policy gates on semantic similarity (lift.metric = \"semantic\"), which needs --embedder DIR",
+        ));
+    }
     let stop = StopFlag::install()?;
 
     let reports = Path::new("reports");

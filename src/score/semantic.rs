@@ -1,9 +1,9 @@
 //! Semantic similarity of an answer to its references: the cosine of their sentence embeddings,
 //! maximised over the references (SemScore: Aynetdinov and Akbik 2024, "SemScore: Automated
 //! Evaluation of Instruction-Tuned LLMs based on Semantic Textual Similarity", which scores a
-//! response by the cosine between its embedding and the reference's under all-mpnet-base-v2;
-//! liftgate takes the embedding model from `--embedder DIR`, and the maximum over several
-//! references as the other reference scores do).
+//! response by the cosine between its embedding and the reference's; the paper used
+//! all-mpnet-base-v2, from memory. liftgate takes the embedding model from `--embedder DIR`,
+//! and the maximum over several references as the other reference scores do).
 //!
 //! `cos(a, b) = a·b / (‖a‖ ‖b‖)`, in [−1, 1]; 0 when either vector is all zeros (where the
 //! quotient is undefined), as `sentence_transformers.util.cos_sim` gives through its clamped
