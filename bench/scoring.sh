@@ -9,6 +9,10 @@
 #        WORK    scratch directory (default: a new temporary directory, removed at the end)
 #        BEFORE  another liftgate binary (e.g. a copy of an earlier build) to time on the same
 #                files in the same run, before this one, for a side-by-side comparison
+#        EMBEDDER  a sentence-embedding model directory (e.g. all-MiniLM-L6-v2): also times
+#                `grade --embedder` of the current binary on EMBED_PAIRS invented pairs
+#                (default 2000; embedding costs far more than the other scores) and reports
+#                answers per second
 set -euo pipefail
 cd "$(dirname "$0")/.."
 PAIRS="${1:-100000}"
@@ -56,6 +60,18 @@ if [ -n "${BEFORE:-}" ]; then
   run before "$BEFORE"
 fi
 run current target/release/liftgate
+
+if [ -n "${EMBEDDER:-}" ]; then
+  EMBED_PAIRS="${EMBED_PAIRS:-2000}"
+  mkdir -p "$WORK/emb"
+  "$PYTHON" bench/make_pairs.py "$WORK/emb" --pairs "$EMBED_PAIRS"
+  t0=$(now)
+  cpu "$WORK/emb/cpu" target/release/liftgate grade --questions "$WORK/emb/set.jsonl" --answers "$WORK/emb/tuned.jsonl" \
+    --out "$WORK/emb/tuned.grades.jsonl" --embedder "$EMBEDDER" 2> "$WORK/emb/stderr"
+  t1=$(now)
+  s=$(secs "$t0" "$t1")
+  echo "{\"binary\": \"current\", \"kind\": \"liftgate_grade_embedder\", \"pairs\": $EMBED_PAIRS, \"seconds\": $s, \"cpu_seconds\": $(cpus "$WORK/emb/cpu"), \"answers_per_second\": $(awk -v n="$EMBED_PAIRS" -v s="$s" 'BEGIN { printf "%.0f", n / s }'), \"texts_embedded\": \"$(grep -o 'embedding [0-9]* distinct' "$WORK/emb/stderr" | grep -o '[0-9]*')\", \"load_average\": \"$(cut -d' ' -f1-3 /proc/loadavg)\"}"
+fi
 
 if "$PYTHON" -c "import rouge_score" 2>/dev/null; then
   "$PYTHON" - "$WORK/pairs.jsonl" "$grade" <<'PY'

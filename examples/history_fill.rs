@@ -68,6 +68,7 @@ fn grades(set: &QuestionSet, rng: &mut Mix, quality: f64) -> Vec<GradeRecord> {
                 },
                 fact_recall: None,
                 fact_contradiction: None,
+                semantic: None,
                 answer: String::new(),
             }
         })

@@ -152,6 +152,11 @@ pub struct GradeArgs {
     /// warning), e.g. after correcting a reference answer; the ids must still match.
     #[arg(long)]
     pub allow_set_change: bool,
+    /// Sentence-embedding model directory (sentence-transformers layout: modules.json,
+    /// config.json, model.safetensors, tokenizer.json, 1_Pooling/config.json): adds the
+    /// `semantic` score, the answer's cosine similarity to the closest reference.
+    #[arg(long, value_name = "DIR")]
+    pub embedder: Option<PathBuf>,
 }
 
 #[derive(Debug, Args)]
@@ -167,6 +172,15 @@ pub struct LeaksArgs {
     /// question (containment, in (0, 1]).
     #[arg(long, value_name = "X", default_value_t = crate::score::leaks::DEFAULT_THRESHOLD)]
     pub threshold: f64,
+    /// Sentence-embedding model directory (as for `grade --embedder`): also lists each held-out
+    /// question's nearest training question by embedding cosine when it reaches
+    /// --cosine-threshold.
+    #[arg(long, value_name = "DIR")]
+    pub embedder: Option<PathBuf>,
+    /// With --embedder: flag a question whose nearest training question has at least this
+    /// cosine similarity (in (0, 1]).
+    #[arg(long, value_name = "X", default_value_t = crate::score::leaks::DEFAULT_COSINE_THRESHOLD, requires = "embedder")]
+    pub cosine_threshold: f64,
 }
 
 /// Statistics settings shared by `weigh` and `vet`.
@@ -252,6 +266,11 @@ pub struct VetArgs {
     /// shards and grades, weighs and reports as a single-machine run.
     #[arg(long, value_name = "K/N|auto", requires = "report")]
     pub shard: Option<String>,
+    /// Sentence-embedding model directory (sentence-transformers layout: modules.json,
+    /// config.json, model.safetensors, tokenizer.json, 1_Pooling/config.json): adds the
+    /// `semantic` score, the answer's cosine similarity to the closest reference.
+    #[arg(long, value_name = "DIR")]
+    pub embedder: Option<PathBuf>,
     #[command(flatten)]
     pub stats: StatsArgs,
     #[command(flatten)]

@@ -3,9 +3,12 @@
 //!
 //! Every row gets exact match, token F1 and ROUGE-L (each the maximum over the question's
 //! non-blank references, `None` when it has none), the refusal flag, and fact recall and
-//! contradiction when a reference states a fact (`score::facts`). Rows are scored in
-//! parallel; the output order is the set's order.
+//! contradiction when a reference states a fact (`score::facts`), and, with an embedding model
+//! (`--embedder`), the semantic similarity (`score::semantic`, computed first for all answers
+//! in batches by [`semantic_scores`]). Rows are scored in parallel; the output order is the
+//! set's order.
 
+use crate::embed::Embedder;
 use crate::error::Result;
 use crate::formats::answers::AnswerRecord;
 use crate::formats::grades::GradeRecord;
@@ -14,6 +17,7 @@ use crate::formats::run_record::{self, GradeRunInfo, InputFile, QuestionsInfo};
 use crate::fsutil;
 use crate::score::{self, RefusalDetector};
 use rayon::prelude::*;
+use std::collections::HashMap;
 use std::path::Path;
 
 /// Writes the grades file and `<out>.run.json` (the set's and the answers' fingerprints), both
@@ -23,7 +27,18 @@ pub fn write_grades(
     grades: &[GradeRecord],
     set: &QuestionSet,
     answers_path: &Path,
+    embedder: Option<&Embedder>,
 ) -> Result<()> {
+    let embedder = match embedder {
+        Some(e) => {
+            let weights = e.layout.weights_path();
+            Some(InputFile {
+                path: e.layout.dir.display().to_string(),
+                sha256: fsutil::sha256_file(&weights)?,
+            })
+        }
+        None => None,
+    };
     let info = GradeRunInfo {
         tool: "liftgate".into(),
         tool_version: env!("CARGO_PKG_VERSION").into(),
@@ -37,6 +52,7 @@ pub fn write_grades(
             sha256: fsutil::sha256_file(answers_path)?,
         },
         compute_dtype: run_record::recorded_compute_dtype(answers_path),
+        embedder,
     };
     let info_bytes = run_record::to_bytes(&info)?;
     let mut rows = Vec::new();
@@ -52,12 +68,79 @@ pub fn write_grades(
     fsutil::commit_staged(&run, staged_info)
 }
 
+/// The semantic similarity of every answer to its question's non-blank references
+/// (`score::semantic::max_cosine`), `None` where a question has none. Each distinct text is
+/// embedded once; progress goes to stderr.
+pub fn semantic_scores(
+    embedder: &Embedder,
+    set: &QuestionSet,
+    answers: &[AnswerRecord],
+) -> Result<Vec<Option<f64>>> {
+    fn slot<'t>(
+        index: &mut HashMap<&'t str, usize>,
+        texts: &mut Vec<&'t str>,
+        t: &'t str,
+    ) -> usize {
+        *index.entry(t).or_insert_with(|| {
+            texts.push(t);
+            texts.len() - 1
+        })
+    }
+    let mut index: HashMap<&str, usize> = HashMap::new();
+    let mut texts: Vec<&str> = Vec::new();
+    // Per question: the answer's slot and its references' slots.
+    let mut plan: Vec<(usize, Vec<usize>)> = Vec::with_capacity(set.len());
+    for (q, a) in set.questions.iter().zip(answers) {
+        let refs: Vec<usize> = q
+            .references
+            .iter()
+            .filter(|r| !r.trim().is_empty())
+            .map(|r| slot(&mut index, &mut texts, r))
+            .collect();
+        let answer = if refs.is_empty() {
+            usize::MAX
+        } else {
+            slot(&mut index, &mut texts, &a.answer)
+        };
+        plan.push((answer, refs));
+    }
+    let total = texts.len();
+    eprintln!(
+        "liftgate: grade: embedding {total} distinct answers and references with {}",
+        embedder.layout.dir.display()
+    );
+    let started = std::time::Instant::now();
+    let mut next_report = total / 10;
+    let vectors = embedder.embed(&texts, |done| {
+        if done >= next_report && done < total {
+            eprintln!(
+                "liftgate: grade: embedded {done}/{total} ({:.0} texts/s)",
+                done as f64 / started.elapsed().as_secs_f64().max(1e-9)
+            );
+            next_report = done + total / 10;
+        }
+    })?;
+    Ok(plan
+        .iter()
+        .map(|(answer, refs)| {
+            (*answer != usize::MAX).then(|| {
+                score::semantic::max_cosine(
+                    &vectors[*answer],
+                    refs.iter().map(|&r| vectors[r].as_slice()),
+                )
+            })?
+        })
+        .collect())
+}
+
 /// Scores every answer against its question. `answers` must already match `set` id for id, in
-/// order (as [`crate::formats::answers::load_for_set`] guarantees).
+/// order (as [`crate::formats::answers::load_for_set`] guarantees); `semantic`, when given,
+/// holds the answers' semantic scores in the same order (from [`semantic_scores`]).
 pub fn grade_set(
     set: &QuestionSet,
     answers: &[AnswerRecord],
     detector: &RefusalDetector,
+    semantic: Option<&[Option<f64>]>,
 ) -> Vec<GradeRecord> {
     debug_assert_eq!(
         set.len(),
@@ -67,7 +150,8 @@ pub fn grade_set(
     set.questions
         .par_iter()
         .zip(answers.par_iter())
-        .map(|(q, a)| {
+        .enumerate()
+        .map(|(i, (q, a))| {
             let scores = score::score_references(&a.answer, &q.references);
             let facts = score::facts::score_facts(&a.answer, &q.references, &q.question);
             GradeRecord {
@@ -80,6 +164,7 @@ pub fn grade_set(
                 refused: detector.is_refusal(&a.answer),
                 fact_recall: facts.map(|f| f.recall),
                 fact_contradiction: facts.map(|f| f.contradiction),
+                semantic: semantic.and_then(|s| s[i]),
                 answer: a.answer.clone(),
             }
         })

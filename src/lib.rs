@@ -12,6 +12,7 @@ pub mod answer;
 pub mod chat;
 pub mod cli;
 pub mod commands;
+pub mod embed;
 pub mod error;
 pub mod formats;
 pub mod fsutil;

@@ -8,7 +8,7 @@
 //! ```toml
 //! min_questions = 100
 //! [lift]
-//! metric = "token_f1"        # exact_match | token_f1 | rouge_l
+//! metric = "token_f1"        # exact_match | token_f1 | rouge_l | semantic
 //! min_ci_low = 0.0           # the lift interval's lower end must be above this
 //! interval = "bca"           # bca | percentile
 //! target = 0.03              # smallest lift worth shipping (only for the sample-size warning)
@@ -35,9 +35,13 @@ pub enum Metric {
     ExactMatch,
     TokenF1,
     RougeL,
+    /// Embedding cosine to the closest reference; only in grades made with `--embedder`.
+    Semantic,
 }
 
 impl Metric {
+    /// The metrics every grades file holds. [`Metric::Semantic`] is not among them: it is
+    /// present only when both variants were graded with an embedding model.
     pub const ALL: [Metric; 3] = [Metric::ExactMatch, Metric::TokenF1, Metric::RougeL];
 
     /// The name used in files (summary.json, the policy).
@@ -46,6 +50,7 @@ impl Metric {
             Metric::ExactMatch => "exact_match",
             Metric::TokenF1 => "token_f1",
             Metric::RougeL => "rouge_l",
+            Metric::Semantic => "semantic",
         }
     }
 
@@ -55,15 +60,17 @@ impl Metric {
             Metric::ExactMatch => "exact match",
             Metric::TokenF1 => "token F1",
             Metric::RougeL => "ROUGE-L",
+            Metric::Semantic => "semantic similarity",
         }
     }
 
-    /// Position in [`Metric::ALL`].
+    /// Position in [`Metric::ALL`]; [`Metric::Semantic`] comes after them, at 3.
     pub fn index(self) -> usize {
         match self {
             Metric::ExactMatch => 0,
             Metric::TokenF1 => 1,
             Metric::RougeL => 2,
+            Metric::Semantic => 3,
         }
     }
 }

@@ -50,7 +50,7 @@ macro_rules! bad_input {
 
 /// The number of cases below; a case that disappears fails
 /// `catalogue_keeps_every_case`, so none is dropped by accident.
-const CASES: usize = 85;
+const CASES: usize = 91;
 
 fn runner(family: &str) -> PathBuf {
     common::fixture("runner").join(family)
@@ -1284,6 +1284,92 @@ bad_input!(grades_fact_recall_out_of_range, |d| {
     write(d, "baseline.grades.jsonl", &grades_for(&IDS));
     write(d, "candidate.grades.jsonl", &(rows.join("\n") + "\n"));
     weigh(d, &[], &["candidate.grades.jsonl:2", "fact_recall", "1.5"])
+});
+
+/// A copy of the tiny sentence-embedding fixture (tests/fixtures/embedder/mean) in `dir/emb`,
+/// with the set and answers `grade` needs.
+fn embedder_copy(dir: &Path) -> PathBuf {
+    write_set(dir);
+    write(dir, "answers.jsonl", &answers_for(&IDS));
+    let emb = dir.join("emb");
+    common::copy_tree(&common::fixture("embedder").join("mean"), &emb);
+    emb
+}
+
+bad_input!(embedder_without_pooling_config, |d| {
+    let emb = embedder_copy(d);
+    std::fs::remove_file(emb.join("1_Pooling/config.json")).unwrap();
+    grade(
+        d,
+        &["--embedder", "emb"],
+        &["1_Pooling/config.json", "not found"],
+    )
+});
+
+bad_input!(embedder_without_weights, |d| {
+    let emb = embedder_copy(d);
+    std::fs::remove_file(emb.join("model.safetensors")).unwrap();
+    grade(
+        d,
+        &["--embedder", "emb"],
+        &["model.safetensors", "not found"],
+    )
+});
+
+bad_input!(embedder_unsupported_pooling, |d| {
+    let emb = embedder_copy(d);
+    write(
+        &emb,
+        "1_Pooling/config.json",
+        r#"{"embedding_dimension": 16, "pooling_mode": "max", "include_prompt": true}"#,
+    );
+    grade(
+        d,
+        &["--embedder", "emb"],
+        &[
+            "1_Pooling/config.json",
+            "pooling_mode",
+            "\"max\" is not supported",
+        ],
+    )
+});
+
+bad_input!(embedder_not_bert, |d| {
+    let emb = embedder_copy(d);
+    let path = emb.join("config.json");
+    let text = std::fs::read_to_string(&path).unwrap();
+    std::fs::write(&path, text.replace("\"bert\"", "\"xlm-roberta\"")).unwrap();
+    grade(
+        d,
+        &["--embedder", "emb"],
+        &["config.json", "model_type", "xlm-roberta", "BERT"],
+    )
+});
+
+bad_input!(policy_gates_on_semantic_without_semantic_scores, |d| {
+    write_set(d);
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    write(d, "candidate.grades.jsonl", &grades_for(&IDS));
+    write(d, "policy.toml", "[lift]\nmetric = \"semantic\"\n");
+    weigh(d, &["--policy", "policy.toml"], &["semantic", "--embedder"])
+});
+
+bad_input!(grades_semantic_out_of_range, |d| {
+    write_set(d);
+    let rows: Vec<String> = IDS
+        .iter()
+        .enumerate()
+        .map(|(i, id)| {
+            let mut row = grade_row(id);
+            if i == 0 {
+                row["semantic"] = json!(-1.5);
+            }
+            row.to_string()
+        })
+        .collect();
+    write(d, "baseline.grades.jsonl", &grades_for(&IDS));
+    write(d, "candidate.grades.jsonl", &(rows.join("\n") + "\n"));
+    weigh(d, &[], &["candidate.grades.jsonl:1", "semantic", "-1.5"])
 });
 
 bad_input!(training_file_row_without_question, |d| {

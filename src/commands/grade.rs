@@ -1,8 +1,10 @@
-//! `liftgate grade`: load the set, the answers and the policy's refusal phrases; grade; write
-//! the grades file and its run record (both or neither).
+//! `liftgate grade`: load the set, the answers, the policy's refusal phrases and the embedding
+//! model (`--embedder`, optional); grade; write the grades file and its run record (both or
+//! neither).
 
 use super::Outcome;
 use crate::cli::GradeArgs;
+use crate::embed::Embedder;
 use crate::error::{Error, Result};
 use crate::formats::answers;
 use crate::formats::questions::QuestionSet;
@@ -45,9 +47,14 @@ pub fn run(args: &GradeArgs) -> Result<Outcome> {
         }
         (Err(e), false) => return Err(e),
     }
+    let embedder = args.embedder.as_deref().map(Embedder::load).transpose()?;
+    let semantic = embedder
+        .as_ref()
+        .map(|e| grade::semantic_scores(e, &set, &answers))
+        .transpose()?;
     let detector = RefusalDetector::with_extra_phrases(&policy.refusal.extra_phrases);
-    let grades = grade::grade_set(&set, &answers, &detector);
-    grade::write_grades(&args.out, &grades, &set, &args.answers)?;
+    let grades = grade::grade_set(&set, &answers, &detector, semantic.as_deref());
+    grade::write_grades(&args.out, &grades, &set, &args.answers, embedder.as_ref())?;
     eprintln!("{}", grade::summary_line(&grades, &args.out));
     Ok(Outcome::Success)
 }

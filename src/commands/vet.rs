@@ -19,6 +19,7 @@ use super::args::{self, NamedVariant};
 use super::Outcome;
 use crate::answer::{self, Member};
 use crate::cli::VetArgs;
+use crate::embed::Embedder;
 use crate::error::{Error, Result};
 use crate::formats::questions::QuestionSet;
 use crate::fsutil;
@@ -238,6 +239,13 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
         .as_deref()
         .map(|t| leakage(&set, t))
         .transpose()?;
+    // And a bad embedding model directory, or a policy gating on a score that needs one.
+    let embedder = args.embedder.as_deref().map(Embedder::load).transpose()?;
+    if settings.policy.lift.metric == crate::policy::Metric::Semantic && embedder.is_none() {
+        return Err(Error::usage(
+            "the policy gates on semantic similarity (lift.metric = \"semantic\"), which needs --embedder DIR",
+        ));
+    }
     let stop = StopFlag::install()?;
     if let Some((spec, from)) =
         super::answer::shard_spec(args.shard.as_deref(), |k| std::env::var(k).ok())?
@@ -265,7 +273,15 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
             claim.dir.display()
         );
     }
-    match vet_into(&claim.dir, &settings, &set, args, leakage, &stop) {
+    match vet_into(
+        &claim.dir,
+        &settings,
+        &set,
+        args,
+        leakage,
+        embedder.as_ref(),
+        &stop,
+    ) {
         Ok(outcome) => Ok(outcome),
         Err(e @ Error::Interrupted { .. }) => Err(e),
         Err(e) => {
@@ -377,6 +393,7 @@ fn vet_into(
     set: &QuestionSet,
     args: &VetArgs,
     leakage: Option<Leakage>,
+    embedder: Option<&Embedder>,
     stop: &StopFlag,
 ) -> Result<Outcome> {
     let variants = &settings.variants;
@@ -427,9 +444,13 @@ fn vet_into(
     let detector = RefusalDetector::with_extra_phrases(&settings.policy.refusal.extra_phrases);
     let mut graded = Vec::with_capacity(runs.len());
     for (n, run) in names.iter().zip(&runs) {
-        let grades = grade::grade_set(set, &run.records, &detector);
+        let semantic = embedder
+            .map(|e| grade::semantic_scores(e, set, &run.records))
+            .transpose()?;
+        let grades = grade::grade_set(set, &run.records, &detector, semantic.as_deref());
         let grades_path = dir.join(dir::grades_file(n));
-        grade::write_grades(&grades_path, &grades, set, &dir.join(dir::answers_file(n)))?;
+        let answers_path = dir.join(dir::answers_file(n));
+        grade::write_grades(&grades_path, &grades, set, &answers_path, embedder)?;
         graded.push((grades_path, grades));
     }
     eprintln!(

@@ -55,28 +55,33 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>>
 
 /// [`load_for_set`] without the set-fingerprint check: ids only.
 pub fn load_rows(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>> {
+    use rayon::prelude::*;
     let lines = fsutil::read_jsonl_lines(path)?;
-    let mut rows = Vec::with_capacity(lines.len());
-    for (line, text) in &lines {
-        let row: AnswerRecord = serde_json::from_str(text).map_err(|e| {
-            row_error(
-                path,
-                *line,
-                text,
-                "answer row",
-                &e,
-                &[
-                    ("id", true, check::<String>),
-                    ("answer", true, check::<String>),
-                    ("finish", false, check::<Option<Finish>>),
-                    ("prompt_tokens", false, check::<Option<usize>>),
-                    ("new_tokens", false, check::<Option<usize>>),
-                    ("ms", false, check::<Option<u64>>),
-                ],
-            )
-        })?;
-        rows.push((*line, row));
-    }
+    // Lines are parsed in parallel; the first error in line order is the one reported.
+    let parsed: Vec<Result<(usize, AnswerRecord)>> = lines
+        .par_iter()
+        .map(|(line, text)| {
+            let row: AnswerRecord = serde_json::from_str(text).map_err(|e| {
+                row_error(
+                    path,
+                    *line,
+                    text,
+                    "answer row",
+                    &e,
+                    &[
+                        ("id", true, check::<String>),
+                        ("answer", true, check::<String>),
+                        ("finish", false, check::<Option<Finish>>),
+                        ("prompt_tokens", false, check::<Option<usize>>),
+                        ("new_tokens", false, check::<Option<usize>>),
+                        ("ms", false, check::<Option<u64>>),
+                    ],
+                )
+            })?;
+            Ok((*line, row))
+        })
+        .collect();
+    let rows = parsed.into_iter().collect::<Result<Vec<_>>>()?;
     check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
     Ok(rows.into_iter().map(|(_, r)| r).collect())
 }

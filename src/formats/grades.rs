@@ -3,7 +3,8 @@
 //! JSONL, one object a question: `id`, `category`, `expect`, `exact_match` (0 or 1), `token_f1`,
 //! `rouge_l`, `refused`. The three reference scores are null where the question has no
 //! references (typically `expect: refuse` questions). `fact_recall` and `fact_contradiction`
-//! are optional (absent when no reference states a fact, and in older files). liftgate adds
+//! are optional (absent when no reference states a fact, and in older files); so is `semantic`
+//! (absent unless graded with `--embedder`, null without references). liftgate adds
 //! `answer` (the graded text)
 //! so `weigh` can show both variants' answers side by side without the answers files.
 
@@ -35,6 +36,10 @@ pub struct GradeRecord {
     /// Whether the answer states a fact conflicting with the references; null like `fact_recall`.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub fact_contradiction: Option<bool>,
+    /// Cosine of the answer's and the closest reference's sentence embeddings, in [-1, 1]
+    /// (`score::semantic`); absent unless graded with `--embedder`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub semantic: Option<f64>,
     /// The answer text that was graded.
     #[serde(default)]
     pub answer: String,
@@ -42,60 +47,88 @@ pub struct GradeRecord {
 
 /// Reads a grades file and checks it matches the question set id for id, in order.
 pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<GradeRecord>> {
+    use rayon::prelude::*;
     let lines = fsutil::read_jsonl_lines(path)?;
-    let mut rows = Vec::with_capacity(lines.len());
-    for (line, text) in &lines {
-        let row: GradeRecord = serde_json::from_str(text).map_err(|e| {
-            row_error(
+    // Lines are parsed and checked in parallel; the first error in line order is reported.
+    let parsed: Vec<Result<(usize, GradeRecord)>> = lines
+        .par_iter()
+        .map(|(line, text)| parse_row(path, *line, text))
+        .collect();
+    let rows = parsed.into_iter().collect::<Result<Vec<_>>>()?;
+    check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
+    check_set_fingerprint(path, set)?;
+    finish(path, set, rows)
+}
+
+/// One grades row, parsed and range-checked.
+fn parse_row(path: &Path, line: usize, text: &str) -> Result<(usize, GradeRecord)> {
+    let row: GradeRecord = serde_json::from_str(text).map_err(|e| {
+        row_error(
+            path,
+            line,
+            text,
+            "grade row",
+            &e,
+            &[
+                ("id", true, check::<String>),
+                ("category", true, check::<String>),
+                ("expect", true, check::<Expect>),
+                ("exact_match", false, check::<Option<u8>>),
+                ("token_f1", false, check::<Option<f64>>),
+                ("rouge_l", false, check::<Option<f64>>),
+                ("refused", true, check::<bool>),
+                ("fact_recall", false, check::<Option<f64>>),
+                ("fact_contradiction", false, check::<Option<bool>>),
+                ("semantic", false, check::<Option<f64>>),
+                ("answer", false, check::<String>),
+            ],
+        )
+    })?;
+    if let Some(em) = row.exact_match {
+        if em > 1 {
+            return Err(Error::field(
                 path,
-                *line,
-                text,
-                "grade row",
-                &e,
-                &[
-                    ("id", true, check::<String>),
-                    ("category", true, check::<String>),
-                    ("expect", true, check::<Expect>),
-                    ("exact_match", false, check::<Option<u8>>),
-                    ("token_f1", false, check::<Option<f64>>),
-                    ("rouge_l", false, check::<Option<f64>>),
-                    ("refused", true, check::<bool>),
-                    ("fact_recall", false, check::<Option<f64>>),
-                    ("fact_contradiction", false, check::<Option<bool>>),
-                    ("answer", false, check::<String>),
-                ],
-            )
-        })?;
-        if let Some(em) = row.exact_match {
-            if em > 1 {
+                Some(line),
+                "exact_match",
+                "must be 0 or 1",
+            ));
+        }
+    }
+    for (name, v) in [
+        ("token_f1", row.token_f1),
+        ("rouge_l", row.rouge_l),
+        ("fact_recall", row.fact_recall),
+    ] {
+        if let Some(v) = v {
+            if !(0.0..=1.0).contains(&v) {
                 return Err(Error::field(
                     path,
-                    Some(*line),
-                    "exact_match",
-                    "must be 0 or 1",
+                    Some(line),
+                    name,
+                    format!("must be in [0, 1], found {v}"),
                 ));
             }
         }
-        for (name, v) in [
-            ("token_f1", row.token_f1),
-            ("rouge_l", row.rouge_l),
-            ("fact_recall", row.fact_recall),
-        ] {
-            if let Some(v) = v {
-                if !(0.0..=1.0).contains(&v) {
-                    return Err(Error::field(
-                        path,
-                        Some(*line),
-                        name,
-                        format!("must be in [0, 1], found {v}"),
-                    ));
-                }
-            }
-        }
-        rows.push((*line, row));
     }
-    check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
-    check_set_fingerprint(path, set)?;
+    if let Some(v) = row.semantic {
+        if !(-1.0..=1.0).contains(&v) {
+            return Err(Error::field(
+                path,
+                Some(line),
+                "semantic",
+                format!("must be in [-1, 1], found {v}"),
+            ));
+        }
+    }
+    Ok((line, row))
+}
+
+/// The rows after the id checks: each row's `expect` must be the set's.
+fn finish(
+    path: &Path,
+    set: &QuestionSet,
+    rows: Vec<(usize, GradeRecord)>,
+) -> Result<Vec<GradeRecord>> {
     for ((line, row), q) in rows.iter().zip(&set.questions) {
         if row.expect != q.expect {
             return Err(Error::field(

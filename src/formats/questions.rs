@@ -88,14 +88,20 @@ impl QuestionSet {
                 "the question set is empty: expected one JSON object a line",
             ));
         }
+        // Lines are parsed in parallel; errors are reported in line order, the first one.
+        use rayon::prelude::*;
+        let parsed: Vec<Result<Question>> = lines
+            .par_iter()
+            .map(|(line, text)| parse_question(path, *line, text))
+            .collect();
         let mut questions = Vec::with_capacity(lines.len());
         let mut seen = HashSet::new();
-        for (line, text) in lines {
-            let q = parse_question(path, *line, text)?;
+        for q in parsed {
+            let q = q?;
             if !seen.insert(q.id.clone()) {
                 return Err(Error::field(
                     path,
-                    Some(*line),
+                    Some(q.line),
                     "id",
                     format!("duplicate id {:?}", q.id),
                 ));

@@ -109,6 +109,10 @@ pub struct GradeRunInfo {
     /// The answers' `compute_dtype` (from their run.json), when recorded.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub compute_dtype: Option<String>,
+    /// The sentence-embedding model of the `semantic` scores (`grade --embedder`): its
+    /// directory and the SHA-256 of its model.safetensors. Absent when none was given.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub embedder: Option<InputFile>,
 }
 
 /// What produced an answers file: written as `<out>.run.json` (docs/interface.md, "Answers file").

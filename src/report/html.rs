@@ -388,11 +388,7 @@ fn verdict_section(o: &mut String, s: &Summary) {
 /// Four figures a reader can take away: the gate metric, both refusal shares, the set size.
 fn key_figures(o: &mut String, s: &Summary) {
     let gate = s.policy.lift.metric;
-    let m = match gate.as_str() {
-        "exact_match" => &s.metrics.exact_match,
-        "rouge_l" => &s.metrics.rouge_l,
-        _ => &s.metrics.token_f1,
-    };
+    let m = s.metrics.get(gate).unwrap_or(&s.metrics.token_f1);
     let check = |prefix: &str| s.verdict.checks.iter().find(|c| c.name.starts_with(prefix));
     let status = |c: Option<&Check>| c.map(|c| mark(c.pass)).unwrap_or("");
     o.push_str("<ul class=\"figures\" id=\"key-figures\">\n");
@@ -477,11 +473,8 @@ fn charts_section(o: &mut String, s: &Summary) {
         t,
         "<div class=\"tablewrap\"><table><thead><tr><th>metric</th><th class=\"n\">baseline</th><th class=\"n\">candidate</th><th class=\"n\">lift</th><th class=\"n\">{conf} interval</th><th class=\"n\">p-value</th><th class=\"n\">questions</th><th class=\"n\">better / worse / same</th></tr></thead><tbody>"
     );
-    for (name, m) in [
-        ("exact match", &s.metrics.exact_match),
-        ("token F1", &s.metrics.token_f1),
-        ("ROUGE-L", &s.metrics.rouge_l),
-    ] {
+    for (metric, m) in s.metrics.present() {
+        let name = metric.label();
         let _ = writeln!(
             t,
             "<tr><td>{name}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{}</td><td class=\"n\">{} / {} / {}</td></tr>",

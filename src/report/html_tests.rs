@@ -131,6 +131,7 @@ fn summary(hostile: bool) -> Summary {
             exact_match: metric(0.0, 40),
             token_f1: metric(0.08, 40),
             rouge_l: metric(0.06, 40),
+            semantic: None,
         },
         mcnemar: McNemar {
             baseline_only: 1,

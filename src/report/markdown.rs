@@ -254,11 +254,8 @@ pub fn render(s: &Summary) -> String {
         "| metric | baseline | candidate | lift | {conf} interval | p-value | questions | better / worse / same |"
     );
     let _ = writeln!(o, "|---|---:|---:|---:|---:|---:|---:|---:|");
-    for (name, m) in [
-        ("exact match", &s.metrics.exact_match),
-        ("token F1", &s.metrics.token_f1),
-        ("ROUGE-L", &s.metrics.rouge_l),
-    ] {
+    for (metric, m) in s.metrics.present() {
+        let name = metric.label();
         let _ = writeln!(
             o,
             "| {name} | {} | {} | {} | {} | {} | {} | {} / {} / {} |",

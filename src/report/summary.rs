@@ -97,12 +97,38 @@ pub struct Settings {
     pub rng: String,
 }
 
-/// The three metrics in a fixed order.
+/// The three metrics in a fixed order, then semantic similarity when both grades files have it.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 pub struct Metrics {
     pub exact_match: MetricSummary,
     pub token_f1: MetricSummary,
     pub rouge_l: MetricSummary,
+    /// Absent unless both variants were graded with `--embedder`.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub semantic: Option<MetricSummary>,
+}
+
+impl Metrics {
+    /// The summary of one metric; `None` only for semantic similarity when it was not graded.
+    pub fn get(&self, metric: crate::policy::Metric) -> Option<&MetricSummary> {
+        use crate::policy::Metric;
+        match metric {
+            Metric::ExactMatch => Some(&self.exact_match),
+            Metric::TokenF1 => Some(&self.token_f1),
+            Metric::RougeL => Some(&self.rouge_l),
+            Metric::Semantic => self.semantic.as_ref(),
+        }
+    }
+
+    /// Every metric present, in report order: the three, then semantic similarity if graded.
+    pub fn present(&self) -> Vec<(crate::policy::Metric, &MetricSummary)> {
+        use crate::policy::Metric;
+        Metric::ALL
+            .into_iter()
+            .chain([Metric::Semantic])
+            .filter_map(|m| self.get(m).map(|s| (m, s)))
+            .collect()
+    }
 }
 
 /// One metric: means over the `expect: answer` questions where both variants have a score.

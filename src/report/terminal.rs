@@ -51,12 +51,8 @@ pub fn render(s: &Summary) -> String {
         "p_value",
         "n",
     ]);
-    for (name, m) in [
-        ("exact_match", &s.metrics.exact_match),
-        ("token_f1", &s.metrics.token_f1),
-        ("rouge_l", &s.metrics.rouge_l),
-    ] {
-        t.add_row(metric_row(name, m));
+    for (metric, m) in s.metrics.present() {
+        t.add_row(metric_row(metric.as_str(), m));
     }
     if let Some(fa) = &s.facts {
         t.add_row(metric_row("fact_recall", &fa.recall));

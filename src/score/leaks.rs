@@ -24,6 +24,13 @@
 //! then computed exactly from the shingle sets, so the reported values carry no estimation
 //! error; what MinHash can cost is a missed pair: a short question contained in a much longer
 //! training item (low resemblance, high containment).
+//!
+//! With a sentence-embedding model (`leaks --embedder`), [`nearest_by_cosine`] also finds each
+//! held-out question's nearest training question by the cosine of their embeddings
+//! (`score::semantic::cosine`): a rewording that shares few word triples (other word order,
+//! synonyms) can still lie close in the embedding space. Exhaustive, exact search: one dot
+//! product per pair, so its cost grows with questions × training rows (the embedding of the
+//! training rows costs far more than the search).
 
 use super::FxHasher;
 use std::collections::{HashMap, HashSet};
@@ -40,6 +47,12 @@ pub const ROWS: usize = 2;
 /// the caller chooses another (`liftgate leaks --threshold`). Common practice, not a published
 /// constant: half of the question's word triples found in one training item.
 pub const DEFAULT_THRESHOLD: f64 = 0.5;
+
+/// Cosine at or above which `leaks --embedder` flags a held-out question's nearest training
+/// question, unless `--cosine-threshold` says otherwise. A rule of thumb for all-MiniLM-style
+/// models (paraphrases of one short question typically score above 0.85, related but different
+/// questions below), not a published constant; the right value depends on the model.
+pub const DEFAULT_COSINE_THRESHOLD: f64 = 0.9;
 
 const MERSENNE: u64 = (1 << 61) - 1;
 
@@ -156,6 +169,9 @@ pub enum LeakKind {
     Normalised,
     /// Containment at or above the threshold.
     Near,
+    /// Embedding cosine of the nearest training question at or above the cosine threshold,
+    /// and not flagged by the kinds above.
+    Semantic,
 }
 
 impl LeakKind {
@@ -164,8 +180,28 @@ impl LeakKind {
             LeakKind::Exact => "exact",
             LeakKind::Normalised => "normalised",
             LeakKind::Near => "near",
+            LeakKind::Semantic => "semantic",
         }
     }
+}
+
+/// For each held-out question embedding, the training embedding with the largest cosine and
+/// that cosine (the earliest on ties); `None` when there is no training embedding.
+pub fn nearest_by_cosine(questions: &[Vec<f32>], train: &[Vec<f32>]) -> Vec<Option<(usize, f64)>> {
+    use rayon::prelude::*;
+    questions
+        .par_iter()
+        .map(|q| {
+            let mut best: Option<(usize, f64)> = None;
+            for (j, t) in train.iter().enumerate() {
+                let c = super::semantic::cosine(q, t);
+                if best.is_none_or(|(_, b)| c > b) {
+                    best = Some((j, c));
+                }
+            }
+            best
+        })
+        .collect()
 }
 
 /// One flagged held-out question and its closest training item.

@@ -5,6 +5,7 @@
 //! - [`rouge`]: ROUGE-L F-measure (Lin, 2004) over rouge-score tokens;
 //! - [`refusal`]: whether an answer declines to answer (phrase matching);
 //! - [`facts`]: fact recall and contradiction against the references' times, prices, dates, ...
+//! - [`semantic`]: cosine of sentence embeddings, maximised over the references (SemScore).
 //!
 //! [`score_references`] combines the first two for one answer and a question's references.
 
@@ -12,6 +13,7 @@ pub mod facts;
 pub mod leaks;
 pub mod refusal;
 pub mod rouge;
+pub mod semantic;
 pub mod squad;
 
 pub use refusal::RefusalDetector;

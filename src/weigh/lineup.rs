@@ -48,10 +48,13 @@ pub fn lineup(
     let metric = policy.lift.metric;
     let alpha = 1.0 - settings.confidence;
     let k = candidates.len();
-    let gate_of = |s: &Summary| match metric {
-        crate::policy::Metric::ExactMatch => s.metrics.exact_match.clone(),
-        crate::policy::Metric::TokenF1 => s.metrics.token_f1.clone(),
-        crate::policy::Metric::RougeL => s.metrics.rouge_l.clone(),
+    // Weighing refuses a policy that gates on a metric the grades lack, so the gate metric
+    // is there; an empty one would only mean "no p-value".
+    let gate_of = |s: &Summary| {
+        s.metrics
+            .get(metric)
+            .cloned()
+            .unwrap_or_else(|| super::blocks::empty_metric(policy))
     };
     // A candidate with no p-value (nothing scored) counts as p = 1.
     let raw: Vec<f64> = candidates

@@ -8,6 +8,7 @@
 //! - per metric, over `expect: answer` questions where both variants have a score: means, the
 //!   mean paired lift with percentile and BCa bootstrap intervals (the three metrics resampled
 //!   jointly, same indices), and a sign-flip permutation p-value;
+//! - semantic similarity like the metrics, when both grades files hold it;
 //! - exact McNemar on exact match;
 //! - refusal rates with Wilson intervals;
 //! - fact recall (paired, like the metrics) and contradiction shares (Wilson), when the grades
@@ -95,6 +96,7 @@ pub(crate) fn score(row: &GradeRecord, metric: Metric) -> Option<f64> {
         Metric::ExactMatch => row.exact_match.map(f64::from),
         Metric::TokenF1 => row.token_f1,
         Metric::RougeL => row.rouge_l,
+        Metric::Semantic => row.semantic,
     }
 }
 
@@ -209,32 +211,73 @@ pub fn weigh(input: &WeighInput) -> Result<Summary> {
         .iter()
         .filter(|q| q.expect == Expect::Answer)
         .count();
-    let unscored = answer_total - pairs[gate.index()].index.len();
+    let unscored = answer_total
+        - if gate == Metric::Semantic {
+            paired(input, Metric::Semantic, |_| true).index.len()
+        } else {
+            pairs[gate.index()].index.len()
+        };
     if unscored > 0 {
         warnings.push(format!(
             "{unscored} in-scope question(s) have no {} score in one of the grades files and were left out of its lift.",
             gate.label()
         ));
     }
+    // Semantic similarity, when both grades files hold it, on a stream of its own: the other
+    // three metrics and their resamples stay exactly what they are without it.
+    let sem = paired(input, Metric::Semantic, |_| true);
+    if gate == Metric::Semantic && sem.index.is_empty() {
+        return Err(Error::usage(
+            "the policy gates on semantic similarity (lift.metric = \"semantic\") but the grades files hold no semantic scores in common; grade both variants with --embedder DIR",
+        ));
+    }
+    let semantic = (!sem.index.is_empty()).then(|| {
+        let k = Metric::Semantic.index() as u32;
+        let lift = paired_bootstrap(
+            &sem.diff,
+            s.resamples,
+            s.confidence,
+            s.seed,
+            rng::DOMAIN_METRICS_BOOTSTRAP + 1 + k,
+        );
+        if lift.bca_clamped {
+            warnings.push(format!(
+                "{}: every bootstrap resample fell on one side of the observed lift, so the BCa bias correction was clamped; read its interval with care.",
+                Metric::Semantic.label()
+            ));
+        }
+        let pv = sign_flip_test(
+            &sem.diff,
+            s.resamples,
+            s.seed,
+            rng::DOMAIN_METRICS_PERMUTATION + k,
+        )
+        .p_value;
+        metric_summary(&sem, Some(&lift), Some(pv), policy)
+    });
+    let gate_pair = if gate == Metric::Semantic {
+        &sem
+    } else {
+        &pairs[gate.index()]
+    };
     let mut ms = metric_summaries.into_iter();
     let metrics = Metrics {
         exact_match: ms.next().unwrap_or_else(|| empty_metric(policy)),
         token_f1: ms.next().unwrap_or_else(|| empty_metric(policy)),
         rouge_l: ms.next().unwrap_or_else(|| empty_metric(policy)),
+        semantic,
     };
 
     let mcnemar = mcnemar_block(input);
     let refusal = refusal_block(input, s.confidence);
     let facts = facts_block(input);
-    let categories = categories_block(input, &pairs[gate.index()]);
-    let mde = mde_block(&pairs[gate.index()].diff, policy, &mut warnings);
-    let changes = changes_block(input, &pairs[gate.index()], gate);
+    let categories = categories_block(input, gate_pair);
+    let mde = mde_block(&gate_pair.diff, policy, &mut warnings);
+    let changes = changes_block(input, gate_pair, gate);
 
-    let gate_summary = match gate {
-        Metric::ExactMatch => &metrics.exact_match,
-        Metric::TokenF1 => &metrics.token_f1,
-        Metric::RougeL => &metrics.rouge_l,
-    };
+    let gate_summary = metrics
+        .get(gate)
+        .ok_or_else(|| Error::internal("the gate metric has no summary"))?;
     let checks = gate::checks(
         policy,
         answer_total,

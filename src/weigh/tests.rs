@@ -44,6 +44,7 @@ fn grades(set: &QuestionSet, f1: &[Option<f64>], refused: bool) -> Vec<GradeReco
                 refused: q.expect == Expect::Refuse && refused,
                 fact_recall: None,
                 fact_contradiction: None,
+                semantic: None,
                 answer: String::new(),
             }
         })
@@ -357,4 +358,52 @@ fn a_contradiction_check_without_fact_scores_fails_with_a_reason() {
         .as_deref()
         .unwrap()
         .contains("grade the answers again"));
+}
+
+#[test]
+fn semantic_scores_are_weighed_only_when_both_variants_have_them_and_can_gate() {
+    let set = set(40, 0);
+    let base = grades(&set, &wobble(40, 0.5, 0.2), false);
+    let cand = grades(&set, &wobble(40, 0.6, 0.2), false);
+    let policy = Policy::default();
+    let plain = run(&set, &base, &cand, &policy);
+    assert!(plain.metrics.semantic.is_none());
+
+    // Semantic scores 0.3 lower than F1 on both sides: the same lift, and the other metrics'
+    // figures untouched (semantic similarity is resampled on its own stream).
+    let with = |g: &[GradeRecord]| -> Vec<GradeRecord> {
+        g.iter()
+            .map(|r| GradeRecord {
+                semantic: r.token_f1.map(|f| f - 0.3),
+                ..r.clone()
+            })
+            .collect()
+    };
+    let (sb, sc) = (with(&base), with(&cand));
+    let s = run(&set, &sb, &sc, &policy);
+    let m = s.metrics.semantic.as_ref().expect("semantic weighed");
+    assert!((m.lift.unwrap() - plain.metrics.token_f1.lift.unwrap()).abs() < 1e-12);
+    assert_eq!(m.n, 40);
+    assert_eq!(s.metrics.token_f1, plain.metrics.token_f1);
+    assert_eq!(s.verdict, plain.verdict);
+
+    let mut gate_semantic = Policy::default();
+    gate_semantic.lift.metric = Metric::Semantic;
+    let gated = run(&set, &sb, &sc, &gate_semantic);
+    assert!(gated
+        .verdict
+        .checks
+        .iter()
+        .any(|c| c.name == "lift.semantic"));
+    // Gating on semantic similarity without it is a usage error, not a silent pass.
+    let err = weigh(&WeighInput {
+        set: &set,
+        baseline: &base,
+        candidate: &cand,
+        policy: &gate_semantic,
+        settings: Settings::new(2000, 7, 0.95).unwrap(),
+        inputs: inputs(),
+    })
+    .unwrap_err();
+    assert!(err.to_string().contains("--embedder"), "{err}");
 }

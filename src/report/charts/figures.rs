@@ -18,11 +18,12 @@ fn conf(s: &Summary) -> String {
 pub fn lift_chart(s: &Summary) -> Chart {
     let gate = s.policy.lift.metric;
     let cands = candidates(s);
-    let metrics: [(&str, &str, &MetricSummary); 3] = [
-        ("exact_match", "exact match", &s.metrics.exact_match),
-        ("token_f1", "token F1", &s.metrics.token_f1),
-        ("rouge_l", "ROUGE-L", &s.metrics.rouge_l),
-    ];
+    let metrics: Vec<(&str, &str, &MetricSummary)> = s
+        .metrics
+        .present()
+        .into_iter()
+        .map(|(m, summary)| (m.as_str(), m.label(), summary))
+        .collect();
     let rows = metrics
         .iter()
         .map(|(key, label, m)| {
@@ -242,11 +243,12 @@ pub fn refusal_chart(s: &Summary) -> Chart {
 /// How many questions scored higher, lower or the same with the fine-tune, per metric.
 pub fn changes_chart(s: &Summary) -> Chart {
     let gate = s.policy.lift.metric;
-    let metrics: [(&str, &str, &MetricSummary); 3] = [
-        ("exact_match", "exact match", &s.metrics.exact_match),
-        ("token_f1", "token F1", &s.metrics.token_f1),
-        ("rouge_l", "ROUGE-L", &s.metrics.rouge_l),
-    ];
+    let metrics: Vec<(&str, &str, &MetricSummary)> = s
+        .metrics
+        .present()
+        .into_iter()
+        .map(|(m, summary)| (m.as_str(), m.label(), summary))
+        .collect();
     let rows = metrics
         .iter()
         .map(|(key, label, m)| BarRow {
