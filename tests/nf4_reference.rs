@@ -256,3 +256,32 @@ fn adapters_on_the_4_bit_base_answer_as_the_reference() {
     );
     assert!(compared > 300, "only {compared} cases compared");
 }
+
+/// The mean the double quantisation subtracts is `torch.mean` of the block scales, summed in
+/// PyTorch's own order: `nf4::torch_sum` against torch 2.15 on CPU (one thread) for lengths
+/// 1-129 and up to 917,504 (tests/fixtures/nf4_sums.json, made by
+/// tests/reference/make_nf4_fixtures.py).
+#[test]
+fn scale_sums_follow_torch_bit_for_bit() {
+    let doc = read(&Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/nf4_sums.json"));
+    let cases = doc["cases"].as_array().unwrap();
+    for c in cases {
+        let n = c["n"].as_u64().unwrap() as usize;
+        let v: Vec<f32> = (0..n)
+            .map(|i| ((i * 7919 % 1000) as f32) / 3333.0 + 0.01)
+            .collect();
+        let sum = nf4::torch_sum(&v);
+        assert_eq!(
+            sum.to_bits() as u64,
+            c["sum_bits"].as_u64().unwrap(),
+            "sum of {n}"
+        );
+        let mean = sum / n as f32;
+        assert_eq!(
+            mean.to_bits() as u64,
+            c["mean_bits"].as_u64().unwrap(),
+            "mean of {n}"
+        );
+    }
+    assert!(cases.len() > 130);
+}

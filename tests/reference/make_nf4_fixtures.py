@@ -18,9 +18,13 @@ this script records
     make_runner_fixtures.py (`run_cases`), with the per-step top-1/top-2 margins; a case whose
     smallest margin is below 1e-3 is kept and flagged `margin_ok: false`.
 
-Output: tests/fixtures/runner/<family>/nf4.json. Usage:
+Output: tests/fixtures/runner/<family>/nf4.json, and tests/fixtures/nf4_sums.json: `torch.sum`
+and `torch.mean` of f32 vectors of many lengths (values v[i] = f32((i * 7919 % 1000) / 3333 +
+0.01), computed the same way in the Rust test), since the offset of the double quantisation is
+torch's mean in its own order of additions. Usage:
 
     nice -n 10 /path/to/venv/bin/python tests/reference/make_nf4_fixtures.py [--only FAMILY ...]
+    nice -n 10 /path/to/venv/bin/python tests/reference/make_nf4_fixtures.py --sums-only
 
 What bitsandbytes 0.50.2 computes on CPU (line numbers refer to the installed package,
 site-packages/bitsandbytes/, and to csrc/cpu_ops.cpp of its source), reproduced by
@@ -215,10 +219,37 @@ def dump(doc):
     return text[:-2] + ',\n "settings": [\n' + ",\n".join(parts) + "\n ]\n}\n"
 
 
+SUM_LENGTHS = list(range(1, 130)) + [255, 256, 257, 1000, 4096, 5184, 13824, 32768, 40000, 917504]
+
+
+def sums():
+    """torch.sum / torch.mean of the vectors the Rust test rebuilds (tests/fixtures/nf4_sums.json)."""
+    rows = []
+    for n in SUM_LENGTHS:
+        i = np.arange(n, dtype=np.int64)
+        v = ((i * 7919 % 1000).astype(np.float32) / np.float32(3333.0) + np.float32(0.01)).astype(np.float32)
+        t = torch.from_numpy(v)
+        rows.append(dict(n=n, sum_bits=int(np.float32(t.sum().item()).view(np.uint32)),
+                         mean_bits=int(np.float32(t.mean().item()).view(np.uint32))))
+    out = OUT.parent / "nf4_sums.json"
+    out.write_text(json.dumps(dict(
+        generator="tests/reference/make_nf4_fixtures.py",
+        rule=f"torch {torch.__version__.split('+')[0]} on CPU, {torch.get_num_threads()} thread: "
+             "v[i] = f32(f32(i * 7919 % 1000) / 3333 + 0.01) for i < n; sum_bits and mean_bits are the "
+             "IEEE bits of torch.sum(v) and torch.mean(v).",
+        cpu_capability=torch.backends.cpu.get_cpu_capability(),
+        cases=rows), indent=1) + "\n")
+    R.log(f"wrote {out}")
+
+
 def main():
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--only", nargs="*")
+    ap.add_argument("--sums-only", action="store_true")
     args = ap.parse_args()
+    sums()
+    if args.sums_only:
+        return
     fams = args.only or list(R.FAMILIES)
     R.log(f"torch {torch.__version__}, transformers {transformers.__version__}, peft {peft.__version__}, "
           f"bitsandbytes {bitsandbytes.__version__}")
