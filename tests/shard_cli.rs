@@ -57,6 +57,18 @@ fn with_set() -> Bin {
     t
 }
 
+/// Runs `args` with `env` set and the scheduler variables otherwise cleared.
+fn scheduled(t: &Bin, args: Vec<&str>, env: &[(&str, &str)]) -> Run {
+    let mut c = t.command(args);
+    for v in SCHEDULER_VARS {
+        c.env_remove(v);
+    }
+    for (k, v) in env {
+        c.env(k, v);
+    }
+    Run::of(c)
+}
+
 /// `answer` into `out` with `extra` arguments and `env` set, scheduler variables otherwise
 /// cleared.
 fn answer(t: &Bin, out: &str, extra: &[&str], env: &[(&str, &str)]) -> Run {
@@ -75,14 +87,7 @@ fn answer(t: &Bin, out: &str, extra: &[&str], env: &[(&str, &str)]) -> Run {
         "1",
     ];
     args.extend_from_slice(extra);
-    let mut c = t.command(args);
-    for v in SCHEDULER_VARS {
-        c.env_remove(v);
-    }
-    for (k, v) in env {
-        c.env(k, v);
-    }
-    Run::of(c)
+    scheduled(t, args, env)
 }
 
 /// An answers file with every `"ms":N` field cut out, otherwise byte for byte.
@@ -292,14 +297,7 @@ fn vet_in_shards_then_gathered_equals_a_whole_vet() {
             "--no-history",
         ];
         args.extend_from_slice(extra);
-        let mut c = t.command(args);
-        for v in SCHEDULER_VARS {
-            c.env_remove(v);
-        }
-        for (k, v) in env {
-            c.env(k, v);
-        }
-        Run::of(c)
+        scheduled(&t, args, env)
     };
     let whole = vet("whole", &[], &[]);
     for k in 0..3 {
@@ -378,11 +376,7 @@ fn vet_gathering_refuses_shards_of_other_settings() {
             "--no-history",
         ];
         args.extend_from_slice(extra);
-        let mut c = t.command(args);
-        for v in SCHEDULER_VARS {
-            c.env_remove(v);
-        }
-        Run::of(c)
+        scheduled(&t, args, &[])
     };
     for k in ["0/2", "1/2"] {
         vet(&["--shard", k, "--report", "r", "--max-new-tokens", "8"]).expect_success();
@@ -396,7 +390,7 @@ fn vet_gathering_refuses_shards_of_other_settings() {
     assert!(!t.path("r/summary.json").exists());
     assert!(t.path("r/shards/candidate.1-of-2.answers.jsonl").is_file());
 
-    let mut c = t.command([
+    let args = vec![
         "vet",
         "--model",
         m.to_str().unwrap(),
@@ -405,12 +399,8 @@ fn vet_gathering_refuses_shards_of_other_settings() {
         "--questions",
         "set.jsonl",
         "--no-history",
-    ]);
-    for v in SCHEDULER_VARS {
-        c.env_remove(v);
-    }
-    c.env("LIFTGATE_SHARD", "0/2");
-    Run::of(c)
+    ];
+    scheduled(&t, args, &[("LIFTGATE_SHARD", "0/2")])
         .expect_code(2)
         .expect_stderr(&["LIFTGATE_SHARD=0/2", "give --report DIR"]);
 }
