@@ -14,16 +14,20 @@ fn conf(s: &Summary) -> String {
     format!("{:.0}%", 100.0 * s.settings.confidence)
 }
 
+/// The metrics the summary holds: key, label and figures.
+fn present_metrics(s: &Summary) -> Vec<(&str, &str, &MetricSummary)> {
+    s.metrics
+        .present()
+        .into_iter()
+        .map(|(m, summary)| (m.as_str(), m.label(), summary))
+        .collect()
+}
+
 /// The lift of each metric with its interval, the zero line, the gate's bar and the target.
 pub fn lift_chart(s: &Summary) -> Chart {
     let gate = s.policy.lift.metric;
     let cands = candidates(s);
-    let metrics: Vec<(&str, &str, &MetricSummary)> = s
-        .metrics
-        .present()
-        .into_iter()
-        .map(|(m, summary)| (m.as_str(), m.label(), summary))
-        .collect();
+    let metrics = present_metrics(s);
     let rows = metrics
         .iter()
         .map(|(key, label, m)| {
@@ -243,12 +247,7 @@ pub fn refusal_chart(s: &Summary) -> Chart {
 /// How many questions scored higher, lower or the same with the fine-tune, per metric.
 pub fn changes_chart(s: &Summary) -> Chart {
     let gate = s.policy.lift.metric;
-    let metrics: Vec<(&str, &str, &MetricSummary)> = s
-        .metrics
-        .present()
-        .into_iter()
-        .map(|(m, summary)| (m.as_str(), m.label(), summary))
-        .collect();
+    let metrics = present_metrics(s);
     let rows = metrics
         .iter()
         .map(|(key, label, m)| BarRow {
