@@ -449,16 +449,18 @@ impl Store {
     }
 }
 
-/// `(user_version, application_id, number of tables)`.
+/// `(user_version, application_id, number of tables)`, read in one statement so the three
+/// come from one snapshot: read one at a time, a first writer's schema could commit between
+/// them, and a fresh history would look like a database of another program (version 0 and no
+/// application id, but tables).
 fn identity(conn: &Connection) -> rusqlite::Result<(i64, i32, i64)> {
-    let version = conn.query_row("PRAGMA user_version", [], |r| r.get(0))?;
-    let app = conn.query_row("PRAGMA application_id", [], |r| r.get(0))?;
-    let tables = conn.query_row(
-        "SELECT count(*) FROM sqlite_master WHERE type = 'table'",
+    conn.query_row(
+        "SELECT (SELECT user_version FROM pragma_user_version), \
+                (SELECT application_id FROM pragma_application_id), \
+                (SELECT count(*) FROM sqlite_master WHERE type = 'table')",
         [],
-        |r| r.get(0),
-    )?;
-    Ok((version, app, tables))
+        |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?)),
+    )
 }
 
 fn check_identity(path: &Path, version: i64, app: i32, tables: i64) -> Result<()> {

@@ -54,7 +54,22 @@ impl Int8Rows {
     ///
     /// Panics unless `cols` ≤ [`MAX_COLS`] and `w` holds rows·cols values.
     pub fn quantize(w: &[f32], rows: usize, cols: usize) -> (Int8Rows, Vec<RowStats>) {
-        assert!(cols <= MAX_COLS && w.len() >= rows * cols);
+        assert!(w.len() >= rows * cols);
+        Int8Rows::quantize_rows(rows, cols, |j, dst| {
+            dst.copy_from_slice(&w[j * cols..(j + 1) * cols])
+        })
+    }
+
+    /// As [`Int8Rows::quantize`], with row j written as f32 into a buffer by `row_into(j, buf)`:
+    /// for rows kept in another format (a 16-bit head), widened one at a time.
+    ///
+    /// Panics unless `cols` ≤ [`MAX_COLS`].
+    pub fn quantize_rows(
+        rows: usize,
+        cols: usize,
+        row_into: impl Fn(usize, &mut [f32]) + Sync,
+    ) -> (Int8Rows, Vec<RowStats>) {
+        assert!(cols <= MAX_COLS);
         let quads = cols.div_ceil(4);
         let blocks = rows.div_ceil(LANES);
         let mut packed = vec![0u32; blocks * quads * LANES];
@@ -64,12 +79,13 @@ impl Int8Rows {
             .zip(stats.par_chunks_mut(LANES))
             .enumerate()
             .for_each(|(b, (pk, st))| {
+                let mut row = vec![0f32; cols];
                 for (l, stat) in st.iter_mut().enumerate() {
                     let j = b * LANES + l;
                     if j >= rows {
                         break;
                     }
-                    let row = &w[j * cols..(j + 1) * cols];
+                    row_into(j, &mut row);
                     let max = row.iter().fold(0f32, |m, v| m.max(v.abs()));
                     let s = max / 127.0;
                     let (mut qsum, mut r2, mut w2, mut q2) = (0i32, 0f64, 0f64, 0f64);

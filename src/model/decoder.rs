@@ -21,7 +21,7 @@
 //! `rope`, the greedy pick at the output `head`; the products themselves are `crate::kernels`.
 
 use crate::error::{Error, Result};
-use crate::kernels::dense::{dot, matmul_t, Half};
+use crate::kernels::dense::dot;
 use crate::kernels::PARALLEL_WORK;
 use crate::model::config::{Activation, ModelSpec, NormStyle};
 use crate::model::head::{apply_repetition_penalty, argmax, Scratch as HeadScratch, Screen};
@@ -29,6 +29,7 @@ use crate::model::linear::{flat, Linear, WeightFormat};
 use crate::model::lora::LowRank;
 use crate::model::names::{self, EMBED, FINAL_NORM, LM_HEAD};
 use crate::model::rope::{rope_frequencies, rope_in_place};
+use crate::model::table::Table;
 use crate::model::weights::QuantisedBase;
 use candle_core::Tensor;
 use rayon::prelude::*;
@@ -116,62 +117,16 @@ struct Layer {
 /// The model, ready to run.
 pub struct Decoder {
     spec: ModelSpec,
-    /// [vocab, hidden]
-    embed: Embedding,
-    /// [vocab, hidden]; None when tied to the embedding. The head stays f32 in every weight
-    /// format: its greedy pick goes through `screen`, which is cheaper than a bf16 head.
-    lm_head: Option<Vec<f32>>,
+    /// [vocab, hidden], at its stored precision (rows widened where looked up).
+    embed: Table,
+    /// [vocab, hidden]; None when tied to the embedding. At its stored precision in every
+    /// weight format: rows widened to f32 where they are used, so the logits are the f32 ones.
+    lm_head: Option<Table>,
     /// The 8-bit screen of the output head for greedy picks (None under a final soft-cap).
     screen: Option<Screen>,
     final_norm: Vec<f32>,
     layers: Vec<Layer>,
     eps: f32,
-}
-
-/// The embedding table, [vocab, hidden]. With its own output head the table is only looked up,
-/// so a bf16 or f16 table stays 16-bit and each looked-up row is widened (exact); tied to the
-/// head it is f32, since the head's products and screen read it as f32.
-enum Embedding {
-    F32(Vec<f32>),
-    Bf16(Vec<half::bf16>),
-    F16(Vec<half::f16>),
-}
-
-impl Embedding {
-    fn from_tensor(t: &Tensor, keep_16_bit: bool) -> Result<Embedding> {
-        let values = |t: &Tensor| -> Result<_> { Ok(t.flatten_all()?) };
-        Ok(match (keep_16_bit, t.dtype()) {
-            (true, candle_core::DType::BF16) => Embedding::Bf16(values(t)?.to_vec1()?),
-            (true, candle_core::DType::F16) => Embedding::F16(values(t)?.to_vec1()?),
-            _ => Embedding::F32(flat(t)?),
-        })
-    }
-
-    fn len(&self) -> usize {
-        match self {
-            Embedding::F32(v) => v.len(),
-            Embedding::Bf16(v) => v.len(),
-            Embedding::F16(v) => v.len(),
-        }
-    }
-
-    /// The f32 table, when it is held in f32.
-    fn as_f32(&self) -> Option<&[f32]> {
-        match self {
-            Embedding::F32(v) => Some(v),
-            _ => None,
-        }
-    }
-
-    /// Writes row `tok` (of `dst.len()` values) into `dst` as f32.
-    fn row_into(&self, tok: usize, dst: &mut [f32]) {
-        let (a, b) = (tok * dst.len(), (tok + 1) * dst.len());
-        match self {
-            Embedding::F32(v) => dst.copy_from_slice(&v[a..b]),
-            Embedding::Bf16(v) => Half::widen(&v[a..b], dst),
-            Embedding::F16(v) => Half::widen(&v[a..b], dst),
-        }
-    }
 }
 
 impl Decoder {
@@ -217,7 +172,6 @@ impl Decoder {
                     .push((variant, lr));
             }
         }
-        let own_head = w.contains_key(LM_HEAD);
         let mut take = |name: &str| -> Result<Tensor> {
             w.remove(name)
                 .ok_or_else(|| Error::internal(format!("tensor {name} was not loaded")))
@@ -229,7 +183,7 @@ impl Decoder {
                 NormStyle::Gemma => v.into_iter().map(|x| 1.0 + x).collect(),
             })
         };
-        let embed = Embedding::from_tensor(&take(EMBED)?, own_head)?;
+        let embed = Table::from_tensor(&take(EMBED)?)?;
         let mut layers = Vec::with_capacity(spec.num_layers);
         for l in 0..spec.num_layers {
             let tensor = names::Layer::new(l);
@@ -300,11 +254,11 @@ impl Decoder {
             )));
         }
         let final_norm = norm(take(FINAL_NORM)?)?;
-        let lm_head = w.remove(LM_HEAD).map(|h| flat(&h)).transpose()?;
-        let head = lm_head
-            .as_deref()
-            .or(embed.as_f32())
-            .ok_or_else(|| Error::internal("a tied embedding table must be f32"))?;
+        let lm_head = w
+            .remove(LM_HEAD)
+            .map(|h| Table::from_tensor(&h))
+            .transpose()?;
+        let head = lm_head.as_ref().unwrap_or(&embed);
         // The soft-cap's tanh can round distinct logits to one f32 value, so a capped head
         // computes every logit.
         let screen = match spec.final_softcap {
@@ -392,7 +346,7 @@ impl Decoder {
         let (ns, hidden, vocab) = (segs.len(), self.spec.hidden_size, self.spec.vocab_size);
         let normed = &ws.last_normed[..ns * hidden];
         let logits = sized(&mut ws.logits, ns * vocab);
-        matmul_t(normed, ns, hidden, self.head(), vocab, logits);
+        self.head().matmul_t(normed, ns, hidden, vocab, logits);
         if let Some(c) = self.spec.final_softcap {
             let c = c as f32;
             for v in logits.iter_mut() {
@@ -442,13 +396,9 @@ impl Decoder {
         Ok(&ws.tokens)
     }
 
-    /// The f32 output head, [vocab, hidden].
-    fn head(&self) -> &[f32] {
-        // Neither is refused when the decoder is built.
-        self.lm_head
-            .as_deref()
-            .or(self.embed.as_f32())
-            .unwrap_or(&[])
+    /// The output head, [vocab, hidden]: its own rows or the embedding table's.
+    fn head(&self) -> &Table {
+        self.lm_head.as_ref().unwrap_or(&self.embed)
     }
 
     /// The model up to the final norm: each segment's last hidden state, normed, into

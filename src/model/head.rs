@@ -31,8 +31,8 @@
 //! The rounding and the integer products are `crate::kernels::int8`; this module holds the
 //! bounds and the decision, which are what make the pick equal to the f32 argmax.
 
-use crate::kernels::dense::dot;
 use crate::kernels::int8::{pack_activations, Int8Rows, Rounded, LANES, MAX_COLS};
+use crate::model::table::Table;
 use rayon::prelude::*;
 
 /// Unit roundoff of f32.
@@ -67,6 +67,8 @@ pub struct Scratch {
 struct TokenScratch {
     candidates: Vec<u32>,
     logits: Vec<f32>,
+    /// One head row widened to f32.
+    row: Vec<f32>,
 }
 
 /// The smallest f32 not below `v`.
@@ -90,15 +92,15 @@ fn down(v: f64) -> f32 {
 }
 
 impl Screen {
-    /// Screens the rows of `w` ([rows, cols] row-major), or None when `cols` is too long for
-    /// exact 32-bit integer sums.
-    pub fn new(w: &[f32], rows: usize, cols: usize) -> Option<Screen> {
+    /// Screens the rows of `w` ([rows, cols] row-major, at its stored precision), or None when
+    /// `cols` is too long for exact 32-bit integer sums.
+    pub fn new(w: &Table, rows: usize, cols: usize) -> Option<Screen> {
         if cols == 0 || cols > MAX_COLS || w.len() < rows * cols {
             return None;
         }
         let n = cols as f64 * F32_UNIT_ROUNDOFF;
         let gamma = n / (1.0 - n);
-        let (int8, stats) = Int8Rows::quantize(w, rows, cols);
+        let (int8, stats) = Int8Rows::quantize_rows(rows, cols, |j, dst| w.row_into(j, dst));
         // The f64 sums of at most 2^16 terms are within 1e-11 relative.
         let slack = 1.0 + 1e-9;
         Some(Screen {
@@ -120,11 +122,11 @@ impl Screen {
     }
 
     /// The greedy token of each of the `n` hidden vectors `x` ([n, cols]) under the head `w`
-    /// (the f32 rows this screen was made from), into `out`. `penalty`: the repetition penalty
+    /// (the rows this screen was made from), into `out`. `penalty`: the repetition penalty
     /// and, per vector, the ids it applies to (an empty slice: none).
     pub fn pick(
         &self,
-        w: &[f32],
+        w: &Table,
         x: &[f32],
         n: usize,
         penalty: Option<(f32, &[&[bool]])>,
@@ -149,7 +151,7 @@ impl Screen {
             let xt = &x[t * cols..(t + 1) * cols];
             *tok = match rounded[t] {
                 Some(r) => self.decide(w, xt, acc, n, t, r, seen, ts),
-                None => full(w, xt, rows, cols, seen, &mut ts.logits),
+                None => full(w, xt, rows, seen, ts),
             };
         };
         if n > 1 && n * rows >= 1 << 16 {
@@ -216,7 +218,7 @@ impl Screen {
     #[allow(clippy::too_many_arguments)]
     fn decide(
         &self,
-        w: &[f32],
+        w: &Table,
         x: &[f32],
         acc: &[i32],
         n: usize,
@@ -225,7 +227,7 @@ impl Screen {
         seen: Option<(f32, &[bool])>,
         ts: &mut TokenScratch,
     ) -> u32 {
-        let (rows, cols) = (self.rows, self.cols);
+        let rows = self.rows;
         let (mut lo, mut hi) = ([0f32; LANES], [0f32; LANES]);
         let mut floor = f32::NEG_INFINITY;
         for b in 0..self.blocks {
@@ -242,19 +244,19 @@ impl Screen {
             }
         }
         if ts.candidates.len() > rows / 4 {
-            return full(w, x, rows, cols, seen, &mut ts.logits);
+            return full(w, x, rows, seen, ts);
         }
         let mut best: Option<(u32, f32)> = None;
         for &j in &ts.candidates {
             let ju = j as usize;
-            let mut v = dot(&w[ju * cols..(ju + 1) * cols], x);
+            let mut v = w.dot_row(ju, x, &mut ts.row);
             if let Some((p, s)) = seen {
                 if s.get(ju).copied().unwrap_or(false) {
                     v = penalize(v, p);
                 }
             }
             if !v.is_finite() {
-                return full(w, x, rows, cols, seen, &mut ts.logits);
+                return full(w, x, rows, seen, ts);
             }
             if best.is_none_or(|(_, bv)| v > bv) {
                 best = Some((j, v));
@@ -266,15 +268,15 @@ impl Screen {
 
 /// Every f32 logit of `x`, the penalty, then [`argmax`].
 fn full(
-    w: &[f32],
+    w: &Table,
     x: &[f32],
     rows: usize,
-    cols: usize,
     seen: Option<(f32, &[bool])>,
-    logits: &mut Vec<f32>,
+    ts: &mut TokenScratch,
 ) -> u32 {
+    let TokenScratch { logits, row, .. } = ts;
     logits.clear();
-    logits.extend((0..rows).map(|j| dot(&w[j * cols..(j + 1) * cols], x)));
+    logits.extend((0..rows).map(|j| w.dot_row(j, x, row)));
     if let Some((p, s)) = seen {
         apply_repetition_penalty(logits, s, p);
     }
@@ -322,6 +324,7 @@ pub fn apply_repetition_penalty(scores: &mut [f32], seen: &[bool], p: f32) {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::kernels::dense::dot;
 
     /// A small deterministic generator (xorshift64*), uniform in [-1, 1).
     struct Gen(u64);
@@ -366,6 +369,7 @@ mod tests {
     /// A head, its hidden vectors and its screen, after one unpenalised pick into `out`.
     struct Case {
         w: Vec<f32>,
+        table: Table,
         x: Vec<f32>,
         screen: Screen,
         scratch: Scratch,
@@ -376,12 +380,14 @@ mod tests {
         fn picked(rows: usize, cols: usize, n: usize, g: &mut Gen) -> Case {
             let w = head(rows, cols, g);
             let x = hidden(&w, n, cols, g);
-            let screen = Screen::new(&w, rows, cols).expect("screen");
+            let table = Table::F32(w.clone());
+            let screen = Screen::new(&table, rows, cols).expect("screen");
             let mut scratch = Scratch::default();
             let mut out = Vec::new();
-            screen.pick(&w, &x, n, None, &mut scratch, &mut out);
+            screen.pick(&table, &x, n, None, &mut scratch, &mut out);
             Case {
                 w,
+                table,
                 x,
                 screen,
                 scratch,
@@ -399,7 +405,13 @@ mod tests {
         cols: usize,
         pen: Option<(f32, &[bool])>,
     ) -> u32 {
-        full(w, x, rows, cols, pen, &mut Vec::new())
+        let mut logits: Vec<f32> = (0..rows)
+            .map(|j| dot(&w[j * cols..(j + 1) * cols], x))
+            .collect();
+        if let Some((p, s)) = pen {
+            apply_repetition_penalty(&mut logits, s, p);
+        }
+        argmax(&logits) as u32
     }
 
     #[test]
@@ -415,6 +427,7 @@ mod tests {
         for &(rows, cols, n) in &[(1000, 67, 11), (333, 64, 5), (40, 6, 6), (4099, 130, 9)] {
             let Case {
                 w,
+                table,
                 x,
                 screen,
                 mut scratch,
@@ -437,7 +450,7 @@ mod tests {
                 })
                 .collect();
             let refs: Vec<&[bool]> = seen.iter().map(|s| s.as_slice()).collect();
-            screen.pick(&w, &x, n, Some((p, &refs)), &mut scratch, &mut out);
+            screen.pick(&table, &x, n, Some((p, &refs)), &mut scratch, &mut out);
             for t in 0..n {
                 let xt = &x[t * cols..(t + 1) * cols];
                 let want = reference(&w, xt, rows, cols, Some((p, &seen[t])));
@@ -492,6 +505,34 @@ mod tests {
                 kept += hi.iter().filter(|&&h| h >= floor).count();
             }
             assert!(kept <= rows / 4, "vector {t} kept {kept} of {rows}");
+        }
+    }
+
+    /// A head stored in bf16 picks what the f32 head of its widened values picks, penalty and
+    /// all: the screen and the candidates' logits see the same f32 values.
+    #[test]
+    fn a_16_bit_head_picks_as_its_widened_f32_values() {
+        let mut g = Gen(7);
+        let (rows, cols, n) = (2053, 96, 6);
+        let w: Vec<f32> = head(rows, cols, &mut g)
+            .into_iter()
+            .map(|v| half::bf16::from_f32(v).to_f32())
+            .collect();
+        let x = hidden(&w, n, cols, &mut g);
+        let narrow = Table::Bf16(w.iter().map(|&v| half::bf16::from_f32(v)).collect());
+        let screen = Screen::new(&narrow, rows, cols).expect("screen");
+        let seen: Vec<Vec<bool>> = (0..n)
+            .map(|t| (0..rows).map(|j| j % 97 == t).collect())
+            .collect();
+        let refs: Vec<&[bool]> = seen.iter().map(|s| s.as_slice()).collect();
+        let mut out = Vec::new();
+        for pen in [None, Some((1.3, refs.as_slice()))] {
+            screen.pick(&narrow, &x, n, pen, &mut Scratch::default(), &mut out);
+            for t in 0..n {
+                let p = pen.map(|(p, _)| (p, seen[t].as_slice()));
+                let want = reference(&w, &x[t * cols..(t + 1) * cols], rows, cols, p);
+                assert_eq!(out[t], want, "vector {t}, penalty {:?}", pen.map(|p| p.0));
+            }
         }
     }
 }

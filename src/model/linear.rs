@@ -301,7 +301,7 @@ fn with_f32<R>(t: &Tensor, f: impl FnOnce(&[f32]) -> R) -> Result<R> {
 
 /// Calls `f` on the values of `t` as `T` in row-major order, borrowing its storage when it is
 /// contiguous and already of type `T` (no copy), converting otherwise.
-fn with_values<T: WithDType, R>(t: &Tensor, f: impl FnOnce(&[T]) -> R) -> Result<R> {
+pub(crate) fn with_values<T: WithDType, R>(t: &Tensor, f: impl FnOnce(&[T]) -> R) -> Result<R> {
     if t.dtype() == T::DTYPE {
         let (storage, layout) = t.storage_and_layout();
         if let (candle_core::Storage::Cpu(cpu), Some((a, b))) =

@@ -8,8 +8,8 @@
 //! `crate::kernels`, which knows nothing of models; the modules here import it, never the
 //! other way round. Within this module the imports run one way too: `names` and `rope` use
 //! `config`; `weights` uses `config`, `names` and the kernels' 4-bit quantiser; `lora` uses
-//! `names`; `linear` uses the kernels and `lora`'s low-rank terms; `head` uses only the
-//! kernels; `decoder` uses all of `config`, `names`, `rope`, `cache`, `linear`, `lora`, `head`
+//! `names`; `linear` uses the kernels and `lora`'s low-rank terms; `table` and `head` use only the
+//! kernels (and `head` the `table`); `decoder` uses all of `config`, `names`, `rope`, `cache`, `linear`, `lora`, `head`
 //! and the 4-bit matrices `weights` hands over; nothing uses `decoder` but this file.
 
 pub mod cache;
@@ -20,6 +20,7 @@ mod linear;
 pub mod lora;
 pub mod names;
 pub mod rope;
+pub mod table;
 pub mod weights;
 
 pub use linear::{BaseQuant, WeightFormat};

@@ -385,13 +385,16 @@ fn load_inner(dir: &Path, spec: &ModelSpec, quant: Option<(Codebook, bool)>) -> 
     })
 }
 
-/// Bytes a tensor takes once the decoder holds it: the matrices of the linear layers at their
-/// stored size (16-bit stays 16-bit), and so the embedding table when the model has its own
-/// output head; the head, an embedding table tied to it and the norm vectors in f32.
+/// Bytes a tensor takes once the decoder holds it: the matrices, the embedding table and the
+/// output head at their stored size (16-bit stays 16-bit), the head (its own or the tied
+/// embedding table) once more in 8 bits for the greedy screen, the norm vectors in f32.
 fn resident_bytes(name: &str, shape: &[usize], stored_size: usize, own_head: bool) -> u64 {
     let values: u64 = shape.iter().map(|&d| d as u64).product();
-    let wide = (name == EMBED && !own_head) || name == LM_HEAD || shape.len() < 2;
-    values * if wide { 4 } else { stored_size as u64 }
+    if shape.len() < 2 {
+        return values * 4;
+    }
+    let is_head = name == LM_HEAD || (name == EMBED && !own_head);
+    values * stored_size as u64 + if is_head { values } else { 0 }
 }
 
 /// The kernel's estimate of memory available to a new process without swapping
@@ -412,7 +415,7 @@ fn check_fits(dir: &Path, needed: u64, available: u64) -> Result<()> {
     Err(Error::file(
         dir,
         format!(
-            "the model's weights need about {:.1} GiB of memory ({needed} bytes; matrices at their stored precision, embeddings, head and norms in f32) and {:.1} GiB ({available} bytes) are available; free memory or use a machine with more",
+            "the model's weights need about {:.1} GiB of memory ({needed} bytes; matrices, embeddings and head at their stored precision, the head once more in 8 bits, norms in f32) and {:.1} GiB ({available} bytes) are available; free memory or use a machine with more",
             gib(needed),
             gib(available)
         ),
@@ -580,9 +583,9 @@ mod tests {
     fn memory_is_estimated_per_tensor_and_a_model_too_large_is_refused() {
         let up = "model.layers.0.mlp.up_proj.weight";
         assert_eq!(resident_bytes(up, &[8, 4], 2, true), 64);
-        assert_eq!(resident_bytes(EMBED, &[8, 4], 2, false), 128);
+        assert_eq!(resident_bytes(EMBED, &[8, 4], 2, false), 96);
         assert_eq!(resident_bytes(EMBED, &[8, 4], 2, true), 64);
-        assert_eq!(resident_bytes(LM_HEAD, &[8, 4], 2, true), 128);
+        assert_eq!(resident_bytes(LM_HEAD, &[8, 4], 2, true), 96);
         assert_eq!(resident_bytes("model.norm.weight", &[4], 2, true), 16);
         let dir = Path::new("/models/large");
         assert!(check_fits(dir, 100, 100).is_ok());
