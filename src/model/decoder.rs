@@ -183,7 +183,7 @@ impl Decoder {
                 NormStyle::Gemma => v.into_iter().map(|x| 1.0 + x).collect(),
             })
         };
-        let embed = Table::from_tensor(&take(EMBED)?)?;
+        let embed = Table::from_tensor(take(EMBED)?)?;
         let mut layers = Vec::with_capacity(spec.num_layers);
         for l in 0..spec.num_layers {
             let tensor = names::Layer::new(l);
@@ -254,17 +254,15 @@ impl Decoder {
             )));
         }
         let final_norm = norm(take(FINAL_NORM)?)?;
-        let lm_head = w
-            .remove(LM_HEAD)
-            .map(|h| Table::from_tensor(&h))
-            .transpose()?;
-        let head = lm_head.as_ref().unwrap_or(&embed);
+        let lm_head = w.remove(LM_HEAD).map(Table::from_tensor).transpose()?;
+        let head = lm_head.as_ref().unwrap_or(&embed).read();
         // The soft-cap's tanh can round distinct logits to one f32 value, so a capped head
         // computes every logit.
         let screen = match spec.final_softcap {
-            None => Screen::new(head, spec.vocab_size, spec.hidden_size),
+            None => Screen::new(head.rows(), spec.vocab_size, spec.hidden_size),
             Some(_) => None,
         };
+        drop(head);
         let d = Decoder {
             spec: spec.clone(),
             embed,
@@ -346,7 +344,10 @@ impl Decoder {
         let (ns, hidden, vocab) = (segs.len(), self.spec.hidden_size, self.spec.vocab_size);
         let normed = &ws.last_normed[..ns * hidden];
         let logits = sized(&mut ws.logits, ns * vocab);
-        self.head().matmul_t(normed, ns, hidden, vocab, logits);
+        self.head()
+            .read()
+            .rows()
+            .matmul_t(normed, ns, hidden, vocab, logits);
         if let Some(c) = self.spec.final_softcap {
             let c = c as f32;
             for v in logits.iter_mut() {
@@ -386,7 +387,7 @@ impl Decoder {
         self.last_hidden(segs, cache, ws)?;
         let normed = &ws.last_normed[..ns * self.spec.hidden_size];
         screen.pick(
-            self.head(),
+            self.head().read().rows(),
             normed,
             ns,
             penalty,
@@ -455,10 +456,12 @@ impl Decoder {
         // Embeddings.
         let h = sized(&mut ws.h, n * hidden);
         let mut t = 0;
+        let embed = self.embed.read();
+        let embed = embed.rows();
         for seg in segs {
             for &tok in seg.tokens {
                 let dst = &mut h[t * hidden..(t + 1) * hidden];
-                self.embed.row_into(tok as usize, dst);
+                embed.row_into(tok as usize, dst);
                 if let Some(sc) = s.embed_scale {
                     let sc = sc as f32;
                     for d in dst.iter_mut() {

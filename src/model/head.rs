@@ -32,7 +32,7 @@
 //! bounds and the decision, which are what make the pick equal to the f32 argmax.
 
 use crate::kernels::int8::{pack_activations, Int8Rows, Rounded, LANES, MAX_COLS};
-use crate::model::table::Table;
+use crate::model::table::Rows;
 use rayon::prelude::*;
 
 /// Unit roundoff of f32.
@@ -94,7 +94,7 @@ fn down(v: f64) -> f32 {
 impl Screen {
     /// Screens the rows of `w` ([rows, cols] row-major, at its stored precision), or None when
     /// `cols` is too long for exact 32-bit integer sums.
-    pub fn new(w: &Table, rows: usize, cols: usize) -> Option<Screen> {
+    pub fn new(w: Rows<'_>, rows: usize, cols: usize) -> Option<Screen> {
         if cols == 0 || cols > MAX_COLS || w.len() < rows * cols {
             return None;
         }
@@ -126,7 +126,7 @@ impl Screen {
     /// and, per vector, the ids it applies to (an empty slice: none).
     pub fn pick(
         &self,
-        w: &Table,
+        w: Rows<'_>,
         x: &[f32],
         n: usize,
         penalty: Option<(f32, &[&[bool]])>,
@@ -218,7 +218,7 @@ impl Screen {
     #[allow(clippy::too_many_arguments)]
     fn decide(
         &self,
-        w: &Table,
+        w: Rows<'_>,
         x: &[f32],
         acc: &[i32],
         n: usize,
@@ -268,7 +268,7 @@ impl Screen {
 
 /// Every f32 logit of `x`, the penalty, then [`argmax`].
 fn full(
-    w: &Table,
+    w: Rows<'_>,
     x: &[f32],
     rows: usize,
     seen: Option<(f32, &[bool])>,
@@ -369,7 +369,6 @@ mod tests {
     /// A head, its hidden vectors and its screen, after one unpenalised pick into `out`.
     struct Case {
         w: Vec<f32>,
-        table: Table,
         x: Vec<f32>,
         screen: Screen,
         scratch: Scratch,
@@ -380,14 +379,12 @@ mod tests {
         fn picked(rows: usize, cols: usize, n: usize, g: &mut Gen) -> Case {
             let w = head(rows, cols, g);
             let x = hidden(&w, n, cols, g);
-            let table = Table::F32(w.clone());
-            let screen = Screen::new(&table, rows, cols).expect("screen");
+            let screen = Screen::new(Rows::F32(&w), rows, cols).expect("screen");
             let mut scratch = Scratch::default();
             let mut out = Vec::new();
-            screen.pick(&table, &x, n, None, &mut scratch, &mut out);
+            screen.pick(Rows::F32(&w), &x, n, None, &mut scratch, &mut out);
             Case {
                 w,
-                table,
                 x,
                 screen,
                 scratch,
@@ -427,7 +424,6 @@ mod tests {
         for &(rows, cols, n) in &[(1000, 67, 11), (333, 64, 5), (40, 6, 6), (4099, 130, 9)] {
             let Case {
                 w,
-                table,
                 x,
                 screen,
                 mut scratch,
@@ -450,7 +446,14 @@ mod tests {
                 })
                 .collect();
             let refs: Vec<&[bool]> = seen.iter().map(|s| s.as_slice()).collect();
-            screen.pick(&table, &x, n, Some((p, &refs)), &mut scratch, &mut out);
+            screen.pick(
+                Rows::F32(&w),
+                &x,
+                n,
+                Some((p, &refs)),
+                &mut scratch,
+                &mut out,
+            );
             for t in 0..n {
                 let xt = &x[t * cols..(t + 1) * cols];
                 let want = reference(&w, xt, rows, cols, Some((p, &seen[t])));
@@ -519,15 +522,16 @@ mod tests {
             .map(|v| half::bf16::from_f32(v).to_f32())
             .collect();
         let x = hidden(&w, n, cols, &mut g);
-        let narrow = Table::Bf16(w.iter().map(|&v| half::bf16::from_f32(v)).collect());
-        let screen = Screen::new(&narrow, rows, cols).expect("screen");
+        let narrow: Vec<half::bf16> = w.iter().map(|&v| half::bf16::from_f32(v)).collect();
+        let narrow = Rows::Bf16(&narrow);
+        let screen = Screen::new(narrow, rows, cols).expect("screen");
         let seen: Vec<Vec<bool>> = (0..n)
             .map(|t| (0..rows).map(|j| j % 97 == t).collect())
             .collect();
         let refs: Vec<&[bool]> = seen.iter().map(|s| s.as_slice()).collect();
         let mut out = Vec::new();
         for pen in [None, Some((1.3, refs.as_slice()))] {
-            screen.pick(&narrow, &x, n, pen, &mut Scratch::default(), &mut out);
+            screen.pick(narrow, &x, n, pen, &mut Scratch::default(), &mut out);
             for t in 0..n {
                 let p = pen.map(|(p, _)| (p, seen[t].as_slice()));
                 let want = reference(&w, &x[t * cols..(t + 1) * cols], rows, cols, p);

@@ -422,13 +422,51 @@ fn check_fits(dir: &Path, needed: u64, available: u64) -> Result<()> {
     ))
 }
 
-/// Where the first NaN or ±Inf of `values` is, with its value.
-pub fn first_non_finite(values: &[f32]) -> Option<(usize, f32)> {
+/// A float format whose values can be tested for NaN and ±Inf and read as f32.
+pub trait Float: Copy + Send + Sync + candle_core::WithDType {
+    fn finite(self) -> bool;
+    fn wide(self) -> f32;
+}
+
+impl Float for f32 {
+    #[inline(always)]
+    fn finite(self) -> bool {
+        self.is_finite()
+    }
+    fn wide(self) -> f32 {
+        self
+    }
+}
+
+impl Float for half::bf16 {
+    /// Not all exponent bits set (bf16 has f32's 8-bit exponent).
+    #[inline(always)]
+    fn finite(self) -> bool {
+        self.to_bits() & 0x7f80 != 0x7f80
+    }
+    fn wide(self) -> f32 {
+        self.to_f32()
+    }
+}
+
+impl Float for half::f16 {
+    /// Not all five exponent bits set.
+    #[inline(always)]
+    fn finite(self) -> bool {
+        self.to_bits() & 0x7c00 != 0x7c00
+    }
+    fn wide(self) -> f32 {
+        self.to_f32()
+    }
+}
+
+/// Where the first NaN or ±Inf of `values` is, with its value (as f32).
+pub fn first_non_finite<T: Float>(values: &[T]) -> Option<(usize, f32)> {
     use rayon::prelude::*;
     const CHUNK: usize = 1 << 16;
     // Branch-free test over a chunk, which the compiler vectorises; only a chunk that fails is
     // searched element by element. Chunks are scanned in parallel.
-    let all_finite = |c: &[f32]| c.iter().fold(true, |ok, v| ok & v.is_finite());
+    let all_finite = |c: &[T]| c.iter().fold(true, |ok, v| ok & v.finite());
     let chunk = if values.len() > CHUNK {
         values.par_chunks(CHUNK).position_first(|c| !all_finite(c))
     } else {
@@ -438,27 +476,33 @@ pub fn first_non_finite(values: &[f32]) -> Option<(usize, f32)> {
     let end = (start + CHUNK).min(values.len());
     values[start..end]
         .iter()
-        .position(|v| !v.is_finite())
-        .map(|i| (start + i, values[start + i]))
+        .position(|v| !v.finite())
+        .map(|i| (start + i, values[start + i].wide()))
 }
 
-/// Refuses an f32 tensor holding NaN or ±Inf: an `Input` error naming `file` and the tensor
-/// `name`, the first bad element (flat index and position) and `context` (e.g. "after merging
-/// the adapter"). Reads the tensor's storage in place when it is contiguous, so no copy is made.
+/// Refuses a tensor holding NaN or ±Inf: an `Input` error naming `file` and the tensor `name`,
+/// the first bad element (flat index and position) and `context` (e.g. "after merging the
+/// adapter"). Reads an f32, bf16 or f16 tensor's storage in place when it is contiguous, so no
+/// copy is made (a widened copy of an 8B-class model's output head would be 2 GiB).
 pub fn check_finite(name: &str, file: &Path, t: &Tensor, context: &str) -> Result<()> {
-    let found = {
+    fn in_place<T: Float>(t: &Tensor) -> Option<Option<(usize, f32)>> {
         let (storage, layout) = t.storage_and_layout();
         match (&*storage, layout.contiguous_offsets()) {
             (candle_core::Storage::Cpu(cpu), Some((start, end))) => cpu
-                .as_slice::<f32>()
+                .as_slice::<T>()
                 .ok()
                 .map(|s| first_non_finite(&s[start..end])),
             _ => None,
         }
+    }
+    let found = match t.dtype() {
+        DType::BF16 => in_place::<half::bf16>(t),
+        DType::F16 => in_place::<half::f16>(t),
+        _ => in_place::<f32>(t),
     };
     let found = match found {
         Some(f) => f,
-        // Not contiguous f32 CPU storage: copy once.
+        // Not contiguous CPU storage of one of those: copy once.
         None => {
             let values: Vec<f32> = t
                 .to_dtype(DType::F32)
@@ -611,6 +655,26 @@ mod tests {
             first_non_finite(&big),
             Some(((1 << 20) + 3, f32::NEG_INFINITY))
         );
+
+        // bf16 and f16 values are tested in place, by their exponent bits (IEEE 754 and the
+        // bfloat16 layout: all exponent bits set is Inf or NaN); the largest finite values pass.
+        use half::{bf16, f16};
+        let b = [
+            bf16::MAX,
+            bf16::MIN,
+            bf16::from_f32(1.0),
+            bf16::INFINITY,
+            bf16::NAN,
+        ];
+        assert_eq!(first_non_finite(&b[..3]), None);
+        assert_eq!(first_non_finite(&b), Some((3, f32::INFINITY)));
+        let h = [f16::MAX, f16::MIN_POSITIVE_SUBNORMAL, f16::NEG_INFINITY];
+        assert_eq!(first_non_finite(&h), Some((2, f32::NEG_INFINITY)));
+        let t = Tensor::new(&[[b[0], b[2]], [b[4], b[1]]], &Device::Cpu).unwrap();
+        let msg = check_finite("w16", Path::new("m.safetensors"), &t, "")
+            .unwrap_err()
+            .to_string();
+        assert!(msg.contains("NaN at element [1, 0]"), "{msg}");
 
         let file = Path::new("m/model.safetensors");
         let ok = Tensor::new(&[[1.0f32, 2.0], [3.0, 4.0]], &Device::Cpu).unwrap();
