@@ -7,6 +7,8 @@
 #
 #   bench/variants.sh               # the 1B-shaped checkpoint (~1.5 GB on disk)
 #   SHAPE=8b bench/variants.sh      # Llama-3-8B dimensions (~16 GB on disk)
+#   BATCHES="1 8" bench/variants.sh   # other batch sizes (default: 1 2 4)
+#   BEFORE=path bench/variants.sh   # another liftgate binary too, each batch size run by both
 #
 # First run: creates bench/.venv-numpy (numpy from PyPI), the checkpoint and the adapter under
 # bench/models (git-ignored; remove them when done).
@@ -14,14 +16,14 @@ set -euo pipefail
 source "$(dirname "$0")/random-checkpoint.sh"
 adapter="$here/models/random-$shape-adapter-r16"
 [ -f "$adapter/adapter_model.safetensors" ] || "$venv/bin/python" "$here/make_random_checkpoint.py" "$model" --shape "$shape" --adapter "$adapter" --rank 16
-bin="$root/target/release/liftgate"
 work=$(mktemp -d)
 trap 'rm -rf "$work"' EXIT
 head -n 8 "$root/eval-sets/ferry-faq.jsonl" >"$work/q.jsonl"
 # "answered N questions: T new tokens in S s": tokens and seconds of the answering alone.
 tokens_secs() { sed -n 's/^answered [0-9]* questions: \([0-9]*\) new tokens in \([0-9.]*\) s.*/\1 \2/p' "$1"; }
 echo "checkpoint: $(du -h "$model/model.safetensors" | cut -f1), adapter rank 16 on every linear layer"
-for batch in 1 2 4; do
+for batch in ${BATCHES:-1 2 4}; do
+for bin in ${BEFORE:-} "$root/target/release/liftgate"; do
   common=(--questions "$work/q.jsonl" --max-new-tokens 16 --ignore-eos --batch "$batch")
   "$bin" answer --model "$model" --out "$work/base.jsonl" --restart "${common[@]}" 2>"$work/e1" >/dev/null
   "$bin" answer --model "$model" --adapter "$adapter" --out "$work/tuned.jsonl" --restart "${common[@]}" 2>"$work/e2" >/dev/null
@@ -32,7 +34,8 @@ for batch in 1 2 4; do
     --resamples 1000 "${common[@]}" 2>"$work/e3" >/dev/null || true
   read -r t3 s3 < <(tokens_secs "$work/e3")
   cmp -s <(sed 's/"ms":[0-9]*//' "$work/tuned.jsonl") <(sed 's/"ms":[0-9]*//' "$work/rep/candidate.answers.jsonl") && same=same || same=DIFFERENT
-  awk -v b="$batch" -v t1="$t1" -v s1="$s1" -v t2="$t2" -v s2="$s2" -v t3="$t3" -v s3="$s3" -v same="$same" -v rss="$(tail -n 1 "$work/rss")" 'BEGIN {
+  awk -v who="$(basename "$(dirname "$(dirname "$bin")")")/$(basename "$bin")" -v b="$batch" -v t1="$t1" -v s1="$s1" -v t2="$t2" -v s2="$s2" -v t3="$t3" -v s3="$s3" -v same="$same" -v rss="$(tail -n 1 "$work/rss")" 'BEGIN {
     one = (t1 + t2) / (s1 + s2); both = t3 / s3;
-    printf "batch %d: one after the other %.1f tokens/s, together %.1f tokens/s (%.2fx), peak RSS together %d MiB, answers %s\n", b, one, both, both / one, rss / 1024, same }'
+    printf "%s batch %d: one after the other %.1f tokens/s, together %.1f tokens/s (%.2fx), peak RSS together %d MiB, answers %s\n", who, b, one, both, both / one, rss / 1024, same }'
+done
 done
