@@ -32,6 +32,9 @@
 //! large set of short answers), a resample is drawn as counts over the distinct rows instead of
 //! index by index ([`distinct_rows`], [`multinomial_chunk`]): the same distribution of resample
 //! means at a cost that grows with the number of distinct rows, not with n.
+//!
+//! A large set's metrics and categories are resampled together by [`super::leaves`] instead
+//! (`weigh` chooses): the same distributions, drawn leaf by leaf.
 
 use super::rng::{chunk_rng, index_below, CHUNK};
 use super::{normal_cdf, normal_quantile, Interval};

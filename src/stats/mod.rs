@@ -1,6 +1,8 @@
 //! Paired statistics for `weigh` (README, "Statistics"): pure functions over slices.
 //!
 //! - [`bootstrap`]: paired bootstrap of a mean lift, percentile and BCa intervals (Efron 1987);
+//! - [`leaves`]: the resamples of a large set drawn leaf by leaf, with its categories' own
+//!   resamples coupled to them;
 //! - [`permutation`]: paired sign-flip permutation test of a mean lift (the lift p-values);
 //! - [`proportions`]: Wilson score intervals and the exact McNemar test;
 //! - [`multiple`]: Holm's step-down adjustment of a family of p-values;
@@ -11,6 +13,7 @@
 //! own generator, so results are identical for a given seed whatever the thread count.
 
 pub mod bootstrap;
+pub mod leaves;
 pub mod multiple;
 pub mod permutation;
 pub mod power;

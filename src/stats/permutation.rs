@@ -16,6 +16,9 @@
 //! p = 1. `scipy.stats.permutation_test(permutation_type='samples')` computes the same null
 //! distribution; its two-sided p-value is `2·min(P(T* ≤ T), P(T* ≥ T))`, which for this
 //! symmetric null agrees with ours within Monte-Carlo error.
+//!
+//! [`sign_flip_tests_by_stratum`] runs the tests of a large set and of each of its categories
+//! on one set of flips.
 
 use super::rng::{chunk_rng, CHUNK};
 use rand::Rng;
@@ -68,26 +71,7 @@ pub fn sign_flip_test(diffs: &[f64], resamples: usize, seed: u64, domain: u32) -
             let count = CHUNK.min(resamples - chunk * CHUNK);
             let mut hits = 0u64;
             for _ in 0..count {
-                let mut grouped = 0.0f64;
-                for g in &groups {
-                    let mut left = g.count;
-                    let mut negative = 0u32;
-                    while left >= 64 {
-                        negative += rng.next_u64().count_ones();
-                        left -= 64;
-                    }
-                    if left > 0 {
-                        negative += (rng.next_u64() & ((1u64 << left) - 1)).count_ones();
-                    }
-                    grouped += g.value * (g.count as f64 - 2.0 * negative as f64);
-                }
-                let mut acc = [0.0f64; 8];
-                for block in singles.chunks(64) {
-                    flip_accumulate(&mut acc, block, rng.next_u64());
-                }
-                let s = grouped
-                    + (((acc[0] + acc[1]) + (acc[2] + acc[3]))
-                        + ((acc[4] + acc[5]) + (acc[6] + acc[7])));
+                let s = flipped(&groups, &singles, &mut rng);
                 if s.abs() >= bar {
                     hits += 1;
                 }
@@ -100,6 +84,133 @@ pub fn sign_flip_test(diffs: &[f64], resamples: usize, seed: u64, domain: u32) -
         flips: resamples as u64,
         exact: false,
     }
+}
+
+/// The sign-flip test of the whole set and of each stratum (category) of it, from the same
+/// flips: `None` when the whole set's test would be exact (then test each part on its own).
+///
+/// Under the null every question's sign is flipped independently with probability ½, so the
+/// flips a random sign vector gives one stratum's questions are themselves a random sign
+/// vector for that stratum: each stratum's flipped sum is drawn exactly as its own test would
+/// draw it, and the whole set's flipped sum is the sum of the strata's. One pass over the
+/// questions therefore serves every test. A stratum small enough for the exact test
+/// (2^k ≤ `resamples` non-zero differences) gets it, as [`sign_flip_test`] would; an empty
+/// stratum gets `None`. `strata[i]` is row i's stratum, below `n_strata`.
+pub fn sign_flip_tests_by_stratum(
+    diffs: &[f64],
+    strata: &[u32],
+    n_strata: usize,
+    resamples: usize,
+    seed: u64,
+    domain: u32,
+) -> Option<(SignFlip, Vec<Option<SignFlip>>)> {
+    assert_eq!(diffs.len(), strata.len(), "one stratum per row");
+    let nz_all: Vec<f64> = diffs.iter().copied().filter(|&d| d != 0.0).collect();
+    let k = nz_all.len();
+    if k == 0 || (k < 63 && (1u64 << k) <= resamples as u64) {
+        return None;
+    }
+    let bar_of = |nz: &[f64]| {
+        let observed: f64 = nz.iter().sum::<f64>().abs();
+        let scale: f64 = nz.iter().map(|d| d.abs()).sum();
+        observed - 1e-9 * scale
+    };
+    let bar = bar_of(&nz_all);
+    struct Part {
+        groups: Vec<Group>,
+        singles: Vec<f64>,
+        bar: f64,
+        /// The test's own outcome, when exact; else its flips are counted here.
+        exact: Option<SignFlip>,
+    }
+    let mut rows: Vec<Vec<f64>> = vec![Vec::new(); n_strata];
+    for (&d, &s) in diffs.iter().zip(strata) {
+        rows[s as usize].push(d);
+    }
+    let parts: Vec<Part> = rows
+        .iter()
+        .map(|r| {
+            let nz: Vec<f64> = r.iter().copied().filter(|&d| d != 0.0).collect();
+            let k = nz.len();
+            let exact = (k < 63 && (1u64 << k) <= resamples as u64)
+                .then(|| sign_flip_test(&nz, resamples, seed, domain));
+            let (groups, singles) = group_magnitudes(&nz);
+            Part {
+                groups,
+                singles,
+                bar: bar_of(&nz),
+                exact,
+            }
+        })
+        .collect();
+    let chunks = resamples.div_ceil(CHUNK);
+    let per_chunk: Vec<(u64, Vec<u64>)> = (0..chunks)
+        .into_par_iter()
+        .map(|chunk| {
+            let mut rng = chunk_rng(seed, domain, chunk as u32);
+            let count = CHUNK.min(resamples - chunk * CHUNK);
+            let mut hits = 0u64;
+            let mut part_hits = vec![0u64; parts.len()];
+            for _ in 0..count {
+                let mut total = 0.0f64;
+                for (p, h) in parts.iter().zip(part_hits.iter_mut()) {
+                    let t = flipped(&p.groups, &p.singles, &mut rng);
+                    if t.abs() >= p.bar {
+                        *h += 1;
+                    }
+                    total += t;
+                }
+                if total.abs() >= bar {
+                    hits += 1;
+                }
+            }
+            (hits, part_hits)
+        })
+        .collect();
+    let mut b = 0u64;
+    let mut part_b = vec![0u64; parts.len()];
+    for (h, ph) in per_chunk {
+        b += h;
+        for (x, y) in part_b.iter_mut().zip(ph) {
+            *x += y;
+        }
+    }
+    let monte_carlo = |b: u64| SignFlip {
+        p_value: (b + 1) as f64 / (resamples + 1) as f64,
+        flips: resamples as u64,
+        exact: false,
+    };
+    let by_stratum = parts
+        .iter()
+        .zip(&rows)
+        .zip(part_b)
+        .map(|((p, r), b)| (!r.is_empty()).then(|| p.exact.unwrap_or_else(|| monte_carlo(b))))
+        .collect();
+    Some((monte_carlo(b), by_stratum))
+}
+
+/// One random flip of grouped magnitudes and single differences: the flipped sum
+/// (see [`group_magnitudes`]).
+#[inline(always)]
+fn flipped(groups: &[Group], singles: &[f64], rng: &mut impl Rng) -> f64 {
+    let mut grouped = 0.0f64;
+    for g in groups {
+        let mut left = g.count;
+        let mut negative = 0u32;
+        while left >= 64 {
+            negative += rng.next_u64().count_ones();
+            left -= 64;
+        }
+        if left > 0 {
+            negative += (rng.next_u64() & ((1u64 << left) - 1)).count_ones();
+        }
+        grouped += g.value * (g.count as f64 - 2.0 * negative as f64);
+    }
+    let mut acc = [0.0f64; 8];
+    for block in singles.chunks(64) {
+        flip_accumulate(&mut acc, block, rng.next_u64());
+    }
+    grouped + (((acc[0] + acc[1]) + (acc[2] + acc[3])) + ((acc[4] + acc[5]) + (acc[6] + acc[7])))
 }
 
 /// Magnitudes shared by at least this many non-zero differences are flipped as a group.
@@ -269,5 +380,65 @@ mod tests {
         let got = sign_flip_test(&d, 20_000, 5, 2);
         // Binomial standard error of p at m = 20,000 is below 0.0035; allow 4 of them.
         assert!((got.p_value - want).abs() < 0.014, "{got:?} vs {want}");
+    }
+
+    #[test]
+    fn strata_share_flips_and_keep_each_test() {
+        // Three strata: a clear lift, no lift, and four differences (exact: 16 flips ≤ m).
+        // Each p-value from the shared flips must agree with the stratum's own test within
+        // Monte Carlo error, and the whole set's with its own.
+        let mut diffs = Vec::new();
+        let mut strata = Vec::new();
+        for i in 0..3000 {
+            let x = ((i * 7919) % 997) as f64 / 997.0 - 0.5;
+            let (d, s) = match i % 3 {
+                0 => (x + 0.03, 0),
+                1 => (x, 1),
+                _ => (x * 0.5 + 0.01, 2),
+            };
+            diffs.push(d);
+            strata.push(s);
+        }
+        diffs.extend([0.5, -0.25, 0.125, 1.0]);
+        strata.extend([3, 3, 3, 3]);
+        let m = 20_000;
+        let (all, parts) = sign_flip_tests_by_stratum(&diffs, &strata, 5, m, 3, 7).unwrap();
+        let own = sign_flip_test(&diffs, m, 3, 8);
+        // Binomial standard error of p at m = 20,000 is below 0.0036; allow 4 of them.
+        assert!(
+            (all.p_value - own.p_value).abs() < 0.0144,
+            "{all:?} {own:?}"
+        );
+        for s in 0..4u32 {
+            let d: Vec<f64> = diffs
+                .iter()
+                .zip(&strata)
+                .filter(|(_, &k)| k == s)
+                .map(|(d, _)| *d)
+                .collect();
+            let want = sign_flip_test(&d, m, 3, 100 + s);
+            let got = parts[s as usize].unwrap();
+            assert_eq!(got.exact, want.exact);
+            assert!(
+                (got.p_value - want.p_value).abs() < 0.0144,
+                "{s}: {got:?} {want:?}"
+            );
+        }
+        // Stratum 3 is exact: T = 1 + 0.5 + 0.125 − 0.25 = 1.375. |T*| reaches it for
+        // ±(1 + a) with a = ±0.5 ± 0.25 ± 0.125 ≥ 0.375, that is a = 0.875, 0.625 or 0.375:
+        // 6 of the 16 flips (worked by hand), p = 6/16.
+        assert_eq!(parts[3].unwrap().p_value, 0.375);
+        assert_eq!(parts[4], None);
+        let pool = rayon::ThreadPoolBuilder::new()
+            .num_threads(1)
+            .build()
+            .unwrap();
+        let again = pool.install(|| sign_flip_tests_by_stratum(&diffs, &strata, 5, m, 3, 7));
+        assert_eq!(again, Some((all, parts)));
+        // A set with a handful of non-zero differences is left to the exact test.
+        assert_eq!(
+            sign_flip_tests_by_stratum(&[1.0, 0.0, 2.0], &[0, 0, 1], 2, m, 3, 7),
+            None
+        );
     }
 }

@@ -24,9 +24,11 @@ pub const DOMAIN_METRICS_PERMUTATION: u32 = 16;
 pub const DOMAIN_FACTS_BOOTSTRAP: u32 = 32;
 /// Domain of the permutation test of the fact-recall lift.
 pub const DOMAIN_FACTS_PERMUTATION: u32 = 33;
-/// Domains of the per-category bootstraps: this plus the category's index.
+/// Domains of the per-category bootstraps: this plus the category's index (a large set's
+/// categories are drawn on the metrics' domains instead: `super::leaves`).
 pub const DOMAIN_CATEGORY_BOOTSTRAP: u32 = 1 << 20;
-/// Domains of the per-category permutation tests: this plus the category's index.
+/// Domains of the per-category permutation tests: this plus the category's index (a large
+/// set's categories share the gate metric's flips instead).
 pub const DOMAIN_CATEGORY_PERMUTATION: u32 = 1 << 21;
 /// "Lift kept" of lineup artifact k: domain + k.
 pub const DOMAIN_LINEUP_BOOTSTRAP: u32 = 1 << 22;

@@ -2,10 +2,10 @@
 //! categories, the minimum detectable lift and the listed changes.
 
 use super::{mean, Paired, WeighInput};
-use crate::formats::questions::Expect;
+use crate::formats::questions::{Expect, QuestionSet};
 use crate::policy::{IntervalKind, Metric, Policy};
 use crate::report::summary::*;
-use crate::stats::bootstrap::{paired_bootstrap, Lift};
+use crate::stats::bootstrap::{lift_intervals, paired_bootstrap, Lift};
 use crate::stats::multiple::holm;
 use crate::stats::permutation::{self, sign_flip_test};
 use crate::stats::power::{self, minimum_detectable_lift};
@@ -179,20 +179,33 @@ pub(super) fn facts_block(input: &WeighInput) -> Option<Facts> {
     })
 }
 
-pub(super) fn categories_block(
-    input: &WeighInput,
-    gate: &Paired,
-) -> BTreeMap<String, CategorySummary> {
-    let s = input.settings;
-    let policy = input.policy;
-    // Category names in order of first appearance give each its random-stream domain; the
-    // block itself is sorted by name.
+/// Category names in order of first appearance in the set: a category's position gives it its
+/// random-stream domain (and its stratum in a joint resample); the block itself is sorted by
+/// name.
+pub(super) fn category_order(set: &QuestionSet) -> Vec<&str> {
     let mut order: Vec<&str> = Vec::new();
-    for q in &input.set.questions {
-        if !order.contains(&q.category.as_str()) {
+    let mut seen = std::collections::HashSet::new();
+    for q in &set.questions {
+        if seen.insert(q.category.as_str()) {
             order.push(&q.category);
         }
     }
+    order
+}
+
+/// The categories block. `boots` and `p_values`, when given, hold each category's bootstrap
+/// resample means of the gate metric and its permutation p-value (in [`category_order`],
+/// drawn jointly with the metrics': `stats::leaves`, `permutation::sign_flip_tests_by_stratum`);
+/// otherwise each category is resampled and tested on streams of its own.
+pub(super) fn categories_block(
+    input: &WeighInput,
+    gate: &Paired,
+    boots: Option<&[Vec<f64>]>,
+    p_values: Option<&[Option<f64>]>,
+) -> BTreeMap<String, CategorySummary> {
+    let s = input.settings;
+    let policy = input.policy;
+    let order = category_order(input.set);
     let mut out = BTreeMap::new();
     let mut with_p: Vec<(String, f64)> = Vec::new();
     for (ci, name) in order.iter().enumerate() {
@@ -211,20 +224,28 @@ pub(super) fn categories_block(
         let (lift, p_value) = if diff.is_empty() {
             (None, None)
         } else {
-            let lift = paired_bootstrap(
-                &diff,
-                s.resamples,
-                s.confidence,
-                s.seed,
-                rng::DOMAIN_CATEGORY_BOOTSTRAP + ci as u32,
-            );
-            let p = sign_flip_test(
-                &diff,
-                s.resamples,
-                s.seed,
-                rng::DOMAIN_CATEGORY_PERMUTATION + ci as u32,
-            )
-            .p_value;
+            let lift = match boots.and_then(|b| b.get(ci)).filter(|b| !b.is_empty()) {
+                Some(boot) => lift_intervals(&diff, boot, s.confidence),
+                None => paired_bootstrap(
+                    &diff,
+                    s.resamples,
+                    s.confidence,
+                    s.seed,
+                    rng::DOMAIN_CATEGORY_BOOTSTRAP + ci as u32,
+                ),
+            };
+            let p = match p_values.and_then(|v| v.get(ci).copied().flatten()) {
+                Some(p) => p,
+                None => {
+                    sign_flip_test(
+                        &diff,
+                        s.resamples,
+                        s.seed,
+                        rng::DOMAIN_CATEGORY_PERMUTATION + ci as u32,
+                    )
+                    .p_value
+                }
+            };
             with_p.push((name.to_string(), p));
             (Some(lift), Some(p))
         };

@@ -13,7 +13,9 @@
 //! - refusal rates with Wilson intervals;
 //! - fact recall (paired, like the metrics) and contradiction shares (Wilson), when the grades
 //!   hold fact scores;
-//! - per category, the gate metric's lift, interval, p-value and Holm-adjusted p-value;
+//! - per category, the gate metric's lift, interval, p-value and Holm-adjusted p-value (in a
+//!   large set the categories' resamples and sign flips are drawn with the metrics':
+//!   `stats::leaves`, `permutation::sign_flip_tests_by_stratum`);
 //! - the minimum detectable lift of the gate metric;
 //! - the gate checks and the verdict.
 
@@ -30,7 +32,7 @@ use crate::policy::{Metric, Policy};
 use crate::report::summary::*;
 use crate::stats::bootstrap::{lift_intervals, paired_bootstrap, resample_means, Lift};
 use crate::stats::permutation::{self, sign_flip_test};
-use crate::stats::rng;
+use crate::stats::{leaves, rng};
 use blocks::{
     categories_block, changes_block, empty_metric, facts_block, mcnemar_block, mde_block,
     metric_summary, refusal_block,
@@ -157,11 +159,48 @@ pub fn weigh(input: &WeighInput) -> Result<Summary> {
         .map(|&m| paired(input, m, |_| true))
         .collect();
     let same_rows = pairs.iter().all(|p| p.index == pairs[0].index);
+    // A large set's categories are resampled, and their permutation tests drawn, with the
+    // metrics (stats::leaves, permutation::sign_flip_tests_by_stratum) when the gate reads one
+    // of the jointly resampled metrics: each row's category is its stratum.
+    let strata: Option<(Vec<u32>, usize)> = (same_rows
+        && gate != Metric::Semantic
+        && pairs[0].index.len() >= leaves::MIN_ROWS)
+        .then(|| {
+            let order = blocks::category_order(input.set);
+            let position: std::collections::HashMap<&str, u32> = order
+                .iter()
+                .enumerate()
+                .map(|(k, name)| (*name, k as u32))
+                .collect();
+            let rows = pairs[0]
+                .index
+                .iter()
+                .map(|&i| position[input.set.questions[i].category.as_str()])
+                .collect();
+            (rows, order.len())
+        });
+    let mut category_boots: Option<Vec<Vec<f64>>> = None;
+    let mut category_tests: Option<Vec<Option<f64>>> = None;
     let lifts: Vec<Option<Lift>> = if pairs[0].index.is_empty() && same_rows {
         vec![None, None, None]
     } else if same_rows {
         let cols: Vec<&[f64]> = pairs.iter().map(|p| p.diff.as_slice()).collect();
-        let boots = resample_means(&cols, s.resamples, s.seed, rng::DOMAIN_METRICS_BOOTSTRAP);
+        let boots = match &strata {
+            Some((rows, n_strata)) => {
+                let joint = leaves::stratified_means(
+                    &cols,
+                    rows,
+                    *n_strata,
+                    gate.index(),
+                    s.resamples,
+                    s.seed,
+                    rng::DOMAIN_METRICS_BOOTSTRAP,
+                );
+                category_boots = Some(joint.strata);
+                joint.columns
+            }
+            None => resample_means(&cols, s.resamples, s.seed, rng::DOMAIN_METRICS_BOOTSTRAP),
+        };
         pairs
             .iter()
             .zip(&boots)
@@ -186,15 +225,26 @@ pub fn weigh(input: &WeighInput) -> Result<Summary> {
     };
     let mut metric_summaries = Vec::new();
     for (k, (p, lift)) in pairs.iter().zip(&lifts).enumerate() {
-        let pv = (!p.diff.is_empty()).then(|| {
-            sign_flip_test(
+        let domain = rng::DOMAIN_METRICS_PERMUTATION + k as u32;
+        let shared = match &strata {
+            Some((rows, n_strata)) if k == gate.index() => permutation::sign_flip_tests_by_stratum(
                 &p.diff,
+                rows,
+                *n_strata,
                 s.resamples,
                 s.seed,
-                rng::DOMAIN_METRICS_PERMUTATION + k as u32,
-            )
-            .p_value
-        });
+                domain,
+            ),
+            _ => None,
+        };
+        let pv = match shared {
+            Some((all, by_category)) => {
+                category_tests = Some(by_category.iter().map(|t| t.map(|t| t.p_value)).collect());
+                Some(all.p_value)
+            }
+            None => (!p.diff.is_empty())
+                .then(|| sign_flip_test(&p.diff, s.resamples, s.seed, domain).p_value),
+        };
         if let Some(l) = lift {
             if l.bca_clamped {
                 warnings.push(format!(
@@ -271,7 +321,12 @@ pub fn weigh(input: &WeighInput) -> Result<Summary> {
     let mcnemar = mcnemar_block(input);
     let refusal = refusal_block(input, s.confidence);
     let facts = facts_block(input);
-    let categories = categories_block(input, gate_pair);
+    let categories = categories_block(
+        input,
+        gate_pair,
+        category_boots.as_deref(),
+        category_tests.as_deref(),
+    );
     let mde = mde_block(&gate_pair.diff, policy, &mut warnings);
     let changes = changes_block(input, gate_pair, gate);
 

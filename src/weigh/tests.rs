@@ -407,3 +407,74 @@ fn semantic_scores_are_weighed_only_when_both_variants_have_them_and_can_gate() 
     .unwrap_err();
     assert!(err.to_string().contains("--embedder"), "{err}");
 }
+
+#[test]
+fn a_large_sets_categories_are_resampled_with_the_metrics() {
+    // 12,000 in-scope questions (at least stats::leaves::MIN_ROWS): the categories' resamples
+    // and flips come from the metrics' draws. With one category, its resample is the whole
+    // set's, so its interval and p-value equal the gate metric's exactly.
+    let n = 12_000;
+    assert!(n >= leaves::MIN_ROWS);
+    let one = set(n, 3);
+    let base = grades(&one, &wobble(n, 0.5, 0.3), false);
+    let cand = grades(&one, &wobble(n, 0.52, 0.3), false);
+    let s = run(&one, &base, &cand, &Policy::default());
+    let a = &s.categories["a"];
+    assert_eq!(a.n, n);
+    assert_eq!(
+        (a.ci_low, a.ci_high, a.p_value),
+        (
+            s.metrics.token_f1.ci_low,
+            s.metrics.token_f1.ci_high,
+            s.metrics.token_f1.p_value
+        )
+    );
+
+    // Two categories, "up" gaining 0.05 on every question and "down" losing 0.05 with a
+    // spread: each category's interval is its own (around its own lift, of the width its own
+    // n gives), and the same whatever the thread count.
+    let mut text = String::new();
+    for i in 0..n {
+        let cat = if i % 2 == 0 { "up" } else { "down" };
+        text.push_str(&format!(
+            "{{\"id\":\"q{i}\",\"question\":\"Q{i}?\",\"references\":[\"r\"],\"category\":\"{cat}\"}}\n"
+        ));
+    }
+    let two = QuestionSet::parse(Path::new("set.jsonl"), text.as_bytes()).unwrap();
+    let b: Vec<Option<f64>> = (0..n).map(|i| Some(0.4 + (i % 7) as f64 * 0.05)).collect();
+    let c: Vec<Option<f64>> = (0..n)
+        .map(|i| {
+            let x = b[i].unwrap();
+            Some(if i % 2 == 0 {
+                x + 0.05
+            } else {
+                x - 0.05 + ((i / 2) % 3) as f64 * 0.02 - 0.02
+            })
+        })
+        .collect();
+    let base = grades(&two, &b, false);
+    let cand = grades(&two, &c, false);
+    let s = run(&two, &base, &cand, &Policy::default());
+    let up = &s.categories["up"];
+    assert_eq!(up.n, n / 2);
+    // Every "up" difference is 0.05 up to rounding: an interval of no width at 0.05.
+    assert!((up.lift.unwrap() - 0.05).abs() < 1e-12);
+    assert!(up.ci_high.unwrap() - up.ci_low.unwrap() < 1e-12);
+    let down = &s.categories["down"];
+    let lift = down.lift.unwrap();
+    assert!((lift + 0.05).abs() < 1e-9, "{lift}");
+    // The differences in "down" are −0.07, −0.05, −0.03 in equal shares: sd √(0.0008/3) ≈
+    // 0.01633, so the 95 % interval's half-width is 1.96 · 0.01633 / √6000 ≈ 0.000413.
+    let half = (down.ci_high.unwrap() - down.ci_low.unwrap()) / 2.0;
+    assert!((half - 0.000413).abs() < 0.00003, "{half}");
+    assert!(down.p_value.unwrap() < 0.001 && up.p_value.unwrap() < 0.001);
+    let pool = rayon::ThreadPoolBuilder::new()
+        .num_threads(1)
+        .build()
+        .unwrap();
+    let again = pool.install(|| run(&two, &base, &cand, &Policy::default()));
+    assert_eq!(
+        serde_json::to_string(&again).unwrap(),
+        serde_json::to_string(&s).unwrap()
+    );
+}
