@@ -242,7 +242,31 @@ def write_kquants(path: Path) -> tuple[dict, int]:
     return types, eos
 
 
-def reference(path: Path, eos: int) -> dict:
+QUESTIONS = ["When does the first ferry leave for Gull Island?", "Can I take my bicycle on the boat?"]
+ANSWER_TOKENS = 8
+
+
+def answers(model, tokenizer_dir: Path, eos: int) -> list:
+    """Chat answers as `liftgate answer --gguf FILE --model DIR` gives them: the directory's
+    tokenizer and template (apply_chat_template, add_generation_prompt, no system message),
+    greedy, decoded with skip_special_tokens=True and stripped."""
+    from transformers import AutoTokenizer
+
+    tok = AutoTokenizer.from_pretrained(str(tokenizer_dir))
+    out = []
+    for q in QUESTIONS:
+        ids = tok.apply_chat_template([{"role": "user", "content": q}], add_generation_prompt=True, return_dict=True, return_tensors="pt")["input_ids"]
+        with torch.no_grad():
+            g = model.generate(ids, attention_mask=torch.ones_like(ids), do_sample=False, max_new_tokens=ANSWER_TOKENS,
+                               eos_token_id=eos, pad_token_id=eos, output_scores=True, return_dict_in_generate=True)
+        new = g.sequences[0][ids.shape[1]:].tolist()
+        margins = [float(torch.topk(sc[0], 2).values[0] - torch.topk(sc[0], 2).values[1]) for sc in g.scores]
+        out.append({"question": q, "tokens": new, "answer": tok.decode(new, skip_special_tokens=True).strip(),
+                    "min_margin": min(margins)})
+    return out
+
+
+def reference(path: Path, eos: int, tokenizer_dir: Path | None = None) -> dict:
     """transformers' tensors and greedy continuations for one GGUF file."""
     with tempfile.TemporaryDirectory() as tmp:
         shutil.copy(path, Path(tmp) / path.name)
@@ -272,7 +296,9 @@ def reference(path: Path, eos: int) -> dict:
             top = torch.topk(s[0], 2).values
             margins.append(float(top[0] - top[1]))
         runs.append({"prompt": prompt, "tokens": out.sequences[0][len(prompt):].tolist(), "margins": margins})
+    chat = answers(model, tokenizer_dir, eos) if tokenizer_dir is not None else []
     return {
+        "answers": chat,
         "model_type": model.config.model_type,
         "tie_word_embeddings": bool(model.config.tie_word_embeddings),
         "tensors": {k: {"shape": list(v.shape), "sha256": sha(v)} for k, v in sorted(state.items())},
@@ -301,7 +327,7 @@ def main():
         cfg, eos, tensors, how = from_runner(family, arch, gname, lin, emb, head)
         path = OUT / f"{name}.gguf"
         types = write_model(path, cfg, eos, tensors, how)
-        ref, state = reference(path, eos)
+        ref, state = reference(path, eos, RUNNER / family / "model")
         # The permutation pair: the blocks run along a row and the permutation moves whole
         # rows, so they commute: transformers' q/k must equal the original's own quantisation.
         for k, v in tensors.items():
