@@ -533,13 +533,16 @@ fn unpermuted_source(r: usize, rows: usize, n_head: usize) -> usize {
 fn parse(path: &Path, bytes: &[u8]) -> Result<Content> {
     let mut cursor = std::io::Cursor::new(bytes);
     Content::read(&mut cursor).map_err(|e| {
-        let what = e.to_string();
+        // The first line: candle appends a backtrace when RUST_BACKTRACE is set.
+        let what = e.to_string().lines().next().unwrap_or_default().trim().to_string();
         let hint = if let Some(id) = what
             .strip_prefix("unknown dtype for tensor ")
             .and_then(|s| s.trim().parse::<u32>().ok())
         {
+            let tensor = tensor_of_type(bytes, id)
+                .map_or_else(String::new, |n| format!("tensor `{n}` "));
             format!(
-                "a tensor is stored as {}, which liftgate does not read (supported: f32, f16, bf16, q4_0, q4_1, q5_0, q5_1, q8_0, q2_k, q3_k, q4_k, q5_k, q6_k)",
+                "{tensor}is stored as {}, which liftgate does not read (supported: f32, f16, bf16, q4_0, q4_1, q5_0, q5_1, q8_0, q2_k, q3_k, q4_k, q5_k, q6_k)",
                 GgmlType::from_id(id).err().unwrap_or_default()
             )
         } else {
@@ -547,6 +550,67 @@ fn parse(path: &Path, bytes: &[u8]) -> Result<Content> {
         };
         Error::file(path, hint)
     })
+}
+
+/// The name of the first tensor of the directory stored as type `id`, found by walking the
+/// header (gguf.md: magic, version, counts, metadata entries, tensor infos; v2/v3 lengths are
+/// u64). Only for naming the tensor when candle's reader stops at a type it does not know.
+fn tensor_of_type(b: &[u8], id: u32) -> Option<String> {
+    struct R<'a>(&'a [u8], usize);
+    impl R<'_> {
+        fn take(&mut self, n: usize) -> Option<&[u8]> {
+            let s = self.0.get(self.1..self.1.checked_add(n)?)?;
+            self.1 += n;
+            Some(s)
+        }
+        fn u32(&mut self) -> Option<u32> {
+            Some(u32::from_le_bytes(self.take(4)?.try_into().ok()?))
+        }
+        fn u64(&mut self) -> Option<u64> {
+            Some(u64::from_le_bytes(self.take(8)?.try_into().ok()?))
+        }
+        fn string(&mut self) -> Option<&[u8]> {
+            let n = usize::try_from(self.u64()?).ok()?;
+            self.take(n)
+        }
+        fn value(&mut self, t: u32, depth: usize) -> Option<()> {
+            match t {
+                0 | 1 | 7 => self.take(1).map(|_| ()),
+                2 | 3 => self.take(2).map(|_| ()),
+                4..=6 => self.take(4).map(|_| ()),
+                10..=12 => self.take(8).map(|_| ()),
+                8 => self.string().map(|_| ()),
+                9 if depth < 4 => {
+                    let (inner, n) = (self.u32()?, self.u64()?);
+                    for _ in 0..n {
+                        self.value(inner, depth + 1)?;
+                    }
+                    Some(())
+                }
+                _ => None,
+            }
+        }
+    }
+    let mut r = R(b, 0);
+    if r.take(4)? != b"GGUF" || !matches!(r.u32()?, 2 | 3) {
+        return None;
+    }
+    let (tensors, kvs) = (r.u64()?, r.u64()?);
+    for _ in 0..kvs {
+        r.string()?;
+        let t = r.u32()?;
+        r.value(t, 0)?;
+    }
+    for _ in 0..tensors {
+        let name = String::from_utf8_lossy(r.string()?).to_string();
+        let dims = r.u32()? as usize;
+        r.take(dims.checked_mul(8)?)?;
+        if r.u32()? == id {
+            return Some(name);
+        }
+        r.u64()?;
+    }
+    None
 }
 
 /// The GGUF name of a checkpoint tensor (llama.cpp's names, gguf-py `tensor_mapping.py`).
