@@ -15,6 +15,8 @@ Writes tests/fixtures/gguf/:
     transformers loads it as Llama: it would pick Mistral only when `"mistral" in
     read_field(reader, "general.name")`, a list membership test (the whole name equal to
     "mistral"), and with gguf 0.19 that path fails ("Unknown gguf model_type: mistral");
+  * `qwen3-q8_0.gguf`: a seeded two-layer Qwen3 model with head size 128 (the only one
+    transformers can load from GGUF: it reads no head size from the metadata);
   * `kquants.gguf`: a one-layer llama-architecture model with hidden size 256 whose matrices are
     k-quant blocks (q2_k, q3_k, q4_k, q5_k, q6_k). gguf 0.19 has no quantiser for the k-quants,
     so the blocks are seeded random codes with f16 scales chosen to give weights of a usual size;
@@ -338,6 +340,31 @@ def main():
         ref["tokenizer_dir"] = f"tests/fixtures/runner/{family}/model"
         manifest["files"][f"{name}.gguf"] = ref
         print(name, path.stat().st_size, "bytes", ref["model_type"], file=sys.stderr)
+    # Qwen3: transformers reads no head_dim from a GGUF file, so it takes the class default
+    # (128); the model is made with that head size.
+    torch.manual_seed(3)
+    qcfg = transformers.Qwen3Config(
+        vocab_size=322, hidden_size=64, intermediate_size=128, num_hidden_layers=2,
+        num_attention_heads=2, num_key_value_heads=1, head_dim=128, max_position_embeddings=256,
+        rms_norm_eps=1e-6, rope_theta=1000000.0, tie_word_embeddings=False, eos_token_id=4,
+    )
+    qmodel = transformers.Qwen3ForCausalLM(qcfg).eval()
+    with torch.no_grad():
+        for n, p in qmodel.named_parameters():
+            if n.endswith("norm.weight"):
+                p.uniform_(0.7, 1.3)
+            else:
+                p.normal_(0, 0.2)
+    tensors = {k: v.detach().numpy().copy() for k, v in qmodel.state_dict().items()}
+    cfg = {**qcfg.to_dict(), "rope_theta": 1000000.0}
+    path = OUT / "qwen3-q8_0.gguf"
+    types = write_model(path, cfg, 4, tensors, ("qwen3", "tiny qwen3", Q.Q8_0, Q.Q8_0, Q.Q8_0))
+    ref, _ = reference(path, 4, RUNNER / "qwen3" / "model")
+    ref["types"] = types
+    ref["tokenizer_dir"] = "tests/fixtures/runner/qwen3/model"
+    manifest["files"]["qwen3-q8_0.gguf"] = ref
+    print("qwen3", path.stat().st_size, "bytes", ref["model_type"], file=sys.stderr)
+
     path = OUT / "kquants.gguf"
     types, eos = write_kquants(path)
     ref, _ = reference(path, eos)
