@@ -37,10 +37,26 @@ pub struct StoredRows {
     pub bytes: Vec<u8>,
 }
 
+/// The bytes of a file: mapped, or held (for callers that have them in memory).
+enum Bytes {
+    Mapped(memmap2::Mmap),
+    Held(Vec<u8>),
+}
+
+impl std::ops::Deref for Bytes {
+    type Target = [u8];
+    fn deref(&self) -> &[u8] {
+        match self {
+            Bytes::Mapped(m) => m,
+            Bytes::Held(v) => v,
+        }
+    }
+}
+
 /// An open GGUF file: parsed directory and metadata over a read-only mapping.
 pub struct GgufFile {
     pub path: PathBuf,
-    mmap: memmap2::Mmap,
+    mmap: Bytes,
     content: Content,
     /// `general.architecture`.
     pub arch: String,
@@ -63,6 +79,15 @@ impl GgufFile {
         // run; every tensor is copied out before the mapping is dropped.
         let mmap = unsafe { memmap2::Mmap::map(&f) }
             .map_err(|e| Error::file(path, format!("cannot memory-map: {e}")))?;
+        GgufFile::from_bytes_inner(path, Bytes::Mapped(mmap))
+    }
+
+    /// As [`GgufFile::open`] on bytes already in memory; `path` is for messages.
+    pub fn from_bytes(path: &Path, bytes: Vec<u8>) -> Result<GgufFile> {
+        GgufFile::from_bytes_inner(path, Bytes::Held(bytes))
+    }
+
+    fn from_bytes_inner(path: &Path, mmap: Bytes) -> Result<GgufFile> {
         let content = parse(path, &mmap)?;
         if content.magic == VersionedMagic::GgufV1 {
             return Err(Error::file(
@@ -214,6 +239,33 @@ impl GgufFile {
                 return Err(Error::field(&self.path, None, key, "missing"));
             }
         }
+        // Sizes the file cannot hold are refused before anything is sized by them: every
+        // dimension is one of a tensor of at least that many bytes, and every layer has tensors.
+        let bytes = self.mmap.len() as u64;
+        for (field, limit) in [
+            ("hidden_size", bytes),
+            ("intermediate_size", bytes),
+            ("num_attention_heads", bytes),
+            ("num_key_value_heads", bytes),
+            ("head_dim", bytes),
+            ("vocab_size", bytes),
+            ("max_position_embeddings", u32::MAX as u64),
+            ("num_hidden_layers", self.content.tensor_infos.len() as u64),
+        ] {
+            if let Some(v) = obj.get(field).and_then(Json::as_u64) {
+                if v > limit {
+                    return Err(Error::field(
+                        &self.path,
+                        None,
+                        field,
+                        format!(
+                            "is {v}, more than a file of {bytes} bytes with {} tensors can hold",
+                            self.content.tensor_infos.len()
+                        ),
+                    ));
+                }
+            }
+        }
         // transformers: tied exactly when the file has no output.weight.
         let tied = !self.content.tensor_infos.contains_key("output.weight");
         obj.insert("tie_word_embeddings".into(), tied.into());
@@ -257,7 +309,17 @@ impl GgufFile {
             )
         })?;
         let dims = info.shape.dims().to_vec();
-        let values: usize = dims.iter().product();
+        let values = dims
+            .iter()
+            .try_fold(1usize, |a, &d| a.checked_mul(d))
+            .ok_or_else(|| {
+                Error::field(
+                    &self.path,
+                    None,
+                    name,
+                    format!("dimensions {dims:?} are too large"),
+                )
+            })?;
         let (block, size) = t.block();
         let cols = dims.last().copied().unwrap_or(1);
         if !cols.is_multiple_of(block) {
@@ -344,7 +406,7 @@ impl GgufFile {
     }
 
     /// The rows of checkpoint tensor `hf` (bytes, transformers' row order).
-    fn rows(&self, e: &Entry, heads: Option<usize>) -> Vec<u8> {
+    fn rows(&self, name: &str, e: &Entry, heads: Option<usize>) -> Result<Vec<u8>> {
         let rows = e.dims.first().copied().unwrap_or(0);
         // A matrix moves whole rows; a vector (a bias) single values.
         let row_bytes = match e.dims.len() {
@@ -352,20 +414,28 @@ impl GgufFile {
             _ => e.t.block().1,
         };
         let Some(n_head) = heads.filter(|_| e.dims.len() == 2 || e.t.block().0 == 1) else {
-            return e.bytes.to_vec();
+            return Ok(e.bytes.to_vec());
         };
+        if n_head == 0 || !rows.is_multiple_of(2 * n_head) {
+            return Err(Error::field(
+                &self.path,
+                None,
+                name,
+                format!("{rows} rows do not split into {n_head} heads of rotary pairs; the q/k rows cannot be put back in order"),
+            ));
+        }
         let mut out = Vec::with_capacity(e.bytes.len());
         for r in 0..rows {
             let g = unpermuted_source(r, rows, n_head);
             out.extend_from_slice(&e.bytes[g * row_bytes..(g + 1) * row_bytes]);
         }
-        out
+        Ok(out)
     }
 
     /// The f32 values of checkpoint tensor `hf`, as transformers holds them after loading.
     pub fn values(&self, hf: &str, shape: &[usize], spec: &ModelSpec) -> Result<Vec<f32>> {
         let e = self.expect(hf, shape, spec)?;
-        let bytes = self.rows(&e, self.permuted_heads(hf, spec));
+        let bytes = self.rows(hf, &e, self.permuted_heads(hf, spec))?;
         let n: usize = shape.iter().product();
         let mut v = vec![0.0; n];
         let cols = *shape.last().unwrap_or(&1);
@@ -424,7 +494,7 @@ impl GgufFile {
             let gname = gguf_name(hf).unwrap_or_default();
             if linear.contains(hf) {
                 let e = self.expect(hf, shape, spec)?;
-                let bytes = self.rows(&e, self.permuted_heads(hf, spec));
+                let bytes = self.rows(hf, &e, self.permuted_heads(hf, spec))?;
                 let cols = shape[1];
                 let row_bytes = e.t.row_bytes(cols);
                 let mut buf = vec![0.0; cols];
@@ -663,6 +733,41 @@ mod tests {
             for r in 0..rows {
                 assert_eq!(gguf_of[unpermuted_source(r, rows, n_head)], r);
             }
+        }
+    }
+
+    /// Damaged copies of a fixture file (cut at many lengths, single bytes of the header and
+    /// directory changed) are read or refused as input errors naming the file, never a panic.
+    #[test]
+    fn damaged_files_are_refused_without_panicking() {
+        let good = std::fs::read(
+            Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/gguf/llama-q4_0-tied.gguf"),
+        )
+        .unwrap();
+        let path = Path::new("model.gguf");
+        let run = |b: Vec<u8>| {
+            let r = GgufFile::from_bytes(path, b).and_then(|f| {
+                let spec = f.spec()?;
+                f.weights(&spec).map(|_| ())
+            });
+            if let Err(e) = r {
+                assert_eq!(e.exit_code(), 2, "{e}");
+                assert!(e.to_string().starts_with("model.gguf"), "{e}");
+            }
+        };
+        for cut in (0..good.len()).step_by(211) {
+            run(good[..cut].to_vec());
+        }
+        let header = good.len().min(4096);
+        let mut s: u64 = 7;
+        for _ in 0..1500 {
+            s = s
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            let at = (s >> 33) as usize % header;
+            let mut b = good.clone();
+            b[at] = (s >> 17) as u8;
+            run(b);
         }
     }
 

@@ -2,7 +2,8 @@
 //! (`config`), safetensors → f32 tensors by checkpoint name (`weights`, names in `names`),
 //! LoRA adapters laid beside the base or merged into that map (`lora`), then the generic
 //! decoder (`decoder`, with its `cache`, `rope`, `linear` layers and the greedy pick at the
-//! output `head`).
+//! output `head`). A GGUF file (`gguf`) gives the config and tensors instead, its linear layers
+//! kept in their stored blocks.
 //!
 //! The arithmetic under the decoder (matrix products, the bf16 and 8-bit kernels) lives in
 //! `crate::kernels`, which knows nothing of models; the modules here import it, never the
