@@ -181,3 +181,51 @@ fn flag_combinations_that_cannot_apply_are_refused() {
     out.expect_code(2)
         .expect_stderr(&["gguf=FILE is a finished export"]);
 }
+
+/// A chat template stored in the file that renders a sample conversation differently from the
+/// directory's is reported with both renderings; the directory's is used (the answers above).
+#[test]
+fn a_different_template_in_the_file_is_reported_with_both_renderings() {
+    let t = Bin::new();
+    t.write(
+        "set.jsonl",
+        "{\"id\": \"a\", \"question\": \"Can I take my bicycle on the boat?\", \"references\": [\"x\"]}\n",
+    );
+    let dir = common::fixture("runner/qwen2/model");
+    let file = gguf("qwen2-q4_1-tied.gguf");
+    let run = t.run([
+        "answer",
+        "--model",
+        dir.to_str().unwrap(),
+        "--gguf",
+        file.to_str().unwrap(),
+        "--questions",
+        "set.jsonl",
+        "--out",
+        "answers.jsonl",
+        "--max-new-tokens",
+        "2",
+    ]);
+    run.expect_success().expect_stderr(&[
+        "renders a sample conversation differently",
+        "qwen2-q4_1-tied.gguf",
+        "[user] When does the first ferry leave?",
+        "[assistant] ",
+    ]);
+    // Files without a template of their own say nothing.
+    let quiet = t.run([
+        "answer",
+        "--model",
+        dir.to_str().unwrap(),
+        "--gguf",
+        gguf("qwen2-q5_1.gguf").to_str().unwrap(),
+        "--questions",
+        "set.jsonl",
+        "--out",
+        "answers2.jsonl",
+        "--max-new-tokens",
+        "2",
+    ]);
+    quiet.expect_success();
+    assert!(!quiet.stderr.contains("chat template"), "{}", quiet.stderr);
+}

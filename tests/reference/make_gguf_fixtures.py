@@ -113,6 +113,12 @@ def hf_to_gguf_name(name: str) -> str:
     return f"blk.{layer}.{sub}"
 
 
+FILE_TEMPLATE = (
+    "{% for m in messages %}[{{ m['role'] }}] {{ m['content'] }}\n{% endfor %}"
+    "{% if add_generation_prompt %}[assistant] {% endif %}"
+)
+
+
 def write_header(w: gguf.GGUFWriter, arch: str, name: str, cfg: dict, eos: int, head_dim_key: bool):
     w.add_name(name)
     w.add_context_length(cfg["max_position_embeddings"])
@@ -150,6 +156,10 @@ def write_model(path: Path, cfg: dict, eos: int, tensors: dict, how) -> dict:
     arch, gname, linear, embed, head = how
     w = gguf.GGUFWriter(str(path), arch)
     write_header(w, arch, gname, cfg, eos, head_dim_key=(arch == "llama"))
+    if head is None and arch == "qwen2":
+        # A template of the file's own that differs from the tokenizer directory's (liftgate
+        # uses the directory's and warns with both renderings).
+        w.add_chat_template(FILE_TEMPLATE)
     types = {}
     for name in sorted(tensors):
         t = tensors[name].astype(np.float32)
