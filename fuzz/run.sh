@@ -18,7 +18,7 @@ SECONDS_PER_TARGET="${1:-600}"
 shift || true
 TARGETS=("$@")
 if [ ${#TARGETS[@]} -eq 0 ]; then
-    TARGETS=(questions policy adapter_config template template_messages)
+    TARGETS=(questions policy adapter_config template template_messages gguf)
 fi
 # One fuzzing process at a time (-fork=1). Extra libFuzzer flags, e.g. FUZZ_FLAGS="-max_len=65536".
 FUZZ_FLAGS="${FUZZ_FLAGS:-}"

@@ -92,6 +92,12 @@ pub struct AnswerArgs {
     /// stored.
     #[arg(long, value_enum, value_name = "QUANT")]
     pub base: Option<BaseQuant>,
+    /// Answer with the model in this GGUF file (f32, f16, bf16, q4_0, q4_1, q5_0, q5_1, q8_0 and
+    /// the k-quants q2_k to q6_k; llama, qwen2 and qwen3 architectures), its weights kept in
+    /// their stored blocks and computed in f32; --model then gives the tokenizer and chat
+    /// template.
+    #[arg(long, value_name = "FILE", conflicts_with_all = ["adapter", "merge", "base"])]
+    pub gguf: Option<PathBuf>,
     /// A short name for this variant, recorded in the run record.
     #[arg(long, value_name = "NAME")]
     pub name: Option<String>,
@@ -236,7 +242,8 @@ pub struct VetArgs {
     /// A candidate, as comma-separated KEY=VALUE pairs: `name=` (letters, digits, `.`, `_`,
     /// `-`), `adapter=DIR`, `model=DIR` (default: the baseline's model), `merge=f32|bf16|f16`
     /// (default: unmerged), `base=nf4|nf4-single|fp4|fp4-single` (the adapter on its base
-    /// quantised to 4 bits as QLoRA trains it, see `answer --base`), `from=NAME` (the candidate this artifact was made from, for "how
+    /// quantised to 4 bits as QLoRA trains it, see `answer --base`), `gguf=FILE` (a GGUF export,
+    /// see `answer --gguf`; `model=DIR` then only gives its tokenizer and chat template), `from=NAME` (the candidate this artifact was made from, for "how
     /// much of the lift it keeps"). Repeat for several candidates, e.g.
     /// `--candidate name=epoch2,adapter=runs/e2 --candidate name=e2-bf16,adapter=runs/e2,merge=bf16`.
     #[arg(long, value_name = "SPEC")]

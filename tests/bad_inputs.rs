@@ -50,7 +50,7 @@ macro_rules! bad_input {
 
 /// The number of cases below; a case that disappears fails
 /// `catalogue_keeps_every_case`, so none is dropped by accident.
-const CASES: usize = 91;
+const CASES: usize = 98;
 
 fn runner(family: &str) -> PathBuf {
     common::fixture("runner").join(family)
@@ -1390,6 +1390,114 @@ bad_input!(training_file_row_without_question, |d| {
         outputs: vec![],
         needles: needles(&["train.jsonl:2", "question"]),
     }
+});
+
+/// `answer --gguf model.gguf` with the llama fixture's tokenizer, on a copy of the tiny q4_0
+/// GGUF fixture (tests/fixtures/gguf) changed by `edit`.
+fn gguf_case(d: &Path, edit: impl FnOnce(&mut Vec<u8>), needles_: &[&str]) -> Setup {
+    write_set(d);
+    let mut b = std::fs::read(common::fixture("gguf/llama-q4_0-tied.gguf")).unwrap();
+    edit(&mut b);
+    std::fs::write(d.join("model.gguf"), b).unwrap();
+    let mut setup = answer(d, false, needles_);
+    setup.args[2] = runner("llama").join("model").into_os_string();
+    setup.args.extend([s("--gguf"), s("model.gguf")]);
+    setup
+}
+
+/// Where `needle` starts in `b`.
+fn find(b: &[u8], needle: &[u8]) -> usize {
+    b.windows(needle.len())
+        .position(|w| w == needle)
+        .expect("needle in the GGUF fixture")
+}
+
+/// The byte offset of a tensor's directory fields after its name: (dtype, offset) positions.
+fn tensor_fields(b: &[u8], name: &str) -> (usize, usize) {
+    let at = find(b, name.as_bytes()) + name.len();
+    let dims = u32::from_le_bytes(b[at..at + 4].try_into().unwrap()) as usize;
+    let dtype = at + 4 + 8 * dims;
+    (dtype, dtype + 4)
+}
+
+bad_input!(gguf_not_a_gguf_file, |d| {
+    gguf_case(
+        d,
+        |b| *b = b"not a model".to_vec(),
+        &["model.gguf", "not a readable GGUF file"],
+    )
+});
+
+bad_input!(gguf_truncated_in_the_tensor_data, |d| {
+    gguf_case(
+        d,
+        |b| b.truncate(b.len() * 2 / 3),
+        &["model.gguf", "runs past the end of the file", "truncated"],
+    )
+});
+
+bad_input!(gguf_truncated_in_the_header, |d| {
+    gguf_case(
+        d,
+        |b| b.truncate(300),
+        &["model.gguf", "not a readable GGUF file"],
+    )
+});
+
+bad_input!(gguf_tensor_offset_past_the_end, |d| {
+    gguf_case(
+        d,
+        |b| {
+            let (_, off) = tensor_fields(b, "blk.1.ffn_down.weight");
+            b[off..off + 8].copy_from_slice(&(1u64 << 40).to_le_bytes());
+        },
+        &[
+            "model.gguf",
+            "blk.1.ffn_down.weight",
+            "past the end of the file",
+        ],
+    )
+});
+
+bad_input!(gguf_unsupported_tensor_type, |d| {
+    gguf_case(
+        d,
+        |b| {
+            let (dtype, _) = tensor_fields(b, "blk.0.attn_q.weight");
+            b[dtype..dtype + 4].copy_from_slice(&23u32.to_le_bytes());
+        },
+        &["model.gguf", "blk.0.attn_q.weight", "iq4_xs"],
+    )
+});
+
+bad_input!(gguf_metadata_contradicts_tensor_shapes, |d| {
+    gguf_case(
+        d,
+        |b| {
+            let at = find(b, b"llama.feed_forward_length") + "llama.feed_forward_length".len() + 4;
+            b[at..at + 4].copy_from_slice(&256u32.to_le_bytes());
+        },
+        &[
+            "model.gguf",
+            "blk.0.ffn_gate.weight",
+            "contradicts the metadata",
+        ],
+    )
+});
+
+bad_input!(gguf_unsupported_architecture, |d| {
+    gguf_case(
+        d,
+        |b| {
+            let at = find(b, b"general.architecture") + "general.architecture".len() + 12;
+            b[at..at + 5].copy_from_slice(b"bloom");
+        },
+        &[
+            "model.gguf",
+            "general.architecture",
+            "`bloom` is not supported",
+        ],
+    )
 });
 
 bad_input!(policy_non_utf8_bytes, |d| {

@@ -76,6 +76,9 @@ pub struct Settings {
     /// The base's linear layers quantised to 4 bits (the base as QLoRA trains against it);
     /// None: the base as stored.
     pub base: Option<BaseQuant>,
+    /// A GGUF file holding the whole model (`--gguf`, `gguf=`); `model` then only supplies the
+    /// tokenizer and chat template.
+    pub gguf: Option<PathBuf>,
     pub generation: Generation,
     /// Discard saved answers of an earlier run instead of continuing it.
     pub restart: bool,
@@ -116,6 +119,7 @@ impl Settings {
             name: None,
             merge,
             base: None,
+            gguf: None,
             model: model.to_path_buf(),
             adapter: adapter.map(Path::to_path_buf),
             generation: generation.checked()?,
@@ -144,6 +148,36 @@ impl Settings {
             )));
         }
         self.base = Some(q);
+        Ok(self)
+    }
+
+    /// The model read from the GGUF file `gguf` (`--gguf`, `gguf=`) instead of the directory,
+    /// whose tokenizer and chat template are still used. A GGUF file is a finished export: no
+    /// adapter, merge or 4-bit base applies to it, and it computes in f32 as transformers does
+    /// after loading it.
+    pub fn with_gguf(mut self, gguf: Option<&Path>) -> Result<Self> {
+        let Some(g) = gguf else {
+            return Ok(self);
+        };
+        if self.adapter.is_some() || self.base.is_some() {
+            return Err(Error::usage(format!(
+                "{}: a GGUF file is a finished export; an adapter or a 4-bit base does not apply to it",
+                g.display()
+            )));
+        }
+        if self.generation.weights != WeightFormat::F32 {
+            return Err(Error::usage(format!(
+                "{}: a GGUF model computes in f32 on its stored blocks; drop --weights bf16",
+                g.display()
+            )));
+        }
+        if !g.is_file() {
+            return Err(Error::usage(format!(
+                "--gguf {}: not a file (expected a .gguf model file)",
+                g.display()
+            )));
+        }
+        self.gguf = Some(g.to_path_buf());
         Ok(self)
     }
 }

@@ -73,7 +73,9 @@ fn prepare(
             || m.settings.generation != first.generation
             || m.settings.shard != first.shard
             || m.settings.base != first.base
-            || (members.len() > 1 && m.settings.merge != Merge::Unmerged)
+            || m.settings.gguf != first.gguf
+            || (members.len() > 1
+                && (m.settings.merge != Merge::Unmerged || m.settings.gguf.is_some()))
     }) {
         return Err(Error::internal(
             "the variants of one answering group must share model, base, generation, shard and be unmerged",
@@ -82,12 +84,30 @@ fn prepare(
     let g = &first.generation;
     let threads = set_threads(g.threads);
     // The config first: a wrong or unsupported model fails before the tokenizer is read.
-    model::config::ModelSpec::load(&first.model)?;
+    let gguf = match &first.gguf {
+        Some(path) => Some(model::gguf::GgufFile::open(path)?),
+        None => None,
+    };
+    match &gguf {
+        Some(g) => {
+            g.spec()?;
+        }
+        None => {
+            model::config::ModelSpec::load(&first.model)?;
+        }
+    }
     let chat = ChatTokenizer::load(&first.model)?;
+    if let Some(g) = &gguf {
+        compare_templates(g, &chat, &first.model, g.chat_template())?;
+    }
+    drop(gguf);
     // Every prompt before any model work: a template error (e.g. a rejected system role) stops
     // the run with nothing computed.
     let prompts = prompts::build(&chat, g.system.as_deref(), part)?;
     let loaded = match members {
+        [_] if first.gguf.is_some() => {
+            model::load_gguf(first.gguf.as_deref().unwrap_or(Path::new("")))?
+        }
         [one] if first.base.is_none() => model::load_as(
             &first.model,
             one.settings.adapter.as_deref(),
@@ -130,7 +150,7 @@ fn prepare(
         ignore_eos: g.ignore_eos,
         repetition_penalty: loaded.generation.repetition_penalty.map(|p| p as f32),
     };
-    let model = model_info(&first.model, &loaded)?;
+    let model = model_info(&first.model, first.gguf.as_deref(), &loaded)?;
     let mut infos = Vec::with_capacity(members.len());
     for (m, applied) in members.iter().zip(&loaded.adapters) {
         if let Some(why) = applied.as_ref().and_then(|a| a.merged_because.as_deref()) {
@@ -169,7 +189,9 @@ fn prepare(
                 max_new_tokens: g.max_new_tokens,
                 ignore_eos: g.ignore_eos,
                 eos_token_ids: gen.eos.clone(),
-                eos_source: if loaded.generation.from_generation_config {
+                eos_source: if first.gguf.is_some() {
+                    "the GGUF file's tokenizer.ggml.eos_token_id".to_string()
+                } else if loaded.generation.from_generation_config {
                     "generation_config.json".to_string()
                 } else {
                     "config.json".to_string()
@@ -505,19 +527,75 @@ fn progress_bar(len: u64) -> ProgressBar {
     bar
 }
 
-/// Content fingerprint of the model directory: SHA-256 over the list of (file, SHA-256) for
-/// config, generation config, weights (and index) and tokenizer files.
-fn model_info(dir: &Path, loaded: &model::LoadedModel) -> Result<ModelInfo> {
+/// The conversation both chat templates render when a GGUF file and a tokenizer directory
+/// each bring one.
+const SAMPLE_CONVERSATION: [(&str, &str); 3] = [
+    ("system", "You answer questions from ferry passengers."),
+    ("user", "When does the first ferry leave?"),
+    ("assistant", "At 6:40 from the north pier."),
+];
+
+/// Warns, with both renderings of a sample conversation, when the GGUF file's chat template
+/// renders differently from the one of the tokenizer directory (which is the one used): a
+/// serving stack that reads the file's template would prompt the model differently.
+fn compare_templates(
+    g: &model::gguf::GgufFile,
+    chat: &ChatTokenizer,
+    dir: &Path,
+    template: Option<&str>,
+) -> Result<()> {
+    let Some(source) = template else {
+        return Ok(());
+    };
+    if !chat.has_template() {
+        eprintln!(
+            "liftgate: warning: {} has a chat template and {} has none; prompts are plain text, as the directory says, while a server reading the file would use its template",
+            g.path.display(),
+            dir.display(),
+        );
+        return Ok(());
+    }
+    let render = |c: &ChatTokenizer| {
+        c.render_messages(&SAMPLE_CONVERSATION, true)
+            .unwrap_or_else(|e| format!("(cannot render: {e})"))
+    };
+    let theirs = match ChatTokenizer::load(dir)?.with_template(source, &g.path) {
+        Ok(c) => render(&c),
+        Err(e) => format!("(cannot compile: {e})"),
+    };
+    let ours = render(chat);
+    if theirs != ours {
+        eprintln!(
+            "liftgate: warning: the chat template in {} renders a sample conversation differently from the one in {}, which is used.\n--- {}:\n{ours}\n--- {}:\n{theirs}\n---",
+            g.path.display(),
+            dir.display(),
+            dir.display(),
+            g.path.display(),
+        );
+    }
+    Ok(())
+}
+
+/// Content fingerprint of the model: SHA-256 over the list of (file, SHA-256) for config,
+/// generation config, weights (and index) and tokenizer files; for a GGUF model, the GGUF file
+/// and the tokenizer files of the directory.
+fn model_info(dir: &Path, gguf: Option<&Path>, loaded: &model::LoadedModel) -> Result<ModelInfo> {
     let mut files: Vec<PathBuf> = Vec::new();
-    for name in [
-        "config.json",
-        "generation_config.json",
-        "model.safetensors.index.json",
+    let config: &[&str] = if gguf.is_some() {
+        &[]
+    } else {
+        &[
+            "config.json",
+            "generation_config.json",
+            "model.safetensors.index.json",
+        ]
+    };
+    for name in config.iter().copied().chain([
         "tokenizer.json",
         "tokenizer_config.json",
         "special_tokens_map.json",
         "chat_template.jinja",
-    ] {
+    ]) {
         let p = dir.join(name);
         if p.is_file() {
             files.push(p);
@@ -537,7 +615,7 @@ fn model_info(dir: &Path, loaded: &model::LoadedModel) -> Result<ModelInfo> {
         digests.push(FileDigest { name, sha256: sha });
     }
     Ok(ModelInfo {
-        path: dir.display().to_string(),
+        path: gguf.unwrap_or(dir).display().to_string(),
         fingerprint: fsutil::sha256_hex(manifest.as_bytes()),
         files: digests,
         model_type: loaded.spec.family.model_type().to_string(),

@@ -19,7 +19,8 @@ pub fn run(args: &AnswerArgs) -> Result<Outcome> {
         args::default_generation(&args.generation)?,
         args.restart,
     )?
-    .on_base(args.base)?;
+    .on_base(args.base)?
+    .with_gguf(args.gguf.as_deref())?;
     if let Some(name) = &args.name {
         args::check_name("--name", name)?;
         settings.name = Some(name.clone());

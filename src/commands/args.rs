@@ -84,8 +84,9 @@ pub fn check_name(flag: &str, name: &str) -> Result<()> {
     }
 }
 
-/// Parses one `--candidate` SPEC (`name=…,adapter=…,model=…,merge=…,base=…,from=…`) into settings;
-/// `model` defaults to `default_model`. Without `name=` the name is the adapter's (else the
+/// Parses one `--candidate` SPEC (`name=…,adapter=…,model=…,merge=…,base=…,from=…,gguf=…`) into
+/// settings; `model` defaults to `default_model` (with `gguf`, the directory whose tokenizer
+/// and chat template the GGUF model uses). Without `name=` the name is the adapter's (else the
 /// model's) directory name, with the merge dtype (or the 4-bit base) appended.
 pub fn candidate(
     spec: &str,
@@ -94,12 +95,12 @@ pub fn candidate(
     restart: bool,
 ) -> Result<NamedVariant> {
     let flag = format!("--candidate {spec}");
-    let (mut name, mut model, mut adapter, mut merge, mut base, mut from) =
-        (None, None, None, None, None, None);
+    let (mut name, mut model, mut adapter, mut merge, mut base, mut from, mut gguf) =
+        (None, None, None, None, None, None, None);
     for pair in spec.split(',').filter(|p| !p.trim().is_empty()) {
         let Some((key, value)) = pair.split_once('=') else {
             return Err(Error::usage(format!(
-                "{flag}: `{pair}` is not KEY=VALUE (keys: name, adapter, model, merge, base, from)"
+                "{flag}: `{pair}` is not KEY=VALUE (keys: name, adapter, model, merge, base, from, gguf)"
             )));
         };
         let value = value.trim();
@@ -110,9 +111,10 @@ pub fn candidate(
             "merge" => &mut merge,
             "base" => &mut base,
             "from" => &mut from,
+            "gguf" => &mut gguf,
             other => {
                 return Err(Error::usage(format!(
-                    "{flag}: unknown key `{other}` (keys: name, adapter, model, merge, base, from)"
+                    "{flag}: unknown key `{other}` (keys: name, adapter, model, merge, base, from, gguf)"
                 )))
             }
         };
@@ -138,11 +140,17 @@ pub fn candidate(
             })?,
         ),
     };
-    if adapter.is_none() && model.is_none() {
+    if gguf.is_some() && (adapter.is_some() || merge != Merge::Unmerged || base.is_some()) {
         return Err(Error::usage(format!(
-            "{flag}: give adapter=DIR (the baseline's model plus that adapter) or model=DIR (a merged checkpoint), or both"
+            "{flag}: gguf=FILE is a finished export: adapter, merge and base do not apply to it (model=DIR may give its tokenizer)"
         )));
     }
+    if adapter.is_none() && model.is_none() && gguf.is_none() {
+        return Err(Error::usage(format!(
+            "{flag}: give adapter=DIR (the baseline's model plus that adapter), model=DIR (a merged checkpoint), both, or gguf=FILE (a GGUF export)"
+        )));
+    }
+    let gguf_path = gguf.map(PathBuf::from);
     let model_path = model
         .map(PathBuf::from)
         .unwrap_or_else(|| default_model.to_path_buf());
@@ -150,9 +158,15 @@ pub fn candidate(
     let name = match name {
         Some(n) => n,
         None => {
-            let dir = adapter_path.as_deref().unwrap_or(&model_path);
-            let stem = dir
-                .file_name()
+            let dir = gguf_path
+                .as_deref()
+                .or(adapter_path.as_deref())
+                .unwrap_or(&model_path);
+            let stem = match &gguf_path {
+                Some(g) => g.file_stem(),
+                None => dir.file_name(),
+            };
+            let stem = stem
                 .map(|n| n.to_string_lossy().to_string())
                 .unwrap_or_else(|| "candidate".to_string());
             let stem: String = stem
@@ -186,6 +200,7 @@ pub fn candidate(
         restart,
     )
     .and_then(|s| s.on_base(base))
+    .and_then(|s| s.with_gguf(gguf_path.as_deref()))
     .map_err(|e| match e {
         Error::Usage(m) => Error::usage(format!("{flag}: {m}")),
         other => other,

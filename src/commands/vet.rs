@@ -190,6 +190,9 @@ fn name_of(v: &NamedVariant) -> &str {
 
 /// The variant in words, for the report.
 fn describe(s: &answer::Settings) -> String {
+    if let Some(g) = &s.gguf {
+        return format!("GGUF {} (tokenizer of {})", g.display(), s.model.display());
+    }
     let base = match s.base {
         None => s.model.display().to_string(),
         Some(q) => format!("{} in {}", s.model.display(), q.describe()),
@@ -210,6 +213,7 @@ fn groups(variants: &[NamedVariant]) -> Result<Vec<Vec<usize>>> {
     for (i, v) in variants.iter().enumerate() {
         let s = &v.settings;
         let shares = s.merge == Merge::Unmerged
+            && s.gguf.is_none()
             && match &s.adapter {
                 None => true,
                 Some(a) => Adapter::load(a)?.needs_merge().is_none(),

@@ -24,6 +24,7 @@ use crate::error::{Error, Result};
 use crate::kernels::dense::dot;
 use crate::kernels::PARALLEL_WORK;
 use crate::model::config::{Activation, ModelSpec, NormStyle};
+use crate::model::gguf::StoredRows;
 use crate::model::head::{apply_repetition_penalty, argmax, Scratch as HeadScratch, Screen};
 use crate::model::linear::{flat, Linear, WeightFormat};
 use crate::model::lora::LowRank;
@@ -36,6 +37,13 @@ use rayon::prelude::*;
 use std::collections::HashMap;
 
 pub use crate::model::cache::KvCache;
+
+/// Linear layers that come already quantised, by checkpoint weight name: a base quantised to
+/// 4 bits as bitsandbytes does, or the stored blocks of a GGUF file.
+pub enum LayerCodes {
+    Nf4(QuantisedBase),
+    Gguf(HashMap<String, StoredRows>),
+}
 
 /// A run of new tokens of the sequence in `slot`, placed right after what the slot holds,
 /// computed by model variant `variant` (0 with no unmerged adapters; see
@@ -155,13 +163,13 @@ impl Decoder {
     /// quantised to 4 bits as bitsandbytes does (their entries in `w` give only the shapes);
     /// embeddings, norms and the output head stay as they are, as transformers leaves them
     /// (`get_keys_to_not_convert` keeps the output head, and only `nn.Linear` modules are
-    /// replaced).
+    /// replaced). With the stored blocks of a GGUF file, the same layers keep those blocks.
     pub fn with_adapters(
         spec: &ModelSpec,
         mut w: HashMap<String, Tensor>,
         format: WeightFormat,
         adapters: Vec<(usize, Vec<LowRank>)>,
-        mut quantised: Option<QuantisedBase>,
+        mut quantised: Option<LayerCodes>,
     ) -> Result<Self> {
         let mut terms: HashMap<String, Vec<(usize, LowRank)>> = HashMap::new();
         for (variant, list) in adapters {
@@ -642,12 +650,19 @@ type Part = (String, Tensor, Option<Tensor>);
 fn stack_with_terms(
     parts: Vec<Part>,
     format: WeightFormat,
-    quantised: Option<&mut QuantisedBase>,
+    quantised: Option<&mut LayerCodes>,
     terms: &mut HashMap<String, Vec<(usize, LowRank)>>,
 ) -> Result<Linear> {
     let mut places = Vec::with_capacity(parts.len());
     let mut at = 0;
     let mut tensors = Vec::with_capacity(parts.len());
+    let quantised = match quantised {
+        Some(LayerCodes::Gguf(stored)) => {
+            return stack_stored(parts, stored, terms);
+        }
+        Some(LayerCodes::Nf4(q)) => Some(q),
+        None => None,
+    };
     let mut codes = quantised.map(|q| (q, Vec::new()));
     for (module, w, b) in parts {
         if let Some((q, list)) = &mut codes {
@@ -665,6 +680,36 @@ fn stack_with_terms(
     }
     let codes = codes.map(|(q, list)| (q.book, list));
     let mut linear = Linear::stack(tensors, format, codes)?;
+    for (module, at) in places {
+        for (variant, lr) in terms.remove(&module).unwrap_or_default() {
+            linear.attach(variant, at, lr)?;
+        }
+    }
+    Ok(linear)
+}
+
+/// As [`stack_with_terms`], for matrices kept in a GGUF file's block formats.
+fn stack_stored(
+    parts: Vec<Part>,
+    stored: &mut HashMap<String, StoredRows>,
+    terms: &mut HashMap<String, Vec<(usize, LowRank)>>,
+) -> Result<Linear> {
+    let mut places = Vec::with_capacity(parts.len());
+    let mut list = Vec::with_capacity(parts.len());
+    let mut at = 0;
+    let mut inp = 0;
+    for (module, w, b) in parts {
+        let name = names::weight(&module);
+        let s = stored
+            .remove(&name)
+            .ok_or_else(|| Error::internal(format!("{name} has no stored rows")))?;
+        let (rows, cols) = w.dims2()?;
+        inp = cols;
+        places.push((module, at));
+        at += rows;
+        list.push((s.t, s.rows, s.bytes, b));
+    }
+    let mut linear = Linear::stack_stored(list, inp)?;
     for (module, at) in places {
         for (variant, lr) in terms.remove(&module).unwrap_or_default() {
             linear.attach(variant, at, lr)?;

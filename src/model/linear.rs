@@ -10,6 +10,7 @@ use crate::kernels::blocks::CodeMatrix;
 use crate::kernels::dense::{
     dot, matmul, matmul_half, matmul_panels, pack_panels_into, panel_len, Half,
 };
+use crate::kernels::ggml::{GgmlMatrix, GgmlType};
 use crate::kernels::nf4::{self, Codebook, Quantised};
 use crate::kernels::PARALLEL_WORK;
 use crate::model::lora::LowRank;
@@ -137,6 +138,8 @@ enum LinearWeights {
     /// 4-bit codes with a scale per block (a base quantised as bitsandbytes does for QLoRA),
     /// dequantised to f32 inside the product.
     Codes(CodeMatrix),
+    /// GGUF block-quantised rows as the file stores them, dequantised inside the product.
+    Ggml(GgmlMatrix),
 }
 
 impl Linear {
@@ -210,6 +213,9 @@ impl Linear {
                     }
                     m.put_rows(&q.codes, &q.scales, o, at);
                 }
+                LinearWeights::Ggml(_) => {
+                    return Err(Error::internal("GGUF rows are stacked by stack_stored"))
+                }
             }
             drop(wt);
             if let (true, Some(bt)) = (with_bias, bt) {
@@ -221,6 +227,33 @@ impl Linear {
             w,
             out,
             inp,
+            b: with_bias.then_some(b),
+            terms: Vec::new(),
+        })
+    }
+
+    /// Stacks the rows of one or more matrices kept in a GGUF file's block formats (each part
+    /// its type, row count and bytes in row order), with their biases if every part has one.
+    pub fn stack_stored(
+        parts: Vec<(GgmlType, usize, Vec<u8>, Option<Tensor>)>,
+        inp: usize,
+    ) -> Result<Linear> {
+        let with_bias = parts.iter().all(|p| p.3.is_some());
+        let mut m = GgmlMatrix::new(inp);
+        let mut b = Vec::new();
+        for (t, rows, bytes, bias) in parts {
+            if !inp.is_multiple_of(t.block().0) || bytes.len() != rows * t.row_bytes(inp) {
+                return Err(Error::internal("stored rows of the wrong size"));
+            }
+            m.push(t, rows, bytes);
+            if let (true, Some(bt)) = (with_bias, bias) {
+                with_f32(&bt, |v| b.extend_from_slice(v))?;
+            }
+        }
+        Ok(Linear {
+            out: m.out,
+            inp,
+            w: LinearWeights::Ggml(m),
             b: with_bias.then_some(b),
             terms: Vec::new(),
         })
@@ -247,6 +280,7 @@ impl Linear {
             LinearWeights::StoredF16(w) => matmul_half(x, n, self.inp, w, self.out, y),
             LinearWeights::Bf16(m) => m.matmul(x, n, y),
             LinearWeights::Codes(m) => matmul_panels(x, n, self.inp, m, self.out, y),
+            LinearWeights::Ggml(m) => matmul_panels(x, n, self.inp, m, self.out, y),
         }
         if let Some(b) = &self.b {
             for row in y.chunks_exact_mut(self.out) {

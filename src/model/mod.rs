@@ -2,7 +2,8 @@
 //! (`config`), safetensors → f32 tensors by checkpoint name (`weights`, names in `names`),
 //! LoRA adapters laid beside the base or merged into that map (`lora`), then the generic
 //! decoder (`decoder`, with its `cache`, `rope`, `linear` layers and the greedy pick at the
-//! output `head`).
+//! output `head`). A GGUF file (`gguf`) gives the config and tensors instead, its linear layers
+//! kept in their stored blocks.
 //!
 //! The arithmetic under the decoder (matrix products, the bf16 and 8-bit kernels) lives in
 //! `crate::kernels`, which knows nothing of models; the modules here import it, never the
@@ -15,6 +16,7 @@
 pub mod cache;
 pub mod config;
 pub mod decoder;
+pub mod gguf;
 pub mod head;
 mod linear;
 pub mod lora;
@@ -198,7 +200,8 @@ pub fn load_group_as(
             }
         }
     }
-    let decoder = Decoder::with_adapters(&spec, w.tensors, format, terms, w.quantised)?;
+    let codes = w.quantised.map(decoder::LayerCodes::Nf4);
+    let decoder = Decoder::with_adapters(&spec, w.tensors, format, terms, codes)?;
     Ok(LoadedModel {
         decoder,
         spec,
@@ -207,6 +210,33 @@ pub fn load_group_as(
         stored_dtype: w.stored_dtype,
         adapters: applied,
         quant,
+    })
+}
+
+/// Reads a GGUF file (docs/model-formats.md §7): the config from its metadata, the linear
+/// layers kept in their stored block formats and dequantised inside the products, embedding,
+/// head and norms dequantised to f32 at load. Computation is f32, as transformers computes
+/// after loading the file with dtype float32.
+pub fn load_gguf(path: &Path) -> Result<LoadedModel> {
+    let file = gguf::GgufFile::open(path)?;
+    let spec = file.spec()?;
+    let generation = file.generation(&spec);
+    let (tensors, stored) = file.weights(&spec)?;
+    let decoder = Decoder::with_adapters(
+        &spec,
+        tensors,
+        WeightFormat::F32,
+        Vec::new(),
+        Some(decoder::LayerCodes::Gguf(stored)),
+    )?;
+    Ok(LoadedModel {
+        decoder,
+        spec,
+        generation,
+        weight_files: vec![path.to_path_buf()],
+        stored_dtype: format!("gguf: {}", file.type_summary()),
+        adapters: vec![None],
+        quant: None,
     })
 }
 
