@@ -113,7 +113,12 @@ fn vet_takes_a_gguf_candidate_beside_a_directory_one() {
     let f = common::fixture("runner/llama");
     let model = f.join("model");
     let adapter = f.join("adapters/qv");
-    let spec = format!("name=q8,gguf={}", gguf("llama-q8_0.gguf").display());
+    // Named as made from the adapter candidate, so the lineup says how much of its lift the
+    // export keeps and lists the questions it answers worse.
+    let spec = format!(
+        "name=q8,gguf={},from=candidate",
+        gguf("llama-q8_0.gguf").display()
+    );
     let run = t.run([
         "vet",
         "--model",
@@ -136,6 +141,12 @@ fn vet_takes_a_gguf_candidate_beside_a_directory_one() {
     ]);
     run.expect_verdict();
     assert!(run.stdout.contains("verdict q8: "), "{}", run.stdout);
+    let lineup: Value = serde_json::from_str(&t.read("rep/lineup.json")).unwrap();
+    let kept = &lineup["kept"][0];
+    assert_eq!((&kept["name"], &kept["from"]), (&Value::from("q8"), &Value::from("candidate")));
+    let worse = kept["worse"].as_array().unwrap();
+    assert_eq!(kept["worse_total"].as_u64().unwrap() as usize >= worse.len(), true);
+    assert!(t.read("rep/report.md").contains("How much of the lift each artifact keeps"));
     let info: Value = serde_json::from_str(&t.read("rep/q8.answers.jsonl.run.json")).unwrap();
     assert!(info["model"]["path"]
         .as_str()

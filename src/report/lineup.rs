@@ -75,6 +75,30 @@ pub struct LiftKept {
     pub clear_loss: bool,
     /// The finding in plain words.
     pub words: String,
+    /// How many in-scope questions the artifact scored lower than its source on the gate metric.
+    #[serde(default)]
+    pub worse_total: usize,
+    /// The first [`WORSE_SHOWN`] of them, largest drop first: what the artifact lost, to read.
+    #[serde(default)]
+    pub worse: Vec<WorseAnswer>,
+}
+
+/// Questions shown per artifact where it answered worse than its source.
+pub const WORSE_SHOWN: usize = 10;
+
+/// One question an artifact answered worse than the candidate it was made from, side by side.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct WorseAnswer {
+    pub id: String,
+    pub question: String,
+    /// The first reference answer.
+    pub reference: String,
+    /// The source's answer and its gate-metric score.
+    pub source_answer: String,
+    pub source_score: f64,
+    /// The artifact's answer and its score.
+    pub artifact_answer: String,
+    pub artifact_score: f64,
 }
 
 fn num(x: Option<f64>, signed: bool) -> String {
@@ -159,6 +183,36 @@ pub fn markdown(l: &Lineup) -> String {
         for k in &l.kept {
             let _ = writeln!(o, "- {}", md(&k.words));
         }
+        for k in l.kept.iter().filter(|k| !k.worse.is_empty()) {
+            let _ = writeln!(
+                o,
+                "\n### Where {} answers worse than {}\n\n{} of {} in-scope questions score lower in {}; {} shown, largest drop first. Read them: a lower score can be a paraphrase, a lost fact or a wrong answer.\n",
+                md(&k.name),
+                md(&k.from),
+                k.worse_total,
+                k.n,
+                md(&l.metric_label),
+                k.worse.len()
+            );
+            let _ = writeln!(
+                o,
+                "| question | reference | {} | {} |\n|---|---|---|---|",
+                md(&k.from),
+                md(&k.name)
+            );
+            for w in &k.worse {
+                let _ = writeln!(
+                    o,
+                    "| {} | {} | {} ({:.2}) | {} ({:.2}) |",
+                    md(&w.question),
+                    md(&w.reference),
+                    md(&w.source_answer),
+                    w.source_score,
+                    md(&w.artifact_answer),
+                    w.artifact_score
+                );
+            }
+        }
     }
     o.push('\n');
     write_cautions(&mut o);
@@ -220,7 +274,35 @@ pub fn html(l: &Lineup) -> String {
         for k in &l.kept {
             let _ = writeln!(o, "<li>{}</li>", escape(&k.words));
         }
-        o.push_str("</ul></section>\n");
+        o.push_str("</ul>\n");
+        for k in l.kept.iter().filter(|k| !k.worse.is_empty()) {
+            let _ = writeln!(
+                o,
+                "<h3>Where {} answers worse than {}</h3>\n<p>{} of {} in-scope questions score lower in {}; {} shown, largest drop first. Read them: a lower score can be a paraphrase, a lost fact or a wrong answer.</p>\n<div class=\"tablewrap\"><table><thead><tr><th>question</th><th>reference</th><th>{}</th><th>{}</th></tr></thead><tbody>",
+                user(&k.name),
+                user(&k.from),
+                k.worse_total,
+                k.n,
+                escape(&l.metric_label),
+                k.worse.len(),
+                user(&k.from),
+                user(&k.name)
+            );
+            for w in &k.worse {
+                let _ = writeln!(
+                    o,
+                    "<tr><td>{}</td><td>{}</td><td>{} <strong>{:.2}</strong></td><td>{} <strong>{:.2}</strong></td></tr>",
+                    user(&w.question),
+                    user(&w.reference),
+                    user(&w.source_answer),
+                    w.source_score,
+                    user(&w.artifact_answer),
+                    w.artifact_score
+                );
+            }
+            o.push_str("</tbody></table></div>\n");
+        }
+        o.push_str("</section>\n");
     }
     o.push_str("<section><h2>Cautions</h2>\n<ul>\n");
     let mut md_cautions = String::new();

@@ -18,7 +18,7 @@ use super::{score, Settings};
 use crate::formats::grades::GradeRecord;
 use crate::formats::questions::{Expect, QuestionSet};
 use crate::policy::Policy;
-use crate::report::lineup::{LiftKept, Lineup, LineupRow, FORMAT};
+use crate::report::lineup::{LiftKept, Lineup, LineupRow, WorseAnswer, FORMAT, WORSE_SHOWN};
 use crate::report::summary::{Check, Comparison, Summary};
 use crate::stats::bootstrap::paired_bootstrap;
 use crate::stats::multiple::holm;
@@ -145,17 +145,37 @@ fn lift_kept(
     index: usize,
 ) -> LiftKept {
     let (mut lift_src, mut lift_art, mut diff) = (Vec::new(), Vec::new(), Vec::new());
-    for (((q, b), a), s) in set.questions.iter().zip(baseline).zip(art).zip(src) {
+    let mut worse = Vec::new();
+    for (((q, b), ag), sg) in set.questions.iter().zip(baseline).zip(art).zip(src) {
         if q.expect != Expect::Answer {
             continue;
         }
-        if let (Some(b), Some(a), Some(s)) = (score(b, metric), score(a, metric), score(s, metric))
+        if let (Some(b), Some(a), Some(s)) =
+            (score(b, metric), score(ag, metric), score(sg, metric))
         {
             lift_src.push(s - b);
             lift_art.push(a - b);
             diff.push(a - s);
+            if a < s {
+                worse.push(WorseAnswer {
+                    id: q.id.clone(),
+                    question: q.question.clone(),
+                    reference: q.references.first().cloned().unwrap_or_default(),
+                    source_answer: sg.answer.clone(),
+                    source_score: s,
+                    artifact_answer: ag.answer.clone(),
+                    artifact_score: a,
+                });
+            }
         }
     }
+    // Largest drop first; ties in set order (the sort is stable).
+    worse.sort_by(|x, y| {
+        let drop = |w: &WorseAnswer| w.source_score - w.artifact_score;
+        drop(y).total_cmp(&drop(x))
+    });
+    let worse_total = worse.len();
+    worse.truncate(WORSE_SHOWN);
     let n = diff.len();
     let mean = |v: &[f64]| crate::stats::mean(v);
     let (ms, ma) = (mean(&lift_src), mean(&lift_art));
@@ -207,5 +227,28 @@ fn lift_kept(
         ci_high: hi,
         clear_loss,
         words,
+        worse_total,
+        worse,
     }
+}
+
+/// [`lift_kept`] on the token F1 with small settings, for the weighing tests.
+#[cfg(test)]
+pub(super) fn lift_kept_for_tests(
+    set: &QuestionSet,
+    baseline: &[GradeRecord],
+    artifact: &str,
+    art: &[GradeRecord],
+    source: &str,
+    src: &[GradeRecord],
+) -> LiftKept {
+    let settings = Settings {
+        resamples: 200,
+        seed: 7,
+        confidence: 0.95,
+    };
+    let metric = crate::policy::Metric::TokenF1;
+    lift_kept(
+        set, baseline, artifact, art, source, src, metric, settings, 0,
+    )
 }

@@ -478,3 +478,38 @@ fn a_large_sets_categories_are_resampled_with_the_metrics() {
         serde_json::to_string(&s).unwrap()
     );
 }
+
+/// An artifact's questions that score below its source are listed side by side, largest drop
+/// first (ties in set order), at most `WORSE_SHOWN`, with the total; questions it scores equal or
+/// higher, and out-of-scope ones, are not.
+#[test]
+fn lift_kept_lists_the_questions_an_artifact_answers_worse() {
+    use crate::report::lineup::WORSE_SHOWN;
+    let n = 14;
+    let s = set(n, 1);
+    let base = grades(&s, &vec![Some(0.0); n], true);
+    let src = grades(&s, &vec![Some(0.9); n], true);
+    // q0: no drop; q1: higher; q2..q13: drops 0.1, 0.2, ... with q5 and q6 tied.
+    let mut art_f1: Vec<Option<f64>> = vec![Some(0.9), Some(1.0)];
+    art_f1.extend((2..n).map(|i| Some(0.9 - 0.05 * i as f64)));
+    art_f1[6] = art_f1[5];
+    let mut art = grades(&s, &art_f1, false);
+    for (i, g) in art.iter_mut().enumerate() {
+        g.answer = format!("artifact answer {i}");
+    }
+    let kept = lineup::lift_kept_for_tests(&s, &base, "q4", &art, "tuned", &src);
+    assert_eq!(kept.worse_total, 12);
+    assert_eq!(kept.worse.len(), WORSE_SHOWN);
+    let ids: Vec<&str> = kept.worse.iter().map(|w| w.id.as_str()).collect();
+    assert_eq!(
+        ids,
+        ["q13", "q12", "q11", "q10", "q9", "q8", "q7", "q5", "q6", "q4"]
+    );
+    let top = &kept.worse[0];
+    assert_eq!(
+        (top.question.as_str(), top.reference.as_str()),
+        ("Q13?", "r")
+    );
+    assert_eq!(top.artifact_answer, "artifact answer 13");
+    assert!((top.source_score - 0.9).abs() < 1e-12 && (top.artifact_score - 0.25).abs() < 1e-12);
+}
