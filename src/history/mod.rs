@@ -195,15 +195,17 @@ pub fn record(
     report_dir: &Path,
     finished_at: String,
 ) -> Result<i64> {
-    // One SHA-256 a question: in parallel for large sets (the order is kept).
+    // One SHA-256 a question: in parallel for large sets (the order is kept), each worker
+    // serialising into one buffer it reuses.
     use rayon::prelude::*;
     let questions = set
         .questions
         .par_iter()
-        .map(|q| NewQuestion {
+        .map_init(Vec::new, |buf, q| NewQuestion {
             key: QuestionKey {
                 id: q.id.clone(),
-                content_hash: Some(content_hash(
+                content_hash: Some(content_hash_with(
+                    buf,
                     &q.question,
                     &q.references,
                     q.expect,
@@ -237,8 +239,39 @@ pub fn content_hash(
     expect: Expect,
     category: &str,
 ) -> String {
-    let value = serde_json::json!([question, references, expect.as_str(), category]);
-    fsutil::sha256_hex(value.to_string().as_bytes())
+    content_hash_with(&mut Vec::new(), question, references, expect, category)
+}
+
+/// [`content_hash`], serialising into `buf` (cleared first): a caller hashing many questions
+/// reuses one buffer. The tuple serialises to the same compact JSON array as a
+/// `serde_json::Value` array of the four would.
+fn content_hash_with(
+    buf: &mut Vec<u8>,
+    question: &str,
+    references: &[String],
+    expect: Expect,
+    category: &str,
+) -> String {
+    use sha2::{Digest, Sha256};
+    buf.clear();
+    // Writing strings and string lists into a Vec cannot fail.
+    serde_json::to_writer(
+        &mut *buf,
+        &(question, references, expect.as_str(), category),
+    )
+    .expect("serialising strings into memory cannot fail");
+    hex_lower(&Sha256::digest(buf.as_slice()))
+}
+
+/// Lower-case hex of `bytes`, in one allocation.
+fn hex_lower(bytes: &[u8]) -> String {
+    const DIGITS: &[u8; 16] = b"0123456789abcdef";
+    let mut out = String::with_capacity(2 * bytes.len());
+    for &b in bytes {
+        out.push(DIGITS[(b >> 4) as usize] as char);
+        out.push(DIGITS[(b & 15) as usize] as char);
+    }
+    out
 }
 
 /// A set's name: its file name without extension.
@@ -368,11 +401,25 @@ fn new_variant(v: &VariantGrades, summary: &Summary) -> NewVariant {
         template_fingerprint: provenance.template_fingerprint,
         compute_dtype: provenance.compute_dtype,
         answers_sha256: provenance.answers_sha256,
-        grades_sha256: fsutil::sha256_file(v.grades_path).ok(),
+        grades_sha256: grades_sha256(v, summary),
         out_of_scope: rates(&summary.refusal.out_of_scope),
         false_refusal: rates(&summary.refusal.false_refusal),
         scores,
     }
+}
+
+/// The grades file's SHA-256: the one `weigh` computed as it read the file (summary.json's
+/// `inputs.<role>.sha256`) when summary.json names this very path, else read from the file.
+/// Reading a large grades file a second time only to hash it again would double that cost.
+fn grades_sha256(v: &VariantGrades, summary: &Summary) -> Option<String> {
+    let input = match v.role {
+        Role::Baseline => &summary.inputs.baseline,
+        Role::Candidate => &summary.inputs.candidate,
+    };
+    if Path::new(&input.path) == v.grades_path && !input.sha256.is_empty() {
+        return Some(input.sha256.clone());
+    }
+    fsutil::sha256_file(v.grades_path).ok()
 }
 
 /// What the run records beside a grades file say about the answers graded.
@@ -469,6 +516,29 @@ mod tests {
         assert_ne!(h, content_hash("Q?", &refs, Expect::Refuse, "general"));
         assert_ne!(h, content_hash("Q?", &refs, Expect::Answer, "other"));
         assert_eq!(h, content_hash("Q?", &refs, Expect::Answer, "general"));
+    }
+
+    #[test]
+    fn content_hash_is_the_sha256_of_the_compact_json_array() {
+        // Expected values from Python 3's json and hashlib (outside the project):
+        //   hashlib.sha256(json.dumps(["Ferry at 7?", ["The 7:05 \"Gull\"", "ø\n"], "answer",
+        //       "timetable"], separators=(",", ":"), ensure_ascii=False).encode()).hexdigest()
+        let refs = vec!["The 7:05 \"Gull\"".to_string(), "ø\n".to_string()];
+        assert_eq!(
+            content_hash("Ferry at 7?", &refs, Expect::Answer, "timetable"),
+            "d1f03c62eb9f4ee2a4672b37e6047ab3644f8baa529a315043d59c108fbad376"
+        );
+        // The same bytes as the `serde_json::Value` array the history has always hashed.
+        for (q, refs, cat) in [
+            ("Q?", vec![], "general"),
+            ("tab\there \u{1}", vec!["\\".to_string(), "€".into()], "x/y"),
+        ] {
+            let value = serde_json::json!([q, refs, "refuse", cat]);
+            assert_eq!(
+                content_hash(q, &refs, Expect::Refuse, cat),
+                fsutil::sha256_hex(value.to_string().as_bytes())
+            );
+        }
     }
 
     #[test]

@@ -359,9 +359,17 @@ impl Store {
         }
         // Reads of the grade blobs go through the OS page cache directly (no copy into
         // SQLite's own cache): `trend` over a long history reads every run's grades.
+        // synchronous = NORMAL: under WAL a commit is durable once the WAL is synced at the
+        // next checkpoint, not at every commit. The file can never be corrupted by it, and
+        // nothing is lost when liftgate crashes or is killed; only a power loss or an
+        // operating-system crash may undo the last runs recorded before it (docs/history.md,
+        // "Durability"; sqlite.org/pragma.html#pragma_synchronous). A cache of 64 MiB lets a
+        // large run's transaction stay in memory until its commit instead of spilling pages.
         retry_busy(&path, || {
-            self.conn
-                .execute_batch("PRAGMA foreign_keys = ON; PRAGMA mmap_size = 1073741824;")
+            self.conn.execute_batch(
+                "PRAGMA foreign_keys = ON; PRAGMA mmap_size = 1073741824; \
+                 PRAGMA synchronous = NORMAL; PRAGMA cache_size = -65536;",
+            )
         })?;
         if version < SCHEMA_VERSION {
             migrate(&mut self.conn, &path, MIGRATIONS)?;
@@ -509,28 +517,24 @@ fn insert_run_tx(conn: &mut Connection, run: &NewRun) -> rusqlite::Result<i64> {
         params![run.set_fingerprint, run.questions.len() as i64],
     )? == 1;
     if new_set {
-        let mut st = tx.prepare_cached(
-            "INSERT INTO set_questions (set_fingerprint, position, question_id, content_hash, category, expect) VALUES (?1, ?2, ?3, ?4, ?5, ?6)",
-        )?;
-        for (i, q) in run.questions.iter().enumerate() {
-            st.execute(params![
-                run.set_fingerprint,
-                i as i64,
-                q.key.id,
-                q.key.content_hash,
-                q.category,
-                q.key.expect.as_str()
-            ])?;
-        }
-    } else {
+        insert_set_questions(&tx, &run.set_fingerprint, &run.questions)?;
+    } else if run.questions.iter().any(|q| q.key.content_hash.is_some()) {
         // A revision first recorded without question contents (an import without its set)
-        // gains them when a later run knows them.
-        let mut st = tx.prepare_cached(
-            "UPDATE set_questions SET content_hash = ?3 WHERE set_fingerprint = ?1 AND position = ?2 AND content_hash IS NULL",
-        )?;
-        for (i, q) in run.questions.iter().enumerate() {
-            if q.key.content_hash.is_some() {
-                st.execute(params![run.set_fingerprint, i as i64, q.key.content_hash])?;
+        // gains them when a later run knows them. One scan finds whether any are missing;
+        // usually none are, and the per-question updates are skipped.
+        let missing: bool = tx
+            .prepare_cached(
+                "SELECT EXISTS (SELECT 1 FROM set_questions WHERE set_fingerprint = ?1 AND content_hash IS NULL)",
+            )?
+            .query_row([&run.set_fingerprint], |r| r.get(0))?;
+        if missing {
+            let mut st = tx.prepare_cached(
+                "UPDATE set_questions SET content_hash = ?3 WHERE set_fingerprint = ?1 AND position = ?2 AND content_hash IS NULL",
+            )?;
+            for (i, q) in run.questions.iter().enumerate() {
+                if q.key.content_hash.is_some() {
+                    st.execute(params![run.set_fingerprint, i as i64, q.key.content_hash])?;
+                }
             }
         }
     }
@@ -605,6 +609,49 @@ fn insert_run_tx(conn: &mut Connection, run: &NewRun) -> rusqlite::Result<i64> {
     }
     tx.commit()?;
     Ok(id)
+}
+
+/// Questions written by one `INSERT` statement into `set_questions`: one statement of many
+/// rows costs far less than as many single-row statements (each one's parse of parameters,
+/// step and reset). 6 parameters a row keeps a chunk far below SQLite's limit of 32,766
+/// parameters a statement (sqlite.org/limits.html, §9).
+const SET_ROWS_PER_INSERT: usize = 256;
+
+/// The rows of a new set revision, [`SET_ROWS_PER_INSERT`] to a statement.
+fn insert_set_questions(
+    tx: &rusqlite::Transaction,
+    fingerprint: &str,
+    questions: &[NewQuestion],
+) -> rusqlite::Result<()> {
+    let sql = |rows: usize| {
+        let mut sql = String::from("INSERT INTO set_questions (set_fingerprint, position, question_id, content_hash, category, expect) VALUES ");
+        for r in 0..rows {
+            if r > 0 {
+                sql.push(',');
+            }
+            sql.push_str("(?,?,?,?,?,?)");
+        }
+        sql
+    };
+    let full = sql(SET_ROWS_PER_INSERT);
+    for (c, chunk) in questions.chunks(SET_ROWS_PER_INSERT).enumerate() {
+        let mut st = if chunk.len() == SET_ROWS_PER_INSERT {
+            tx.prepare_cached(&full)?
+        } else {
+            tx.prepare_cached(&sql(chunk.len()))?
+        };
+        for (r, q) in chunk.iter().enumerate() {
+            let at = 6 * r;
+            st.raw_bind_parameter(at + 1, fingerprint)?;
+            st.raw_bind_parameter(at + 2, (c * SET_ROWS_PER_INSERT + r) as i64)?;
+            st.raw_bind_parameter(at + 3, &q.key.id)?;
+            st.raw_bind_parameter(at + 4, &q.key.content_hash)?;
+            st.raw_bind_parameter(at + 5, &q.category)?;
+            st.raw_bind_parameter(at + 6, q.key.expect.as_str())?;
+        }
+        st.raw_execute()?;
+    }
+    Ok(())
 }
 
 fn load_runs(conn: &Connection, set_name: Option<&str>) -> rusqlite::Result<Vec<StoredRun>> {
@@ -737,6 +784,100 @@ mod tests {
         assert_eq!((a.len(), b.len(), c.len(), d.len()), (3, 24, 24, 3));
         assert_eq!(decode_scores(&a, &b, &c, &d), Some(s));
         assert_eq!(decode_scores(&a, &b[..16], &c, &d), None);
+    }
+
+    fn run(dir: &str, questions: Vec<NewQuestion>) -> NewRun {
+        let n = questions.len();
+        let scores = Scores {
+            exact_match: vec![Some(1.0); n],
+            token_f1: vec![Some(0.5); n],
+            rouge_l: vec![None; n],
+            refused: vec![false; n],
+        };
+        let variant = |role| NewVariant {
+            role,
+            name: role.into(),
+            kind: "unknown".into(),
+            model_path: None,
+            model_fingerprint: None,
+            adapter_path: None,
+            adapter_fingerprint: None,
+            template_fingerprint: None,
+            compute_dtype: None,
+            answers_sha256: None,
+            grades_sha256: None,
+            out_of_scope: (0, None),
+            false_refusal: (0, None),
+            scores: scores.clone(),
+        };
+        NewRun {
+            finished_at: "2026-03-02T10:11:12.345Z".into(),
+            source: "weigh",
+            label: None,
+            set_name: "faq".into(),
+            set_path: "faq.jsonl".into(),
+            set_fingerprint: "f".repeat(64),
+            questions,
+            report_dir: dir.into(),
+            tool_version: "0".into(),
+            gate_metric: "token_f1".into(),
+            verdict_go: true,
+            summary_sha256: "s".into(),
+            policy_json: "{}".into(),
+            settings_json: "{}".into(),
+            summary_json: "{}".into(),
+            variants: vec![variant("baseline"), variant("candidate")],
+            metrics: Vec::new(),
+        }
+    }
+
+    fn questions(n: usize, hashed: bool) -> Vec<NewQuestion> {
+        (0..n)
+            .map(|i| NewQuestion {
+                key: QuestionKey {
+                    id: format!("q{i}"),
+                    content_hash: hashed.then(|| format!("h{i}")),
+                    expect: if i % 7 == 0 {
+                        Expect::Refuse
+                    } else {
+                        Expect::Answer
+                    },
+                },
+                category: format!("c{}", i % 3),
+            })
+            .collect()
+    }
+
+    #[test]
+    fn a_set_written_in_chunks_reads_back_in_order_and_gains_its_hashes_later() {
+        // Two full chunks and a partial one.
+        let n = 2 * SET_ROWS_PER_INSERT + 37;
+        let dir = tempfile::tempdir().unwrap();
+        let mut store = Store::open_for_writing(&dir.path().join("h.sqlite")).unwrap();
+        // First recorded without contents (an import without its set) ...
+        store.insert_run(&run("/r/1", questions(n, false))).unwrap();
+        let fp = "f".repeat(64);
+        let keys: Vec<QuestionKey> = questions(n, false).into_iter().map(|q| q.key).collect();
+        assert_eq!(store.revision(&fp).unwrap(), keys);
+        let categories: Vec<String> = store
+            .connection()
+            .prepare("SELECT category FROM set_questions ORDER BY position")
+            .unwrap()
+            .query_map([], |r| r.get(0))
+            .unwrap()
+            .collect::<rusqlite::Result<_>>()
+            .unwrap();
+        assert_eq!(categories[n - 1], format!("c{}", (n - 1) % 3));
+        // ... then a run that knows them fills them in; the rows are not written again.
+        store.insert_run(&run("/r/2", questions(n, true))).unwrap();
+        let keys: Vec<QuestionKey> = questions(n, true).into_iter().map(|q| q.key).collect();
+        assert_eq!(store.revision(&fp).unwrap(), keys);
+        let rows: i64 = store
+            .connection()
+            .query_row("SELECT count(*) FROM set_questions", [], |r| r.get(0))
+            .unwrap();
+        assert_eq!(rows as usize, n);
+        assert_eq!(store.scores(2, 1).unwrap().token_f1, vec![Some(0.5); n]);
     }
 
     #[test]
