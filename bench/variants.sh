@@ -34,7 +34,7 @@ for bin in ${BEFORE:-} "$root/target/release/liftgate"; do
     --resamples 1000 "${common[@]}" 2>"$work/e3" >/dev/null || true
   read -r t3 s3 < <(tokens_secs "$work/e3")
   cmp -s <(sed 's/"ms":[0-9]*//' "$work/tuned.jsonl") <(sed 's/"ms":[0-9]*//' "$work/rep/candidate.answers.jsonl") && same=same || same=DIFFERENT
-  awk -v who="$(basename "$(dirname "$(dirname "$bin")")")/$(basename "$bin")" -v b="$batch" -v t1="$t1" -v s1="$s1" -v t2="$t2" -v s2="$s2" -v t3="$t3" -v s3="$s3" -v same="$same" -v rss="$(tail -n 1 "$work/rss")" 'BEGIN {
+  awk -v who="$bin" -v b="$batch" -v t1="$t1" -v s1="$s1" -v t2="$t2" -v s2="$s2" -v t3="$t3" -v s3="$s3" -v same="$same" -v rss="$(tail -n 1 "$work/rss")" 'BEGIN {
     one = (t1 + t2) / (s1 + s2); both = t3 / s3;
     printf "%s batch %d: one after the other %.1f tokens/s, together %.1f tokens/s (%.2fx), peak RSS together %d MiB, answers %s\n", who, b, one, both, both / one, rss / 1024, same }'
 done

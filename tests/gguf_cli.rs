@@ -143,10 +143,18 @@ fn vet_takes_a_gguf_candidate_beside_a_directory_one() {
     assert!(run.stdout.contains("verdict q8: "), "{}", run.stdout);
     let lineup: Value = serde_json::from_str(&t.read("rep/lineup.json")).unwrap();
     let kept = &lineup["kept"][0];
-    assert_eq!((&kept["name"], &kept["from"]), (&Value::from("q8"), &Value::from("candidate")));
+    assert_eq!(
+        (&kept["name"], &kept["from"]),
+        (&Value::from("q8"), &Value::from("candidate"))
+    );
     let worse = kept["worse"].as_array().unwrap();
-    assert_eq!(kept["worse_total"].as_u64().unwrap() as usize >= worse.len(), true);
-    assert!(t.read("rep/report.md").contains("How much of the lift each artifact keeps"));
+    assert_eq!(
+        kept["worse_total"].as_u64().unwrap() as usize >= worse.len(),
+        true
+    );
+    assert!(t
+        .read("rep/report.md")
+        .contains("How much of the lift each artifact keeps"));
     let info: Value = serde_json::from_str(&t.read("rep/q8.answers.jsonl.run.json")).unwrap();
     assert!(info["model"]["path"]
         .as_str()
