@@ -148,10 +148,7 @@ fn vet_takes_a_gguf_candidate_beside_a_directory_one() {
         (&Value::from("q8"), &Value::from("candidate"))
     );
     let worse = kept["worse"].as_array().unwrap();
-    assert_eq!(
-        kept["worse_total"].as_u64().unwrap() as usize >= worse.len(),
-        true
-    );
+    assert!(kept["worse_total"].as_u64().unwrap() as usize >= worse.len());
     assert!(t
         .read("rep/report.md")
         .contains("How much of the lift each artifact keeps"));
