@@ -114,7 +114,7 @@ impl Panels for CodeMatrix {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::kernels::dense::{matmul, matmul_panels, pack_panels_into, panel_len};
+    use crate::kernels::dense::assert_panels_equal_dense;
 
     /// The product over 4-bit codes is bit for bit the f32 product over the dequantised
     /// matrix (table[code] · scale written out in f32): one row (pieces), four rows (each as
@@ -151,16 +151,7 @@ mod tests {
                     assert_eq!(m.value(j, k).to_bits(), dense[j * inp + k].to_bits());
                 }
             }
-            let mut wp = vec![0.0; panel_len(out, inp)];
-            pack_panels_into(&dense, out, inp, &mut wp, 0);
-            let x: Vec<f32> = (0..n * inp)
-                .map(|i| ((i * 5) % 17) as f32 * 0.21 - 1.3)
-                .collect();
-            let (mut want, mut got) = (vec![0.0; n * out], vec![0.0; n * out]);
-            matmul(&x, n, inp, &wp, out, &mut want);
-            matmul_panels(&x, n, inp, &m, out, &mut got);
-            let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
-            assert_eq!(bits(&want), bits(&got), "n {n} inp {inp} out {out}");
+            assert_panels_equal_dense(&m, &dense, n, inp, out);
         }
     }
 }

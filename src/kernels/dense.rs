@@ -49,6 +49,28 @@ fn pack_panels(a: &[f32], rows: usize, cols: usize) -> Vec<f32> {
     t
 }
 
+/// For the weight formats' tests: the product over `w` equals, bit for bit, the f32 product
+/// over `dense` ([out, inp] row-major, the values the format should stand for), on n rows of
+/// a fixed input.
+#[cfg(test)]
+pub(crate) fn assert_panels_equal_dense<W: Panels>(
+    w: &W,
+    dense: &[f32],
+    n: usize,
+    inp: usize,
+    out: usize,
+) {
+    let wp = pack_panels(dense, out, inp);
+    let x: Vec<f32> = (0..n * inp)
+        .map(|i| ((i * 5) % 17) as f32 * 0.21 - 1.3)
+        .collect();
+    let (mut want, mut got) = (vec![0.0; n * out], vec![0.0; n * out]);
+    matmul(&x, n, inp, &wp, out, &mut want);
+    matmul_panels(&x, n, inp, w, out, &mut got);
+    let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+    assert_eq!(bits(&want), bits(&got), "n {n} inp {inp} out {out}");
+}
+
 /// A pointer to the output of [`matmul`], shared by tasks that write disjoint columns.
 #[derive(Clone, Copy)]
 struct Columns(*mut f32);

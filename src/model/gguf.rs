@@ -374,14 +374,9 @@ impl GgufFile {
                 None,
                 g.as_str(),
                 format!(
-                    "shape {:?} contradicts the metadata, which implies {shape:?} (hidden {}, heads {}, kv heads {}, head_dim {}, feed-forward {}, vocab {})",
+                    "shape {:?} contradicts the metadata, which implies {shape:?} ({})",
                     e.dims,
-                    spec.hidden_size,
-                    spec.num_heads,
-                    spec.num_kv_heads,
-                    spec.head_dim,
-                    spec.intermediate_size,
-                    spec.vocab_size
+                    spec.sizes()
                 ),
             ));
         }

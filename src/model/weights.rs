@@ -312,16 +312,11 @@ fn load_inner(dir: &Path, spec: &ModelSpec, quant: Option<(Codebook, bool)>) -> 
                 None,
                 name.as_str(),
                 format!(
-                    "shape {:?} does not match {:?} expected from {} (hidden_size {}, heads {}, kv heads {}, head_dim {}, intermediate_size {}, vocab_size {})",
+                    "shape {:?} does not match {:?} expected from {} ({})",
                     view.shape(),
                     shape,
                     config.display(),
-                    spec.hidden_size,
-                    spec.num_heads,
-                    spec.num_kv_heads,
-                    spec.head_dim,
-                    spec.intermediate_size,
-                    spec.vocab_size
+                    spec.sizes()
                 ),
             ));
         }

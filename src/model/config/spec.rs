@@ -54,6 +54,20 @@ pub struct ModelSpec {
 }
 
 impl ModelSpec {
+    /// The sizes a tensor's shape follows from, for messages about a shape that does not fit:
+    /// `hidden_size 64, heads 4, kv heads 2, head_dim 16, intermediate_size 128, vocab_size 99`.
+    pub fn sizes(&self) -> String {
+        format!(
+            "hidden_size {}, heads {}, kv heads {}, head_dim {}, intermediate_size {}, vocab_size {}",
+            self.hidden_size,
+            self.num_heads,
+            self.num_kv_heads,
+            self.head_dim,
+            self.intermediate_size,
+            self.vocab_size
+        )
+    }
+
     /// Reads `<dir>/config.json`.
     pub fn load(dir: &Path) -> Result<Self> {
         let path = dir.join("config.json");
