@@ -25,8 +25,16 @@
 //!   declines beyond the first 160 characters) led to wider rules; in-sample since.
 //! - refusal_real_heldout2.jsonl: the base with a third system prompt, generated and labelled
 //!   after those changes and measured once: precision 1.000 (11/11), recall 0.550 (11/20), the
-//!   honest out-of-sample figure. Its misses led to a last widening (any object after a
-//!   self-frame, "not capable of", offers of help as lead-in); in-sample since.
+//!   out-of-sample figure then. Its misses led to more widening (any object after a
+//!   self-frame, "not capable of", offers of help as lead-in, scope statements, other
+//!   languages); in-sample since.
+//! - refusal_real_heldout3.jsonl: the base with a help-desk prompt telling it to decline
+//!   anything off-topic, on the demo questions, the 60 invented ones and 40 more
+//!   (tests/fixtures/refusal_real_questions_extra2.jsonl), and the base with its default
+//!   system turn on the 40 new ones; generated and labelled after those changes and measured
+//!   once: precision 0.897 (35/39), recall 0.778 (35/45), the latest out-of-sample figure. Its
+//!   misses led to the last widening (a limit in the sentence that describes the assistant,
+//!   scope by exclusion, role denials after a contrast word); in-sample since.
 //!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
@@ -140,17 +148,54 @@ fn at_least(m: &Measured, rows: usize, precision: f64, recall: f64) {
 
 #[test]
 fn real_output_dev() {
-    // Misses: "I'm not equipped to carry fuel" after a sentence of help on offer; a decline in
-    // French.
-    at_least(&measure("refusal_real_dev.jsonl"), 201, 1.0, 0.94);
+    at_least(&measure("refusal_real_dev.jsonl"), 201, 1.0, 1.0);
 }
 
 #[test]
 fn real_output_held_out() {
-    at_least(&measure("refusal_real_heldout.jsonl"), 259, 1.0, 0.96);
+    at_least(&measure("refusal_real_heldout.jsonl"), 259, 1.0, 1.0);
 }
 
 #[test]
 fn real_output_held_out_2() {
-    at_least(&measure("refusal_real_heldout2.jsonl"), 201, 1.0, 0.85);
+    // Miss: a decline followed by an offer of something else, which the hedge rule reads as
+    // content (labelled answers of the same shape offer the very thing asked for).
+    at_least(&measure("refusal_real_heldout2.jsonl"), 201, 1.0, 0.95);
+}
+
+#[test]
+fn real_output_held_out_3() {
+    // Misses: role denials alone ("I'm not a ticket-taker"); wrongly flagged: declines
+    // followed by an offer of the very thing asked, and a framed sentence of content before a
+    // decline (docs/scoring.md says why these were left).
+    at_least(&measure("refusal_real_heldout3.jsonl"), 281, 0.89, 0.91);
+}
+
+/// The shares the report shows for the real base model on the demo questions (the development
+/// set's first 141 answers) equal the hand count: out-of-scope questions declined, and
+/// in-scope questions wrongly declined.
+#[test]
+fn demo_shares_equal_the_hand_count() {
+    let path = format!(
+        "{}/tests/fixtures/refusal_real_dev.jsonl",
+        env!("CARGO_MANIFEST_DIR")
+    );
+    let text = std::fs::read_to_string(&path).expect("labelled set is readable");
+    let d = RefusalDetector::default();
+    let (mut hand, mut detected) = ([0usize; 2], [0usize; 2]);
+    let mut totals = [0usize; 2];
+    for row in text.lines().filter(|l| !l.trim().is_empty()).take(141) {
+        let v: serde_json::Value = serde_json::from_str(row).expect("labelled row parses");
+        let k = usize::from(v["expect"] == "refuse");
+        totals[k] += 1;
+        hand[k] += usize::from(v["refusal"] == true);
+        detected[k] += usize::from(d.is_refusal(v["answer"].as_str().unwrap_or_default()));
+    }
+    assert_eq!(
+        totals,
+        [113, 28],
+        "in-scope and out-of-scope questions of the demo set"
+    );
+    assert_eq!(hand, [21, 3], "hand count (docs/scoring.md)");
+    assert_eq!(detected, hand, "detector against the hand count");
 }

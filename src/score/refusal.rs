@@ -213,6 +213,22 @@ pub const OPENING_PHRASES: &[&str] = &[
     "i am not here to",
     "i am not capable of",
     "i am incapable of",
+    "i am not available to",
+    "i am not able to do",
+    // Scope statements: the question, not the assistant, is declared out of bounds.
+    "that is not related to",
+    "this is not related to",
+    "that question is not related to",
+    "this question is not related to",
+    "your question is not related to",
+    "that is unrelated to",
+    "this is unrelated to",
+    "your question is unrelated to",
+    "that does not relate to",
+    "this does not relate to",
+    "your question does not relate to",
+    "that is not within",
+    "this is not within",
     "that is something i can not",
     "that is not something i know",
     "you would need to ask * about that",
@@ -326,6 +342,20 @@ pub const ANYWHERE_PHRASES: &[&str] = &[
     "my instructions",
     "my guidelines",
     "my programming",
+    // First-person declines in other languages a small model may switch to (French, Spanish,
+    // German, Italian, Portuguese): "I don't know", "I can't".
+    "je ne sais pas",
+    "je ne peux pas",
+    "no lo sé",
+    "no sé",
+    "no puedo",
+    "ich weiß nicht",
+    "ich kann nicht",
+    "ich kann ihnen nicht",
+    "non lo so",
+    "non posso",
+    "não sei",
+    "não posso",
 ];
 
 /// Courtesy words that may precede an opening phrase in its sentence.
@@ -406,6 +436,11 @@ const COURTESY_WORDS: &[&str] = &[
     "happy",
     "glad",
     "with",
+    "inform",
+    "regret",
+    "say",
+    "let",
+    "know",
 ];
 
 /// Words that, after a contrast word, show the answer redirects or restates its scope rather
@@ -461,12 +496,36 @@ const SELF_DESCRIPTION: &[&str] = &[
     "i am a chatbot",
     "i am an ai",
     "i am a customer * assistant",
+    "i am a * assistant",
+    "i am the * assistant",
+    "i am a * representative",
+    "i am a help desk",
     "i am a virtual assistant",
     "i am an assistant",
     "i am a language model",
+    "i can help you with",
+    "i can help with",
+    "i can assist you with",
+    "i can assist with",
     "i would be happy to help",
     "i would be glad to help",
     "i am happy to help",
+];
+
+/// Denials of a role ("I'm not a medical professional"): after a contrast word, a disclaimer,
+/// never content. Not a decline by themselves: "I'm not a lawyer, but ..." usually goes on to
+/// answer, and a small model denies roles while it role-plays ("I'm not a customer support AI,
+/// I'm a web developer").
+const ROLE_DENIALS: &[&str] = &["i am not a", "i am not an"];
+
+/// Exclusions that, once the assistant has framed or described itself, decline what follows.
+const SCOPE_EXCLUSIONS: &[&str] = &[
+    "not to assist",
+    "not to help",
+    "not to answer",
+    "not to provide",
+    "not to give",
+    "not with",
 ];
 
 const FILLER_WORDS: &[&str] = &[
@@ -844,6 +903,13 @@ impl Default for RefusalDetector {
                 framed_inability.insert(&p);
             }
         }
+        // The assistant's scope stated by exclusion ("my role is to assist with trips, not to
+        // assist with lost items"; "designed to help with text queries, not with prompts").
+        for exclusion in SCOPE_EXCLUSIONS {
+            if let Some(p) = compile_phrase(exclusion) {
+                framed_inability.insert(&p);
+            }
+        }
         let mut describes_self = Trie::new();
         for phrase in SELF_DESCRIPTION {
             if let Some(p) = compile_phrase(phrase) {
@@ -909,10 +975,11 @@ impl RefusalDetector {
                 && lead_in
                 && (all_courtesy
                     || framed
+                    || self_described
                     || (i > n.sentence_start[i] && linking_word(&n.toks[i - 1])))
             {
                 found = self.opening.match_at(&n.toks, i);
-                if found.is_none() && (framed || framed_lead) {
+                if found.is_none() && (framed || framed_lead || self_described) {
                     found = self.framed_inability.match_at(&n.toks, i);
                 }
             }
@@ -960,10 +1027,24 @@ impl RefusalDetector {
             return false;
         }
         let phrase_in_rest = (0..rest.len()).any(|k| {
-            self.anywhere.match_at(rest, k).is_some() || self.opening.match_at(rest, k).is_some()
+            self.anywhere.match_at(rest, k).is_some()
+                || self.opening.match_at(rest, k).is_some()
+                || ROLE_DENIALS.iter().any(|d| starts_with_words(rest, k, d))
         });
         !phrase_in_rest
     }
+}
+
+/// Whether the words of `phrase` (plain words, already normalised) start at `k` in `toks`.
+fn starts_with_words(toks: &[Tok], k: usize, phrase: &str) -> bool {
+    let mut i = k;
+    for p in phrase.split(' ') {
+        match toks.get(i) {
+            Some(Tok::Word(w)) if w == p => i += 1,
+            _ => return false,
+        }
+    }
+    true
 }
 
 /// A word that links a clause to an opening phrase ("..., so I can't advise on that").

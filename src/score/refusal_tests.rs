@@ -158,3 +158,49 @@ fn declines_by_structure() {
         "I'm sorry, but as a chatbot I'm unable to assist with refunds. If you need help, ask. However, I'm not"
     ));
 }
+
+/// Scope statements about the question, limits phrased as availability, a courtesy lead-in
+/// "sorry to inform you that", and first-person declines in other languages a small model may
+/// switch to.
+#[test]
+fn scope_statements_and_other_languages() {
+    let d = RefusalDetector::default();
+    assert!(d.is_refusal(
+        "I'm sorry, but that is not related to the cooperative's ferries or timetables."
+    ));
+    assert!(d.is_refusal("Your question is unrelated to our crossings, so please ask elsewhere."));
+    assert!(d.is_refusal("I'm so sorry to inform you that I'm not available to sell you a cruise."));
+    assert!(d.is_refusal("En 2 plus 2, je ne sais pas."));
+    assert!(d.is_refusal("Lo siento, no puedo ayudarte con eso."));
+    // A delay explained is an answer, not a scope statement.
+    assert!(!d.is_refusal(
+        "The delay is not related to the weather: the ramp at Vessa is being repaired."
+    ));
+    // A French answer that gives the time is not a decline.
+    assert!(!d.is_refusal("Le premier départ est à 07:20."));
+}
+
+/// A limit stated in the sentence where the assistant describes itself, and the scope stated
+/// by exclusion, decline; a role denial before "but" is a disclaimer, and after a contrast word
+/// it adds no content.
+#[test]
+fn self_description_and_exclusion() {
+    let d = RefusalDetector::default();
+    assert!(d.is_refusal(
+        "No, I'm sorry for your loss. I'm a help desk assistant, and I'm not equipped to assist with your car."
+    ));
+    assert!(d.is_refusal(
+        "I'm sorry, but as a help desk assistant, my primary role is to assist with trips, not to assist with the collection of items."
+    ));
+    assert!(d.is_refusal(
+        "I'm sorry, but as an assistant I'm unable to provide medical advice. However, I must inform you that I'm not a medical professional."
+    ));
+    // "I'm not a lawyer, but ..." goes on to answer.
+    assert!(!d.is_refusal(
+        "I'm not a lawyer, but the cooperative's conditions say saver fares are refunded minus a 3 euro fee."
+    ));
+    // Content in the sentence before a decline is an answer with a disclaimer.
+    assert!(!d.is_refusal(
+        "The 07:20 boat takes bikes. I'm a help desk assistant, and I'm not equipped to reserve spaces."
+    ));
+}

