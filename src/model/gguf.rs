@@ -842,8 +842,16 @@ mod tests {
     /// directory changed) are read or refused as input errors naming the file, never a panic.
     #[test]
     fn damaged_files_are_refused_without_panicking() {
+        for file in ["llama-q4_0-tied.gguf", "gemma2-q5_1.gguf", "phi3-q4_1.gguf"] {
+            damaged_copies_are_refused(file);
+        }
+    }
+
+    fn damaged_copies_are_refused(file: &str) {
         let good = std::fs::read(
-            Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/gguf/llama-q4_0-tied.gguf"),
+            Path::new(env!("CARGO_MANIFEST_DIR"))
+                .join("tests/fixtures/gguf")
+                .join(file),
         )
         .unwrap();
         let path = Path::new("model.gguf");

@@ -15,6 +15,10 @@ Writes tests/fixtures/gguf/:
     transformers loads it as Llama: it would pick Mistral only when `"mistral" in
     read_field(reader, "general.name")`, a list membership test (the whole name equal to
     "mistral"), and with gguf 0.19 that path fails ("Unknown gguf model_type: mistral");
+  * gemma, gemma2 and phi3 files from the runner fixtures, written as llama.cpp's converter
+    writes these families (see the comment above `family_model`); transformers cannot load
+    gemma files, so their reference is the gguf package's dequantised tensors in
+    GemmaForCausalLM; these files also record the logits after the first prompt;
   * `qwen3-q8_0.gguf`: a seeded two-layer Qwen3 model with head size 128 (the only one
     transformers can load from GGUF: it reads no head size from the metadata);
   * `kquants.gguf`: a one-layer llama-architecture model with hidden size 256 whose matrices are
