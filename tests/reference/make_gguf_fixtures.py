@@ -444,7 +444,9 @@ def families(manifest: dict):
         if family == "gemma":
             ref = gemma_reference(path, cfg)
         else:
-            ref, state, model = reference(path, cfg["eos_token_id"], keep_model=True)
+            # Chat answers through `answer --gguf` for one file of each family transformers loads.
+            chat_dir = RUNNER / family / "model" if name.endswith("q8_0") else None
+            ref, state, model = reference(path, cfg["eos_token_id"], chat_dir, keep_model=True)
             ref["first_step_logits"] = first_step_logits(model)
             ref["reference"] = f"transformers {transformers.__version__} from_pretrained(gguf_file=...)"
             if family == "gemma2":
