@@ -50,7 +50,7 @@ macro_rules! bad_input {
 
 /// The number of cases below; a case that disappears fails
 /// `catalogue_keeps_every_case`, so none is dropped by accident.
-const CASES: usize = 98;
+const CASES: usize = 100;
 
 fn runner(family: &str) -> PathBuf {
     common::fixture("runner").join(family)
@@ -1528,6 +1528,54 @@ bad_input!(policy_unknown_key_refused_by_weigh_too, |d| {
         d,
         &["--policy", "policy.toml"],
         &["policy.toml:3: field `categories.max_regresion`"],
+    )
+});
+
+/// As [`gguf_case`] on a copy of another family's GGUF fixture, with that family's tokenizer.
+fn family_gguf_case(
+    d: &Path,
+    file: &str,
+    family: &str,
+    edit: impl FnOnce(&mut Vec<u8>),
+    needles_: &[&str],
+) -> Setup {
+    let mut setup = gguf_case(d, |_| {}, needles_);
+    let mut b = std::fs::read(common::fixture(&format!("gguf/{file}"))).unwrap();
+    edit(&mut b);
+    std::fs::write(d.join("model.gguf"), b).unwrap();
+    setup.args[2] = runner(family).join("model").into_os_string();
+    setup
+}
+
+bad_input!(gguf_gemma2_softcap_the_reference_ignores, |d| {
+    family_gguf_case(
+        d,
+        "gemma2-q8_0.gguf",
+        "gemma2",
+        |b| {
+            let key = "gemma2.attn_logit_softcapping";
+            let at = find(b, key.as_bytes()) + key.len() + 4;
+            b[at..at + 4].copy_from_slice(&40f32.to_le_bytes());
+        },
+        &["model.gguf", "gemma2.attn_logit_softcapping", "is 40", "50"],
+    )
+});
+
+bad_input!(gguf_phi3_partial_rotary_the_reference_ignores, |d| {
+    family_gguf_case(
+        d,
+        "phi3-q8_0.gguf",
+        "phi3",
+        |b| {
+            let key = "phi3.rope.dimension_count";
+            let at = find(b, key.as_bytes()) + key.len() + 4;
+            b[at..at + 4].copy_from_slice(&8u32.to_le_bytes());
+        },
+        &[
+            "model.gguf",
+            "phi3.rope.dimension_count",
+            "rotates 8 of its 16",
+        ],
     )
 });
 

@@ -1,10 +1,15 @@
 //! GGUF files against the reference: transformers 5.24.0 loading the same file with
 //! `from_pretrained(dir, gguf_file=..., dtype=torch.float32)`, which dequantises every tensor
-//! with the `gguf` package (0.19, `gguf/quants.py`) and undoes the llama q/k row permutation.
+//! with the `gguf` package (0.19, `gguf/quants.py`), undoes the llama q/k row permutation and
+//! subtracts the 1 llama.cpp's converter adds to Gemma norm weights. transformers cannot load
+//! gemma (Gemma 1) files: for those the reference is the `gguf` package's dequantised tensors,
+//! norms minus 1 in f32, run by transformers' GemmaForCausalLM (the manifest's `reference`
+//! field says which, per file).
 //!
 //! Fixtures: tests/fixtures/gguf/, made by tests/reference/make_gguf_fixtures.py (tiny llama,
-//! llama-layout mistral and qwen2 models from the runner fixtures in the block types of 32
-//! values, a one-layer model in every k-quant, and one tensor of each supported type).
+//! llama-layout mistral, qwen2, gemma, gemma2 and phi3 models from the runner fixtures in the
+//! block types of 32 values, written with llama.cpp's converter conventions, a one-layer model
+//! in every k-quant, and one tensor of each supported type).
 //! Checked: every tensor bit for bit (SHA-256 of its f32 bytes as transformers holds it),
 //! every tensor of `tensors.gguf` bit for bit against `gguf.quants.dequantize`, and the greedy
 //! continuation of three prompts token for token (`generate(do_sample=False)`, eager
@@ -66,6 +71,58 @@ fn tensors_equal_the_reference_bit_for_bit() {
         assert!(want["tensors"].get(names::EMBED).is_some(), "{file}");
     }
     assert!(checked > 100, "only {checked} tensors checked");
+}
+
+/// The logits after the first prompt equal the reference's within 1e-4 (the files that record
+/// them: gemma, gemma2, phi3, whose tiny models' greedy continuations are less varied). The
+/// reference computes in f32 as liftgate does; only the order of the sums differs.
+#[test]
+fn first_step_logits_equal_the_reference() {
+    let m = manifest();
+    let mut checked = 0;
+    for (file, want) in m["files"].as_object().unwrap() {
+        let Some(logits) = want.get("first_step_logits").and_then(Value::as_array) else {
+            continue;
+        };
+        let loaded = model::load_gguf(&root().join(file)).unwrap();
+        let prompt: Vec<u32> = shape(&want["greedy"][0]["prompt"])
+            .iter()
+            .map(|&x| x as u32)
+            .collect();
+        let got = loaded.decoder.prompt_logits(&prompt).unwrap();
+        assert_eq!(got.len(), logits.len(), "{file}");
+        let diff = got
+            .iter()
+            .zip(logits)
+            .map(|(g, w)| (f64::from(*g) - w.as_f64().unwrap()).abs())
+            .fold(0.0, f64::max);
+        assert!(diff <= 1e-4, "{file}: first-step logits differ by {diff}");
+        checked += 1;
+    }
+    assert!(checked >= 6, "only {checked} files checked");
+}
+
+/// Every family the decoder reads as a directory is also read as a GGUF file, and each
+/// family's file is among the fixtures (so the two checks above cover it).
+#[test]
+fn every_gguf_architecture_has_a_fixture() {
+    let m = manifest();
+    let files = m["files"].as_object().unwrap();
+    for family in ["llama", "qwen2", "qwen3", "gemma", "gemma2", "phi3"] {
+        let n = files.values().filter(|f| f["model_type"] == family).count();
+        assert!(n >= 1, "no {family} fixture");
+    }
+    // Gemma files: the norms as transformers holds them are the stored values minus 1, so
+    // the stored output norm differs from the loaded one by exactly that.
+    let g = GgufFile::open(&root().join("gemma2-q8_0.gguf")).unwrap();
+    let spec = g.spec().unwrap();
+    let (_, stored) = g.raw_values("output_norm.weight").unwrap();
+    let loaded = g
+        .values(names::FINAL_NORM, &[spec.hidden_size], &spec)
+        .unwrap();
+    for (s, l) in stored.iter().zip(&loaded) {
+        assert_eq!(*l, s - 1.0);
+    }
 }
 
 /// One [4, 512] tensor of each supported type equals `gguf.quants.dequantize` bit for bit.

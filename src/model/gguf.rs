@@ -26,8 +26,23 @@ use std::path::{Path, PathBuf};
 /// The GGUF architectures read, with the transformers `model_type` each loads as. A llama
 /// architecture file is loaded as Llama whatever its `general.name` (Mistral models are written
 /// in the llama layout; see docs/model-formats.md §7.2).
-const ARCHITECTURES: [(&str, &str); 3] =
-    [("llama", "llama"), ("qwen2", "qwen2"), ("qwen3", "qwen3")];
+const ARCHITECTURES: [(&str, &str); 6] = [
+    ("llama", "llama"),
+    ("qwen2", "qwen2"),
+    ("qwen3", "qwen3"),
+    ("gemma", "gemma"),
+    ("gemma2", "gemma2"),
+    ("phi3", "phi3"),
+];
+
+/// Keys llama.cpp's converter writes that transformers' GGUF loader does not read: it takes the
+/// class default instead (transformers 5.24.0 `GGUF_CONFIG_MAPPING` has no entry for them;
+/// Gemma2Config: attn_logit_softcapping 50.0, final_logit_softcapping 30.0). A file that states
+/// another value describes a model the reference would not compute, so it is refused.
+const UNREAD_KEYS: [(&str, &str, f64); 2] = [
+    ("gemma2", "attn_logit_softcapping", 50.0),
+    ("gemma2", "final_logit_softcapping", 30.0),
+];
 
 /// One stored tensor of a linear layer: its type, rows and row-major bytes (rows already in
 /// transformers' order).
@@ -199,9 +214,18 @@ impl GgufFile {
             ),
             (format!("{a}.vocab_size"), "vocab_size"),
         ];
-        if a == "llama" {
+        match a.as_str() {
             // Only the llama mapping reads the rotary dimension as head_dim.
-            keys.push((format!("{a}.rope.dimension_count"), "head_dim"));
+            "llama" => keys.push((format!("{a}.rope.dimension_count"), "head_dim")),
+            // transformers' gemma2 mapping reads the key length as head_dim, and the window.
+            // It has no gemma mapping at all (it refuses such files): liftgate reads a gemma
+            // file with the gemma2 mapping less the window, which Gemma has not.
+            "gemma2" => {
+                keys.push((format!("{a}.attention.key_length"), "head_dim"));
+                keys.push((format!("{a}.attention.sliding_window"), "sliding_window"));
+            }
+            "gemma" => keys.push((format!("{a}.attention.key_length"), "head_dim")),
+            _ => {}
         }
         let mut obj = Map::new();
         obj.insert("model_type".into(), model_type.into());
@@ -266,6 +290,7 @@ impl GgufFile {
                 }
             }
         }
+        self.check_unread_keys(&obj)?;
         // transformers: tied exactly when the file has no output.weight.
         let tied = !self.content.tensor_infos.contains_key("output.weight");
         obj.insert("tie_word_embeddings".into(), tied.into());
@@ -273,6 +298,64 @@ impl GgufFile {
             obj.insert("eos_token_id".into(), eos.into());
         }
         ModelSpec::from_json(&self.path, &obj)
+    }
+
+    /// Refuses a file whose metadata states what transformers' loader ignores in favour of
+    /// another value: the soft-caps of [`UNREAD_KEYS`], a Phi-3 rotary dimension other than the
+    /// head size (transformers rotates the whole head: it reads no rotary fraction), and Phi-3's
+    /// long-context rotary factors (`rope_factors_long/short.weight`, which it does not load).
+    fn check_unread_keys(&self, obj: &Map<String, Json>) -> Result<()> {
+        let a = self.arch.as_str();
+        for (arch, key, default) in UNREAD_KEYS {
+            let key = format!("{arch}.{key}");
+            let Some(v) = self.meta(&key).filter(|_| a == arch) else {
+                continue;
+            };
+            let x = v
+                .to_f32()
+                .map(f64::from)
+                .or_else(|_| v.to_f64())
+                .map_err(|_| Error::field(&self.path, None, key.as_str(), "expected a number"))?;
+            if x != default {
+                return Err(Error::field(
+                    &self.path,
+                    None,
+                    key.as_str(),
+                    format!("is {x}, but transformers' GGUF loader ignores this key and computes with {default}; liftgate reads GGUF files as transformers does and will not give answers for a model other than the file's (load the model directory instead)"),
+                ));
+            }
+        }
+        if a == "phi3" {
+            let key = "phi3.rope.dimension_count";
+            let head = match (
+                obj.get("hidden_size").and_then(Json::as_u64),
+                obj.get("num_attention_heads").and_then(Json::as_u64),
+            ) {
+                (Some(h), Some(n)) if n > 0 => Some(h / n),
+                _ => None,
+            };
+            if let (Some(d), Some(head)) = (self.meta_u32(key)?, head) {
+                if u64::from(d) != head {
+                    return Err(Error::field(
+                        &self.path,
+                        None,
+                        key,
+                        format!("is {d}: the model rotates {d} of its {head} head dimensions, but transformers' GGUF loader reads no rotary fraction and rotates all {head}; liftgate reads GGUF files as transformers does and will not give answers for a model other than the file's (load the model directory instead)"),
+                    ));
+                }
+            }
+            for t in ["rope_factors_long.weight", "rope_factors_short.weight"] {
+                if self.content.tensor_infos.contains_key(t) {
+                    return Err(Error::field(
+                        &self.path,
+                        None,
+                        t,
+                        "holds long-context rotary factors, which transformers' GGUF loader does not read (it computes without them); liftgate reads GGUF files as transformers does and will not give answers for a model other than the file's (load the model directory instead)",
+                    ));
+                }
+            }
+        }
+        Ok(())
     }
 
     /// Stop ids: the file's `tokenizer.ggml.eos_token_id` (what transformers' generation
@@ -357,7 +440,8 @@ impl GgufFile {
 
     /// The checked entry of the checkpoint tensor `hf` with the shape the config implies.
     fn expect(&self, hf: &str, shape: &[usize], spec: &ModelSpec) -> Result<Entry<'_>> {
-        let g = gguf_name(hf).ok_or_else(|| Error::internal(format!("no GGUF name for {hf}")))?;
+        let g = gguf_name(&self.arch, hf)
+            .ok_or_else(|| Error::internal(format!("no GGUF name for {hf}")))?;
         let e = self.entry(&g)?.ok_or_else(|| {
             Error::field(
                 &self.path,
@@ -444,7 +528,20 @@ impl GgufFile {
                 out,
             );
         }
+        if self.norm_offset(hf) {
+            // numpy's `weights - 1` on the f32 array: one f32 subtraction per value.
+            v.iter_mut().for_each(|x| *x -= 1.0);
+        }
         Ok(v)
+    }
+
+    /// Whether `hf` is a Gemma norm weight stored with 1 added: llama.cpp's converter adds 1 to
+    /// every `*norm.weight` of gemma and gemma2 models (llama.cpp multiplies by the stored
+    /// weight, Gemma's RMSNorm by 1 + weight), and transformers' `Gemma2TensorProcessor`
+    /// subtracts it after dequantising (every GGUF name containing `norm.weight`).
+    fn norm_offset(&self, hf: &str) -> bool {
+        matches!(self.arch.as_str(), "gemma" | "gemma2")
+            && gguf_name(&self.arch, hf).is_some_and(|g| g.contains("norm.weight"))
     }
 
     /// A tensor by its GGUF name, dequantised as stored (no reordering), with its dims.
@@ -486,7 +583,7 @@ impl GgufFile {
         let mut tensors = HashMap::new();
         let mut stored = HashMap::new();
         for (hf, shape) in &expected {
-            let gname = gguf_name(hf).unwrap_or_default();
+            let gname = gguf_name(&self.arch, hf).unwrap_or_default();
             if linear.contains(hf) {
                 let e = self.expect(hf, shape, spec)?;
                 let bytes = self.rows(hf, &e, self.permuted_heads(hf, spec))?;
@@ -678,8 +775,12 @@ fn tensor_of_type(b: &[u8], id: u32) -> Option<String> {
     None
 }
 
-/// The GGUF name of a checkpoint tensor (llama.cpp's names, gguf-py `tensor_mapping.py`).
-pub fn gguf_name(hf: &str) -> Option<String> {
+/// The GGUF name of a checkpoint tensor in a file of architecture `arch` (llama.cpp's names,
+/// gguf-py 0.19 `tensor_mapping.py` through `get_tensor_name_map(arch, ·)`, the table both
+/// llama.cpp's converter and transformers' loader use). Gemma2 names its sandwich norms
+/// differently: `post_attention_layernorm` is `post_attention_norm` there, and `ffn_norm` is
+/// `pre_feedforward_layernorm`. Phi-3's fused matrices are `attn_qkv` and `ffn_up`.
+pub fn gguf_name(arch: &str, hf: &str) -> Option<String> {
     match hf {
         EMBED => return Some("token_embd.weight".into()),
         FINAL_NORM => return Some("output_norm.weight".into()),
@@ -689,9 +790,15 @@ pub fn gguf_name(hf: &str) -> Option<String> {
     let rest = hf.strip_prefix("model.layers.")?;
     let (layer, module) = rest.split_once('.')?;
     let (module, suffix) = module.rsplit_once('.')?;
+    let gemma2 = arch == "gemma2";
     let g = match module {
         names::INPUT_NORM => "attn_norm",
+        names::POST_ATTN_NORM if gemma2 => "post_attention_norm",
         names::POST_ATTN_NORM => "ffn_norm",
+        names::PRE_FF_NORM if gemma2 => "ffn_norm",
+        names::POST_FF_NORM if gemma2 => "post_ffw_norm",
+        names::QKV_PROJ => "attn_qkv",
+        names::GATE_UP_PROJ => "ffn_up",
         names::Q_PROJ => "attn_q",
         names::K_PROJ => "attn_k",
         names::V_PROJ => "attn_v",
@@ -735,8 +842,16 @@ mod tests {
     /// directory changed) are read or refused as input errors naming the file, never a panic.
     #[test]
     fn damaged_files_are_refused_without_panicking() {
+        for file in ["llama-q4_0-tied.gguf", "gemma2-q5_1.gguf", "phi3-q4_1.gguf"] {
+            damaged_copies_are_refused(file);
+        }
+    }
+
+    fn damaged_copies_are_refused(file: &str) {
         let good = std::fs::read(
-            Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/gguf/llama-q4_0-tied.gguf"),
+            Path::new(env!("CARGO_MANIFEST_DIR"))
+                .join("tests/fixtures/gguf")
+                .join(file),
         )
         .unwrap();
         let path = Path::new("model.gguf");
@@ -766,17 +881,30 @@ mod tests {
         }
     }
 
+    /// The names gguf-py 0.19's `get_tensor_name_map(arch, n)` gives (printed with the
+    /// reference environment and copied here).
     #[test]
     fn checkpoint_names_map_to_gguf_names() {
-        assert_eq!(gguf_name(EMBED).unwrap(), "token_embd.weight");
+        assert_eq!(gguf_name("llama", EMBED).unwrap(), "token_embd.weight");
         assert_eq!(
-            gguf_name("model.layers.3.self_attn.k_proj.bias").unwrap(),
+            gguf_name("qwen2", "model.layers.3.self_attn.k_proj.bias").unwrap(),
             "blk.3.attn_k.bias"
         );
         assert_eq!(
-            gguf_name("model.layers.0.mlp.down_proj.weight").unwrap(),
+            gguf_name("llama", "model.layers.0.mlp.down_proj.weight").unwrap(),
             "blk.0.ffn_down.weight"
         );
-        assert!(gguf_name("model.layers.0.mlp.gate_up_proj.weight").is_none());
+        for (arch, hf, g) in [
+            ("gemma", "post_attention_layernorm", "ffn_norm"),
+            ("gemma2", "post_attention_layernorm", "post_attention_norm"),
+            ("gemma2", "pre_feedforward_layernorm", "ffn_norm"),
+            ("gemma2", "post_feedforward_layernorm", "post_ffw_norm"),
+            ("phi3", "self_attn.qkv_proj", "attn_qkv"),
+            ("phi3", "mlp.gate_up_proj", "ffn_up"),
+        ] {
+            let name = format!("model.layers.1.{hf}.weight");
+            assert_eq!(gguf_name(arch, &name).unwrap(), format!("blk.1.{g}.weight"));
+        }
+        assert!(gguf_name("llama", "model.layers.0.mlp.experts.weight").is_none());
     }
 }

@@ -15,6 +15,10 @@ Writes tests/fixtures/gguf/:
     transformers loads it as Llama: it would pick Mistral only when `"mistral" in
     read_field(reader, "general.name")`, a list membership test (the whole name equal to
     "mistral"), and with gguf 0.19 that path fails ("Unknown gguf model_type: mistral");
+  * gemma, gemma2 and phi3 files from the runner fixtures, written as llama.cpp's converter
+    writes these families (see the comment above `family_model`); transformers cannot load
+    gemma files, so their reference is the gguf package's dequantised tensors in
+    GemmaForCausalLM; these files also record the logits after the first prompt;
   * `qwen3-q8_0.gguf`: a seeded two-layer Qwen3 model with head size 128 (the only one
     transformers can load from GGUF: it reads no head size from the metadata);
   * `kquants.gguf`: a one-layer llama-architecture model with hidden size 256 whose matrices are
@@ -254,6 +258,208 @@ def write_kquants(path: Path) -> tuple[dict, int]:
     return types, eos
 
 
+# Gemma, Gemma2 and Phi-3 files, written as llama.cpp's converter (convert_hf_to_gguf.py) writes
+# these families, with the gguf package's writer:
+# - tensor names: gguf-py's `get_tensor_name_map(arch, n_layers)` (gguf 0.19 tensor_mapping.py),
+#   the table the converter's `map_tensor_name` reads [src gguf; the converter's use of it from
+#   memory]. Gemma2 names post_attention_layernorm `post_attention_norm`, pre_feedforward_layernorm
+#   `ffn_norm` and post_feedforward_layernorm `post_ffw_norm`; Phi-3's fused `qkv_proj` and
+#   `gate_up_proj` are `attn_qkv` and `ffn_up`, stored fused as the checkpoint holds them.
+# - Gemma and Gemma2: 1 is added to every `*norm.weight` in the checkpoint's dtype before
+#   writing (GemmaModel/Gemma2Model.modify_tensors, from memory: llama.cpp multiplies by the
+#   stored weight where Gemma's RMSNorm multiplies by 1 + weight); the head is tied (no
+#   output.weight). transformers' Gemma2TensorProcessor subtracts the 1 again on load.
+# - metadata: GemmaModel.set_gguf_parameters (from memory): context_length, embedding_length,
+#   block_count, feed_forward_length, head_count, head_count_kv, layer_norm_rms_epsilon,
+#   key_length, value_length; Gemma2Model adds attn_logit_softcapping, final_logit_softcapping
+#   and attention.sliding_window; Phi3MiniModel (from memory): context_length,
+#   rope.scaling.original_context_length, embedding_length, feed_forward_length, block_count,
+#   head_count, head_count_kv, layer_norm_rms_epsilon, rope.dimension_count (head size times
+#   the rotary fraction), rope.freq_base, attention.sliding_window (0 when the config has none).
+# - one-dimensional tensors stay f32 (the converter keeps vectors and norms in f32).
+#
+# What transformers 5.24.0 loads: gemma2 and phi3 are in its GGUF_CONFIG_MAPPING; gemma is not
+# ("GGUF model with architecture gemma is not supported yet", checked below). For gemma the
+# reference is therefore the gguf package's dequantised tensors with 1 subtracted from the norms
+# (the same rule transformers applies to gemma2 and gemma3 files), loaded into
+# GemmaForCausalLM built from the config the file was written from; the greedy tokens are that
+# model's. For gemma2 and phi3 transformers loads the file itself, but reads neither the soft-caps
+# nor query_pre_attn_scalar (Gemma2) nor the rotary fraction (Phi-3) from it: it takes the class
+# defaults (50.0, 30.0, 256; 1.0). The fixture models are given those values, so that the file
+# and transformers describe the same model (liftgate refuses a file whose keys contradict them).
+FAMILY_ARCH = {"gemma": gguf.MODEL_ARCH.GEMMA, "gemma2": gguf.MODEL_ARCH.GEMMA2, "phi3": gguf.MODEL_ARCH.PHI3}
+
+
+def family_model(family: str) -> tuple[dict, dict]:
+    """The runner fixture `family` (torch tensors in their stored dtype) and its config, with the
+    keys transformers cannot read from a GGUF file set to the values it uses instead."""
+    d = RUNNER / family / "model"
+    cfg = json.loads((d / "config.json").read_text())
+    tensors = load_file(str(d / "model.safetensors"))
+    if family == "gemma2":
+        cfg.update(attn_logit_softcapping=50.0, final_logit_softcapping=30.0, query_pre_attn_scalar=256,
+                   sliding_window=6)
+    if family == "phi3":
+        cfg["rope_parameters"] = {**cfg["rope_parameters"], "partial_rotary_factor": 1.0}
+    return cfg, tensors
+
+
+def write_family(path: Path, family: str, cfg: dict, tensors: dict, linear: Q, embed: Q, head: Q | None) -> dict:
+    arch = FAMILY_ARCH[family]
+    names = gguf.get_tensor_name_map(arch, cfg["num_hidden_layers"])
+    w = gguf.GGUFWriter(str(path), family)
+    w.add_name(f"tiny {family}")
+    h, nh = cfg["hidden_size"], cfg["num_attention_heads"]
+    head_dim = cfg.get("head_dim") or h // nh
+    rp = cfg.get("rope_parameters") or {}
+    w.add_context_length(cfg["max_position_embeddings"])
+    w.add_embedding_length(h)
+    w.add_block_count(cfg["num_hidden_layers"])
+    w.add_feed_forward_length(cfg["intermediate_size"])
+    w.add_head_count(nh)
+    w.add_head_count_kv(cfg["num_key_value_heads"])
+    w.add_layer_norm_rms_eps(cfg["rms_norm_eps"])
+    if family in ("gemma", "gemma2"):
+        w.add_key_length(head_dim)
+        w.add_value_length(head_dim)
+    if family == "gemma2":
+        w.add_attn_logit_softcapping(cfg["attn_logit_softcapping"])
+        w.add_final_logit_softcapping(cfg["final_logit_softcapping"])
+        w.add_sliding_window(cfg["sliding_window"])
+    if family == "phi3":
+        w.add_rope_scaling_orig_ctx_len(cfg["original_max_position_embeddings"])
+        w.add_rope_dimension_count(int(head_dim * rp.get("partial_rotary_factor", 1.0)))
+        w.add_rope_freq_base(float(rp["rope_theta"]))
+        w.add_sliding_window(cfg.get("sliding_window") or 0)
+    w.add_vocab_size(cfg["vocab_size"])
+    w.add_bos_token_id(cfg["bos_token_id"])
+    w.add_eos_token_id(cfg["eos_token_id"])
+    # The converter's SpecialVocab writes the tokenizer's padding id; transformers needs it for
+    # Phi-3, whose class default (32000) lies outside a small vocabulary.
+    w.add_pad_token_id(cfg["pad_token_id"])
+    w.add_file_type(1)
+    types = {}
+    for name in sorted(tensors):
+        t = tensors[name]
+        if name == "lm_head.weight" and family != "phi3":
+            continue
+        if family != "phi3" and name.endswith("norm.weight"):
+            t = t + 1  # in the checkpoint's dtype, as the converter does
+        a = t.float().numpy()
+        base, suffix = name.rsplit(".", 1)
+        gname = f"{names.get_name(base)}.{suffix}"
+        if a.ndim == 1:
+            q = Q.F32
+        elif name == "model.embed_tokens.weight":
+            q = embed
+        elif name == "lm_head.weight":
+            q = head
+        else:
+            q = linear
+        w.add_tensor(gname, quantised(a, q), raw_dtype=q if q not in (Q.F32, Q.F16) else None)
+        types[gname] = q.name.lower()
+    w.write_header_to_file()
+    w.write_kv_data_to_file()
+    w.write_tensors_to_file()
+    w.close()
+    return types
+
+
+def first_step_logits(model) -> list:
+    """The logits after the first prompt (7 significant digits): a check that does not depend on
+    the tiny models' greedy continuations being varied (Gemma's tied, scaled embeddings make
+    them repeat the last token)."""
+    with torch.no_grad():
+        out = model(torch.tensor([PROMPTS[0]])).logits[0, -1]
+    return [float(f"{x:.7g}") for x in out.tolist()]
+
+
+def greedy_runs(model, eos: int) -> list:
+    runs = []
+    for prompt in PROMPTS:
+        ids = torch.tensor([prompt])
+        with torch.no_grad():
+            out = model.generate(ids, attention_mask=torch.ones_like(ids), do_sample=False, max_new_tokens=NEW_TOKENS,
+                                 eos_token_id=eos, pad_token_id=eos, output_scores=True, return_dict_in_generate=True)
+        margins = [float(torch.topk(s[0], 2).values[0] - torch.topk(s[0], 2).values[1]) for s in out.scores]
+        runs.append({"prompt": prompt, "tokens": out.sequences[0][len(prompt):].tolist(), "margins": margins})
+    return runs
+
+
+def gemma_reference(path: Path, cfg: dict) -> dict:
+    """transformers 5.24.0 cannot load a gemma GGUF file: the reference is the gguf package's
+    dequantised tensors, norms minus 1, in GemmaForCausalLM with the file's config."""
+    with tempfile.TemporaryDirectory() as tmp:
+        shutil.copy(path, Path(tmp) / path.name)
+        try:
+            AutoModelForCausalLM.from_pretrained(tmp, gguf_file=path.name, dtype=torch.float32)
+            raise SystemExit("transformers now loads gemma GGUF files: make it the reference")
+        except ValueError as e:
+            refusal = str(e)
+    conf = transformers.GemmaConfig(**{k: v for k, v in cfg.items() if k not in ("architectures", "dtype", "transformers_version")})
+    model = transformers.GemmaForCausalLM(conf).to(torch.float32).eval()
+    model.config._attn_implementation = "eager"
+    names = gguf.get_tensor_name_map(FAMILY_ARCH["gemma"], cfg["num_hidden_layers"])
+    to_hf = {}
+    for k in model.state_dict():
+        base, suffix = k.rsplit(".", 1)
+        g = names.get_name(base)
+        if g is not None:
+            to_hf[f"{g}.{suffix}"] = k
+    state = {}
+    for t in gguf.GGUFReader(str(path)).tensors:
+        v = gguf.quants.dequantize(t.data, t.tensor_type)
+        if "norm.weight" in t.name:
+            v = v - 1  # as transformers' Gemma2TensorProcessor: the converter's +1 undone in f32
+        state[to_hf[t.name]] = v
+    missing = model.load_state_dict({k: torch.from_numpy(np.copy(v)) for k, v in state.items()}, strict=False)
+    assert set(missing.missing_keys) <= {"lm_head.weight"} and not missing.unexpected_keys, missing
+    model.tie_weights()
+    return {
+        "answers": [],
+        "reference": "gguf.quants.dequantize, 1 subtracted from the norms, in GemmaForCausalLM (transformers "
+                     f"{transformers.__version__} cannot load gemma GGUF files: {refusal})",
+        "model_type": "gemma",
+        "tie_word_embeddings": True,
+        "tensors": {k: {"shape": list(v.shape), "sha256": sha(v)} for k, v in sorted(state.items())},
+        "greedy": greedy_runs(model, cfg["eos_token_id"]),
+        "first_step_logits": first_step_logits(model),
+        "eos": cfg["eos_token_id"],
+    }
+
+
+def families(manifest: dict):
+    plans = [
+        ("gemma-q8_0", "gemma", Q.Q8_0, Q.Q8_0, None),
+        ("gemma-q4_0", "gemma", Q.Q4_0, Q.F16, None),
+        ("gemma2-q8_0", "gemma2", Q.Q8_0, Q.Q8_0, None),
+        ("gemma2-q5_1", "gemma2", Q.Q5_1, Q.Q4_1, None),
+        ("phi3-q8_0", "phi3", Q.Q8_0, Q.Q8_0, Q.Q8_0),
+        ("phi3-q4_1", "phi3", Q.Q4_1, Q.Q5_0, Q.Q8_0),
+    ]
+    for name, family, lin, emb, head in plans:
+        cfg, tensors = family_model(family)
+        path = OUT / f"{name}.gguf"
+        types = write_family(path, family, cfg, tensors, lin, emb, head)
+        if family == "gemma":
+            ref = gemma_reference(path, cfg)
+        else:
+            # Chat answers through `answer --gguf` for one file of each family transformers loads.
+            chat_dir = RUNNER / family / "model" if name.endswith("q8_0") else None
+            ref, state, model = reference(path, cfg["eos_token_id"], chat_dir, keep_model=True)
+            ref["first_step_logits"] = first_step_logits(model)
+            ref["reference"] = f"transformers {transformers.__version__} from_pretrained(gguf_file=...)"
+            if family == "gemma2":
+                # transformers subtracts the converter's 1 in f32 after dequantising.
+                r = gguf.GGUFReader(str(path))
+                v = next(gguf.quants.dequantize(t.data, t.tensor_type) for t in r.tensors if t.name == "output_norm.weight")
+                assert np.array_equal(state["model.norm.weight"], v - 1)
+        ref["types"] = types
+        ref["tokenizer_dir"] = f"tests/fixtures/runner/{family}/model"
+        manifest["files"][f"{name}.gguf"] = ref
+        print(name, path.stat().st_size, "bytes", ref["model_type"], file=sys.stderr)
+
+
 QUESTIONS = ["When does the first ferry leave for Gull Island?", "Can I take my bicycle on the boat?"]
 ANSWER_TOKENS = 8
 
@@ -278,7 +484,7 @@ def answers(model, tokenizer_dir: Path, eos: int) -> list:
     return out
 
 
-def reference(path: Path, eos: int, tokenizer_dir: Path | None = None) -> dict:
+def reference(path: Path, eos: int, tokenizer_dir: Path | None = None, keep_model: bool = False):
     """transformers' tensors and greedy continuations for one GGUF file."""
     with tempfile.TemporaryDirectory() as tmp:
         shutil.copy(path, Path(tmp) / path.name)
@@ -309,14 +515,14 @@ def reference(path: Path, eos: int, tokenizer_dir: Path | None = None) -> dict:
             margins.append(float(top[0] - top[1]))
         runs.append({"prompt": prompt, "tokens": out.sequences[0][len(prompt):].tolist(), "margins": margins})
     chat = answers(model, tokenizer_dir, eos) if tokenizer_dir is not None else []
-    return {
+    return ({
         "answers": chat,
         "model_type": model.config.model_type,
         "tie_word_embeddings": bool(model.config.tie_word_embeddings),
         "tensors": {k: {"shape": list(v.shape), "sha256": sha(v)} for k, v in sorted(state.items())},
         "greedy": runs,
         "eos": eos,
-    }, state
+    }, state) + ((model,) if keep_model else ())
 
 
 def main():
@@ -374,6 +580,8 @@ def main():
     ref["tokenizer_dir"] = "tests/fixtures/runner/qwen3/model"
     manifest["files"]["qwen3-q8_0.gguf"] = ref
     print("qwen3", path.stat().st_size, "bytes", ref["model_type"], file=sys.stderr)
+
+    families(manifest)
 
     path = OUT / "kquants.gguf"
     types, eos = write_kquants(path)
