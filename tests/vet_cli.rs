@@ -429,3 +429,91 @@ fn adapters_on_a_4_bit_base_take_part_in_the_lineup() {
         );
     }
 }
+
+/// `vet --train --embedder`: the report's leak count includes the questions flagged by
+/// embedding cosine alone (at the `leaks` command's default threshold), counted here
+/// independently through the library: the lexical check, then the nearest training question
+/// by cosine of the same embedding model.
+#[test]
+fn vet_with_train_and_embedder_counts_leaks_by_meaning() {
+    use liftgate::embed::Embedder;
+    use liftgate::score::leaks::{
+        find_leaks, nearest_by_cosine, DEFAULT_COSINE_THRESHOLD, DEFAULT_THRESHOLD,
+    };
+    let tmp = with_set();
+    let emb = common::fixture("embedder/mean");
+    // q1 verbatim; a rewording of q2; an unrelated question.
+    let train = [
+        "When does the first boat leave?",
+        "Is it allowed to bring a dog along?",
+        "How many lighthouses stand on the outer reef?",
+    ];
+    let mut text = String::new();
+    for t in train {
+        text.push_str(&format!("{}\n", serde_json::json!({"question": t})));
+    }
+    tmp.write("train.jsonl", text);
+    tmp.write(
+        "policy.toml",
+        "min_questions = 1\n[lift]\nmin_ci_low = -1.0\n[refusal]\nmin_out_of_scope = 0.0\nmax_false_refusal = 1.0\n",
+    );
+    let run = vet(
+        &tmp,
+        "qv",
+        &[
+            "--policy",
+            "policy.toml",
+            "--train",
+            "train.jsonl",
+            "--embedder",
+            emb.to_str().unwrap(),
+            "--report",
+            "r",
+        ],
+    );
+    run.expect_verdict();
+    let summary: Value = serde_json::from_str(&tmp.read("r/summary.json")).unwrap();
+    let l = &summary["leakage"];
+
+    let questions: Vec<&str> = QUESTIONS
+        .lines()
+        .map(|r| serde_json::from_str::<Value>(r).unwrap())
+        .map(|v| v["question"].as_str().unwrap().to_string())
+        .collect::<Vec<_>>()
+        .leak()
+        .iter()
+        .map(|s| s.as_str())
+        .collect();
+    let lexical = find_leaks(&questions, &train, DEFAULT_THRESHOLD);
+    let e = Embedder::load(&emb).unwrap();
+    let q = e.embed(&questions, |_| {}).unwrap();
+    let t = e.embed(&train, |_| {}).unwrap();
+    let semantic = nearest_by_cosine(&q, &t)
+        .into_iter()
+        .enumerate()
+        .filter(|(i, n)| {
+            !lexical.iter().any(|l| l.question == *i)
+                && n.is_some_and(|(_, c)| c >= DEFAULT_COSINE_THRESHOLD)
+        })
+        .count();
+    assert_eq!(l["exact"], 1, "{l}");
+    // The tiny random embedding model puts short questions close together: at least one is
+    // flagged by meaning alone, so the count below is not trivially zero.
+    assert!(semantic >= 1, "{l}");
+    assert_eq!(l["semantic"], semantic, "{l}");
+    assert_eq!(l["cosine_threshold"], DEFAULT_COSINE_THRESHOLD, "{l}");
+    assert_eq!(
+        l["ids"].as_array().unwrap().len(),
+        lexical.len() + semantic,
+        "{l}"
+    );
+    let warning = format!("by embedding cosine >= {DEFAULT_COSINE_THRESHOLD}");
+    assert!(
+        summary["warnings"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .any(|w| w.as_str().unwrap().contains(&warning)),
+        "{summary}"
+    );
+}

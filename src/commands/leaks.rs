@@ -56,31 +56,15 @@ pub fn run(args: &LeaksArgs) -> Result<Outcome> {
                 texts.len(),
                 dir.display()
             );
-            let q = embedder.embed(&questions, |_| {})?;
-            let t = embedder.embed(&texts, |_| {})?;
-            Some((q, t))
+            Some(add_semantic(
+                &embedder,
+                &questions,
+                &texts,
+                args.cosine_threshold,
+                &mut leaks,
+            )?)
         }
     };
-    if let Some((q, t)) = &embedded {
-        let flagged: HashSet<usize> = leaks.iter().map(|l| l.question).collect();
-        for (i, nearest) in nearest_by_cosine(q, t).into_iter().enumerate() {
-            if let Some((j, c)) = nearest {
-                if c >= args.cosine_threshold && !flagged.contains(&i) {
-                    let shingles = |s: &str| leaks::shingles(&leaks::normalise(s));
-                    leaks.push(Leak {
-                        question: i,
-                        train: j,
-                        kind: LeakKind::Semantic,
-                        containment: leaks::containment(
-                            &shingles(questions[i]),
-                            &shingles(texts[j]),
-                        ),
-                    });
-                }
-            }
-        }
-        leaks.sort_by_key(|l| l.question);
-    }
     let mut out = String::new();
     for l in &leaks {
         let row = Row {
@@ -114,6 +98,36 @@ pub fn run(args: &LeaksArgs) -> Result<Outcome> {
     }
     eprintln!("{line}");
     Ok(Outcome::Success)
+}
+
+/// Embeds the held-out and training questions and adds, as kind "semantic", each held-out
+/// question not flagged already whose nearest training question has at least `threshold`
+/// cosine; `leaks` stays in the set's order. Returns both sides' embeddings.
+pub(crate) fn add_semantic(
+    embedder: &Embedder,
+    questions: &[&str],
+    texts: &[&str],
+    threshold: f64,
+    leaks: &mut Vec<Leak>,
+) -> Result<(Vec<Vec<f32>>, Vec<Vec<f32>>)> {
+    let q = embedder.embed(questions, |_| {})?;
+    let t = embedder.embed(texts, |_| {})?;
+    let flagged: HashSet<usize> = leaks.iter().map(|l| l.question).collect();
+    for (i, nearest) in nearest_by_cosine(&q, &t).into_iter().enumerate() {
+        if let Some((j, c)) = nearest {
+            if c >= threshold && !flagged.contains(&i) {
+                let shingles = |s: &str| leaks::shingles(&leaks::normalise(s));
+                leaks.push(Leak {
+                    question: i,
+                    train: j,
+                    kind: LeakKind::Semantic,
+                    containment: leaks::containment(&shingles(questions[i]), &shingles(texts[j])),
+                });
+            }
+        }
+    }
+    leaks.sort_by_key(|l| l.question);
+    Ok((q, t))
 }
 
 /// "checked 141 held-out questions against 394 training rows: 2 exact, 0 normalised, 3 near".

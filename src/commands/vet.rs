@@ -237,14 +237,14 @@ pub fn run(args: &VetArgs) -> Result<Outcome> {
     let set = QuestionSet::load(&settings.questions)?;
     // Grading needs references: refuse before hours of answering, not after.
     set.check_references()?;
-    // Likewise a bad training file.
+    // Likewise a bad embedding model directory, or a policy gating on a score that needs one.
+    let embedder = args.embedder.as_deref().map(Embedder::load).transpose()?;
+    // And a bad training file.
     let leakage = args
         .train
         .as_deref()
-        .map(|t| leakage(&set, t))
+        .map(|t| leakage(&set, t, embedder.as_ref()))
         .transpose()?;
-    // And a bad embedding model directory, or a policy gating on a score that needs one.
-    let embedder = args.embedder.as_deref().map(Embedder::load).transpose()?;
     if settings.policy.lift.metric == crate::policy::Metric::Semantic && embedder.is_none() {
         return Err(Error::usage(
             "the policy gates on semantic similarity (lift.metric = \"semantic\"), which needs --embedder DIR",
@@ -480,10 +480,15 @@ fn vet_into(
         })?;
         summary.warnings.extend(warnings.iter().cloned());
         if let Some(l) = &leakage {
-            let flagged = l.exact + l.normalised + l.near;
+            let semantic = l.semantic.unwrap_or(0);
+            let flagged = l.exact + l.normalised + l.near + semantic;
             if flagged > 0 {
+                let by_meaning = match (l.semantic, l.cosine_threshold) {
+                    (Some(n), Some(c)) => format!(", {n} by embedding cosine >= {c}"),
+                    _ => String::new(),
+                };
                 summary.warnings.push(format!(
-                    "{flagged} held-out question(s) repeat or closely reword a question of the training file {} ({} exact, {} after normalising, {} near duplicates): the fine-tune may have seen their answers, which inflates the lift. List them with `liftgate leaks`.",
+                    "{flagged} held-out question(s) repeat or closely reword a question of the training file {} ({} exact, {} after normalising, {} near duplicates{by_meaning}): the fine-tune may have seen their answers, which inflates the lift. List them with `liftgate leaks`.",
                     l.train.path, l.exact, l.normalised, l.near
                 ));
             }
@@ -588,12 +593,17 @@ fn demo_root() -> Option<PathBuf> {
 }
 
 /// The leak check of `--train`: counts by kind and the flagged ids.
-fn leakage(set: &QuestionSet, train: &Path) -> Result<Leakage> {
-    use crate::score::leaks::{find_leaks, LeakKind, DEFAULT_THRESHOLD};
+/// With an embedding model, also the questions flagged by embedding cosine alone, at the
+/// `leaks` command's default threshold.
+fn leakage(set: &QuestionSet, train: &Path, embedder: Option<&Embedder>) -> Result<Leakage> {
+    use crate::score::leaks::{find_leaks, LeakKind, DEFAULT_COSINE_THRESHOLD, DEFAULT_THRESHOLD};
     let rows = crate::formats::training::load_questions(train)?;
     let questions: Vec<&str> = set.questions.iter().map(|q| q.question.as_str()).collect();
     let texts: Vec<&str> = rows.iter().map(|(_, t)| t.as_str()).collect();
-    let leaks = find_leaks(&questions, &texts, DEFAULT_THRESHOLD);
+    let mut leaks = find_leaks(&questions, &texts, DEFAULT_THRESHOLD);
+    if let Some(e) = embedder {
+        super::leaks::add_semantic(e, &questions, &texts, DEFAULT_COSINE_THRESHOLD, &mut leaks)?;
+    }
     let count = |k: LeakKind| leaks.iter().filter(|l| l.kind == k).count();
     Ok(Leakage {
         train: crate::formats::run_record::InputFile {
@@ -604,6 +614,8 @@ fn leakage(set: &QuestionSet, train: &Path) -> Result<Leakage> {
         normalised: count(LeakKind::Normalised),
         near: count(LeakKind::Near),
         threshold: DEFAULT_THRESHOLD,
+        semantic: embedder.map(|_| count(LeakKind::Semantic)),
+        cosine_threshold: embedder.map(|_| DEFAULT_COSINE_THRESHOLD),
         ids: leaks
             .iter()
             .map(|l| set.questions[l.question].id.clone())

@@ -206,6 +206,12 @@ pub struct Leakage {
     pub near: usize,
     /// Containment at or above which a question counts as a near duplicate.
     pub threshold: f64,
+    /// With an embedding model: questions flagged only by embedding cosine (kind "semantic"),
+    /// and the cosine at or above which they are.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub semantic: Option<usize>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub cosine_threshold: Option<f64>,
     /// The flagged questions' ids, in the set's order.
     pub ids: Vec<String>,
 }
