@@ -100,6 +100,9 @@ pub fn run(args: &LeaksArgs) -> Result<Outcome> {
     Ok(Outcome::Success)
 }
 
+/// One embedding vector per text.
+type Embeddings = Vec<Vec<f32>>;
+
 /// Embeds the held-out and training questions and adds, as kind "semantic", each held-out
 /// question not flagged already whose nearest training question has at least `threshold`
 /// cosine; `leaks` stays in the set's order. Returns both sides' embeddings.
@@ -109,7 +112,7 @@ pub(crate) fn add_semantic(
     texts: &[&str],
     threshold: f64,
     leaks: &mut Vec<Leak>,
-) -> Result<(Vec<Vec<f32>>, Vec<Vec<f32>>)> {
+) -> Result<(Embeddings, Embeddings)> {
     let q = embedder.embed(questions, |_| {})?;
     let t = embedder.embed(texts, |_| {})?;
     let flagged: HashSet<usize> = leaks.iter().map(|l| l.question).collect();
