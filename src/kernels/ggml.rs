@@ -10,7 +10,7 @@
 //! on. A matrix keeps the stored codes and scales: a product dequantises the 64 rows of one
 //! panel, a piece of [`PIECE_ROWS`] inputs at a time, into a buffer that stays in the
 //! first-level cache, so batch-1 decoding reads the file's bits per weight, not 32. Panels of
-//! q8_0 or q4_k rows are regrouped at load (the codes of a piece side by side, input by input;
+//! q8_0, q4_0, q4_1 or q4_k rows are regrouped at load (the codes of a piece side by side, input by input;
 //! see [`Panel`]) so that a piece dequantises with vector instructions, the same operations per
 //! value as [`dequantise_block`]; panels of the other types (or of several types) dequantise
 //! value by value from the stored rows. Tests: every regrouped piece equals the value-by-value
@@ -316,8 +316,9 @@ type Row = (GgmlType, Vec<u8>);
 
 /// The 64 output rows of one panel, held as the products read them.
 ///
-/// A panel whose rows are all q8_0 or all q4_k is regrouped at load so that a piece of the
-/// panel (32 inputs, one q8_0 block or one q4_k sub-block of each row) lies in one place, its
+/// A panel whose rows are all q8_0, all q4_0, all q4_1 or all q4_k is regrouped at load so
+/// that a piece of the panel (32 inputs: one block, or one q4_k sub-block, of each row) lies
+/// in one place, its
 /// codes ordered input by input with the 64 rows side by side: dequantising it is then the same
 /// few operations on every lane, which the compiler turns into vector code. The values are
 /// unchanged (the same codes, the same f16 scales and 6-bit scales, the same operations per
@@ -336,15 +337,20 @@ enum Panel {
         sm: Vec<u8>,
         q: Vec<u8>,
     },
+    /// All rows q4_0 (`min` false) or q4_1 (`min` true). `dm`: [group][64] each row's f16 d,
+    /// then with `min` [group][64] its f16 m (as [group][2][64]); `q`: [group][k][32] the
+    /// codes as in `Q4K`.
+    Q4 { dm: Vec<f16>, q: Vec<u8>, min: bool },
     /// Rows as stored (several types, the types without a regrouped form).
     Rows(Vec<Row>),
 }
 
-/// Inputs per group of a regrouped panel: one q8_0 block, one q4_k sub-block, one piece.
+/// Inputs per group of a regrouped panel: one q8_0/q4_0/q4_1 block, one q4_k sub-block, one
+/// piece.
 const GROUP: usize = 32;
 
 impl Panel {
-    /// The panel of 64 rows, regrouped when they are all q8_0 or all q4_k.
+    /// The panel of 64 rows, regrouped when they are all of one type that has a regrouped form.
     fn new(rows: Vec<Row>, inp: usize) -> Panel {
         debug_assert_eq!(rows.len(), PANEL);
         let groups = inp / GROUP;
@@ -387,6 +393,28 @@ impl Panel {
             }
             return Panel::Q4K { dm, sm, q };
         }
+        for (t, min) in [(GgmlType::Q4_0, false), (GgmlType::Q4_1, true)] {
+            if !all(t) {
+                continue;
+            }
+            let (size, at, per) = (t.block().1, if min { 4 } else { 2 }, 1 + min as usize);
+            let mut dm = vec![f16::ZERO; groups * per * PANEL];
+            let mut q = vec![0u8; groups * GROUP * PANEL / 2];
+            for (l, (_, b)) in rows.iter().enumerate() {
+                let (lane, shift) = (l % 32, 4 * (l / 32));
+                for (g, blk) in b.chunks_exact(size).enumerate() {
+                    for h in 0..per {
+                        dm[(per * g + h) * PANEL + l] =
+                            f16::from_bits(u16::from_le_bytes([blk[2 * h], blk[2 * h + 1]]));
+                    }
+                    for k in 0..GROUP {
+                        let c = (blk[at + k % 16] >> (4 * (k / 16))) & 0x0F;
+                        q[(g * GROUP + k) * 32 + lane] |= c << shift;
+                    }
+                }
+            }
+            return Panel::Q4 { dm, q, min };
+        }
         Panel::Rows(rows)
     }
 
@@ -394,6 +422,7 @@ impl Panel {
         match self {
             Panel::Q8 { d, q } => 2 * d.len() + q.len(),
             Panel::Q4K { dm, sm, q } => 2 * dm.len() + sm.len() + q.len(),
+            Panel::Q4 { dm, q, .. } => 2 * dm.len() + q.len(),
             Panel::Rows(rows) => rows.iter().map(|r| r.1.len()).sum(),
         }
     }
@@ -437,6 +466,37 @@ fn q4k_group<const AVX512: bool>(
         for i in 0..32 {
             lo[i] = dj[i] * (codes[i] & 0x0F) as f32 - mj[i];
             hi[i] = dj[32 + i] * (codes[i] >> 4) as f32 - mj[32 + i];
+        }
+    }
+}
+
+/// As [`q8_group`] for a q4_0 panel, d · (code − 8), or with `MIN` a q4_1 panel, d · code + m,
+/// as [`dequantise_block`].
+#[inline(always)]
+fn q4_group<const AVX512: bool, const MIN: bool>(
+    dm: &[f16],
+    q: &[u8],
+    k0: usize,
+    k1: usize,
+    dst: &mut [f32],
+) {
+    let (mut d, mut m) = ([0f32; PANEL], [0f32; PANEL]);
+    widen_halves::<AVX512>(dm, &mut d);
+    if MIN {
+        widen_halves::<AVX512>(&dm[PANEL..], &mut m);
+    }
+    for (k, row) in (k0..k1).zip(dst.chunks_exact_mut(PANEL)) {
+        let codes = &q[k * 32..(k + 1) * 32];
+        let (lo, hi) = row.split_at_mut(32);
+        for i in 0..32 {
+            let (a, b) = (codes[i] & 0x0F, codes[i] >> 4);
+            if MIN {
+                lo[i] = d[i] * a as f32 + m[i];
+                hi[i] = d[32 + i] * b as f32 + m[32 + i];
+            } else {
+                lo[i] = d[i] * (a as i8 - 8) as f32;
+                hi[i] = d[32 + i] * (b as i8 - 8) as f32;
+            }
         }
     }
 }
@@ -554,6 +614,12 @@ fn regrouped_piece_any<const AVX512: bool>(panel: &Panel, k0: usize, k1: usize, 
                 out,
             )
         }),
+        Panel::Q4 { dm, q, min: false } => by_group(k0, k1, dst, |g, a, b, out| {
+            q4_group::<AVX512, false>(&dm[g * PANEL..], &q[g * GROUP * 32..], a, b, out)
+        }),
+        Panel::Q4 { dm, q, min: true } => by_group(k0, k1, dst, |g, a, b, out| {
+            q4_group::<AVX512, true>(&dm[2 * g * PANEL..], &q[g * GROUP * 32..], a, b, out)
+        }),
         Panel::Rows(_) => unreachable!("stored rows are read value by value"),
     }
 }
@@ -612,10 +678,10 @@ impl Panels for GgmlMatrix {
     fn piece<'a>(&'a self, p: usize, k0: usize, k1: usize, buf: &'a mut [f32]) -> &'a [f32] {
         let piece = &mut buf[..(k1 - k0) * PANEL];
         match self.panels.get(p) {
-            Some(panel @ (Panel::Q8 { .. } | Panel::Q4K { .. })) => {
-                regrouped_piece(panel, k0, k1, piece)
+            Some(Panel::Rows(_)) | None => {
+                ROW.with(|row| self.dequantise(p, k0, k1, piece, &mut row.borrow_mut()))
             }
-            _ => ROW.with(|row| self.dequantise(p, k0, k1, piece, &mut row.borrow_mut())),
+            Some(panel) => regrouped_piece(panel, k0, k1, piece),
         }
         piece
     }
@@ -779,6 +845,7 @@ mod tests {
             (4, 512, vec![(GgmlType::Q8_0, 70)]),
             (1, 512, vec![(GgmlType::Q8_0, 128), (GgmlType::Q4K, 64)]),
             (2, 256, vec![(GgmlType::Q4K, 130)]),
+            (3, 256, vec![(GgmlType::Q4_0, 64), (GgmlType::Q4_1, 70)]),
             (9, 256, vec![(GgmlType::Q4K, 100), (GgmlType::Q8_0, 92)]),
             (
                 9,
@@ -818,10 +885,13 @@ mod tests {
         0x7BFF, 0xFBFF, 0x0001, 0x8001, 0x0400, 0x0000, 0x8000, 0x3C00,
     ];
 
-    /// `blocks` with every f16 scale (q8_0's d, q4_k's d and dmin) one of [`EXTREMES`].
+    /// `blocks` with every f16 scale (d, and q4_1's m or q4_k's dmin) one of [`EXTREMES`].
     fn extreme_blocks(t: GgmlType, rows: usize, inp: usize, seed: u64) -> Vec<u8> {
         let mut b = blocks(t, rows, inp, seed);
-        let halves: &[usize] = if t == GgmlType::Q8_0 { &[0] } else { &[0, 2] };
+        let halves: &[usize] = match t {
+            GgmlType::Q8_0 | GgmlType::Q4_0 => &[0],
+            _ => &[0, 2],
+        };
         for (i, blk) in b.chunks_exact_mut(t.block().1).enumerate() {
             for (n, &h) in halves.iter().enumerate() {
                 let v = EXTREMES[(i * 3 + n * 5 + seed as usize) % EXTREMES.len()];
@@ -831,14 +901,19 @@ mod tests {
         b
     }
 
-    /// The regrouped q8_0 and q4_k panels give, bit for bit, the values the value-by-value
+    /// The regrouped q8_0, q4_0, q4_1 and q4_k panels give, bit for bit, the values the value-by-value
     /// reference path ([`dequantise_row`] on the stored rows, itself checked against the gguf
     /// package and candle) gives: every piece and every whole panel, on random codes with
     /// ordinary and extreme scales, rows pushed in two parts that split a panel, and a partial
     /// last panel read from the stored rows.
     #[test]
     fn regrouped_panels_equal_the_value_by_value_path() {
-        for t in [GgmlType::Q8_0, GgmlType::Q4K] {
+        for t in [
+            GgmlType::Q8_0,
+            GgmlType::Q4_0,
+            GgmlType::Q4_1,
+            GgmlType::Q4K,
+        ] {
             for extreme in [false, true] {
                 let (rows, inp) = (2 * PANEL + 5, 512);
                 let b = if extreme {
@@ -851,15 +926,12 @@ mod tests {
                 m.push(t, 40, b[..40 * rb].to_vec());
                 m.push(t, rows - 40, b[40 * rb..].to_vec());
                 assert!(m.panels.len() == 2 && m.tail.len() == 5);
-                assert!(m
-                    .panels
-                    .iter()
-                    .all(|p| matches!(p, Panel::Q8 { .. } | Panel::Q4K { .. })));
+                assert!(m.panels.iter().all(|p| !matches!(p, Panel::Rows(_))));
                 // q8_0 keeps its 34 bytes a block; q4_k's sub-block scales take a byte each
                 // (148 bytes a block of 256 instead of 144); the last 5 rows stay as stored.
                 let regrouped = match t {
-                    GgmlType::Q8_0 => 2 * PANEL * rb,
-                    _ => 2 * PANEL * (inp / QK_K) * 148,
+                    GgmlType::Q4K => 2 * PANEL * (inp / QK_K) * 148,
+                    _ => 2 * PANEL * rb,
                 };
                 assert_eq!(m.bytes(), regrouped + 5 * rb);
                 // The reference: each row value by value, laid out as the panels.
