@@ -456,9 +456,10 @@ fn q4k_group<const AVX512: bool>(
     widen_halves::<AVX512>(dm, &mut d);
     widen_halves::<AVX512>(&dm[PANEL..], &mut dmin);
     let (mut dj, mut mj) = ([0f32; PANEL], [0f32; PANEL]);
+    let (sc, m) = (&sm[..PANEL], &sm[PANEL..2 * PANEL]);
     for l in 0..PANEL {
-        dj[l] = d[l] * sm[l] as f32;
-        mj[l] = dmin[l] * sm[PANEL + l] as f32;
+        dj[l] = d[l] * sc[l] as f32;
+        mj[l] = dmin[l] * m[l] as f32;
     }
     for (k, row) in (k0..k1).zip(dst.chunks_exact_mut(PANEL)) {
         let codes = &q[k * 32..(k + 1) * 32];
