@@ -16,17 +16,23 @@
 #
 # First run: writes the model (~3.4 GB: bench/models/random-05b-{f32,bf16}/ and
 # random-05b-{q8_0,q4_k}.gguf, git-ignored; remove them when done) with
-# bench/make_gguf_checkpoints.py, which needs numpy and the `gguf` package (PYTHON, default
-# /work/venv-ref/bin/python, or any python with both). Tokens/s: new tokens over the answering
-# time liftgate prints (prompt prefill included, loading excluded), --ignore-eos.
+# bench/make_gguf_checkpoints.py, which needs numpy and the `gguf` package: PYTHON, a python
+# with both, or else bench/.venv-gguf, created with them from PyPI. Tokens/s: new tokens over
+# the answering time liftgate prints (prompt prefill included, loading excluded), --ignore-eos.
 set -euo pipefail
 here="$(cd "$(dirname "$0")" && pwd)"
 root="$(dirname "$here")"
 models="$here/models"
 threads="${THREADS:-2}"
 tokens="${TOKENS:-32}"
-python="${PYTHON:-/work/venv-ref/bin/python}"
-[ -f "$models/random-05b-q4_k.gguf" ] || "$python" "$here/make_gguf_checkpoints.py" "$models"
+if [ ! -f "$models/random-05b-q4_k.gguf" ]; then
+  python="${PYTHON:-$here/.venv-gguf/bin/python}"
+  if [ ! -x "$python" ]; then
+    python3 -m venv "$here/.venv-gguf"
+    "$here/.venv-gguf/bin/pip" install --quiet numpy "gguf==0.19.0"
+  fi
+  "$python" "$here/make_gguf_checkpoints.py" "$models"
+fi
 (cd "$root" && cargo build --release --locked --quiet)
 work=$(mktemp -d)
 trap 'rm -rf "$work"' EXIT

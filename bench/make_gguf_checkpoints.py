@@ -2,9 +2,9 @@
 four forms: a checkpoint directory in f32 and one in bf16 (the same values: each is a bf16
 value), and GGUF v3 exports of it in q8_0 and q4_k.
 
-    python bench/make_gguf_checkpoints.py OUT_DIR     # ~3.4 GB in all, a minute or two
+    python bench/make_gguf_checkpoints.py OUT_DIR     # ~3.4 GB in all, under a minute
 
-Needs numpy and the `gguf` package (PyPI; /work/venv-ref has both). Shape: 0.5B-class in the
+Needs numpy and the `gguf` package (PyPI; bench/gguf.sh makes a venv with both). Shape: 0.5B-class in the
 Llama layout (no q/k/v biases): hidden 1024, 24 layers, 16 heads, 4 key/value heads,
 intermediate 4096, vocabulary 32768, tied embedding; 399M parameters. Every matrix has a
 multiple of 256 inputs, as q4_k needs (the 896 of bench/throughput.sh's Qwen2 shape is not:
