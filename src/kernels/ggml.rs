@@ -7,9 +7,15 @@
 //! f16 scales widened to f32 (exact), then the same products and sums in the same order, each
 //! rounded to f32 on its own (numpy rounds every array operation; Rust never contracts `a * b +
 //! c` into a fused multiply-add), so the values are bit for bit those the reference computes
-//! on. A matrix keeps its rows in the stored bytes: a product dequantises the 64 rows of one
+//! on. A matrix keeps the stored codes and scales: a product dequantises the 64 rows of one
 //! panel, a piece of [`PIECE_ROWS`] inputs at a time, into a buffer that stays in the
-//! first-level cache, so batch-1 decoding reads the file's bits per weight, not 32.
+//! first-level cache, so batch-1 decoding reads the file's bits per weight, not 32. Panels of
+//! q8_0, q4_0, q4_1 or q4_k rows are regrouped at load (the codes of a piece side by side, input by input;
+//! see [`Panel`]) so that a piece dequantises with vector instructions, the same operations per
+//! value as [`dequantise_block`]; panels of the other types (or of several types) dequantise
+//! value by value from the stored rows. Tests: every regrouped piece equals the value-by-value
+//! path bit for bit, including extreme scales; tests/gguf_reference.rs checks the values and
+//! greedy tokens against transformers and the gguf package.
 //!
 //! Block layouts (bytes of one block, in order; from the same file):
 //! - `q4_0` (32 values, 18 bytes): f16 d, 16 bytes of nibbles (value i < 16 the low nibble of
@@ -30,6 +36,8 @@
 //! - `f32`, `f16`, `bf16`: one value each, widened exactly.
 
 use super::dense::{with_panel_buffer, Panels, PANEL};
+#[cfg(target_arch = "x86_64")]
+use super::simd::features;
 use half::f16;
 
 /// The ggml tensor types liftgate reads (the others are refused by name when a file is read).
@@ -303,21 +311,227 @@ pub fn dequantise_row(t: GgmlType, row: &[u8], from: usize, to: usize, out: &mut
     }
 }
 
-/// Consecutive output rows stored in one type: `rows` rows of `row_bytes` bytes each.
-struct Part {
-    t: GgmlType,
-    rows: usize,
-    row_bytes: usize,
-    bytes: Vec<u8>,
+/// One output row as the file stores it: its type and bytes.
+type Row = (GgmlType, Vec<u8>);
+
+/// The 64 output rows of one panel, held as the products read them.
+///
+/// A panel whose rows are all q8_0, all q4_0, all q4_1 or all q4_k is regrouped at load so
+/// that a piece of the panel (32 inputs: one block, or one q4_k sub-block, of each row) lies
+/// in one place, its
+/// codes ordered input by input with the 64 rows side by side: dequantising it is then the same
+/// few operations on every lane, which the compiler turns into vector code. The values are
+/// unchanged (the same codes, the same f16 scales and 6-bit scales, the same operations per
+/// value as [`dequantise_block`]), and so are the bytes per weight, give or take the q4_k
+/// sub-block scales (a byte each instead of 6 bits: 4.625 bits per weight instead of 4.5).
+/// Other panels keep their rows as stored and dequantise them value by value.
+enum Panel {
+    /// All rows q8_0. `d`: [group][64] the f16 scale of each row's block of group g (inputs
+    /// 32g..32g + 32); `q`: [group][k][64] the codes.
+    Q8 { d: Vec<f16>, q: Vec<i8> },
+    /// All rows q4_k. `dm`: [super-block][2][64] each row's f16 d, then dmin; `sm`: [group][2][64]
+    /// each row's 6-bit scale, then min, of group g's sub-block; `q`: [group][k][32] the
+    /// codes, row i in the low nibble and row 32 + i in the high nibble of byte i.
+    Q4K {
+        dm: Vec<f16>,
+        sm: Vec<u8>,
+        q: Vec<u8>,
+    },
+    /// All rows q4_0 (`min` false) or q4_1 (`min` true). `dm`: [group][64] each row's f16 d,
+    /// then with `min` [group][64] its f16 m (as [group][2][64]); `q`: [group][k][32] the
+    /// codes as in `Q4K`.
+    Q4 { dm: Vec<f16>, q: Vec<u8>, min: bool },
+    /// Rows as stored (several types, the types without a regrouped form).
+    Rows(Vec<Row>),
 }
 
-/// A linear layer's [out, inp] matrix as GGUF stores it: each output row the blocks of its
-/// inputs, possibly several tensors of different types stacked (q | k | v of a q4_k_m export
-/// mixes q4_k and q6_k).
+/// Inputs per group of a regrouped panel: one q8_0/q4_0/q4_1 block, one q4_k sub-block, one
+/// piece.
+const GROUP: usize = 32;
+
+impl Panel {
+    /// The panel of 64 rows, regrouped when they are all of one type that has a regrouped form.
+    fn new(rows: Vec<Row>, inp: usize) -> Panel {
+        debug_assert_eq!(rows.len(), PANEL);
+        let groups = inp / GROUP;
+        let all = |t| rows.iter().all(|r| r.0 == t);
+        if all(GgmlType::Q8_0) {
+            let mut d = vec![f16::ZERO; groups * PANEL];
+            let mut q = vec![0i8; groups * GROUP * PANEL];
+            for (l, (_, b)) in rows.iter().enumerate() {
+                for (g, blk) in b.chunks_exact(34).enumerate() {
+                    d[g * PANEL + l] = f16::from_bits(u16::from_le_bytes([blk[0], blk[1]]));
+                    for k in 0..GROUP {
+                        q[(g * GROUP + k) * PANEL + l] = blk[2 + k] as i8;
+                    }
+                }
+            }
+            return Panel::Q8 { d, q };
+        }
+        if all(GgmlType::Q4K) {
+            let supers = inp / QK_K;
+            let mut dm = vec![f16::ZERO; supers * 2 * PANEL];
+            let mut sm = vec![0u8; groups * 2 * PANEL];
+            let mut q = vec![0u8; groups * GROUP * PANEL / 2];
+            for (l, (_, b)) in rows.iter().enumerate() {
+                let (lane, shift) = (l % 32, 4 * (l / 32));
+                for (s, blk) in b.chunks_exact(144).enumerate() {
+                    dm[2 * s * PANEL + l] = f16::from_bits(u16::from_le_bytes([blk[0], blk[1]]));
+                    dm[(2 * s + 1) * PANEL + l] =
+                        f16::from_bits(u16::from_le_bytes([blk[2], blk[3]]));
+                    for j in 0..8 {
+                        let g = s * 8 + j;
+                        let (sc, m) = scale_min_k4(&blk[4..16], j);
+                        sm[2 * g * PANEL + l] = sc;
+                        sm[(2 * g + 1) * PANEL + l] = m;
+                        for k in 0..GROUP {
+                            let c = (blk[16 + (j / 2) * 32 + k] >> (4 * (j % 2))) & 0x0F;
+                            q[(g * GROUP + k) * 32 + lane] |= c << shift;
+                        }
+                    }
+                }
+            }
+            return Panel::Q4K { dm, sm, q };
+        }
+        for (t, min) in [(GgmlType::Q4_0, false), (GgmlType::Q4_1, true)] {
+            if !all(t) {
+                continue;
+            }
+            let (size, at, per) = (t.block().1, if min { 4 } else { 2 }, 1 + min as usize);
+            let mut dm = vec![f16::ZERO; groups * per * PANEL];
+            let mut q = vec![0u8; groups * GROUP * PANEL / 2];
+            for (l, (_, b)) in rows.iter().enumerate() {
+                let (lane, shift) = (l % 32, 4 * (l / 32));
+                for (g, blk) in b.chunks_exact(size).enumerate() {
+                    for h in 0..per {
+                        dm[(per * g + h) * PANEL + l] =
+                            f16::from_bits(u16::from_le_bytes([blk[2 * h], blk[2 * h + 1]]));
+                    }
+                    for k in 0..GROUP {
+                        let c = (blk[at + k % 16] >> (4 * (k / 16))) & 0x0F;
+                        q[(g * GROUP + k) * 32 + lane] |= c << shift;
+                    }
+                }
+            }
+            return Panel::Q4 { dm, q, min };
+        }
+        Panel::Rows(rows)
+    }
+
+    fn bytes(&self) -> usize {
+        match self {
+            Panel::Q8 { d, q } => 2 * d.len() + q.len(),
+            Panel::Q4K { dm, sm, q } => 2 * dm.len() + sm.len() + q.len(),
+            Panel::Q4 { dm, q, .. } => 2 * dm.len() + q.len(),
+            Panel::Rows(rows) => rows.iter().map(|r| r.1.len()).sum(),
+        }
+    }
+}
+
+/// Rows k0..k1 (within group g's 32 inputs, counted from the group's start) of a q8_0 panel
+/// into `dst` ([k1 - k0, 64]): code · d, as [`dequantise_block`] computes each value.
+#[inline(always)]
+fn q8_group<const AVX512: bool>(d: &[f16], q: &[i8], k0: usize, k1: usize, dst: &mut [f32]) {
+    let mut df = [0f32; PANEL];
+    widen_halves::<AVX512>(d, &mut df);
+    for (k, row) in (k0..k1).zip(dst.chunks_exact_mut(PANEL)) {
+        let codes = &q[k * PANEL..(k + 1) * PANEL];
+        for l in 0..PANEL {
+            row[l] = codes[l] as f32 * df[l];
+        }
+    }
+}
+
+/// As [`q8_group`] for a q4_k panel: (d · sc) · code − (dmin · m), as [`dequantise_block`].
+#[inline(always)]
+fn q4k_group<const AVX512: bool>(
+    dm: &[f16],
+    sm: &[u8],
+    q: &[u8],
+    k0: usize,
+    k1: usize,
+    dst: &mut [f32],
+) {
+    let (mut d, mut dmin) = ([0f32; PANEL], [0f32; PANEL]);
+    widen_halves::<AVX512>(dm, &mut d);
+    widen_halves::<AVX512>(&dm[PANEL..], &mut dmin);
+    let (mut dj, mut mj) = ([0f32; PANEL], [0f32; PANEL]);
+    let (sc, m) = (&sm[..PANEL], &sm[PANEL..2 * PANEL]);
+    for l in 0..PANEL {
+        dj[l] = d[l] * sc[l] as f32;
+        mj[l] = dmin[l] * m[l] as f32;
+    }
+    for (k, row) in (k0..k1).zip(dst.chunks_exact_mut(PANEL)) {
+        let codes = &q[k * 32..(k + 1) * 32];
+        let (lo, hi) = row.split_at_mut(32);
+        for i in 0..32 {
+            lo[i] = dj[i] * (codes[i] & 0x0F) as f32 - mj[i];
+            hi[i] = dj[32 + i] * (codes[i] >> 4) as f32 - mj[32 + i];
+        }
+    }
+}
+
+/// As [`q8_group`] for a q4_0 panel, d · (code − 8), or with `MIN` a q4_1 panel, d · code + m,
+/// as [`dequantise_block`].
+#[inline(always)]
+fn q4_group<const AVX512: bool, const MIN: bool>(
+    dm: &[f16],
+    q: &[u8],
+    k0: usize,
+    k1: usize,
+    dst: &mut [f32],
+) {
+    let (mut d, mut m) = ([0f32; PANEL], [0f32; PANEL]);
+    widen_halves::<AVX512>(dm, &mut d);
+    if MIN {
+        widen_halves::<AVX512>(&dm[PANEL..], &mut m);
+    }
+    for (k, row) in (k0..k1).zip(dst.chunks_exact_mut(PANEL)) {
+        let codes = &q[k * 32..(k + 1) * 32];
+        let (lo, hi) = row.split_at_mut(32);
+        for i in 0..32 {
+            let (a, b) = (codes[i] & 0x0F, codes[i] >> 4);
+            if MIN {
+                lo[i] = d[i] * a as f32 + m[i];
+                hi[i] = d[32 + i] * b as f32 + m[32 + i];
+            } else {
+                lo[i] = d[i] * (a as i8 - 8) as f32;
+                hi[i] = d[32 + i] * (b as i8 - 8) as f32;
+            }
+        }
+    }
+}
+
+/// 64 f16 values to f32, exact: AVX-512's `vcvtph2ps` when `AVX512` (the caller runs on
+/// AVX-512F), the `half` crate's conversion otherwise.
+#[inline(always)]
+fn widen_halves<const AVX512: bool>(src: &[f16], dst: &mut [f32; PANEL]) {
+    let src = &src[..PANEL];
+    #[cfg(target_arch = "x86_64")]
+    if AVX512 {
+        use std::arch::x86_64::{__m256i, _mm256_loadu_si256, _mm512_cvtph_ps, _mm512_storeu_ps};
+        for v in 0..PANEL / 16 {
+            // SAFETY: `AVX512` is true only in code compiled for and run on AVX-512F; the
+            // loads and stores stay inside `src` (64 f16) and `dst` (64 f32).
+            unsafe {
+                let h = _mm256_loadu_si256(src.as_ptr().add(16 * v) as *const __m256i);
+                _mm512_storeu_ps(dst.as_mut_ptr().add(16 * v), _mm512_cvtph_ps(h));
+            }
+        }
+        return;
+    }
+    use half::slice::HalfFloatSliceExt;
+    src.convert_to_f32_slice(dst);
+}
+
+/// A linear layer's [out, inp] matrix read from GGUF blocks: its panels of 64 output rows (see
+/// [`Panel`]), possibly several tensors of different types stacked (q | k | v of a q4_k_m
+/// export mixes q4_k and q6_k), and the rows of a last, partial panel as stored.
 pub struct GgmlMatrix {
     pub out: usize,
     pub inp: usize,
-    parts: Vec<Part>,
+    panels: Vec<Panel>,
+    tail: Vec<Row>,
 }
 
 impl GgmlMatrix {
@@ -326,7 +540,8 @@ impl GgmlMatrix {
         GgmlMatrix {
             out: 0,
             inp,
-            parts: Vec::new(),
+            panels: Vec::new(),
+            tail: Vec::new(),
         }
     }
 
@@ -336,76 +551,144 @@ impl GgmlMatrix {
         let row_bytes = t.row_bytes(self.inp);
         assert!(self.inp.is_multiple_of(t.block().0) && bytes.len() == rows * row_bytes);
         self.out += rows;
-        self.parts.push(Part {
-            t,
-            rows,
-            row_bytes,
-            bytes,
-        });
+        for r in bytes.chunks_exact(row_bytes.max(1)).take(rows) {
+            self.tail.push((t, r.to_vec()));
+            if self.tail.len() == PANEL {
+                let rows = std::mem::take(&mut self.tail);
+                self.panels.push(Panel::new(rows, self.inp));
+            }
+        }
     }
 
     /// Bytes held.
     pub fn bytes(&self) -> usize {
-        self.parts.iter().map(|p| p.bytes.len()).sum()
-    }
-
-    /// The type and bytes of output row `j`.
-    #[inline(always)]
-    fn row(&self, mut j: usize) -> (GgmlType, &[u8]) {
-        for p in &self.parts {
-            if j < p.rows {
-                return (p.t, &p.bytes[j * p.row_bytes..(j + 1) * p.row_bytes]);
-            }
-            j -= p.rows;
-        }
-        unreachable!("row index checked by the caller")
-    }
-
-    /// Values `from..to` of output row `j` into `out`.
-    pub fn row_values(&self, j: usize, from: usize, to: usize, out: &mut [f32]) {
-        let (t, bytes) = self.row(j);
-        dequantise_row(t, bytes, from, to, out);
+        let tail: usize = self.tail.iter().map(|r| r.1.len()).sum();
+        self.panels.iter().map(Panel::bytes).sum::<usize>() + tail
     }
 
     /// Rows k0..k1 of panel p as f32 into `dst` ([k1 - k0, 64]); columns past `out` are zero.
-    fn dequantise(&self, p: usize, k0: usize, k1: usize, dst: &mut [f32], tmp: &mut [f32]) {
-        let width = k1 - k0;
-        for l in 0..PANEL {
-            let j = p * PANEL + l;
-            if j >= self.out {
-                for k in 0..width {
-                    dst[k * PANEL + l] = 0.0;
-                }
-                continue;
+    /// `tmp` holds the values of one row for rows dequantised value by value.
+    #[inline(always)]
+    fn dequantise(&self, p: usize, k0: usize, k1: usize, dst: &mut [f32], tmp: &mut Vec<f32>) {
+        match self.panels.get(p) {
+            Some(Panel::Rows(rows)) => rows_piece(rows, k0, k1, dst, tmp),
+            Some(panel) => regrouped_piece(panel, k0, k1, dst),
+            None => rows_piece(&self.tail, k0, k1, dst, tmp),
+        }
+    }
+}
+
+/// Rows k0..k1 of a regrouped panel into `dst`, with the loops compiled for AVX-512 when the
+/// CPU has it (found at run time; the same operations per value either way).
+fn regrouped_piece(panel: &Panel, k0: usize, k1: usize, dst: &mut [f32]) {
+    #[cfg(target_arch = "x86_64")]
+    if features().avx512f {
+        // SAFETY: the CPU has AVX-512F (checked just above).
+        unsafe { regrouped_piece_avx512(panel, k0, k1, dst) };
+        return;
+    }
+    regrouped_piece_any::<false>(panel, k0, k1, dst);
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn regrouped_piece_avx512(panel: &Panel, k0: usize, k1: usize, dst: &mut [f32]) {
+    regrouped_piece_any::<true>(panel, k0, k1, dst);
+}
+
+/// The group loops of [`regrouped_piece`]; `AVX512` says the caller is compiled for (and runs
+/// on) AVX-512F, whose conversion instruction then widens the f16 scales.
+#[inline(always)]
+fn regrouped_piece_any<const AVX512: bool>(panel: &Panel, k0: usize, k1: usize, dst: &mut [f32]) {
+    match panel {
+        Panel::Q8 { d, q } => by_group(k0, k1, dst, |g, a, b, out| {
+            q8_group::<AVX512>(&d[g * PANEL..], &q[g * GROUP * PANEL..], a, b, out)
+        }),
+        Panel::Q4K { dm, sm, q } => by_group(k0, k1, dst, |g, a, b, out| {
+            let s = g * GROUP / QK_K;
+            q4k_group::<AVX512>(
+                &dm[2 * s * PANEL..],
+                &sm[2 * g * PANEL..],
+                &q[g * GROUP * 32..],
+                a,
+                b,
+                out,
+            )
+        }),
+        Panel::Q4 { dm, q, min: false } => by_group(k0, k1, dst, |g, a, b, out| {
+            q4_group::<AVX512, false>(&dm[g * PANEL..], &q[g * GROUP * 32..], a, b, out)
+        }),
+        Panel::Q4 { dm, q, min: true } => by_group(k0, k1, dst, |g, a, b, out| {
+            q4_group::<AVX512, true>(&dm[2 * g * PANEL..], &q[g * GROUP * 32..], a, b, out)
+        }),
+        Panel::Rows(_) => unreachable!("stored rows are read value by value"),
+    }
+}
+
+/// Calls `f(g, a, b, dst)` for each group g of 32 inputs that k0..k1 meets, with the group's
+/// inputs a..b (from the group's start) and their rows of `dst`.
+#[inline(always)]
+fn by_group(
+    k0: usize,
+    k1: usize,
+    dst: &mut [f32],
+    mut f: impl FnMut(usize, usize, usize, &mut [f32]),
+) {
+    let mut k = k0;
+    while k < k1 {
+        let g = k / GROUP;
+        let end = ((g + 1) * GROUP).min(k1);
+        f(
+            g,
+            k - g * GROUP,
+            end - g * GROUP,
+            &mut dst[(k - k0) * PANEL..(end - k0) * PANEL],
+        );
+        k = end;
+    }
+}
+
+/// Rows k0..k1 of a panel of stored rows (fewer than 64 in the last panel: the other columns
+/// zero), value by value through [`dequantise_row`].
+fn rows_piece(rows: &[Row], k0: usize, k1: usize, dst: &mut [f32], tmp: &mut Vec<f32>) {
+    let width = k1 - k0;
+    if tmp.len() < width {
+        tmp.resize(width, 0.0);
+    }
+    for l in 0..PANEL {
+        let Some((t, bytes)) = rows.get(l) else {
+            for k in 0..width {
+                dst[k * PANEL + l] = 0.0;
             }
-            self.row_values(j, k0, k1, tmp);
-            for (k, &v) in tmp[..width].iter().enumerate() {
-                dst[k * PANEL + l] = v;
-            }
+            continue;
+        };
+        dequantise_row(*t, bytes, k0, k1, tmp);
+        for (k, &v) in tmp[..width].iter().enumerate() {
+            dst[k * PANEL + l] = v;
         }
     }
 }
 
 thread_local! {
-    /// One row's values of the piece being dequantised.
+    /// One row's values of the piece being dequantised value by value.
     static ROW: std::cell::RefCell<Vec<f32>> = const { std::cell::RefCell::new(Vec::new()) };
 }
 
 impl Panels for GgmlMatrix {
+    #[inline(always)]
     fn piece<'a>(&'a self, p: usize, k0: usize, k1: usize, buf: &'a mut [f32]) -> &'a [f32] {
         let piece = &mut buf[..(k1 - k0) * PANEL];
-        ROW.with(|row| {
-            let mut row = row.borrow_mut();
-            if row.len() < k1 - k0 {
-                row.resize(k1 - k0, 0.0);
+        match self.panels.get(p) {
+            Some(Panel::Rows(_)) | None => {
+                ROW.with(|row| self.dequantise(p, k0, k1, piece, &mut row.borrow_mut()))
             }
-            self.dequantise(p, k0, k1, piece, &mut row);
-        });
+            Some(panel) => regrouped_piece(panel, k0, k1, piece),
+        }
         piece
     }
 
     fn whole(&self, p: usize, f: &mut dyn FnMut(&[f32])) {
-        let mut row = vec![0.0; self.inp];
+        let mut row = Vec::new();
         with_panel_buffer(self.inp * PANEL, |buf| {
             self.dequantise(p, 0, self.inp, buf, &mut row);
             f(buf);
@@ -416,7 +699,7 @@ impl Panels for GgmlMatrix {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::kernels::dense::assert_panels_equal_dense;
+    use crate::kernels::dense::{assert_panels_equal_dense, PIECE_ROWS};
     use candle_core::quantized::GgmlDType;
     use candle_core::Device;
 
@@ -561,6 +844,10 @@ mod tests {
         for (n, inp, types) in [
             (1, 256, vec![(GgmlType::Q4K, 40), (GgmlType::Q6K, 30)]),
             (4, 512, vec![(GgmlType::Q8_0, 70)]),
+            (1, 512, vec![(GgmlType::Q8_0, 128), (GgmlType::Q4K, 64)]),
+            (2, 256, vec![(GgmlType::Q4K, 130)]),
+            (3, 256, vec![(GgmlType::Q4_0, 64), (GgmlType::Q4_1, 70)]),
+            (9, 256, vec![(GgmlType::Q4K, 100), (GgmlType::Q8_0, 92)]),
             (
                 9,
                 256,
@@ -590,6 +877,110 @@ mod tests {
             }
             let out = m.out;
             assert_panels_equal_dense(&m, &dense, n, inp, out);
+        }
+    }
+
+    /// f16 scales at the edges of the format: the largest finite values, the smallest
+    /// subnormal, the smallest normal, signed zeros, one.
+    const EXTREMES: [u16; 8] = [
+        0x7BFF, 0xFBFF, 0x0001, 0x8001, 0x0400, 0x0000, 0x8000, 0x3C00,
+    ];
+
+    /// `blocks` with every f16 scale (d, and q4_1's m or q4_k's dmin) one of [`EXTREMES`].
+    fn extreme_blocks(t: GgmlType, rows: usize, inp: usize, seed: u64) -> Vec<u8> {
+        let mut b = blocks(t, rows, inp, seed);
+        let halves: &[usize] = match t {
+            GgmlType::Q8_0 | GgmlType::Q4_0 => &[0],
+            _ => &[0, 2],
+        };
+        for (i, blk) in b.chunks_exact_mut(t.block().1).enumerate() {
+            for (n, &h) in halves.iter().enumerate() {
+                let v = EXTREMES[(i * 3 + n * 5 + seed as usize) % EXTREMES.len()];
+                blk[h..h + 2].copy_from_slice(&v.to_le_bytes());
+            }
+        }
+        b
+    }
+
+    /// The regrouped q8_0, q4_0, q4_1 and q4_k panels give, bit for bit, the values the value-by-value
+    /// reference path ([`dequantise_row`] on the stored rows, itself checked against the gguf
+    /// package and candle) gives: every piece and every whole panel, on random codes with
+    /// ordinary and extreme scales, rows pushed in two parts that split a panel, and a partial
+    /// last panel read from the stored rows.
+    #[test]
+    fn regrouped_panels_equal_the_value_by_value_path() {
+        for t in [
+            GgmlType::Q8_0,
+            GgmlType::Q4_0,
+            GgmlType::Q4_1,
+            GgmlType::Q4K,
+        ] {
+            for extreme in [false, true] {
+                let (rows, inp) = (2 * PANEL + 5, 512);
+                let b = if extreme {
+                    extreme_blocks(t, rows, inp, 3)
+                } else {
+                    blocks(t, rows, inp, 3)
+                };
+                let rb = t.row_bytes(inp);
+                let mut m = GgmlMatrix::new(inp);
+                m.push(t, 40, b[..40 * rb].to_vec());
+                m.push(t, rows - 40, b[40 * rb..].to_vec());
+                assert!(m.panels.len() == 2 && m.tail.len() == 5);
+                assert!(m.panels.iter().all(|p| !matches!(p, Panel::Rows(_))));
+                // q8_0 keeps its 34 bytes a block; q4_k's sub-block scales take a byte each
+                // (148 bytes a block of 256 instead of 144); the last 5 rows stay as stored.
+                let regrouped = match t {
+                    GgmlType::Q4K => 2 * PANEL * (inp / QK_K) * 148,
+                    _ => 2 * PANEL * rb,
+                };
+                assert_eq!(m.bytes(), regrouped + 5 * rb);
+                // The reference: each row value by value, laid out as the panels.
+                let mut want = vec![0f32; 3 * inp * PANEL];
+                for j in 0..rows {
+                    let mut v = vec![0.0; inp];
+                    dequantise_row(t, &b[j * rb..(j + 1) * rb], 0, inp, &mut v);
+                    for (k, x) in v.into_iter().enumerate() {
+                        want[(j / PANEL * inp + k) * PANEL + j % PANEL] = x;
+                    }
+                }
+                let bits = |v: &[f32]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+                let mut buf = vec![0f32; PIECE_ROWS * PANEL];
+                for p in 0..3 {
+                    let panel = &want[p * inp * PANEL..(p + 1) * inp * PANEL];
+                    for k0 in (0..inp).step_by(PIECE_ROWS) {
+                        let got = m.piece(p, k0, k0 + PIECE_ROWS, &mut buf);
+                        let at = k0 * PANEL..(k0 + PIECE_ROWS) * PANEL;
+                        let what = format!("{} extreme {extreme} panel {p} rows {k0}..", t.name());
+                        assert_eq!(bits(got), bits(&panel[at.clone()]), "{what}");
+                        // The portable loops too (the CPU running the tests may have AVX-512).
+                        let mut portable = vec![0f32; PIECE_ROWS * PANEL];
+                        if p < 2 {
+                            regrouped_piece_any::<false>(
+                                &m.panels[p],
+                                k0,
+                                k0 + PIECE_ROWS,
+                                &mut portable,
+                            );
+                            assert_eq!(bits(&portable), bits(&panel[at]), "portable {what}");
+                        }
+                    }
+                    m.whole(p, &mut |got| {
+                        assert_eq!(
+                            bits(&got[..inp * PANEL]),
+                            bits(panel),
+                            "{} whole {p}",
+                            t.name()
+                        )
+                    });
+                }
+                // Pieces that do not start at a group (the seam allows any k0 < k1).
+                let got = m.piece(1, 40, 70, &mut buf).to_vec();
+                assert_eq!(
+                    bits(&got),
+                    bits(&want[(inp + 40) * PANEL..(inp + 70) * PANEL])
+                );
+            }
         }
     }
 
