@@ -74,8 +74,10 @@ pub struct GenerationArgs {
 #[derive(Debug, Args)]
 pub struct AnswerArgs {
     /// Hugging Face-layout model directory (config.json, *.safetensors, tokenizer.json, ...).
-    #[arg(long, value_name = "DIR")]
-    pub model: PathBuf,
+    /// Required, except with --gguf: then it only gives the tokenizer and chat template, and
+    /// without it those stored in the GGUF file are used.
+    #[arg(long, value_name = "DIR", required_unless_present = "gguf")]
+    pub model: Option<PathBuf>,
     /// LoRA adapter directory written by peft (adapter_config.json, adapter_model.safetensors).
     /// Applied unmerged, as trained, unless --merge says otherwise.
     #[arg(long, value_name = "DIR")]
@@ -95,7 +97,8 @@ pub struct AnswerArgs {
     /// Answer with the model in this GGUF file (f32, f16, bf16, q4_0, q4_1, q5_0, q5_1, q8_0 and
     /// the k-quants q2_k to q6_k; llama, qwen2 and qwen3 architectures), its weights kept in
     /// their stored blocks and computed in f32; --model then gives the tokenizer and chat
-    /// template.
+    /// template, else the file's own (its `tokenizer.ggml.*` metadata and
+    /// `tokenizer.chat_template`) are used.
     #[arg(long, value_name = "FILE", conflicts_with_all = ["adapter", "merge", "base"])]
     pub gguf: Option<PathBuf>,
     /// A short name for this variant, recorded in the run record.
@@ -243,7 +246,9 @@ pub struct VetArgs {
     /// `-`), `adapter=DIR`, `model=DIR` (default: the baseline's model), `merge=f32|bf16|f16`
     /// (default: unmerged), `base=nf4|nf4-single|fp4|fp4-single` (the adapter on its base
     /// quantised to 4 bits as QLoRA trains it, see `answer --base`), `gguf=FILE` (a GGUF export,
-    /// see `answer --gguf`; `model=DIR` then only gives its tokenizer and chat template), `from=NAME` (the candidate this artifact was made from, for "how
+    /// see `answer --gguf`; `model=DIR` then only gives its tokenizer and chat template),
+    /// `tokenizer=gguf` (with `gguf=`: the tokenizer and chat template stored in the file
+    /// instead of the directory's), `from=NAME` (the candidate this artifact was made from, for "how
     /// much of the lift it keeps"). Repeat for several candidates, e.g.
     /// `--candidate name=epoch2,adapter=runs/e2 --candidate name=e2-bf16,adapter=runs/e2,merge=bf16`.
     #[arg(long, value_name = "SPEC")]

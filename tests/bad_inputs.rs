@@ -50,7 +50,7 @@ macro_rules! bad_input {
 
 /// The number of cases below; a case that disappears fails
 /// `catalogue_keeps_every_case`, so none is dropped by accident.
-const CASES: usize = 100;
+const CASES: usize = 102;
 
 fn runner(family: &str) -> PathBuf {
     common::fixture("runner").join(family)
@@ -1577,6 +1577,43 @@ bad_input!(gguf_phi3_partial_rotary_the_reference_ignores, |d| {
             "rotates 8 of its 16",
         ],
     )
+});
+
+// `answer --gguf FILE` with no directory on a file without tokenizer metadata.
+bad_input!(gguf_without_tokenizer_and_no_directory, |d| {
+    let mut setup = gguf_case(
+        d,
+        |_| {},
+        &[
+            "model.gguf",
+            "tokenizer.ggml.model",
+            "missing",
+            "--model DIR",
+        ],
+    );
+    setup.args.drain(1..3);
+    setup
+});
+
+// `answer --gguf FILE` with no directory on a file whose tokenizer kind is not supported.
+bad_input!(gguf_unsupported_tokenizer_kind, |d| {
+    write_set(d);
+    let mut b = std::fs::read(common::fixture("gguf_tokenizer/qwen2-q5_1-tok.gguf")).unwrap();
+    let at = find(&b, b"tokenizer.ggml.model") + "tokenizer.ggml.model".len() + 12;
+    b[at..at + 4].copy_from_slice(b"bert");
+    std::fs::write(d.join("model.gguf"), b).unwrap();
+    let mut setup = answer(
+        d,
+        false,
+        &[
+            "model.gguf",
+            "tokenizer.ggml.model",
+            "`bert` is not supported",
+        ],
+    );
+    setup.args.drain(1..3);
+    setup.args.extend([s("--gguf"), s("model.gguf")]);
+    setup
 });
 
 /// Temporary files the atomic writers leave only when something went wrong.

@@ -79,6 +79,9 @@ pub struct Settings {
     /// A GGUF file holding the whole model (`--gguf`, `gguf=`); `model` then only supplies the
     /// tokenizer and chat template.
     pub gguf: Option<PathBuf>,
+    /// The GGUF file's own tokenizer and chat template (its `tokenizer.*` metadata) instead of
+    /// the directory's; `model` is then the file itself.
+    pub gguf_tokenizer: bool,
     pub generation: Generation,
     /// Discard saved answers of an earlier run instead of continuing it.
     pub restart: bool,
@@ -120,6 +123,7 @@ impl Settings {
             merge,
             base: None,
             gguf: None,
+            gguf_tokenizer: false,
             model: model.to_path_buf(),
             adapter: adapter.map(Path::to_path_buf),
             generation: generation.checked()?,
@@ -179,5 +183,26 @@ impl Settings {
         }
         self.gguf = Some(g.to_path_buf());
         Ok(self)
+    }
+
+    /// The model in the GGUF file `gguf` with the tokenizer and chat template stored in it
+    /// (`answer --gguf FILE` without `--model`, a candidate's `tokenizer=gguf`): no directory is
+    /// read. A file without tokenizer metadata is refused when the run loads it.
+    pub fn gguf_alone(gguf: &Path, generation: Generation, restart: bool) -> Result<Self> {
+        let mut s = Settings {
+            name: None,
+            model: gguf.to_path_buf(),
+            adapter: None,
+            merge: Merge::Unmerged,
+            base: None,
+            gguf: None,
+            gguf_tokenizer: true,
+            generation: generation.checked()?,
+            restart,
+            shard: None,
+        }
+        .with_gguf(Some(gguf))?;
+        s.gguf_tokenizer = true;
+        Ok(s)
     }
 }

@@ -74,6 +74,7 @@ fn prepare(
             || m.settings.shard != first.shard
             || m.settings.base != first.base
             || m.settings.gguf != first.gguf
+            || m.settings.gguf_tokenizer != first.gguf_tokenizer
             || (members.len() > 1
                 && (m.settings.merge != Merge::Unmerged || m.settings.gguf.is_some()))
     }) {
@@ -96,11 +97,21 @@ fn prepare(
             model::config::ModelSpec::load(&first.model)?;
         }
     }
-    let chat = ChatTokenizer::load(&first.model)?;
-    if let Some(g) = &gguf {
-        compare_templates(g, &chat, &first.model, g.chat_template())?;
-    }
+    let chat = match &gguf {
+        Some(g) if first.gguf_tokenizer => crate::chat::gguf::load(&g.path, |k| g.meta(k))?,
+        Some(g) => {
+            let chat = ChatTokenizer::load(&first.model)?;
+            compare_templates(g, &chat, &first.model, g.chat_template())?;
+            chat
+        }
+        None => ChatTokenizer::load(&first.model)?,
+    };
     drop(gguf);
+    // The file that gave the tokenizer, for messages.
+    let tokenizer_file = match &first.gguf {
+        Some(g) if first.gguf_tokenizer => g.clone(),
+        _ => first.model.join("tokenizer.json"),
+    };
     // Every prompt before any model work: a template error (e.g. a rejected system role) stops
     // the run with nothing computed.
     let prompts = prompts::build(&chat, g.system.as_deref(), part)?;
@@ -129,7 +140,7 @@ fn prepare(
             .map(|t| (i, *t))
     }) {
         return Err(Error::file(
-            first.model.join("tokenizer.json"),
+            &tokenizer_file,
             format!(
                 "token id {bad} in the prompt of question {:?} is outside the model's vocabulary ({} rows); tokenizer and weights do not belong together",
                 part.questions[i].id, spec.vocab_size
@@ -150,7 +161,8 @@ fn prepare(
         ignore_eos: g.ignore_eos,
         repetition_penalty: loaded.generation.repetition_penalty.map(|p| p as f32),
     };
-    let model = model_info(&first.model, first.gguf.as_deref(), &loaded)?;
+    let tokenizer_dir = (!first.gguf_tokenizer).then_some(first.model.as_path());
+    let model = model_info(tokenizer_dir, first.gguf.as_deref(), &loaded)?;
     let mut infos = Vec::with_capacity(members.len());
     for (m, applied) in members.iter().zip(&loaded.adapters) {
         if let Some(why) = applied.as_ref().and_then(|a| a.merged_because.as_deref()) {
@@ -578,8 +590,13 @@ fn compare_templates(
 
 /// Content fingerprint of the model: SHA-256 over the list of (file, SHA-256) for config,
 /// generation config, weights (and index) and tokenizer files; for a GGUF model, the GGUF file
-/// and the tokenizer files of the directory.
-fn model_info(dir: &Path, gguf: Option<&Path>, loaded: &model::LoadedModel) -> Result<ModelInfo> {
+/// and the tokenizer files of the directory (`dir` None: the file's own tokenizer, nothing
+/// else is read).
+fn model_info(
+    dir: Option<&Path>,
+    gguf: Option<&Path>,
+    loaded: &model::LoadedModel,
+) -> Result<ModelInfo> {
     let mut files: Vec<PathBuf> = Vec::new();
     let config: &[&str] = if gguf.is_some() {
         &[]
@@ -596,6 +613,7 @@ fn model_info(dir: &Path, gguf: Option<&Path>, loaded: &model::LoadedModel) -> R
         "special_tokens_map.json",
         "chat_template.jinja",
     ]) {
+        let Some(dir) = dir else { break };
         let p = dir.join(name);
         if p.is_file() {
             files.push(p);
@@ -615,7 +633,7 @@ fn model_info(dir: &Path, gguf: Option<&Path>, loaded: &model::LoadedModel) -> R
         digests.push(FileDigest { name, sha256: sha });
     }
     Ok(ModelInfo {
-        path: gguf.unwrap_or(dir).display().to_string(),
+        path: gguf.or(dir).unwrap_or(Path::new("")).display().to_string(),
         fingerprint: fsutil::sha256_hex(manifest.as_bytes()),
         files: digests,
         model_type: loaded.spec.family.model_type().to_string(),

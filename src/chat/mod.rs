@@ -34,6 +34,7 @@
 //! - `strftime_now` formats the current UTC time (transformers uses local time); a template that
 //!   calls it renders a different prompt every day.
 
+pub mod gguf;
 mod pyfmt;
 pub use pyfmt::py_strip;
 pub mod strftime;

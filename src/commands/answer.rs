@@ -12,15 +12,24 @@ use crate::formats::questions::QuestionSet;
 use crate::interrupt::StopFlag;
 
 pub fn run(args: &AnswerArgs) -> Result<Outcome> {
-    let mut settings = answer::Settings::new(
-        &args.model,
-        args.adapter.as_deref(),
-        args.merge.unwrap_or_default(),
-        args::default_generation(&args.generation)?,
-        args.restart,
-    )?
-    .on_base(args.base)?
-    .with_gguf(args.gguf.as_deref())?;
+    let generation = args::default_generation(&args.generation)?;
+    let mut settings =
+        match (&args.model, &args.gguf) {
+            // A GGUF file alone: its own tokenizer and chat template.
+            (None, Some(gguf)) => answer::Settings::gguf_alone(gguf, generation, args.restart)?,
+            (Some(model), gguf) => answer::Settings::new(
+                model,
+                args.adapter.as_deref(),
+                args.merge.unwrap_or_default(),
+                generation,
+                args.restart,
+            )?
+            .on_base(args.base)?
+            .with_gguf(gguf.as_deref())?,
+            (None, None) => return Err(Error::usage(
+                "--model DIR is required (or --gguf FILE, a model file carrying its own tokenizer)",
+            )),
+        };
     if let Some(name) = &args.name {
         args::check_name("--name", name)?;
         settings.name = Some(name.clone());

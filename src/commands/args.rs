@@ -84,10 +84,12 @@ pub fn check_name(flag: &str, name: &str) -> Result<()> {
     }
 }
 
-/// Parses one `--candidate` SPEC (`name=…,adapter=…,model=…,merge=…,base=…,from=…,gguf=…`) into
-/// settings; `model` defaults to `default_model` (with `gguf`, the directory whose tokenizer
-/// and chat template the GGUF model uses). Without `name=` the name is the adapter's (else the
-/// model's) directory name, with the merge dtype (or the 4-bit base) appended.
+/// Parses one `--candidate` SPEC (`name=…,adapter=…,model=…,merge=…,base=…,from=…,gguf=…,
+/// tokenizer=…`) into settings; `model` defaults to `default_model` (with `gguf`, the directory
+/// whose tokenizer and chat template the GGUF model uses, the one the fine-tune was trained
+/// with; `tokenizer=gguf` takes the file's own instead). Without `name=` the name is the
+/// adapter's (else the model's) directory name, with the merge dtype (or the 4-bit base)
+/// appended.
 pub fn candidate(
     spec: &str,
     default_model: &Path,
@@ -97,10 +99,11 @@ pub fn candidate(
     let flag = format!("--candidate {spec}");
     let (mut name, mut model, mut adapter, mut merge, mut base, mut from, mut gguf) =
         (None, None, None, None, None, None, None);
+    let mut tokenizer = None;
     for pair in spec.split(',').filter(|p| !p.trim().is_empty()) {
         let Some((key, value)) = pair.split_once('=') else {
             return Err(Error::usage(format!(
-                "{flag}: `{pair}` is not KEY=VALUE (keys: name, adapter, model, merge, base, from, gguf)"
+                "{flag}: `{pair}` is not KEY=VALUE (keys: name, adapter, model, merge, base, from, gguf, tokenizer)"
             )));
         };
         let value = value.trim();
@@ -112,9 +115,10 @@ pub fn candidate(
             "base" => &mut base,
             "from" => &mut from,
             "gguf" => &mut gguf,
+            "tokenizer" => &mut tokenizer,
             other => {
                 return Err(Error::usage(format!(
-                    "{flag}: unknown key `{other}` (keys: name, adapter, model, merge, base, from, gguf)"
+                    "{flag}: unknown key `{other}` (keys: name, adapter, model, merge, base, from, gguf, tokenizer)"
                 )))
             }
         };
@@ -145,6 +149,25 @@ pub fn candidate(
             "{flag}: gguf=FILE is a finished export: adapter, merge and base do not apply to it (model=DIR may give its tokenizer)"
         )));
     }
+    let own_tokenizer = match tokenizer.as_deref() {
+        None | Some("model") => false,
+        Some("gguf") if gguf.is_none() => {
+            return Err(Error::usage(format!(
+                "{flag}: tokenizer=gguf takes the tokenizer stored in a GGUF file: give gguf=FILE"
+            )))
+        }
+        Some("gguf") if model.is_some() => {
+            return Err(Error::usage(format!(
+                "{flag}: tokenizer=gguf takes the file's own tokenizer and template, so model=DIR has nothing to give; drop one of them"
+            )))
+        }
+        Some("gguf") => true,
+        Some(v) => {
+            return Err(Error::usage(format!(
+                "{flag}: tokenizer={v}: expected gguf (the file's own tokenizer and chat template) or model (the directory's, the default)"
+            )))
+        }
+    };
     if adapter.is_none() && model.is_none() && gguf.is_none() {
         return Err(Error::usage(format!(
             "{flag}: give adapter=DIR (the baseline's model plus that adapter), model=DIR (a merged checkpoint), both, or gguf=FILE (a GGUF export)"
@@ -192,16 +215,19 @@ pub fn candidate(
     if let Some(f) = &from {
         check_name(&flag, f)?;
     }
-    let mut settings = answer::Settings::new(
-        &model_path,
-        adapter_path.as_deref(),
-        merge,
-        generation.clone(),
-        restart,
-    )
-    .and_then(|s| s.on_base(base))
-    .and_then(|s| s.with_gguf(gguf_path.as_deref()))
-    .map_err(|e| match e {
+    let built = match &gguf_path {
+        Some(g) if own_tokenizer => answer::Settings::gguf_alone(g, generation.clone(), restart),
+        _ => answer::Settings::new(
+            &model_path,
+            adapter_path.as_deref(),
+            merge,
+            generation.clone(),
+            restart,
+        )
+        .and_then(|s| s.on_base(base))
+        .and_then(|s| s.with_gguf(gguf_path.as_deref())),
+    };
+    let mut settings = built.map_err(|e| match e {
         Error::Usage(m) => Error::usage(format!("{flag}: {m}")),
         other => other,
     })?;

