@@ -133,6 +133,11 @@ def write_with_tokenizer(src: Path, dst: Path, runner: str, pre: str, bos, add_b
         writer.add_pad_token_id(pad)
     if template is not None:
         writer.add_chat_template(template)
+    copy_tensors_and_close(reader, writer)
+
+
+def copy_tensors_and_close(reader, writer):
+    """Writes the header and metadata gathered in `writer`, then `reader`'s tensors unchanged."""
     for tensor in reader.tensors:
         writer.add_tensor_info(tensor.name, tensor.data.shape, tensor.data.dtype, tensor.data.nbytes,
                                tensor.tensor_type)
@@ -197,15 +202,7 @@ def write_spm(src: Path, dst: Path, add_bos, template) -> None:
         writer.add_add_bos_token(add_bos)
     if template is not None:
         writer.add_chat_template(template)
-    for tensor in reader.tensors:
-        writer.add_tensor_info(tensor.name, tensor.data.shape, tensor.data.dtype, tensor.data.nbytes,
-                               tensor.tensor_type)
-    writer.write_header_to_file()
-    writer.write_kv_data_to_file()
-    writer.write_ti_data_to_file()
-    for tensor in reader.tensors:
-        writer.write_tensor_data(tensor.data, tensor_endianess=reader.endianess)
-    writer.close()
+    copy_tensors_and_close(reader, writer)
 
 
 def record(dirpath: Path, name: str) -> dict:
