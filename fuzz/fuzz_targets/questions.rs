@@ -2,7 +2,7 @@
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
-use liftgate::questions::QuestionSet;
+use liftgate::formats::questions::QuestionSet;
 use std::path::Path;
 
 fuzz_target!(|data: &[u8]| {

@@ -416,7 +416,14 @@ impl GgufFile {
                 ),
             ));
         }
-        let len = values / block * size;
+        let len = (values / block).checked_mul(size).ok_or_else(|| {
+            Error::field(
+                &self.path,
+                None,
+                name,
+                format!("dimensions {dims:?} are too large"),
+            )
+        })?;
         let start = self.content.tensor_data_offset.checked_add(info.offset);
         let end = start.and_then(|s| s.checked_add(len as u64));
         match (start, end) {
@@ -879,6 +886,35 @@ mod tests {
             b[at] = (s >> 17) as u8;
             run(b);
         }
+    }
+
+    /// A tensor whose element count fits in memory sizes but whose byte length does not (found
+    /// by the fuzz target): refused as too large, not an overflow.
+    #[test]
+    fn a_byte_length_beyond_memory_sizes_is_refused() {
+        let mut b = std::fs::read(
+            Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/gguf/llama-q4_0-tied.gguf"),
+        )
+        .unwrap();
+        let name = b"blk.0.attn_norm.weight";
+        let at = b
+            .windows(name.len())
+            .position(|w| w == name)
+            .expect("the fixture names its first norm")
+            + name.len();
+        assert_eq!(
+            u32::from_le_bytes(b[at..at + 4].try_into().unwrap()),
+            1,
+            "a 1-D norm"
+        );
+        b[at + 4..at + 12].copy_from_slice(&(1u64 << 62).to_le_bytes());
+        let r = GgufFile::from_bytes(Path::new("model.gguf"), b).and_then(|f| {
+            let spec = f.spec()?;
+            f.weights(&spec).map(|_| ())
+        });
+        let e = r.err().expect("refused");
+        assert_eq!(e.exit_code(), 2, "{e}");
+        assert!(e.to_string().starts_with("model.gguf"), "{e}");
     }
 
     /// The names gguf-py 0.19's `get_tensor_name_map(arch, n)` gives (printed with the
