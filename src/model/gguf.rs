@@ -912,7 +912,7 @@ mod tests {
             let spec = f.spec()?;
             f.weights(&spec).map(|_| ())
         });
-        let e = r.err().expect("refused");
+        let e = r.expect_err("refused");
         assert_eq!(e.exit_code(), 2, "{e}");
         assert!(e.to_string().starts_with("model.gguf"), "{e}");
     }
