@@ -40,15 +40,7 @@ fn answers_equal_the_reference_for_every_model_file() {
             .iter()
             .all(|a| a["min_margin"].as_f64().unwrap() >= 1e-3));
         let t = Bin::new();
-        let mut set = String::new();
-        for (i, a) in answers.iter().enumerate() {
-            set.push_str(
-                &serde_json::json!({"id": format!("q{i}"), "question": a["question"], "references": ["x"]})
-                    .to_string(),
-            );
-            set.push('\n');
-        }
-        t.write("set.jsonl", set);
+        t.write("set.jsonl", common::question_set(answers));
         let dir = root().join(want["tokenizer_dir"].as_str().unwrap());
         let path = gguf(file);
         t.run([

@@ -162,18 +162,6 @@ fn the_real_files_stored_tokenizer_equals_transformers() {
     assert!(n >= 30, "{n} values compared");
 }
 
-fn write_set(t: &Bin, answers: &[Value]) {
-    let mut set = String::new();
-    for (i, a) in answers.iter().enumerate() {
-        set.push_str(
-            &serde_json::json!({"id": format!("q{i}"), "question": a["question"], "references": ["x"]})
-                .to_string(),
-        );
-        set.push('\n');
-    }
-    t.write("set.jsonl", set);
-}
-
 fn answer_texts(t: &Bin, out: &str) -> Vec<Value> {
     t.read(out)
         .lines()
@@ -201,7 +189,7 @@ fn answer_with_the_files_own_tokenizer_equals_the_directorys() {
     let file = common::fixture("gguf_tokenizer").join(name);
     let dir = root().join(rec["tokenizer_dir"].as_str().unwrap());
     let t = Bin::new();
-    write_set(&t, want);
+    t.write("set.jsonl", common::question_set(want));
     let common_args = ["--questions", "set.jsonl", "--max-new-tokens", "8"];
     let mut alone = vec![
         "answer",

@@ -257,3 +257,15 @@ pub fn answers_without_ms(path: &Path) -> Vec<Value> {
         })
         .collect()
 }
+
+/// A question set (JSONL) asking the `question` of each recorded answer in turn, with ids q0,
+/// q1, ... and a placeholder reference: for comparing answers with recorded ones.
+pub fn question_set(recorded: &[Value]) -> String {
+    let mut set = String::new();
+    for (i, a) in recorded.iter().enumerate() {
+        let row = serde_json::json!({"id": format!("q{i}"), "question": a["question"], "references": ["x"]});
+        set.push_str(&row.to_string());
+        set.push('\n');
+    }
+    set
+}

@@ -87,6 +87,17 @@ def quantised(w: np.ndarray, qtype: Q) -> np.ndarray:
     return gguf.quants.quantize(w.astype(np.float32), qtype)
 
 
+def tensor_type(name: str, ndim: int, linear: Q, embed: Q, head: Q | None) -> Q:
+    """The type a tensor is stored in: vectors f32, the embedding and head their own, the rest linear."""
+    if ndim == 1:
+        return Q.F32
+    if name == "model.embed_tokens.weight":
+        return embed
+    if name == "lm_head.weight":
+        return head
+    return linear
+
+
 def hf_to_gguf_name(name: str) -> str:
     table = {
         "model.embed_tokens.weight": "token_embd.weight",
@@ -173,14 +184,7 @@ def write_model(path: Path, cfg: dict, eos: int, tensors: dict, how) -> dict:
             t = permute(t, cfg["num_attention_heads"], cfg["num_attention_heads"])
         if arch == "llama" and name.endswith("k_proj.weight"):
             t = permute(t, cfg["num_attention_heads"], cfg["num_key_value_heads"])
-        if t.ndim == 1:
-            q = Q.F32
-        elif name == "model.embed_tokens.weight":
-            q = embed
-        elif name == "lm_head.weight":
-            q = head
-        else:
-            q = linear
+        q = tensor_type(name, t.ndim, linear, embed, head)
         data = quantised(t, q)
         w.add_tensor(hf_to_gguf_name(name), data, raw_dtype=q if q not in (Q.F32, Q.F16) else None)
         types[hf_to_gguf_name(name)] = q.name.lower()
@@ -348,14 +352,7 @@ def write_family(path: Path, family: str, cfg: dict, tensors: dict, linear: Q, e
         a = t.float().numpy()
         base, suffix = name.rsplit(".", 1)
         gname = f"{names.get_name(base)}.{suffix}"
-        if a.ndim == 1:
-            q = Q.F32
-        elif name == "model.embed_tokens.weight":
-            q = embed
-        elif name == "lm_head.weight":
-            q = head
-        else:
-            q = linear
+        q = tensor_type(name, a.ndim, linear, embed, head)
         w.add_tensor(gname, quantised(a, q), raw_dtype=q if q not in (Q.F32, Q.F16) else None)
         types[gname] = q.name.lower()
     w.write_header_to_file()
