@@ -868,6 +868,8 @@ pub struct RefusalDetector {
     /// speaker has framed itself ("as a support assistant, ... I'm unable to give pickup
     /// times"), where "I can't X" is about the assistant, not a rule of the service.
     framed_inability: Trie,
+    /// [`ROLE_DENIALS`]: disclaimers after a contrast word, never content.
+    role_denial: Trie,
     courtesy: HashSet<&'static str, BuildHasherDefault<FxHasher>>,
 }
 
@@ -910,6 +912,12 @@ impl Default for RefusalDetector {
                 framed_inability.insert(&p);
             }
         }
+        let mut role_denial = Trie::new();
+        for denial in ROLE_DENIALS {
+            if let Some(p) = compile_phrase(denial) {
+                role_denial.insert(&p);
+            }
+        }
         let mut describes_self = Trie::new();
         for phrase in SELF_DESCRIPTION {
             if let Some(p) = compile_phrase(phrase) {
@@ -921,6 +929,7 @@ impl Default for RefusalDetector {
             anywhere,
             describes_self,
             framed_inability,
+            role_denial,
             courtesy: COURTESY_WORDS.iter().copied().collect(),
         }
     }
@@ -1029,22 +1038,10 @@ impl RefusalDetector {
         let phrase_in_rest = (0..rest.len()).any(|k| {
             self.anywhere.match_at(rest, k).is_some()
                 || self.opening.match_at(rest, k).is_some()
-                || ROLE_DENIALS.iter().any(|d| starts_with_words(rest, k, d))
+                || self.role_denial.match_at(rest, k).is_some()
         });
         !phrase_in_rest
     }
-}
-
-/// Whether the words of `phrase` (plain words, already normalised) start at `k` in `toks`.
-fn starts_with_words(toks: &[Tok], k: usize, phrase: &str) -> bool {
-    let mut i = k;
-    for p in phrase.split(' ') {
-        match toks.get(i) {
-            Some(Tok::Word(w)) if w == p => i += 1,
-            _ => return false,
-        }
-    }
-    true
 }
 
 /// A word that links a clause to an opening phrase ("..., so I can't advise on that").
