@@ -124,10 +124,15 @@ pub fn score_facts<S: AsRef<str>>(
         .fold(0.0, f64::max);
     let known: BTreeSet<&Fact> = refs.iter().flatten().collect();
     let kinds: BTreeSet<Kind> = known.iter().map(|f| f.kind).collect();
-    let asked = extract(question);
-    let contradiction = stated
+    let mut unknown = stated
         .iter()
-        .any(|f| kinds.contains(&f.kind) && !known.contains(f) && !asked.contains(f));
+        .filter(|f| kinds.contains(&f.kind) && !known.contains(f))
+        .peekable();
+    // The question's own facts only matter when the answer states an unknown one.
+    let contradiction = unknown.peek().is_some() && {
+        let asked = extract(question);
+        unknown.any(|f| !asked.contains(f))
+    };
     Some(FactScores {
         recall,
         contradiction,
@@ -154,11 +159,18 @@ pub fn extract(text: &str) -> BTreeSet<Fact> {
 
 /// Lower-case, with "a.m."/"p.m." written "am"/"pm" and curly apostrophes straightened.
 fn normalise(text: &str) -> String {
-    text.to_lowercase()
-        .replace(['\u{2019}', '\u{2018}'], "'")
-        .replace("a.m.", "am")
-        .replace("p.m.", "pm")
-        .replace('\u{2013}', "-")
+    let mut s = text.to_lowercase();
+    // Each replacement only when it applies: most texts need none, and `replace` always copies.
+    if s.contains(['\u{2019}', '\u{2018}']) {
+        s = s.replace(['\u{2019}', '\u{2018}'], "'");
+    }
+    if s.contains(".m.") {
+        s = s.replace("a.m.", "am").replace("p.m.", "pm");
+    }
+    if s.contains('\u{2013}') {
+        s = s.replace('\u{2013}', "-");
+    }
+    s
 }
 
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -178,7 +190,7 @@ struct Token<'a> {
 
 fn tokenize(text: &str) -> Vec<Token<'_>> {
     let b = text.as_bytes();
-    let mut out = Vec::new();
+    let mut out = Vec::with_capacity(text.len() / 4 + 4);
     let mut i = 0;
     let mut spaced = true;
     while i < text.len() {
