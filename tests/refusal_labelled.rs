@@ -42,7 +42,9 @@
 //!   the demo questions under a prompt listing the topics, and with the out-of-scope questions
 //!   of the three invented sets under a website-assistant prompt; labelled by hand and
 //!   committed before the detector was run on it, then measured once: precision 0.841
-//!   (37/44), recall 0.902 (37/41), the latest out-of-sample figure.
+//!   (37/44), recall 0.902 (37/41), the latest out-of-sample figure. Its misses led to a
+//!   small widening (an offer of help leads in like a self-description; "suggest" and
+//!   "recommend" redirect only with a redirecting verb); in-sample since.
 //!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
@@ -182,10 +184,12 @@ fn real_output_held_out_3() {
 #[test]
 fn real_output_held_out_4() {
     // Measured once, before any change written on it: precision 0.841 (37/44), recall 0.902
-    // (37/41). Wrongly flagged: declines followed by an offer of the very thing asked, a decline
-    // followed by an answer after all, a framed rule of the service, and "I'm not here to ..."
-    // in answers that decline nothing; missed: role denials and a limit without a self-frame.
-    at_least(&measure("refusal_real_heldout4.jsonl"), 449, 0.84, 0.90);
+    // (37/41). After the widening written on it (offers of help as lead-in; "suggest" and
+    // "recommend" no redirect by themselves), in-sample: 0.864 (38/44), 0.927 (38/41). Still
+    // wrongly flagged: declines followed by an offer of the very thing asked, a framed rule of
+    // the service, and "I'm not here to ..." in answers that decline nothing; missed: role
+    // denials, and a limit after a sentence of nonsense.
+    at_least(&measure("refusal_real_heldout4.jsonl"), 449, 0.86, 0.92);
 }
 
 /// The shares the report shows for the real base model on the demo questions (the development
