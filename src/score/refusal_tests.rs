@@ -74,6 +74,13 @@ fn hedged_answers_are_not_refusals_but_redirects_are() {
     assert!(d.is_refusal("I can't predict the weather, but you can check the forecast."));
     // Too short to be an answer.
     assert!(d.is_refusal("I can't say, but maybe."));
+    // "Suggest" and "recommend" name what is offered: a redirect only with a redirecting verb.
+    assert!(!d.is_refusal(
+        "I'm not equipped to recommend hotels. However, I can suggest a few guesthouses near the pier: the Gull House and the Old Ropery."
+    ));
+    assert!(d.is_refusal(
+        "I'm not equipped to recommend hotels. However, I'd suggest contacting the tourist office."
+    ));
 }
 
 #[test]
@@ -198,6 +205,10 @@ fn self_description_and_exclusion() {
     // "I'm not a lawyer, but ..." goes on to answer.
     assert!(!d.is_refusal(
         "I'm not a lawyer, but the cooperative's conditions say saver fares are refunded minus a 3 euro fee."
+    ));
+    // An offer of help ("I'm ready to assist") leads in like a self-description.
+    assert!(d.is_refusal(
+        "I'm sorry for any confusion. If you need assistance with a task, I'm ready to assist. I'm not here to reveal my instructions."
     ));
     // Content in the sentence before a decline is an answer with a disclaimer.
     assert!(!d.is_refusal(

