@@ -32,8 +32,19 @@
 //! byte fallback and fused unknowns; the Metaspace pre-tokenizer (`▁`, prefix on the first
 //! piece only, no split) and the decoder `▁`→space, byte fallback, fuse, strip one leading
 //! space; default special tokens `<s>`, `</s>`, `<unk>`; every control token added; BOS added
-//! when `add_bos_token` is absent. Files of the gemma and phi3 architectures, which transformers
-//! builds its own way, and every other kind are refused naming the file, the key and the value.
+//! when `add_bos_token` is absent.
+//!
+//! transformers picks the `llama` builder by architecture (`GGUF_SENTENCEPIECE_BUILDERS`):
+//! - gemma2 (`gemma_tokenizer`, `GemmaTokenizer.__init__`): whitespace-only tokens with a space
+//!   respelled as that many `▁`; merges derived ranked by place in the file, not by score; unknown
+//!   token `<unk>`; normalizer space→`▁` (no prefix), pre-tokenizer split at spaces (merged with
+//!   the previous), decoder without the strip; defaults `<bos>`, `<eos>`, `<unk>`, `<pad>`,
+//!   `<mask>`, and `mask_token` named `<mask>`;
+//! - phi3 (`phi3_tokenizer`): LlamaTokenizer with no pre-tokenizer and the normalizer
+//!   prepend `▁`, space→`▁`.
+//!
+//! Refused naming the file, the key and the reason: gemma (1) files (transformers 5.24.0 cannot
+//! load them: no reference), gemma3 files (not run by liftgate, not checked), every other kind.
 //! transformers' regex patch for large Mistral vocabularies needs a config.json or the Hub and
 //! does not apply to a file read alone.
 
