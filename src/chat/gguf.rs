@@ -32,11 +32,23 @@
 //! byte fallback and fused unknowns; the Metaspace pre-tokenizer (`▁`, prefix on the first
 //! piece only, no split) and the decoder `▁`→space, byte fallback, fuse, strip one leading
 //! space; default special tokens `<s>`, `</s>`, `<unk>`; every control token added; BOS added
-//! when `add_bos_token` is absent. Files of the gemma and phi3 architectures, which transformers
-//! builds its own way, and every other kind are refused naming the file, the key and the value.
+//! when `add_bos_token` is absent.
+//!
+//! transformers picks the `llama` builder by architecture (`GGUF_SENTENCEPIECE_BUILDERS`):
+//! - gemma2 (`gemma_tokenizer`, `GemmaTokenizer.__init__`): whitespace-only tokens with a space
+//!   respelled as that many `▁`; merges derived ranked by place in the file, not by score; unknown
+//!   token `<unk>`; normalizer space→`▁` (no prefix), pre-tokenizer split at spaces (merged with
+//!   the previous), decoder without the strip; defaults `<bos>`, `<eos>`, `<unk>`, `<pad>`,
+//!   `<mask>`, and `mask_token` named `<mask>`;
+//! - phi3 (`phi3_tokenizer`): LlamaTokenizer with no pre-tokenizer and the normalizer
+//!   prepend `▁`, space→`▁`.
+//!
+//! Refused naming the file, the key and the reason: gemma (1) files (transformers 5.24.0 cannot
+//! load them: no reference), gemma3 files (not run by liftgate, not checked), every other kind.
 //! transformers' regex patch for large Mistral vocabularies needs a config.json or the Hub and
 //! does not apply to a file read alone.
 
+use super::pyfmt::is_py_space;
 use super::{collect_special_tokens, ChatTokenizer, LoadedTemplate, TemplateOrigin};
 use crate::error::{Error, Result};
 use candle_core::quantized::gguf_file::Value;
@@ -51,12 +63,15 @@ use tokenizers::decoders::sequence::Sequence as DecoderSequence;
 use tokenizers::decoders::strip::Strip;
 use tokenizers::decoders::DecoderWrapper;
 use tokenizers::models::bpe::{Vocab, BPE};
+use tokenizers::normalizers::prepend::Prepend;
 use tokenizers::normalizers::replace::Replace;
+use tokenizers::normalizers::utils::Sequence as NormalizerSequence;
 use tokenizers::pre_tokenizers::byte_level::ByteLevel;
 use tokenizers::pre_tokenizers::metaspace::{Metaspace, PrependScheme};
 use tokenizers::pre_tokenizers::sequence::Sequence;
 use tokenizers::pre_tokenizers::split::{Split, SplitPattern};
 use tokenizers::processors::template::TemplateProcessing;
+use tokenizers::NormalizerWrapper;
 use tokenizers::{AddedToken, PreTokenizerWrapper, SplitDelimiterBehavior, Tokenizer};
 
 use super::template;
@@ -72,6 +87,26 @@ const USER_DEFINED: i64 = 4;
 const GPT2_DEFAULT_SPECIAL: &str = "<|endoftext|>";
 /// `LlamaTokenizer.__init__`'s defaults, in transformers' order (bos, eos, unk).
 const LLAMA_DEFAULT_SPECIALS: [&str; 3] = ["<s>", "</s>", "<unk>"];
+
+/// `GemmaTokenizer.__init__`'s defaults, in transformers' order (bos, eos, unk, pad, mask),
+/// and its unknown token, which its BPE model also names.
+const GEMMA_DEFAULT_SPECIALS: [&str; 5] = ["<bos>", "<eos>", "<unk>", "<pad>", "<mask>"];
+const GEMMA_UNK: &str = "<unk>";
+const GEMMA_MASK: &str = "<mask>";
+
+/// The tokenizer a file describes: `tokenizer.ggml.model`, and for `llama` the architecture
+/// transformers picks a builder by (`GGUF_SENTENCEPIECE_BUILDERS`).
+#[derive(Clone, Copy, PartialEq, Eq, Debug)]
+enum Kind {
+    /// `gpt2`: `byte_level_tokenizer`, GPT2Tokenizer.
+    ByteLevel,
+    /// `llama`: `sentencepiece_tokenizer`, LlamaTokenizer.
+    Llama,
+    /// `llama` in a gemma2 file: `gemma_tokenizer`, GemmaTokenizer.
+    Gemma,
+    /// `llama` in a phi3 file: `phi3_tokenizer`, LlamaTokenizer with a normalizer for the prefix.
+    Phi3,
+}
 
 /// Llama 3's expression (`_LLAMA3_SPLIT`).
 const LLAMA3_SPLIT: &str = r"(?i:'s|'t|'re|'ve|'m|'ll|'d)|[^\r\n\p{L}\p{N}]?\p{L}+|\p{N}{1,3}| ?[^\s\p{L}\p{N}]+[\r\n]*|\s*[\r\n]+|\s+(?!\S)|\s+";
@@ -245,17 +280,27 @@ pub fn load<'a>(path: &'a Path, get: impl Fn(&str) -> Option<&'a Value>) -> Resu
             ))
         }
     };
-    let byte_level = match kind {
-        "gpt2" => true,
+    let kind = match kind {
+        "gpt2" => Kind::ByteLevel,
         "llama" => {
             let arch = meta.string("general.architecture")?.unwrap_or_default();
-            if matches!(arch, "gemma" | "gemma2" | "gemma3" | "phi3") {
-                return Err(meta.bad(
-                    MODEL_KEY,
-                    format!("`llama` with architecture `{arch}` (transformers builds it its own way) is not supported yet; give the model directory the export was made from for its tokenizer"),
-                ));
+            match arch {
+                "gemma2" => Kind::Gemma,
+                "phi3" => Kind::Phi3,
+                "gemma" => {
+                    return Err(meta.bad(
+                        MODEL_KEY,
+                        "`llama` with architecture `gemma` is not supported: transformers 5.24.0 cannot load a gemma (1) GGUF file (\"GGUF model with architecture gemma is not supported yet\"), so there is no reference to build its tokenizer to; give the model directory the export was made from for its tokenizer",
+                    ))
+                }
+                "gemma3" => {
+                    return Err(meta.bad(
+                        MODEL_KEY,
+                        "`llama` with architecture `gemma3` is not supported: liftgate does not run gemma3 models, and their stored tokenizer is not checked against transformers; give the model directory the export was made from for its tokenizer",
+                    ))
+                }
+                _ => Kind::Llama,
             }
-            false
         }
         other => {
             return Err(meta.bad(
@@ -264,6 +309,7 @@ pub fn load<'a>(path: &'a Path, get: impl Fn(&str) -> Option<&'a Value>) -> Resu
             ))
         }
     };
+    let byte_level = kind == Kind::ByteLevel;
     let tokens_key = "tokenizer.ggml.tokens";
     let tokens = meta
         .strings(tokens_key)?
@@ -278,13 +324,20 @@ pub fn load<'a>(path: &'a Path, get: impl Fn(&str) -> Option<&'a Value>) -> Resu
     let alphabet: HashSet<char> = spelling.iter().copied().collect();
     let in_alphabet = |t: &str| t.chars().all(|c| alphabet.contains(&c));
     let mut vocab = Vocab::with_capacity(tokens.len());
-    for (i, t) in tokens.iter().enumerate() {
-        let key = if !byte_level || in_alphabet(t) {
-            t.to_string()
-        } else {
-            t.bytes().map(|b| spelling[b as usize]).collect()
-        };
-        vocab.insert(key, i as u32);
+    // gemma: a token of spaces (and other whitespace, with at least one space) stored as real
+    // spaces is spelled as that many `▁`, as `GemmaTokenizer` looks it up.
+    let respelled: Vec<String> = tokens
+        .iter()
+        .map(|t| match kind {
+            Kind::ByteLevel if !in_alphabet(t) => t.bytes().map(|b| spelling[b as usize]).collect(),
+            Kind::Gemma if t.contains(' ') && t.chars().all(is_py_space) => {
+                "\u{2581}".repeat(t.chars().count())
+            }
+            _ => t.to_string(),
+        })
+        .collect();
+    for (i, key) in respelled.iter().enumerate() {
+        vocab.insert(key.clone(), i as u32);
     }
     let pairs = match (&merges, byte_level) {
         (Some(merges), _) => {
@@ -309,6 +362,13 @@ pub fn load<'a>(path: &'a Path, get: impl Fn(&str) -> Option<&'a Value>) -> Resu
                 "missing: a gpt2 (byte-level BPE) tokenizer needs its merges",
             ))
         }
+        (None, false) if kind == Kind::Gemma => {
+            // Ranked by place in the file, not by score (`gemma_tokenizer`: `vocab_scores` is
+            // `-index`).
+            let respelled: Vec<&str> = respelled.iter().map(String::as_str).collect();
+            let places: Vec<f64> = (0..respelled.len()).map(|i| -(i as f64)).collect();
+            generate_merges(&vocab, &respelled, &places)
+        }
         (None, false) => {
             let scores_key = "tokenizer.ggml.scores";
             let scores = meta.floats(scores_key)?.ok_or_else(|| {
@@ -324,38 +384,83 @@ pub fn load<'a>(path: &'a Path, get: impl Fn(&str) -> Option<&'a Value>) -> Resu
     // 2. The model, pre-tokenizer and decoder of GPT2Tokenizer (byte-level) or LlamaTokenizer
     //    (SentencePiece-style: byte fallback, Metaspace with the prefix on the first piece
     //    only, the decoder that undoes both), and the class's default special tokens.
-    let bpe = if byte_level {
-        BPE::builder()
+    let builder = match kind {
+        Kind::ByteLevel => BPE::builder()
             .continuing_subword_prefix(String::new())
             .end_of_word_suffix(String::new())
             .fuse_unk(false)
-            .byte_fallback(false)
-    } else {
-        BPE::builder().fuse_unk(true).byte_fallback(true)
-    }
-    .vocab_and_merges(vocab.clone(), pairs)
-    .build()
-    .map_err(|e| meta.bad(merges_key, format!("cannot build the BPE model: {e}")))?;
+            .byte_fallback(false),
+        Kind::Gemma => BPE::builder()
+            .fuse_unk(true)
+            .byte_fallback(true)
+            .unk_token(GEMMA_UNK.to_string()),
+        Kind::Llama | Kind::Phi3 => BPE::builder().fuse_unk(true).byte_fallback(true),
+    };
+    let bpe = builder
+        .vocab_and_merges(vocab.clone(), pairs)
+        .build()
+        .map_err(|e| meta.bad(merges_key, format!("cannot build the BPE model: {e}")))?;
     let mut tokenizer = Tokenizer::new(bpe);
-    let defaults: &[&str] = if byte_level {
-        tokenizer.with_pre_tokenizer(Some(ByteLevel::new(false, true, true)));
-        tokenizer.with_decoder(Some(ByteLevelDecoder::default()));
-        &[GPT2_DEFAULT_SPECIAL]
-    } else {
-        tokenizer.with_pre_tokenizer(Some(Metaspace::new(
-            '\u{2581}',
-            PrependScheme::First,
-            false,
-        )));
-        let replace =
-            Replace::new("\u{2581}", " ").map_err(|e| Error::internal(format!("decoder: {e}")))?;
-        tokenizer.with_decoder(Some(DecoderSequence::new(vec![
-            DecoderWrapper::Replace(replace),
+    let replace = |from: &str, to: &str| {
+        Replace::new(from, to).map_err(|e| Error::internal(format!("replace {from:?}: {e}")))
+    };
+    // `▁` back to spaces, byte pieces to bytes, joined; LlamaTokenizer (prefix space on) also
+    // strips the one space its prefix put first.
+    let spm_decoder = |strip: bool| -> Result<DecoderWrapper> {
+        let mut steps = vec![
+            DecoderWrapper::Replace(replace("\u{2581}", " ")?),
             DecoderWrapper::ByteFallback(ByteFallback::new()),
             DecoderWrapper::Fuse(Fuse::new()),
-            DecoderWrapper::Strip(Strip::new(' ', 1, 0)),
-        ])));
-        &LLAMA_DEFAULT_SPECIALS
+        ];
+        if strip {
+            steps.push(DecoderWrapper::Strip(Strip::new(' ', 1, 0)));
+        }
+        Ok(DecoderSequence::new(steps).into())
+    };
+    let defaults: &[&str] = match kind {
+        Kind::ByteLevel => {
+            tokenizer.with_pre_tokenizer(Some(ByteLevel::new(false, true, true)));
+            tokenizer.with_decoder(Some(ByteLevelDecoder::default()));
+            &[GPT2_DEFAULT_SPECIAL]
+        }
+        Kind::Llama => {
+            tokenizer.with_pre_tokenizer(Some(Metaspace::new(
+                '\u{2581}',
+                PrependScheme::First,
+                false,
+            )));
+            tokenizer.with_decoder(Some(spm_decoder(true)?));
+            &LLAMA_DEFAULT_SPECIALS
+        }
+        Kind::Phi3 => {
+            // `phi3_tokenizer`: no pre-tokenizer; the normalizer puts `▁` before every piece
+            // of text between added tokens and spells spaces as `▁`.
+            tokenizer
+                .with_normalizer(Some(NormalizerSequence::new(vec![
+                    NormalizerWrapper::Prepend(Prepend::new("\u{2581}".to_string())),
+                    NormalizerWrapper::Replace(replace(" ", "\u{2581}")?),
+                ])))
+                .map_err(|e| Error::internal(format!("phi3 normalizer: {e}")))?;
+            tokenizer.with_decoder(Some(spm_decoder(true)?));
+            &LLAMA_DEFAULT_SPECIALS
+        }
+        Kind::Gemma => {
+            // `GemmaTokenizer.__init__`: spaces spelled `▁`, no prefix; the split at spaces
+            // after it finds none and is kept for exactness.
+            tokenizer
+                .with_normalizer(Some(replace(" ", "\u{2581}")?))
+                .map_err(|e| Error::internal(format!("gemma normalizer: {e}")))?;
+            tokenizer.with_pre_tokenizer(Some(
+                Split::new(
+                    SplitPattern::String(" ".to_string()),
+                    SplitDelimiterBehavior::MergedWithPrevious,
+                    false,
+                )
+                .map_err(|e| Error::internal(format!("gemma split: {e}")))?,
+            ));
+            tokenizer.with_decoder(Some(spm_decoder(false)?));
+            &GEMMA_DEFAULT_SPECIALS
+        }
     };
     let checked = |r: tokenizers::Result<usize>| {
         r.map_err(|e| Error::file(path, format!("cannot add the special tokens: {e}")))
@@ -419,6 +524,13 @@ pub fn load<'a>(path: &'a Path, get: impl Fn(&str) -> Option<&'a Value>) -> Resu
         if let Some(i) = meta.index(key, n)? {
             named.push((name.to_string(), Json::String(tokens[i].to_string())));
         }
+    }
+    if kind == Kind::Gemma {
+        // The outer `GemmaTokenizer`'s own default: the file names no mask token.
+        named.push((
+            "mask_token".to_string(),
+            Json::String(GEMMA_MASK.to_string()),
+        ));
     }
     let special_tokens = collect_special_tokens(&named);
     let added: HashSet<String> = tokenizer
@@ -639,6 +751,55 @@ mod tests {
         m.insert(MODEL_KEY.to_string(), text("bert"));
         let err = load(path, |k| m.get(k)).unwrap_err().to_string();
         assert!(err.contains("`bert` is not supported"), "{err}");
+        // SentencePiece-style files of the architectures transformers cannot load (gemma) or
+        // that liftgate does not check (gemma3) are refused by name with the reason.
+        m.insert(MODEL_KEY.to_string(), text("llama"));
+        for (arch, why) in [("gemma", "cannot load"), ("gemma3", "not checked")] {
+            m.insert("general.architecture".to_string(), text(arch));
+            let err = load(path, |k| m.get(k)).unwrap_err().to_string();
+            assert!(
+                err.contains(&format!("architecture `{arch}`"))
+                    && err.contains(why)
+                    && err.contains("m.gguf")
+                    && err.contains(MODEL_KEY),
+                "{err}"
+            );
+        }
+    }
+
+    #[test]
+    fn gemma_spells_runs_of_spaces_and_ranks_merges_by_place() {
+        // Expected ids: transformers 5.24.0 `gemma_tokenizer` and `sentencepiece_tokenizer`
+        // (gguf_tokenizer_mapping.py) on the same tokens and scores. gemma looks "  " up as
+        // "▁▁" and ranks the merges by place ("bc" at 4 before "ab" at 6), a plain llama file
+        // by score ("ab" at 0 before "bc" at -5) and puts `▁` before the text.
+        let toks = ["\u{2581}", "a", "b", "c", "bc", "  ", "ab", "<unk>"];
+        let scores = [0.0f32, 0.0, 0.0, 0.0, -5.0, -9.0, 0.0, 0.0];
+        let file = |arch: &str| {
+            let mut m = HashMap::new();
+            m.insert(MODEL_KEY.to_string(), text("llama"));
+            m.insert("general.architecture".to_string(), text(arch));
+            m.insert(
+                "tokenizer.ggml.tokens".to_string(),
+                Value::Array(toks.iter().map(|t| text(t)).collect()),
+            );
+            m.insert(
+                "tokenizer.ggml.scores".to_string(),
+                Value::Array(scores.iter().map(|&s| Value::F32(s)).collect()),
+            );
+            m
+        };
+        let m = file("gemma2");
+        let gemma = load(Path::new("m.gguf"), |k| m.get(k)).unwrap();
+        assert_eq!(gemma.token_id("\u{2581}\u{2581}"), Some(5));
+        assert_eq!(gemma.encode("  abc", false).unwrap(), vec![5, 1, 4]);
+        assert_eq!(gemma.decode(&[5, 1, 4]).unwrap(), "  abc");
+        assert!(gemma
+            .special_tokens()
+            .contains(&("mask_token".to_string(), "<mask>".to_string())));
+        let m = file("llama");
+        let llama = load(Path::new("m.gguf"), |k| m.get(k)).unwrap();
+        assert_eq!(llama.encode("abc", false).unwrap(), vec![0, 6, 3]);
     }
 
     #[test]

