@@ -169,10 +169,10 @@ fn a_gemma_1_file_is_refused_as_transformers_cannot_load_it() {
     assert!(why.contains("architecture gemma is not supported"), "{why}");
     let path = common::fixture("gguf_tokenizer").join(name);
     let g = GgufFile::open(&path).unwrap();
-    let err = liftgate::chat::gguf::load(&path, |k| g.meta(k))
-        .err()
-        .expect("a gemma (1) file's tokenizer is refused")
-        .to_string();
+    let Err(err) = liftgate::chat::gguf::load(&path, |k| g.meta(k)) else {
+        panic!("a gemma (1) file's tokenizer must be refused");
+    };
+    let err = err.to_string();
     for part in [name, "tokenizer.ggml.model", "`gemma`", "cannot load"] {
         assert!(err.contains(part), "{part:?} missing from: {err}");
     }
