@@ -9,13 +9,16 @@
 //! c` into a fused multiply-add), so the values are bit for bit those the reference computes
 //! on. A matrix keeps the stored codes and scales: a product dequantises the 64 rows of one
 //! panel, a piece of [`PIECE_ROWS`] inputs at a time, into a buffer that stays in the
-//! first-level cache, so batch-1 decoding reads the file's bits per weight, not 32. Panels of
-//! q8_0, q4_0, q4_1 or q4_k rows are regrouped at load (the codes of a piece side by side, input by input;
-//! see [`Panel`]) so that a piece dequantises with vector instructions, the same operations per
-//! value as [`dequantise_block`]; panels of the other types (or of several types) dequantise
-//! value by value from the stored rows. Tests: every regrouped piece equals the value-by-value
-//! path bit for bit, including extreme scales; tests/gguf_reference.rs checks the values and
-//! greedy tokens against transformers and the gguf package.
+//! first-level cache, so batch-1 decoding reads the file's bits per weight, not 32 (batch 1
+//! itself goes through `ggml_dot`, which computes the same values into registers). Panels of
+//! q8_0, q4_0, q4_1, q5_0, q5_1, q4_k, q5_k or q6_k rows are regrouped at load (the codes of a
+//! piece side by side, input by input; see [`Panel`]) so that a piece dequantises with vector
+//! instructions, the same operations per value as [`dequantise_block`] (a multiply whose
+//! product is exact and the add after it may run as one fused multiply-add, which rounds the
+//! same once: [`exact_mul_add`]); panels of q2_k, q3_k, f16, bf16, f32 or of several types
+//! dequantise value by value from the stored rows. Tests: every regrouped piece equals the
+//! value-by-value path bit for bit, including extreme scales; tests/gguf_reference.rs checks
+//! the values and greedy tokens against transformers and the gguf package.
 //!
 //! Block layouts (bytes of one block, in order; from the same file):
 //! - `q4_0` (32 values, 18 bytes): f16 d, 16 bytes of nibbles (value i < 16 the low nibble of

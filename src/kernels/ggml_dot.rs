@@ -147,8 +147,8 @@ fn regrouped_dot<const AVX512: bool>(
         odd: [0f32; PANEL],
     };
     panel.for_groups::<AVX512, _>(0, groups, &mut dot);
-    for l in 0..PANEL {
-        acc[l] = dot.even[l] + dot.odd[l];
+    for ((a, e), o) in acc.iter_mut().zip(dot.even).zip(dot.odd) {
+        *a = e + o;
     }
 }
 
@@ -176,7 +176,9 @@ mod tests {
             GgmlType::Q5K,
             GgmlType::Q6K,
         ];
-        let mut cases: Vec<(usize, Vec<(GgmlType, usize)>, bool)> = Vec::new();
+        /// Inputs, the (type, rows) parts stacked, extreme scales.
+        type Case = (usize, Vec<(GgmlType, usize)>, bool);
+        let mut cases: Vec<Case> = Vec::new();
         for t in regrouped {
             for extreme in [false, true] {
                 // 2 panels and 5 rows of tail; 512 inputs (one task), and 2048 (the pool).
