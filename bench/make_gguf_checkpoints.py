@@ -1,8 +1,8 @@
 """Writes the seeded random-init 0.5B-class model of the GGUF speed benchmark (bench/gguf.sh) in
-four forms: a checkpoint directory in f32 and one in bf16 (the same values: each is a bf16
-value), and GGUF v3 exports of it in q8_0 and q4_k.
+five forms: a checkpoint directory in f32 and one in bf16 (the same values: each is a bf16
+value), and GGUF v3 exports of it in q8_0, q4_k and a q4_k_m-like mix.
 
-    python bench/make_gguf_checkpoints.py OUT_DIR     # ~3.4 GB in all, under a minute
+    python bench/make_gguf_checkpoints.py OUT_DIR     # ~3.7 GB in all, under a minute
 
 Needs numpy and the `gguf` package (PyPI; bench/gguf.sh makes a venv with both). Shape: 0.5B-class in the
 Llama layout (no q/k/v biases): hidden 1024, 24 layers, 16 heads, 4 key/value heads,
@@ -17,8 +17,10 @@ q/k rows permuted; the conventions tests/reference/make_gguf_fixtures.py checks 
 transformers). q8_0: every matrix quantised with `gguf.quants.quantize`. q4_k: gguf 0.19 has no
 quantiser for the k-quants, so the linear layers are seeded random q4_k blocks (random codes,
 f16 scales giving weights of about the checkpoint's size), as the k-quant fixture does; the
-speed of a product does not depend on the values. The token embedding is q8_0 in both files
-(liftgate dequantises the embedding and the tied head to f32 at load).
+speed of a product does not depend on the values. q4_k_m: as q4_k, but attn_v and ffn_down
+are seeded random q6_k blocks in the layers where llama.cpp's Q4_K_M keeps them in q6_k (12 of
+24), so a product meets q6_k panels as in a real Q4_K_M export. The token embedding is q8_0 in
+every file (liftgate dequantises the embedding and the tied head to f32 at load).
 """
 
 import argparse
@@ -73,6 +75,23 @@ def q4k_blocks(rows, cols, rng):
     half = lambda base: (base * rng.uniform(0.5, 1.5, size=n)).astype(np.float16).view(np.uint8).reshape(n, 2)  # noqa: E731
     b[:, 0:2], b[:, 2:4] = half(0.06 / 945), half(0.03 / 63)
     return b.reshape(rows, cols // block * size)
+
+
+def q6k_blocks(rows, cols, rng):
+    """Seeded random q6_k blocks: random codes, 8-bit scales in -32..31, f16 d."""
+    block, size = gguf.GGML_QUANT_SIZES[Q.Q6_K]
+    n = rows * cols // block
+    b = rng.integers(0, 256, size=(n, size), dtype=np.uint8)
+    b[:, 192:208] = rng.integers(-32, 32, size=(n, 16), dtype=np.int8).view(np.uint8)
+    b[:, 208:210] = (0.02 / 32 / 16 * rng.uniform(0.5, 1.5, size=n)).astype(np.float16).view(np.uint8).reshape(n, 2)
+    return b.reshape(rows, cols // block * size)
+
+
+def more_bits(layer: int) -> bool:
+    """The layers whose attn_v and ffn_down llama.cpp's Q4_K_M keeps in q6_k (`use_more_bits` in
+    llama-quant.cpp, from memory: the first and last eighth and every third layer between)."""
+    n = S["layers"]
+    return layer < n // 8 or layer >= 7 * n // 8 or (layer - n // 8) % 3 == 2
 
 
 def write_dir(out: Path, layout, dtype: str):
@@ -134,6 +153,7 @@ def main():
     b16 = write_dir(a.out / "random-05b-bf16", layout, "BF16")
     q8 = gguf_writer(a.out / "random-05b-q8_0.gguf.tmp", eos)
     q4 = gguf_writer(a.out / "random-05b-q4_k.gguf.tmp", eos)
+    q4m = gguf_writer(a.out / "random-05b-q4_k_m.gguf.tmp", eos)
     rng, codes = np.random.default_rng(a.seed), np.random.default_rng(a.seed + 1)
     h, d = S["hidden"], S["hidden"] // S["heads"]
     for hf, name, shape in layout:
@@ -141,8 +161,8 @@ def main():
         f32.write(v.tobytes())
         b16.write((v.view(np.uint32) >> 16).astype(np.uint16).tobytes())
         if v.ndim == 1:
-            q8.add_tensor(name, v)
-            q4.add_tensor(name, v)
+            for w in (q8, q4, q4m):
+                w.add_tensor(name, v)
             continue
         if name.endswith("attn_q.weight"):
             v = permute(v, S["heads"])
@@ -152,17 +172,23 @@ def main():
         q8.add_tensor(name, q, raw_dtype=Q.Q8_0)
         if name == "token_embd.weight":
             q4.add_tensor(name, q, raw_dtype=Q.Q8_0)
+            q4m.add_tensor(name, q, raw_dtype=Q.Q8_0)
+            continue
+        q4.add_tensor(name, q4k_blocks(shape[0], shape[1], codes), raw_dtype=Q.Q4_K)
+        layer = int(name.split(".")[1])
+        if name.endswith(("attn_v.weight", "ffn_down.weight")) and more_bits(layer):
+            q4m.add_tensor(name, q6k_blocks(shape[0], shape[1], codes), raw_dtype=Q.Q6_K)
         else:
-            q4.add_tensor(name, q4k_blocks(shape[0], shape[1], codes), raw_dtype=Q.Q4_K)
+            q4m.add_tensor(name, q4k_blocks(shape[0], shape[1], codes), raw_dtype=Q.Q4_K)
     f32.close()
     b16.close()
-    for w, t in [(q8, "q8_0"), (q4, "q4_k")]:
+    for w, t in [(q8, "q8_0"), (q4, "q4_k"), (q4m, "q4_k_m")]:
         w.write_header_to_file()
         w.write_kv_data_to_file()
         w.write_tensors_to_file()
         w.close()
         (a.out / f"random-05b-{t}.gguf.tmp").rename(a.out / f"random-05b-{t}.gguf")
-    print(f"{a.out}: random-05b-{{f32,bf16}}/, random-05b-{{q8_0,q4_k}}.gguf (hidden {h}, head size {d})")
+    print(f"{a.out}: random-05b-{{f32,bf16}}/, random-05b-{{q8_0,q4_k,q4_k_m}}.gguf (hidden {h}, head size {d})")
 
 
 if __name__ == "__main__":

@@ -66,6 +66,19 @@ impl Generated {
 /// prefilled in chunks of this size, so the scratch buffers stay small.
 const STEP_TOKENS: usize = 512;
 
+/// What one forward step of the runner did: for progress, and to split the answering time into
+/// prompt prefill and decoding (a decoding step reads every weight once for one new token per
+/// sequence; a prompt step also runs prompt tokens through the same products).
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct Step {
+    /// New tokens the step produced (one per sequence whose prompt is all in the cache).
+    pub produced: usize,
+    /// Prompt tokens the step fed; 0 for a step that only decodes.
+    pub prompt_tokens: usize,
+    /// Wall-clock seconds of the step: the forward pass and the greedy pick.
+    pub secs: f64,
+}
+
 /// One sequence to generate: a prompt, answered by one model variant of the decoder
 /// ([`crate::model::decoder::Segment::variant`]).
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -106,9 +119,9 @@ fn shared_prefix_len(prompts: &[Vec<u32>], todo: &[usize]) -> usize {
 
 /// Greedy-decodes `prompts[i]` for every `i` in `todo`, `slots` sequences at a time, and hands
 /// each finished answer to `on_done(i, answer)` as soon as it is complete (so a caller can save
-/// it at once). Answers arrive in completion order, not in `todo` order. `on_step` gets the
-/// number of tokens produced by each decoding step (for progress); an error from it stops
-/// decoding after that step.
+/// it at once). Answers arrive in completion order, not in `todo` order. `on_step` gets each
+/// step's [`Step`] (tokens produced, prompt tokens fed, seconds), the computation of the shared
+/// prompt prefix included; an error from it stops decoding after that step.
 ///
 /// Continuous refill: a slot whose sequence finishes takes the next prompt of `todo` in the
 /// very next step, where its prefill runs together with the other slots' decoding. The prefix
@@ -124,7 +137,7 @@ pub fn generate_stream(
     settings: &GenerationSettings,
     slots: usize,
     on_done: &mut dyn FnMut(usize, Generated) -> Result<()>,
-    on_step: &mut dyn FnMut(usize) -> Result<()>,
+    on_step: &mut dyn FnMut(Step) -> Result<()>,
 ) -> Result<()> {
     let jobs: Vec<Job> = todo
         .iter()
@@ -152,7 +165,7 @@ pub fn generate_jobs(
     settings: &GenerationSettings,
     slots: usize,
     on_done: &mut dyn FnMut(Job, Generated) -> Result<()>,
-    on_step: &mut dyn FnMut(usize) -> Result<()>,
+    on_step: &mut dyn FnMut(Step) -> Result<()>,
 ) -> Result<()> {
     if slots == 0 {
         return Err(Error::internal("generate_stream needs at least one slot"));
@@ -203,9 +216,15 @@ pub fn generate_jobs(
                 tokens: &prompts[todo[0].prompt][..prefix],
                 variant,
             }];
+            let started = std::time::Instant::now();
             decoder.forward(&seg, &mut cache, &mut ws)?;
             cache.save_prefix(0, variant);
             cache.reset(0);
+            on_step(Step {
+                produced: 0,
+                prompt_tokens: prefix,
+                secs: started.elapsed().as_secs_f64(),
+            })?;
         }
     }
     let vocab = decoder.spec().vocab_size;
@@ -280,9 +299,21 @@ pub fn generate_jobs(
             })
             .collect();
         let penalty = settings.repetition_penalty.map(|p| (p, seen.as_slice()));
+        // A sequence with no new token yet is still feeding its prompt.
+        let prompt_tokens: usize = takes
+            .iter()
+            .filter(|&&(slot, _)| {
+                active[slot]
+                    .as_ref()
+                    .is_some_and(|a| a.out.tokens.is_empty())
+            })
+            .map(|&(_, take)| take)
+            .sum();
+        let started = std::time::Instant::now();
         // One step runs on a worker of the thread pool, so its many parallel loops start from
         // inside the pool instead of each waking the calling thread when it ends.
         let tokens = rayon::scope(|_| decoder.next_tokens(&segs, &mut cache, &mut ws, penalty))?;
+        let secs = started.elapsed().as_secs_f64();
         drop(segs);
         let mut produced = 0;
         for (k, &(slot, take)) in takes.iter().enumerate() {
@@ -319,7 +350,11 @@ pub fn generate_jobs(
                 }
             }
         }
-        on_step(produced)?;
+        on_step(Step {
+            produced,
+            prompt_tokens,
+            secs,
+        })?;
     }
     Ok(())
 }
@@ -330,7 +365,7 @@ pub fn generate_batch(
     decoder: &Decoder,
     prompts: &[Vec<u32>],
     settings: &GenerationSettings,
-    on_step: &mut dyn FnMut(usize) -> Result<()>,
+    on_step: &mut dyn FnMut(Step) -> Result<()>,
 ) -> Result<Vec<Generated>> {
     let todo: Vec<usize> = (0..prompts.len()).collect();
     let mut out: Vec<Option<Generated>> = vec![None; prompts.len()];

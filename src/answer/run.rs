@@ -408,6 +408,8 @@ pub fn answer_group(
     bar.set_position(saved.get() as u64);
     let started = Instant::now();
     let mut new_tokens_total = 0usize;
+    // Steps that fed prompt tokens, and steps that only decoded (one new token per sequence).
+    let (mut prompt, mut decoding) = (StepTotals::default(), StepTotals::default());
     let result = if todo.is_empty() {
         Ok(())
     } else {
@@ -429,8 +431,13 @@ pub fn answer_group(
                 bar.inc(1);
                 stop.check(|| saved_note(saved.get()))
             },
-            &mut |k| {
-                new_tokens_total += k;
+            &mut |step| {
+                new_tokens_total += step.produced;
+                if step.prompt_tokens > 0 {
+                    prompt.add(step);
+                } else {
+                    decoding.add(step);
+                }
                 let secs = started.elapsed().as_secs_f64().max(1e-9);
                 bar.set_message(format!("{:.1} tokens/s", new_tokens_total as f64 / secs));
                 // A stop request ends decoding after this step; answers in flight are
@@ -446,6 +453,17 @@ pub fn answer_group(
         "answered {} questions: {new_tokens_total} new tokens in {secs:.3} s ({:.1} tokens/s)",
         todo.len(),
         new_tokens_total as f64 / secs.max(1e-9)
+    );
+    eprintln!(
+        "answering time: prompt steps {:.3} s ({} steps, {} prompt tokens, {} new tokens), decoding steps {:.3} s ({} steps, {} new tokens, {:.1} tokens/s)",
+        prompt.secs,
+        prompt.steps,
+        prompt.prompt_tokens,
+        prompt.produced,
+        decoding.secs,
+        decoding.steps,
+        decoding.produced,
+        decoding.produced as f64 / decoding.secs.max(1e-9)
     );
 
     let mut runs = Vec::with_capacity(members.len());
@@ -470,6 +488,24 @@ pub fn answer_group(
         runs.push(run);
     }
     Ok(runs)
+}
+
+/// The steps of one kind added up: how many, their seconds, what they fed and produced.
+#[derive(Debug, Default)]
+struct StepTotals {
+    steps: usize,
+    secs: f64,
+    prompt_tokens: usize,
+    produced: usize,
+}
+
+impl StepTotals {
+    fn add(&mut self, s: generate::Step) {
+        self.steps += 1;
+        self.secs += s.secs;
+        self.prompt_tokens += s.prompt_tokens;
+        self.produced += s.produced;
+    }
 }
 
 /// Refuses to continue a journal written by a different run, naming every field that differs.

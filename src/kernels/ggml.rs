@@ -9,13 +9,16 @@
 //! c` into a fused multiply-add), so the values are bit for bit those the reference computes
 //! on. A matrix keeps the stored codes and scales: a product dequantises the 64 rows of one
 //! panel, a piece of [`PIECE_ROWS`] inputs at a time, into a buffer that stays in the
-//! first-level cache, so batch-1 decoding reads the file's bits per weight, not 32. Panels of
-//! q8_0, q4_0, q4_1 or q4_k rows are regrouped at load (the codes of a piece side by side, input by input;
-//! see [`Panel`]) so that a piece dequantises with vector instructions, the same operations per
-//! value as [`dequantise_block`]; panels of the other types (or of several types) dequantise
-//! value by value from the stored rows. Tests: every regrouped piece equals the value-by-value
-//! path bit for bit, including extreme scales; tests/gguf_reference.rs checks the values and
-//! greedy tokens against transformers and the gguf package.
+//! first-level cache, so batch-1 decoding reads the file's bits per weight, not 32 (batch 1
+//! itself goes through `ggml_dot`, which computes the same values into registers). Panels of
+//! q8_0, q4_0, q4_1, q5_0, q5_1, q4_k, q5_k or q6_k rows are regrouped at load (the codes of a
+//! piece side by side, input by input; see [`Panel`]) so that a piece dequantises with vector
+//! instructions, the same operations per value as [`dequantise_block`] (a multiply whose
+//! product is exact and the add after it may run as one fused multiply-add, which rounds the
+//! same once: [`exact_mul_add`]); panels of q2_k, q3_k, f16, bf16, f32 or of several types
+//! dequantise value by value from the stored rows. Tests: every regrouped piece equals the
+//! value-by-value path bit for bit, including extreme scales; tests/gguf_reference.rs checks
+//! the values and greedy tokens against transformers and the gguf package.
 //!
 //! Block layouts (bytes of one block, in order; from the same file):
 //! - `q4_0` (32 values, 18 bytes): f16 d, 16 bytes of nibbles (value i < 16 the low nibble of
@@ -35,7 +38,7 @@
 //!   w = (d · sc) · (q − 32).
 //! - `f32`, `f16`, `bf16`: one value each, widened exactly.
 
-use super::dense::{with_panel_buffer, Panels, PANEL};
+use super::dense::{with_panel_buffer, Panels, PANEL, PIECE_ROWS};
 #[cfg(target_arch = "x86_64")]
 use super::simd::features;
 use half::f16;
@@ -316,38 +319,69 @@ type Row = (GgmlType, Vec<u8>);
 
 /// The 64 output rows of one panel, held as the products read them.
 ///
-/// A panel whose rows are all q8_0, all q4_0, all q4_1 or all q4_k is regrouped at load so
-/// that a piece of the panel (32 inputs: one block, or one q4_k sub-block, of each row) lies
-/// in one place, its
-/// codes ordered input by input with the 64 rows side by side: dequantising it is then the same
-/// few operations on every lane, which the compiler turns into vector code. The values are
-/// unchanged (the same codes, the same f16 scales and 6-bit scales, the same operations per
-/// value as [`dequantise_block`]), and so are the bytes per weight, give or take the q4_k
-/// sub-block scales (a byte each instead of 6 bits: 4.625 bits per weight instead of 4.5).
-/// Other panels keep their rows as stored and dequantise them value by value.
-enum Panel {
+/// A panel whose rows are all of one type among q8_0, q4_0, q4_1, q5_0, q5_1, q4_k, q5_k and
+/// q6_k is regrouped at load so that a piece of the panel (32 inputs: one block, or one k-quant
+/// sub-block, of each row) lies in one place, its codes ordered input by input with the 64 rows
+/// side by side: dequantising it is then the same few operations on every lane, which the
+/// compiler turns into vector code. The values are unchanged (the same codes, the same f16
+/// scales and 6-bit or 8-bit scales, the same operations per value as [`dequantise_block`]),
+/// and so are the bytes per weight, give or take the q4_k/q5_k sub-block scales (a byte each
+/// instead of 6 bits: 4.625 bits per weight instead of 4.5 for q4_k). Other panels (q2_k,
+/// q3_k, f16, bf16, f32 rows, or rows of several types) keep their rows as stored and
+/// dequantise them value by value.
+///
+/// The codes are packed so that one input's codes of the 64 rows take whole bytes or words:
+/// 4-bit codes as 32 bytes (row i in the low nibble and row 32 + i in the high nibble of byte
+/// i), a fifth bit as one u64 (bit r for row r), q6_k's top two bits as four u32 (row 16j + i
+/// at bits 2i..2i + 2 of word j).
+pub(super) enum Panel {
     /// All rows q8_0. `d`: [group][64] the f16 scale of each row's block of group g (inputs
     /// 32g..32g + 32); `q`: [group][k][64] the codes.
     Q8 { d: Vec<f16>, q: Vec<i8> },
-    /// All rows q4_k. `dm`: [super-block][2][64] each row's f16 d, then dmin; `sm`: [group][2][64]
-    /// each row's 6-bit scale, then min, of group g's sub-block; `q`: [group][k][32] the
-    /// codes, row i in the low nibble and row 32 + i in the high nibble of byte i.
+    /// All rows q4_k (`five` empty) or q5_k. `dm`: [super-block][2][64] each row's f16 d, then
+    /// dmin; `sm`: [group][2][64] each row's 6-bit scale, then min, of group g's sub-block; `q`:
+    /// [group][k][32] the low four bits of the codes; `five`: [group][k] their fifth bits.
     Q4K {
         dm: Vec<f16>,
         sm: Vec<u8>,
         q: Vec<u8>,
+        five: Vec<u64>,
     },
-    /// All rows q4_0 (`min` false) or q4_1 (`min` true). `dm`: [group][64] each row's f16 d,
-    /// then with `min` [group][64] its f16 m (as [group][2][64]); `q`: [group][k][32] the
-    /// codes as in `Q4K`.
-    Q4 { dm: Vec<f16>, q: Vec<u8>, min: bool },
+    /// All rows q4_0 (`min` false) or q4_1 (`min` true), or with `five` q5_0 or q5_1.
+    /// `dm`: [group][64] each row's f16 d, then with `min` [group][64] its f16 m (as
+    /// [group][2][64]); `q`: [group][k][32] the low four bits of the codes as in `Q4K`; `five`:
+    /// [group][k] their fifth bits (empty for q4_0 and q4_1).
+    Q4 {
+        dm: Vec<f16>,
+        q: Vec<u8>,
+        min: bool,
+        five: Vec<u64>,
+    },
+    /// All rows q6_k. `d`: [super-block][64] each row's f16 d; `sc`: [group][2][64] each row's
+    /// 8-bit scales of the group's inputs 0..16 and 16..32; `q`: [group][k][32] the low four
+    /// bits of the codes as in `Q4K`; `hi`: [group][k][4] their top two bits.
+    Q6K {
+        d: Vec<f16>,
+        sc: Vec<i8>,
+        q: Vec<u8>,
+        hi: Vec<u32>,
+    },
     /// Rows as stored (several types, the types without a regrouped form).
     Rows(Vec<Row>),
 }
 
-/// Inputs per group of a regrouped panel: one q8_0/q4_0/q4_1 block, one q4_k sub-block, one
-/// piece.
-const GROUP: usize = 32;
+/// Inputs per group of a regrouped panel: one q8_0/q4_0/q4_1/q5_0/q5_1 block, one k-quant
+/// sub-block of 32 (two q6_k sub-blocks of 16), one piece.
+pub(super) const GROUP: usize = 32;
+
+/// The 4-bit and 5-bit block types with one f16 scale (and an f16 min) per 32 values:
+/// (type, min, fifth bit, byte of the nibbles, byte of the fifth bits).
+const SMALL_BLOCKS: [(GgmlType, bool, bool, usize, usize); 4] = [
+    (GgmlType::Q4_0, false, false, 2, 0),
+    (GgmlType::Q4_1, true, false, 4, 0),
+    (GgmlType::Q5_0, false, true, 6, 2),
+    (GgmlType::Q5_1, true, true, 8, 4),
+];
 
 impl Panel {
     /// The panel of 64 rows, regrouped when they are all of one type that has a regrouped form.
@@ -355,6 +389,10 @@ impl Panel {
         debug_assert_eq!(rows.len(), PANEL);
         let groups = inp / GROUP;
         let all = |t| rows.iter().all(|r| r.0 == t);
+        // Sets row l's 4-bit code c of input k (of all groups) in a [k][32] nibble array.
+        let put_nibble = |q: &mut [u8], k: usize, l: usize, c: u8| {
+            q[k * 32 + l % 32] |= (c & 0x0F) << (4 * (l / 32));
+        };
         if all(GgmlType::Q8_0) {
             let mut d = vec![f16::ZERO; groups * PANEL];
             let mut q = vec![0i8; groups * GROUP * PANEL];
@@ -368,14 +406,19 @@ impl Panel {
             }
             return Panel::Q8 { d, q };
         }
-        if all(GgmlType::Q4K) {
+        for (t, size) in [(GgmlType::Q4K, 144), (GgmlType::Q5K, 176)] {
+            if !all(t) {
+                continue;
+            }
+            let five_bits = t == GgmlType::Q5K;
+            let nibbles = if five_bits { 48 } else { 16 };
             let supers = inp / QK_K;
             let mut dm = vec![f16::ZERO; supers * 2 * PANEL];
             let mut sm = vec![0u8; groups * 2 * PANEL];
             let mut q = vec![0u8; groups * GROUP * PANEL / 2];
+            let mut five = vec![0u64; if five_bits { groups * GROUP } else { 0 }];
             for (l, (_, b)) in rows.iter().enumerate() {
-                let (lane, shift) = (l % 32, 4 * (l / 32));
-                for (s, blk) in b.chunks_exact(144).enumerate() {
+                for (s, blk) in b.chunks_exact(size).enumerate() {
                     dm[2 * s * PANEL + l] = f16::from_bits(u16::from_le_bytes([blk[0], blk[1]]));
                     dm[(2 * s + 1) * PANEL + l] =
                         f16::from_bits(u16::from_le_bytes([blk[2], blk[3]]));
@@ -385,119 +428,427 @@ impl Panel {
                         sm[2 * g * PANEL + l] = sc;
                         sm[(2 * g + 1) * PANEL + l] = m;
                         for k in 0..GROUP {
-                            let c = (blk[16 + (j / 2) * 32 + k] >> (4 * (j % 2))) & 0x0F;
-                            q[(g * GROUP + k) * 32 + lane] |= c << shift;
+                            let c = blk[nibbles + (j / 2) * 32 + k] >> (4 * (j % 2));
+                            put_nibble(&mut q, g * GROUP + k, l, c);
+                            if five_bits {
+                                let h = (blk[16 + k] >> j) & 1;
+                                five[g * GROUP + k] |= (h as u64) << l;
+                            }
                         }
                     }
                 }
             }
-            return Panel::Q4K { dm, sm, q };
+            return Panel::Q4K { dm, sm, q, five };
         }
-        for (t, min) in [(GgmlType::Q4_0, false), (GgmlType::Q4_1, true)] {
+        for (t, min, five_bits, at, high_at) in SMALL_BLOCKS {
             if !all(t) {
                 continue;
             }
-            let (size, at, per) = (t.block().1, if min { 4 } else { 2 }, 1 + min as usize);
+            let (size, per) = (t.block().1, 1 + min as usize);
             let mut dm = vec![f16::ZERO; groups * per * PANEL];
             let mut q = vec![0u8; groups * GROUP * PANEL / 2];
+            let mut five = vec![0u64; if five_bits { groups * GROUP } else { 0 }];
             for (l, (_, b)) in rows.iter().enumerate() {
-                let (lane, shift) = (l % 32, 4 * (l / 32));
                 for (g, blk) in b.chunks_exact(size).enumerate() {
                     for h in 0..per {
                         dm[(per * g + h) * PANEL + l] =
                             f16::from_bits(u16::from_le_bytes([blk[2 * h], blk[2 * h + 1]]));
                     }
+                    let qh = if five_bits {
+                        u32::from_le_bytes([
+                            blk[high_at],
+                            blk[high_at + 1],
+                            blk[high_at + 2],
+                            blk[high_at + 3],
+                        ])
+                    } else {
+                        0
+                    };
                     for k in 0..GROUP {
-                        let c = (blk[at + k % 16] >> (4 * (k / 16))) & 0x0F;
-                        q[(g * GROUP + k) * 32 + lane] |= c << shift;
+                        let c = blk[at + k % 16] >> (4 * (k / 16));
+                        put_nibble(&mut q, g * GROUP + k, l, c);
+                        if five_bits {
+                            five[g * GROUP + k] |= (((qh >> k) & 1) as u64) << l;
+                        }
                     }
                 }
             }
-            return Panel::Q4 { dm, q, min };
+            return Panel::Q4 { dm, q, min, five };
+        }
+        if all(GgmlType::Q6K) {
+            let supers = inp / QK_K;
+            let mut d = vec![f16::ZERO; supers * PANEL];
+            let mut sc = vec![0i8; groups * 2 * PANEL];
+            let mut q = vec![0u8; groups * GROUP * PANEL / 2];
+            let mut hi = vec![0u32; groups * GROUP * 4];
+            for (l, (_, b)) in rows.iter().enumerate() {
+                for (s, blk) in b.chunks_exact(210).enumerate() {
+                    let (ql, qh, scales) = (&blk[0..128], &blk[128..192], &blk[192..208]);
+                    d[s * PANEL + l] = f16::from_bits(u16::from_le_bytes([blk[208], blk[209]]));
+                    for (h, &v) in scales.iter().enumerate() {
+                        // Sub-block h of 16 values: group s·8 + h/2, its half h % 2.
+                        sc[(2 * (s * 8 + h / 2) + h % 2) * PANEL + l] = v as i8;
+                    }
+                    for i in 0..QK_K {
+                        // The indices of `dequantise_block`'s q6_k arm.
+                        let (h, r) = (i / 128, i % 128);
+                        let lo = ql[h * 64 + r % 64] >> (4 * (r / 64));
+                        let top = (qh[h * 32 + r % 32] >> (2 * (r / 32))) & 0x03;
+                        let k = s * QK_K + i;
+                        put_nibble(&mut q, k, l, lo);
+                        hi[k * 4 + l / 16] |= (top as u32) << (2 * (l % 16));
+                    }
+                }
+            }
+            return Panel::Q6K { d, sc, q, hi };
         }
         Panel::Rows(rows)
+    }
+
+    /// Asks the CPU to bring the stored bytes of group `g` (inputs 32g..32g + 32) towards the
+    /// first-level cache, so they are on their way while the product works on earlier groups:
+    /// one thread's reads of memory then overlap its arithmetic. A hint only (nothing is read
+    /// or written; a group past the end is skipped).
+    #[inline(always)]
+    pub(super) fn prefetch_group(&self, g: usize) {
+        #[inline(always)]
+        fn lines<T>(v: &[T], at: usize, len: usize) {
+            let Some(part) = v.get(at..(at + len).min(v.len())) else {
+                return;
+            };
+            let bytes = std::mem::size_of_val(part);
+            let base = part.as_ptr() as *const i8;
+            for off in (0..bytes).step_by(64) {
+                // SAFETY: `base + off` lies inside `part`; a prefetch reads nothing anyway.
+                #[cfg(target_arch = "x86_64")]
+                unsafe {
+                    use std::arch::x86_64::{_mm_prefetch, _MM_HINT_T0};
+                    _mm_prefetch::<_MM_HINT_T0>(base.add(off));
+                }
+                #[cfg(not(target_arch = "x86_64"))]
+                let _ = base.wrapping_add(off);
+            }
+        }
+        let s = g * GROUP / QK_K;
+        match self {
+            Panel::Q8 { d, q } => {
+                lines(d, g * PANEL, PANEL);
+                lines(q, g * GROUP * PANEL, GROUP * PANEL);
+            }
+            Panel::Q4K { dm, sm, q, five } => {
+                lines(dm, 2 * s * PANEL, 2 * PANEL);
+                lines(sm, 2 * g * PANEL, 2 * PANEL);
+                lines(q, g * GROUP * 32, GROUP * 32);
+                lines(five, g * GROUP, GROUP);
+            }
+            Panel::Q4 { dm, q, min, five } => {
+                let per = 1 + *min as usize;
+                lines(dm, per * g * PANEL, per * PANEL);
+                lines(q, g * GROUP * 32, GROUP * 32);
+                lines(five, g * GROUP, GROUP);
+            }
+            Panel::Q6K { d, sc, q, hi } => {
+                lines(d, s * PANEL, PANEL);
+                lines(sc, 2 * g * PANEL, 2 * PANEL);
+                lines(q, g * GROUP * 32, GROUP * 32);
+                lines(hi, g * GROUP * 4, GROUP * 4);
+            }
+            Panel::Rows(_) => {}
+        }
     }
 
     fn bytes(&self) -> usize {
         match self {
             Panel::Q8 { d, q } => 2 * d.len() + q.len(),
-            Panel::Q4K { dm, sm, q } => 2 * dm.len() + sm.len() + q.len(),
-            Panel::Q4 { dm, q, .. } => 2 * dm.len() + q.len(),
+            Panel::Q4K { dm, sm, q, five } => 2 * dm.len() + sm.len() + q.len() + 8 * five.len(),
+            Panel::Q4 { dm, q, five, .. } => 2 * dm.len() + q.len() + 8 * five.len(),
+            Panel::Q6K { d, sc, q, hi } => 2 * d.len() + sc.len() + q.len() + 4 * hi.len(),
             Panel::Rows(rows) => rows.iter().map(|r| r.1.len()).sum(),
         }
     }
 }
 
-/// Rows k0..k1 (within group g's 32 inputs, counted from the group's start) of a q8_0 panel
-/// into `dst` ([k1 - k0, 64]): code · d, as [`dequantise_block`] computes each value.
-#[inline(always)]
-fn q8_group<const AVX512: bool>(d: &[f16], q: &[i8], k0: usize, k1: usize, dst: &mut [f32]) {
-    let mut df = [0f32; PANEL];
-    widen_halves::<AVX512>(d, &mut df);
-    for (k, row) in (k0..k1).zip(dst.chunks_exact_mut(PANEL)) {
-        let codes = &q[k * PANEL..(k + 1) * PANEL];
+/// The values of one group (32 inputs) of a regrouped panel, input by input: each type's
+/// scales are widened and combined once per group, then [`GroupRows::row`] gives the 64 values
+/// of one input, each computed with the operations [`dequantise_block`] applies to it.
+pub(super) trait GroupRows {
+    /// w[l] = the value of row l at input k of the group (k < 32).
+    fn row(&self, k: usize, w: &mut [f32; PANEL]);
+}
+
+/// What runs over the groups of a regrouped panel ([`Panel::for_groups`]): filling a piece of
+/// f32 values, or a product.
+pub(super) trait GroupVisitor {
+    /// Called for group g with its values.
+    fn visit<R: GroupRows>(&mut self, g: usize, rows: &R);
+}
+
+/// A q8_0 group: code · d.
+struct Q8Rows<'a> {
+    d: [f32; PANEL],
+    q: &'a [i8],
+}
+
+impl GroupRows for Q8Rows<'_> {
+    #[inline(always)]
+    fn row(&self, k: usize, w: &mut [f32; PANEL]) {
+        let codes = &self.q[k * PANEL..(k + 1) * PANEL];
         for l in 0..PANEL {
-            row[l] = codes[l] as f32 * df[l];
+            w[l] = codes[l] as f32 * self.d[l];
         }
     }
 }
 
-/// As [`q8_group`] for a q4_k panel: (d · sc) · code − (dmin · m), as [`dequantise_block`].
+/// The 64 codes of one input from its 32 bytes of nibbles and (with `FIVE`) its fifth bits, as
+/// u32 lanes: row i's code in lane i.
 #[inline(always)]
-fn q4k_group<const AVX512: bool>(
-    dm: &[f16],
-    sm: &[u8],
-    q: &[u8],
-    k0: usize,
-    k1: usize,
-    dst: &mut [f32],
-) {
-    let (mut d, mut dmin) = ([0f32; PANEL], [0f32; PANEL]);
-    widen_halves::<AVX512>(dm, &mut d);
-    widen_halves::<AVX512>(&dm[PANEL..], &mut dmin);
+fn codes5<const FIVE: bool>(nibbles: &[u8], five: u64, out: &mut [u32; PANEL]) {
+    let nibbles = &nibbles[..32];
+    let (b0, b1) = (five as u32, (five >> 32) as u32);
+    let (lo, hi) = out.split_at_mut(32);
+    for i in 0..32 {
+        lo[i] = (nibbles[i] & 0x0F) as u32;
+        hi[i] = (nibbles[i] >> 4) as u32;
+        if FIVE {
+            lo[i] |= ((b0 >> i) & 1) << 4;
+            hi[i] |= ((b1 >> i) & 1) << 4;
+        }
+    }
+}
+
+/// a · b + c with one rounding where `FMA` (the caller is compiled for AVX-512F, which has
+/// fused multiply-add), else a · b, rounded, + c, rounded. The two are the same number whenever
+/// a · b is exact in f32, which is the only way this is called: the product's rounding is then
+/// no rounding at all, and both round the exact a · b + c once. (A d · sc of a k-quant has at
+/// most 11 + 6 significant bits and a code at most 5, so their product has at most 22 of f32's
+/// 24; a q4_1/q5_1 d · code at most 16. Infinities and NaN scales give the same class of value
+/// either way, and a NaN weight is refused at load.)
+#[inline(always)]
+fn exact_mul_add<const FMA: bool>(a: f32, b: f32, c: f32) -> f32 {
+    if FMA {
+        a.mul_add(b, c)
+    } else {
+        a * b + c
+    }
+}
+
+/// A q4_k group, or with `FIVE` a q5_k group: (d · sc) · code − (dmin · m), the products
+/// d · sc and dmin · m computed once per group. `FMA`: see [`exact_mul_add`].
+struct Q4KRows<'a, const FIVE: bool, const FMA: bool> {
+    dj: [f32; PANEL],
+    mj: [f32; PANEL],
+    q: &'a [u8],
+    five: &'a [u64],
+}
+
+impl<const FIVE: bool, const FMA: bool> GroupRows for Q4KRows<'_, FIVE, FMA> {
+    #[inline(always)]
+    fn row(&self, k: usize, w: &mut [f32; PANEL]) {
+        let mut c = [0u32; PANEL];
+        codes5::<FIVE>(
+            &self.q[k * 32..],
+            if FIVE { self.five[k] } else { 0 },
+            &mut c,
+        );
+        for l in 0..PANEL {
+            // (d · sc) · code is exact: one rounding, that of the subtraction.
+            w[l] = exact_mul_add::<FMA>(self.dj[l], c[l] as f32, -self.mj[l]);
+        }
+    }
+}
+
+/// A q4_0 group, d · (code − 8), or with `MIN` a q4_1 group, d · code + m; with `FIVE` a q5_0
+/// group, d · (code − 16), or a q5_1 group, d · code + m. `FMA`: see [`exact_mul_add`].
+struct Q4Rows<'a, const MIN: bool, const FIVE: bool, const FMA: bool> {
+    d: [f32; PANEL],
+    m: [f32; PANEL],
+    q: &'a [u8],
+    five: &'a [u64],
+}
+
+impl<const MIN: bool, const FIVE: bool, const FMA: bool> GroupRows for Q4Rows<'_, MIN, FIVE, FMA> {
+    #[inline(always)]
+    fn row(&self, k: usize, w: &mut [f32; PANEL]) {
+        let mut c = [0u32; PANEL];
+        codes5::<FIVE>(
+            &self.q[k * 32..],
+            if FIVE { self.five[k] } else { 0 },
+            &mut c,
+        );
+        let offset = if FIVE { 16 } else { 8 };
+        for l in 0..PANEL {
+            w[l] = if MIN {
+                // d · code is exact: one rounding, that of the addition.
+                exact_mul_add::<FMA>(self.d[l], c[l] as f32, self.m[l])
+            } else {
+                self.d[l] * (c[l] as i32 - offset) as f32
+            };
+        }
+    }
+}
+
+/// A q6_k group: (d · sc) · (code − 32), with the scale of inputs 0..16 or 16..32 of the group
+/// (d · sc computed once per group).
+struct Q6KRows<'a> {
+    ds: [[f32; PANEL]; 2],
+    q: &'a [u8],
+    hi: &'a [u32],
+}
+
+impl GroupRows for Q6KRows<'_> {
+    #[inline(always)]
+    fn row(&self, k: usize, w: &mut [f32; PANEL]) {
+        let mut c = [0u32; PANEL];
+        codes5::<false>(&self.q[k * 32..], 0, &mut c);
+        let words = &self.hi[k * 4..k * 4 + 4];
+        for (j, cj) in c.chunks_exact_mut(16).enumerate() {
+            for (i, v) in cj.iter_mut().enumerate() {
+                *v |= ((words[j] >> (2 * i)) & 3) << 4;
+            }
+        }
+        let ds = &self.ds[k / 16];
+        for l in 0..PANEL {
+            w[l] = ds[l] * (c[l] as i32 - 32) as f32;
+        }
+    }
+}
+
+/// 64 f16 values widened to f32 (see [`widen_halves`]).
+#[inline(always)]
+fn widened<const AVX512: bool>(h: &[f16]) -> [f32; PANEL] {
+    let mut f = [0f32; PANEL];
+    widen_halves::<AVX512>(h, &mut f);
+    f
+}
+
+/// The d · sc and dmin · m of each row of q4_k/q5_k group g (`dm`, `sm` as in [`Panel::Q4K`]).
+#[inline(always)]
+fn k_scales<const AVX512: bool>(dm: &[f16], sm: &[u8], g: usize) -> ([f32; PANEL], [f32; PANEL]) {
+    let s = g * GROUP / QK_K;
+    let d = widened::<AVX512>(&dm[2 * s * PANEL..]);
+    let dmin = widened::<AVX512>(&dm[(2 * s + 1) * PANEL..]);
+    let (sc, m) = (&sm[2 * g * PANEL..], &sm[(2 * g + 1) * PANEL..]);
     let (mut dj, mut mj) = ([0f32; PANEL], [0f32; PANEL]);
-    let (sc, m) = (&sm[..PANEL], &sm[PANEL..2 * PANEL]);
     for l in 0..PANEL {
         dj[l] = d[l] * sc[l] as f32;
         mj[l] = dmin[l] * m[l] as f32;
     }
-    for (k, row) in (k0..k1).zip(dst.chunks_exact_mut(PANEL)) {
-        let codes = &q[k * 32..(k + 1) * 32];
-        let (lo, hi) = row.split_at_mut(32);
-        for i in 0..32 {
-            lo[i] = dj[i] * (codes[i] & 0x0F) as f32 - mj[i];
-            hi[i] = dj[32 + i] * (codes[i] >> 4) as f32 - mj[32 + i];
-        }
+    (dj, mj)
+}
+
+/// Group g of a q4_0/q4_1/q5_0/q5_1 panel (`dm`, `q`, `five` as in [`Panel::Q4`]).
+#[inline(always)]
+fn q4_rows<'a, const AVX512: bool, const MIN: bool, const FIVE: bool>(
+    dm: &[f16],
+    q: &'a [u8],
+    five: &'a [u64],
+    g: usize,
+) -> Q4Rows<'a, MIN, FIVE, AVX512> {
+    let per = 1 + MIN as usize;
+    Q4Rows {
+        d: widened::<AVX512>(&dm[per * g * PANEL..]),
+        m: if MIN {
+            widened::<AVX512>(&dm[(2 * g + 1) * PANEL..])
+        } else {
+            [0f32; PANEL]
+        },
+        q: &q[g * GROUP * 32..(g + 1) * GROUP * 32],
+        five: if FIVE {
+            &five[g * GROUP..(g + 1) * GROUP]
+        } else {
+            &[]
+        },
     }
 }
 
-/// As [`q8_group`] for a q4_0 panel, d · (code − 8), or with `MIN` a q4_1 panel, d · code + m,
-/// as [`dequantise_block`].
-#[inline(always)]
-fn q4_group<const AVX512: bool, const MIN: bool>(
-    dm: &[f16],
-    q: &[u8],
-    k0: usize,
-    k1: usize,
-    dst: &mut [f32],
-) {
-    let (mut d, mut m) = ([0f32; PANEL], [0f32; PANEL]);
-    widen_halves::<AVX512>(dm, &mut d);
-    if MIN {
-        widen_halves::<AVX512>(&dm[PANEL..], &mut m);
-    }
-    for (k, row) in (k0..k1).zip(dst.chunks_exact_mut(PANEL)) {
-        let codes = &q[k * 32..(k + 1) * 32];
-        let (lo, hi) = row.split_at_mut(32);
-        for i in 0..32 {
-            let (a, b) = (codes[i] & 0x0F, codes[i] >> 4);
-            if MIN {
-                lo[i] = d[i] * a as f32 + m[i];
-                hi[i] = d[32 + i] * b as f32 + m[32 + i];
-            } else {
-                lo[i] = d[i] * (a as i8 - 8) as f32;
-                hi[i] = d[32 + i] * (b as i8 - 8) as f32;
+impl Panel {
+    /// Runs `v` over groups g0..g1 of this regrouped panel, in order; `AVX512` says the caller is
+    /// compiled for (and runs on) AVX-512F, whose conversion instruction then widens the f16
+    /// scales. The type is matched once, outside the loop over groups.
+    #[inline(always)]
+    pub(super) fn for_groups<const AVX512: bool, V: GroupVisitor>(
+        &self,
+        g0: usize,
+        g1: usize,
+        v: &mut V,
+    ) {
+        // Helpers are functions, not closures: a closure is compiled without the caller's
+        // AVX-512 and would call the conversion intrinsic out of line.
+        match self {
+            Panel::Q8 { d, q } => {
+                for g in g0..g1 {
+                    let rows = Q8Rows {
+                        d: widened::<AVX512>(&d[g * PANEL..]),
+                        q: &q[g * GROUP * PANEL..(g + 1) * GROUP * PANEL],
+                    };
+                    v.visit(g, &rows);
+                }
             }
+            Panel::Q4K { dm, sm, q, five } => {
+                if five.is_empty() {
+                    for g in g0..g1 {
+                        let (dj, mj) = k_scales::<AVX512>(dm, sm, g);
+                        let q = &q[g * GROUP * 32..(g + 1) * GROUP * 32];
+                        v.visit(
+                            g,
+                            &Q4KRows::<false, AVX512> {
+                                dj,
+                                mj,
+                                q,
+                                five: &[],
+                            },
+                        );
+                    }
+                } else {
+                    for g in g0..g1 {
+                        let (dj, mj) = k_scales::<AVX512>(dm, sm, g);
+                        let q = &q[g * GROUP * 32..(g + 1) * GROUP * 32];
+                        let five = &five[g * GROUP..(g + 1) * GROUP];
+                        v.visit(g, &Q4KRows::<true, AVX512> { dj, mj, q, five });
+                    }
+                }
+            }
+            Panel::Q4 { dm, q, min, five } => match (*min, five.is_empty()) {
+                (false, true) => {
+                    for g in g0..g1 {
+                        v.visit(g, &q4_rows::<AVX512, false, false>(dm, q, five, g));
+                    }
+                }
+                (true, true) => {
+                    for g in g0..g1 {
+                        v.visit(g, &q4_rows::<AVX512, true, false>(dm, q, five, g));
+                    }
+                }
+                (false, false) => {
+                    for g in g0..g1 {
+                        v.visit(g, &q4_rows::<AVX512, false, true>(dm, q, five, g));
+                    }
+                }
+                (true, false) => {
+                    for g in g0..g1 {
+                        v.visit(g, &q4_rows::<AVX512, true, true>(dm, q, five, g));
+                    }
+                }
+            },
+            Panel::Q6K { d, sc, q, hi } => {
+                for g in g0..g1 {
+                    let df = widened::<AVX512>(&d[g * GROUP / QK_K * PANEL..]);
+                    let mut ds = [[0f32; PANEL]; 2];
+                    for (h, dsh) in ds.iter_mut().enumerate() {
+                        let sch = &sc[(2 * g + h) * PANEL..(2 * g + h + 1) * PANEL];
+                        for l in 0..PANEL {
+                            dsh[l] = df[l] * sch[l] as f32;
+                        }
+                    }
+                    let rows = Q6KRows {
+                        ds,
+                        q: &q[g * GROUP * 32..(g + 1) * GROUP * 32],
+                        hi: &hi[g * GROUP * 4..(g + 1) * GROUP * 4],
+                    };
+                    v.visit(g, &rows);
+                }
+            }
+            Panel::Rows(_) => unreachable!("stored rows are read value by value"),
         }
     }
 }
@@ -530,8 +881,8 @@ fn widen_halves<const AVX512: bool>(src: &[f16], dst: &mut [f32; PANEL]) {
 pub struct GgmlMatrix {
     pub out: usize,
     pub inp: usize,
-    panels: Vec<Panel>,
-    tail: Vec<Row>,
+    pub(super) panels: Vec<Panel>,
+    pub(super) tail: Vec<Row>,
 }
 
 impl GgmlMatrix {
@@ -600,52 +951,30 @@ unsafe fn regrouped_piece_avx512(panel: &Panel, k0: usize, k1: usize, dst: &mut 
 /// on) AVX-512F, whose conversion instruction then widens the f16 scales.
 #[inline(always)]
 fn regrouped_piece_any<const AVX512: bool>(panel: &Panel, k0: usize, k1: usize, dst: &mut [f32]) {
-    match panel {
-        Panel::Q8 { d, q } => by_group(k0, k1, dst, |g, a, b, out| {
-            q8_group::<AVX512>(&d[g * PANEL..], &q[g * GROUP * PANEL..], a, b, out)
-        }),
-        Panel::Q4K { dm, sm, q } => by_group(k0, k1, dst, |g, a, b, out| {
-            let s = g * GROUP / QK_K;
-            q4k_group::<AVX512>(
-                &dm[2 * s * PANEL..],
-                &sm[2 * g * PANEL..],
-                &q[g * GROUP * 32..],
-                a,
-                b,
-                out,
-            )
-        }),
-        Panel::Q4 { dm, q, min: false } => by_group(k0, k1, dst, |g, a, b, out| {
-            q4_group::<AVX512, false>(&dm[g * PANEL..], &q[g * GROUP * 32..], a, b, out)
-        }),
-        Panel::Q4 { dm, q, min: true } => by_group(k0, k1, dst, |g, a, b, out| {
-            q4_group::<AVX512, true>(&dm[2 * g * PANEL..], &q[g * GROUP * 32..], a, b, out)
-        }),
-        Panel::Rows(_) => unreachable!("stored rows are read value by value"),
+    /// Writes inputs k0..k1 (of the panel) of each group it visits into `dst`.
+    struct Fill<'a> {
+        k0: usize,
+        k1: usize,
+        dst: &'a mut [f32],
     }
-}
-
-/// Calls `f(g, a, b, dst)` for each group g of 32 inputs that k0..k1 meets, with the group's
-/// inputs a..b (from the group's start) and their rows of `dst`.
-#[inline(always)]
-fn by_group(
-    k0: usize,
-    k1: usize,
-    dst: &mut [f32],
-    mut f: impl FnMut(usize, usize, usize, &mut [f32]),
-) {
-    let mut k = k0;
-    while k < k1 {
-        let g = k / GROUP;
-        let end = ((g + 1) * GROUP).min(k1);
-        f(
-            g,
-            k - g * GROUP,
-            end - g * GROUP,
-            &mut dst[(k - k0) * PANEL..(end - k0) * PANEL],
-        );
-        k = end;
+    impl GroupVisitor for Fill<'_> {
+        #[inline(always)]
+        fn visit<R: GroupRows>(&mut self, g: usize, rows: &R) {
+            let (a, b) = (self.k0.max(g * GROUP), self.k1.min((g + 1) * GROUP));
+            for k in a..b {
+                let at = (k - self.k0) * PANEL;
+                let w: &mut [f32; PANEL] = (&mut self.dst[at..at + PANEL])
+                    .try_into()
+                    .expect("a row of 64");
+                rows.row(k - g * GROUP, w);
+            }
+        }
     }
+    if k0 >= k1 {
+        return;
+    }
+    let mut fill = Fill { k0, k1, dst };
+    panel.for_groups::<AVX512, _>(k0 / GROUP, (k1 - 1) / GROUP + 1, &mut fill);
 }
 
 /// Rows k0..k1 of a panel of stored rows (fewer than 64 in the last panel: the other columns
@@ -669,6 +998,10 @@ fn rows_piece(rows: &[Row], k0: usize, k1: usize, dst: &mut [f32], tmp: &mut Vec
     }
 }
 
+/// Pieces ahead of the one being dequantised whose bytes are prefetched (about 4 KB of q8_0
+/// codes at distance 2: a few hundred nanoseconds of work, more than a memory access takes).
+const AHEAD: usize = 2;
+
 thread_local! {
     /// One row's values of the piece being dequantised value by value.
     static ROW: std::cell::RefCell<Vec<f32>> = const { std::cell::RefCell::new(Vec::new()) };
@@ -682,7 +1015,17 @@ impl Panels for GgmlMatrix {
             Some(Panel::Rows(_)) | None => {
                 ROW.with(|row| self.dequantise(p, k0, k1, piece, &mut row.borrow_mut()))
             }
-            Some(panel) => regrouped_piece(panel, k0, k1, piece),
+            Some(panel) => {
+                // The group AHEAD pieces on: in this panel, or the start of the next one (the
+                // panel a task usually takes next).
+                let g = (k0 + AHEAD * PIECE_ROWS) / GROUP;
+                if g < self.inp / GROUP {
+                    panel.prefetch_group(g);
+                } else if let Some(next) = self.panels.get(p + 1) {
+                    next.prefetch_group(g - self.inp / GROUP);
+                }
+                regrouped_piece(panel, k0, k1, piece)
+            }
         }
         piece
     }
@@ -697,14 +1040,14 @@ impl Panels for GgmlMatrix {
 }
 
 #[cfg(test)]
-mod tests {
+pub(super) mod tests {
     use super::*;
-    use crate::kernels::dense::{assert_panels_equal_dense, PIECE_ROWS};
+    use crate::kernels::dense::assert_panels_equal_dense;
     use candle_core::quantized::GgmlDType;
     use candle_core::Device;
 
     /// Deterministic block bytes with every f16 scale finite and small (random bytes elsewhere).
-    fn blocks(t: GgmlType, rows: usize, inp: usize, seed: u64) -> Vec<u8> {
+    pub(in crate::kernels) fn blocks(t: GgmlType, rows: usize, inp: usize, seed: u64) -> Vec<u8> {
         let mut s = seed;
         let mut next = || {
             s = s
@@ -862,6 +1205,19 @@ mod tests {
                 256,
                 vec![(GgmlType::Q2K, 5), (GgmlType::Q3K, 5), (GgmlType::Q5K, 5)],
             ),
+            // Regrouped panels of the 5-bit and 6-bit types, a product of one row (pieces) and
+            // of nine (whole panels through gemm).
+            (
+                1,
+                512,
+                vec![
+                    (GgmlType::Q6K, 64),
+                    (GgmlType::Q5K, 64),
+                    (GgmlType::Q5_0, 64),
+                    (GgmlType::Q5_1, 70),
+                ],
+            ),
+            (9, 256, vec![(GgmlType::Q6K, 128), (GgmlType::Q5K, 64)]),
         ] {
             let mut m = GgmlMatrix::new(inp);
             let mut dense = Vec::new();
@@ -887,10 +1243,16 @@ mod tests {
     ];
 
     /// `blocks` with every f16 scale (d, and q4_1's m or q4_k's dmin) one of [`EXTREMES`].
-    fn extreme_blocks(t: GgmlType, rows: usize, inp: usize, seed: u64) -> Vec<u8> {
+    pub(in crate::kernels) fn extreme_blocks(
+        t: GgmlType,
+        rows: usize,
+        inp: usize,
+        seed: u64,
+    ) -> Vec<u8> {
         let mut b = blocks(t, rows, inp, seed);
         let halves: &[usize] = match t {
-            GgmlType::Q8_0 | GgmlType::Q4_0 => &[0],
+            GgmlType::Q8_0 | GgmlType::Q4_0 | GgmlType::Q5_0 => &[0],
+            GgmlType::Q6K => &[208],
             _ => &[0, 2],
         };
         for (i, blk) in b.chunks_exact_mut(t.block().1).enumerate() {
@@ -898,11 +1260,18 @@ mod tests {
                 let v = EXTREMES[(i * 3 + n * 5 + seed as usize) % EXTREMES.len()];
                 blk[h..h + 2].copy_from_slice(&v.to_le_bytes());
             }
+            if t == GgmlType::Q6K {
+                // The 8-bit scales at their edges too: -128, 127, 0, -1.
+                for (j, sc) in blk[192..208].iter_mut().enumerate() {
+                    *sc = [0x80, 0x7F, 0x00, 0xFF][(i + j) % 4];
+                }
+            }
         }
         b
     }
 
-    /// The regrouped q8_0, q4_0, q4_1 and q4_k panels give, bit for bit, the values the value-by-value
+    /// The regrouped q8_0, q4_0, q4_1, q5_0, q5_1, q4_k, q5_k and q6_k panels give, bit for
+    /// bit, the values the value-by-value
     /// reference path ([`dequantise_row`] on the stored rows, itself checked against the gguf
     /// package and candle) gives: every piece and every whole panel, on random codes with
     /// ordinary and extreme scales, rows pushed in two parts that split a panel, and a partial
@@ -913,7 +1282,11 @@ mod tests {
             GgmlType::Q8_0,
             GgmlType::Q4_0,
             GgmlType::Q4_1,
+            GgmlType::Q5_0,
+            GgmlType::Q5_1,
             GgmlType::Q4K,
+            GgmlType::Q5K,
+            GgmlType::Q6K,
         ] {
             for extreme in [false, true] {
                 let (rows, inp) = (2 * PANEL + 5, 512);
@@ -928,10 +1301,12 @@ mod tests {
                 m.push(t, rows - 40, b[40 * rb..].to_vec());
                 assert!(m.panels.len() == 2 && m.tail.len() == 5);
                 assert!(m.panels.iter().all(|p| !matches!(p, Panel::Rows(_))));
-                // q8_0 keeps its 34 bytes a block; q4_k's sub-block scales take a byte each
-                // (148 bytes a block of 256 instead of 144); the last 5 rows stay as stored.
+                // The bytes of a block are kept, but for q4_k's and q5_k's sub-block scales,
+                // a byte each (148 and 180 bytes a block of 256 instead of 144 and 176); the
+                // last 5 rows stay as stored.
                 let regrouped = match t {
                     GgmlType::Q4K => 2 * PANEL * (inp / QK_K) * 148,
+                    GgmlType::Q5K => 2 * PANEL * (inp / QK_K) * 180,
                     _ => 2 * PANEL * rb,
                 };
                 assert_eq!(m.bytes(), regrouped + 5 * rb);

@@ -12,7 +12,8 @@
 //!   layout, read by `dense`'s products through its `Panels` seam; [`nf4`]: bitsandbytes'
 //!   NF4/FP4 quantiser and the double quantisation of the scales, bit for bit.
 //! - [`ggml`]: GGUF's block formats dequantised as the `gguf` package does, bit for bit, and
-//!   a matrix of stored rows read through the same seam.
+//!   a matrix of stored rows read through the same seam; `ggml_dot`: its batch-1 product with
+//!   the dequantisation inside the multiply-adds.
 //! - [`int8`]: 8-bit rows and activations and their exact integer products (the head screen).
 //! - `simd`: the AVX-512 scaffolding written once: CPU features (detected once, used by all
 //!   three), and for bf16 and int8 the token groups, the tasks over block pairs and the
@@ -22,6 +23,7 @@ pub mod bf16;
 pub mod blocks;
 pub mod dense;
 pub mod ggml;
+mod ggml_dot;
 pub mod int8;
 pub mod nf4;
 mod simd;

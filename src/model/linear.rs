@@ -280,7 +280,7 @@ impl Linear {
             LinearWeights::StoredF16(w) => matmul_half(x, n, self.inp, w, self.out, y),
             LinearWeights::Bf16(m) => m.matmul(x, n, y),
             LinearWeights::Codes(m) => matmul_panels(x, n, self.inp, m, self.out, y),
-            LinearWeights::Ggml(m) => matmul_panels(x, n, self.inp, m, self.out, y),
+            LinearWeights::Ggml(m) => m.matmul(x, n, y),
         }
         if let Some(b) = &self.b {
             for row in y.chunks_exact_mut(self.out) {

@@ -1,0 +1,246 @@
+//! The batch-1 product over a GGUF matrix ([`GgmlMatrix`]) with the dequantisation inside the
+//! loop of multiply-adds.
+//!
+//! [`crate::kernels::dense`]'s products read a block-quantised panel through the `Panels` seam:
+//! 32 inputs of the panel are dequantised into a buffer, then the buffer is multiplied and
+//! added into the sums. At batch 1 that costs a store and a load of every f32 value on top of
+//! the arithmetic, and the arithmetic, not memory, limits a core (two cores decode a q8_0 file
+//! at about half the triad bandwidth that way). Here each input's 64 values are computed into
+//! registers ([`GroupRows::row`]) and multiplied into the sums at once.
+//!
+//! The sums are those of `dense`'s few-rows loop, in the same order: for each output lane, one
+//! sum over the even inputs and one over the odd inputs, each in input order, x·w rounded and
+//! then added (no fused multiply-add), the two added at the end. So this product is bit for bit
+//! `dense::matmul_panels` over the same matrix (tested below), whatever the thread count, and
+//! batch-1 answers do not change.
+
+use super::dense::{matmul_panels, Panels, PANEL, PIECE_ROWS};
+use super::ggml::{GgmlMatrix, GroupRows, GroupVisitor, Panel, GROUP};
+#[cfg(target_arch = "x86_64")]
+use super::simd::features;
+use super::PARALLEL_WORK;
+use rayon::prelude::*;
+
+/// Groups ahead of the one being multiplied whose bytes are prefetched: about 4 KB of q8_0
+/// codes, a few hundred nanoseconds of work, more than a memory access takes.
+const AHEAD: usize = 2;
+
+impl GgmlMatrix {
+    /// y[n, out] = x[n, inp] · Wᵀ, bit for bit [`matmul_panels`] over this matrix. One row
+    /// (batch-1 decoding) runs the fused loop of this module, one task per panel; more rows
+    /// go through [`matmul_panels`].
+    pub fn matmul(&self, x: &[f32], n: usize, y: &mut [f32]) {
+        if n != 1 {
+            return matmul_panels(x, n, self.inp, self, self.out, y);
+        }
+        let (inp, out) = (self.inp, self.out);
+        assert!(x.len() >= inp && y.len() >= out);
+        let x = &x[..inp];
+        let one = |(p, yp): (usize, &mut [f32])| {
+            let mut acc = [0f32; PANEL];
+            self.panel_dot(p, x, &mut acc);
+            yp.copy_from_slice(&acc[..yp.len()]);
+        };
+        if inp * out >= PARALLEL_WORK {
+            y[..out].par_chunks_mut(PANEL).enumerate().for_each(one);
+        } else {
+            y[..out].chunks_mut(PANEL).enumerate().for_each(one);
+        }
+    }
+
+    /// acc[l] = Σₖ x[k]·W[64p + l][k], summed as `dense`'s few-rows loop sums one row.
+    fn panel_dot(&self, p: usize, x: &[f32], acc: &mut [f32; PANEL]) {
+        match self.panels.get(p) {
+            Some(Panel::Rows(_)) | None => self.stored_dot(p, x, acc),
+            Some(panel) => {
+                #[cfg(target_arch = "x86_64")]
+                if features().avx512f {
+                    let next = self.panels.get(p + 1);
+                    // SAFETY: the CPU has AVX-512F (checked just above).
+                    unsafe { regrouped_dot_avx512(panel, next, x, acc) };
+                    return;
+                }
+                regrouped_dot::<false>(panel, None, x, acc);
+            }
+        }
+    }
+
+    /// [`GgmlMatrix::panel_dot`] for a panel of stored rows: dequantised value by value, 32
+    /// inputs at a time, then summed in the same order.
+    fn stored_dot(&self, p: usize, x: &[f32], acc: &mut [f32; PANEL]) {
+        let (mut even, mut odd) = ([0f32; PANEL], [0f32; PANEL]);
+        let mut buf = [0f32; PIECE_ROWS * PANEL];
+        for k0 in (0..self.inp).step_by(PIECE_ROWS) {
+            let k1 = (k0 + PIECE_ROWS).min(self.inp);
+            let piece = self.piece(p, k0, k1, &mut buf);
+            for (i, w) in piece.chunks_exact(PANEL).enumerate() {
+                let sums = if i % 2 == 0 { &mut even } else { &mut odd };
+                for l in 0..PANEL {
+                    sums[l] += x[k0 + i] * w[l];
+                }
+            }
+        }
+        for l in 0..PANEL {
+            acc[l] = even[l] + odd[l];
+        }
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn regrouped_dot_avx512(
+    panel: &Panel,
+    next: Option<&Panel>,
+    x: &[f32],
+    acc: &mut [f32; PANEL],
+) {
+    regrouped_dot::<true>(panel, next, x, acc);
+}
+
+/// [`GgmlMatrix::panel_dot`] for a regrouped panel; `next` is the panel whose first groups are
+/// prefetched near the end (the panel a task usually takes next).
+#[inline(always)]
+fn regrouped_dot<const AVX512: bool>(
+    panel: &Panel,
+    next: Option<&Panel>,
+    x: &[f32],
+    acc: &mut [f32; PANEL],
+) {
+    /// The even-input and odd-input sums of each lane.
+    struct Dot<'a> {
+        panel: &'a Panel,
+        next: Option<&'a Panel>,
+        groups: usize,
+        x: &'a [f32],
+        even: [f32; PANEL],
+        odd: [f32; PANEL],
+    }
+    impl GroupVisitor for Dot<'_> {
+        #[inline(always)]
+        fn visit<R: GroupRows>(&mut self, g: usize, rows: &R) {
+            let ahead = g + AHEAD;
+            if ahead < self.groups {
+                self.panel.prefetch_group(ahead);
+            } else if let Some(next) = self.next {
+                next.prefetch_group(ahead - self.groups);
+            }
+            let xs = &self.x[g * GROUP..(g + 1) * GROUP];
+            let (mut w0, mut w1) = ([0f32; PANEL], [0f32; PANEL]);
+            for k in (0..GROUP).step_by(2) {
+                rows.row(k, &mut w0);
+                rows.row(k + 1, &mut w1);
+                let (x0, x1) = (xs[k], xs[k + 1]);
+                for l in 0..PANEL {
+                    self.even[l] += x0 * w0[l];
+                    self.odd[l] += x1 * w1[l];
+                }
+            }
+        }
+    }
+    let groups = x.len() / GROUP;
+    let mut dot = Dot {
+        panel,
+        next,
+        groups,
+        x,
+        even: [0f32; PANEL],
+        odd: [0f32; PANEL],
+    };
+    panel.for_groups::<AVX512, _>(0, groups, &mut dot);
+    for ((a, e), o) in acc.iter_mut().zip(dot.even).zip(dot.odd) {
+        *a = e + o;
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::kernels::dense::assert_panels_equal_dense;
+    use crate::kernels::ggml::tests::{blocks, extreme_blocks};
+    use crate::kernels::ggml::{dequantise_row, GgmlType};
+
+    /// The fused batch-1 product is bit for bit the product through the `Panels` seam, and so
+    /// the f32 product over the values the value-by-value path gives (itself checked against
+    /// the gguf package and candle): every regrouped type, random and extreme scales (the
+    /// largest finite f16, subnormals, signed zeros; q6_k's scales at -128 and 127), two full
+    /// panels and a tail of stored rows, panels of several types, on one task and on the pool.
+    #[test]
+    fn fused_product_equals_the_product_over_dequantised_values() {
+        let regrouped = [
+            GgmlType::Q8_0,
+            GgmlType::Q4_0,
+            GgmlType::Q4_1,
+            GgmlType::Q5_0,
+            GgmlType::Q5_1,
+            GgmlType::Q4K,
+            GgmlType::Q5K,
+            GgmlType::Q6K,
+        ];
+        /// Inputs, the (type, rows) parts stacked, extreme scales.
+        type Case = (usize, Vec<(GgmlType, usize)>, bool);
+        let mut cases: Vec<Case> = Vec::new();
+        for t in regrouped {
+            for extreme in [false, true] {
+                // 2 panels and 5 rows of tail; 512 inputs (one task), and 2048 (the pool).
+                cases.push((512, vec![(t, 2 * PANEL + 5)], extreme));
+                cases.push((2048, vec![(t, PANEL + 3)], extreme));
+            }
+        }
+        // A panel mixing types (stored rows) between regrouped ones.
+        cases.push((
+            256,
+            vec![
+                (GgmlType::Q4K, 100),
+                (GgmlType::Q6K, 92),
+                (GgmlType::Q2K, 7),
+            ],
+            false,
+        ));
+        cases.push((256, vec![(GgmlType::Q3K, 64), (GgmlType::F16, 64)], false));
+        let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+        for (inp, parts, extreme) in cases {
+            let mut m = GgmlMatrix::new(inp);
+            let mut dense = Vec::new();
+            for (i, &(t, rows)) in parts.iter().enumerate() {
+                let seed = 40 + i as u64;
+                let b = if extreme {
+                    extreme_blocks(t, rows, inp, seed)
+                } else {
+                    blocks(t, rows, inp, seed)
+                };
+                let rb = t.row_bytes(inp);
+                for r in 0..rows {
+                    let mut v = vec![0.0; inp];
+                    dequantise_row(t, &b[r * rb..(r + 1) * rb], 0, inp, &mut v);
+                    dense.extend(v);
+                }
+                m.push(t, rows, b);
+            }
+            let what = format!("{parts:?} inp {inp} extreme {extreme}");
+            let x: Vec<f32> = (0..inp)
+                .map(|i| ((i * 5) % 17) as f32 * 0.21 - 1.3)
+                .collect();
+            let (mut fused, mut seam) = (vec![0.0; m.out], vec![0.0; m.out]);
+            m.matmul(&x, 1, &mut fused);
+            matmul_panels(&x, 1, inp, &m, m.out, &mut seam);
+            assert_eq!(bits(&fused), bits(&seam), "{what}");
+            // The seam's product against the f32 product over the dequantised values (NaN-free:
+            // the extreme scales are finite, but their products can overflow to infinities,
+            // which compare by their bits too).
+            let out = m.out;
+            assert_panels_equal_dense(&m, &dense, 1, inp, out);
+            // The portable form of the fused loop too (this CPU may run the AVX-512 one).
+            for (p, panel) in m.panels.iter().enumerate() {
+                let mut acc = [0f32; PANEL];
+                if !matches!(panel, Panel::Rows(_)) {
+                    regrouped_dot::<false>(panel, None, &x, &mut acc);
+                    assert_eq!(
+                        bits(&acc),
+                        bits(&seam[p * PANEL..(p + 1) * PANEL]),
+                        "portable {what} panel {p}"
+                    );
+                }
+            }
+        }
+    }
+}
