@@ -1046,6 +1046,18 @@ pub(super) mod tests {
     use candle_core::quantized::GgmlDType;
     use candle_core::Device;
 
+    /// The types whose panels are regrouped for the fast path.
+    pub(in crate::kernels) const REGROUPED: [GgmlType; 8] = [
+        GgmlType::Q8_0,
+        GgmlType::Q4_0,
+        GgmlType::Q4_1,
+        GgmlType::Q5_0,
+        GgmlType::Q5_1,
+        GgmlType::Q4K,
+        GgmlType::Q5K,
+        GgmlType::Q6K,
+    ];
+
     /// Deterministic block bytes with every f16 scale finite and small (random bytes elsewhere).
     pub(in crate::kernels) fn blocks(t: GgmlType, rows: usize, inp: usize, seed: u64) -> Vec<u8> {
         let mut s = seed;
@@ -1278,16 +1290,7 @@ pub(super) mod tests {
     /// last panel read from the stored rows.
     #[test]
     fn regrouped_panels_equal_the_value_by_value_path() {
-        for t in [
-            GgmlType::Q8_0,
-            GgmlType::Q4_0,
-            GgmlType::Q4_1,
-            GgmlType::Q5_0,
-            GgmlType::Q5_1,
-            GgmlType::Q4K,
-            GgmlType::Q5K,
-            GgmlType::Q6K,
-        ] {
+        for t in REGROUPED {
             for extreme in [false, true] {
                 let (rows, inp) = (2 * PANEL + 5, 512);
                 let b = if extreme {

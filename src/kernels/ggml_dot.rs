@@ -166,16 +166,7 @@ mod tests {
     /// panels and a tail of stored rows, panels of several types, on one task and on the pool.
     #[test]
     fn fused_product_equals_the_product_over_dequantised_values() {
-        let regrouped = [
-            GgmlType::Q8_0,
-            GgmlType::Q4_0,
-            GgmlType::Q4_1,
-            GgmlType::Q5_0,
-            GgmlType::Q5_1,
-            GgmlType::Q4K,
-            GgmlType::Q5K,
-            GgmlType::Q6K,
-        ];
+        let regrouped = crate::kernels::ggml::tests::REGROUPED;
         /// Inputs, the (type, rows) parts stacked, extreme scales.
         type Case = (usize, Vec<(GgmlType, usize)>, bool);
         let mut cases: Vec<Case> = Vec::new();

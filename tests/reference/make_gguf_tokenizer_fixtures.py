@@ -198,11 +198,11 @@ def spm_vocabulary() -> tuple[list, list, list]:
     return tokens, types, scores
 
 
-def write_spm(src: Path, dst: Path, add_bos, template) -> None:
-    tokens, types, scores = spm_vocabulary()
+def spm_writer(src: Path, dst: Path):
+    """A reader of `src` and a writer of `dst` holding `src`'s model metadata (its architecture
+    kept) without its tokenizer keys or vocabulary size: the caller adds its own vocabulary."""
     reader = gguf.GGUFReader(str(src))
-    arch = reader.fields["general.architecture"].contents()
-    writer = gguf.GGUFWriter(str(dst), arch)
+    writer = gguf.GGUFWriter(str(dst), reader.fields["general.architecture"].contents())
     for field in reader.fields.values():
         if field.name == gguf.Keys.General.ARCHITECTURE or field.name.startswith("GGUF."):
             continue
@@ -211,6 +211,12 @@ def write_spm(src: Path, dst: Path, add_bos, template) -> None:
         val_type = field.types[0]
         sub_type = field.types[-1] if val_type == gguf.GGUFValueType.ARRAY else None
         writer.add_key_value(field.name, field.contents(), val_type, sub_type=sub_type)
+    return reader, writer
+
+
+def write_spm(src: Path, dst: Path, add_bos, template) -> None:
+    tokens, types, scores = spm_vocabulary()
+    reader, writer = spm_writer(src, dst)
     writer.add_tokenizer_model("llama")
     writer.add_tokenizer_pre("default")
     writer.add_token_list(tokens)
@@ -285,18 +291,8 @@ PHI3_TEMPLATE = (
 def write_spm_arch(src: Path, dst: Path, add_bos, add_eos, template, tensors=True) -> None:
     """`src`'s tensors and model metadata (its architecture kept) with the vocabulary of
     `spm_arch_vocabulary` for that architecture, no merges (llama.cpp writes none for these)."""
-    reader = gguf.GGUFReader(str(src))
-    arch = reader.fields["general.architecture"].contents()
-    v = spm_arch_vocabulary(arch)
-    writer = gguf.GGUFWriter(str(dst), arch)
-    for field in reader.fields.values():
-        if field.name == gguf.Keys.General.ARCHITECTURE or field.name.startswith("GGUF."):
-            continue
-        if field.name.startswith("tokenizer.") or field.name.endswith(".vocab_size"):
-            continue
-        val_type = field.types[0]
-        sub_type = field.types[-1] if val_type == gguf.GGUFValueType.ARRAY else None
-        writer.add_key_value(field.name, field.contents(), val_type, sub_type=sub_type)
+    reader, writer = spm_writer(src, dst)
+    v = spm_arch_vocabulary(reader.fields["general.architecture"].contents())
     writer.add_tokenizer_model("llama")
     writer.add_tokenizer_pre("default")
     writer.add_token_list(v["tokens"])
