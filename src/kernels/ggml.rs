@@ -1058,6 +1058,25 @@ pub(super) mod tests {
         GgmlType::Q6K,
     ];
 
+    /// Pushes `rows` rows of blocks `b` of type `t` into `m` and appends their values,
+    /// dequantised value by value, to `dense` (row-major).
+    pub(in crate::kernels) fn push_keeping_values(
+        m: &mut GgmlMatrix,
+        t: GgmlType,
+        rows: usize,
+        b: Vec<u8>,
+        dense: &mut Vec<f32>,
+    ) {
+        let inp = m.inp;
+        let rb = t.row_bytes(inp);
+        for r in 0..rows {
+            let start = dense.len();
+            dense.resize(start + inp, 0.0);
+            dequantise_row(t, &b[r * rb..(r + 1) * rb], 0, inp, &mut dense[start..]);
+        }
+        m.push(t, rows, b);
+    }
+
     /// Deterministic block bytes with every f16 scale finite and small (random bytes elsewhere).
     pub(in crate::kernels) fn blocks(t: GgmlType, rows: usize, inp: usize, seed: u64) -> Vec<u8> {
         let mut s = seed;
@@ -1234,14 +1253,13 @@ pub(super) mod tests {
             let mut m = GgmlMatrix::new(inp);
             let mut dense = Vec::new();
             for (i, &(t, rows)) in types.iter().enumerate() {
-                let b = blocks(t, rows, inp, 100 + i as u64);
-                let rb = t.row_bytes(inp);
-                for r in 0..rows {
-                    let mut v = vec![0.0; inp];
-                    dequantise_row(t, &b[r * rb..(r + 1) * rb], 0, inp, &mut v);
-                    dense.extend(v);
-                }
-                m.push(t, rows, b);
+                push_keeping_values(
+                    &mut m,
+                    t,
+                    rows,
+                    blocks(t, rows, inp, 100 + i as u64),
+                    &mut dense,
+                );
             }
             let out = m.out;
             assert_panels_equal_dense(&m, &dense, n, inp, out);

@@ -156,8 +156,8 @@ fn regrouped_dot<const AVX512: bool>(
 mod tests {
     use super::*;
     use crate::kernels::dense::assert_panels_equal_dense;
-    use crate::kernels::ggml::tests::{blocks, extreme_blocks};
-    use crate::kernels::ggml::{dequantise_row, GgmlType};
+    use crate::kernels::ggml::tests::{blocks, extreme_blocks, push_keeping_values};
+    use crate::kernels::ggml::GgmlType;
 
     /// The fused batch-1 product is bit for bit the product through the `Panels` seam, and so
     /// the f32 product over the values the value-by-value path gives (itself checked against
@@ -199,13 +199,7 @@ mod tests {
                 } else {
                     blocks(t, rows, inp, seed)
                 };
-                let rb = t.row_bytes(inp);
-                for r in 0..rows {
-                    let mut v = vec![0.0; inp];
-                    dequantise_row(t, &b[r * rb..(r + 1) * rb], 0, inp, &mut v);
-                    dense.extend(v);
-                }
-                m.push(t, rows, b);
+                push_keeping_values(&mut m, t, rows, b, &mut dense);
             }
             let what = format!("{parts:?} inp {inp} extreme {extreme}");
             let x: Vec<f32> = (0..inp)
