@@ -807,6 +807,15 @@ impl Trie {
         }
     }
 
+    /// Compiles each phrase ([`compile_phrase`]) and inserts those that compile.
+    fn insert_phrases<S: AsRef<str>>(&mut self, phrases: impl IntoIterator<Item = S>) {
+        for phrase in phrases {
+            if let Some(p) = compile_phrase(phrase.as_ref()) {
+                self.insert(&p);
+            }
+        }
+    }
+
     fn child(&mut self, node: usize, p: &Pat) -> usize {
         let existing = match p {
             Pat::Word(w) => self.nodes[node].words.get(w).copied(),
@@ -893,54 +902,29 @@ pub struct RefusalDetector {
 impl Default for RefusalDetector {
     fn default() -> Self {
         let mut opening = Trie::new();
+        opening.insert_phrases(INABILITY.iter().flat_map(|subject| {
+            DECLINE_OBJECTS
+                .iter()
+                .map(move |o| format!("{subject} {o}"))
+        }));
+        opening.insert_phrases(OPENING_PHRASES);
         let mut anywhere = Trie::new();
-        for subject in INABILITY {
-            for object in DECLINE_OBJECTS {
-                if let Some(p) = compile_phrase(&format!("{subject} {object}")) {
-                    opening.insert(&p);
-                }
-            }
-        }
-        for phrase in OPENING_PHRASES {
-            if let Some(p) = compile_phrase(phrase) {
-                opening.insert(&p);
-            }
-        }
-        for phrase in ANYWHERE_PHRASES {
-            if let Some(p) = compile_phrase(phrase) {
-                anywhere.insert(&p);
-            }
-        }
+        anywhere.insert_phrases(ANYWHERE_PHRASES);
         let mut framed_inability = Trie::new();
         // "Allowed" and "permitted" stay rules even after a frame ("as a guide dog, I'm not
         // allowed in the lounge").
-        for subject in INABILITY
-            .iter()
-            .filter(|s| s.starts_with("i ") && !s.contains("allowed") && !s.contains("permitted"))
-        {
-            if let Some(p) = compile_phrase(subject) {
-                framed_inability.insert(&p);
-            }
-        }
+        framed_inability.insert_phrases(
+            INABILITY.iter().filter(|s| {
+                s.starts_with("i ") && !s.contains("allowed") && !s.contains("permitted")
+            }),
+        );
         // The assistant's scope stated by exclusion ("my role is to assist with trips, not to
         // assist with lost items"; "designed to help with text queries, not with prompts").
-        for exclusion in SCOPE_EXCLUSIONS {
-            if let Some(p) = compile_phrase(exclusion) {
-                framed_inability.insert(&p);
-            }
-        }
+        framed_inability.insert_phrases(SCOPE_EXCLUSIONS);
         let mut role_denial = Trie::new();
-        for denial in ROLE_DENIALS {
-            if let Some(p) = compile_phrase(denial) {
-                role_denial.insert(&p);
-            }
-        }
+        role_denial.insert_phrases(ROLE_DENIALS);
         let mut describes_self = Trie::new();
-        for phrase in SELF_DESCRIPTION {
-            if let Some(p) = compile_phrase(phrase) {
-                describes_self.insert(&p);
-            }
-        }
+        describes_self.insert_phrases(SELF_DESCRIPTION);
         RefusalDetector {
             opening,
             anywhere,
