@@ -39,6 +39,26 @@ pub fn write_grades(
         }
         None => None,
     };
+    // The answers' fingerprint is taken while the rows are written out, in parallel chunks.
+    let (answers_sha, rows) = rayon::join(
+        || fsutil::sha256_file(answers_path),
+        || {
+            grades
+                .par_chunks(4096)
+                .map(|chunk| {
+                    let mut bytes = Vec::with_capacity(chunk.len() * 256);
+                    for g in chunk {
+                        serde_json::to_writer(&mut bytes, g).map_err(|e| {
+                            crate::Error::internal(format!("cannot serialise a grade row: {e}"))
+                        })?;
+                        bytes.push(b'\n');
+                    }
+                    Ok(bytes)
+                })
+                .collect::<Result<Vec<Vec<u8>>>>()
+                .map(|chunks| chunks.concat())
+        },
+    );
     let info = GradeRunInfo {
         tool: "liftgate".into(),
         tool_version: env!("CARGO_PKG_VERSION").into(),
@@ -49,18 +69,13 @@ pub fn write_grades(
         },
         answers: InputFile {
             path: answers_path.display().to_string(),
-            sha256: fsutil::sha256_file(answers_path)?,
+            sha256: answers_sha?,
         },
         compute_dtype: run_record::recorded_compute_dtype(answers_path),
         embedder,
     };
     let info_bytes = run_record::to_bytes(&info)?;
-    let mut rows = Vec::new();
-    for g in grades {
-        serde_json::to_writer(&mut rows, g)
-            .map_err(|e| crate::Error::internal(format!("cannot serialise a grade row: {e}")))?;
-        rows.push(b'\n');
-    }
+    let rows = rows?;
     let run = run_record::path_beside(out);
     let staged_rows = fsutil::stage(out, &rows)?;
     let staged_info = fsutil::stage(&run, &info_bytes)?;

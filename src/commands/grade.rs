@@ -28,9 +28,14 @@ pub fn run(args: &GradeArgs) -> Result<Outcome> {
     }
     // Only the policy's refusal phrases matter here; loading it whole still rejects a bad file.
     let policy = Policy::load_or_default(args.policy.as_deref())?;
-    let set = QuestionSet::load(&args.questions)?;
+    // Both files are read and parsed at once; the set's errors are reported first.
+    let (set, rows) = rayon::join(
+        || QuestionSet::load(&args.questions),
+        || answers::read_rows(&args.answers),
+    );
+    let set = set?;
     set.check_references()?;
-    let answers = answers::load_rows(&args.answers, &set)?;
+    let answers = answers::match_ids(&args.answers, &set, rows?)?;
     match (
         run_record::check_set_fingerprint(&args.answers, &set),
         args.allow_set_change,

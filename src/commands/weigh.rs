@@ -15,9 +15,19 @@ pub fn run(args: &WeighArgs) -> Result<Outcome> {
     let (settings, policy) = args::stats(&args.stats)?;
     let history =
         RecordOptions::resolve(&args.history, &history::parent_of(&args.report), "weigh")?;
-    let set = QuestionSet::load(&args.questions)?;
-    let baseline = grades::load_for_set(&args.baseline, &set)?;
-    let candidate = grades::load_for_set(&args.candidate, &set)?;
+    // The three files are read and parsed at once; their errors are reported in this order.
+    let (set, (baseline, candidate)) = rayon::join(
+        || QuestionSet::load(&args.questions),
+        || {
+            rayon::join(
+                || grades::read_rows(&args.baseline),
+                || grades::read_rows(&args.candidate),
+            )
+        },
+    );
+    let set = set?;
+    let baseline = grades::match_to_set(&args.baseline, &set, baseline?)?;
+    let candidate = grades::match_to_set(&args.candidate, &set, candidate?)?;
     let inputs = weigh::describe_inputs(
         &set,
         &args.baseline,

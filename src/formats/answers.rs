@@ -55,6 +55,12 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>>
 
 /// [`load_for_set`] without the set-fingerprint check: ids only.
 pub fn load_rows(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>> {
+    match_ids(path, set, read_rows(path)?)
+}
+
+/// An answers file's rows with their line numbers, parsed but not yet matched to a question
+/// set (so the file can be read while the set is).
+pub fn read_rows(path: &Path) -> Result<Vec<(usize, AnswerRecord)>> {
     use rayon::prelude::*;
     let lines = fsutil::read_jsonl_lines(path)?;
     // Lines are parsed in parallel; the first error in line order is the one reported.
@@ -81,7 +87,15 @@ pub fn load_rows(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>> {
             Ok((*line, row))
         })
         .collect();
-    let rows = parsed.into_iter().collect::<Result<Vec<_>>>()?;
+    parsed.into_iter().collect()
+}
+
+/// The rows of [`read_rows`] checked against the question set's ids, in order.
+pub fn match_ids(
+    path: &Path,
+    set: &QuestionSet,
+    rows: Vec<(usize, AnswerRecord)>,
+) -> Result<Vec<AnswerRecord>> {
     check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
     Ok(rows.into_iter().map(|(_, r)| r).collect())
 }

@@ -47,6 +47,12 @@ pub struct GradeRecord {
 
 /// Reads a grades file and checks it matches the question set id for id, in order.
 pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<GradeRecord>> {
+    match_to_set(path, set, read_rows(path)?)
+}
+
+/// A grades file's rows with their line numbers, parsed and range-checked but not yet matched
+/// to a question set (so several files can be read at once, before the set is loaded).
+pub fn read_rows(path: &Path) -> Result<Vec<(usize, GradeRecord)>> {
     use rayon::prelude::*;
     let lines = fsutil::read_jsonl_lines(path)?;
     // Lines are parsed and checked in parallel; the first error in line order is reported.
@@ -54,7 +60,15 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<GradeRecord>> 
         .par_iter()
         .map(|(line, text)| parse_row(path, *line, text))
         .collect();
-    let rows = parsed.into_iter().collect::<Result<Vec<_>>>()?;
+    parsed.into_iter().collect()
+}
+
+/// The rows of [`read_rows`] checked against the question set, id for id and in order.
+pub fn match_to_set(
+    path: &Path,
+    set: &QuestionSet,
+    rows: Vec<(usize, GradeRecord)>,
+) -> Result<Vec<GradeRecord>> {
     check_ids(path, set, rows.iter().map(|(l, r)| (*l, r.id.as_str())))?;
     check_set_fingerprint(path, set)?;
     finish(path, set, rows)

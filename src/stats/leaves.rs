@@ -37,6 +37,7 @@
 //! added in a fixed order.
 
 use super::rng::{chunk_rng, index_below, CHUNK};
+use rand::rngs::Xoshiro256PlusPlus;
 use rand::Rng;
 use rand_distr::{Binomial, Distribution};
 use rayon::prelude::*;
@@ -57,8 +58,16 @@ pub struct StratifiedSums<const K: usize> {
 /// One stratum's rows, in the set's order.
 struct Stratum<const K: usize> {
     rows: Vec<[f64; K]>,
+    /// The same rows padded with zeros to four columns: one 256-bit load and add a draw.
+    wide: Vec<Wide>,
     leaves: Vec<u64>,
 }
+
+/// A row padded to four columns (at most [`WIDE`] columns are resampled together).
+type Wide = [f64; WIDE];
+
+/// Columns of a padded row.
+const WIDE: usize = 4;
 
 /// Counts `(c_1..c_m) ~ Multinomial(total; w_j / Σ w)` into `out`, by conditional binomials
 /// (`c_1 ~ Bin(total, w_1 / Σ w)`, then `c_j ~ Bin(total − c_1 − … − c_{j−1}, w_j / (Σ w − w_1 −
@@ -84,68 +93,70 @@ pub(super) fn multinomial(weights: &[u64], total: u64, out: &mut [u64], rng: &mu
     }
 }
 
-/// Adds `count` rows drawn uniformly from `leaf` (2^BITS rows) into four lanes: each index is
+/// Adds `count` rows drawn uniformly from `leaf` (2^BITS rows) into the lanes: each index is
 /// BITS bits of a 64-bit word, so it is exactly uniform with no rejection, and one word gives
 /// `64 / BITS` of them.
 #[inline(always)]
-fn draw_pow2<const BITS: u32, const K: usize>(
-    leaf: &[[f64; K]],
+fn draw_pow2<const BITS: u32>(
+    leaf: &[Wide],
     count: u64,
-    acc: &mut [[f64; K]; 4],
-    rng: &mut impl Rng,
+    acc: &mut [Wide; LANES],
+    rng: &mut Xoshiro256PlusPlus,
 ) {
     let per = (64 / BITS) as u64;
     let mask = (1u64 << BITS) - 1;
     let leaf = &leaf[..1 << BITS];
+    // Sums and generator as locals, so they live in registers through the loop rather than
+    // making a round trip through memory on every draw.
+    let mut lanes = *acc;
+    let mut gen = rng.clone();
     let mut left = count;
     while left >= per {
-        let mut w = rng.next_u64();
+        let mut w = gen.next_u64();
         for l in 0..per as usize {
             let row = &leaf[(w & mask) as usize];
             w >>= BITS;
-            for c in 0..K {
-                acc[l & 3][c] += row[c];
+            for c in 0..WIDE {
+                lanes[l % LANES][c] += row[c];
             }
         }
         left -= per;
     }
-    let mut w = rng.next_u64();
+    let mut w = gen.next_u64();
     for l in 0..left as usize {
         let row = &leaf[(w & mask) as usize];
         w >>= BITS;
-        for c in 0..K {
-            acc[l & 3][c] += row[c];
+        for c in 0..WIDE {
+            lanes[l % LANES][c] += row[c];
         }
     }
+    *acc = lanes;
+    *rng = gen;
 }
 
 /// Adds `count` rows drawn uniformly from `leaf`, whose length is a power of two up to
 /// [`LEAF`], into four lanes.
-fn draw_leaf<const K: usize>(
-    leaf: &[[f64; K]],
-    count: u64,
-    acc: &mut [[f64; K]; 4],
-    rng: &mut impl Rng,
-) {
+#[inline(always)]
+fn draw_leaf(leaf: &[Wide], count: u64, acc: &mut [Wide; LANES], rng: &mut Xoshiro256PlusPlus) {
     if count == 0 {
         return;
     }
     match leaf.len().trailing_zeros() {
         0 => {
-            for c in 0..K {
+            for c in 0..WIDE {
                 acc[0][c] += count as f64 * leaf[0][c];
             }
         }
-        1 => draw_pow2::<1, K>(leaf, count, acc, rng),
-        2 => draw_pow2::<2, K>(leaf, count, acc, rng),
-        3 => draw_pow2::<3, K>(leaf, count, acc, rng),
-        4 => draw_pow2::<4, K>(leaf, count, acc, rng),
-        5 => draw_pow2::<5, K>(leaf, count, acc, rng),
-        6 => draw_pow2::<6, K>(leaf, count, acc, rng),
-        7 => draw_pow2::<7, K>(leaf, count, acc, rng),
-        8 => draw_pow2::<8, K>(leaf, count, acc, rng),
-        9 => draw_pow2::<9, K>(leaf, count, acc, rng),
-        _ => draw_pow2::<10, K>(leaf, count, acc, rng),
+        1 => draw_pow2::<1>(leaf, count, acc, rng),
+        2 => draw_pow2::<2>(leaf, count, acc, rng),
+        3 => draw_pow2::<3>(leaf, count, acc, rng),
+        4 => draw_pow2::<4>(leaf, count, acc, rng),
+        5 => draw_pow2::<5>(leaf, count, acc, rng),
+        6 => draw_pow2::<6>(leaf, count, acc, rng),
+        7 => draw_pow2::<7>(leaf, count, acc, rng),
+        8 => draw_pow2::<8>(leaf, count, acc, rng),
+        9 => draw_pow2::<9>(leaf, count, acc, rng),
+        _ => draw_pow2::<10>(leaf, count, acc, rng),
     }
 }
 
@@ -163,8 +174,92 @@ fn leaf_sizes(rows: usize) -> Vec<u64> {
     out
 }
 
-fn lanes<const K: usize>(acc: &[[f64; K]; 4]) -> [f64; K] {
-    std::array::from_fn(|c| (acc[0][c] + acc[1][c]) + (acc[2][c] + acc[3][c]))
+/// Accumulators a draw loop adds into, draw j of a word into lane j mod 8: with six draws a
+/// word from a full leaf, each lane waits on one addition a word rather than two, so the loop
+/// is bound by its instructions, not by the latency of the additions. Fixed, so the sums do
+/// not depend on anything but the draws.
+const LANES: usize = 8;
+
+fn lanes<const K: usize>(acc: &[Wide; LANES]) -> [f64; K] {
+    std::array::from_fn(|c| {
+        ((acc[0][c] + acc[1][c]) + (acc[2][c] + acc[3][c]))
+            + ((acc[4][c] + acc[5][c]) + (acc[6][c] + acc[7][c]))
+    })
+}
+
+/// One chunk's counts and unshared draws, ready for its shared draws.
+struct Shared<'a, const K: usize> {
+    parts: &'a [Stratum<K>],
+    counts: &'a [u64],
+    total_leaves: usize,
+    leaf_offset: &'a [usize],
+    to_overall: &'a [[f64; K]],
+    to_stratum: &'a [f64],
+    column: usize,
+    n_strata: usize,
+}
+
+impl<const K: usize> Shared<'_, K> {
+    /// The chunk's `nb` resample sums, and each stratum's own sums into `cats`
+    /// (`cats[b * n_strata + s]`). Compiled for AVX2 where the CPU has it, so a draw is one
+    /// 256-bit load and add; the sums are the same either way (the same additions in the same
+    /// order).
+    fn draw(&self, nb: usize, cats: &mut [f64], rng: &mut Xoshiro256PlusPlus) -> Vec<[f64; K]> {
+        #[cfg(target_arch = "x86_64")]
+        if std::arch::is_x86_feature_detected!("avx2") {
+            // SAFETY: the CPU has AVX2 (checked just above).
+            return unsafe { self.draw_avx2(nb, cats, rng) };
+        }
+        self.draw_portable(nb, cats, rng)
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    unsafe fn draw_avx2(
+        &self,
+        nb: usize,
+        cats: &mut [f64],
+        rng: &mut Xoshiro256PlusPlus,
+    ) -> Vec<[f64; K]> {
+        self.draw_portable(nb, cats, rng)
+    }
+
+    #[inline(always)]
+    fn draw_portable(
+        &self,
+        nb: usize,
+        cats: &mut [f64],
+        rng: &mut Xoshiro256PlusPlus,
+    ) -> Vec<[f64; K]> {
+        let n_strata = self.n_strata;
+        let mut totals = vec![[0.0f64; K]; nb];
+        let mut acc = vec![[[0.0f64; WIDE]; LANES]; nb];
+        for (s, p) in self.parts.iter().enumerate() {
+            if p.rows.is_empty() {
+                continue;
+            }
+            acc.iter_mut().for_each(|a| *a = [[0.0; WIDE]; LANES]);
+            let mut start = 0;
+            for (l, &len) in p.leaves.iter().enumerate() {
+                let end = start + len as usize;
+                let leaf = &p.wide[start..end];
+                for (b, a) in acc.iter_mut().enumerate() {
+                    let c = self.counts[b * self.total_leaves + self.leaf_offset[s] + l];
+                    draw_leaf(leaf, c, a, rng);
+                }
+                start = end;
+            }
+            for (b, (a, total)) in acc.iter().zip(totals.iter_mut()).enumerate() {
+                let common: [f64; K] = lanes(a);
+                let j = b * n_strata + s;
+                for c in 0..K {
+                    total[c] += common[c] + self.to_overall[j][c];
+                }
+                cats[j] = common[self.column] + self.to_stratum[j];
+            }
+        }
+        totals
+    }
 }
 
 /// Resample sums of `rows` (n rows of K columns) and, per stratum, of column `column` over the
@@ -181,9 +276,11 @@ pub fn stratified_sums<const K: usize>(
 ) -> StratifiedSums<K> {
     assert_eq!(rows.len(), strata.len(), "one stratum per row");
     assert!(column < K, "stratum column out of range");
+    assert!(K <= WIDE, "at most {WIDE} columns are resampled together");
     let mut parts: Vec<Stratum<K>> = (0..n_strata)
         .map(|_| Stratum {
             rows: Vec::new(),
+            wide: Vec::new(),
             leaves: Vec::new(),
         })
         .collect();
@@ -192,6 +289,11 @@ pub fn stratified_sums<const K: usize>(
     }
     for p in &mut parts {
         p.leaves = leaf_sizes(p.rows.len());
+        p.wide = p
+            .rows
+            .iter()
+            .map(|r| std::array::from_fn(|c| if c < K { r[c] } else { 0.0 }))
+            .collect();
         assert!(
             p.rows.len() <= u32::MAX as usize,
             "more rows than the index generator supports"
@@ -254,32 +356,17 @@ pub fn stratified_sums<const K: usize>(
             // ...then the shared draws leaf by leaf, every resample of the chunk drawing from a
             // leaf while its rows are in the first-level cache: the set is read from memory once
             // a chunk instead of once a resample.
-            let mut totals = vec![[0.0f64; K]; nb];
-            let mut acc = vec![[[0.0f64; K]; 4]; nb];
-            for (s, p) in parts.iter().enumerate() {
-                if p.rows.is_empty() {
-                    continue;
-                }
-                acc.iter_mut().for_each(|a| *a = [[0.0; K]; 4]);
-                let mut start = 0;
-                for (l, &len) in p.leaves.iter().enumerate() {
-                    let end = start + len as usize;
-                    let leaf = &p.rows[start..end];
-                    for (b, a) in acc.iter_mut().enumerate() {
-                        let c = counts[b * total_leaves + leaf_offset[s] + l];
-                        draw_leaf(leaf, c, a, &mut rng);
-                    }
-                    start = end;
-                }
-                for (b, (a, total)) in acc.iter().zip(totals.iter_mut()).enumerate() {
-                    let common = lanes(a);
-                    let j = b * n_strata + s;
-                    for c in 0..K {
-                        total[c] += common[c] + to_overall[j][c];
-                    }
-                    cats[j] = common[column] + to_stratum[j];
-                }
-            }
+            let shared = Shared {
+                parts: &parts,
+                counts: &counts,
+                total_leaves,
+                leaf_offset: &leaf_offset,
+                to_overall: &to_overall,
+                to_stratum: &to_stratum,
+                column,
+                n_strata,
+            };
+            let totals = shared.draw(nb, cats, &mut rng);
             slots.copy_from_slice(&totals);
         });
     let strata_sums = (0..n_strata)

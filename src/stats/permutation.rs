@@ -194,6 +194,10 @@ pub fn sign_flip_tests_by_stratum(
 #[inline(always)]
 fn flipped(groups: &[Group], singles: &[f64], rng: &mut impl Rng) -> f64 {
     let mut grouped = 0.0f64;
+    // Random bits not yet used: a group of fewer than 64 takes its bits from here, so small
+    // groups share words instead of each drawing one (most groups are small).
+    let mut spare = 0u64;
+    let mut spare_bits = 0u32;
     for g in groups {
         let mut left = g.count;
         let mut negative = 0u32;
@@ -202,7 +206,16 @@ fn flipped(groups: &[Group], singles: &[f64], rng: &mut impl Rng) -> f64 {
             left -= 64;
         }
         if left > 0 {
-            negative += (rng.next_u64() & ((1u64 << left) - 1)).count_ones();
+            if spare_bits < left {
+                // The spare bits are too few: use them all, and the rest from a new word.
+                negative += spare.count_ones();
+                left -= spare_bits;
+                spare = rng.next_u64();
+                spare_bits = 64;
+            }
+            negative += (spare & ((1u64 << left) - 1)).count_ones();
+            spare = spare.checked_shr(left).unwrap_or(0);
+            spare_bits -= left;
         }
         grouped += g.value * (g.count as f64 - 2.0 * negative as f64);
     }
@@ -380,6 +393,53 @@ mod tests {
         let got = sign_flip_test(&d, 20_000, 5, 2);
         // Binomial standard error of p at m = 20,000 is below 0.0035; allow 4 of them.
         assert!((got.p_value - want).abs() < 0.014, "{got:?} vs {want}");
+    }
+
+    #[test]
+    fn small_groups_sharing_words_are_independent_binomials() {
+        // Groups of 20 and 30 (each fewer than 64, so they share random words): in
+        // T = 1·(20 − 2K₁) + 1000·(30 − 2K₂) the two counts can be read back, and each must
+        // be Binomial(n, ½) (mean n/2, variance n/4) and uncorrelated with the other.
+        let groups = [
+            Group {
+                value: 1.0,
+                count: 20,
+            },
+            Group {
+                value: 1000.0,
+                count: 30,
+            },
+        ];
+        let mut rng = chunk_rng(11, 3, 0);
+        let draws = 200_000;
+        let (mut s1, mut s2, mut q1, mut q2, mut c12) = (0.0, 0.0, 0.0, 0.0, 0.0);
+        for _ in 0..draws {
+            let t = flipped(&groups, &[], &mut rng);
+            let big = (t / 1000.0).round();
+            let k2 = (30.0 - big) / 2.0;
+            let k1 = (20.0 - (t - 1000.0 * big)) / 2.0;
+            assert!(k1.fract() == 0.0 && (0.0..=20.0).contains(&k1), "{t}");
+            assert!(k2.fract() == 0.0 && (0.0..=30.0).contains(&k2), "{t}");
+            s1 += k1;
+            s2 += k2;
+            q1 += k1 * k1;
+            q2 += k2 * k2;
+            c12 += k1 * k2;
+        }
+        let n = draws as f64;
+        let (m1, m2) = (s1 / n, s2 / n);
+        let (v1, v2) = (q1 / n - m1 * m1, q2 / n - m2 * m2);
+        let cov = c12 / n - m1 * m2;
+        // Standard errors at 200,000 draws: mean ~0.005, variance ~0.02, covariance ~0.01.
+        assert!(
+            (m1 - 10.0).abs() < 0.03 && (m2 - 15.0).abs() < 0.03,
+            "{m1} {m2}"
+        );
+        assert!(
+            (v1 - 5.0).abs() < 0.1 && (v2 - 7.5).abs() < 0.15,
+            "{v1} {v2}"
+        );
+        assert!(cov.abs() < 0.06, "{cov}");
     }
 
     #[test]

@@ -408,10 +408,14 @@ pub fn describe_inputs(
         path: path.display().to_string(),
         sha256,
     };
+    let (baseline_sha, candidate_sha) = rayon::join(
+        || fsutil::sha256_file(baseline),
+        || fsutil::sha256_file(candidate),
+    );
     Ok(Inputs {
         questions: file(&set.path, set.fingerprint.clone()),
-        baseline: file(baseline, fsutil::sha256_file(baseline)?),
-        candidate: file(candidate, fsutil::sha256_file(candidate)?),
+        baseline: file(baseline, baseline_sha?),
+        candidate: file(candidate, candidate_sha?),
         policy,
         approximations,
     })
