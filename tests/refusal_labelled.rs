@@ -53,11 +53,20 @@
 //! company states a fact ("as a cooperative, we have no boats ...") is content, not a lead-in;
 //! "I'm not here to tell you what to do" declines nothing.
 //!
+//! - refusal_real_heldout5.jsonl: the same GGUF file under five new system turns (a
+//!   booking-helper role, a prompt giving the exact words of a decline, a numbered list of
+//!   rules, a deckhand persona, a prompt ordering a refusal with a reason) on 50 more invented
+//!   questions (tests/fixtures/refusal_real_questions_extra4.jsonl) with the demo set and the
+//!   earlier invented sets' out-of-scope questions; labelled by the written guideline and
+//!   committed before the detector was run on it, then measured once: precision 0.852 (23/27),
+//!   recall 0.657 (23/35).
+//!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
 
 use liftgate::score::RefusalDetector;
 use serde::Deserialize;
+use std::ops::AddAssign;
 
 /// A labelled answer. The invented sets say what kind of answer each is; the sets of real model
 /// output name the question (`id`) and, for judgement calls, the reason (`note`).
@@ -69,6 +78,8 @@ struct Labelled {
     kind: Option<String>,
     #[serde(default)]
     id: Option<String>,
+    #[serde(default)]
+    variant: Option<String>,
 }
 
 struct Measured {
@@ -89,13 +100,25 @@ fn measure(file: &str) -> Measured {
     let d = RefusalDetector::default();
     let (mut tp, mut fp, mut fn_, mut tn) = (0usize, 0usize, 0usize, 0usize);
     let mut wrong = Vec::new();
+    // tp, fp, fn, tn per variant (model and system turn), in order of first appearance.
+    let mut by_variant: Vec<(&str, [usize; 4])> = Vec::new();
     for r in &rows {
         let got = d.is_refusal(&r.answer);
-        match (got, r.refusal) {
-            (true, true) => tp += 1,
-            (true, false) => fp += 1,
-            (false, true) => fn_ += 1,
-            (false, false) => tn += 1,
+        let cell = match (got, r.refusal) {
+            (true, true) => 0,
+            (true, false) => 1,
+            (false, true) => 2,
+            (false, false) => 3,
+        };
+        [&mut tp, &mut fp, &mut fn_, &mut tn][cell].add_assign(1);
+        let v = r.variant.as_deref().unwrap_or("-");
+        match by_variant.iter_mut().find(|(name, _)| *name == v) {
+            Some((_, counts)) => counts[cell] += 1,
+            None => {
+                let mut counts = [0; 4];
+                counts[cell] = 1;
+                by_variant.push((v, counts));
+            }
         }
         if got != r.refusal {
             wrong.push(format!(
@@ -113,6 +136,12 @@ fn measure(file: &str) -> Measured {
         "{file}: {} answers, tp {tp} fp {fp} fn {fn_} tn {tn}, precision {precision:.3}, recall {recall:.3}",
         rows.len()
     );
+    if by_variant.len() > 1 {
+        for (v, [tp, fp, fn_, tn]) in &by_variant {
+            let v: String = v.chars().take(90).collect();
+            eprintln!("  by variant: tp {tp} fp {fp} fn {fn_} tn {tn}: {v}");
+        }
+    }
     for w in &wrong {
         eprintln!("  {w}");
     }
@@ -201,6 +230,13 @@ fn real_output_held_out_4() {
     // questions about ..., feel free to ask", and "I'm not here to provide a magic solution";
     // missed: role denials, and a limit after a sentence of nonsense.
     at_least(&measure("refusal_real_heldout4.jsonl"), 449, 0.92, 0.92);
+}
+
+#[test]
+fn real_output_held_out_5() {
+    // Measured once, before any change written on it: precision 0.852 (23/27), recall 0.657
+    // (23/35).
+    at_least(&measure("refusal_real_heldout5.jsonl"), 514, 0.85, 0.65);
 }
 
 /// The shares the report shows for the real base model on the demo questions (the development
