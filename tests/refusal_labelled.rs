@@ -59,7 +59,8 @@
 //!   questions (tests/fixtures/refusal_real_questions_extra4.jsonl) with the demo set and the
 //!   earlier invented sets' out-of-scope questions; labelled by the written guideline and
 //!   committed before the detector was run on it, then measured once: precision 0.852 (23/27),
-//!   recall 0.657 (23/35).
+//!   recall 0.657 (23/35), the latest out-of-sample figure. Its misses led to a small widening;
+//!   in-sample since.
 //!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
@@ -235,8 +236,14 @@ fn real_output_held_out_4() {
 #[test]
 fn real_output_held_out_5() {
     // Measured once, before any change written on it: precision 0.852 (23/27), recall 0.657
-    // (23/35).
-    at_least(&measure("refusal_real_heldout5.jsonl"), 514, 0.85, 0.65);
+    // (23/35). After the widening written on it (not knowing what to say, "not familiar
+    // with", a one- or two-word exclamation as lead-in, offers named after "assistance with"
+    // or cut off, "I'm an AI assistant ..." no longer a decline), in-sample: 0.931 (27/29),
+    // 0.771 (27/35). Still missed: role denials, hand-offs in the company's voice or to "a
+    // healthcare professional", an offer of something else read as content, "unable to read
+    // tarot cards" (a verb of the service's kind); wrongly flagged: offers of the very thing
+    // asked in other words ("assist you in finding affordable options", "I'm here to help").
+    at_least(&measure("refusal_real_heldout5.jsonl"), 514, 0.93, 0.77);
 }
 
 /// The shares the report shows for the real base model on the demo questions (the development

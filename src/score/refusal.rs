@@ -50,13 +50,14 @@
 //!    rental, I can assist you with that"), and declines nothing after the offer: the answer
 //!    takes its decline back and offers the very thing asked. An offer is generic, and so a
 //!    redirect, when what it names has a word such as "other", "any", "tasks", "questions" or
-//!    "needs" ([`GENERIC_OFFER_WORDS`]); an offer of exactly what the declining sentence ends
+//!    "needs" (`GENERIC_OFFER_WORDS`); an offer of exactly what the declining sentence ends
 //!    with ("not equipped to assist with your pets. However, I can assist with your pets")
 //!    contradicts itself and gives nothing.
 //!
 //! A sentence framed as the company ("as a cooperative, we have no boats to move your booking
-//! to") states a fact of the service: it gives content rather than leading in. "I'm not here to
-//! tell you what to do" is a saying that declines nothing ([`NOT_DECLINES`]).
+//! to") states a fact of the service: it gives content rather than leading in; an exclamation
+//! of one or two words ("Euros!") leads in like courtesy. "I'm not here to tell you what to do"
+//! is a saying that declines nothing (`NOT_DECLINES`).
 //!
 //! So an answer that merely contains "sorry" ("Sorry for the wait: the 7:40 crossing runs
 //! daily") or that apologises and then answers is not a refusal. Precision and recall on the
@@ -267,7 +268,7 @@ pub const OPENING_PHRASES: &[&str] = &[
     "i do not know why",
     "i am not aware of * information",
     "i am not aware of that",
-    "i am not familiar with that",
+    "i am not familiar with",
     // Not something I can do.
     "that is not something i",
     "this is not something i",
@@ -320,6 +321,10 @@ pub const ANYWHERE_PHRASES: &[&str] = &[
     "i can not answer questions about",
     "i am not able to answer questions about",
     "not sure i can help with that",
+    // Not knowing what to answer, wherever it stands.
+    "i am not sure what to tell you",
+    "i am not sure what to say",
+    "i am not sure what to do",
     "not something we handle",
     "not something * handles",
     "i can only help with",
@@ -350,7 +355,8 @@ pub const ANYWHERE_PHRASES: &[&str] = &[
     "as an ai * i am unable",
     "as an ai language model",
     "as a language model",
-    "i am just an ai",
+    // Not "I'm just an AI": the filler "just" is dropped, and "I'm an AI assistant
+    // specialised in ..." declines nothing.
     "i am only an ai",
     "my system prompt",
     "my instructions",
@@ -561,6 +567,12 @@ const GENERIC_OFFER_WORDS: &[&str] = &[
     "concerns",
     "issues",
     "matters",
+    "matter",
+    "issue",
+    "problem",
+    "problems",
+    "thing",
+    "things",
     "needs",
     "services",
     "topics",
@@ -681,6 +693,9 @@ struct Normalised<'a> {
     /// For each token, whether it ends a sentence with a question mark (an answer that first
     /// repeats the question: "The best phone this year? I'm sorry, but ...").
     question_end: Vec<bool>,
+    /// For each token, whether it ends a sentence of one or two words with an exclamation
+    /// mark: an interjection ("Euros! I'm sorry, but I'm unable to ...", "Ahoy!").
+    interjection_end: Vec<bool>,
 }
 
 fn is_apostrophe(c: char) -> bool {
@@ -835,6 +850,7 @@ fn normalise(text: &str) -> Normalised<'_> {
     let mut sentence_start = Vec::with_capacity(tokens.len());
     let mut in_opening = Vec::with_capacity(tokens.len());
     let mut question_end = Vec::with_capacity(tokens.len());
+    let mut interjection_end = Vec::with_capacity(tokens.len());
     let mut start = 0usize;
     let mut start_opening = true;
     for (i, (tok, pos)) in tokens.into_iter().enumerate() {
@@ -844,6 +860,8 @@ fn normalise(text: &str) -> Normalised<'_> {
             start_opening = i == 0 || pos < opening_bytes;
         }
         question_end.push(matches!(tok, Tok::End) && text[pos..].starts_with('?'));
+        interjection_end
+            .push(matches!(tok, Tok::End) && text[pos..].starts_with('!') && i - start <= 2);
         toks.push(tok);
         sentence_start.push(start);
         in_opening.push(start_opening);
@@ -853,6 +871,7 @@ fn normalise(text: &str) -> Normalised<'_> {
         sentence_start,
         in_opening,
         question_end,
+        interjection_end,
     }
 }
 
@@ -1083,8 +1102,11 @@ impl RefusalDetector {
         let mut framed_we = false;
         for i in 0..n.toks.len() {
             let Tok::Word(w) = &n.toks[i] else {
-                lead_in &=
-                    all_courtesy || (framed && !framed_we) || self_described || n.question_end[i];
+                lead_in &= all_courtesy
+                    || (framed && !framed_we)
+                    || self_described
+                    || n.question_end[i]
+                    || n.interjection_end[i];
                 framed_lead |= lead_in && (framed || self_described);
                 all_courtesy = true;
                 framed = false;
@@ -1222,36 +1244,53 @@ impl RefusalDetector {
     }
 
     /// "If you need X, I can (certainly) assist/help (you) with that", X specific: X and the
-    /// end of the offer.
+    /// end of the offer. The condition may name X after "assistance with" or "help with"; the
+    /// offer may also read "I'd be happy to help" or "I am happy to help", and may end its
+    /// sentence (or the answer, cut off) instead of "with that".
     fn specific_conditional_offer<'t, 'a>(
         &self,
         toks: &'t [Tok<'a>],
         k: usize,
     ) -> Option<(&'t [Tok<'a>], usize)> {
-        let e = self.offer_condition.match_at(toks, k)?;
+        let mut e = self.offer_condition.match_at(toks, k)?;
         let word = |j: usize| match toks.get(j) {
             Some(Tok::Word(w)) => Some(w.as_ref()),
             _ => None,
         };
+        if matches!(word(e), Some("assistance" | "help")) && word(e + 1) == Some("with") {
+            e += 2;
+        }
         let subject = (e..toks.len().min(e + OFFER_MAX_WORDS + 1))
             .find(|&j| matches!(word(j), Some("i" | "we") | None))?;
+        word(subject)?;
         let mut j = subject + 1;
-        let mut expect = |options: &[&str], optional: bool| -> bool {
+        let mut expect = |options: &[&str]| -> bool {
             match word(j) {
                 Some(w) if options.contains(&w) => {
                     j += 1;
                     true
                 }
-                _ => optional,
+                _ => false,
             }
         };
-        let offer = word(subject).is_some()
-            && expect(&["can"], false)
-            && expect(&["certainly"], true)
-            && expect(&["assist", "help"], false)
-            && expect(&["you"], true)
-            && expect(&["with"], false)
-            && expect(&["that", "this", "it"], false);
+        let willing = if expect(&["can"]) {
+            expect(&["certainly"]);
+            true
+        } else if expect(&["am"]) {
+            // Not "I'm here to help": after a decline it offers help in general, as the
+            // labelled sets read it.
+            expect(&["happy", "glad"]) && expect(&["to"])
+        } else {
+            expect(&["would"]) && expect(&["be"]) && expect(&["happy", "glad"]) && expect(&["to"])
+        };
+        let offer = willing && expect(&["assist", "help"]) && {
+            expect(&["you"]);
+            if expect(&["with"]) {
+                expect(&["that", "this", "it"])
+            } else {
+                matches!(toks.get(j), Some(Tok::End) | None)
+            }
+        };
         (offer && specific(&toks[e..subject])).then_some((&toks[e..subject], j))
     }
 }

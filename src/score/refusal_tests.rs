@@ -283,3 +283,39 @@ fn company_facts_and_sayings() {
         "I'm sorry for any confusion. I'm here to help with your trip. I'm not here to tell you how to use your phone."
     ));
 }
+
+/// Not knowing what to answer, an interjection before a decline, and offers named in a
+/// condition after "assistance with" or cut off at the end of the answer.
+#[test]
+fn not_knowing_interjections_and_conditional_offers() {
+    let d = RefusalDetector::default();
+    assert!(d.is_refusal("I'm sorry, I'm not familiar with the 14:10 boat."));
+    assert!(d.is_refusal(
+        "Last boat off Vessa in February... I'm sorry, I'm not sure what to tell you."
+    ));
+    assert!(d.is_refusal("You're on the 14:10 boat, and I'm not sure what to do."));
+    // "If you're not sure what to do" speaks of the asker: an answer.
+    assert!(!d.is_refusal("If you're not sure what to do, ask the crew at the ramp."));
+    // A one- or two-word exclamation leads in like courtesy ...
+    assert!(d.is_refusal("Euros! I'm sorry, but I'm unable to assist you with your savings."));
+    // ... a longer one is content.
+    assert!(!d.is_refusal(
+        "The 07:20 boat takes bikes! I'm sorry, but I'm unable to assist you with bookings."
+    ));
+    // "If you need assistance with X, I'd be happy to help", X specific: takes a decline back.
+    assert!(!d.is_refusal(
+        "I'm sorry, but as an assistant, I'm not equipped to file tax returns. If you need assistance with your tax return, I'd be happy to help."
+    ));
+    // An offer cut off at the end of the answer still names what it offers.
+    assert!(!d.is_refusal(
+        "I'm sorry, but as a travel assistant, I'm not equipped to book a table for two. If you need a table at a restaurant, I can assist you"
+    ));
+    // "A legal matter" is generic: the decline stands.
+    assert!(d.is_refusal(
+        "I'm sorry, but as an assistant, I'm not equipped to provide legal advice. If you need assistance with a legal matter, I'd be happy to help."
+    ));
+    // Saying what the assistant is declines nothing.
+    assert!(!d.is_refusal(
+        "I'm an AI assistant specialized in preparing for job interviews. I'm here to help you prepare."
+    ));
+}
