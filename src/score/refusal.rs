@@ -43,7 +43,21 @@
 //!    "call", "help", "other", ...; "suggest" and "recommend" only with such a verb) nor match
 //!    a phrase:
 //!    "I can't say for sure, but the morning sailings usually fill first" gives the information,
-//!    so it is an answer.
+//!    so it is an answer;
+//! 4. **offer rule**: a matched phrase does not count when, after it, the answer offers help
+//!    with something specific, either after a contrast word ("However, I can certainly assist
+//!    you with your bags and boarding") or naming it in a condition ("If you need a bike
+//!    rental, I can assist you with that"), and declines nothing after the offer: the answer
+//!    takes its decline back and offers the very thing asked. An offer is generic, and so a
+//!    redirect, when what it names has a word such as "other", "any", "tasks", "questions" or
+//!    "needs" (`GENERIC_OFFER_WORDS`); an offer of exactly what the declining sentence ends
+//!    with ("not equipped to assist with your pets. However, I can assist with your pets")
+//!    contradicts itself and gives nothing.
+//!
+//! A sentence framed as the company ("as a cooperative, we have no boats to move your booking
+//! to") states a fact of the service: it gives content rather than leading in; an exclamation
+//! of one or two words ("Euros!") leads in like courtesy. "I'm not here to tell you what to do"
+//! is a saying that declines nothing (`NOT_DECLINES`).
 //!
 //! So an answer that merely contains "sorry" ("Sorry for the wait: the 7:40 crossing runs
 //! daily") or that apologises and then answers is not a refusal. Precision and recall on the
@@ -254,7 +268,7 @@ pub const OPENING_PHRASES: &[&str] = &[
     "i do not know why",
     "i am not aware of * information",
     "i am not aware of that",
-    "i am not familiar with that",
+    "i am not familiar with",
     // Not something I can do.
     "that is not something i",
     "this is not something i",
@@ -307,6 +321,10 @@ pub const ANYWHERE_PHRASES: &[&str] = &[
     "i can not answer questions about",
     "i am not able to answer questions about",
     "not sure i can help with that",
+    // Not knowing what to answer, wherever it stands.
+    "i am not sure what to tell you",
+    "i am not sure what to say",
+    "i am not sure what to do",
     "not something we handle",
     "not something * handles",
     "i can only help with",
@@ -337,7 +355,8 @@ pub const ANYWHERE_PHRASES: &[&str] = &[
     "as an ai * i am unable",
     "as an ai language model",
     "as a language model",
-    "i am just an ai",
+    // Not "I'm just an AI": the filler "just" is dropped, and "I'm an AI assistant
+    // specialised in ..." declines nothing.
     "i am only an ai",
     "my system prompt",
     "my instructions",
@@ -488,6 +507,96 @@ const REDIRECT_WORDS: &[&str] = &[
 
 const CONTRAST_WORDS: &[&str] = &["but", "however", "although", "though", "still"];
 
+/// Sayings that match an opening phrase but decline nothing: "I'm not here to tell you what to
+/// do" disowns lecturing the asker, not the question.
+const NOT_DECLINES: &[&str] = &[
+    "i am not here to tell you what to do",
+    "i am not here to judge",
+    "i am not here to lecture",
+];
+
+/// Heads of an offer to help after a decline: "however, I can certainly assist you with your
+/// bags and boarding" takes the decline back when what it names is specific (see
+/// [`GENERIC_OFFER_WORDS`]).
+const OFFER_HEADS: &[&str] = &[
+    "i can assist you with",
+    "i can assist with",
+    "i can help you with",
+    "i can help with",
+    "we can assist you with",
+    "we can assist with",
+    "we can help you with",
+    "we can help with",
+    "i can certainly assist you with",
+    "i can certainly assist with",
+    "i can certainly help you with",
+    "i can certainly help with",
+    "we can certainly assist you with",
+    "we can certainly assist with",
+    "we can certainly help you with",
+    "we can certainly help with",
+];
+
+/// Words that make an offer generic, so that it redirects rather than takes a decline back:
+/// "I can assist with any other questions", "... with digital tasks, such as ...", "... with
+/// your transportation needs".
+const GENERIC_OFFER_WORDS: &[&str] = &[
+    "other",
+    "others",
+    "any",
+    "anything",
+    "else",
+    "something",
+    "everything",
+    "various",
+    "variety",
+    "specific",
+    "general",
+    "further",
+    "additional",
+    "more",
+    "all",
+    "tasks",
+    "task",
+    "questions",
+    "question",
+    "inquiries",
+    "enquiries",
+    "requests",
+    "request",
+    "concerns",
+    "issues",
+    "matters",
+    "matter",
+    "issue",
+    "problem",
+    "problems",
+    "thing",
+    "things",
+    "needs",
+    "services",
+    "topics",
+    "digital",
+    "that",
+    "this",
+    "it",
+    "i",
+    "we",
+    "not",
+];
+
+/// Openings of a condition that names the thing offered: "if you need a bike rental, I can
+/// assist you with that".
+const OFFER_CONDITIONS: &[&str] = &[
+    "if you need",
+    "if you want",
+    "if you would like",
+    "if you are looking for",
+];
+
+/// Most words an offer may name (in the condition, or after "with").
+const OFFER_MAX_WORDS: usize = 12;
+
 /// Phrases of a sentence in which the assistant describes itself ("as a support assistant, I
 /// specialise in ...", "my primary role is to assist") or offers help in general ("I'd be happy
 /// to help", "if you need assistance, I'm ready to assist"): like courtesy, such a sentence
@@ -584,6 +693,9 @@ struct Normalised<'a> {
     /// For each token, whether it ends a sentence with a question mark (an answer that first
     /// repeats the question: "The best phone this year? I'm sorry, but ...").
     question_end: Vec<bool>,
+    /// For each token, whether it ends a sentence of one or two words with an exclamation
+    /// mark: an interjection ("Euros! I'm sorry, but I'm unable to ...", "Ahoy!").
+    interjection_end: Vec<bool>,
 }
 
 fn is_apostrophe(c: char) -> bool {
@@ -738,6 +850,7 @@ fn normalise(text: &str) -> Normalised<'_> {
     let mut sentence_start = Vec::with_capacity(tokens.len());
     let mut in_opening = Vec::with_capacity(tokens.len());
     let mut question_end = Vec::with_capacity(tokens.len());
+    let mut interjection_end = Vec::with_capacity(tokens.len());
     let mut start = 0usize;
     let mut start_opening = true;
     for (i, (tok, pos)) in tokens.into_iter().enumerate() {
@@ -747,6 +860,8 @@ fn normalise(text: &str) -> Normalised<'_> {
             start_opening = i == 0 || pos < opening_bytes;
         }
         question_end.push(matches!(tok, Tok::End) && text[pos..].starts_with('?'));
+        interjection_end
+            .push(matches!(tok, Tok::End) && text[pos..].starts_with('!') && i - start <= 2);
         toks.push(tok);
         sentence_start.push(start);
         in_opening.push(start_opening);
@@ -756,6 +871,7 @@ fn normalise(text: &str) -> Normalised<'_> {
         sentence_start,
         in_opening,
         question_end,
+        interjection_end,
     }
 }
 
@@ -896,6 +1012,11 @@ pub struct RefusalDetector {
     framed_inability: Trie,
     /// [`ROLE_DENIALS`]: disclaimers after a contrast word, never content.
     role_denial: Trie,
+    /// [`NOT_DECLINES`]: sayings that veto an opening phrase at the same place.
+    not_decline: Trie,
+    /// [`OFFER_HEADS`] and [`OFFER_CONDITIONS`].
+    offer_head: Trie,
+    offer_condition: Trie,
     courtesy: HashSet<&'static str, BuildHasherDefault<FxHasher>>,
 }
 
@@ -925,12 +1046,21 @@ impl Default for RefusalDetector {
         role_denial.insert_phrases(ROLE_DENIALS);
         let mut describes_self = Trie::new();
         describes_self.insert_phrases(SELF_DESCRIPTION);
+        let mut not_decline = Trie::new();
+        not_decline.insert_phrases(NOT_DECLINES);
+        let mut offer_head = Trie::new();
+        offer_head.insert_phrases(OFFER_HEADS);
+        let mut offer_condition = Trie::new();
+        offer_condition.insert_phrases(OFFER_CONDITIONS);
         RefusalDetector {
             opening,
             anywhere,
             describes_self,
             framed_inability,
             role_denial,
+            not_decline,
+            offer_head,
+            offer_condition,
             courtesy: COURTESY_WORDS.iter().copied().collect(),
         }
     }
@@ -966,12 +1096,21 @@ impl RefusalDetector {
         let mut contrasted = false;
         // Whether a lead-in sentence so far framed or described the assistant.
         let mut framed_lead = false;
+        // Whether the company speaks ("we") after a frame in the current sentence: "as a
+        // cooperative, we have no boats to move your booking to" states a fact of the service,
+        // so the sentence gives content rather than leading in.
+        let mut framed_we = false;
         for i in 0..n.toks.len() {
             let Tok::Word(w) = &n.toks[i] else {
-                lead_in &= all_courtesy || framed || self_described || n.question_end[i];
+                lead_in &= all_courtesy
+                    || (framed && !framed_we)
+                    || self_described
+                    || n.question_end[i]
+                    || n.interjection_end[i];
                 framed_lead |= lead_in && (framed || self_described);
                 all_courtesy = true;
                 framed = false;
+                framed_we = false;
                 self_described = false;
                 contrasted = false;
                 continue;
@@ -987,6 +1126,7 @@ impl RefusalDetector {
                     || framed
                     || self_described
                     || (i > n.sentence_start[i] && linking_word(&n.toks[i - 1])))
+                && self.not_decline.match_at(&n.toks, i).is_none()
             {
                 found = self.opening.match_at(&n.toks, i);
                 if found.is_none() && (framed || framed_lead || self_described) {
@@ -999,12 +1139,15 @@ impl RefusalDetector {
             {
                 framed = true;
             }
+            framed_we |= framed && w == "we";
             contrasted |= CONTRAST_WORDS.contains(&w.as_ref());
             if all_courtesy {
                 all_courtesy = self.courtesy.contains(w.as_ref());
             }
             if let Some(end) = found {
-                if !self.answers_after(&n.toks, end) {
+                if !self.answers_after(&n.toks, end)
+                    && !self.offers_after(&n.toks, n.sentence_start[i], end)
+                {
                     return true;
                 }
             }
@@ -1043,6 +1186,123 @@ impl RefusalDetector {
         });
         !phrase_in_rest
     }
+}
+
+impl RefusalDetector {
+    /// The offer rule: after a matched phrase ending at `end`, does the answer offer to help
+    /// with something specific ("However, I can certainly assist you with booking a table at
+    /// a restaurant"; "If you need a bike rental, I can assist you with that"), and then not
+    /// decline again? Such an offer takes the decline back; an offer of help with "any other
+    /// questions" or "digital tasks" ([`GENERIC_OFFER_WORDS`]) does not, nor one that names
+    /// what the declining sentence (from `start`) ends with, word for word ("I'm not equipped
+    /// to assist with your pets. However, I can certainly assist with your pets." contradicts
+    /// itself and gives nothing).
+    fn offers_after(&self, toks: &[Tok], start: usize, end: usize) -> bool {
+        let decline_end = (end..toks.len())
+            .find(|&j| matches!(toks[j], Tok::End))
+            .unwrap_or(toks.len());
+        let declined = &toks[start..decline_end];
+        for k in end..toks.len() {
+            // An offer after "however" or "but", or one that names its object in a condition.
+            let contrasted = k > 0
+                && matches!(&toks[k - 1], Tok::Word(w) if CONTRAST_WORDS.contains(&w.as_ref()));
+            let offer_end = contrasted
+                .then(|| self.specific_offer_after_head(toks, k))
+                .flatten()
+                .or_else(|| self.specific_conditional_offer(toks, k));
+            let Some((named, e)) = offer_end else {
+                continue;
+            };
+            if declined.ends_with(named) {
+                continue;
+            }
+            let rest = &toks[e..];
+            let declines_again = (0..rest.len()).any(|j| {
+                self.anywhere.match_at(rest, j).is_some()
+                    || self.opening.match_at(rest, j).is_some()
+                    || self.role_denial.match_at(rest, j).is_some()
+            });
+            if !declines_again {
+                return true;
+            }
+        }
+        false
+    }
+
+    /// "I can (certainly) assist/help (you) with X", X specific: X and the end of its
+    /// sentence.
+    fn specific_offer_after_head<'t, 'a>(
+        &self,
+        toks: &'t [Tok<'a>],
+        k: usize,
+    ) -> Option<(&'t [Tok<'a>], usize)> {
+        let e = self.offer_head.match_at(toks, k)?;
+        let stop = (e..toks.len())
+            .find(|&j| matches!(toks[j], Tok::End))
+            .unwrap_or(toks.len());
+        specific(&toks[e..stop]).then_some((&toks[e..stop], stop))
+    }
+
+    /// "If you need X, I can (certainly) assist/help (you) with that", X specific: X and the
+    /// end of the offer. The condition may name X after "assistance with" or "help with"; the
+    /// offer may also read "I'd be happy to help" or "I am happy to help", and may end its
+    /// sentence (or the answer, cut off) instead of "with that".
+    fn specific_conditional_offer<'t, 'a>(
+        &self,
+        toks: &'t [Tok<'a>],
+        k: usize,
+    ) -> Option<(&'t [Tok<'a>], usize)> {
+        let mut e = self.offer_condition.match_at(toks, k)?;
+        let word = |j: usize| match toks.get(j) {
+            Some(Tok::Word(w)) => Some(w.as_ref()),
+            _ => None,
+        };
+        if matches!(word(e), Some("assistance" | "help")) && word(e + 1) == Some("with") {
+            e += 2;
+        }
+        let subject = (e..toks.len().min(e + OFFER_MAX_WORDS + 1))
+            .find(|&j| matches!(word(j), Some("i" | "we") | None))?;
+        word(subject)?;
+        let mut j = subject + 1;
+        let mut expect = |options: &[&str]| -> bool {
+            match word(j) {
+                Some(w) if options.contains(&w) => {
+                    j += 1;
+                    true
+                }
+                _ => false,
+            }
+        };
+        let willing = if expect(&["can"]) {
+            expect(&["certainly"]);
+            true
+        } else if expect(&["am"]) {
+            // Not "I'm here to help": after a decline it offers help in general, as the
+            // labelled sets read it.
+            expect(&["happy", "glad"]) && expect(&["to"])
+        } else {
+            expect(&["would"]) && expect(&["be"]) && expect(&["happy", "glad"]) && expect(&["to"])
+        };
+        let offer = willing && expect(&["assist", "help"]) && {
+            expect(&["you"]);
+            if expect(&["with"]) {
+                expect(&["that", "this", "it"])
+            } else {
+                matches!(toks.get(j), Some(Tok::End) | None)
+            }
+        };
+        (offer && specific(&toks[e..subject])).then_some((&toks[e..subject], j))
+    }
+}
+
+/// Whether the words an offer names are specific: one to [`OFFER_MAX_WORDS`] words, none of
+/// them generic ([`GENERIC_OFFER_WORDS`]).
+fn specific(named: &[Tok]) -> bool {
+    (1..=OFFER_MAX_WORDS).contains(&named.len())
+        && named.iter().all(|t| match t {
+            Tok::Word(w) => !GENERIC_OFFER_WORDS.contains(&w.as_ref()),
+            Tok::End => false,
+        })
 }
 
 /// A word that links a clause to an opening phrase ("..., so I can't advise on that").

@@ -215,3 +215,107 @@ fn self_description_and_exclusion() {
         "The 07:20 boat takes bikes. I'm a help desk assistant, and I'm not equipped to reserve spaces."
     ));
 }
+
+/// A decline followed by an offer of something specific takes the decline back (the answer
+/// offers the very thing asked); a generic offer, an offer taken back, or an offer of exactly
+/// what was just declined does not.
+#[test]
+fn specific_offers_take_a_decline_back() {
+    let d = RefusalDetector::default();
+    // "However, I can assist you with X", X specific.
+    assert!(!d.is_refusal(
+        "I'm sorry, but as a chatbot, I don't have the ability to arrange personal items. However, I can certainly assist you with your bags and boarding."
+    ));
+    // "If you need X, I can assist you with that", X specific.
+    assert!(!d.is_refusal(
+        "I'm sorry, but as a ferry cooperative, I'm not equipped to rent bicycles. If you need a bicycle, I can assist you with that."
+    ));
+    // Generic offers redirect: any other questions, digital tasks, your needs.
+    assert!(d.is_refusal(
+        "I'm sorry, but as a chatbot, I'm unable to assist with bicycle chains. However, I can assist you with any other questions you may have."
+    ));
+    assert!(d.is_refusal(
+        "I'm sorry, but as a chatbot, I don't have the capability to assist with vehicles. However, I can certainly assist with digital tasks, such as sending emails."
+    ));
+    assert!(d.is_refusal(
+        "I'm sorry, but as a chat assistant, I'm not equipped to rent bikes. However, I can assist you with your transportation needs."
+    ));
+    // An offer without "however"/"but" or a condition is a self-description, not a take-back.
+    assert!(d.is_refusal(
+        "That question is outside my scope. I can help with timetables, fares and bookings."
+    ));
+    // The offer taken back at once.
+    assert!(d.is_refusal(
+        "I'm sorry, but as a chat assistant, I'm not equipped to book tables. If you need a table at a restaurant, I can help with that, but I'm not equipped to book tables."
+    ));
+    // The condition must lead straight to the offer: "I'm sure I can help" after it is not one.
+    assert!(d.is_refusal(
+        "I'm sorry, but as a chatbot, I'm not equipped to give advice on coffee. If you're looking for a coffee, I'm sure I can help with that."
+    ));
+    // Offering exactly what the declining sentence ends with contradicts itself: nothing given.
+    assert!(d.is_refusal(
+        "I'm sorry, but as a support assistant, I'm not equipped to assist with your pets. However, I can certainly assist with your pets."
+    ));
+    // ... but a part of the declined sentence that is not its end is offered in earnest.
+    assert!(!d.is_refusal(
+        "I'm sorry, but as a ferry assistant, I'm unable to provide information about booking a table for two at a restaurant. If you need a table for two, I can assist you with that."
+    ));
+}
+
+/// A framed sentence in which the company states a fact ("as a cooperative, we have no boats")
+/// gives content, so a decline after it is a disclaimer; "I'm not here to tell you what to do"
+/// declines nothing.
+#[test]
+fn company_facts_and_sayings() {
+    let d = RefusalDetector::default();
+    assert!(!d.is_refusal(
+        "We're sorry, but as a ferry cooperative, we have no boats left to move your booking to. We're unable to assist with your current booking."
+    ));
+    // Framed in the first person, the same shape still leads in.
+    assert!(d.is_refusal(
+        "I'm sorry, but as a help desk assistant, my primary role is to assist with trips. I'm unable to assist with your current booking."
+    ));
+    assert!(!d.is_refusal(
+        "I'm here to help with any kind of project. I'm not here to tell you what to do. I can help you get started."
+    ));
+    // "Not here to" with an object of the question still declines.
+    assert!(d.is_refusal(
+        "I'm sorry for any confusion. I'm here to help with your trip. I'm not here to tell you how to use your phone."
+    ));
+}
+
+/// Not knowing what to answer, an interjection before a decline, and offers named in a
+/// condition after "assistance with" or cut off at the end of the answer.
+#[test]
+fn not_knowing_interjections_and_conditional_offers() {
+    let d = RefusalDetector::default();
+    assert!(d.is_refusal("I'm sorry, I'm not familiar with the 14:10 boat."));
+    assert!(d.is_refusal(
+        "Last boat off Vessa in February... I'm sorry, I'm not sure what to tell you."
+    ));
+    assert!(d.is_refusal("You're on the 14:10 boat, and I'm not sure what to do."));
+    // "If you're not sure what to do" speaks of the asker: an answer.
+    assert!(!d.is_refusal("If you're not sure what to do, ask the crew at the ramp."));
+    // A one- or two-word exclamation leads in like courtesy ...
+    assert!(d.is_refusal("Euros! I'm sorry, but I'm unable to assist you with your savings."));
+    // ... a longer one is content.
+    assert!(!d.is_refusal(
+        "The 07:20 boat takes bikes! I'm sorry, but I'm unable to assist you with bookings."
+    ));
+    // "If you need assistance with X, I'd be happy to help", X specific: takes a decline back.
+    assert!(!d.is_refusal(
+        "I'm sorry, but as an assistant, I'm not equipped to file tax returns. If you need assistance with your tax return, I'd be happy to help."
+    ));
+    // An offer cut off at the end of the answer still names what it offers.
+    assert!(!d.is_refusal(
+        "I'm sorry, but as a travel assistant, I'm not equipped to book a table for two. If you need a table at a restaurant, I can assist you"
+    ));
+    // "A legal matter" is generic: the decline stands.
+    assert!(d.is_refusal(
+        "I'm sorry, but as an assistant, I'm not equipped to provide legal advice. If you need assistance with a legal matter, I'd be happy to help."
+    ));
+    // Saying what the assistant is declines nothing.
+    assert!(!d.is_refusal(
+        "I'm an AI assistant specialized in preparing for job interviews. I'm here to help you prepare."
+    ));
+}
