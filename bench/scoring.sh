@@ -9,6 +9,8 @@
 #        WORK    scratch directory (default: a new temporary directory, removed at the end)
 #        BEFORE  another liftgate binary (e.g. a copy of an earlier build) to time on the same
 #                files in the same run, before this one, for a side-by-side comparison
+#        ROUNDS  how many times to time the binaries, alternating (default 1): on a shared
+#                machine the spread of several rounds says more than one pair of figures
 #        EMBEDDER  a sentence-embedding model directory (e.g. all-MiniLM-L6-v2): also times
 #                `grade --embedder` of the current binary on EMBED_PAIRS invented pairs
 #                (default 2000; embedding costs far more than the other scores) and reports
@@ -56,10 +58,13 @@ run() {
   echo "{\"binary\": \"$label\", \"kind\": \"liftgate_grade_plus_weigh\", \"pairs\": $PAIRS, \"seconds\": $total, \"cores\": $(nproc), \"load_average\": \"$(cut -d' ' -f1-3 /proc/loadavg)\"}"
 }
 
-if [ -n "${BEFORE:-}" ]; then
-  run before "$BEFORE"
-fi
-run current target/release/liftgate
+# ROUNDS rounds, the two binaries alternating within each, so both meet the same load.
+for round in $(seq "${ROUNDS:-1}"); do
+  if [ -n "${BEFORE:-}" ]; then
+    run before "$BEFORE"
+  fi
+  run current target/release/liftgate
+done
 
 if [ -n "${EMBEDDER:-}" ]; then
   EMBED_PAIRS="${EMBED_PAIRS:-2000}"
