@@ -8,7 +8,7 @@
 //! ([`crate::formats::run_record::RunInfo`]); it too is optional for a reader.
 
 use super::questions::QuestionSet;
-use super::{check, check_ids, row_error, run_record};
+use super::{check, check_ids, parse_lines, row_error, run_record};
 use crate::error::Result;
 use crate::fsutil;
 use serde::{Deserialize, Serialize};
@@ -61,33 +61,26 @@ pub fn load_rows(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>> {
 /// An answers file's rows with their line numbers, parsed but not yet matched to a question
 /// set (so the file can be read while the set is).
 pub fn read_rows(path: &Path) -> Result<Vec<(usize, AnswerRecord)>> {
-    use rayon::prelude::*;
-    let lines = fsutil::read_jsonl_lines(path)?;
-    // Lines are parsed in parallel; the first error in line order is the one reported.
-    let parsed: Vec<Result<(usize, AnswerRecord)>> = lines
-        .par_iter()
-        .map(|(line, text)| {
-            let row: AnswerRecord = serde_json::from_str(text).map_err(|e| {
-                row_error(
-                    path,
-                    *line,
-                    text,
-                    "answer row",
-                    &e,
-                    &[
-                        ("id", true, check::<String>),
-                        ("answer", true, check::<String>),
-                        ("finish", false, check::<Option<Finish>>),
-                        ("prompt_tokens", false, check::<Option<usize>>),
-                        ("new_tokens", false, check::<Option<usize>>),
-                        ("ms", false, check::<Option<u64>>),
-                    ],
-                )
-            })?;
-            Ok((*line, row))
-        })
-        .collect();
-    parsed.into_iter().collect()
+    parse_lines(&fsutil::read_jsonl_lines(path)?, |line, text| {
+        let row: AnswerRecord = serde_json::from_str(text).map_err(|e| {
+            row_error(
+                path,
+                line,
+                text,
+                "answer row",
+                &e,
+                &[
+                    ("id", true, check::<String>),
+                    ("answer", true, check::<String>),
+                    ("finish", false, check::<Option<Finish>>),
+                    ("prompt_tokens", false, check::<Option<usize>>),
+                    ("new_tokens", false, check::<Option<usize>>),
+                    ("ms", false, check::<Option<u64>>),
+                ],
+            )
+        })?;
+        Ok((line, row))
+    })
 }
 
 /// The rows of [`read_rows`] checked against the question set's ids, in order.

@@ -10,7 +10,7 @@
 
 use super::questions::{Expect, QuestionSet};
 use super::run_record::check_set_fingerprint;
-use super::{check, check_ids, row_error};
+use super::{check, check_ids, parse_lines, row_error};
 use crate::error::{Error, Result};
 use crate::fsutil;
 use serde::{Deserialize, Serialize};
@@ -53,14 +53,9 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<GradeRecord>> 
 /// A grades file's rows with their line numbers, parsed and range-checked but not yet matched
 /// to a question set (so several files can be read at once, before the set is loaded).
 pub fn read_rows(path: &Path) -> Result<Vec<(usize, GradeRecord)>> {
-    use rayon::prelude::*;
-    let lines = fsutil::read_jsonl_lines(path)?;
-    // Lines are parsed and checked in parallel; the first error in line order is reported.
-    let parsed: Vec<Result<(usize, GradeRecord)>> = lines
-        .par_iter()
-        .map(|(line, text)| parse_row(path, *line, text))
-        .collect();
-    parsed.into_iter().collect()
+    parse_lines(&fsutil::read_jsonl_lines(path)?, |line, text| {
+        parse_row(path, line, text)
+    })
 }
 
 /// The rows of [`read_rows`] checked against the question set, id for id and in order.

@@ -17,6 +17,20 @@ use crate::error::{Error, Result};
 use questions::QuestionSet;
 use std::path::Path;
 
+/// Each `(line, text)` of a JSONL file through `parse`, in parallel; the rows in line order,
+/// or the first error in line order (the one a reader going line by line would meet).
+pub fn parse_lines<T: Send>(
+    lines: &[(usize, String)],
+    parse: impl Fn(usize, &str) -> Result<T> + Sync,
+) -> Result<Vec<T>> {
+    use rayon::prelude::*;
+    let parsed: Vec<Result<T>> = lines
+        .par_iter()
+        .map(|(line, text)| parse(*line, text))
+        .collect();
+    parsed.into_iter().collect()
+}
+
 /// Whether a JSON value deserialises as `T`; the reason when it does not.
 pub fn check<T: serde::de::DeserializeOwned>(v: &serde_json::Value) -> Option<String> {
     T::deserialize(v).err().map(|e| e.to_string())

@@ -87,7 +87,8 @@ impl QuestionSet {
                 "the question set is empty: expected one JSON object a line",
             ));
         }
-        // Lines are parsed in parallel; errors are reported in line order, the first one.
+        // Lines are parsed in parallel; errors are reported in line order, the first one (a
+        // duplicate id before a later line's parse error, as a reader line by line would).
         use rayon::prelude::*;
         let parsed: Vec<Result<Question>> = lines
             .par_iter()
