@@ -39,25 +39,10 @@ pub fn write_grades(
         }
         None => None,
     };
-    // The answers' fingerprint is taken while the rows are written out, in parallel chunks.
+    // The answers' fingerprint is taken while the rows are serialised.
     let (answers_sha, rows) = rayon::join(
         || fsutil::sha256_file(answers_path),
-        || {
-            grades
-                .par_chunks(4096)
-                .map(|chunk| {
-                    let mut bytes = Vec::with_capacity(chunk.len() * 256);
-                    for g in chunk {
-                        serde_json::to_writer(&mut bytes, g).map_err(|e| {
-                            crate::Error::internal(format!("cannot serialise a grade row: {e}"))
-                        })?;
-                        bytes.push(b'\n');
-                    }
-                    Ok(bytes)
-                })
-                .collect::<Result<Vec<Vec<u8>>>>()
-                .map(|chunks| chunks.concat())
-        },
+        || fsutil::jsonl_bytes(grades),
     );
     let info = GradeRunInfo {
         tool: "liftgate".into(),
