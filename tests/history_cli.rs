@@ -409,6 +409,39 @@ fn a_newer_schema_is_refused_and_left_unchanged() {
 }
 
 #[test]
+fn a_weigh_that_fails_after_reading_leaves_the_history_as_it_was() {
+    // The history's transaction is begun while the statistics are computed; a weigh that
+    // fails there (a policy gating on scores the grades lack) must roll it back.
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path();
+    weigh_inputs(dir);
+    std::fs::write(dir.join("semantic.toml"), "[lift]\nmetric = \"semantic\"\n").unwrap();
+    // No history yet: none is left behind.
+    let out = weigh(dir, "reports/a", &["--policy", "semantic.toml"]);
+    assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
+    assert!(!dir.join("reports/history.sqlite").exists());
+    assert!(!dir.join("reports/a").exists());
+    // A history with one run: byte for byte unchanged, no journal beside it.
+    let first = weigh(dir, "reports/b", &[]);
+    assert!(
+        matches!(first.status.code(), Some(0 | 1)),
+        "{}",
+        text(&first.stderr)
+    );
+    let history = dir.join("reports/history.sqlite");
+    let before = std::fs::read(&history).unwrap();
+    let out = weigh(dir, "reports/c", &["--policy", "semantic.toml"]);
+    assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
+    assert_eq!(std::fs::read(&history).unwrap(), before);
+    let mut names: Vec<String> = std::fs::read_dir(dir.join("reports"))
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .collect();
+    names.sort();
+    assert_eq!(names, ["b", "history.sqlite"]);
+}
+
+#[test]
 fn a_failed_recording_keeps_the_report_and_says_how_to_record_it() {
     let tmp = tempfile::tempdir().unwrap();
     let dir = tmp.path();

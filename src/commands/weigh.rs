@@ -40,17 +40,21 @@ pub fn run(args: &WeighArgs) -> Result<Outcome> {
         settings.resamples,
         settings.seed
     );
-    let summary = weigh::weigh(&WeighInput {
-        set: &set,
-        baseline: &baseline,
-        candidate: &candidate,
-        policy: &policy,
-        settings,
-        inputs,
-    })?;
-    report::write_report_dir(&args.report, &summary)?;
     let graded = history::two((&baseline, &args.baseline), (&candidate, &args.candidate));
-    history::record_after_report(history.as_ref(), &set, &graded, &summary, &args.report);
+    // The history's share of recording runs alongside the statistics; it commits only once
+    // the report is written.
+    let summary = history::record_alongside(history.as_ref(), &set, &graded, &args.report, || {
+        let summary = weigh::weigh(&WeighInput {
+            set: &set,
+            baseline: &baseline,
+            candidate: &candidate,
+            policy: &policy,
+            settings,
+            inputs,
+        })?;
+        report::write_report_dir(&args.report, &summary)?;
+        Ok(summary)
+    })?;
     print!("{}", report::terminal::render(&summary));
     println!("report: {}", args.report.join("report.md").display());
     Ok(Outcome::from_verdict(summary.verdict.go))

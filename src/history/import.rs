@@ -137,7 +137,7 @@ pub fn import_report(opts: &RecordOptions, req: &ImportRequest) -> Result<(i64, 
                     ));
                 }
             }
-            let questions = base
+            let questions: Vec<NewQuestion> = base
                 .iter()
                 .map(|g| NewQuestion {
                     key: QuestionKey {
@@ -156,17 +156,18 @@ pub fn import_report(opts: &RecordOptions, req: &ImportRequest) -> Result<(i64, 
                     grades_path: p,
                 })
                 .collect();
-            let run = new_run(
+            let mut run = new_run(
                 opts,
                 set_name(Path::new(&summary.inputs.questions.path)),
                 Path::new(&summary.inputs.questions.path),
                 want_fp,
-                questions,
+                questions.len(),
                 &variants,
                 &summary,
                 dir,
                 finished_at,
             )?;
+            run.questions = questions;
             let mut store = Store::open_for_writing(&opts.path)?;
             Ok((store.insert_run(&run)?, warnings))
         }

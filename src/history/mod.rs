@@ -156,13 +156,7 @@ pub fn record_after_report(
             Some(id)
         }
         Err(e) => {
-            eprintln!(
-                "liftgate: warning: this run was NOT recorded in the history {}: {e}\n\
-                 liftgate: the report in {} is complete and the verdict stands. To record it later:\n  {}",
-                opts.path.display(),
-                report_dir.display(),
-                import_command(opts, report_dir, &set.path)
-            );
+            not_recorded(opts, report_dir, &set.path, &e);
             None
         }
     }
@@ -195,11 +189,107 @@ pub fn record(
     report_dir: &Path,
     finished_at: String,
 ) -> Result<i64> {
-    // One SHA-256 a question: in parallel for large sets (the order is kept), each worker
-    // serialising into one buffer it reuses.
+    let mut run = run_of(opts, set, variants, summary, report_dir, finished_at)?;
+    run.questions = new_questions(set);
+    let mut store = Store::open_for_writing(&opts.path)?;
+    store.insert_run(&run)
+}
+
+/// Runs `work` (the statistics and the report of a run on `set`) and records its summary as
+/// [`record_after_report`] does, but with the history's share of the work done alongside
+/// `work` on a thread of its own: the questions' contents hashed, the history opened, its
+/// write transaction begun and a new set revision's questions written. For a new revision of
+/// a large set that is most of the recording (a quarter of a second for 100,000 questions);
+/// it then overlaps the statistics instead of following them. The transaction commits only
+/// with the run: when `work` fails, it rolls back, and a history file this run created is
+/// removed, so the file is as it was. Errors of the history are warnings, as there.
+pub fn record_alongside(
+    opts: Option<&RecordOptions>,
+    set: &QuestionSet,
+    variants: &[VariantGrades],
+    report_dir: &Path,
+    work: impl FnOnce() -> Result<Summary>,
+) -> Result<Summary> {
+    let Some(opts) = opts else {
+        return work();
+    };
+    std::thread::scope(|scope| {
+        let (send, receive) = std::sync::mpsc::channel::<NewRun>();
+        let recorder = scope.spawn(move || -> Result<Option<i64>> {
+            let questions = new_questions(set);
+            let created = !opts.path.exists();
+            let mut store = Store::open_for_writing(&opts.path)?;
+            let pending = store.begin_run(&set.fingerprint, &questions)?;
+            match receive.recv() {
+                Ok(mut run) => {
+                    run.questions = questions;
+                    pending.finish(&run).map(Some)
+                }
+                Err(_) => {
+                    // `work` failed: roll back, and leave no file where there was none.
+                    drop(pending);
+                    drop(store);
+                    if created {
+                        remove_new_history(&opts.path);
+                    }
+                    Ok(None)
+                }
+            }
+        });
+        let summary = work();
+        let sent = match &summary {
+            Ok(summary) => run_of(opts, set, variants, summary, report_dir, finished_now())
+                .map(|run| send.send(run).is_ok()),
+            Err(_) => Ok(false),
+        };
+        drop(send);
+        let recorded = recorder
+            .join()
+            .unwrap_or_else(|_| Err(Error::internal("the history thread panicked")));
+        if summary.is_ok() {
+            match (sent, recorded) {
+                (Ok(true), Ok(Some(id))) => {
+                    eprintln!("liftgate: recorded as run {id} in {}", opts.path.display())
+                }
+                (Err(e), _) | (_, Err(e)) => not_recorded(opts, report_dir, &set.path, &e),
+                (Ok(_), Ok(_)) => not_recorded(
+                    opts,
+                    report_dir,
+                    &set.path,
+                    &Error::internal("the run did not reach the history"),
+                ),
+            }
+        }
+        summary
+    })
+}
+
+/// Removes a history file (and SQLite's journal files beside it) that this run created but
+/// did not record into.
+fn remove_new_history(path: &Path) {
+    for suffix in ["", "-wal", "-shm", "-journal"] {
+        let mut p = path.as_os_str().to_owned();
+        p.push(suffix);
+        let _ = std::fs::remove_file(PathBuf::from(p));
+    }
+}
+
+/// The warning of a run that the history did not take, with the command that records it later.
+fn not_recorded(opts: &RecordOptions, report_dir: &Path, set_path: &Path, e: &Error) {
+    eprintln!(
+        "liftgate: warning: this run was NOT recorded in the history {}: {e}\n\
+         liftgate: the report in {} is complete and the verdict stands. To record it later:\n  {}",
+        opts.path.display(),
+        report_dir.display(),
+        import_command(opts, report_dir, set_path)
+    );
+}
+
+/// The questions of `set` as the history keeps them. One SHA-256 a question: in parallel for
+/// large sets (the order is kept), each worker serialising into one buffer it reuses.
+fn new_questions(set: &QuestionSet) -> Vec<NewQuestion> {
     use rayon::prelude::*;
-    let questions = set
-        .questions
+    set.questions
         .par_iter()
         .map_init(Vec::new, |buf, q| NewQuestion {
             key: QuestionKey {
@@ -215,20 +305,29 @@ pub fn record(
             },
             category: q.category.clone(),
         })
-        .collect();
-    let run = new_run(
+        .collect()
+}
+
+/// The run of `summary` on `set`, its questions left empty for the caller to fill.
+fn run_of(
+    opts: &RecordOptions,
+    set: &QuestionSet,
+    variants: &[VariantGrades],
+    summary: &Summary,
+    report_dir: &Path,
+    finished_at: String,
+) -> Result<NewRun> {
+    new_run(
         opts,
         set_name(&set.path),
         &set.path,
         &set.fingerprint,
-        questions,
+        set.len(),
         variants,
         summary,
         report_dir,
         finished_at,
-    )?;
-    let mut store = Store::open_for_writing(&opts.path)?;
-    store.insert_run(&run)
+    )
 }
 
 /// SHA-256 of a question's content: the JSON array `[question, references, expect,
@@ -281,20 +380,22 @@ pub fn set_name(path: &Path) -> String {
         .unwrap_or_else(|| "set".into())
 }
 
+/// A run for the history, its `questions` left empty for the caller to fill (the
+/// variants' grades must have `question_count` rows).
 #[allow(clippy::too_many_arguments)]
 fn new_run(
     opts: &RecordOptions,
     set_name: String,
     set_path: &Path,
     set_fingerprint: &str,
-    questions: Vec<NewQuestion>,
+    question_count: usize,
     variants: &[VariantGrades],
     summary: &Summary,
     report_dir: &Path,
     finished_at: String,
 ) -> Result<NewRun> {
     let summary_json = json(summary)?;
-    let n = questions.len();
+    let n = question_count;
     let mut new_variants = Vec::with_capacity(variants.len());
     for v in variants {
         if v.grades.len() != n {
@@ -331,7 +432,7 @@ fn new_run(
         set_name,
         set_path: set_path.display().to_string(),
         set_fingerprint: set_fingerprint.to_string(),
-        questions,
+        questions: Vec::new(),
         report_dir: report_dir.display().to_string(),
         tool_version: summary.tool_version.clone(),
         gate_metric: summary.policy.lift.metric.as_str().to_string(),

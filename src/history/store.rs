@@ -384,23 +384,31 @@ impl Store {
     /// report directory and summary.json) is refused, naming the earlier id.
     pub fn insert_run(&mut self, run: &NewRun) -> Result<i64> {
         let path = self.path.clone();
-        let existing: Option<i64> = retry_busy(&path, || {
-            self.conn
-                .query_row(
-                    "SELECT id FROM runs WHERE report_dir = ?1 AND summary_sha256 = ?2",
-                    params![run.report_dir, run.summary_sha256],
-                    |r| r.get(0),
-                )
-                .optional()
-        })?;
+        let existing = retry_busy(&path, || already_recorded(&self.conn, run))?;
         if let Some(id) = existing {
-            return Err(Error::usage(format!(
-                "{}: this report is already recorded in {} as run {id}",
-                run.report_dir,
-                path.display()
-            )));
+            return Err(recorded_twice(&path, run, id));
         }
         retry_busy(&path, || insert_run_tx(&mut self.conn, run))
+    }
+
+    /// Begins recording a run before its statistics are known: takes the write lock (`BEGIN
+    /// IMMEDIATE`, retried while another writer holds it) and writes the set revision's
+    /// questions. [`PendingRun::finish`] adds the run and commits; dropped unfinished, the
+    /// transaction rolls back and the file holds what it held before.
+    pub fn begin_run(
+        &mut self,
+        set_fingerprint: &str,
+        questions: &[NewQuestion],
+    ) -> Result<PendingRun<'_>> {
+        let path = self.path.clone();
+        retry_busy(&path, || self.conn.execute_batch("BEGIN IMMEDIATE"))?;
+        let pending = PendingRun {
+            store: self,
+            open: true,
+        };
+        insert_set(&pending.store.conn, set_fingerprint, questions)
+            .map_err(|e| sql_error(&path, e))?;
+        Ok(pending)
     }
 
     /// Every run, or those of one set name, in time order (then id order).
@@ -510,15 +518,80 @@ pub fn migrate(conn: &mut Connection, path: &Path, migrations: &[&str]) -> Resul
     })
 }
 
+/// A run's recording begun by [`Store::begin_run`]: its transaction is open and holds the
+/// write lock.
+pub struct PendingRun<'a> {
+    store: &'a mut Store,
+    open: bool,
+}
+
+impl PendingRun<'_> {
+    /// Adds the run (its `questions` must be those given to [`Store::begin_run`]) and commits;
+    /// returns its id. A run already recorded is refused, as by [`Store::insert_run`].
+    pub fn finish(mut self, run: &NewRun) -> Result<i64> {
+        let path = self.store.path.clone();
+        let conn = &self.store.conn;
+        if let Some(id) = already_recorded(conn, run).map_err(|e| sql_error(&path, e))? {
+            return Err(recorded_twice(&path, run, id));
+        }
+        let id = insert_run_rows(conn, run).map_err(|e| sql_error(&path, e))?;
+        conn.execute_batch("COMMIT")
+            .map_err(|e| sql_error(&path, e))?;
+        self.open = false;
+        Ok(id)
+    }
+}
+
+impl Drop for PendingRun<'_> {
+    fn drop(&mut self) {
+        if self.open {
+            // Nothing of the run was committed; a failed rollback leaves SQLite to roll the
+            // transaction back when the connection closes.
+            let _ = self.store.conn.execute_batch("ROLLBACK");
+        }
+    }
+}
+
+/// The id of a run with the same report directory and summary, if one is recorded.
+fn already_recorded(conn: &Connection, run: &NewRun) -> rusqlite::Result<Option<i64>> {
+    conn.query_row(
+        "SELECT id FROM runs WHERE report_dir = ?1 AND summary_sha256 = ?2",
+        params![run.report_dir, run.summary_sha256],
+        |r| r.get(0),
+    )
+    .optional()
+}
+
+fn recorded_twice(path: &Path, run: &NewRun, id: i64) -> Error {
+    Error::usage(format!(
+        "{}: this report is already recorded in {} as run {id}",
+        run.report_dir,
+        path.display()
+    ))
+}
+
 fn insert_run_tx(conn: &mut Connection, run: &NewRun) -> rusqlite::Result<i64> {
     let tx = conn.transaction_with_behavior(TransactionBehavior::Immediate)?;
+    insert_set(&tx, &run.set_fingerprint, &run.questions)?;
+    let id = insert_run_rows(&tx, run)?;
+    tx.commit()?;
+    Ok(id)
+}
+
+/// A set revision's questions, written when the revision is new; a revision recorded without
+/// question contents gains them.
+fn insert_set(
+    tx: &Connection,
+    fingerprint: &str,
+    questions: &[NewQuestion],
+) -> rusqlite::Result<()> {
     let new_set = tx.execute(
         "INSERT OR IGNORE INTO question_sets (fingerprint, question_count) VALUES (?1, ?2)",
-        params![run.set_fingerprint, run.questions.len() as i64],
+        params![fingerprint, questions.len() as i64],
     )? == 1;
     if new_set {
-        insert_set_questions(&tx, &run.set_fingerprint, &run.questions)?;
-    } else if run.questions.iter().any(|q| q.key.content_hash.is_some()) {
+        insert_set_questions(tx, fingerprint, questions)?;
+    } else if questions.iter().any(|q| q.key.content_hash.is_some()) {
         // A revision first recorded without question contents (an import without its set)
         // gains them when a later run knows them. One scan finds whether any are missing;
         // usually none are, and the per-question updates are skipped.
@@ -526,18 +599,23 @@ fn insert_run_tx(conn: &mut Connection, run: &NewRun) -> rusqlite::Result<i64> {
             .prepare_cached(
                 "SELECT EXISTS (SELECT 1 FROM set_questions WHERE set_fingerprint = ?1 AND content_hash IS NULL)",
             )?
-            .query_row([&run.set_fingerprint], |r| r.get(0))?;
+            .query_row([fingerprint], |r| r.get(0))?;
         if missing {
             let mut st = tx.prepare_cached(
                 "UPDATE set_questions SET content_hash = ?3 WHERE set_fingerprint = ?1 AND position = ?2 AND content_hash IS NULL",
             )?;
-            for (i, q) in run.questions.iter().enumerate() {
+            for (i, q) in questions.iter().enumerate() {
                 if q.key.content_hash.is_some() {
-                    st.execute(params![run.set_fingerprint, i as i64, q.key.content_hash])?;
+                    st.execute(params![fingerprint, i as i64, q.key.content_hash])?;
                 }
             }
         }
     }
+    Ok(())
+}
+
+/// A run's own rows (the run, its variants, its metrics), its set already written; the run's id.
+fn insert_run_rows(tx: &Connection, run: &NewRun) -> rusqlite::Result<i64> {
     tx.execute(
         "INSERT INTO runs (finished_at, source, label, set_name, set_path, set_fingerprint, question_count, report_dir, tool_version, gate_metric, verdict_go, summary_sha256, policy_json, settings_json, summary_json) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13, ?14, ?15)",
         params![
@@ -607,7 +685,6 @@ fn insert_run_tx(conn: &mut Connection, run: &NewRun) -> rusqlite::Result<i64> {
             ])?;
         }
     }
-    tx.commit()?;
     Ok(id)
 }
 
@@ -619,7 +696,7 @@ const SET_ROWS_PER_INSERT: usize = 256;
 
 /// The rows of a new set revision, [`SET_ROWS_PER_INSERT`] to a statement.
 fn insert_set_questions(
-    tx: &rusqlite::Transaction,
+    tx: &Connection,
     fingerprint: &str,
     questions: &[NewQuestion],
 ) -> rusqlite::Result<()> {
