@@ -50,7 +50,7 @@ macro_rules! bad_input {
 
 /// The number of cases below; a case that disappears fails
 /// `catalogue_keeps_every_case`, so none is dropped by accident.
-const CASES: usize = 102;
+const CASES: usize = 103;
 
 fn runner(family: &str) -> PathBuf {
     common::fixture("runner").join(family)
@@ -1457,6 +1457,29 @@ bad_input!(gguf_tensor_offset_past_the_end, |d| {
             "model.gguf",
             "blk.1.ffn_down.weight",
             "past the end of the file",
+        ],
+    )
+});
+
+bad_input!(gguf_nan_scale_in_a_linear_weight, |d| {
+    gguf_case(
+        d,
+        |b| {
+            // The first q4_0 block of the tensor: its f16 scale d (bytes 0..2) set to NaN, so
+            // all 32 of its values dequantise to NaN.
+            let content = candle_core::quantized::gguf_file::Content::read(
+                &mut std::io::Cursor::new(b.clone()),
+            )
+            .unwrap();
+            let info = &content.tensor_infos["blk.1.ffn_down.weight"];
+            assert_eq!(info.ggml_dtype, candle_core::quantized::GgmlDType::Q4_0);
+            let at = (content.tensor_data_offset + info.offset) as usize;
+            b[at..at + 2].copy_from_slice(&0x7E00u16.to_le_bytes());
+        },
+        &[
+            "model.gguf",
+            "blk.1.ffn_down.weight",
+            "NaN at element [0, 0] once dequantised",
         ],
     )
 });

@@ -314,6 +314,35 @@ pub fn dequantise_row(t: GgmlType, row: &[u8], from: usize, to: usize, out: &mut
     }
 }
 
+/// The first block of a row (index into its blocks) holding a value that is NaN or ±Inf once
+/// dequantised, found from the blocks' f16 scales and mins alone, without dequantising.
+///
+/// Exact for every type: each value is a product of the block's f16 scale (d, and for the
+/// "_1" and k-quant types also its min, dmin) with small integers (codes up to 31, 6-bit or
+/// 8-bit sub-block scales), and a min added or subtracted, as [`dequantise_block`] computes
+/// it in f32. With finite scales every such value is finite (at most 65,504 · 63 · 63, far
+/// below f32's range); with a scale NaN or ±Inf, every value of the block is NaN or ±Inf
+/// (Inf · 0 is NaN, and adding a finite or non-finite term keeps it so). So the first
+/// non-finite value of the row is the first value of that block. f32, f16 and bf16 rows are
+/// blocks of one value, tested by their exponent bits.
+pub fn first_non_finite_block(t: GgmlType, row: &[u8]) -> Option<usize> {
+    // An IEEE binary16 is NaN or ±Inf when its five exponent bits are all set.
+    let bad = |blk: &[u8], at: usize| u16::from_le_bytes([blk[at], blk[at + 1]]) & 0x7C00 == 0x7C00;
+    row.chunks_exact(t.block().1).position(|blk| match t {
+        GgmlType::F32 => {
+            u32::from_le_bytes([blk[0], blk[1], blk[2], blk[3]]) & 0x7F80_0000 == 0x7F80_0000
+        }
+        GgmlType::Bf16 => u16::from_le_bytes([blk[0], blk[1]]) & 0x7F80 == 0x7F80,
+        GgmlType::F16 | GgmlType::Q4_0 | GgmlType::Q5_0 | GgmlType::Q8_0 => bad(blk, 0),
+        GgmlType::Q4_1 | GgmlType::Q5_1 | GgmlType::Q4K | GgmlType::Q5K => {
+            bad(blk, 0) || bad(blk, 2)
+        }
+        GgmlType::Q2K => bad(blk, 80) || bad(blk, 82),
+        GgmlType::Q3K => bad(blk, 108),
+        GgmlType::Q6K => bad(blk, 208),
+    })
+}
+
 /// One output row as the file stores it: its type and bytes.
 type Row = (GgmlType, Vec<u8>);
 
@@ -902,13 +931,30 @@ impl GgmlMatrix {
         let row_bytes = t.row_bytes(self.inp);
         assert!(self.inp.is_multiple_of(t.block().0) && bytes.len() == rows * row_bytes);
         self.out += rows;
-        for r in bytes.chunks_exact(row_bytes.max(1)).take(rows) {
-            self.tail.push((t, r.to_vec()));
+        let mut split = bytes.chunks_exact(row_bytes.max(1)).take(rows);
+        // Rows first fill the panel begun by an earlier part...
+        if !self.tail.is_empty() {
+            for r in split.by_ref().take(PANEL - self.tail.len()) {
+                self.tail.push((t, r.to_vec()));
+            }
             if self.tail.len() == PANEL {
                 let rows = std::mem::take(&mut self.tail);
                 self.panels.push(Panel::new(rows, self.inp));
             }
         }
+        // ...then whole panels are regrouped in parallel (a large part of a model's load
+        // time), in order; the rows left over begin the next panel.
+        use rayon::prelude::*;
+        let rest: Vec<&[u8]> = split.collect();
+        let whole = rest.len() / PANEL * PANEL;
+        let inp = self.inp;
+        let panels: Vec<Panel> = rest[..whole]
+            .par_chunks(PANEL)
+            .map(|chunk| Panel::new(chunk.iter().map(|r| (t, r.to_vec())).collect(), inp))
+            .collect();
+        self.panels.extend(panels);
+        self.tail
+            .extend(rest[whole..].iter().map(|r| (t, r.to_vec())));
     }
 
     /// Bytes held.
@@ -1075,6 +1121,75 @@ pub(super) mod tests {
             dequantise_row(t, &b[r * rb..(r + 1) * rb], 0, inp, &mut dense[start..]);
         }
         m.push(t, rows, b);
+    }
+
+    /// The scale scan finds exactly the first non-finite value that dequantising finds, for
+    /// every type: random rows, whose f16 scales are NaN or ±Inf in about one block of 32 by
+    /// chance (all five exponent bits set), and rows with a scale forced to NaN, +Inf or -Inf.
+    #[test]
+    fn scale_scan_finds_the_first_non_finite_value() {
+        let inp = 512;
+        let mut found = 0;
+        for (n, t) in ALL.into_iter().enumerate() {
+            let (per, size) = t.block();
+            for seed in 0..40u64 {
+                let mut s = seed * 7919 + n as u64;
+                let mut next = || {
+                    s = s
+                        .wrapping_mul(6364136223846793005)
+                        .wrapping_add(1442695040888963407);
+                    (s >> 33) as u8
+                };
+                let mut row: Vec<u8> = (0..t.row_bytes(inp)).map(|_| next()).collect();
+                if seed % 4 == 3 {
+                    // One block's scale bytes (where the type keeps its f16 d) set to a
+                    // non-finite f16: NaN, +Inf or -Inf.
+                    let at = match t {
+                        GgmlType::Q2K => 80,
+                        GgmlType::Q3K => 108,
+                        GgmlType::Q6K => 208,
+                        _ => 0,
+                    };
+                    let blk = (next() as usize) % (t.row_bytes(inp) / size);
+                    let v: u16 = [0x7E00, 0x7C00, 0xFC00][(seed / 4 % 3) as usize];
+                    let v = if matches!(t, GgmlType::F32) {
+                        // f32 rows: the high half of a value.
+                        row[blk * size + 2..blk * size + 4].copy_from_slice(
+                            &(if v == 0x7E00 {
+                                0x7FC0u16
+                            } else if v == 0x7C00 {
+                                0x7F80
+                            } else {
+                                0xFF80
+                            })
+                            .to_le_bytes(),
+                        );
+                        None
+                    } else if matches!(t, GgmlType::Bf16) {
+                        Some(if v == 0x7E00 {
+                            0x7FC0u16
+                        } else if v == 0x7C00 {
+                            0x7F80
+                        } else {
+                            0xFF80
+                        })
+                    } else {
+                        Some(v)
+                    };
+                    if let Some(v) = v {
+                        row[blk * size + at..blk * size + at + 2].copy_from_slice(&v.to_le_bytes());
+                    }
+                }
+                let mut values = vec![0.0f32; inp];
+                dequantise_row(t, &row, 0, inp, &mut values);
+                let want = values.iter().position(|v| !v.is_finite());
+                let got = first_non_finite_block(t, &row).map(|b| b * per);
+                assert_eq!(got, want, "{t:?}, seed {seed}");
+                found += want.is_some() as usize;
+            }
+        }
+        // The case is not vacuous: many rows hold non-finite values.
+        assert!(found > 100, "{found}");
     }
 
     /// Deterministic block bytes with every f16 scale finite and small (random bytes elsewhere).

@@ -12,7 +12,7 @@
 //! does), since the head's screen and the table lookups read f32 rows.
 
 use crate::error::{Error, Result};
-use crate::kernels::ggml::{dequantise_row, GgmlType};
+use crate::kernels::ggml::{dequantise_row, first_non_finite_block, GgmlType};
 use crate::model::config::{GenerationDefaults, ModelSpec};
 use crate::model::names::{self, EMBED, FINAL_NORM, LM_HEAD};
 use crate::model::weights::{check_finite, first_non_finite};
@@ -560,15 +560,19 @@ impl GgufFile {
         let cols = e.dims.last().copied().unwrap_or(1).max(1);
         let row_bytes = e.t.row_bytes(cols);
         let mut v = vec![0.0; n];
-        for (r, out) in v.chunks_exact_mut(cols).enumerate() {
-            dequantise_row(
-                e.t,
-                &e.bytes[r * row_bytes..(r + 1) * row_bytes],
-                0,
-                cols,
-                out,
-            );
-        }
+        // Rows in parallel: the embedding table of a large vocabulary is most of it.
+        use rayon::prelude::*;
+        v.par_chunks_exact_mut(cols)
+            .enumerate()
+            .for_each(|(r, out)| {
+                dequantise_row(
+                    e.t,
+                    &e.bytes[r * row_bytes..(r + 1) * row_bytes],
+                    0,
+                    cols,
+                    out,
+                )
+            });
         Ok((e.dims, v))
     }
 
@@ -596,15 +600,18 @@ impl GgufFile {
                 let bytes = self.rows(hf, &e, self.permuted_heads(hf, spec))?;
                 let cols = shape[1];
                 let row_bytes = e.t.row_bytes(cols);
-                let mut buf = vec![0.0; cols];
-                for r in 0..shape[0] {
-                    dequantise_row(
-                        e.t,
-                        &bytes[r * row_bytes..(r + 1) * row_bytes],
-                        0,
-                        cols,
-                        &mut buf,
-                    );
+                // Each row's blocks are checked for NaN and ±Inf from their scales
+                // (`first_non_finite_block`: exact, without dequantising), rows in parallel;
+                // the first bad row in row order is the one reported, with the value found.
+                use rayon::prelude::*;
+                let bad = (0..shape[0]).into_par_iter().find_first(|&r| {
+                    first_non_finite_block(e.t, &bytes[r * row_bytes..(r + 1) * row_bytes])
+                        .is_some()
+                });
+                if let Some(r) = bad {
+                    let row = &bytes[r * row_bytes..(r + 1) * row_bytes];
+                    let mut buf = vec![0.0; cols];
+                    dequantise_row(e.t, row, 0, cols, &mut buf);
                     if let Some((i, v)) = first_non_finite(&buf) {
                         return Err(Error::field(
                             &self.path,
