@@ -66,6 +66,14 @@
 //! offers are judged against the question's content words, offers of information count as
 //! offers, and limits or role denials that name what was asked decline it (docs/scoring.md).
 //!
+//! - refusal_real_heldout6.jsonl: the same GGUF file under five new system turns (an FAQ bot
+//!   given a few facts, the cooperative speaking as "we", a fixed reply format, a seagull
+//!   mascot, an AI assistant told what it cannot do) on 45 more invented questions
+//!   (tests/fixtures/refusal_real_questions_extra5.jsonl) with earlier sets' out-of-scope
+//!   questions; made after the detector above was frozen and committed, labelled by the
+//!   written guideline and committed before the detector was run on it, then measured once:
+//!   precision 0.917 (22/24), recall 0.550 (22/40), the latest out-of-sample figure.
+//!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
 
@@ -291,4 +299,18 @@ fn demo_shares_equal_the_hand_count() {
     );
     assert_eq!(hand, [20, 3], "hand count (docs/scoring.md)");
     assert_eq!(detected, hand, "detector against the hand count");
+}
+
+#[test]
+fn real_output_held_out_6() {
+    // Measured once, with the detector frozen and committed before the set was made: precision
+    // 0.917 (22/24), recall 0.550 (22/40), the latest out-of-sample figure. Missed: role
+    // denials that name nothing of the question (11 of the 18: "I'm not a doctor, lawyer, or
+    // financial advisor" given instead of a workout, a booking or a review), declines after a
+    // sentence that denies a role or gives something (not a lead-in), a hand-off to a doctor,
+    // not knowing where to begin, a garbled "je ne sapere pas"; wrongly flagged: an offer that
+    // repeats the declined words ("order a taxi ... If you need a taxi, I can assist you with
+    // that") and an offer of information that "might help you", read as a redirect. No change
+    // was written on this set.
+    at_least(&measure("refusal_real_heldout6.jsonl"), 418, 0.916, 0.55);
 }
