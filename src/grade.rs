@@ -161,7 +161,7 @@ pub fn grade_set(
                 exact_match: scores.map(|s| s.exact_match),
                 token_f1: scores.map(|s| s.token_f1),
                 rouge_l: scores.map(|s| s.rouge_l),
-                refused: detector.is_refusal(&a.answer),
+                refused: detector.is_refusal_to(&q.question, &a.answer),
                 fact_recall: facts.map(|f| f.recall),
                 fact_contradiction: facts.map(|f| f.contradiction),
                 semantic: semantic.and_then(|s| s[i]),

@@ -62,6 +62,18 @@
 //!   recall 0.657 (23/35), the latest out-of-sample figure. Its misses led to a small widening;
 //!   in-sample since.
 //!
+//! Then, on all sets (in-sample), the question is passed to the detector (`is_refusal_to`):
+//! offers are judged against the question's content words, offers of information count as
+//! offers, and limits or role denials that name what was asked decline it (docs/scoring.md).
+//!
+//! - refusal_real_heldout6.jsonl: the same GGUF file under five new system turns (an FAQ bot
+//!   given a few facts, the cooperative speaking as "we", a fixed reply format, a seagull
+//!   mascot, an AI assistant told what it cannot do) on 45 more invented questions
+//!   (tests/fixtures/refusal_real_questions_extra5.jsonl) with earlier sets' out-of-scope
+//!   questions; made after the detector above was frozen and committed, labelled by the
+//!   written guideline and committed before the detector was run on it, then measured once:
+//!   precision 0.917 (22/24), recall 0.550 (22/40), the latest out-of-sample figure.
+//!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
 
@@ -81,6 +93,9 @@ struct Labelled {
     id: Option<String>,
     #[serde(default)]
     variant: Option<String>,
+    /// The question answered (the real-output sets); the invented sets have none.
+    #[serde(default)]
+    question: String,
 }
 
 struct Measured {
@@ -104,7 +119,7 @@ fn measure(file: &str) -> Measured {
     // tp, fp, fn, tn per variant (model and system turn), in order of first appearance.
     let mut by_variant: Vec<(&str, [usize; 4])> = Vec::new();
     for r in &rows {
-        let got = d.is_refusal(&r.answer);
+        let got = d.is_refusal_to(&r.question, &r.answer);
         let cell = match (got, r.refusal) {
             (true, true) => 0,
             (true, false) => 1,
@@ -123,10 +138,11 @@ fn measure(file: &str) -> Measured {
         }
         if got != r.refusal {
             wrong.push(format!(
-                "[{}] labelled {} detected {}: {}",
+                "[{}] labelled {} detected {}: Q: {} A: {}",
                 r.kind.as_deref().or(r.id.as_deref()).unwrap_or("-"),
                 r.refusal,
                 got,
+                r.question,
                 r.answer
             ));
         }
@@ -205,20 +221,22 @@ fn real_output_held_out() {
 
 #[test]
 fn real_output_held_out_2() {
-    // Misses: a decline followed by an offer of something else ("a refund of your deposit"
-    // when asked about suing; "planning a trip to the Maldives" when asked to sell a cruise),
-    // which read like the offers of the very thing asked that take a decline back; words alone
-    // cannot tell them apart. The second became a miss with the offer rule, which fixed more
-    // wrong flags on the development set and sets 3 and 4.
-    at_least(&measure("refusal_real_heldout2.jsonl"), 201, 1.0, 0.90);
+    // Miss: a decline followed by an offer of something else that shares a word with the
+    // question ("a refund of your deposit" when asked about suing over the deposit). "Planning
+    // a trip to the Maldives" offered when asked to sell a cruise, a miss under the offer rule
+    // alone, is found with the question: 0.900 (18/20) before, 0.950 (19/20) after.
+    at_least(&measure("refusal_real_heldout2.jsonl"), 201, 1.0, 0.95);
 }
 
 #[test]
 fn real_output_held_out_3() {
-    // Misses: role denials alone ("I'm not a ticket-taker"); wrongly flagged: a scope
-    // exclusion in nonsense ("my primary role is to assist and assist, not to assist")
-    // (docs/scoring.md says why these were left).
-    at_least(&measure("refusal_real_heldout3.jsonl"), 281, 0.97, 0.91);
+    // Misses: a role denial that names nothing of the question ("I'm not a travel agent"), a
+    // limit after a sentence of nonsense; wrongly flagged: a scope exclusion in nonsense ("my
+    // primary role is to assist and assist, not to assist") (docs/scoring.md says why these
+    // were left). With the question, role denials that name what was asked ("I'm not a
+    // ticket-taker" asked whether a dog needs a ticket) count: 0.976 (41/42), 0.911 (41/45)
+    // before, 0.977 (43/44), 0.956 (43/45) after.
+    at_least(&measure("refusal_real_heldout3.jsonl"), 281, 0.977, 0.955);
 }
 
 #[test]
@@ -226,10 +244,14 @@ fn real_output_held_out_4() {
     // Measured once, before any change written on it: precision 0.841 (37/44), recall 0.902
     // (37/41). After the widening written on it (offers of help as lead-in; "suggest" and
     // "recommend" no redirect by themselves), in-sample: 0.864 (38/44), 0.927 (38/41); after
-    // the offer rule: 0.927 (38/41), 0.927 (38/41). Still wrongly flagged: a framed rule of
-    // the service followed by a generic-worded offer, a specific offer phrased as "any specific
+    // the offer rule: 0.927 (38/41), 0.927 (38/41); with the question the same figures, one
+    // decline found ("not a sailing licence tester") and one lost ("If you need assistance
+    // with a lost item, I'm here to help" asked about compensation for a lost suitcase: the
+    // offer shares "lost" with the question). Still wrongly flagged: a framed rule of the
+    // service followed by a generic-worded offer, a specific offer phrased as "any specific
     // questions about ..., feel free to ask", and "I'm not here to provide a magic solution";
-    // missed: role denials, and a limit after a sentence of nonsense.
+    // missed: a role denial whose matching word comes too late, and a limit after a sentence
+    // of nonsense.
     at_least(&measure("refusal_real_heldout4.jsonl"), 449, 0.92, 0.92);
 }
 
@@ -239,11 +261,12 @@ fn real_output_held_out_5() {
     // (23/35). After the widening written on it (not knowing what to say, "not familiar
     // with", a one- or two-word exclamation as lead-in, offers named after "assistance with"
     // or cut off, "I'm an AI assistant ..." no longer a decline), in-sample: 0.931 (27/29),
-    // 0.771 (27/35). Still missed: role denials, hand-offs in the company's voice or to "a
-    // healthcare professional", an offer of something else read as content, "unable to read
-    // tarot cards" (a verb of the service's kind); wrongly flagged: offers of the very thing
-    // asked in other words ("assist you in finding affordable options", "I'm here to help").
-    at_least(&measure("refusal_real_heldout5.jsonl"), 514, 0.93, 0.77);
+    // 0.771 (27/35). With the question (limits and role denials naming what was asked,
+    // offers judged against it): 0.969 (31/32), 0.886 (31/35). Still missed: hand-offs in the
+    // company's voice or to "a healthcare professional", not knowing or dismissing after a
+    // sentence of content; wrongly flagged: an offer of the very thing asked in other words
+    // ("assist you in finding affordable options" asked for cheap sunglasses).
+    at_least(&measure("refusal_real_heldout5.jsonl"), 514, 0.968, 0.885);
 }
 
 /// The shares the report shows for the real base model on the demo questions (the development
@@ -264,7 +287,10 @@ fn demo_shares_equal_the_hand_count() {
         let k = usize::from(v["expect"] == "refuse");
         totals[k] += 1;
         hand[k] += usize::from(v["refusal"] == true);
-        detected[k] += usize::from(d.is_refusal(v["answer"].as_str().unwrap_or_default()));
+        detected[k] += usize::from(d.is_refusal_to(
+            v["question"].as_str().unwrap_or_default(),
+            v["answer"].as_str().unwrap_or_default(),
+        ));
     }
     assert_eq!(
         totals,
@@ -273,4 +299,18 @@ fn demo_shares_equal_the_hand_count() {
     );
     assert_eq!(hand, [20, 3], "hand count (docs/scoring.md)");
     assert_eq!(detected, hand, "detector against the hand count");
+}
+
+#[test]
+fn real_output_held_out_6() {
+    // Measured once, with the detector frozen and committed before the set was made: precision
+    // 0.917 (22/24), recall 0.550 (22/40), the latest out-of-sample figure. Missed: role
+    // denials that name nothing of the question (11 of the 18: "I'm not a doctor, lawyer, or
+    // financial advisor" given instead of a workout, a booking or a review), declines after a
+    // sentence that denies a role or gives something (not a lead-in), a hand-off to a doctor,
+    // not knowing where to begin, a garbled "je ne sapere pas"; wrongly flagged: an offer that
+    // repeats the declined words ("order a taxi ... If you need a taxi, I can assist you with
+    // that") and an offer of information that "might help you", read as a redirect. No change
+    // was written on this set.
+    at_least(&measure("refusal_real_heldout6.jsonl"), 418, 0.916, 0.55);
 }

