@@ -6,7 +6,7 @@
 
 use crate::error::{Error, Result};
 use sha2::{Digest, Sha256};
-use std::io::{BufRead, BufReader, Read, Write};
+use std::io::{Read, Write};
 use std::path::Path;
 
 /// Writes `bytes` to `path` atomically: a temporary file beside it, fsync, rename.
@@ -79,27 +79,34 @@ pub const MAX_LINE_BYTES: usize = 1 << 20;
 /// Reads a JSONL file into `(line_number, text)` pairs, 1-based, skipping blank lines and a
 /// leading byte-order mark. Fails on non-UTF-8 bytes and on over-long lines, naming the line.
 pub fn read_jsonl_lines(path: &Path) -> Result<Vec<(usize, String)>> {
-    let file =
-        std::fs::File::open(path).map_err(|e| Error::file(path, format!("cannot open: {e}")))?;
-    jsonl_lines(path, BufReader::new(file))
+    let bytes = read_file(path)?;
+    Ok(jsonl_slices(path, &bytes)?
+        .into_iter()
+        .map(|(line, text)| (line, text.to_string()))
+        .collect())
 }
 
-/// [`read_jsonl_lines`] over any buffered reader; `path` names the source in messages.
-pub fn jsonl_lines(path: &Path, mut reader: impl BufRead) -> Result<Vec<(usize, String)>> {
+/// The bytes of a file, `path` named in the error.
+pub fn read_file(path: &Path) -> Result<Vec<u8>> {
+    std::fs::read(path).map_err(|e| Error::file(path, format!("cannot open: {e}")))
+}
+
+/// The `(line_number, text)` pairs of JSONL held in memory, as [`read_jsonl_lines`] gives
+/// them, borrowed from `bytes` (one buffer for the file instead of one string a line);
+/// `path` names the source in messages. Lines end at `\n`; each is trimmed of whitespace
+/// (a `\r` included), and blank ones are skipped.
+pub fn jsonl_slices<'a>(path: &Path, bytes: &'a [u8]) -> Result<Vec<(usize, &'a str)>> {
     let mut out = Vec::new();
-    let mut buf = Vec::new();
+    let mut rest = bytes;
     let mut line_no = 0usize;
-    loop {
-        buf.clear();
+    while !rest.is_empty() {
         line_no += 1;
-        let n = (&mut reader)
-            .take(MAX_LINE_BYTES as u64 + 1)
-            .read_until(b'\n', &mut buf)
-            .map_err(|e| Error::line(path, line_no, format!("cannot read: {e}")))?;
-        if n == 0 {
-            break;
-        }
-        if buf.len() > MAX_LINE_BYTES && !buf.ends_with(b"\n") {
+        let (line, next) = match memchr::memchr(b'\n', rest) {
+            Some(i) => (&rest[..i], &rest[i + 1..]),
+            None => (rest, &rest[rest.len()..]),
+        };
+        rest = next;
+        if line.len() > MAX_LINE_BYTES {
             return Err(Error::line(
                 path,
                 line_no,
@@ -110,11 +117,11 @@ pub fn jsonl_lines(path: &Path, mut reader: impl BufRead) -> Result<Vec<(usize, 
             ));
         }
         // A UTF-8 byte-order mark (some editors on Windows write one) is not part of the text.
-        let bytes = match buf.strip_prefix(b"\xEF\xBB\xBF") {
-            Some(rest) if line_no == 1 => rest,
-            _ => &buf[..],
+        let line = match line.strip_prefix(b"\xEF\xBB\xBF") {
+            Some(after) if line_no == 1 => after,
+            _ => line,
         };
-        let text = std::str::from_utf8(bytes).map_err(|e| {
+        let text = std::str::from_utf8(line).map_err(|e| {
             Error::line(
                 path,
                 line_no,
@@ -123,7 +130,7 @@ pub fn jsonl_lines(path: &Path, mut reader: impl BufRead) -> Result<Vec<(usize, 
         })?;
         let text = text.trim();
         if !text.is_empty() {
-            out.push((line_no, text.to_string()));
+            out.push((line_no, text));
         }
     }
     Ok(out)
@@ -260,6 +267,24 @@ mod tests {
         assert_eq!(lines[0], (1, "{\"a\":1}".to_string()));
         // Only at the start of the file: elsewhere it stays (and JSON parsing will name it).
         assert_eq!(lines[1], (2, "\u{feff}{}".to_string()));
+    }
+
+    #[test]
+    fn over_long_lines_are_refused_by_number_and_the_limit_itself_passes() {
+        let at_limit = "x".repeat(MAX_LINE_BYTES);
+        let text = format!("{{}}\n{at_limit}\n{at_limit}x\n");
+        let ok = jsonl_slices(Path::new("f"), &text.as_bytes()[..3 + MAX_LINE_BYTES]).unwrap();
+        assert_eq!(ok.len(), 2);
+        let err = jsonl_slices(Path::new("f"), text.as_bytes())
+            .unwrap_err()
+            .to_string();
+        assert!(err.contains(":3:") && err.contains("longer than"), "{err}");
+    }
+
+    #[test]
+    fn last_line_without_newline_and_crlf_endings() {
+        let lines = jsonl_slices(Path::new("f"), b"{\"a\":1}\r\n\r\n{\"b\":2}").unwrap();
+        assert_eq!(lines, vec![(1, "{\"a\":1}"), (3, "{\"b\":2}")]);
     }
 
     #[test]

@@ -61,7 +61,8 @@ pub fn load_rows(path: &Path, set: &QuestionSet) -> Result<Vec<AnswerRecord>> {
 /// An answers file's rows with their line numbers, parsed but not yet matched to a question
 /// set (so the file can be read while the set is).
 pub fn read_rows(path: &Path) -> Result<Vec<(usize, AnswerRecord)>> {
-    parse_lines(&fsutil::read_jsonl_lines(path)?, |line, text| {
+    let bytes = fsutil::read_file(path)?;
+    parse_lines(&fsutil::jsonl_slices(path, &bytes)?, |line, text| {
         let row: AnswerRecord = serde_json::from_str(text).map_err(|e| {
             row_error(
                 path,

@@ -53,7 +53,8 @@ pub fn load_for_set(path: &Path, set: &QuestionSet) -> Result<Vec<GradeRecord>> 
 /// A grades file's rows with their line numbers, parsed and range-checked but not yet matched
 /// to a question set (so several files can be read at once, before the set is loaded).
 pub fn read_rows(path: &Path) -> Result<Vec<(usize, GradeRecord)>> {
-    parse_lines(&fsutil::read_jsonl_lines(path)?, |line, text| {
+    let bytes = fsutil::read_file(path)?;
+    parse_lines(&fsutil::jsonl_slices(path, &bytes)?, |line, text| {
         parse_row(path, line, text)
     })
 }

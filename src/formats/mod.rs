@@ -20,7 +20,7 @@ use std::path::Path;
 /// Each `(line, text)` of a JSONL file through `parse`, in parallel; the rows in line order,
 /// or the first error in line order (the one a reader going line by line would meet).
 pub fn parse_lines<T: Send>(
-    lines: &[(usize, String)],
+    lines: &[(usize, &str)],
     parse: impl Fn(usize, &str) -> Result<T> + Sync,
 ) -> Result<Vec<T>> {
     use rayon::prelude::*;

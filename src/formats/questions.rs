@@ -69,7 +69,7 @@ impl QuestionSet {
         // The fingerprint of the bytes read, hashed while the lines are parsed: the file is
         // read once, and what is fingerprinted is exactly what was parsed.
         let (questions, fingerprint) = rayon::join(
-            || fsutil::jsonl_lines(path, bytes).and_then(|lines| Self::validate(path, &lines)),
+            || fsutil::jsonl_slices(path, bytes).and_then(|lines| Self::validate(path, &lines)),
             || fsutil::sha256_hex(bytes),
         );
         Ok(QuestionSet {
@@ -80,7 +80,7 @@ impl QuestionSet {
     }
 
     /// The questions of `(line, text)` JSONL lines, checked one by one and for duplicate ids.
-    fn validate(path: &Path, lines: &[(usize, String)]) -> Result<Vec<Question>> {
+    fn validate(path: &Path, lines: &[(usize, &str)]) -> Result<Vec<Question>> {
         if lines.is_empty() {
             return Err(Error::file(
                 path,
