@@ -57,5 +57,7 @@ pub fn run(args: &WeighArgs) -> Result<Outcome> {
     })?;
     print!("{}", report::terminal::render(&summary));
     println!("report: {}", args.report.join("report.md").display());
-    Ok(Outcome::from_verdict(summary.verdict.go))
+    let go = summary.verdict.go;
+    super::release_at_exit((set, baseline, candidate, summary));
+    Ok(Outcome::from_verdict(go))
 }
