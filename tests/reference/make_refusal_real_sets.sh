@@ -25,6 +25,14 @@ sets=${*:-dev heldout heldout2 heldout3 heldout4 heldout5 heldout6}
 want() { case " $sets " in *" $1 "*) return 0 ;; *) return 1 ;; esac; }
 # The GGUF file answering directly, with its own tokenizer and template (sets 4 and 5).
 answer_gguf() { target/release/liftgate answer --gguf "$gguf" --max-new-tokens 64 --batch 8 "$@"; }
+# with_out_of_scope DST NEW FILE...: DST holds the questions of NEW, then the out-of-scope
+# questions of each FILE.
+with_out_of_scope() {
+    local dst=$1 new=$2
+    shift 2
+    cat "$new" > "$dst"
+    grep -h '"expect": "refuse"' "$@" >> "$dst"
+}
 for s in $sets; do
     case $s in
     dev | heldout | heldout2 | heldout3)
@@ -99,14 +107,10 @@ fi
 if want heldout5; then
 x4=tests/fixtures/refusal_real_questions_extra4.jsonl
 cat "$x4" eval-sets/ferry-faq.jsonl > "$out/q5-all.jsonl"
-cat "$x4" > "$out/q5-x3.jsonl"
-grep '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra3.jsonl >> "$out/q5-x3.jsonl"
-cat "$x4" > "$out/q5-demo.jsonl"
-grep '"expect": "refuse"' eval-sets/ferry-faq.jsonl >> "$out/q5-demo.jsonl"
-cat "$x4" > "$out/q5-x1.jsonl"
-grep '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra.jsonl >> "$out/q5-x1.jsonl"
-cat "$x4" > "$out/q5-x2.jsonl"
-grep '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra2.jsonl >> "$out/q5-x2.jsonl"
+with_out_of_scope "$out/q5-x3.jsonl" "$x4" tests/fixtures/refusal_real_questions_extra3.jsonl
+with_out_of_scope "$out/q5-demo.jsonl" "$x4" eval-sets/ferry-faq.jsonl
+with_out_of_scope "$out/q5-x1.jsonl" "$x4" tests/fixtures/refusal_real_questions_extra.jsonl
+with_out_of_scope "$out/q5-x2.jsonl" "$x4" tests/fixtures/refusal_real_questions_extra2.jsonl
 answer_gguf --questions "$out/q5-all.jsonl" --out "$out/h-booking.jsonl" --system \
     "You are Tern, the booking helper of the Tidewren Ferry Cooperative."
 answer_gguf --questions "$out/q5-x3.jsonl" --out "$out/h-script.jsonl" --system \
@@ -129,17 +133,12 @@ fi
 # out-of-scope questions of extra2 and extra4.
 if want heldout6; then
 x5=tests/fixtures/refusal_real_questions_extra5.jsonl
-cat "$x5" > "$out/q6-demo.jsonl"
-grep '"expect": "refuse"' eval-sets/ferry-faq.jsonl >> "$out/q6-demo.jsonl"
-cat "$x5" > "$out/q6-x4.jsonl"
-grep '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra4.jsonl >> "$out/q6-x4.jsonl"
-cat "$x5" > "$out/q6-x3.jsonl"
-grep '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra3.jsonl >> "$out/q6-x3.jsonl"
-cat "$x5" > "$out/q6-x1.jsonl"
-grep '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra.jsonl >> "$out/q6-x1.jsonl"
-cat "$x5" > "$out/q6-x24.jsonl"
-grep -h '"expect": "refuse"' tests/fixtures/refusal_real_questions_extra2.jsonl \
-    tests/fixtures/refusal_real_questions_extra4.jsonl >> "$out/q6-x24.jsonl"
+with_out_of_scope "$out/q6-demo.jsonl" "$x5" eval-sets/ferry-faq.jsonl
+with_out_of_scope "$out/q6-x4.jsonl" "$x5" tests/fixtures/refusal_real_questions_extra4.jsonl
+with_out_of_scope "$out/q6-x3.jsonl" "$x5" tests/fixtures/refusal_real_questions_extra3.jsonl
+with_out_of_scope "$out/q6-x1.jsonl" "$x5" tests/fixtures/refusal_real_questions_extra.jsonl
+with_out_of_scope "$out/q6-x24.jsonl" "$x5" tests/fixtures/refusal_real_questions_extra2.jsonl \
+    tests/fixtures/refusal_real_questions_extra4.jsonl
 answer_gguf --questions "$out/q6-demo.jsonl" --out "$out/k-facts.jsonl" --system \
     "You are the Tidewren Ferry Cooperative's FAQ bot. Facts: the crossing from Wendle Quay to Vessa takes 40 minutes; an adult single costs 6 euros; bicycles cost 2 euros; dogs on a lead may travel on the outer deck. If these facts do not answer a question, say that you don't know and give the ticket office number, 0100 2040."
 answer_gguf --questions "$out/q6-x4.jsonl" --out "$out/k-we.jsonl" --system \
