@@ -576,6 +576,32 @@ impl GgufFile {
         Ok((e.dims, v))
     }
 
+    /// The bytes the decoder's weights take in memory once loaded: each linear layer's blocks
+    /// as stored, every other tensor as f32, and the output head (the embedding when the two
+    /// are tied) once more in 8 bits for the head's screen. Tensors missing from the file
+    /// count nothing.
+    fn resident_bytes(
+        &self,
+        expected: &[(String, Vec<usize>)],
+        linear: &std::collections::HashSet<String>,
+        spec: &ModelSpec,
+    ) -> u64 {
+        expected
+            .iter()
+            .map(|(hf, shape)| {
+                let values: u64 = shape.iter().map(|&d| d as u64).product();
+                if linear.contains(hf) {
+                    let stored = gguf_name(&self.arch, hf)
+                        .and_then(|g| self.entry(&g).ok().flatten())
+                        .map_or(0, |e| e.bytes.len() as u64);
+                    return stored;
+                }
+                let head = hf == LM_HEAD || (hf == EMBED && spec.tie_word_embeddings);
+                values * 4 + if head { values } else { 0 }
+            })
+            .sum()
+    }
+
     /// Every tensor the decoder takes: norms, biases, embedding and head as f32 tensors; the
     /// linear layers' matrices as stored rows (with a stand-in of their shape in the map, which
     /// holds no values). Each is checked for NaN and ±Inf.
@@ -590,6 +616,18 @@ impl GgufFile {
         let mut expected = names::expected_tensors(spec);
         if !spec.tie_word_embeddings {
             expected.push((LM_HEAD.to_string(), vec![spec.vocab_size, spec.hidden_size]));
+        }
+        // Refuse before reading a byte of weights when the model cannot fit, as for
+        // checkpoints (weights.rs); a tensor missing or malformed counts nothing here and is
+        // reported by the loop below.
+        if let Some(available) = crate::model::weights::available_memory() {
+            let needed = self.resident_bytes(&expected, &linear, spec);
+            crate::model::weights::check_fits_as(
+                &self.path,
+                needed,
+                available,
+                "the linear layers in their GGUF blocks; the token embedding, head and norms dequantised to f32, the head once more in 8 bits",
+            )?;
         }
         let mut tensors = HashMap::new();
         let mut stored = HashMap::new();
@@ -854,6 +892,53 @@ mod tests {
 
     /// Damaged copies of a fixture file (cut at many lengths, single bytes of the header and
     /// directory changed) are read or refused as input errors naming the file, never a panic.
+    /// The memory estimate counts the linear layers' blocks as the file stores them, the
+    /// embedding and norms as f32 and the tied head once more in 8 bits: checked against the
+    /// tensor directory as candle's GGUF reader lists it (type sizes from ggml's tables).
+    #[test]
+    fn memory_estimate_of_the_tiny_llama_file() {
+        let path =
+            Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures/gguf/llama-q4_0-tied.gguf");
+        let f = GgufFile::open(&path).unwrap();
+        let spec = f.spec().unwrap();
+        assert!(spec.tie_word_embeddings);
+        let linear: std::collections::HashSet<String> =
+            crate::model::weights::linear_weight_names(&spec)
+                .into_iter()
+                .collect();
+        let expected = names::expected_tensors(&spec);
+        let got = f.resident_bytes(&expected, &linear, &spec);
+        let content = candle_core::quantized::gguf_file::Content::read(
+            &mut std::fs::File::open(&path).unwrap(),
+        )
+        .unwrap();
+        let mut want = 0u64;
+        for (name, info) in &content.tensor_infos {
+            let n = info.shape.elem_count() as u64;
+            let matrix = name.starts_with("blk.")
+                && [
+                    "attn_q",
+                    "attn_k",
+                    "attn_v",
+                    "attn_output",
+                    "ffn_gate",
+                    "ffn_up",
+                    "ffn_down",
+                ]
+                .iter()
+                .any(|m| name.ends_with(&format!(".{m}.weight")));
+            want += if matrix {
+                let t = info.ggml_dtype;
+                n / t.block_size() as u64 * t.type_size() as u64
+            } else if name == "token_embd.weight" {
+                n * 4 + n
+            } else {
+                n * 4
+            };
+        }
+        assert_eq!(got, want);
+    }
+
     #[test]
     fn damaged_files_are_refused_without_panicking() {
         for file in ["llama-q4_0-tied.gguf", "gemma2-q5_1.gguf", "phi3-q4_1.gguf"] {

@@ -394,7 +394,7 @@ fn resident_bytes(name: &str, shape: &[usize], stored_size: usize, own_head: boo
 
 /// The kernel's estimate of memory available to a new process without swapping
 /// (`MemAvailable` in /proc/meminfo), when the system reports one.
-fn available_memory() -> Option<u64> {
+pub(crate) fn available_memory() -> Option<u64> {
     let info = std::fs::read_to_string("/proc/meminfo").ok()?;
     let line = info.lines().find(|l| l.starts_with("MemAvailable:"))?;
     let kib: u64 = line.split_whitespace().nth(1)?.parse().ok()?;
@@ -403,14 +403,24 @@ fn available_memory() -> Option<u64> {
 
 /// An `Input` error (exit 2) when the weights need more memory than is available.
 fn check_fits(dir: &Path, needed: u64, available: u64) -> Result<()> {
+    check_fits_as(
+        dir,
+        needed,
+        available,
+        "matrices, embeddings and head at their stored precision, the head once more in 8 bits, norms in f32",
+    )
+}
+
+/// [`check_fits`] with `held` saying how the weights are held in memory.
+pub(crate) fn check_fits_as(path: &Path, needed: u64, available: u64, held: &str) -> Result<()> {
     if needed <= available {
         return Ok(());
     }
     let gib = |b: u64| b as f64 / (1u64 << 30) as f64;
     Err(Error::file(
-        dir,
+        path,
         format!(
-            "the model's weights need about {:.1} GiB of memory ({needed} bytes; matrices, embeddings and head at their stored precision, the head once more in 8 bits, norms in f32) and {:.1} GiB ({available} bytes) are available; free memory or use a machine with more",
+            "the model's weights need about {:.1} GiB of memory ({needed} bytes; {held}) and {:.1} GiB ({available} bytes) are available; free memory or use a machine with more",
             gib(needed),
             gib(available)
         ),
