@@ -201,8 +201,9 @@ pub fn record(
 /// write transaction begun and a new set revision's questions written. For a new revision of
 /// a large set that is most of the recording (a quarter of a second for 100,000 questions);
 /// it then overlaps the statistics instead of following them. The transaction commits only
-/// with the run: when `work` fails, it rolls back, and a history file this run created is
-/// removed, so the file is as it was. Errors of the history are warnings, as there.
+/// with the run: when `work` fails, it rolls back and the file is as it was. A history that
+/// does not exist yet is created only once `work` has succeeded (only the hashing overlaps
+/// then). Errors of the history are warnings, as there.
 pub fn record_alongside(
     opts: Option<&RecordOptions>,
     set: &QuestionSet,
@@ -217,7 +218,17 @@ pub fn record_alongside(
         let (send, receive) = std::sync::mpsc::channel::<NewRun>();
         let recorder = scope.spawn(move || -> Result<Option<i64>> {
             let questions = new_questions(set);
-            let created = !opts.path.exists();
+            if !opts.path.exists() {
+                // A new history is created only with the run: a failed `work` must leave no
+                // file, and removing one afterwards could remove another run's new history.
+                let Ok(mut run) = receive.recv() else {
+                    return Ok(None);
+                };
+                run.questions = questions;
+                return Store::open_for_writing(&opts.path)?
+                    .insert_run(&run)
+                    .map(Some);
+            }
             let mut store = Store::open_for_writing(&opts.path)?;
             let pending = store.begin_run(&set.fingerprint, &questions)?;
             match receive.recv() {
@@ -225,15 +236,8 @@ pub fn record_alongside(
                     run.questions = questions;
                     pending.finish(&run).map(Some)
                 }
-                Err(_) => {
-                    // `work` failed: roll back, and leave no file where there was none.
-                    drop(pending);
-                    drop(store);
-                    if created {
-                        remove_new_history(&opts.path);
-                    }
-                    Ok(None)
-                }
+                // `work` failed: dropping `pending` rolls the transaction back.
+                Err(_) => Ok(None),
             }
         });
         let summary = work();
@@ -262,16 +266,6 @@ pub fn record_alongside(
         }
         summary
     })
-}
-
-/// Removes a history file (and SQLite's journal files beside it) that this run created but
-/// did not record into.
-fn remove_new_history(path: &Path) {
-    for suffix in ["", "-wal", "-shm", "-journal"] {
-        let mut p = path.as_os_str().to_owned();
-        p.push(suffix);
-        let _ = std::fs::remove_file(PathBuf::from(p));
-    }
 }
 
 /// The warning of a run that the history did not take, with the command that records it later.
