@@ -58,9 +58,7 @@ pub const DEFAULT_CATEGORY: &str = "general";
 impl QuestionSet {
     /// Reads and validates a question set.
     pub fn load(path: &Path) -> Result<Self> {
-        let bytes =
-            std::fs::read(path).map_err(|e| Error::file(path, format!("cannot open: {e}")))?;
-        Self::parse(path, &bytes)
+        Self::parse(path, &fsutil::read_file(path)?)
     }
 
     /// Validates a question set held in memory, as [`QuestionSet::load`] does for a file;

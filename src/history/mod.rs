@@ -189,10 +189,15 @@ pub fn record(
     report_dir: &Path,
     finished_at: String,
 ) -> Result<i64> {
-    let mut run = run_of(opts, set, variants, summary, report_dir, finished_at)?;
-    run.questions = new_questions(set);
-    let mut store = Store::open_for_writing(&opts.path)?;
-    store.insert_run(&run)
+    let run = run_of(opts, set, variants, summary, report_dir, finished_at)?;
+    store_run(opts, run, new_questions(set))
+}
+
+/// Opens the history (creating it when absent) and records `run` with its `questions` in one
+/// transaction.
+fn store_run(opts: &RecordOptions, mut run: NewRun, questions: Vec<NewQuestion>) -> Result<i64> {
+    run.questions = questions;
+    Store::open_for_writing(&opts.path)?.insert_run(&run)
 }
 
 /// Runs `work` (the statistics and the report of a run on `set`) and records its summary as
@@ -221,13 +226,10 @@ pub fn record_alongside(
             if !opts.path.exists() {
                 // A new history is created only with the run: a failed `work` must leave no
                 // file, and removing one afterwards could remove another run's new history.
-                let Ok(mut run) = receive.recv() else {
+                let Ok(run) = receive.recv() else {
                     return Ok(None);
                 };
-                run.questions = questions;
-                return Store::open_for_writing(&opts.path)?
-                    .insert_run(&run)
-                    .map(Some);
+                return store_run(opts, run, questions).map(Some);
             }
             let mut store = Store::open_for_writing(&opts.path)?;
             let pending = store.begin_run(&set.fingerprint, &questions)?;

@@ -1151,34 +1151,16 @@ pub(super) mod tests {
                         _ => 0,
                     };
                     let blk = (next() as usize) % (t.row_bytes(inp) / size);
-                    let v: u16 = [0x7E00, 0x7C00, 0xFC00][(seed / 4 % 3) as usize];
-                    let v = if matches!(t, GgmlType::F32) {
-                        // f32 rows: the high half of a value.
-                        row[blk * size + 2..blk * size + 4].copy_from_slice(
-                            &(if v == 0x7E00 {
-                                0x7FC0u16
-                            } else if v == 0x7C00 {
-                                0x7F80
-                            } else {
-                                0xFF80
-                            })
-                            .to_le_bytes(),
-                        );
-                        None
-                    } else if matches!(t, GgmlType::Bf16) {
-                        Some(if v == 0x7E00 {
-                            0x7FC0u16
-                        } else if v == 0x7C00 {
-                            0x7F80
-                        } else {
-                            0xFF80
-                        })
-                    } else {
-                        Some(v)
+                    // NaN, +Inf, -Inf: as f16, and as bf16 (also the high half of an f32).
+                    let (half, brain) =
+                        [(0x7E00u16, 0x7FC0u16), (0x7C00, 0x7F80), (0xFC00, 0xFF80)]
+                            [(seed / 4 % 3) as usize];
+                    let (at, v) = match t {
+                        GgmlType::F32 => (2, brain),
+                        GgmlType::Bf16 => (0, brain),
+                        _ => (at, half),
                     };
-                    if let Some(v) = v {
-                        row[blk * size + at..blk * size + at + 2].copy_from_slice(&v.to_le_bytes());
-                    }
+                    row[blk * size + at..blk * size + at + 2].copy_from_slice(&v.to_le_bytes());
                 }
                 let mut values = vec![0.0f32; inp];
                 dequantise_row(t, &row, 0, inp, &mut values);

@@ -589,15 +589,13 @@ impl GgufFile {
         expected
             .iter()
             .map(|(hf, shape)| {
-                let values: u64 = shape.iter().map(|&d| d as u64).product();
                 if linear.contains(hf) {
-                    let stored = gguf_name(&self.arch, hf)
+                    return gguf_name(&self.arch, hf)
                         .and_then(|g| self.entry(&g).ok().flatten())
                         .map_or(0, |e| e.bytes.len() as u64);
-                    return stored;
                 }
-                let head = hf == LM_HEAD || (hf == EMBED && spec.tie_word_embeddings);
-                values * 4 + if head { values } else { 0 }
+                // Held as f32 once dequantised, counted as a checkpoint's are.
+                crate::model::weights::resident_bytes(hf, shape, 4, !spec.tie_word_embeddings)
             })
             .sum()
     }
@@ -890,8 +888,6 @@ mod tests {
         }
     }
 
-    /// Damaged copies of a fixture file (cut at many lengths, single bytes of the header and
-    /// directory changed) are read or refused as input errors naming the file, never a panic.
     /// The memory estimate counts the linear layers' blocks as the file stores them, the
     /// embedding and norms as f32 and the tied head once more in 8 bits: checked against the
     /// tensor directory as candle's GGUF reader lists it (type sizes from ggml's tables).
@@ -939,6 +935,8 @@ mod tests {
         assert_eq!(got, want);
     }
 
+    /// Damaged copies of a fixture file (cut at many lengths, single bytes of the header and
+    /// directory changed) are read or refused as input errors naming the file, never a panic.
     #[test]
     fn damaged_files_are_refused_without_panicking() {
         for file in ["llama-q4_0-tied.gguf", "gemma2-q5_1.gguf", "phi3-q4_1.gguf"] {

@@ -383,7 +383,12 @@ fn load_inner(dir: &Path, spec: &ModelSpec, quant: Option<(Codebook, bool)>) -> 
 /// Bytes a tensor takes once the decoder holds it: the matrices, the embedding table and the
 /// output head at their stored size (16-bit stays 16-bit), the head (its own or the tied
 /// embedding table) once more in 8 bits for the greedy screen, the norm vectors in f32.
-fn resident_bytes(name: &str, shape: &[usize], stored_size: usize, own_head: bool) -> u64 {
+pub(crate) fn resident_bytes(
+    name: &str,
+    shape: &[usize],
+    stored_size: usize,
+    own_head: bool,
+) -> u64 {
     let values: u64 = shape.iter().map(|&d| d as u64).product();
     if shape.len() < 2 {
         return values * 4;
