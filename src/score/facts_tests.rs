@@ -228,3 +228,66 @@ fn every_reference_of_the_demo_set_is_read_without_surprises() {
         "references with digits but no fact: {skipped:#?}"
     );
 }
+
+#[test]
+fn words_outside_the_list_start_no_fact() {
+    // `fact_at` passes over a word not in `may_start_fact`; every rule tried on such a word
+    // must find nothing either, in any of these contexts (each one a context some rule reads
+    // after a word: a number, a unit, an hour, a hyphen, a day of the month, a currency).
+    let mut words: BTreeSet<String> = BTreeSet::new();
+    let tables = [
+        &WEEKDAYS[..],
+        &MONTHS[..],
+        &UNITS[..],
+        &TENS[..],
+        &CHILD_WORDS[..],
+    ];
+    for w in tables.into_iter().flatten() {
+        words.insert(w.to_string());
+        words.insert(format!("{w}s"));
+        for n in 1..w.len() {
+            words.insert(w[..n].to_string());
+        }
+    }
+    let demo = std::fs::read_to_string(concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/eval-sets/ferry-faq.jsonl"
+    ))
+    .unwrap();
+    let texts = CASES.iter().map(|(t, _)| t.to_string()).chain([demo]);
+    for text in texts {
+        let lowered = normalise(&text);
+        for t in tokenize(&lowered) {
+            if let Tok::Word(w) = t.tok {
+                words.insert(w.to_string());
+            }
+        }
+    }
+    let contexts = [
+        "",
+        " 5",
+        " 5 pm",
+        " 1st",
+        " 12 of may",
+        " under 5",
+        " an hour",
+        "-five",
+        " 9.50",
+        " euros",
+        " hour",
+        " 10%",
+    ];
+    let mut checked = 0;
+    for w in words.iter().filter(|w| !may_start_fact(w)) {
+        for c in contexts {
+            let text = format!("{w}{c}");
+            let toks = tokenize(&text);
+            assert!(
+                fact_at_any(&toks, 0).is_none(),
+                "{text:?} starts a fact but {w:?} is not in may_start_fact"
+            );
+            checked += 1;
+        }
+    }
+    assert!(checked > 1000, "only {checked} cases");
+}

@@ -43,11 +43,11 @@ pub fn score_references<S: AsRef<str>>(answer: &str, references: &[S]) -> Option
         .peekable();
     refs.peek()?;
     let squad_buf = squad::normalized_buffer(answer);
-    let squad_answer = squad::split_tokens(&squad_buf);
-    let mut squad_sorted = keyed(&squad_answer);
+    let squad_answer = squad_keyed(&squad_buf);
+    let mut squad_sorted = squad_answer.clone();
     squad_sorted.sort_unstable();
     let rouge_buf = rouge::lowered(answer);
-    let rouge_answer = keyed(&rouge::split_tokens(&rouge_buf));
+    let rouge_answer = rouge_keyed(&rouge_buf);
     let mut best = ReferenceScores {
         exact_match: 0,
         token_f1: 0.0,
@@ -55,11 +55,10 @@ pub fn score_references<S: AsRef<str>>(answer: &str, references: &[S]) -> Option
     };
     for r in refs {
         let ref_buf = squad::normalized_buffer(r);
-        let squad_ref = squad::split_tokens(&ref_buf);
-        if squad_answer == squad_ref {
+        let mut b = squad_keyed(&ref_buf);
+        if squad_answer == b {
             best.exact_match = 1;
         }
-        let mut b = keyed(&squad_ref);
         b.sort_unstable();
         let f1 = squad::f1_from_counts(
             sorted_common(&squad_sorted, &b),
@@ -69,11 +68,50 @@ pub fn score_references<S: AsRef<str>>(answer: &str, references: &[S]) -> Option
         best.token_f1 = best.token_f1.max(f1);
 
         let ref_buf = rouge::lowered(r);
-        let rouge_ref = rouge::split_tokens(&ref_buf);
-        let b = keyed(&rouge_ref);
+        let b = rouge_keyed(&ref_buf);
         best.rouge_l = best.rouge_l.max(rouge::f_measure_tokens(&rouge_answer, &b));
     }
     Some(best)
+}
+
+/// The SQuAD tokens of a [`squad::normalized_buffer`], keyed: the pieces between whitespace
+/// ([`squad::split_tokens`]), split byte by byte when the buffer is ASCII.
+fn squad_keyed(buffer: &str) -> Vec<Keyed<'_>> {
+    if buffer.is_ascii() {
+        // Python's `str.split()` whitespace within ASCII: \t \n \v \f \r, U+001C..U+001F
+        // and the space.
+        keyed_runs(buffer, |b| !matches!(b, b'\t'..=b'\r' | b'\x1c'..=b' '))
+    } else {
+        keyed(&squad::split_tokens(buffer))
+    }
+}
+
+/// The rouge-score tokens of a [`rouge::lowered`] text, keyed: its maximal runs of `[a-z0-9]`
+/// ([`rouge::split_tokens`]). Every byte of a non-ASCII character is outside that class, so
+/// splitting byte by byte gives the same runs whatever the text.
+fn rouge_keyed(lowered: &str) -> Vec<Keyed<'_>> {
+    keyed_runs(lowered, |b| b.is_ascii_lowercase() || b.is_ascii_digit())
+}
+
+/// The maximal runs of bytes that are `inside` tokens, each with its hash. `inside` must hold
+/// only for ASCII bytes, or for every byte when `text` is ASCII, so that runs end on character
+/// boundaries.
+fn keyed_runs(text: &str, inside: impl Fn(u8) -> bool) -> Vec<Keyed<'_>> {
+    let bytes = text.as_bytes();
+    let mut out = Vec::with_capacity(bytes.len() / 4 + 1);
+    let mut i = 0;
+    while i < bytes.len() {
+        if !inside(bytes[i]) {
+            i += 1;
+            continue;
+        }
+        let start = i;
+        while i < bytes.len() && inside(bytes[i]) {
+            i += 1;
+        }
+        out.push(key(&text[start..i]));
+    }
+    out
 }
 
 /// Size of the multiset intersection of two sorted id lists.
@@ -124,17 +162,16 @@ impl Ord for Keyed<'_> {
 }
 
 fn keyed<'a>(tokens: &[&'a str]) -> Vec<Keyed<'a>> {
-    tokens
-        .iter()
-        .map(|t| {
-            let mut h = FxHasher::default();
-            h.write(t.as_bytes());
-            Keyed {
-                hash: h.finish(),
-                text: t,
-            }
-        })
-        .collect()
+    tokens.iter().map(|t| key(t)).collect()
+}
+
+fn key(text: &str) -> Keyed<'_> {
+    let mut h = FxHasher::default();
+    h.write(text.as_bytes());
+    Keyed {
+        hash: h.finish(),
+        text,
+    }
 }
 
 /// A small multiplicative hasher (the rustc "Fx" hash) for short token keys. Only speed
@@ -177,6 +214,39 @@ mod tests {
         assert_eq!(s.exact_match, 0);
         assert_eq!(s.token_f1, 0.0);
         assert_eq!(s.rouge_l, 0.0);
+    }
+
+    #[test]
+    fn combined_scores_equal_the_metrics_taken_one_by_one() {
+        // Random texts over an alphabet of the cases the tokenisers treat apart: letters of
+        // both cases, digits, articles, punctuation, `_`, every ASCII whitespace byte Python
+        // splits on (\t..\r, U+001C..U+001F, space), other control bytes, and non-ASCII
+        // letters and spaces.
+        use rand::Rng;
+        let mut rng = crate::stats::rng::chunk_rng(11, 0, 0);
+        let mut below = |n: usize| (rng.next_u64() % n as u64) as usize;
+        let pieces = [
+            "a", "an", "the", "The", "A", "ferry", "Ferry", "7", "40", "e", "bike", "x", "-", "'",
+            ".", ",", "_", " ", "  ", "\t", "\n", "\u{b}", "\u{c}", "\r", "\u{1c}", "\u{1f}",
+            "\u{1}", "\u{7f}", "é", "É", "\u{a0}", "\u{2003}", "ß", "İ",
+        ];
+        let mut text = || -> String {
+            let n = below(12);
+            (0..n).map(|_| pieces[below(pieces.len())]).collect()
+        };
+        for _ in 0..20_000 {
+            let answer = text();
+            let refs = [text(), text(), "a ferry".to_string()];
+            let refs: Vec<&String> = refs.iter().filter(|r| !r.trim().is_empty()).collect();
+            let s = score_references(&answer, &refs).unwrap();
+            assert_eq!(
+                Some(s.exact_match),
+                squad::max_exact_match(&answer, &refs),
+                "{answer:?} {refs:?}"
+            );
+            assert_eq!(Some(s.token_f1), squad::max_token_f1(&answer, &refs));
+            assert_eq!(Some(s.rouge_l), rouge::max_rouge_l(&answer, &refs));
+        }
     }
 
     #[test]

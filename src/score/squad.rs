@@ -59,13 +59,13 @@ pub fn normalized_buffer(text: &str) -> String {
     // ASCII: one pass that lower-cases, drops punctuation and replaces whole-word articles
     // (a word run is a run of ASCII letters and digits once punctuation, `_` included, is gone).
     let bytes = text.as_bytes();
-    let mut out = String::with_capacity(text.len());
+    let mut out: Vec<u8> = Vec::with_capacity(text.len());
     let mut run_start: Option<usize> = None;
-    let end_run = |out: &mut String, run_start: &mut Option<usize>| {
+    let end_run = |out: &mut Vec<u8>, run_start: &mut Option<usize>| {
         if let Some(start) = run_start.take() {
-            if is_article(&out[start..]) {
+            if matches!(&out[start..], b"a" | b"an" | b"the") {
                 out.truncate(start);
-                out.push(' ');
+                out.push(b' ');
             }
         }
     };
@@ -77,14 +77,15 @@ pub fn normalized_buffer(text: &str) -> String {
             if run_start.is_none() {
                 run_start = Some(out.len());
             }
-            out.push(b.to_ascii_lowercase() as char);
+            out.push(b.to_ascii_lowercase());
         } else {
             end_run(&mut out, &mut run_start);
-            out.push(b as char);
+            out.push(b);
         }
     }
     end_run(&mut out, &mut run_start);
-    out
+    // Only ASCII bytes were pushed.
+    String::from_utf8(out).expect("ASCII is UTF-8")
 }
 
 fn normalized_buffer_unicode(text: &str) -> String {
