@@ -21,6 +21,7 @@
 //! on one set of flips.
 
 use super::rng::{chunk_rng, CHUNK};
+use rand::rngs::Xoshiro256PlusPlus;
 use rand::Rng;
 use rayon::prelude::*;
 
@@ -63,20 +64,20 @@ pub fn sign_flip_test(diffs: &[f64], resamples: usize, seed: u64, domain: u32) -
         };
     }
     let (groups, singles) = group_magnitudes(&nz);
+    let part = [Part {
+        groups,
+        singles,
+        bar,
+    }];
     let chunks = resamples.div_ceil(CHUNK);
     let b: u64 = (0..chunks)
         .into_par_iter()
         .map(|chunk| {
             let mut rng = chunk_rng(seed, domain, chunk as u32);
             let count = CHUNK.min(resamples - chunk * CHUNK);
-            let mut hits = 0u64;
-            for _ in 0..count {
-                let s = flipped(&groups, &singles, &mut rng);
-                if s.abs() >= bar {
-                    hits += 1;
-                }
-            }
-            hits
+            let mut part_hits = [0u64];
+            flip_chunk(&part, f64::INFINITY, count, &mut part_hits, &mut rng);
+            part_hits[0]
         })
         .sum();
     SignFlip {
@@ -116,18 +117,12 @@ pub fn sign_flip_tests_by_stratum(
         observed - 1e-9 * scale
     };
     let bar = bar_of(&nz_all);
-    struct Part {
-        groups: Vec<Group>,
-        singles: Vec<f64>,
-        bar: f64,
-        /// The test's own outcome, when exact; else its flips are counted here.
-        exact: Option<SignFlip>,
-    }
     let mut rows: Vec<Vec<f64>> = vec![Vec::new(); n_strata];
     for (&d, &s) in diffs.iter().zip(strata) {
         rows[s as usize].push(d);
     }
-    let parts: Vec<Part> = rows
+    // Each stratum's own outcome, when its test is exact; else its flips are counted below.
+    let (parts, exact): (Vec<Part>, Vec<Option<SignFlip>>) = rows
         .iter()
         .map(|r| {
             let nz: Vec<f64> = r.iter().copied().filter(|&d| d != 0.0).collect();
@@ -135,35 +130,22 @@ pub fn sign_flip_tests_by_stratum(
             let exact = (k < 63 && (1u64 << k) <= resamples as u64)
                 .then(|| sign_flip_test(&nz, resamples, seed, domain));
             let (groups, singles) = group_magnitudes(&nz);
-            Part {
+            let part = Part {
                 groups,
                 singles,
                 bar: bar_of(&nz),
-                exact,
-            }
+            };
+            (part, exact)
         })
-        .collect();
+        .unzip();
     let chunks = resamples.div_ceil(CHUNK);
     let per_chunk: Vec<(u64, Vec<u64>)> = (0..chunks)
         .into_par_iter()
         .map(|chunk| {
             let mut rng = chunk_rng(seed, domain, chunk as u32);
             let count = CHUNK.min(resamples - chunk * CHUNK);
-            let mut hits = 0u64;
             let mut part_hits = vec![0u64; parts.len()];
-            for _ in 0..count {
-                let mut total = 0.0f64;
-                for (p, h) in parts.iter().zip(part_hits.iter_mut()) {
-                    let t = flipped(&p.groups, &p.singles, &mut rng);
-                    if t.abs() >= p.bar {
-                        *h += 1;
-                    }
-                    total += t;
-                }
-                if total.abs() >= bar {
-                    hits += 1;
-                }
-            }
+            let hits = flip_chunk(&parts, bar, count, &mut part_hits, &mut rng);
             (hits, part_hits)
         })
         .collect();
@@ -180,19 +162,101 @@ pub fn sign_flip_tests_by_stratum(
         flips: resamples as u64,
         exact: false,
     };
-    let by_stratum = parts
-        .iter()
+    let by_stratum = exact
+        .into_iter()
         .zip(&rows)
         .zip(part_b)
-        .map(|((p, r), b)| (!r.is_empty()).then(|| p.exact.unwrap_or_else(|| monte_carlo(b))))
+        .map(|((e, r), b)| (!r.is_empty()).then(|| e.unwrap_or_else(|| monte_carlo(b))))
         .collect();
     Some((monte_carlo(b), by_stratum))
 }
 
-/// One random flip of grouped magnitudes and single differences: the flipped sum
-/// (see [`group_magnitudes`]).
+/// The magnitudes of one test's non-zero differences ([`group_magnitudes`]) and the bar its
+/// flipped sums are counted against.
+struct Part {
+    groups: Vec<Group>,
+    singles: Vec<f64>,
+    bar: f64,
+}
+
+/// `count` random flips of every part in turn, from `rng`: adds to `part_hits[i]` the flips
+/// whose sum of part i is at least as extreme as its bar, and returns how many flips have the
+/// parts' sums together at least as extreme as `bar`. Compiled for AVX2 (and POPCNT) where the
+/// CPU has them, so the flip loop runs on 256-bit vectors; the sums are the same either way
+/// (the same additions in the same order, lane by lane).
+fn flip_chunk(
+    parts: &[Part],
+    bar: f64,
+    count: usize,
+    part_hits: &mut [u64],
+    rng: &mut Xoshiro256PlusPlus,
+) -> u64 {
+    #[cfg(target_arch = "x86_64")]
+    if std::arch::is_x86_feature_detected!("avx2") && std::arch::is_x86_feature_detected!("popcnt")
+    {
+        // SAFETY: the CPU has AVX2 and POPCNT (checked just above).
+        return unsafe { flip_chunk_avx2(parts, bar, count, part_hits, rng) };
+    }
+    flip_chunk_portable(parts, bar, count, part_hits, rng)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,popcnt")]
+unsafe fn flip_chunk_avx2(
+    parts: &[Part],
+    bar: f64,
+    count: usize,
+    part_hits: &mut [u64],
+    rng: &mut Xoshiro256PlusPlus,
+) -> u64 {
+    flip_chunk_with(parts, bar, count, part_hits, rng, |singles, rng| {
+        // SAFETY: this runs inside flip_chunk_avx2, only called on a CPU with AVX2.
+        unsafe { singles_sum_avx2(singles, rng) }
+    })
+}
+
 #[inline(always)]
-fn flipped(groups: &[Group], singles: &[f64], rng: &mut impl Rng) -> f64 {
+fn flip_chunk_portable(
+    parts: &[Part],
+    bar: f64,
+    count: usize,
+    part_hits: &mut [u64],
+    rng: &mut Xoshiro256PlusPlus,
+) -> u64 {
+    flip_chunk_with(parts, bar, count, part_hits, rng, singles_sum)
+}
+
+/// [`flip_chunk`] with `singles` the flipped sum of a part's single differences.
+#[inline(always)]
+fn flip_chunk_with(
+    parts: &[Part],
+    bar: f64,
+    count: usize,
+    part_hits: &mut [u64],
+    rng: &mut Xoshiro256PlusPlus,
+    singles: impl Fn(&[f64], &mut Xoshiro256PlusPlus) -> f64,
+) -> u64 {
+    let mut hits = 0u64;
+    for _ in 0..count {
+        let mut total = 0.0f64;
+        for (p, h) in parts.iter().zip(part_hits.iter_mut()) {
+            let t = grouped_sum(&p.groups, rng) + singles(&p.singles, rng);
+            if t.abs() >= p.bar {
+                *h += 1;
+            }
+            total += t;
+        }
+        if total.abs() >= bar {
+            hits += 1;
+        }
+    }
+    hits
+}
+
+/// One random flip of grouped magnitudes (see [`group_magnitudes`]): their flipped sum. The
+/// flip of a part is this plus [`singles_sum`] of its single differences, drawn after it.
+#[inline(always)]
+fn grouped_sum(groups: &[Group], rng: &mut impl Rng) -> f64 {
     let mut grouped = 0.0f64;
     // Random bits not yet used: a group of fewer than 64 takes its bits from here, so small
     // groups share words instead of each drawing one (most groups are small).
@@ -219,11 +283,78 @@ fn flipped(groups: &[Group], singles: &[f64], rng: &mut impl Rng) -> f64 {
         }
         grouped += g.value * (g.count as f64 - 2.0 * negative as f64);
     }
+    grouped
+}
+
+/// One random flip of single differences: their flipped sum, one random word per 64 of them,
+/// added in eight lanes (term j into lane j mod 8) and the lanes summed in a fixed order.
+#[inline(always)]
+fn singles_sum(singles: &[f64], rng: &mut impl Rng) -> f64 {
     let mut acc = [0.0f64; 8];
     for block in singles.chunks(64) {
         flip_accumulate(&mut acc, block, rng.next_u64());
     }
-    grouped + (((acc[0] + acc[1]) + (acc[2] + acc[3])) + ((acc[4] + acc[5]) + (acc[6] + acc[7])))
+    lane_total(&acc)
+}
+
+fn lane_total(acc: &[f64; 8]) -> f64 {
+    ((acc[0] + acc[1]) + (acc[2] + acc[3])) + ((acc[4] + acc[5]) + (acc[6] + acc[7]))
+}
+
+/// [`singles_sum`] with the eight lanes in two 256-bit registers: the same additions, lane by
+/// lane, in the same order, so the same sum. (Written with intrinsics: the compiler's own
+/// vectorisation of the portable loop paired lanes across 128-bit halves.)
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2")]
+unsafe fn singles_sum_avx2(singles: &[f64], rng: &mut Xoshiro256PlusPlus) -> f64 {
+    use std::arch::x86_64::*;
+    let mut lo = _mm256_setzero_pd();
+    let mut hi = _mm256_setzero_pd();
+    for block in singles.chunks(64) {
+        let mask = rng.next_u64();
+        let groups = block.chunks_exact(8);
+        let rest = groups.remainder();
+        let mut g = 0;
+        for group in groups {
+            let signs = &SIGN_BITS[((mask >> (8 * g)) & 0xff) as usize];
+            // SAFETY: `group` holds eight f64 and `signs` eight u64: two unaligned loads of
+            // four each from each.
+            unsafe {
+                let s_lo = _mm256_loadu_pd(signs.as_ptr().cast::<f64>());
+                let s_hi = _mm256_loadu_pd(signs.as_ptr().add(4).cast::<f64>());
+                let v_lo = _mm256_loadu_pd(group.as_ptr());
+                let v_hi = _mm256_loadu_pd(group.as_ptr().add(4));
+                lo = _mm256_add_pd(lo, _mm256_xor_pd(v_lo, s_lo));
+                hi = _mm256_add_pd(hi, _mm256_xor_pd(v_hi, s_hi));
+            }
+            g += 1;
+        }
+        if !rest.is_empty() {
+            // Only the last block has a remainder: add it lane by lane, as the portable loop.
+            let mut acc = [0.0f64; 8];
+            // SAFETY: `acc` holds eight f64: two unaligned stores of four.
+            unsafe {
+                _mm256_storeu_pd(acc.as_mut_ptr(), lo);
+                _mm256_storeu_pd(acc.as_mut_ptr().add(4), hi);
+            }
+            let signs = &SIGN_BITS[((mask >> (8 * g)) & 0xff) as usize];
+            for (l, d) in rest.iter().enumerate() {
+                acc[l] += f64::from_bits(d.to_bits() ^ signs[l]);
+            }
+            // SAFETY: as above, two unaligned loads of four.
+            unsafe {
+                lo = _mm256_loadu_pd(acc.as_ptr());
+                hi = _mm256_loadu_pd(acc.as_ptr().add(4));
+            }
+        }
+    }
+    let mut acc = [0.0f64; 8];
+    // SAFETY: `acc` holds eight f64: two unaligned stores of four.
+    unsafe {
+        _mm256_storeu_pd(acc.as_mut_ptr(), lo);
+        _mm256_storeu_pd(acc.as_mut_ptr().add(4), hi);
+    }
+    lane_total(&acc)
 }
 
 /// Magnitudes shared by at least this many non-zero differences are flipped as a group.
@@ -265,7 +396,7 @@ fn group_magnitudes(nz: &[f64]) -> (Vec<Group>, Vec<f64>) {
 fn flipped_sum(block: &[f64], mask: u64) -> f64 {
     let mut acc = [0.0f64; 8];
     flip_accumulate(&mut acc, block, mask);
-    ((acc[0] + acc[1]) + (acc[2] + acc[3])) + ((acc[4] + acc[5]) + (acc[6] + acc[7]))
+    lane_total(&acc)
 }
 
 /// Sign masks for the eight bits of a byte: `SIGN_BITS[b][l]` is the IEEE sign bit when bit l
@@ -310,6 +441,27 @@ fn flip_accumulate(acc: &mut [f64; 8], block: &[f64], mask: u64) {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[cfg(target_arch = "x86_64")]
+    #[test]
+    fn vector_and_portable_single_flips_give_the_same_sums() {
+        if !std::arch::is_x86_feature_detected!("avx2") {
+            return;
+        }
+        let mut data_rng = chunk_rng(5, 0, 0);
+        for len in [0, 1, 7, 8, 9, 63, 64, 65, 127, 200, 1000, 4099] {
+            let singles: Vec<f64> = (0..len)
+                .map(|_| (data_rng.next_u64() >> 11) as f64 / (1u64 << 53) as f64 - 0.5)
+                .collect();
+            let (mut a, mut b) = (chunk_rng(9, 1, len as u32), chunk_rng(9, 1, len as u32));
+            for _ in 0..50 {
+                let portable = singles_sum(&singles, &mut a);
+                // SAFETY: the CPU has AVX2 (checked above).
+                let vector = unsafe { singles_sum_avx2(&singles, &mut b) };
+                assert_eq!(portable.to_bits(), vector.to_bits(), "{len} singles");
+            }
+        }
+    }
 
     #[test]
     fn no_difference_gives_one() {
@@ -414,7 +566,7 @@ mod tests {
         let draws = 200_000;
         let (mut s1, mut s2, mut q1, mut q2, mut c12) = (0.0, 0.0, 0.0, 0.0, 0.0);
         for _ in 0..draws {
-            let t = flipped(&groups, &[], &mut rng);
+            let t = grouped_sum(&groups, &mut rng);
             let big = (t / 1000.0).round();
             let k2 = (30.0 - big) / 2.0;
             let k1 = (20.0 - (t - 1000.0 * big)) / 2.0;
