@@ -9,13 +9,13 @@ use sha2::{Digest, Sha256};
 use std::io::{Read, Write};
 use std::path::Path;
 
-/// Writes `bytes` to `path` atomically: a temporary file beside it, fsync, rename.
 /// Creates `dir` (and its parents) unless it exists, naming it on failure.
 pub fn create_dir(dir: &Path) -> Result<()> {
     std::fs::create_dir_all(dir)
         .map_err(|e| Error::file(dir, format!("cannot create the directory: {e}")))
 }
 
+/// Writes `bytes` to `path` atomically: a temporary file beside it, fsync, rename.
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
     commit_staged(path, stage(path, bytes)?)
 }
@@ -24,6 +24,48 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
 /// renamed into place by [`commit_staged`]. Staging several files first and renaming them
 /// after gives "all or nothing" for a group of outputs.
 pub fn stage(path: &Path, bytes: &[u8]) -> Result<tempfile::NamedTempFile> {
+    stage_with(path, |file| {
+        file.write_all(bytes).map_err(|e| write_error(path, e))
+    })
+}
+
+/// [`stage`] of `rows` as JSONL ([`jsonl_bytes`]), serialised and written in groups: each group
+/// is serialised in parallel while the one before it is written, so a large file's write
+/// overlaps its serialisation instead of following it, and no copy of the whole file is held.
+pub fn stage_jsonl<T: serde::Serialize + Sync>(
+    path: &Path,
+    rows: &[T],
+) -> Result<tempfile::NamedTempFile> {
+    // Rows a group: about 4 MB of grades rows, large enough for both cores to share.
+    const GROUP: usize = 16_384;
+    stage_with(path, |file| {
+        let mut pending: Vec<Vec<u8>> = Vec::new();
+        for group in rows.chunks(GROUP) {
+            let (written, next) = rayon::join(
+                || write_chunks(file, &pending).map_err(|e| write_error(path, e)),
+                || jsonl_chunks(group),
+            );
+            written?;
+            pending = next?;
+        }
+        write_chunks(file, &pending).map_err(|e| write_error(path, e))
+    })
+}
+
+fn write_chunks(file: &mut std::fs::File, chunks: &[Vec<u8>]) -> std::io::Result<()> {
+    chunks.iter().try_for_each(|c| file.write_all(c))
+}
+
+fn write_error(path: &Path, e: std::io::Error) -> Error {
+    Error::file(path, format!("cannot write: {e}"))
+}
+
+/// A synced temporary file in `path`'s directory (created if needed) whose content `write`
+/// puts in.
+fn stage_with(
+    path: &Path,
+    write: impl FnOnce(&mut std::fs::File) -> Result<()>,
+) -> Result<tempfile::NamedTempFile> {
     let dir = match path.parent() {
         Some(p) if !p.as_os_str().is_empty() => p,
         _ => Path::new("."),
@@ -35,9 +77,8 @@ pub fn stage(path: &Path, bytes: &[u8]) -> Result<tempfile::NamedTempFile> {
         .suffix(".tmp")
         .tempfile_in(dir)
         .map_err(|e| Error::file(dir, format!("cannot create a temporary file: {e}")))?;
-    tmp.write_all(bytes)
-        .and_then(|_| tmp.as_file().sync_all())
-        .map_err(|e| Error::file(path, format!("cannot write: {e}")))?;
+    write(tmp.as_file_mut())?;
+    tmp.as_file().sync_all().map_err(|e| write_error(path, e))?;
     Ok(tmp)
 }
 
@@ -56,9 +97,13 @@ pub fn write_jsonl_atomic<T: serde::Serialize + Sync>(path: &Path, rows: &[T]) -
 /// `rows` as JSONL bytes: one compact object a line, serialised in parallel chunks (a large
 /// answers or grades file is 100,000 rows) and joined in row order.
 pub fn jsonl_bytes<T: serde::Serialize + Sync>(rows: &[T]) -> Result<Vec<u8>> {
+    Ok(jsonl_chunks(rows)?.concat())
+}
+
+/// [`jsonl_bytes`] in pieces, in row order.
+fn jsonl_chunks<T: serde::Serialize + Sync>(rows: &[T]) -> Result<Vec<Vec<u8>>> {
     use rayon::prelude::*;
-    let chunks = rows
-        .par_chunks(4096)
+    rows.par_chunks(2048)
         .map(|chunk| {
             let mut out = Vec::with_capacity(chunk.len() * 256);
             for row in chunk {
@@ -68,8 +113,7 @@ pub fn jsonl_bytes<T: serde::Serialize + Sync>(rows: &[T]) -> Result<Vec<u8>> {
             }
             Ok(out)
         })
-        .collect::<Result<Vec<Vec<u8>>>>()?;
-    Ok(chunks.concat())
+        .collect()
 }
 
 /// Longest accepted line in a JSONL input. A question set is text; a line past this is a
@@ -225,6 +269,20 @@ pub fn shell_quote(s: &str) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn staged_jsonl_in_groups_is_the_whole_serialisation() {
+        let dir = tempfile::tempdir().unwrap();
+        let out = dir.path().join("rows.jsonl");
+        // Across several groups and a partial last one; and no rows at all.
+        for n in [40_000usize, 0, 1] {
+            let rows: Vec<(usize, String)> = (0..n).map(|i| (i, format!("row \"{i}\""))).collect();
+            commit_staged(&out, stage_jsonl(&out, &rows).unwrap()).unwrap();
+            let written = std::fs::read(&out).unwrap();
+            assert_eq!(written, jsonl_bytes(&rows).unwrap(), "{n} rows");
+            assert_eq!(written.iter().filter(|&&b| b == b'\n').count(), n);
+        }
+    }
 
     #[test]
     fn shell_words_survive_quoting() {

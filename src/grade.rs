@@ -39,10 +39,10 @@ pub fn write_grades(
         }
         None => None,
     };
-    // The answers' fingerprint is taken while the rows are serialised.
-    let (answers_sha, rows) = rayon::join(
+    // The answers' fingerprint is taken while the rows are serialised and written.
+    let (answers_sha, staged_rows) = rayon::join(
         || fsutil::sha256_file(answers_path),
-        || fsutil::jsonl_bytes(grades),
+        || fsutil::stage_jsonl(out, grades),
     );
     let info = GradeRunInfo {
         tool: "liftgate".into(),
@@ -60,9 +60,8 @@ pub fn write_grades(
         embedder,
     };
     let info_bytes = run_record::to_bytes(&info)?;
-    let rows = rows?;
+    let staged_rows = staged_rows?;
     let run = run_record::path_beside(out);
-    let staged_rows = fsutil::stage(out, &rows)?;
     let staged_info = fsutil::stage(&run, &info_bytes)?;
     fsutil::commit_staged(out, staged_rows)?;
     fsutil::commit_staged(&run, staged_info)

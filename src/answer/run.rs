@@ -700,7 +700,7 @@ pub fn write_outputs(out: &Path, run: &AnswerRun) -> Result<()> {
     let run_path = run_record::path_beside(out);
     let json = serde_json::to_vec_pretty(&run.info)
         .map_err(|e| Error::internal(format!("cannot serialise run.json: {e}")))?;
-    let staged_rows = fsutil::stage(out, &fsutil::jsonl_bytes(&run.records)?)?;
+    let staged_rows = fsutil::stage_jsonl(out, &run.records)?;
     let staged_json = fsutil::stage(&run_path, &json)?;
     fsutil::commit_staged(out, staged_rows)?;
     fsutil::commit_staged(&run_path, staged_json)
