@@ -442,6 +442,57 @@ fn a_weigh_that_fails_after_reading_leaves_the_history_as_it_was() {
 }
 
 #[test]
+fn a_new_history_in_an_existing_directory_leaves_no_temporary_file() {
+    // A history that does not exist yet is built under a temporary name beside it while the
+    // statistics run, and linked into place with the run: neither a failed nor a finished
+    // weigh may leave that file (or SQLite's companions) behind.
+    let tmp = tempfile::tempdir().unwrap();
+    let dir = tmp.path();
+    weigh_inputs(dir);
+    std::fs::create_dir(dir.join("reports")).unwrap();
+    std::fs::write(dir.join("semantic.toml"), "[lift]\nmetric = \"semantic\"\n").unwrap();
+    let listing = || {
+        let mut names: Vec<String> = std::fs::read_dir(dir.join("reports"))
+            .unwrap()
+            .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+            .collect();
+        names.sort();
+        names
+    };
+    let out = weigh(dir, "reports/a", &["--policy", "semantic.toml"]);
+    assert_eq!(out.status.code(), Some(2), "{}", text(&out.stderr));
+    assert!(listing().is_empty(), "{:?}", listing());
+    let out = weigh(dir, "reports/b", &[]);
+    let stderr = text(&out.stderr);
+    assert!(matches!(out.status.code(), Some(0 | 1)), "{stderr}");
+    assert!(stderr.contains("recorded as run 1 in"), "{stderr}");
+    assert_eq!(listing(), ["b", "history.sqlite"]);
+    // The linked file is a complete history: the next run is run 2, and both are listed.
+    let out = weigh(dir, "reports/c", &[]);
+    assert!(
+        text(&out.stderr).contains("recorded as run 2 in"),
+        "{}",
+        text(&out.stderr)
+    );
+    let out = liftgate(
+        dir,
+        &[
+            "trend",
+            "--history",
+            "reports/history.sqlite",
+            "--out",
+            "t",
+            "--resamples",
+            "1000",
+        ],
+    );
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let trend = json(&dir.join("t/trend.json"));
+    let runs = trend["series"][0]["runs"].as_array().map(Vec::len);
+    assert_eq!(runs, Some(2), "{trend}");
+}
+
+#[test]
 fn a_failed_recording_keeps_the_report_and_says_how_to_record_it() {
     let tmp = tempfile::tempdir().unwrap();
     let dir = tmp.path();

@@ -226,10 +226,9 @@ pub fn record_alongside(
             if !opts.path.exists() {
                 // A new history is created only with the run: a failed `work` must leave no
                 // file, and removing one afterwards could remove another run's new history.
-                let Ok(run) = receive.recv() else {
-                    return Ok(None);
-                };
-                return store_run(opts, run, questions).map(Some);
+                // It is built under a temporary name beside it meanwhile, and linked into
+                // place once the run is in.
+                return record_new_history(opts, &set.fingerprint, questions, receive);
             }
             let mut store = Store::open_for_writing(&opts.path)?;
             let pending = store.begin_run(&set.fingerprint, &questions)?;
@@ -268,6 +267,96 @@ pub fn record_alongside(
         }
         summary
     })
+}
+
+/// Records the run `receive` brings into a history that did not exist when `weigh` began.
+/// The file is built under a temporary name in the history's directory while the statistics
+/// run (the set's questions written in an open transaction); with the run, the transaction
+/// commits, the file is closed (SQLite folds its write-ahead log into it) and hard-linked to
+/// the history's path, which fails rather than replace a history another run created
+/// meanwhile. Then, or when the temporary file cannot be made, the run is recorded into the
+/// history at its path as usual. Without a run (`work` failed) the temporary file is removed
+/// and nothing is created.
+fn record_new_history(
+    opts: &RecordOptions,
+    set_fingerprint: &str,
+    questions: Vec<NewQuestion>,
+    receive: std::sync::mpsc::Receiver<NewRun>,
+) -> Result<Option<i64>> {
+    let staged = StagedHistory::new(&opts.path);
+    let mut store = staged
+        .as_ref()
+        .ok()
+        .and_then(|s| Store::open_for_writing(&s.path).ok());
+    let pending = store
+        .as_mut()
+        .and_then(|store| store.begin_run(set_fingerprint, &questions).ok());
+    let Ok(mut run) = receive.recv() else {
+        return Ok(None);
+    };
+    run.questions = questions;
+    let finished = pending.map(|pending| pending.finish(&run));
+    // Closed before it is linked, or removed.
+    drop(store);
+    if let (Some(Ok(id)), Ok(staged)) = (finished, &staged) {
+        if std::fs::hard_link(&staged.path, &opts.path).is_ok() {
+            return Ok(Some(id));
+        }
+    }
+    drop(staged);
+    Store::open_for_writing(&opts.path)?
+        .insert_run(&run)
+        .map(Some)
+}
+
+/// A history file under a temporary name beside its final path; removed, with SQLite's
+/// companion files, when dropped (after a hard link the history keeps the file).
+struct StagedHistory {
+    path: PathBuf,
+}
+
+impl StagedHistory {
+    fn new(final_path: &Path) -> Result<StagedHistory> {
+        let dir = match final_path.parent() {
+            Some(p) if !p.as_os_str().is_empty() => p,
+            _ => Path::new("."),
+        };
+        // A directory is not created here: a failed run must leave nothing behind, and the
+        // usual recording creates it with the history.
+        if !dir.is_dir() {
+            return Err(Error::file(
+                dir,
+                "the history's directory does not exist yet",
+            ));
+        }
+        let name = final_path
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default();
+        let nanos = std::time::SystemTime::now()
+            .duration_since(std::time::UNIX_EPOCH)
+            .map(|d| d.as_nanos())
+            .unwrap_or(0);
+        // SQLite creates the file itself, with the permissions it gives a new history.
+        let path = dir.join(format!(".{name}.{}-{nanos}.tmp", std::process::id()));
+        if path.exists() {
+            return Err(Error::file(
+                &path,
+                "a temporary history file of this name exists",
+            ));
+        }
+        Ok(StagedHistory { path })
+    }
+}
+
+impl Drop for StagedHistory {
+    fn drop(&mut self) {
+        for suffix in ["", "-wal", "-shm", "-journal"] {
+            let mut p = self.path.clone().into_os_string();
+            p.push(suffix);
+            let _ = std::fs::remove_file(p);
+        }
+    }
 }
 
 /// The warning of a run that the history did not take, with the command that records it later.
