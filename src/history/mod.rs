@@ -271,9 +271,9 @@ pub fn record_alongside(
 
 /// Records the run `receive` brings into a history that did not exist when `weigh` began.
 /// The file is built under a temporary name in the history's directory while the statistics
-/// run (the set's questions written in an open transaction); with the run, the transaction
-/// commits, the file is closed (SQLite folds its write-ahead log into it) and hard-linked to
-/// the history's path, which fails rather than replace a history another run created
+/// run (the set's questions written in an open transaction, its journal in memory); with the
+/// run, the transaction commits, the file is switched to WAL as every history is, closed and
+/// hard-linked to the history's path, which fails rather than replace a history another run created
 /// meanwhile. Then, or when the temporary file cannot be made, the run is recorded into the
 /// history at its path as usual. Without a run (`work` failed) the temporary file is removed
 /// and nothing is created.
@@ -287,7 +287,7 @@ fn record_new_history(
     let mut store = staged
         .as_ref()
         .ok()
-        .and_then(|s| Store::open_for_writing(&s.path).ok());
+        .and_then(|s| Store::open_staged(&s.path).ok());
     let pending = store
         .as_mut()
         .and_then(|store| store.begin_run(set_fingerprint, &questions).ok());
@@ -296,9 +296,12 @@ fn record_new_history(
     };
     run.questions = questions;
     let finished = pending.map(|pending| pending.finish(&run));
-    // Closed before it is linked, or removed.
-    drop(store);
-    if let (Some(Ok(id)), Ok(staged)) = (finished, &staged) {
+    // In WAL mode and closed before it is linked; closed before it is removed.
+    let ready = match (finished, store) {
+        (Some(Ok(id)), Some(store)) => store.finish_staged().ok().map(|()| id),
+        _ => None,
+    };
+    if let (Some(id), Ok(staged)) = (ready, &staged) {
         if std::fs::hard_link(&staged.path, &opts.path).is_ok() {
             return Ok(Some(id));
         }

@@ -295,6 +295,45 @@ impl Store {
         Ok(store)
     }
 
+    /// Opens a new history file being built under a temporary name, to be linked into place
+    /// once [`Store::finish_staged`] has run: as [`Store::open_for_writing`], but with the
+    /// rollback journal in memory instead of the write-ahead log, so a large first run is
+    /// written into the file once rather than into the log and then copied over at close.
+    pub fn open_staged(path: &Path) -> Result<Store> {
+        let conn = Connection::open_with_flags(
+            path,
+            OpenFlags::SQLITE_OPEN_READ_WRITE
+                | OpenFlags::SQLITE_OPEN_CREATE
+                | OpenFlags::SQLITE_OPEN_NO_MUTEX,
+        )
+        .map_err(|e| sql_error(path, e))?;
+        let mut store = Store {
+            conn,
+            path: path.to_path_buf(),
+        };
+        store.prepare_with("memory")?;
+        Ok(store)
+    }
+
+    /// Switches a file opened by [`Store::open_staged`] to WAL, as every history is, once its
+    /// transaction has committed.
+    pub fn finish_staged(self) -> Result<()> {
+        let path = self.path.clone();
+        let mode: String = self
+            .conn
+            .query_row("PRAGMA journal_mode = WAL", [], |r| r.get(0))
+            .map_err(|e| sql_error(&path, e))?;
+        if !mode.eq_ignore_ascii_case("wal") {
+            return Err(Error::file(
+                &path,
+                format!(
+                    "cannot switch the history file to WAL journal mode (SQLite kept {mode:?})"
+                ),
+            ));
+        }
+        Ok(())
+    }
+
     /// Opens an existing history file to read it (a missing file is a usage error). An older
     /// schema is migrated forward first.
     pub fn open_existing(path: &Path) -> Result<Store> {
@@ -340,6 +379,12 @@ impl Store {
 
     /// Busy timeout, identity checks, WAL, migrations.
     fn prepare(&mut self) -> Result<()> {
+        self.prepare_with("wal")
+    }
+
+    /// [`Store::prepare`] with the journal mode `journal` ("wal", or "memory" for a file being
+    /// built under a temporary name).
+    fn prepare_with(&mut self, journal: &str) -> Result<()> {
         let path = self.path.clone();
         self.conn
             .busy_timeout(BUSY_TIMEOUT)
@@ -349,9 +394,11 @@ impl Store {
         // WAL is a property of the file: set once, by whichever writer comes first.
         let mode: String = retry_busy(&path, || {
             self.conn
-                .query_row("PRAGMA journal_mode = WAL", [], |r| r.get(0))
+                .query_row(&format!("PRAGMA journal_mode = {journal}"), [], |r| {
+                    r.get(0)
+                })
         })?;
-        if !mode.eq_ignore_ascii_case("wal") {
+        if !mode.eq_ignore_ascii_case(journal) {
             return Err(Error::file(
                 &path,
                 format!("cannot switch the history file to WAL journal mode (SQLite kept {mode:?}); concurrent runs could not record safely"),
