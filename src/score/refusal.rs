@@ -66,7 +66,20 @@
 //!    when asked for a recipe) declines, unless the answer's first sentence opens with "yes"
 //!    or "no" (the limit is then the answer's reason), or the role denial goes on in its
 //!    sentence with content after a contrast word ("I'm not a rental agency, but ...").
-//!    Without the question these rules are off and the others decide as before.
+//!    An offer of information "that might help (you)" after a contrast word is an offer for
+//!    the request itself. Without the question these rules are off and the others decide as
+//!    before;
+//! 6. **bare declines** ([`RefusalDetector::declines_bare`]): an answer whose every sentence is
+//!    courtesy, the assistant speaking of itself ("I'm here to assist you", "I'm a chatbot
+//!    designed to assist with tasks", "I don't have ..."), or, first and with the question
+//!    known, the question echoed, is a refusal when it denies a profession ([`PROFESSIONS`]:
+//!    "I'm sorry, I'm not a doctor, lawyer, or financial advisor." given instead of a workout)
+//!    or hands the asker off to one ("it's always best to consult with a healthcare
+//!    professional"). One sentence of anything else makes it an answer: content ("You should
+//!    rest", "I think ...", "I can ...", a number), a contrast word followed by anything but the
+//!    assistant again ("I'm not a lawyer, but most leases ..."), or "I'm here to help you with
+//!    X" naming what was asked. A denied role that is no profession ("I'm not a freebot")
+//!    declines nothing: a small model denies roles while it role-plays.
 //!
 //! A sentence framed as the company ("as a cooperative, we have no boats to move your booking
 //! to") states a fact of the service: it gives content rather than leading in; an exclamation
@@ -454,6 +467,7 @@ const COURTESY_WORDS: &[&str] = &[
     "like",
     "help",
     "hmm",
+    "alright",
     "no",
     "we",
     "are",
@@ -556,6 +570,7 @@ const OFFER_HEADS: &[&str] = &[
 /// your transportation needs".
 const GENERIC_OFFER_WORDS: &[&str] = &[
     "other",
+    "whatever",
     "others",
     "any",
     "anything",
@@ -666,6 +681,78 @@ const SCOPE_EXCLUSIONS: &[&str] = &[
     "not to provide",
     "not to give",
     "not with",
+];
+
+/// What the bare-decline rule reads into a sentence ([`RefusalDetector::declines_bare`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Bare {
+    /// Gives something: the answer is no bare decline.
+    Content,
+    /// Courtesy, the assistant speaking of itself, the question echoed.
+    Nothing,
+    /// Denies a profession or hands the asker off to one.
+    Decline,
+}
+
+/// Professions whose denial ("I'm not a doctor, lawyer, or financial advisor") or whose
+/// hand-off ("consult with a healthcare professional") declines when the answer gives nothing
+/// else. Not roles a small model plays at ("I'm not a freebot", "I'm not a customer service
+/// AI"): denying those declines nothing.
+const PROFESSIONS: &[&str] = &[
+    "doctor",
+    "doctors",
+    "lawyer",
+    "lawyers",
+    "advisor",
+    "adviser",
+    "advisors",
+    "advisers",
+    "professional",
+    "professionals",
+    "expert",
+    "experts",
+    "specialist",
+    "specialists",
+    "therapist",
+    "counsellor",
+    "counselor",
+    "nurse",
+    "pharmacist",
+    "dentist",
+    "physician",
+    "accountant",
+    "attorney",
+    "solicitor",
+    "psychologist",
+    "psychiatrist",
+    "nutritionist",
+    "dietitian",
+    "veterinarian",
+    "vet",
+    "mechanic",
+    "electrician",
+    "plumber",
+    "chef",
+    "teacher",
+    "tutor",
+    "consultant",
+    "agent",
+];
+
+/// Verbs of a hand-off to a profession: "consult (with) a doctor", "seek a professional".
+const HAND_OFF_VERBS: &[&str] = &["consult", "consulting", "seek", "seeking"];
+
+/// Words that show a sentence in which the assistant speaks of itself gives something after
+/// all: advice ("I think you should ..."), a suggestion, steps.
+const SELF_TALK_CONTENT: &[&str] = &[
+    "should",
+    "recommend",
+    "suggest",
+    "try",
+    "think",
+    "believe",
+    "steps",
+    "tips",
 ];
 
 const FILLER_WORDS: &[&str] = &[
@@ -1034,6 +1121,9 @@ pub struct RefusalDetector {
     /// Offers of information or advice on a subject ([`INFO_OFFER_VERBS`] ×
     /// [`INFO_OFFER_NOUNS`]), read as offers only when the question is known.
     info_offer_head: Trie,
+    /// Offers of information "that might help" ([`INFO_OFFER_VERBS`] × [`INFO_OFFER_NOUNS`] ×
+    /// [`HELPFUL_TAILS`]): with the question known, an offer for the request itself.
+    helpful_info_offer: Trie,
     /// The first-person singular [`INABILITY`] forms and the assistant's own limits
     /// ([`OWN_LIMITS`]): with the question known, they decline when their object names what was
     /// asked ("I'm unable to read tarot cards" when asked for a tarot reading).
@@ -1083,6 +1173,12 @@ impl Default for RefusalDetector {
                     .map(move |p| format!("{v} {n} {p}"))
             })
         }));
+        let mut helpful_info_offer = Trie::new();
+        helpful_info_offer.insert_phrases(INFO_OFFER_VERBS.iter().flat_map(|v| {
+            INFO_OFFER_NOUNS
+                .iter()
+                .flat_map(move |n| HELPFUL_TAILS.iter().map(move |t| format!("{v} {n} {t}")))
+        }));
         let mut own_inability = Trie::new();
         own_inability.insert_phrases(
             INABILITY.iter().filter(|s| {
@@ -1102,6 +1198,7 @@ impl Default for RefusalDetector {
             offer_head,
             offer_condition,
             info_offer_head,
+            helpful_info_offer,
             own_inability,
             here_offer_head,
             courtesy: COURTESY_WORDS.iter().copied().collect(),
@@ -1217,7 +1314,139 @@ impl RefusalDetector {
                 }
             }
         }
-        false
+        self.declines_bare(asked, &n)
+    }
+
+    /// The bare-decline rule: the answer, sentence by sentence, says nothing but courtesy,
+    /// things about the assistant itself ("I'm here to assist you", "I'm a chatbot designed to
+    /// assist with tasks") and the question echoed, and it denies a profession ("I'm sorry, I'm
+    /// not a doctor, lawyer, or financial advisor." given instead of a workout) or hands the
+    /// asker off to one ("it's always best to consult with a healthcare professional"). Such an
+    /// answer gives nothing of what was asked. A role denial followed by content ("I'm not a
+    /// lawyer, but ...", "I'm not a doctor. You should rest ...") or an offer of what was asked
+    /// ("I'm a travel assistant, and I can help you with that") is no bare decline, and a role
+    /// that is no profession ("I'm not a freebot. I'm a human ...") declines nothing.
+    fn declines_bare(&self, asked: Option<&Asked>, n: &Normalised) -> bool {
+        let toks = &n.toks;
+        let mut declines = false;
+        let mut start = 0;
+        while start < toks.len() {
+            let end = (start..toks.len())
+                .find(|&j| matches!(toks[j], Tok::End))
+                .unwrap_or(toks.len());
+            if end > start {
+                let leads_in = end < toks.len() && (n.question_end[end] || n.interjection_end[end]);
+                match self.bare_sentence(asked, &toks[start..end], start == 0) {
+                    Bare::Content if !leads_in => return false,
+                    Bare::Decline => declines = true,
+                    _ => {}
+                }
+            }
+            start = end + 1;
+        }
+        declines
+    }
+
+    /// What one sentence (`sent`, without its end) is to the bare-decline rule
+    /// ([`RefusalDetector::declines_bare`]).
+    fn bare_sentence(&self, asked: Option<&Asked>, sent: &[Tok], first: bool) -> Bare {
+        let word = |j: usize| match sent.get(j) {
+            Some(Tok::Word(w)) => Some(w.as_ref()),
+            _ => None,
+        };
+        let profession_within = |from: usize, words: usize| {
+            (from..sent.len().min(from + words))
+                .map_while(word)
+                .any(|w| PROFESSIONS.contains(&w))
+        };
+        // A hand-off to a profession: "it's best to consult with a doctor".
+        if (0..sent.len()).any(|j| {
+            matches!(word(j), Some(w) if HAND_OFF_VERBS.contains(&w)) && profession_within(j + 1, 4)
+        }) {
+            return Bare::Decline;
+        }
+        let lead = sent
+            .iter()
+            .take_while(|t| matches!(t, Tok::Word(w) if self.courtesy.contains(w.as_ref())))
+            .count();
+        if lead == sent.len() {
+            return Bare::Nothing;
+        }
+        // The assistant speaks of itself: "I am ...", "I don't ...", "I can't ...", "I must ...".
+        let about_self = (0..lead).any(|j| {
+            word(j) == Some("i")
+                && matches!(
+                    (word(j + 1), word(j + 2)),
+                    (Some("am" | "must" | "was"), _)
+                        | (Some("do" | "can" | "will" | "would"), Some("not"))
+                        | (Some("have"), Some("no"))
+                )
+        });
+        if !about_self {
+            let echo = first && asked.is_some_and(|a| a.echoed_in(sent));
+            return if echo { Bare::Nothing } else { Bare::Content };
+        }
+        for j in lead..sent.len() {
+            let Some(w) = word(j) else { continue };
+            if SELF_TALK_CONTENT.contains(&w) || w.bytes().all(|b| b.is_ascii_digit()) {
+                return Bare::Content;
+            }
+            // After a contrast word only the assistant itself again ("..., but I'm not a
+            // doctor", "..., but as a chatbot ...").
+            if CONTRAST_WORDS.contains(&w) && !matches!(word(j + 1), Some("i" | "as") | None) {
+                return Bare::Content;
+            }
+            // "I can ..." offers or gives something: "I'm not a legal advisor, but I can
+            // assist with any legal matters" takes up what was asked.
+            if w == "can" && word(j + 1) != Some("not") {
+                return Bare::Content;
+            }
+        }
+        // "I'm here to assist you with your essay on shipwrecks" offers what was asked.
+        if (0..sent.len()).any(|j| {
+            self.here_offer_head
+                .match_at(sent, j)
+                .is_some_and(|e| self.names_asked(asked, &sent[e..]))
+        }) {
+            return Bare::Content;
+        }
+        let denies_profession = (0..sent.len()).any(|j| {
+            self.role_denial.match_at(sent, j).is_some_and(|e| {
+                let role_end = (e..sent.len())
+                    .find(|&k| {
+                        matches!(word(k), Some(w) if ROLE_ENDS.contains(&w)) || word(k).is_none()
+                    })
+                    .unwrap_or(sent.len());
+                profession_within(e, (role_end - e).min(8))
+            })
+        });
+        if denies_profession {
+            Bare::Decline
+        } else {
+            Bare::Nothing
+        }
+    }
+
+    /// Whether an offer's object (`rest`, to the end of its sentence) gives what was asked: it
+    /// names it ([`Asked::named_in`]), or, the question unknown, is specific ([`specific`]);
+    /// "that", "this" or "it" point back at the request.
+    fn names_asked(&self, asked: Option<&Asked>, rest: &[Tok]) -> bool {
+        if matches!(rest.first(), Some(Tok::Word(w)) if matches!(w.as_ref(), "that" | "this" | "it"))
+        {
+            return true;
+        }
+        let n = rest.len().min(OFFER_MAX_WORDS);
+        let object = &rest[..n];
+        if object
+            .iter()
+            .any(|t| matches!(t, Tok::Word(w) if GENERIC_OFFER_WORDS.contains(&w.as_ref())))
+        {
+            return false;
+        }
+        match asked {
+            Some(a) => a.named_in(object),
+            None => specific(object),
+        }
     }
 
     /// With the question known: a limit of the assistant whose object names what was asked
@@ -1351,23 +1580,36 @@ impl RefusalDetector {
                     })
                 })
                 .or_else(|| self.specific_conditional_offer(asked.is_some(), toks, k));
+            // "However, I can provide you with some information that might help you": an offer
+            // of information for the request itself, named or not.
+            let helpful = (contrasted && asked.is_some())
+                .then(|| self.helpful_info_offer.match_at(toks, k))
+                .flatten();
+            if let Some(e) = helpful {
+                if !self.declines_in(&toks[e..]) {
+                    return true;
+                }
+            }
             let Some((named, e)) = offer_end else {
                 continue;
             };
             if declined.ends_with(named) || asked.is_some_and(|a| !a.named_in(named)) {
                 continue;
             }
-            let rest = &toks[e..];
-            let declines_again = (0..rest.len()).any(|j| {
-                self.anywhere.match_at(rest, j).is_some()
-                    || self.opening.match_at(rest, j).is_some()
-                    || self.role_denial.match_at(rest, j).is_some()
-            });
-            if !declines_again {
+            if !self.declines_in(&toks[e..]) {
                 return true;
             }
         }
         false
+    }
+
+    /// Whether `rest` declines (again): a phrase or a role denial anywhere in it.
+    fn declines_in(&self, rest: &[Tok]) -> bool {
+        (0..rest.len()).any(|j| {
+            self.anywhere.match_at(rest, j).is_some()
+                || self.opening.match_at(rest, j).is_some()
+                || self.role_denial.match_at(rest, j).is_some()
+        })
     }
 
     /// "I can (certainly) assist/help (you) with X", X specific: X and the end of its
@@ -1475,6 +1717,16 @@ const INFO_OFFER_NOUNS: &[&str] = &[
     "general information",
     "general guidance",
     "general advice",
+];
+
+/// What makes an offer of information one for the request itself: "some information that
+/// might help you".
+const HELPFUL_TAILS: &[&str] = &[
+    "that might help",
+    "that may help",
+    "that could help",
+    "that will help",
+    "that can help",
 ];
 
 /// Limits of the assistant that, with the question known, decline an object that names what
@@ -1703,6 +1955,27 @@ impl Asked {
     /// Whether the question has no content words (or is unknown).
     pub fn is_empty(&self) -> bool {
         self.stems.is_empty()
+    }
+
+    /// Whether a sentence only echoes the question ("You're looking for cheap sunglasses on
+    /// the mainland, I'm sorry"): at least two of its content words name something the question
+    /// asks about, and at most one does not.
+    fn echoed_in(&self, sent: &[Tok]) -> bool {
+        let (mut named, mut other) = (0usize, 0usize);
+        for t in sent {
+            if let Tok::Word(w) = t {
+                if says_nothing(w) {
+                    continue;
+                }
+                let st = stem(w);
+                if self.stems.iter().any(|q| same_stem(q, &st)) {
+                    named += 1;
+                } else {
+                    other += 1;
+                }
+            }
+        }
+        named >= 2 && other <= 1
     }
 
     /// Whether `toks` name something the question asks about: a content word with the stem of
