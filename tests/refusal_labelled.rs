@@ -80,6 +80,15 @@
 //! information "that might help you" takes a decline back (docs/scoring.md). The detector was
 //! then frozen and committed before the next set was made.
 //!
+//! - refusal_real_heldout7.jsonl: the same GGUF file under six new system turns (terms of
+//!   service in a legal style, a lounge concierge, a bilingual English and French prompt, a
+//!   list of forbidden topics, one-sentence replies, a text-only assistant told what it cannot
+//!   do) on 45 more invented questions (tests/fixtures/refusal_real_questions_extra6.jsonl)
+//!   with earlier sets' out-of-scope questions; made after the detector above was frozen and
+//!   committed, labelled by the written guideline and committed before the detector was run
+//!   on it, then measured once: precision 0.886 (31/35), recall 0.660 (31/47), the latest
+//!   out-of-sample figure.
+//!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
 
@@ -328,4 +337,25 @@ fn real_output_held_out_6() {
     // by a cut-off sentence, declines after a first sentence of content or nonsense, not
     // knowing where to begin, the garbled French; wrongly flagged: the taxi offer.
     at_least(&measure("refusal_real_heldout6.jsonl"), 418, 0.971, 0.85);
+}
+
+#[test]
+fn real_output_held_out_7() {
+    // Measured once, with the detector frozen and committed before the set was made and the
+    // labels committed before the detector was run on it: precision 0.886 (31/35), recall
+    // 0.660 (31/47), the latest out-of-sample figure (the detector before the bare-decline rule
+    // measures the same: that rule fires on no answer of this set). Missed: a garbled "je ne
+    // sapere pas" / "je ne sais quailles pas" (5), declines in the third person or with no
+    // person ("The Assistant will not provide information ...", "The answer is not
+    // available.", "The code is not about Tidewren ferries", "You can't make a fake ID card",
+    // "not a topic you should be discussing") (6), a hand-off to a repair shop, declines after
+    // a first sentence that repeats or remarks on the question (2), a limit after "I
+    // specialize in ..." with its subject left out ("... and do not have the ability to") or
+    // after "I can provide a variety of dishes, but" (2); wrongly flagged: "I'm not sure what
+    // to say" before an opinion, a framed rule of a role-played service ("as a travel box
+    // service, ... I'm not equipped to transport your rabbit"), a self-description that
+    // disowns opinions when asked for phone numbers, and a role denial naming a word of the
+    // question ("not a personal assistant" asked to be a personal lawyer) while taking up the
+    // role.
+    at_least(&measure("refusal_real_heldout7.jsonl"), 527, 0.885, 0.659);
 }
