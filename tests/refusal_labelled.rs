@@ -87,7 +87,8 @@
 //!   with earlier sets' out-of-scope questions; made after the detector above was frozen and
 //!   committed, labelled by the written guideline and committed before the detector was run
 //!   on it, then measured once: precision 0.886 (31/35), recall 0.660 (31/47), the latest
-//!   out-of-sample figure.
+//!   out-of-sample figure. Its misses then led to a small widening (docs/scoring.md);
+//!   in-sample since.
 //!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
@@ -356,6 +357,9 @@ fn real_output_held_out_7() {
     // service, ... I'm not equipped to transport your rabbit"), a self-description that
     // disowns opinions when asked for phone numbers, and a role denial naming a word of the
     // question ("not a personal assistant" asked to be a personal lawyer) while taking up the
-    // role.
-    at_least(&measure("refusal_real_heldout7.jsonl"), 527, 0.885, 0.659);
+    // role. After the measurement, in-sample: the assistant in the third person ("The
+    // Assistant will not / is not allowed to ..."), a list number as lead-in, "The answer is
+    // not available.", "je ne sapere pas" opening an answer, and "... and do not have the
+    // ability to" after a self-description: 0.907 (39/43), 0.830 (39/47).
+    at_least(&measure("refusal_real_heldout7.jsonl"), 527, 0.906, 0.829);
 }
