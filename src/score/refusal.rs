@@ -1245,7 +1245,7 @@ impl RefusalDetector {
     /// for the rules). With the question, prefer [`RefusalDetector::is_refusal_to`]: the rules
     /// that judge an offer or a limit against what was asked then apply.
     pub fn is_refusal(&self, answer: &str) -> bool {
-        self.decide(None, answer)
+        self.decide(&LazyAsked::unknown(), answer)
     }
 
     /// Whether `answer` declines to answer `question`. The question's content words
@@ -1253,11 +1253,10 @@ impl RefusalDetector {
     /// takes the decline back) or something else (then it does not), and whether a limit or a
     /// role denial in the opening is about what was asked. An empty question is an unknown one.
     pub fn is_refusal_to(&self, question: &str, answer: &str) -> bool {
-        let asked = Asked::new(question);
-        self.decide((!asked.is_empty()).then_some(&asked), answer)
+        self.decide(&LazyAsked::of(question), answer)
     }
 
-    fn decide(&self, asked: Option<&Asked>, answer: &str) -> bool {
+    fn decide(&self, question: &LazyAsked, answer: &str) -> bool {
         let n = normalise(answer);
         // Whether every word so far in the current sentence is a courtesy word.
         let mut all_courtesy = true;
@@ -1317,8 +1316,10 @@ impl RefusalDetector {
                 // question first: the limit in that sentence is the answer's reason.
                 let yes_or_no = n.sentence_start[i] == 0
                     && matches!(n.toks.first(), Some(Tok::Word(w)) if w == "no" || w == "yes");
-                if let (None, Some(asked), false) = (found, asked, yes_or_no) {
-                    found = self.limit_on_asked(asked, &n.toks, i);
+                if let (None, false) = (found, yes_or_no) {
+                    if let Some(asked) = question.get() {
+                        found = self.limit_on_asked(asked, &n.toks, i);
+                    }
                 }
             }
             if (all_courtesy || contrasted)
@@ -1334,6 +1335,7 @@ impl RefusalDetector {
                 all_courtesy = self.courtesy.contains(w.as_ref());
             }
             if let Some(end) = found {
+                let asked = question.get();
                 if !self.answers_after(asked, &n.toks, end)
                     && !self.offers_after(asked, &n.toks, n.sentence_start[i], end)
                 {
@@ -1341,7 +1343,12 @@ impl RefusalDetector {
                 }
             }
         }
-        self.declines_bare(asked, &n)
+        // Only a sentence naming a profession can be a bare decline.
+        let names_profession = n
+            .toks
+            .iter()
+            .any(|t| matches!(t, Tok::Word(w) if PROFESSIONS.contains(&w.as_ref())));
+        names_profession && self.declines_bare(question.get(), &n)
     }
 
     /// The bare-decline rule: the answer, sentence by sentence, says nothing but courtesy,
@@ -1933,6 +1940,37 @@ const QUESTION_STOP_WORDS: &[&str] = &[
     "now",
     "today",
 ];
+
+/// A question's [`Asked`], made the first time a rule needs it: most answers meet no rule that
+/// reads the question, and they skip reading it.
+struct LazyAsked<'q> {
+    question: Option<&'q str>,
+    asked: std::cell::OnceCell<Asked>,
+}
+
+impl<'q> LazyAsked<'q> {
+    fn of(question: &'q str) -> Self {
+        LazyAsked {
+            question: Some(question),
+            asked: std::cell::OnceCell::new(),
+        }
+    }
+
+    fn unknown() -> Self {
+        LazyAsked {
+            question: None,
+            asked: std::cell::OnceCell::new(),
+        }
+    }
+
+    /// The question's content words; `None` when it is unknown or has none.
+    fn get(&self) -> Option<&Asked> {
+        let asked = self
+            .asked
+            .get_or_init(|| self.question.map(Asked::new).unwrap_or_default());
+        (!asked.is_empty()).then_some(asked)
+    }
+}
 
 /// What a question asks about: the stems ([`stem`]) of its content words, leaving out
 /// function words and the words of asking ([`QUESTION_STOP_WORDS`], [`COURTESY_WORDS`],
