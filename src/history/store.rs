@@ -280,6 +280,13 @@ impl Store {
                 Error::file(dir, format!("cannot create the history's directory: {e}"))
             })?;
         }
+        let mut store = Store::create_or_open(path)?;
+        store.prepare()?;
+        Ok(store)
+    }
+
+    /// A read-write connection to `path`, creating the file when absent.
+    fn create_or_open(path: &Path) -> Result<Store> {
         let conn = Connection::open_with_flags(
             path,
             OpenFlags::SQLITE_OPEN_READ_WRITE
@@ -287,12 +294,10 @@ impl Store {
                 | OpenFlags::SQLITE_OPEN_NO_MUTEX,
         )
         .map_err(|e| sql_error(path, e))?;
-        let mut store = Store {
+        Ok(Store {
             conn,
             path: path.to_path_buf(),
-        };
-        store.prepare()?;
-        Ok(store)
+        })
     }
 
     /// Opens a new history file being built under a temporary name, to be linked into place
@@ -300,17 +305,7 @@ impl Store {
     /// rollback journal in memory instead of the write-ahead log, so a large first run is
     /// written into the file once rather than into the log and then copied over at close.
     pub fn open_staged(path: &Path) -> Result<Store> {
-        let conn = Connection::open_with_flags(
-            path,
-            OpenFlags::SQLITE_OPEN_READ_WRITE
-                | OpenFlags::SQLITE_OPEN_CREATE
-                | OpenFlags::SQLITE_OPEN_NO_MUTEX,
-        )
-        .map_err(|e| sql_error(path, e))?;
-        let mut store = Store {
-            conn,
-            path: path.to_path_buf(),
-        };
+        let mut store = Store::create_or_open(path)?;
         store.prepare_with("memory")?;
         Ok(store)
     }

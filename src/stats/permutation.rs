@@ -197,7 +197,7 @@ fn flip_chunk(
         // SAFETY: the CPU has AVX2 and POPCNT (checked just above).
         return unsafe { flip_chunk_avx2(parts, bar, count, part_hits, rng) };
     }
-    flip_chunk_portable(parts, bar, count, part_hits, rng)
+    flip_chunk_with(parts, bar, count, part_hits, rng, singles_sum)
 }
 
 #[cfg(target_arch = "x86_64")]
@@ -213,17 +213,6 @@ unsafe fn flip_chunk_avx2(
         // SAFETY: this runs inside flip_chunk_avx2, only called on a CPU with AVX2.
         unsafe { singles_sum_avx2(singles, rng) }
     })
-}
-
-#[inline(always)]
-fn flip_chunk_portable(
-    parts: &[Part],
-    bar: f64,
-    count: usize,
-    part_hits: &mut [u64],
-    rng: &mut Xoshiro256PlusPlus,
-) -> u64 {
-    flip_chunk_with(parts, bar, count, part_hits, rng, singles_sum)
 }
 
 /// [`flip_chunk`] with `singles` the flipped sum of a part's single differences.
