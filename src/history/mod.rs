@@ -271,12 +271,12 @@ pub fn record_alongside(
 
 /// Records the run `receive` brings into a history that did not exist when `weigh` began.
 /// The file is built under a temporary name in the history's directory while the statistics
-/// run (the set's questions written in an open transaction, its journal in memory); with the
+/// run (the set's questions written in an open transaction, its journal in memory). With the
 /// run, the transaction commits, the file is switched to WAL as every history is, closed and
-/// hard-linked to the history's path, which fails rather than replace a history another run created
-/// meanwhile. Then, or when the temporary file cannot be made, the run is recorded into the
-/// history at its path as usual. Without a run (`work` failed) the temporary file is removed
-/// and nothing is created.
+/// hard-linked to the history's path; the link fails rather than replace a history another
+/// run created meanwhile. Then, or when the temporary file cannot be made, the run is
+/// recorded into the history at its path as usual. Without a run (`work` failed) the
+/// temporary file is removed and nothing is created.
 fn record_new_history(
     opts: &RecordOptions,
     set_fingerprint: &str,
