@@ -43,7 +43,7 @@ run() {
   t2=$(now)
   set +e
   cpu "$out/cpu.weigh" "$BIN" weigh --questions "$WORK/set.jsonl" --baseline "$out/base.grades.jsonl" \
-    --candidate "$out/tuned.grades.jsonl" --report "$out/report" --resamples 10000 > "$out/weigh.txt"
+    --candidate "$out/tuned.grades.jsonl" --report "$out/report-$round" --resamples 10000 > "$out/weigh.txt"
   code=$?
   set -e
   t3=$(now)
@@ -55,10 +55,12 @@ run() {
   echo "{\"binary\": \"$label\", \"kind\": \"liftgate_grade\", \"pairs\": $PAIRS, \"seconds\": $grade, \"cpu_seconds\": $(cpus "$out/cpu.grade")}"
   echo "{\"binary\": \"$label\", \"kind\": \"liftgate_grade_second_file\", \"pairs\": $PAIRS, \"seconds\": $(secs "$t1" "$t2")}"
   echo "{\"binary\": \"$label\", \"kind\": \"liftgate_weigh\", \"questions\": $PAIRS, \"resamples\": 10000, \"seconds\": $weigh, \"cpu_seconds\": $(cpus "$out/cpu.weigh"), \"verdict\": \"$(head -1 "$out/weigh.txt")\"}"
-  echo "{\"binary\": \"$label\", \"kind\": \"liftgate_grade_plus_weigh\", \"pairs\": $PAIRS, \"seconds\": $total, \"cores\": $(nproc), \"load_average\": \"$(cut -d' ' -f1-3 /proc/loadavg)\"}"
+  echo "{\"binary\": \"$label\", \"kind\": \"liftgate_grade_plus_weigh\", \"round\": $round, \"pairs\": $PAIRS, \"seconds\": $total, \"cores\": $(nproc), \"load_average\": \"$(cut -d' ' -f1-3 /proc/loadavg)\"}"
 }
 
-# ROUNDS rounds, the two binaries alternating within each, so both meet the same load.
+# ROUNDS rounds, the two binaries alternating within each, so both meet the same load. Each
+# binary records its runs in a history of its own beside the reports: round 1 creates it and
+# records the set (a first run), later rounds add a run of a set it knows (a run after it).
 for round in $(seq "${ROUNDS:-1}"); do
   if [ -n "${BEFORE:-}" ]; then
     run before "$BEFORE"
