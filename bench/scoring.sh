@@ -1,5 +1,5 @@
 #!/usr/bin/env bash
-# Benchmark of scoring and statistics (issue 2, "Performance"): `liftgate grade` of 100,000
+# Benchmark of scoring and statistics (README, "Performance"): `liftgate grade` of 100,000
 # invented answer pairs plus `liftgate weigh` with 10,000 resamples, and, on the same pairs in
 # the same run, ROUGE-L from the rouge-score package (the reference implementation).
 #
