@@ -189,15 +189,15 @@ pub fn record(
     report_dir: &Path,
     finished_at: String,
 ) -> Result<i64> {
-    let run = run_of(opts, set, variants, summary, report_dir, finished_at)?;
-    store_run(opts, run, new_questions(set))
+    let mut run = run_of(opts, set, variants, summary, report_dir, finished_at)?;
+    run.questions = new_questions(set);
+    store_run(opts, &run)
 }
 
-/// Opens the history (creating it when absent) and records `run` with its `questions` in one
-/// transaction.
-fn store_run(opts: &RecordOptions, mut run: NewRun, questions: Vec<NewQuestion>) -> Result<i64> {
-    run.questions = questions;
-    Store::open_for_writing(&opts.path)?.insert_run(&run)
+/// Opens the history (creating it when absent) and records `run`, its questions filled, in
+/// one transaction.
+fn store_run(opts: &RecordOptions, run: &NewRun) -> Result<i64> {
+    Store::open_for_writing(&opts.path)?.insert_run(run)
 }
 
 /// Runs `work` (the statistics and the report of a run on `set`) and records its summary as
@@ -307,9 +307,7 @@ fn record_new_history(
         }
     }
     drop(staged);
-    Store::open_for_writing(&opts.path)?
-        .insert_run(&run)
-        .map(Some)
+    store_run(opts, &run).map(Some)
 }
 
 /// A history file under a temporary name beside its final path; removed, with SQLite's

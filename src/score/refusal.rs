@@ -1165,14 +1165,16 @@ impl Default for RefusalDetector {
         opening.insert_phrases(OPENING_PHRASES);
         let mut anywhere = Trie::new();
         anywhere.insert_phrases(ANYWHERE_PHRASES);
+        // The first-person inabilities, without "allowed" and "permitted".
+        let first_person_inability = || {
+            INABILITY.iter().filter(|s| {
+                s.starts_with("i ") && !s.contains("allowed") && !s.contains("permitted")
+            })
+        };
         let mut framed_inability = Trie::new();
         // "Allowed" and "permitted" stay rules even after a frame ("as a guide dog, I'm not
         // allowed in the lounge").
-        framed_inability.insert_phrases(
-            INABILITY.iter().filter(|s| {
-                s.starts_with("i ") && !s.contains("allowed") && !s.contains("permitted")
-            }),
-        );
+        framed_inability.insert_phrases(first_person_inability());
         // The assistant's scope stated by exclusion ("my role is to assist with trips, not to
         // assist with lost items"; "designed to help with text queries, not with prompts").
         framed_inability.insert_phrases(SCOPE_EXCLUSIONS);
@@ -1201,11 +1203,7 @@ impl Default for RefusalDetector {
                 .flat_map(move |n| HELPFUL_TAILS.iter().map(move |t| format!("{v} {n} {t}")))
         }));
         let mut own_inability = Trie::new();
-        own_inability.insert_phrases(
-            INABILITY.iter().filter(|s| {
-                s.starts_with("i ") && !s.contains("allowed") && !s.contains("permitted")
-            }),
-        );
+        own_inability.insert_phrases(first_person_inability());
         own_inability.insert_phrases(OWN_LIMITS);
         let mut here_offer_head = Trie::new();
         here_offer_head.insert_phrases(HERE_OFFER_HEADS);
