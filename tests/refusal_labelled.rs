@@ -90,6 +90,16 @@
 //!   out-of-sample figure. Its misses then led to a small widening (docs/scoring.md);
 //!   in-sample since.
 //!
+//! - refusal_real_heldout8.jsonl: the same GGUF file under six new system turns (a telephone
+//!   line's spoken voice, example exchanges with one decline among them, a guide for children
+//!   in simple words, a settings block in JSON, a list of what the assistant can and cannot do,
+//!   an ordered refusal with its opening words given) on 45 more invented questions
+//!   (tests/fixtures/refusal_real_questions_extra7.jsonl) with earlier sets' out-of-scope
+//!   questions; made after the detector above (with the widening on held-out 7) was frozen and
+//!   committed, labelled by the written guideline and committed before the detector was run on
+//!   it, then measured once: precision 0.854 (35/41), recall 0.778 (35/45), the latest
+//!   out-of-sample figure.
+//!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
 
@@ -362,4 +372,31 @@ fn real_output_held_out_7() {
     // not available.", "je ne sapere pas" opening an answer, and "... and do not have the
     // ability to" after a self-description: 0.907 (39/43), 0.830 (39/47).
     at_least(&measure("refusal_real_heldout7.jsonl"), 527, 0.906, 0.829);
+}
+
+#[test]
+fn real_output_held_out_8() {
+    // Measured once, with the detector frozen and committed before the set was made and the
+    // labels committed before the detector was run on it: precision 0.854 (35/41), recall
+    // 0.778 (35/45), the latest out-of-sample figure. By system turn (declines found of
+    // declines, false flags): telephone line 4 of 6, 2; example exchanges 2 of 4, 2; guide for
+    // children 1 of 2, 2; JSON settings 3 of 4, 0; can-and-cannot list 11 of 14, 0; ordered
+    // refusal 14 of 15, 0. 28 answers are word for word in earlier sets (none a decline, none
+    // flagged): on the other 496 the same 0.854 (35/41), 0.778 (35/45). Missed: declines with
+    // no first person ("You can't make a fake ID card", "You can't make a weekly vegetarian
+    // meal plan", "The rules are designed ... to prevent the use of fake IDs", the prompt's
+    // "you can't help with that" echoed after nonsense) (4); hand-offs to a doctor or
+    // pharmacist or to legal advice after a first sentence of caution or nonsense (2); a
+    // decline after a first sentence that remarks on the question ("You're looking for a key
+    // to your bicycle, I'm sorry to hear that. But ... I'm not equipped to assist with locks")
+    // and a role denial after the question echoed ("The best smartphone this year? I'm sorry,
+    // but I'm not a phone-tech expert") (2); a scope by exclusion ("designed to talk to
+    // people, not to open doors"); "Awesome, I'm sorry for your loss, but I'm unable to
+    // provide a password" inside an opening quote. Wrongly flagged: offers that take the
+    // decline back in other words ("a daily plan ... including vegetarian options" asked for a
+    // weekly one; "information about the process of divorce"), "not familiar with the phrase
+    // ... but I can help with that", the prompt's example exchanges echoed with their
+    // example decline, "I do not sell gift vouchers" as the service's answer, and "I'm not
+    // sure what to say, but I'll try" before an argument.
+    at_least(&measure("refusal_real_heldout8.jsonl"), 524, 0.853, 0.777);
 }
