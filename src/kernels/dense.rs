@@ -107,6 +107,22 @@ trait PanelRead: Copy + Sync {
     fn piece<'a>(src: &'a [Self], buf: &'a mut [f32]) -> &'a [f32];
     /// Calls `f` on the panel as f32 values (many rows).
     fn as_f32(panel: &[Self], f: impl FnOnce(&[f32]));
+    /// The few-rows sums of `panel` ([inp, 64]) straight from the stored values, widened in
+    /// registers ([`half_rows_avx512`]); false when the format has no such loop (f32 is read
+    /// in place anyway).
+    ///
+    /// # Safety
+    /// The CPU has AVX-512F.
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn rows_avx512(
+        _panel: &[Self],
+        _acc: &mut [[f32; PANEL]],
+        _x: &[f32],
+        _inp: usize,
+    ) -> bool {
+        false
+    }
 }
 
 impl PanelRead for f32 {
@@ -132,6 +148,21 @@ impl<H: Half> PanelRead for H {
             f(buf);
         });
     }
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn rows_avx512(panel: &[H], acc: &mut [[f32; PANEL]], x: &[f32], inp: usize) -> bool {
+        assert!(panel.len() >= inp * PANEL && x.len() >= acc.len() * inp);
+        // SAFETY: the CPU has AVX-512F (the caller's promise); the lengths are asserted.
+        unsafe {
+            match acc.len() {
+                1 => half_rows_avx512::<H, 1>(acc, x, inp, panel),
+                2 => half_rows_avx512::<H, 2>(acc, x, inp, panel),
+                3 => half_rows_avx512::<H, 3>(acc, x, inp, panel),
+                _ => half_rows_avx512::<H, FEW_ROWS>(acc, x, inp, panel),
+            }
+        }
+        true
+    }
 }
 
 /// The weights of a linear layer in the panel layout, however they are held: the seam between
@@ -146,6 +177,16 @@ pub trait Panels: Sync {
     fn piece<'a>(&'a self, p: usize, k0: usize, k1: usize, buf: &'a mut [f32]) -> &'a [f32];
     /// Calls `f` on panel `p` as f32 values, [inp, 64].
     fn whole(&self, p: usize, f: &mut dyn FnMut(&[f32]));
+    /// The few-rows sums of panel `p` (`acc.len()` rows of `x`) by the format's own loop,
+    /// bit for bit those of [`panel_rows`]'s; false when it has none.
+    ///
+    /// # Safety
+    /// The CPU has AVX-512F.
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn rows_avx512(&self, _acc: &mut [[f32; PANEL]], _x: &[f32], _p: usize) -> bool {
+        false
+    }
 }
 
 /// A panel-layout slice of f32 or 16-bit values with its input size.
@@ -162,6 +203,13 @@ impl<T: PanelRead> Panels for Stored<'_, T> {
     }
     fn whole(&self, p: usize, f: &mut dyn FnMut(&[f32])) {
         T::as_f32(&self.w[p * self.inp * PANEL..(p + 1) * self.inp * PANEL], f);
+    }
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn rows_avx512(&self, acc: &mut [[f32; PANEL]], x: &[f32], p: usize) -> bool {
+        let panel = &self.w[p * self.inp * PANEL..(p + 1) * self.inp * PANEL];
+        // SAFETY: the caller's promise, passed on.
+        unsafe { T::rows_avx512(panel, acc, x, self.inp) }
     }
 }
 
@@ -261,6 +309,16 @@ unsafe fn panel_gemm(
 pub trait Half: Copy + Send + Sync + 'static {
     /// dst[i] = src[i] as f32 (exact). Uses the CPU's conversion instructions where present.
     fn widen(src: &[Self], dst: &mut [f32]);
+    /// The 64 values at `src` (one input's row of a panel) widened to f32 (exact), in four
+    /// vectors whose lanes are in the order [`Half::column`] gives.
+    ///
+    /// # Safety
+    /// `src` points at 64 readable values; the CPU has AVX-512F and the caller is compiled
+    /// for it (this is inlined into it).
+    #[cfg(target_arch = "x86_64")]
+    unsafe fn widen64(src: *const Self) -> [std::arch::x86_64::__m512; 4];
+    /// The panel column (0..64) in lane `lane` of vector `v` of [`Half::widen64`].
+    fn column(v: usize, lane: usize) -> usize;
 }
 
 impl Half for half::bf16 {
@@ -268,12 +326,48 @@ impl Half for half::bf16 {
         use half::slice::HalfFloatSliceExt;
         src.convert_to_f32_slice(dst);
     }
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn widen64(src: *const Self) -> [std::arch::x86_64::__m512; 4] {
+        use std::arch::x86_64::*;
+        // A bf16 is the top half of the f32 it stands for. Read as 32-bit words, 32 values
+        // hold the even columns in their low halves (shifted up) and the odd columns in their
+        // high halves (the low halves cleared): two operations for 32 values.
+        // SAFETY: 64 values (128 bytes) are readable at `src`; AVX-512F (the caller's promise).
+        unsafe {
+            let top = _mm512_set1_epi32(0xFFFF_0000u32 as i32);
+            let a = _mm512_loadu_si512(src.cast());
+            let b = _mm512_loadu_si512(src.add(32).cast());
+            [
+                _mm512_castsi512_ps(_mm512_slli_epi32::<16>(a)),
+                _mm512_castsi512_ps(_mm512_and_si512(a, top)),
+                _mm512_castsi512_ps(_mm512_slli_epi32::<16>(b)),
+                _mm512_castsi512_ps(_mm512_and_si512(b, top)),
+            ]
+        }
+    }
+    fn column(v: usize, lane: usize) -> usize {
+        32 * (v / 2) + 2 * lane + v % 2
+    }
 }
 
 impl Half for half::f16 {
     fn widen(src: &[Self], dst: &mut [f32]) {
         use half::slice::HalfFloatSliceExt;
         src.convert_to_f32_slice(dst);
+    }
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn widen64(src: *const Self) -> [std::arch::x86_64::__m512; 4] {
+        use std::arch::x86_64::*;
+        // SAFETY: 64 values (128 bytes) are readable at `src`; AVX-512F (the caller's
+        // promise), whose conversion instruction widens f16 exactly (subnormals included).
+        std::array::from_fn(|v| unsafe {
+            _mm512_cvtph_ps(_mm256_loadu_si256(src.add(16 * v).cast()))
+        })
+    }
+    fn column(v: usize, lane: usize) -> usize {
+        16 * v + lane
     }
 }
 
@@ -283,10 +377,11 @@ thread_local! {
 }
 
 /// As [`matmul`], with W stored 16-bit in the panel layout and widened inside the product:
-/// bit for bit the result of [`matmul`] on the widened weights. Up to [`FEW_ROWS`] rows stream
-/// each panel through a small buffer in pieces of [`PIECE_ROWS`] rows; more rows widen the
-/// whole panel once per call (into a per-thread buffer) and run the same `gemm` as the f32
-/// product.
+/// bit for bit the result of [`matmul`] on the widened weights. Up to [`FEW_ROWS`] rows widen
+/// each weight in a register just before its multiply and add on AVX-512 ([`half_rows_avx512`]),
+/// or else stream each panel through a small buffer in pieces of [`PIECE_ROWS`] rows; more
+/// rows widen the whole panel once per call (into a per-thread buffer) and run the same `gemm`
+/// as the f32 product.
 pub fn matmul_half<H: Half>(x: &[f32], n: usize, inp: usize, w: &[H], out: usize, y: &mut [f32]) {
     assert!(w.len() >= panel_len(out, inp));
     products(x, n, inp, &Stored { w, inp }, out, y);
@@ -327,6 +422,10 @@ unsafe fn panel_rows_avx512<W: Panels>(
     w: &W,
     p: usize,
 ) {
+    // SAFETY: the CPU has AVX-512F (this function's promise).
+    if unsafe { w.rows_avx512(acc, x, p) } {
+        return;
+    }
     panel_rows_any(acc, x, inp, w, p);
 }
 
@@ -371,6 +470,68 @@ fn panel_rows_body<W: Panels, const N: usize>(
     for t in 0..N {
         for l in 0..PANEL {
             acc[t][l] = even[t][l] + odd[t][l];
+        }
+    }
+}
+
+/// [`panel_rows_body`] for a 16-bit panel, with each weight widened in a register just before
+/// its multiply and add instead of a piece being widened into a buffer and read back (a store
+/// and a load of every value, in a conversion loop compiled for the baseline CPU). The sums are
+/// the same, in the same order: for each row and output lane, one over the even inputs and one
+/// over the odd inputs, each in input order, x·w rounded and then added (no fused
+/// multiply-add), the two added at the end; so the result is bit for bit that of the f32
+/// product over the widened panel (tested below), and a batch-1 step of a bf16 checkpoint reads
+/// its 2 bytes a weight at close to the memory's rate.
+///
+/// # Safety
+/// The CPU has AVX-512F; `panel` holds inp·64 values and `x` N·inp.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn half_rows_avx512<H: Half, const N: usize>(
+    acc: &mut [[f32; PANEL]],
+    x: &[f32],
+    inp: usize,
+    panel: &[H],
+) {
+    use std::arch::x86_64::*;
+    const V: usize = PANEL / 16;
+    debug_assert!(acc.len() == N && panel.len() >= inp * PANEL && x.len() >= N * inp);
+    let w = panel.as_ptr();
+    // SAFETY: k < inp, so row k of the panel, 64 values at w + 64k, is readable; AVX-512F
+    // is this function's promise.
+    let row = |k: usize| -> [__m512; V] { unsafe { H::widen64(w.add(k * PANEL)) } };
+    let mut even = [[_mm512_setzero_ps(); V]; N];
+    let mut odd = [[_mm512_setzero_ps(); V]; N];
+    let mut k = 0;
+    while k + 1 < inp {
+        let (w0, w1) = (row(k), row(k + 1));
+        for t in 0..N {
+            let x0 = _mm512_set1_ps(x[t * inp + k]);
+            let x1 = _mm512_set1_ps(x[t * inp + k + 1]);
+            for v in 0..V {
+                even[t][v] = _mm512_add_ps(even[t][v], _mm512_mul_ps(x0, w0[v]));
+                odd[t][v] = _mm512_add_ps(odd[t][v], _mm512_mul_ps(x1, w1[v]));
+            }
+        }
+        k += 2;
+    }
+    if k < inp {
+        let w0 = row(k);
+        for t in 0..N {
+            let x0 = _mm512_set1_ps(x[t * inp + k]);
+            for v in 0..V {
+                even[t][v] = _mm512_add_ps(even[t][v], _mm512_mul_ps(x0, w0[v]));
+            }
+        }
+    }
+    for t in 0..N {
+        for v in 0..V {
+            let mut sum = [0f32; 16];
+            // SAFETY: `sum` holds 16 values.
+            unsafe { _mm512_storeu_ps(sum.as_mut_ptr(), _mm512_add_ps(even[t][v], odd[t][v])) };
+            for (lane, s) in sum.into_iter().enumerate() {
+                acc[t][H::column(v, lane)] = s;
+            }
         }
     }
 }
