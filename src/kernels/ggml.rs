@@ -836,8 +836,11 @@ impl GroupRows for Q6KRows<'_> {
 }
 
 /// The 64 2-bit codes of one input from its 16 bytes, as u32 lanes: row 16j + i's code, at
-/// bits 2j..2j + 2 of byte i, in lane 16j + i; with `HIGH` (q3_k) the input's high-mask bits
-/// (bit r for row r) as bit 2 of each lane.
+/// bits 2j..2j + 2 of byte i, in lane 16j + i. With `HIGH` (q3_k), `high` holds the input's
+/// high-mask bits (bit r for row r) and lane r gets q3_k's signed code, the 2-bit code ql less
+/// 4 where the row's bit is clear (ql − 4·(1 − hbit) of the reference, the same integer), as
+/// an i32's bits: ql itself where the bit is set, else ql | !3, which is ql − 4 in two's
+/// complement since ql < 4.
 #[inline(always)]
 fn codes2<const HIGH: bool>(pairs: &[u8], high: u64, out: &mut [u32; PANEL]) {
     let pairs = &pairs[..16];
@@ -847,11 +850,13 @@ fn codes2<const HIGH: bool>(pairs: &[u8], high: u64, out: &mut [u32; PANEL]) {
         }
     }
     if HIGH {
-        let (b0, b1) = (high as u32, (high >> 32) as u32);
+        // The clear bits, set: with AVX-512 the compiler moves them into a mask register and
+        // ORs under it (rather than shifting each bit into place).
+        let (n0, n1) = (!high as u32, (!high >> 32) as u32);
         let (lo, hi) = out.split_at_mut(32);
         for i in 0..32 {
-            lo[i] |= ((b0 >> i) & 1) << 2;
-            hi[i] |= ((b1 >> i) & 1) << 2;
+            lo[i] |= if n0 & (1 << i) != 0 { !3 } else { 0 };
+            hi[i] |= if n1 & (1 << i) != 0 { !3 } else { 0 };
         }
     }
 }
@@ -879,9 +884,9 @@ impl<const FMA: bool> GroupRows for Q2KRows<'_, FMA> {
     }
 }
 
-/// A q3_k group: (d · (sc − 32)) · (code − 4), code the low two bits with the high-mask bit
-/// as bit 2 (the reference's ql − 4·(1 − hbit), the same integer), with the scale of inputs
-/// 0..16 or 16..32 of the group (d · (sc − 32) computed once per group).
+/// A q3_k group: (d · (sc − 32)) · (ql − 4·(1 − hbit)), the code an integer as in the
+/// reference (see [`codes2`]), with the scale of inputs 0..16 or 16..32 of the group
+/// (d · (sc − 32) computed once per group).
 struct Q3KRows<'a> {
     dl: [[f32; PANEL]; 2],
     q: &'a [u8],
@@ -895,7 +900,7 @@ impl GroupRows for Q3KRows<'_> {
         codes2::<true>(&self.q[k * 16..], self.hbit[k], &mut c);
         let dl = &self.dl[k / 16];
         for l in 0..PANEL {
-            w[l] = dl[l] * (c[l] as i32 - 4) as f32;
+            w[l] = dl[l] * (c[l] as i32) as f32;
         }
     }
 }
