@@ -16,7 +16,7 @@
 # No llama.cpp column: no registry package installs a llama.cpp CPU build here without compiling
 # it (README, "GGUF speed").
 #
-# First run (or a GGUF file missing): writes the model (~3.9 GB: bench/models/random-05b-{f32,bf16}/
+# First run (or a GGUF file missing): writes the model (~3.6 GB: bench/models/random-05b-{f32,bf16}/
 # and random-05b-{q8_0,q4_k,q4_k_m,q3_k_m}.gguf, git-ignored; remove them when done) with
 # bench/make_gguf_checkpoints.py, which needs numpy and the `gguf` package: PYTHON, a python
 # with both, or else bench/.venv-gguf, created with them from PyPI.

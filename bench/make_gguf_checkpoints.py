@@ -2,7 +2,7 @@
 six forms: a checkpoint directory in f32 and one in bf16 (the same values: each is a bf16
 value), and GGUF v3 exports of it in q8_0, q4_k, a q4_k_m-like mix and a q3_k_m-like mix.
 
-    python bench/make_gguf_checkpoints.py OUT_DIR     # ~3.9 GB in all, a minute or two
+    python bench/make_gguf_checkpoints.py OUT_DIR     # ~3.6 GB in all, about a minute
 
 Needs numpy and the `gguf` package (PyPI; bench/gguf.sh makes a venv with both). Shape: 0.5B-class in the
 Llama layout (no q/k/v biases): hidden 1024, 24 layers, 16 heads, 4 key/value heads,
