@@ -1,8 +1,9 @@
 #!/usr/bin/env bash
-# GGUF decoding speed: liftgate on one seeded random-init 0.5B-class model held five ways (an f32
-# checkpoint, a bf16 checkpoint widened exactly inside the products, GGUF q8_0, q4_k and a
-# q4_k_m-like mix of q4_k and q6_k kept in their blocks), at batch 1 and batch 16, every
-# configuration in this one run with the same threads, one after the other per batch size so
+# GGUF decoding speed: liftgate on one seeded random-init 0.5B-class model held six ways (an f32
+# checkpoint, a bf16 checkpoint widened exactly inside the products, GGUF q8_0, q4_k, a
+# q4_k_m-like mix of q4_k and q6_k and a q3_k_m-like mix of q3_k, q4_k and q5_k, kept in their
+# blocks), at batch 1 and batch 16, every configuration in this one run with the same threads,
+# one after the other per batch size so
 # they meet the same machine load; and the batch-1 bandwidth bound of each file (its bytes, all
 # read once per token, over the STREAM-style triad bandwidth measured at the start of the run
 # with bench/peer/stream.c, as bench/throughput.py measures it). See README, "GGUF speed".
@@ -10,13 +11,13 @@
 #   bench/gguf.sh                                   # 2 threads, batch 1 and 16, 32 new tokens
 #   THREADS=1 BATCHES="1" TOKENS=64 bench/gguf.sh   # other settings
 #   BEFORE=path bench/gguf.sh                       # another liftgate binary on the same files
-#   CONFIGS="q8_0 q4_k" bench/gguf.sh               # some of f32 bf16 q8_0 q4_k q4_k_m
+#   CONFIGS="q8_0 q4_k" bench/gguf.sh               # some of f32 bf16 q8_0 q4_k q4_k_m q3_k_m
 #
 # No llama.cpp column: no registry package installs a llama.cpp CPU build here without compiling
 # it (README, "GGUF speed").
 #
-# First run: writes the model (~3.7 GB: bench/models/random-05b-{f32,bf16}/ and
-# random-05b-{q8_0,q4_k,q4_k_m}.gguf, git-ignored; remove them when done) with
+# First run (or a GGUF file missing): writes the model (~3.6 GB: bench/models/random-05b-{f32,bf16}/
+# and random-05b-{q8_0,q4_k,q4_k_m,q3_k_m}.gguf, git-ignored; remove them when done) with
 # bench/make_gguf_checkpoints.py, which needs numpy and the `gguf` package: PYTHON, a python
 # with both, or else bench/.venv-gguf, created with them from PyPI.
 #
@@ -34,7 +35,7 @@ root="$(dirname "$here")"
 models="$here/models"
 threads="${THREADS:-2}"
 tokens="${TOKENS:-32}"
-if [ ! -f "$models/random-05b-q4_k_m.gguf" ]; then
+if [ ! -f "$models/random-05b-q4_k_m.gguf" ] || [ ! -f "$models/random-05b-q3_k_m.gguf" ]; then
   python="${PYTHON:-$here/.venv-gguf/bin/python}"
   if [ ! -x "$python" ]; then
     python3 -m venv "$here/.venv-gguf"
@@ -52,7 +53,7 @@ echo "$(date -u +%FT%TZ) load: $(cut -d' ' -f1-3 /proc/loadavg); triad bandwidth
 
 dir="$models/random-05b"
 configs=("f32:$dir-f32:" "bf16:$dir-bf16:" "q8_0:$dir-f32:$dir-q8_0.gguf" "q4_k:$dir-f32:$dir-q4_k.gguf"
-  "q4_k_m:$dir-f32:$dir-q4_k_m.gguf")
+  "q4_k_m:$dir-f32:$dir-q4_k_m.gguf" "q3_k_m:$dir-f32:$dir-q3_k_m.gguf")
 file_bytes() { # the bytes of the weights file of a configuration
   local name model gguf
   IFS=: read -r name model gguf <<<"$1"

@@ -1,8 +1,8 @@
 """Writes the seeded random-init 0.5B-class model of the GGUF speed benchmark (bench/gguf.sh) in
-five forms: a checkpoint directory in f32 and one in bf16 (the same values: each is a bf16
-value), and GGUF v3 exports of it in q8_0, q4_k and a q4_k_m-like mix.
+six forms: a checkpoint directory in f32 and one in bf16 (the same values: each is a bf16
+value), and GGUF v3 exports of it in q8_0, q4_k, a q4_k_m-like mix and a q3_k_m-like mix.
 
-    python bench/make_gguf_checkpoints.py OUT_DIR     # ~3.7 GB in all, under a minute
+    python bench/make_gguf_checkpoints.py OUT_DIR     # ~3.6 GB in all, about a minute
 
 Needs numpy and the `gguf` package (PyPI; bench/gguf.sh makes a venv with both). Shape: 0.5B-class in the
 Llama layout (no q/k/v biases): hidden 1024, 24 layers, 16 heads, 4 key/value heads,
@@ -19,7 +19,12 @@ quantiser for the k-quants, so the linear layers are seeded random q4_k blocks (
 f16 scales giving weights of about the checkpoint's size), as the k-quant fixture does; the
 speed of a product does not depend on the values. q4_k_m: as q4_k, but attn_v and ffn_down
 are seeded random q6_k blocks in the layers where llama.cpp's Q4_K_M keeps them in q6_k (12 of
-24), so a product meets q6_k panels as in a real Q4_K_M export. The token embedding is q8_0 in
+24), so a product meets q6_k panels as in a real Q4_K_M export. q3_k_m: like, not equal to, a
+Q3_K_M export: attn_q, attn_k, ffn_gate and ffn_up are seeded random q3_k blocks, attn_output
+q4_k, attn_v q5_k in the first two layers and q4_k after, ffn_down q5_k in the first
+sixteenth of the layers (layer 0 here) and q4_k after (llama-quant.cpp's choices for
+LLAMA_FTYPE_MOSTLY_Q3_K_M on a llama model, from memory; a real export also stores the output
+head, here tied, in q6_k and may differ in other details). The token embedding is q8_0 in
 every file (liftgate dequantises the embedding and the tied head to f32 at load).
 """
 
@@ -85,6 +90,37 @@ def q6k_blocks(rows, cols, rng):
     b[:, 192:208] = rng.integers(-32, 32, size=(n, 16), dtype=np.int8).view(np.uint8)
     b[:, 208:210] = (0.02 / 32 / 16 * rng.uniform(0.5, 1.5, size=n)).astype(np.float16).view(np.uint8).reshape(n, 2)
     return b.reshape(rows, cols // block * size)
+
+
+def q3k_blocks(rows, cols, rng):
+    """Seeded random q3_k blocks: random codes, high-bit masks and 6-bit scales, f16 d."""
+    block, size = gguf.GGML_QUANT_SIZES[Q.Q3_K]
+    n = rows * cols // block
+    b = rng.integers(0, 256, size=(n, size), dtype=np.uint8)
+    b[:, 108:110] = (0.02 / 32 / 4 * rng.uniform(0.5, 1.5, size=n)).astype(np.float16).view(np.uint8).reshape(n, 2)
+    return b.reshape(rows, cols // block * size)
+
+
+def q5k_blocks(rows, cols, rng):
+    """Seeded random q5_k blocks: random codes and 6-bit scales, f16 d and dmin."""
+    block, size = gguf.GGML_QUANT_SIZES[Q.Q5_K]
+    n = rows * cols // block
+    b = rng.integers(0, 256, size=(n, size), dtype=np.uint8)
+    half = lambda base: (base * rng.uniform(0.5, 1.5, size=n)).astype(np.float16).view(np.uint8).reshape(n, 2)  # noqa: E731
+    b[:, 0:2], b[:, 2:4] = half(0.06 / 1953), half(0.03 / 63)
+    return b.reshape(rows, cols // block * size)
+
+
+def q3k_m_type(name: str, layer: int):
+    """The type of a linear layer's matrix in the q3_k_m-like mix (see the module docstring)."""
+    n = S["layers"]
+    if name.endswith("attn_v.weight"):
+        return Q.Q5_K if layer < 2 else Q.Q4_K
+    if name.endswith("ffn_down.weight"):
+        return Q.Q5_K if layer < n // 16 else Q.Q4_K
+    if name.endswith("attn_output.weight"):
+        return Q.Q4_K
+    return Q.Q3_K
 
 
 def more_bits(layer: int) -> bool:
@@ -154,6 +190,8 @@ def main():
     q8 = gguf_writer(a.out / "random-05b-q8_0.gguf.tmp", eos)
     q4 = gguf_writer(a.out / "random-05b-q4_k.gguf.tmp", eos)
     q4m = gguf_writer(a.out / "random-05b-q4_k_m.gguf.tmp", eos)
+    q3m = gguf_writer(a.out / "random-05b-q3_k_m.gguf.tmp", eos)
+    make = {Q.Q3_K: q3k_blocks, Q.Q4_K: q4k_blocks, Q.Q5_K: q5k_blocks}
     rng, codes = np.random.default_rng(a.seed), np.random.default_rng(a.seed + 1)
     h, d = S["hidden"], S["hidden"] // S["heads"]
     for hf, name, shape in layout:
@@ -161,7 +199,7 @@ def main():
         f32.write(v.tobytes())
         b16.write((v.view(np.uint32) >> 16).astype(np.uint16).tobytes())
         if v.ndim == 1:
-            for w in (q8, q4, q4m):
+            for w in (q8, q4, q4m, q3m):
                 w.add_tensor(name, v)
             continue
         if name.endswith("attn_q.weight"):
@@ -173,6 +211,7 @@ def main():
         if name == "token_embd.weight":
             q4.add_tensor(name, q, raw_dtype=Q.Q8_0)
             q4m.add_tensor(name, q, raw_dtype=Q.Q8_0)
+            q3m.add_tensor(name, q, raw_dtype=Q.Q8_0)
             continue
         q4.add_tensor(name, q4k_blocks(shape[0], shape[1], codes), raw_dtype=Q.Q4_K)
         layer = int(name.split(".")[1])
@@ -180,15 +219,17 @@ def main():
             q4m.add_tensor(name, q6k_blocks(shape[0], shape[1], codes), raw_dtype=Q.Q6_K)
         else:
             q4m.add_tensor(name, q4k_blocks(shape[0], shape[1], codes), raw_dtype=Q.Q4_K)
+        t = q3k_m_type(name, layer)
+        q3m.add_tensor(name, make[t](shape[0], shape[1], codes), raw_dtype=t)
     f32.close()
     b16.close()
-    for w, t in [(q8, "q8_0"), (q4, "q4_k"), (q4m, "q4_k_m")]:
+    for w, t in [(q8, "q8_0"), (q4, "q4_k"), (q4m, "q4_k_m"), (q3m, "q3_k_m")]:
         w.write_header_to_file()
         w.write_kv_data_to_file()
         w.write_tensors_to_file()
         w.close()
         (a.out / f"random-05b-{t}.gguf.tmp").rename(a.out / f"random-05b-{t}.gguf")
-    print(f"{a.out}: random-05b-{{f32,bf16}}/, random-05b-{{q8_0,q4_k,q4_k_m}}.gguf (hidden {h}, head size {d})")
+    print(f"{a.out}: random-05b-{{f32,bf16}}/, random-05b-{{q8_0,q4_k,q4_k_m,q3_k_m}}.gguf (hidden {h}, head size {d})")
 
 
 if __name__ == "__main__":

@@ -11,12 +11,12 @@
 //! panel, a piece of [`PIECE_ROWS`] inputs at a time, into a buffer that stays in the
 //! first-level cache, so batch-1 decoding reads the file's bits per weight, not 32 (batch 1
 //! itself goes through `ggml_dot`, which computes the same values into registers). Panels of
-//! q8_0, q4_0, q4_1, q5_0, q5_1, q4_k, q5_k or q6_k rows are regrouped at load (the codes of a
-//! piece side by side, input by input; see [`Panel`]) so that a piece dequantises with vector
-//! instructions, the same operations per value as [`dequantise_block`] (a multiply whose
-//! product is exact and the add after it may run as one fused multiply-add, which rounds the
-//! same once: [`exact_mul_add`]); panels of q2_k, q3_k, f16, bf16, f32 or of several types
-//! dequantise value by value from the stored rows. Tests: every regrouped piece equals the
+//! q8_0, q4_0, q4_1, q5_0, q5_1, q2_k, q3_k, q4_k, q5_k or q6_k rows are regrouped at load (the
+//! codes of a piece side by side, input by input; see [`Panel`]) so that a piece dequantises
+//! with vector instructions, the same operations per value as [`dequantise_block`] (a multiply
+//! whose product is exact and the add after it may run as one fused multiply-add, which rounds
+//! the same once: [`exact_mul_add`]); panels of f16, bf16, f32 or of several types dequantise
+//! value by value from the stored rows. Tests: every regrouped piece equals the
 //! value-by-value path bit for bit, including extreme scales; tests/gguf_reference.rs checks
 //! the values and greedy tokens against transformers and the gguf package.
 //!
@@ -348,21 +348,23 @@ type Row = (GgmlType, Vec<u8>);
 
 /// The 64 output rows of one panel, held as the products read them.
 ///
-/// A panel whose rows are all of one type among q8_0, q4_0, q4_1, q5_0, q5_1, q4_k, q5_k and
-/// q6_k is regrouped at load so that a piece of the panel (32 inputs: one block, or one k-quant
-/// sub-block, of each row) lies in one place, its codes ordered input by input with the 64 rows
-/// side by side: dequantising it is then the same few operations on every lane, which the
-/// compiler turns into vector code. The values are unchanged (the same codes, the same f16
-/// scales and 6-bit or 8-bit scales, the same operations per value as [`dequantise_block`]),
-/// and so are the bytes per weight, give or take the q4_k/q5_k sub-block scales (a byte each
-/// instead of 6 bits: 4.625 bits per weight instead of 4.5 for q4_k). Other panels (q2_k,
-/// q3_k, f16, bf16, f32 rows, or rows of several types) keep their rows as stored and
-/// dequantise them value by value.
+/// A panel whose rows are all of one type among q8_0, q4_0, q4_1, q5_0, q5_1, q2_k, q3_k, q4_k,
+/// q5_k and q6_k is regrouped at load so that a piece of the panel (32 inputs: one block, or one
+/// k-quant sub-block or two, of each row) lies in one place, its codes ordered input by input
+/// with the 64 rows side by side: dequantising it is then the same few operations on every
+/// lane, which the compiler turns into vector code. The values are unchanged (the same codes,
+/// the same f16 scales and 4-bit, 6-bit or 8-bit scales, the same operations per value as
+/// [`dequantise_block`]),
+/// and so are the bytes per weight, give or take the q3_k/q4_k/q5_k sub-block scales (a byte
+/// each instead of 6 bits: 4.625 bits per weight instead of 4.5 for q4_k, 3.5625 instead of
+/// 3.4375 for q3_k). Other panels (f16, bf16, f32 rows, or rows of several types) keep their
+/// rows as stored and dequantise them value by value.
 ///
 /// The codes are packed so that one input's codes of the 64 rows take whole bytes or words:
 /// 4-bit codes as 32 bytes (row i in the low nibble and row 32 + i in the high nibble of byte
-/// i), a fifth bit as one u64 (bit r for row r), q6_k's top two bits as four u32 (row 16j + i
-/// at bits 2i..2i + 2 of word j).
+/// i), a fifth bit (and q3_k's high-mask bit) as one u64 (bit r for row r), q6_k's top two bits
+/// as four u32 (row 16j + i at bits 2i..2i + 2 of word j), q2_k's and q3_k's 2-bit codes as 16
+/// bytes (row 16j + i at bits 2j..2j + 2 of byte i).
 pub(super) enum Panel {
     /// All rows q8_0. `d`: [group][64] the f16 scale of each row's block of group g (inputs
     /// 32g..32g + 32); `q`: [group][k][64] the codes.
@@ -395,12 +397,30 @@ pub(super) enum Panel {
         q: Vec<u8>,
         hi: Vec<u32>,
     },
+    /// All rows q2_k. `dm`: [super-block][2][64] each row's f16 d, then dmin; `sc`: [group][2][64]
+    /// each row's scale byte (scale in the low nibble, min in the high one, as stored) of the
+    /// group's inputs 0..16 and 16..32; `q`: [group][k][16] the 2-bit codes (see
+    /// [`codes2`]).
+    Q2K {
+        dm: Vec<f16>,
+        sc: Vec<u8>,
+        q: Vec<u8>,
+    },
+    /// All rows q3_k. `d`: [super-block][64] each row's f16 d; `sc`: [group][2][64] each row's
+    /// 6-bit scale less 32 (−32..31) of the group's inputs 0..16 and 16..32; `q`: [group][k][16]
+    /// the low two bits of the codes as in `Q2K`; `hbit`: [group][k] their high-mask bits.
+    Q3K {
+        d: Vec<f16>,
+        sc: Vec<i8>,
+        q: Vec<u8>,
+        hbit: Vec<u64>,
+    },
     /// Rows as stored (several types, the types without a regrouped form).
     Rows(Vec<Row>),
 }
 
 /// Inputs per group of a regrouped panel: one q8_0/q4_0/q4_1/q5_0/q5_1 block, one k-quant
-/// sub-block of 32 (two q6_k sub-blocks of 16), one piece.
+/// sub-block of 32 (two q2_k, q3_k or q6_k sub-blocks of 16), one piece.
 pub(super) const GROUP: usize = 32;
 
 /// The 4-bit and 5-bit block types with one f16 scale (and an f16 min) per 32 values:
@@ -421,6 +441,11 @@ impl Panel {
         // Sets row l's 4-bit code c of input k (of all groups) in a [k][32] nibble array.
         let put_nibble = |q: &mut [u8], k: usize, l: usize, c: u8| {
             q[k * 32 + l % 32] |= (c & 0x0F) << (4 * (l / 32));
+        };
+        // Sets row l's 2-bit code c of input k (of all groups) in a [k][16] array (see
+        // [`codes2`]).
+        let put_pair = |q: &mut [u8], k: usize, l: usize, c: u8| {
+            q[k * 16 + l % 16] |= (c & 0x03) << (2 * (l / 16));
         };
         if all(GgmlType::Q8_0) {
             let mut d = vec![f16::ZERO; groups * PANEL];
@@ -531,6 +556,59 @@ impl Panel {
             }
             return Panel::Q6K { d, sc, q, hi };
         }
+        let half =
+            |blk: &[u8], at: usize| f16::from_bits(u16::from_le_bytes([blk[at], blk[at + 1]]));
+        if all(GgmlType::Q2K) {
+            let supers = inp / QK_K;
+            let mut dm = vec![f16::ZERO; supers * 2 * PANEL];
+            let mut sc = vec![0u8; groups * 2 * PANEL];
+            let mut q = vec![0u8; groups * GROUP * PANEL / 4];
+            for (l, (_, b)) in rows.iter().enumerate() {
+                for (s, blk) in b.chunks_exact(84).enumerate() {
+                    let (scales, qs) = (&blk[0..16], &blk[16..80]);
+                    dm[2 * s * PANEL + l] = half(blk, 80);
+                    dm[(2 * s + 1) * PANEL + l] = half(blk, 82);
+                    for (h, &v) in scales.iter().enumerate() {
+                        // Sub-block h of 16 values: group s·8 + h/2, its half h % 2.
+                        sc[(2 * (s * 8 + h / 2) + h % 2) * PANEL + l] = v;
+                    }
+                    for i in 0..QK_K {
+                        // The indices of `dequantise_block`'s q2_k arm.
+                        let (h, sh, k) = (i / 128, (i % 128) / 32, i % 32);
+                        put_pair(&mut q, s * QK_K + i, l, qs[h * 32 + k] >> (2 * sh));
+                    }
+                }
+            }
+            return Panel::Q2K { dm, sc, q };
+        }
+        if all(GgmlType::Q3K) {
+            let supers = inp / QK_K;
+            let mut d = vec![f16::ZERO; supers * PANEL];
+            let mut sc = vec![0i8; groups * 2 * PANEL];
+            let mut q = vec![0u8; groups * GROUP * PANEL / 4];
+            let mut hbit = vec![0u64; groups * GROUP];
+            for (l, (_, b)) in rows.iter().enumerate() {
+                for (s, blk) in b.chunks_exact(110).enumerate() {
+                    let (hmask, qs, scales) = (&blk[0..32], &blk[32..96], &blk[96..108]);
+                    d[s * PANEL + l] = half(blk, 108);
+                    for h in 0..16 {
+                        // The 6-bit scale of sub-block h as `dequantise_block`'s q3_k arm
+                        // assembles it, less 32 (an integer step there too).
+                        let low = (scales[h % 8] >> (4 * (h / 8))) & 0x0F;
+                        let high = (scales[8 + h % 4] >> (2 * (h / 4))) & 0x03;
+                        sc[(2 * (s * 8 + h / 2) + h % 2) * PANEL + l] =
+                            (low | (high << 4)) as i8 - 32;
+                    }
+                    for i in 0..QK_K {
+                        let (h, sh, k) = (i / 128, (i % 128) / 32, i % 32);
+                        put_pair(&mut q, s * QK_K + i, l, qs[h * 32 + k] >> (2 * sh));
+                        let bit = (hmask[k] >> (i / 32)) & 1;
+                        hbit[s * QK_K + i] |= (bit as u64) << l;
+                    }
+                }
+            }
+            return Panel::Q3K { d, sc, q, hbit };
+        }
         Panel::Rows(rows)
     }
 
@@ -582,6 +660,17 @@ impl Panel {
                 lines(q, g * GROUP * 32, GROUP * 32);
                 lines(hi, g * GROUP * 4, GROUP * 4);
             }
+            Panel::Q2K { dm, sc, q } => {
+                lines(dm, 2 * s * PANEL, 2 * PANEL);
+                lines(sc, 2 * g * PANEL, 2 * PANEL);
+                lines(q, g * GROUP * 16, GROUP * 16);
+            }
+            Panel::Q3K { d, sc, q, hbit } => {
+                lines(d, s * PANEL, PANEL);
+                lines(sc, 2 * g * PANEL, 2 * PANEL);
+                lines(q, g * GROUP * 16, GROUP * 16);
+                lines(hbit, g * GROUP, GROUP);
+            }
             Panel::Rows(_) => {}
         }
     }
@@ -592,6 +681,8 @@ impl Panel {
             Panel::Q4K { dm, sm, q, five } => 2 * dm.len() + sm.len() + q.len() + 8 * five.len(),
             Panel::Q4 { dm, q, five, .. } => 2 * dm.len() + q.len() + 8 * five.len(),
             Panel::Q6K { d, sc, q, hi } => 2 * d.len() + sc.len() + q.len() + 4 * hi.len(),
+            Panel::Q2K { dm, sc, q } => 2 * dm.len() + sc.len() + q.len(),
+            Panel::Q3K { d, sc, q, hbit } => 2 * d.len() + sc.len() + q.len() + 8 * hbit.len(),
             Panel::Rows(rows) => rows.iter().map(|r| r.1.len()).sum(),
         }
     }
@@ -648,10 +739,12 @@ fn codes5<const FIVE: bool>(nibbles: &[u8], five: u64, out: &mut [u32; PANEL]) {
 /// a · b + c with one rounding where `FMA` (the caller is compiled for AVX-512F, which has
 /// fused multiply-add), else a · b, rounded, + c, rounded. The two are the same number whenever
 /// a · b is exact in f32, which is the only way this is called: the product's rounding is then
-/// no rounding at all, and both round the exact a · b + c once. (A d · sc of a k-quant has at
+/// no rounding at all, and both round the exact a · b + c once. (A d · sc of q4_k/q5_k has at
 /// most 11 + 6 significant bits and a code at most 5, so their product has at most 22 of f32's
-/// 24; a q4_1/q5_1 d · code at most 16. Infinities and NaN scales give the same class of value
-/// either way, and a NaN weight is refused at load.)
+/// 24; a q2_k d · sc at most 11 + 4 and a code 2, so 17; a q4_1/q5_1 d · code at most 16; the
+/// f16 scales, subnormal ones too, times these small integers stay far inside f32's normal
+/// range, so no product loses bits at the bottom or overflows. Infinities and NaN scales give
+/// the same class of value either way, and a NaN weight is refused at load.)
 #[inline(always)]
 fn exact_mul_add<const FMA: bool>(a: f32, b: f32, c: f32) -> f32 {
     if FMA {
@@ -738,6 +831,76 @@ impl GroupRows for Q6KRows<'_> {
         let ds = &self.ds[k / 16];
         for l in 0..PANEL {
             w[l] = ds[l] * (c[l] as i32 - 32) as f32;
+        }
+    }
+}
+
+/// The 64 2-bit codes of one input from its 16 bytes, as u32 lanes: row 16j + i's code, at
+/// bits 2j..2j + 2 of byte i, in lane 16j + i. With `HIGH` (q3_k), `high` holds the input's
+/// high-mask bits (bit r for row r) and lane r gets q3_k's signed code, the 2-bit code ql less
+/// 4 where the row's bit is clear (ql − 4·(1 − hbit) of the reference, the same integer), as
+/// an i32's bits: ql itself where the bit is set, else ql | !3, which is ql − 4 in two's
+/// complement since ql < 4.
+#[inline(always)]
+fn codes2<const HIGH: bool>(pairs: &[u8], high: u64, out: &mut [u32; PANEL]) {
+    let pairs = &pairs[..16];
+    for (j, cj) in out.chunks_exact_mut(16).enumerate() {
+        for i in 0..16 {
+            cj[i] = ((pairs[i] >> (2 * j)) & 0x03) as u32;
+        }
+    }
+    if HIGH {
+        // The clear bits, set: with AVX-512 the compiler moves them into a mask register and
+        // ORs under it (rather than shifting each bit into place).
+        let (n0, n1) = (!high as u32, (!high >> 32) as u32);
+        let (lo, hi) = out.split_at_mut(32);
+        for i in 0..32 {
+            lo[i] |= if n0 & (1 << i) != 0 { !3 } else { 0 };
+            hi[i] |= if n1 & (1 << i) != 0 { !3 } else { 0 };
+        }
+    }
+}
+
+/// A q2_k group: (d · sc) · code − (dmin · m), with the scale and min of inputs 0..16 or
+/// 16..32 of the group (the products d · sc and dmin · m computed once per group). `FMA`: see
+/// [`exact_mul_add`].
+struct Q2KRows<'a, const FMA: bool> {
+    dl: [[f32; PANEL]; 2],
+    ml: [[f32; PANEL]; 2],
+    q: &'a [u8],
+}
+
+impl<const FMA: bool> GroupRows for Q2KRows<'_, FMA> {
+    #[inline(always)]
+    fn row(&self, k: usize, w: &mut [f32; PANEL]) {
+        let mut c = [0u32; PANEL];
+        codes2::<false>(&self.q[k * 16..], 0, &mut c);
+        let (dl, ml) = (&self.dl[k / 16], &self.ml[k / 16]);
+        for l in 0..PANEL {
+            // (d · sc) · code is exact (d · sc has at most 11 + 4 significant bits, the code
+            // at most 2): one rounding, that of the subtraction.
+            w[l] = exact_mul_add::<FMA>(dl[l], c[l] as f32, -ml[l]);
+        }
+    }
+}
+
+/// A q3_k group: (d · (sc − 32)) · (ql − 4·(1 − hbit)), the code an integer as in the
+/// reference (see [`codes2`]), with the scale of inputs 0..16 or 16..32 of the group
+/// (d · (sc − 32) computed once per group).
+struct Q3KRows<'a> {
+    dl: [[f32; PANEL]; 2],
+    q: &'a [u8],
+    hbit: &'a [u64],
+}
+
+impl GroupRows for Q3KRows<'_> {
+    #[inline(always)]
+    fn row(&self, k: usize, w: &mut [f32; PANEL]) {
+        let mut c = [0u32; PANEL];
+        codes2::<true>(&self.q[k * 16..], self.hbit[k], &mut c);
+        let dl = &self.dl[k / 16];
+        for l in 0..PANEL {
+            w[l] = dl[l] * (c[l] as i32) as f32;
         }
     }
 }
@@ -873,6 +1036,41 @@ impl Panel {
                         ds,
                         q: &q[g * GROUP * 32..(g + 1) * GROUP * 32],
                         hi: &hi[g * GROUP * 4..(g + 1) * GROUP * 4],
+                    };
+                    v.visit(g, &rows);
+                }
+            }
+            Panel::Q2K { dm, sc, q } => {
+                for g in g0..g1 {
+                    let s = g * GROUP / QK_K;
+                    let d = widened::<AVX512>(&dm[2 * s * PANEL..]);
+                    let dmin = widened::<AVX512>(&dm[(2 * s + 1) * PANEL..]);
+                    let (mut dl, mut ml) = ([[0f32; PANEL]; 2], [[0f32; PANEL]; 2]);
+                    for h in 0..2 {
+                        let sch = &sc[(2 * g + h) * PANEL..(2 * g + h + 1) * PANEL];
+                        for l in 0..PANEL {
+                            dl[h][l] = d[l] * (sch[l] & 0x0F) as f32;
+                            ml[h][l] = dmin[l] * (sch[l] >> 4) as f32;
+                        }
+                    }
+                    let q = &q[g * GROUP * 16..(g + 1) * GROUP * 16];
+                    v.visit(g, &Q2KRows::<AVX512> { dl, ml, q });
+                }
+            }
+            Panel::Q3K { d, sc, q, hbit } => {
+                for g in g0..g1 {
+                    let df = widened::<AVX512>(&d[g * GROUP / QK_K * PANEL..]);
+                    let mut dl = [[0f32; PANEL]; 2];
+                    for (h, dlh) in dl.iter_mut().enumerate() {
+                        let sch = &sc[(2 * g + h) * PANEL..(2 * g + h + 1) * PANEL];
+                        for l in 0..PANEL {
+                            dlh[l] = df[l] * sch[l] as f32;
+                        }
+                    }
+                    let rows = Q3KRows {
+                        dl,
+                        q: &q[g * GROUP * 16..(g + 1) * GROUP * 16],
+                        hbit: &hbit[g * GROUP..(g + 1) * GROUP],
                     };
                     v.visit(g, &rows);
                 }
@@ -1093,12 +1291,14 @@ pub(super) mod tests {
     use candle_core::Device;
 
     /// The types whose panels are regrouped for the fast path.
-    pub(in crate::kernels) const REGROUPED: [GgmlType; 8] = [
+    pub(in crate::kernels) const REGROUPED: [GgmlType; 10] = [
         GgmlType::Q8_0,
         GgmlType::Q4_0,
         GgmlType::Q4_1,
         GgmlType::Q5_0,
         GgmlType::Q5_1,
+        GgmlType::Q2K,
+        GgmlType::Q3K,
         GgmlType::Q4K,
         GgmlType::Q5K,
         GgmlType::Q6K,
@@ -1346,6 +1546,9 @@ pub(super) mod tests {
                 ],
             ),
             (9, 256, vec![(GgmlType::Q6K, 128), (GgmlType::Q5K, 64)]),
+            // Regrouped panels of the 2-bit and 3-bit k-quants, likewise.
+            (1, 512, vec![(GgmlType::Q2K, 64), (GgmlType::Q3K, 64)]),
+            (9, 256, vec![(GgmlType::Q3K, 128), (GgmlType::Q2K, 70)]),
         ] {
             let mut m = GgmlMatrix::new(inp);
             let mut dense = Vec::new();
@@ -1369,7 +1572,7 @@ pub(super) mod tests {
         0x7BFF, 0xFBFF, 0x0001, 0x8001, 0x0400, 0x0000, 0x8000, 0x3C00,
     ];
 
-    /// `blocks` with every f16 scale (d, and q4_1's m or q4_k's dmin) one of [`EXTREMES`].
+    /// `blocks` with every f16 scale (d, and q4_1's m or a k-quant's dmin) one of [`EXTREMES`].
     pub(in crate::kernels) fn extreme_blocks(
         t: GgmlType,
         rows: usize,
@@ -1379,6 +1582,8 @@ pub(super) mod tests {
         let mut b = blocks(t, rows, inp, seed);
         let halves: &[usize] = match t {
             GgmlType::Q8_0 | GgmlType::Q4_0 | GgmlType::Q5_0 => &[0],
+            GgmlType::Q2K => &[80, 82],
+            GgmlType::Q3K => &[108],
             GgmlType::Q6K => &[208],
             _ => &[0, 2],
         };
@@ -1393,16 +1598,26 @@ pub(super) mod tests {
                     *sc = [0x80, 0x7F, 0x00, 0xFF][(i + j) % 4];
                 }
             }
+            if t == GgmlType::Q2K {
+                // The 4-bit scales and mins at 0 and 15, in every pairing.
+                for (j, sc) in blk[0..16].iter_mut().enumerate() {
+                    *sc = [0x00, 0xFF, 0xF0, 0x0F][(i + j) % 4];
+                }
+            }
+            if t == GgmlType::Q3K && i % 2 == 0 {
+                // In every other block, all 6-bit scales at 0 (all bits clear; -32 once the
+                // 32 is taken off) or all at 63 (all set; 31); random scales between.
+                blk[96..108].fill(if i % 4 == 0 { 0x00 } else { 0xFF });
+            }
         }
         b
     }
 
-    /// The regrouped q8_0, q4_0, q4_1, q5_0, q5_1, q4_k, q5_k and q6_k panels give, bit for
-    /// bit, the values the value-by-value
-    /// reference path ([`dequantise_row`] on the stored rows, itself checked against the gguf
-    /// package and candle) gives: every piece and every whole panel, on random codes with
-    /// ordinary and extreme scales, rows pushed in two parts that split a panel, and a partial
-    /// last panel read from the stored rows.
+    /// The regrouped q8_0, q4_0, q4_1, q5_0, q5_1, q2_k, q3_k, q4_k, q5_k and q6_k panels give,
+    /// bit for bit, the values the value-by-value reference path ([`dequantise_row`] on the
+    /// stored rows, itself checked against the gguf package and candle) gives: every piece and
+    /// every whole panel, on random codes with ordinary and extreme scales, rows pushed in two
+    /// parts that split a panel, and a partial last panel read from the stored rows.
     #[test]
     fn regrouped_panels_equal_the_value_by_value_path() {
         for t in REGROUPED {
@@ -1419,10 +1634,11 @@ pub(super) mod tests {
                 m.push(t, rows - 40, b[40 * rb..].to_vec());
                 assert!(m.panels.len() == 2 && m.tail.len() == 5);
                 assert!(m.panels.iter().all(|p| !matches!(p, Panel::Rows(_))));
-                // The bytes of a block are kept, but for q4_k's and q5_k's sub-block scales,
-                // a byte each (148 and 180 bytes a block of 256 instead of 144 and 176); the
-                // last 5 rows stay as stored.
+                // The bytes of a block are kept, but for q3_k's, q4_k's and q5_k's sub-block
+                // scales, a byte each (114, 148 and 180 bytes a block of 256 instead of 110, 144
+                // and 176); the last 5 rows stay as stored.
                 let regrouped = match t {
+                    GgmlType::Q3K => 2 * PANEL * (inp / QK_K) * 114,
                     GgmlType::Q4K => 2 * PANEL * (inp / QK_K) * 148,
                     GgmlType::Q5K => 2 * PANEL * (inp / QK_K) * 180,
                     _ => 2 * PANEL * rb,

@@ -161,9 +161,10 @@ mod tests {
 
     /// The fused batch-1 product is bit for bit the product through the `Panels` seam, and so
     /// the f32 product over the values the value-by-value path gives (itself checked against
-    /// the gguf package and candle): every regrouped type, random and extreme scales (the
-    /// largest finite f16, subnormals, signed zeros; q6_k's scales at -128 and 127), two full
-    /// panels and a tail of stored rows, panels of several types, on one task and on the pool.
+    /// the gguf package and candle): every regrouped type (q2_k and q3_k among them), random and
+    /// extreme scales (the largest finite f16, subnormals, signed zeros; q6_k's scales at -128
+    /// and 127, q3_k's at -32 and 31, q2_k's scales and mins at 0 and 15), two full panels and
+    /// a tail of stored rows, panels of several types, on one task and on the pool.
     #[test]
     fn fused_product_equals_the_product_over_dequantised_values() {
         let regrouped = crate::kernels::ggml::tests::REGROUPED;
@@ -177,7 +178,8 @@ mod tests {
                 cases.push((2048, vec![(t, PANEL + 3)], extreme));
             }
         }
-        // A panel mixing types (stored rows) between regrouped ones.
+        // A panel mixing types (stored rows) between regrouped ones, and a regrouped q3_k panel
+        // beside a panel of f16 rows.
         cases.push((
             256,
             vec![
