@@ -576,7 +576,9 @@ unsafe fn half_pass<H: Half, const N: usize>(
     k1: usize,
 ) {
     use std::arch::x86_64::*;
-    debug_assert!(sums.len() == N && k0 % 2 == 0 && k1 <= inp && panel.len() >= inp * PANEL);
+    debug_assert!(
+        sums.len() == N && k0.is_multiple_of(2) && k1 <= inp && panel.len() >= inp * PANEL
+    );
     let w = panel.as_ptr();
     // SAFETY: k < k1 ≤ inp, so row k of the panel, 64 values at w + 64k, is readable and so
     // are its 32 values from 32·half; AVX-512F is this function's promise.
