@@ -928,6 +928,21 @@ fn k_scales<const AVX512: bool>(dm: &[f16], sm: &[u8], g: usize) -> ([f32; PANEL
     (dj, mj)
 }
 
+/// d · sc of each row for inputs 0..16 and 16..32 of group g of a q6_k or q3_k panel (`d`:
+/// [super-block][64] each row's f16 d; `sc`: [group][2][64] its signed 8-bit scales).
+#[inline(always)]
+fn signed_scales<const AVX512: bool>(d: &[f16], sc: &[i8], g: usize) -> [[f32; PANEL]; 2] {
+    let df = widened::<AVX512>(&d[g * GROUP / QK_K * PANEL..]);
+    let mut ds = [[0f32; PANEL]; 2];
+    for (h, dsh) in ds.iter_mut().enumerate() {
+        let sch = &sc[(2 * g + h) * PANEL..(2 * g + h + 1) * PANEL];
+        for l in 0..PANEL {
+            dsh[l] = df[l] * sch[l] as f32;
+        }
+    }
+    ds
+}
+
 /// Group g of a q4_0/q4_1/q5_0/q5_1 panel (`dm`, `q`, `five` as in [`Panel::Q4`]).
 #[inline(always)]
 fn q4_rows<'a, const AVX512: bool, const MIN: bool, const FIVE: bool>(
@@ -1024,16 +1039,8 @@ impl Panel {
             },
             Panel::Q6K { d, sc, q, hi } => {
                 for g in g0..g1 {
-                    let df = widened::<AVX512>(&d[g * GROUP / QK_K * PANEL..]);
-                    let mut ds = [[0f32; PANEL]; 2];
-                    for (h, dsh) in ds.iter_mut().enumerate() {
-                        let sch = &sc[(2 * g + h) * PANEL..(2 * g + h + 1) * PANEL];
-                        for l in 0..PANEL {
-                            dsh[l] = df[l] * sch[l] as f32;
-                        }
-                    }
                     let rows = Q6KRows {
-                        ds,
+                        ds: signed_scales::<AVX512>(d, sc, g),
                         q: &q[g * GROUP * 32..(g + 1) * GROUP * 32],
                         hi: &hi[g * GROUP * 4..(g + 1) * GROUP * 4],
                     };
@@ -1059,16 +1066,8 @@ impl Panel {
             }
             Panel::Q3K { d, sc, q, hbit } => {
                 for g in g0..g1 {
-                    let df = widened::<AVX512>(&d[g * GROUP / QK_K * PANEL..]);
-                    let mut dl = [[0f32; PANEL]; 2];
-                    for (h, dlh) in dl.iter_mut().enumerate() {
-                        let sch = &sc[(2 * g + h) * PANEL..(2 * g + h + 1) * PANEL];
-                        for l in 0..PANEL {
-                            dlh[l] = df[l] * sch[l] as f32;
-                        }
-                    }
                     let rows = Q3KRows {
-                        dl,
+                        dl: signed_scales::<AVX512>(d, sc, g),
                         q: &q[g * GROUP * 16..(g + 1) * GROUP * 16],
                         hbit: &hbit[g * GROUP..(g + 1) * GROUP],
                     };
