@@ -50,6 +50,10 @@ trap 'rm -rf "$work"' EXIT
 gcc -O3 -march=native -fopenmp "$here/peer/stream.c" -o "$work/stream"
 triad=$(OMP_NUM_THREADS="$threads" "$work/stream" 1024 10 | python3 -c 'import json,sys; print(json.load(sys.stdin)["triad_best_GBs"])')
 echo "$(date -u +%FT%TZ) load: $(cut -d' ' -f1-3 /proc/loadavg); triad bandwidth ($threads threads, best of 10): $triad GB/s"
+# The f32 arithmetic peak the batch-16 rates compare with (bench/peer/fma_peak.c).
+gcc -O3 -march=native -fopenmp "$here/peer/fma_peak.c" -o "$work/fma_peak"
+peak=$(OMP_NUM_THREADS="$threads" "$work/fma_peak" | python3 -c 'import json,sys; print(json.load(sys.stdin)["fma_f32_best_GFLOPs"])')
+echo "f32 fused multiply-add peak ($threads threads, best of 5): $peak GFLOP/s"
 
 dir="$models/random-05b"
 configs=("f32:$dir-f32:" "bf16:$dir-bf16:" "q8_0:$dir-f32:$dir-q8_0.gguf" "q4_k:$dir-f32:$dir-q4_k.gguf"

@@ -28,8 +28,8 @@ pub struct AnswerRun {
     pub info: RunInfo,
 }
 
-/// Sets the compute thread count once per process: rayon's global pool (used by gemm's
-/// parallel matmul) and candle's own pool, which reads `RAYON_NUM_THREADS` when first used
+/// Sets the compute thread count once per process: rayon's global pool (used by the
+/// products, one task per weight panel) and candle's own pool, which reads `RAYON_NUM_THREADS` when first used
 /// (candle-core 0.11.1 `utils::get_num_threads`).
 fn set_threads(n: Option<usize>) -> usize {
     if let Some(n) = n {

@@ -118,7 +118,7 @@ mod tests {
 
     /// The product over 4-bit codes is bit for bit the f32 product over the dequantised
     /// matrix (table[code] · scale written out in f32): one row (pieces), four rows (each as
-    /// alone), many rows (whole panels through gemm), partial last panel, one and several
+    /// alone), many rows (whole panels), partial last panel, one and several
     /// blocks per row.
     #[test]
     fn code_products_equal_the_f32_product_of_the_dequantised_matrix() {

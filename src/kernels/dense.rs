@@ -4,11 +4,18 @@
 //! A linear layer's [out, inp] matrix is stored in panels of 64 output columns
 //! ([`pack_panels_into`]): each panel is one contiguous run that a product reads front to back,
 //! so the weights are never repacked per call (repacking would read and write every weight
-//! once more per decoding step). Batches of rows go through `gemm` per panel; a single row
-//! (batch-1 decoding) has its own loop that keeps the panel's 64 sums in registers.
+//! once more per decoding step). A few rows (small-batch decoding) read each panel once for all
+//! rows with the panel's 64 sums per row in registers ([`panel_rows`]); more rows go through a
+//! loop that holds six rows' sums at a time ([`panel_many`]).
 //!
-//! Every output is computed by one task in a fixed order, so results do not depend on the
-//! thread count, and the decoder's batched output equals its batch-1 output.
+//! Every output is summed the same way whatever the batch: for each row and output column, one
+//! chain over the inputs in order, from zero, each step a fused multiply-add (x·w + sum rounded
+//! once, IEEE 754 `fusedMultiplyAdd`). A loop keeps many outputs' chains going at once (64
+//! columns of up to six rows), so no step waits on the one before. Each output is computed by one task, so results do not depend on the thread count, and
+//! a row's result does not depend on the other rows of its batch: the decoder's batched output
+//! equals its batch-1 output bit for bit, and rows of several model variants can share one
+//! step. Where the CPU has no fused multiply-add instruction, `f32::mul_add` computes the same
+//! value in software (slowly), so the result does not depend on the CPU either.
 //!
 //! Checkpoints stored in bf16 or f16 keep their weights 16-bit in the same panel layout
 //! ([`matmul_half`]): each weight is widened to f32 inside the product, just before its
@@ -16,6 +23,10 @@
 //! the result is bit for bit the one the f32 product gives on the widened matrix (which is what
 //! the reference computes after loading the checkpoint with dtype float32), while a batch-1
 //! step reads half the bytes.
+//!
+//! These loops are written here rather than taken from a matrix library because of that
+//! property: a library's kernels sum in an order that depends on the batch size, the CPU and
+//! its blocking, so a row's answer would change with the batch.
 
 use super::simd::features;
 use super::PARALLEL_WORK;
@@ -89,13 +100,11 @@ unsafe impl Sync for Columns {}
 /// y[n, out] = x[n, inp] · W, with W in the panel layout ([`pack_panels_into`]), one task per
 /// panel on the rayon pool.
 ///
-/// Each panel is read once per call, front to back. Up to [`FEW_ROWS`] rows (small-batch
-/// decoding) run their own loop with the panel's 64 sums per row in registers or the
-/// first-level cache, each row summed as it would be alone; more rows go through `gemm` per
-/// panel, the panel
-/// being a column-major left operand it reads without repacking, with the output columns in
-/// vector lanes. Each output is computed by one task in a fixed order, so the result does not
-/// depend on the thread count.
+/// Up to [`FEW_ROWS`] rows (small-batch decoding) read each panel once, front to back, with
+/// the panel's 64 sums per row in registers or the first-level cache ([`panel_rows`]); more
+/// rows go through [`panel_many`]. Either way each row is summed as it would be alone (see the
+/// module's summary), and each output is computed by one task in a fixed order, so the result
+/// depends neither on the thread count nor on the batch.
 pub fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
     assert!(w.len() >= panel_len(out, inp));
     products(x, n, inp, &Stored { w, inp }, out, y);
@@ -227,7 +236,7 @@ impl<T: PanelRead> Panels for Stored<'_, T> {
 }
 
 /// Calls `f` on this thread's panel buffer of `len` values (for formats that must write a
-/// whole panel out as f32 before `gemm` reads it).
+/// whole panel out as f32 before the many-rows product reads it).
 pub fn with_panel_buffer(len: usize, f: impl FnOnce(&mut [f32])) {
     WIDE.with(|buf| {
         let mut buf = buf.borrow_mut();
@@ -237,12 +246,12 @@ pub fn with_panel_buffer(len: usize, f: impl FnOnce(&mut [f32])) {
 }
 
 /// Rows up to which a product reads each panel once for all rows with the one-row loop
-/// ([`panel_rows`]) instead of `gemm`: small batches, where decoding waits on memory, and where
-/// several model variants share one step. Each row's sums are then those of batch 1.
+/// ([`panel_rows`]) instead of [`panel_many`]: small batches, where decoding waits on memory
+/// and the panel is best read once. Either loop sums each row as at batch 1.
 pub const FEW_ROWS: usize = 4;
 
-/// [`FEW_ROWS`] for 16-bit weights on AVX-512 ([`half_rows_avx512`]): two variants' rows at
-/// batch 4 share a step in that loop too.
+/// [`FEW_ROWS`] for 16-bit weights on AVX-512 ([`half_rows_avx512`]), whose loop widens each
+/// weight once for up to eight rows (two variants' rows at batch 4).
 pub const HALF_ROWS: usize = 8;
 
 /// y[n, out] = x[n, inp] · W over the panels of `w`, one task per panel (see [`matmul`]).
@@ -267,10 +276,13 @@ fn products<W: Panels>(x: &[f32], n: usize, inp: usize, w: &W, out: usize, y: &m
             return;
         }
         w.whole(p, &mut |panel| {
-            assert!(panel.len() >= inp * PANEL);
-            // SAFETY: the panel holds inp·64 values (asserted), x at least n·inp (asserted
-            // above), and columns j0..j0 + width of y belong to this task.
-            unsafe { panel_gemm(width, n, inp, yc.get().add(j0), out, panel, x) }
+            panel_many(panel, &x[..n * inp], inp, &mut |t, sums| {
+                // SAFETY: columns j0..j0 + width of each output row belong to this task, and
+                // t < n.
+                unsafe {
+                    std::ptr::copy_nonoverlapping(sums.as_ptr(), yc.get().add(t * out + j0), width);
+                }
+            });
         });
     };
     let panels = out.div_ceil(PANEL);
@@ -278,47 +290,6 @@ fn products<W: Panels>(x: &[f32], n: usize, inp: usize, w: &W, out: usize, y: &m
         (0..panels).into_par_iter().for_each(one);
     } else {
         (0..panels).for_each(one);
-    }
-}
-
-/// dst columns 0..width of rows 0..n (row stride `out`) = x[n, inp] · panel.
-///
-/// # Safety
-/// `panel` holds inp·64 values, `x` at least n·inp, width ≤ 64, and `dst` addresses n rows of
-/// `out` values from which columns 0..width are written by this call alone.
-unsafe fn panel_gemm(
-    width: usize,
-    n: usize,
-    inp: usize,
-    dst: *mut f32,
-    out: usize,
-    panel: &[f32],
-    x: &[f32],
-) {
-    // SAFETY: lhs (i, k) = panel[k·64 + i] for i < width ≤ 64, k < inp; rhs (k, t) =
-    // x[t·inp + k]; dst (i, t) = dst[t·out + i]: inside the lengths the caller promises.
-    unsafe {
-        gemm::gemm(
-            width,
-            n,
-            inp,
-            dst,
-            out as isize,
-            1,
-            false,
-            panel.as_ptr(),
-            PANEL as isize,
-            1,
-            x.as_ptr(),
-            inp as isize,
-            1,
-            0.0,
-            1.0,
-            false,
-            false,
-            false,
-            gemm::Parallelism::None,
-        );
     }
 }
 
@@ -394,8 +365,8 @@ thread_local! {
 /// bit for bit the result of [`matmul`] on the widened weights. Up to [`FEW_ROWS`] rows widen
 /// each weight in a register just before its multiply and add on AVX-512 ([`half_rows_avx512`]),
 /// or else stream each panel through a small buffer in pieces of [`PIECE_ROWS`] rows; more
-/// rows widen the whole panel once per call (into a per-thread buffer) and run the same `gemm`
-/// as the f32 product.
+/// rows widen the whole panel once per call (into a per-thread buffer) and run the same
+/// many-rows loop as the f32 product.
 pub fn matmul_half<H: Half>(x: &[f32], n: usize, inp: usize, w: &[H], out: usize, y: &mut [f32]) {
     assert!(w.len() >= panel_len(out, inp));
     products(x, n, inp, &Stored { w, inp }, out, y);
@@ -417,13 +388,42 @@ pub const PIECE_ROWS: usize = 32;
 /// 16-bit), each piece added into every row's sums while it is in the first-level cache. Each
 /// row's sums are in the same order as alone, so a row's result does not depend on the others.
 /// With AVX-512 (found at run time) the loop is compiled for 16-wide vectors.
-fn panel_rows<W: Panels>(acc: &mut [[f32; PANEL]], x: &[f32], inp: usize, w: &W, p: usize) {
+pub(super) fn panel_rows<W: Panels>(
+    acc: &mut [[f32; PANEL]],
+    x: &[f32],
+    inp: usize,
+    w: &W,
+    p: usize,
+) {
     #[cfg(target_arch = "x86_64")]
-    if features().avx512f {
-        // SAFETY: the CPU has AVX-512F (checked just above).
-        unsafe { panel_rows_avx512(acc, x, inp, w, p) };
-        return;
+    {
+        if features().avx512f {
+            // SAFETY: the CPU has AVX-512F (checked just above).
+            unsafe { panel_rows_avx512(acc, x, inp, w, p) };
+            return;
+        }
+        if features().fma {
+            // SAFETY: the CPU has AVX2 and FMA (checked just above).
+            unsafe { panel_rows_fma(acc, x, inp, w, p) };
+            return;
+        }
     }
+    panel_rows_any(acc, x, inp, w, p);
+}
+
+/// [`panel_rows_any`] compiled for AVX2 with fused multiply-add.
+///
+/// # Safety
+/// The CPU has AVX2 and FMA.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn panel_rows_fma<W: Panels>(
+    acc: &mut [[f32; PANEL]],
+    x: &[f32],
+    inp: usize,
+    w: &W,
+    p: usize,
+) {
     panel_rows_any(acc, x, inp, w, p);
 }
 
@@ -458,8 +458,9 @@ fn panel_rows_any<W: Panels>(acc: &mut [[f32; PANEL]], x: &[f32], inp: usize, w:
     }
 }
 
-/// Two sets of sums per row, for even and odd k, so consecutive multiply-adds do not wait on
-/// each other; added at the end.
+/// The sums of N rows over one panel, a piece of [`PIECE_ROWS`] inputs at a time; each row's
+/// 64 sums are independent chains of multiply-adds, so consecutive ones do not wait on each
+/// other.
 #[inline(always)]
 fn panel_rows_body<W: Panels, const N: usize>(
     acc: &mut [[f32; PANEL]],
@@ -468,43 +469,31 @@ fn panel_rows_body<W: Panels, const N: usize>(
     w: &W,
     p: usize,
 ) {
-    let mut even = [[0f32; PANEL]; N];
-    let mut odd = [[0f32; PANEL]; N];
+    let mut sums = [[0f32; PANEL]; N];
     let mut buf = [0f32; PIECE_ROWS * PANEL];
     let mut k0 = 0;
     while k0 < inp {
         let k1 = (k0 + PIECE_ROWS).min(inp);
         let piece = w.piece(p, k0, k1, &mut buf);
-        for t in 0..N {
-            accumulate(
-                &mut even[t],
-                &mut odd[t],
-                &x[t * inp + k0..t * inp + k1],
-                piece,
-            );
+        for (t, s) in sums.iter_mut().enumerate() {
+            accumulate(s, &x[t * inp + k0..t * inp + k1], piece);
         }
         k0 = k1;
     }
-    for t in 0..N {
-        for l in 0..PANEL {
-            acc[t][l] = even[t][l] + odd[t][l];
-        }
-    }
+    acc[..N].copy_from_slice(&sums);
 }
 
 /// [`panel_rows_body`] for a 16-bit panel and up to [`HALF_ROWS`] rows, with each weight
-/// widened in a register just before its multiply and add instead of a piece being widened
-/// into a buffer and read back (a store and a load of every value, in a conversion loop
-/// compiled for the baseline CPU). The sums are the same, in the same order: for each row and
-/// output lane, one over the even inputs and one over the odd inputs, each in input order, x·w
-/// rounded and then added (no fused multiply-add), the two added at the end; so the result is
-/// bit for bit that of the f32 product over the widened panel (tested below), and each row's
-/// that of the row alone.
+/// widened in a register just before its multiply-add instead of a piece being widened into a
+/// buffer and read back (a store and a load of every value, in a conversion loop compiled for
+/// the baseline CPU). The sums are the same, in the same order (one chain of fused
+/// multiply-adds per row and output, in input order), so the result is bit for bit that of the
+/// f32 product over the widened panel (tested below), and each row's that of the row alone.
 ///
 /// The panel is walked in spans of [`HALF_SPAN`] inputs; in each, the 32 columns of each half
-/// of the panel, and the rows four at a time, so that one pass keeps at most 16 sums, 4 weight
-/// vectors and 2 inputs in registers, and the span's weights are still in the first-level cache
-/// when the next pass reads them.
+/// of the panel, and the rows four at a time, so that one pass keeps at most 8 sums, 2 weight
+/// vectors and an input in registers, and the span's weights are still in the first-level
+/// cache when the next pass reads them.
 ///
 /// # Safety
 /// The CPU has AVX-512F; `panel` holds inp·64 values, `x` acc.len()·inp, and acc.len() ≤
@@ -515,8 +504,8 @@ unsafe fn half_rows_avx512<H: Half>(acc: &mut [[f32; PANEL]], x: &[f32], inp: us
     use std::arch::x86_64::*;
     let n = acc.len();
     debug_assert!(n <= HALF_ROWS && panel.len() >= inp * PANEL && x.len() >= n * inp);
-    // Sums per row, half of the panel and vector: [row][half][even/odd][vector].
-    let mut sums = [[[[_mm512_setzero_ps(); 2]; 2]; 2]; HALF_ROWS];
+    // Sums per row, half of the panel and vector: [row][half][vector].
+    let mut sums = [[[_mm512_setzero_ps(); 2]; 2]; HALF_ROWS];
     let mut k0 = 0;
     while k0 < inp {
         let k1 = (k0 + HALF_SPAN).min(inp);
@@ -526,7 +515,7 @@ unsafe fn half_rows_avx512<H: Half>(acc: &mut [[f32; PANEL]], x: &[f32], inp: us
                 let rows = (n - t0).min(4);
                 let group = &mut sums[t0..t0 + rows];
                 let xs = &x[t0 * inp..(t0 + rows) * inp];
-                // SAFETY: as this function's; k0 is even (spans are).
+                // SAFETY: as this function's.
                 unsafe {
                     match rows {
                         1 => half_pass::<H, 1>(group, xs, inp, panel, half, k0, k1),
@@ -543,10 +532,9 @@ unsafe fn half_rows_avx512<H: Half>(acc: &mut [[f32; PANEL]], x: &[f32], inp: us
     for (t, row) in acc.iter_mut().enumerate() {
         for half in 0..2 {
             for v in 0..2 {
-                let [even, odd] = sums[t][half];
                 let mut sum = [0f32; 16];
                 // SAFETY: `sum` holds 16 values.
-                unsafe { _mm512_storeu_ps(sum.as_mut_ptr(), _mm512_add_ps(even[v], odd[v])) };
+                unsafe { _mm512_storeu_ps(sum.as_mut_ptr(), sums[t][half][v]) };
                 for (lane, s) in sum.into_iter().enumerate() {
                     row[32 * half + H::column(v, lane)] = s;
                 }
@@ -555,19 +543,18 @@ unsafe fn half_rows_avx512<H: Half>(acc: &mut [[f32; PANEL]], x: &[f32], inp: us
     }
 }
 
-/// Inputs per span of [`half_rows_avx512`]: 8 KB of bf16 weights. Even, so each span begins
-/// at an even input.
+/// Inputs per span of [`half_rows_avx512`]: 8 KB of bf16 weights.
 const HALF_SPAN: usize = 64;
 
 /// One pass of [`half_rows_avx512`]: inputs k0..k1 of columns 32·half..32·half + 32 into the
-/// sums of N rows ([row][half][even/odd][vector]).
+/// sums of N rows ([row][half][vector]).
 ///
 /// # Safety
-/// As [`half_rows_avx512`]; k0 is even, k1 ≤ inp, and `x` holds N·inp values.
+/// As [`half_rows_avx512`]; k1 ≤ inp, and `x` holds N·inp values.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
 unsafe fn half_pass<H: Half, const N: usize>(
-    sums: &mut [[[[std::arch::x86_64::__m512; 2]; 2]; 2]],
+    sums: &mut [[[std::arch::x86_64::__m512; 2]; 2]],
     x: &[f32],
     inp: usize,
     panel: &[H],
@@ -576,61 +563,176 @@ unsafe fn half_pass<H: Half, const N: usize>(
     k1: usize,
 ) {
     use std::arch::x86_64::*;
-    debug_assert!(
-        sums.len() == N && k0.is_multiple_of(2) && k1 <= inp && panel.len() >= inp * PANEL
-    );
+    debug_assert!(sums.len() == N && k1 <= inp && panel.len() >= inp * PANEL);
     let w = panel.as_ptr();
-    // SAFETY: k < k1 ≤ inp, so row k of the panel, 64 values at w + 64k, is readable and so
-    // are its 32 values from 32·half; AVX-512F is this function's promise.
-    let row = |k: usize| -> [__m512; 2] { unsafe { H::widen32(w.add(k * PANEL + 32 * half)) } };
-    let mut even = [[_mm512_setzero_ps(); 2]; N];
-    let mut odd = [[_mm512_setzero_ps(); 2]; N];
-    for t in 0..N {
-        [even[t], odd[t]] = sums[t][half];
+    let mut s = [[_mm512_setzero_ps(); 2]; N];
+    for (t, s) in s.iter_mut().enumerate() {
+        *s = sums[t][half];
     }
-    let mut k = k0;
-    while k + 1 < k1 {
-        let (w0, w1) = (row(k), row(k + 1));
-        for t in 0..N {
-            let x0 = _mm512_set1_ps(x[t * inp + k]);
-            let x1 = _mm512_set1_ps(x[t * inp + k + 1]);
-            for v in 0..2 {
-                even[t][v] = _mm512_add_ps(even[t][v], _mm512_mul_ps(x0, w0[v]));
-                odd[t][v] = _mm512_add_ps(odd[t][v], _mm512_mul_ps(x1, w1[v]));
-            }
-        }
-        k += 2;
-    }
-    if k < k1 {
-        let w0 = row(k);
-        for t in 0..N {
-            let x0 = _mm512_set1_ps(x[t * inp + k]);
-            for v in 0..2 {
-                even[t][v] = _mm512_add_ps(even[t][v], _mm512_mul_ps(x0, w0[v]));
+    for k in k0..k1 {
+        // SAFETY: k < k1 ≤ inp, so row k of the panel, 64 values at w + 64k, is readable and
+        // so are its 32 values from 32·half; AVX-512F is this function's promise.
+        let wk = unsafe { H::widen32(w.add(k * PANEL + 32 * half)) };
+        for (t, s) in s.iter_mut().enumerate() {
+            let xt = _mm512_set1_ps(x[t * inp + k]);
+            for (s, wv) in s.iter_mut().zip(wk) {
+                *s = _mm512_fmadd_ps(xt, wv, *s);
             }
         }
     }
-    for t in 0..N {
-        sums[t][half] = [even[t], odd[t]];
+    for (t, s) in s.into_iter().enumerate() {
+        sums[t][half] = s;
     }
 }
 
-/// Adds x[k]·rows[k·64 + l] to `even` (even k) and `odd` (odd k), k counted from the start of
-/// `x`, which must start at an even row of the panel.
-#[inline(always)]
-fn accumulate(even: &mut [f32; PANEL], odd: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
-    let mut pairs = panel.chunks_exact(2 * PANEL);
-    let mut xs = x.chunks_exact(2);
-    for (rows, xk) in (&mut pairs).zip(&mut xs) {
-        let (r0, r1) = rows.split_at(PANEL);
-        for l in 0..PANEL {
-            even[l] += xk[0] * r0[l];
-            odd[l] += xk[1] * r1[l];
+/// Rows of a batch that [`panel_many`] takes through a panel together: their sums (24 rows of
+/// four vectors, 6 KB) stay in the first-level cache while a span of the panel is read once
+/// for them all.
+const MANY_GROUP: usize = 24;
+
+/// Inputs per span of [`panel_many`]: 16 KB of the panel, which stays in the first-level cache
+/// while every six rows of a group pass over it (64 and 128 measured alike, 256 about 15%
+/// slower: `bench/kernels.sh`).
+const MANY_SPAN: usize = 64;
+
+/// Calls `emit(t, sums)` with the 64 sums Σₖ x[t·inp + k]·panel[k·64 + l] of each row t of `x`
+/// ([n, inp]), `panel` being one f32 panel ([inp, 64]): the product of many rows (batched
+/// decoding, prompt steps). Each row is summed exactly as [`panel_rows`] sums it, so a row's
+/// sums do not depend on how many rows come with it.
+fn panel_many(panel: &[f32], x: &[f32], inp: usize, emit: &mut dyn FnMut(usize, &[f32; PANEL])) {
+    assert!(inp > 0 && panel.len() >= inp * PANEL && x.len().is_multiple_of(inp));
+    #[cfg(target_arch = "x86_64")]
+    if features().avx512f {
+        // SAFETY: the CPU has AVX-512F (checked just above); the lengths are asserted.
+        unsafe { panel_many_avx512(panel, x, inp, emit) };
+        return;
+    }
+    let n = x.len() / inp;
+    let stored = Stored { w: panel, inp };
+    let mut t0 = 0;
+    while t0 < n {
+        let rows = (n - t0).min(FEW_ROWS);
+        let mut acc = [[0f32; PANEL]; FEW_ROWS];
+        panel_rows(
+            &mut acc[..rows],
+            &x[t0 * inp..(t0 + rows) * inp],
+            inp,
+            &stored,
+            0,
+        );
+        for (t, sums) in acc[..rows].iter().enumerate() {
+            emit(t0 + t, sums);
+        }
+        t0 += rows;
+    }
+}
+
+/// The sums of [`panel_many_avx512`] for one row, one vector per 16 columns.
+#[cfg(target_arch = "x86_64")]
+type RowSums = [std::arch::x86_64::__m512; 4];
+
+/// [`panel_many`] on AVX-512: rows in groups of [`MANY_GROUP`], the panel in spans of
+/// [`MANY_SPAN`] inputs, and within a span, rows six at a time with their 24 sums in registers
+/// ([`many_pass`]): each weight vector is loaded once for six rows' fused multiply-adds, so the
+/// loop is bound by the multiply-adds rather than by loads.
+///
+/// # Safety
+/// The CPU has AVX-512F; `panel` holds inp·64 values and `x` a whole number of rows of `inp`.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn panel_many_avx512(
+    panel: &[f32],
+    x: &[f32],
+    inp: usize,
+    emit: &mut dyn FnMut(usize, &[f32; PANEL]),
+) {
+    use std::arch::x86_64::*;
+    let n = x.len() / inp;
+    let mut sums: [RowSums; MANY_GROUP] = [[_mm512_setzero_ps(); 4]; MANY_GROUP];
+    // Rows are dealt out evenly, to groups and within a group to passes (32 rows: two groups
+    // of 16, each three passes of 6, 5 and 5), so no pass is left with one or two rows, which
+    // would load each weight vector for too few multiply-adds.
+    let even_share = |left: usize, most: usize| left.div_ceil(left.div_ceil(most));
+    let mut g0 = 0;
+    while g0 < n {
+        let rows = even_share(n - g0, MANY_GROUP);
+        sums[..rows].fill([_mm512_setzero_ps(); 4]);
+        let mut k0 = 0;
+        while k0 < inp {
+            let k1 = (k0 + MANY_SPAN).min(inp);
+            let mut t = 0;
+            while t < rows {
+                let take = even_share(rows - t, 6);
+                let group = &mut sums[t..t + take];
+                let xs = &x[(g0 + t) * inp..(g0 + t + take) * inp];
+                // SAFETY: as this function's; k1 ≤ inp.
+                unsafe {
+                    match take {
+                        1 => many_pass::<1>(group, xs, inp, panel, k0, k1),
+                        2 => many_pass::<2>(group, xs, inp, panel, k0, k1),
+                        3 => many_pass::<3>(group, xs, inp, panel, k0, k1),
+                        4 => many_pass::<4>(group, xs, inp, panel, k0, k1),
+                        5 => many_pass::<5>(group, xs, inp, panel, k0, k1),
+                        _ => many_pass::<6>(group, xs, inp, panel, k0, k1),
+                    }
+                }
+                t += take;
+            }
+            k0 = k1;
+        }
+        for (t, s) in sums[..rows].iter().enumerate() {
+            let mut row = [0f32; PANEL];
+            for (v, s) in s.iter().enumerate() {
+                // SAFETY: `row` holds 64 values, 16 from 16·v.
+                unsafe { _mm512_storeu_ps(row.as_mut_ptr().add(16 * v), *s) };
+            }
+            emit(g0 + t, &row);
+        }
+        g0 += rows;
+    }
+}
+
+/// One pass of [`panel_many_avx512`]: inputs k0..k1 of the panel into the sums of N rows.
+///
+/// # Safety
+/// The CPU has AVX-512F; k1 ≤ inp, `panel` holds inp·64 values and `x` N·inp.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn many_pass<const N: usize>(
+    sums: &mut [RowSums],
+    x: &[f32],
+    inp: usize,
+    panel: &[f32],
+    k0: usize,
+    k1: usize,
+) {
+    use std::arch::x86_64::*;
+    debug_assert!(sums.len() == N && k1 <= inp && panel.len() >= inp * PANEL && x.len() >= N * inp);
+    let (w, xp) = (panel.as_ptr(), x.as_ptr());
+    let mut s = [[_mm512_setzero_ps(); 4]; N];
+    s.copy_from_slice(sums);
+    for k in k0..k1 {
+        // SAFETY: k < k1 ≤ inp, so the 64 values of row k of the panel are readable.
+        let wk: [__m512; 4] =
+            std::array::from_fn(|v| unsafe { _mm512_loadu_ps(w.add(k * PANEL + 16 * v)) });
+        for (t, s) in s.iter_mut().enumerate() {
+            // SAFETY: t < N and k < inp, so t·inp + k < N·inp ≤ x.len().
+            let xt = unsafe { _mm512_set1_ps(*xp.add(t * inp + k)) };
+            for (s, wv) in s.iter_mut().zip(wk) {
+                *s = _mm512_fmadd_ps(xt, wv, *s);
+            }
         }
     }
-    if let (Some(&xk), Some(r0)) = (xs.remainder().first(), pairs.remainder().get(..PANEL)) {
+    sums.copy_from_slice(&s);
+}
+
+/// sums[l] = x[k]·rows[k·64 + l] + sums[l] for each k of `x` in order, each step one fused
+/// multiply-add.
+#[inline(always)]
+fn accumulate(sums: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
+    for (row, &xk) in panel.chunks_exact(PANEL).zip(x) {
         for l in 0..PANEL {
-            even[l] += xk * r0[l];
+            sums[l] = xk.mul_add(row[l], sums[l]);
         }
     }
 }
@@ -737,7 +839,7 @@ pub fn dot(a: &[f32], b: &[f32]) -> f32 {
 mod tests {
     use super::*;
 
-    /// The gemm calls' strides and the panel layout: y = x·wᵀ against the textbook triple
+    /// The head's gemm call strides and the panel layout: y = x·wᵀ against the textbook triple
     /// loop, for the head layout and the panel layout, one row and several, a partial last
     /// panel, on one task and on the pool.
     #[test]
@@ -787,6 +889,8 @@ mod tests {
             (1, 64, 64),
             (6, 129, 70),
             (8, 301, 150),
+            (9, 301, 150),
+            (27, 517, 70),
         ] {
             let x: Vec<f32> = (0..n * inp)
                 .map(|i| ((i * 7) % 11) as f32 * 0.3 - 1.7)
@@ -795,22 +899,9 @@ mod tests {
                 .map(|i| ((i * 5) % 13) as f32 * 0.173 - 1.01)
                 .collect();
             let check = |wide: Vec<f32>, y_half: Vec<f32>| {
-                if n > FEW_ROWS && !features().avx512f {
-                    return; // these rows go through `gemm` on a widened panel
-                }
                 let wp = pack_panels(&wide, out, inp);
-                // Up to FEW_ROWS rows, the f32 product of all rows at once; beyond, row by row
-                // (the f32 product of more rows goes through `gemm`, while 16-bit weights keep
-                // the few-rows sums up to HALF_ROWS rows on AVX-512).
                 let mut want = vec![0.0; n * out];
-                if n <= FEW_ROWS {
-                    matmul(&x, n, inp, &wp, out, &mut want);
-                } else {
-                    for t in 0..n {
-                        let xt = &x[t * inp..(t + 1) * inp];
-                        matmul(xt, 1, inp, &wp, out, &mut want[t * out..(t + 1) * out]);
-                    }
-                }
+                matmul(&x, n, inp, &wp, out, &mut want);
                 let same = want
                     .iter()
                     .zip(&y_half)
@@ -832,55 +923,62 @@ mod tests {
         }
     }
 
-    /// Up to FEW_ROWS rows (HALF_ROWS for 16-bit weights on AVX-512) read each panel once for
-    /// all rows, and each row's result is bit for bit the one it gets alone (which is what lets
-    /// rows of several model variants share a step without changing any answer); f32 and bf16,
-    /// partial panels, one task and the pool.
+    /// The summation the products promise, written out as a scalar loop: for each row and
+    /// column, one chain of fused multiply-adds (IEEE 754 `fusedMultiplyAdd`, Rust's
+    /// `f32::mul_add`) over k in order, from zero.
+    fn documented_sums(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize) -> Vec<f32> {
+        let mut y = vec![0.0; n * out];
+        for t in 0..n {
+            for j in 0..out {
+                let mut sum = 0f32;
+                for k in 0..inp {
+                    sum = x[t * inp + k].mul_add(w[j * inp + k], sum);
+                }
+                y[t * out + j] = sum;
+            }
+        }
+        y
+    }
+
+    /// Every batch size sums every row as the scalar loop above does, so a row's result is
+    /// bit for bit the one it gets alone (which is what lets rows of several model variants
+    /// share a step, and a batch change nothing in any answer): f32 and bf16, the few-rows loop
+    /// (1-4 rows, 8 for 16-bit on AVX-512), the many-rows loop (its groups of 24 rows and 3-row
+    /// passes, a partial last group, spans of 256 inputs and an odd last input), partial
+    /// panels, one task and the pool. Values spread over several binades, so that a product
+    /// rounded before its add differs from the fused one (checked: the unfused loop fails).
     #[test]
-    fn few_rows_each_equal_their_row_alone() {
+    fn every_batch_sums_each_row_in_the_documented_order() {
         for (n, inp, out) in [
+            (1, 37, 5),
             (2, 37, 5),
             (3, 301, 150),
             (4, 64, 64),
             (4, 2048, 300),
             (5, 37, 5),
             (8, 2048, 130),
+            (9, 513, 70),
+            (25, 301, 65),
+            (50, 129, 64),
         ] {
             let x: Vec<f32> = (0..n * inp)
-                .map(|i| ((i * 7) % 11) as f32 * 0.3 - 1.7)
+                .map(|i| ((i * 7) % 11) as f32 * 0.3137 - 1.7 + (i % 5) as f32 * 1e-3)
                 .collect();
             let raw: Vec<f32> = (0..out * inp)
-                .map(|i| ((i * 5) % 13) as f32 * 0.173 - 1.01)
+                .map(|i| (((i * 5) % 13) as f32 * 0.173 - 1.01) * (1 + i % 3) as f32)
                 .collect();
-            let wp = pack_panels(&raw, out, inp);
             let b: Vec<half::bf16> = raw.iter().map(|&v| half::bf16::from_f32(v)).collect();
+            let wide: Vec<f32> = b.iter().map(|v| v.to_f32()).collect();
+            let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+            let mut got = vec![0.0; n * out];
+            matmul(&x, n, inp, &pack_panels(&raw, out, inp), out, &mut got);
+            let want = documented_sums(&x, n, inp, &raw, out);
+            assert_eq!(bits(&got), bits(&want), "f32 n {n} inp {inp} out {out}");
             let mut bp = vec![half::bf16::ZERO; panel_len(out, inp)];
             pack_panels_into(&b, out, inp, &mut bp, 0);
-            let mut all = vec![0.0; n * out];
-            let mut all_b = vec![0.0; n * out];
-            matmul(&x, n, inp, &wp, out, &mut all);
-            matmul_half(&x, n, inp, &bp, out, &mut all_b);
-            for t in 0..n {
-                let xt = &x[t * inp..(t + 1) * inp];
-                let (mut one, mut one_b) = (vec![0.0; out], vec![0.0; out]);
-                matmul(xt, 1, inp, &wp, out, &mut one);
-                matmul_half(xt, 1, inp, &bp, out, &mut one_b);
-                let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
-                if n <= FEW_ROWS {
-                    assert_eq!(
-                        bits(&all[t * out..(t + 1) * out]),
-                        bits(&one),
-                        "f32 n {n} row {t}"
-                    );
-                }
-                if n <= FEW_ROWS || features().avx512f {
-                    assert_eq!(
-                        bits(&all_b[t * out..(t + 1) * out]),
-                        bits(&one_b),
-                        "bf16 n {n} row {t}"
-                    );
-                }
-            }
+            matmul_half(&x, n, inp, &bp, out, &mut got);
+            let want = documented_sums(&x, n, inp, &wide, out);
+            assert_eq!(bits(&got), bits(&want), "bf16 n {n} inp {inp} out {out}");
         }
     }
 

@@ -1507,7 +1507,7 @@ pub(super) mod tests {
     }
 
     /// The product over stored blocks is bit for bit the f32 product over the dequantised
-    /// matrix: one row (pieces), four rows, many rows (whole panels through gemm), a partial
+    /// matrix: one row (pieces), four rows, many rows (whole panels), a partial
     /// last panel, and parts of different types stacked.
     #[test]
     fn block_products_equal_the_f32_product_of_the_dequantised_matrix() {
@@ -1533,7 +1533,7 @@ pub(super) mod tests {
                 vec![(GgmlType::Q2K, 5), (GgmlType::Q3K, 5), (GgmlType::Q5K, 5)],
             ),
             // Regrouped panels of the 5-bit and 6-bit types, a product of one row (pieces) and
-            // of nine (whole panels through gemm).
+            // of nine (whole panels).
             (
                 1,
                 512,

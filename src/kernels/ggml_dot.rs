@@ -8,13 +8,12 @@
 //! at about half the triad bandwidth that way). Here each input's 64 values are computed into
 //! registers ([`GroupRows::row`]) and multiplied into the sums at once.
 //!
-//! The sums are those of `dense`'s few-rows loop, in the same order: for each output lane, one
-//! sum over the even inputs and one over the odd inputs, each in input order, x·w rounded and
-//! then added (no fused multiply-add), the two added at the end. So this product is bit for bit
+//! The sums are those of `dense`'s products, in the same order: for each output lane, one chain
+//! over the inputs in order, each step a fused multiply-add. So this product is bit for bit
 //! `dense::matmul_panels` over the same matrix (tested below), whatever the thread count, and
-//! batch-1 answers do not change.
+//! a row's answers do not depend on its batch.
 
-use super::dense::{matmul_panels, Panels, PANEL, PIECE_ROWS};
+use super::dense::{matmul_panels, panel_rows, PANEL};
 use super::ggml::{GgmlMatrix, GroupRows, GroupVisitor, Panel, GROUP};
 #[cfg(target_arch = "x86_64")]
 use super::simd::features;
@@ -60,29 +59,21 @@ impl GgmlMatrix {
                     unsafe { regrouped_dot_avx512(panel, next, x, acc) };
                     return;
                 }
+                #[cfg(target_arch = "x86_64")]
+                if features().fma {
+                    // SAFETY: the CPU has AVX2 and FMA (checked just above).
+                    unsafe { regrouped_dot_fma(panel, x, acc) };
+                    return;
+                }
                 regrouped_dot::<false>(panel, None, x, acc);
             }
         }
     }
 
-    /// [`GgmlMatrix::panel_dot`] for a panel of stored rows: dequantised value by value, 32
-    /// inputs at a time, then summed in the same order.
+    /// [`GgmlMatrix::panel_dot`] for a panel of stored rows: `dense`'s few-rows loop over the
+    /// values dequantised value by value, 32 inputs at a time.
     fn stored_dot(&self, p: usize, x: &[f32], acc: &mut [f32; PANEL]) {
-        let (mut even, mut odd) = ([0f32; PANEL], [0f32; PANEL]);
-        let mut buf = [0f32; PIECE_ROWS * PANEL];
-        for k0 in (0..self.inp).step_by(PIECE_ROWS) {
-            let k1 = (k0 + PIECE_ROWS).min(self.inp);
-            let piece = self.piece(p, k0, k1, &mut buf);
-            for (i, w) in piece.chunks_exact(PANEL).enumerate() {
-                let sums = if i % 2 == 0 { &mut even } else { &mut odd };
-                for l in 0..PANEL {
-                    sums[l] += x[k0 + i] * w[l];
-                }
-            }
-        }
-        for l in 0..PANEL {
-            acc[l] = even[l] + odd[l];
-        }
+        panel_rows(std::slice::from_mut(acc), x, self.inp, self, p);
     }
 }
 
@@ -97,6 +88,16 @@ unsafe fn regrouped_dot_avx512(
     regrouped_dot::<true>(panel, next, x, acc);
 }
 
+/// [`regrouped_dot`]'s portable form compiled for AVX2 with fused multiply-add.
+///
+/// # Safety
+/// The CPU has AVX2 and FMA.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn regrouped_dot_fma(panel: &Panel, x: &[f32], acc: &mut [f32; PANEL]) {
+    regrouped_dot::<false>(panel, None, x, acc);
+}
+
 /// [`GgmlMatrix::panel_dot`] for a regrouped panel; `next` is the panel whose first groups are
 /// prefetched near the end (the panel a task usually takes next).
 #[inline(always)]
@@ -106,14 +107,13 @@ fn regrouped_dot<const AVX512: bool>(
     x: &[f32],
     acc: &mut [f32; PANEL],
 ) {
-    /// The even-input and odd-input sums of each lane.
+    /// The sums of the 64 lanes.
     struct Dot<'a> {
         panel: &'a Panel,
         next: Option<&'a Panel>,
         groups: usize,
         x: &'a [f32],
-        even: [f32; PANEL],
-        odd: [f32; PANEL],
+        sums: [f32; PANEL],
     }
     impl GroupVisitor for Dot<'_> {
         #[inline(always)]
@@ -125,14 +125,11 @@ fn regrouped_dot<const AVX512: bool>(
                 next.prefetch_group(ahead - self.groups);
             }
             let xs = &self.x[g * GROUP..(g + 1) * GROUP];
-            let (mut w0, mut w1) = ([0f32; PANEL], [0f32; PANEL]);
-            for k in (0..GROUP).step_by(2) {
-                rows.row(k, &mut w0);
-                rows.row(k + 1, &mut w1);
-                let (x0, x1) = (xs[k], xs[k + 1]);
-                for l in 0..PANEL {
-                    self.even[l] += x0 * w0[l];
-                    self.odd[l] += x1 * w1[l];
+            let mut w = [0f32; PANEL];
+            for (k, &xk) in xs.iter().enumerate() {
+                rows.row(k, &mut w);
+                for (s, &wl) in self.sums.iter_mut().zip(&w) {
+                    *s = xk.mul_add(wl, *s);
                 }
             }
         }
@@ -143,13 +140,10 @@ fn regrouped_dot<const AVX512: bool>(
         next,
         groups,
         x,
-        even: [0f32; PANEL],
-        odd: [0f32; PANEL],
+        sums: [0f32; PANEL],
     };
     panel.for_groups::<AVX512, _>(0, groups, &mut dot);
-    for ((a, e), o) in acc.iter_mut().zip(dot.even).zip(dot.odd) {
-        *a = e + o;
-    }
+    *acc = dot.sums;
 }
 
 #[cfg(test)]

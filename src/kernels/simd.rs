@@ -15,8 +15,12 @@ pub const LANES: usize = 16;
 /// The AVX-512 extensions the kernels use, as found on this CPU.
 #[derive(Debug, Clone, Copy, Default)]
 pub struct Features {
-    /// AVX-512 Foundation: 16-wide f32 vectors.
+    /// AVX-512 Foundation: 16-wide f32 vectors (and fused multiply-add, which every CPU with
+    /// AVX-512F has).
     pub avx512f: bool,
+    /// AVX2 with fused multiply-add: the products' portable loops are compiled for it, so a
+    /// fused multiply-add is one instruction rather than a library call.
+    pub fma: bool,
     /// AVX-512F and AVX-512 BF16 (`vdpbf16ps`).
     pub avx512_bf16: bool,
     /// AVX-512F and AVX-512 VNNI (`vpdpbusd`).
@@ -34,6 +38,8 @@ fn detect() -> Features {
     let f = std::arch::is_x86_feature_detected!("avx512f");
     Features {
         avx512f: f,
+        fma: std::arch::is_x86_feature_detected!("avx2")
+            && std::arch::is_x86_feature_detected!("fma"),
         avx512_bf16: f && std::arch::is_x86_feature_detected!("avx512bf16"),
         avx512_vnni: f && std::arch::is_x86_feature_detected!("avx512vnni"),
     }

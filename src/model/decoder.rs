@@ -12,9 +12,9 @@
 //! tensor: a token at position p attends to the keys 0..=p of its own slot (the last W of them
 //! under a sliding window W). Prefill of a new question and decode steps of others share one
 //! call, which is what lets a finished slot take the next question at once. All the tokens of a
-//! call go through each weight matrix in one matrix product (`gemm`), so each weight read serves
-//! every sequence. Each token's arithmetic is the same whatever else is in the call, so batched
-//! output equals batch-1 output.
+//! call go through each weight matrix in one matrix product (`kernels::dense`), so each weight
+//! read serves every sequence. Each token's arithmetic is the same whatever else is in the call,
+//! so batched output equals batch-1 output bit for bit.
 //!
 //! Linear weights are [out, in] (y = x·Wᵀ + b); q, k, v (and gate, up) are stacked into one
 //! matrix at load time, which changes no dot product (`linear`). The KV cache is `cache`, RoPE
