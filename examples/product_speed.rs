@@ -13,7 +13,10 @@ use std::time::Instant;
 fn main() {
     let args: Vec<usize> = std::env::args()
         .skip(1)
-        .map(|a| a.parse().expect("ROWS INPUTS OUTPUTS CALLS, each a whole number"))
+        .map(|a| {
+            a.parse()
+                .expect("ROWS INPUTS OUTPUTS CALLS, each a whole number")
+        })
         .collect();
     let [n, inp, out, calls] = args[..] else {
         eprintln!("usage: product_speed ROWS INPUTS OUTPUTS CALLS");
@@ -24,7 +27,9 @@ fn main() {
         .collect();
     let mut wp = vec![0f32; panel_len(out, inp)];
     pack_panels_into(&w, out, inp, &mut wp, 0);
-    let x: Vec<f32> = (0..n * inp).map(|i| ((i * 31) % 97) as f32 * 1e-2).collect();
+    let x: Vec<f32> = (0..n * inp)
+        .map(|i| ((i * 31) % 97) as f32 * 1e-2)
+        .collect();
     let mut y = vec![0f32; n * out];
     matmul(&x, n, inp, &wp, out, &mut y);
     let t = Instant::now();

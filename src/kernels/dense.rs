@@ -665,15 +665,21 @@ unsafe fn panel_many_avx512(
                 let take = even_share(rows - t, 6);
                 let group = &mut sums[t..t + take];
                 let xs = &x[(g0 + t) * inp..(g0 + t + take) * inp];
-                // SAFETY: as this function's; k1 ≤ inp.
+                // The first pass over a span fetches the next span ahead of its use.
+                let ahead = if t == 0 {
+                    (k1..(k1 + MANY_SPAN).min(inp)).len()
+                } else {
+                    0
+                };
+                // SAFETY: as this function's; k1 ≤ inp, k1 + ahead ≤ inp.
                 unsafe {
                     match take {
-                        1 => many_pass::<1>(group, xs, inp, panel, k0, k1),
-                        2 => many_pass::<2>(group, xs, inp, panel, k0, k1),
-                        3 => many_pass::<3>(group, xs, inp, panel, k0, k1),
-                        4 => many_pass::<4>(group, xs, inp, panel, k0, k1),
-                        5 => many_pass::<5>(group, xs, inp, panel, k0, k1),
-                        _ => many_pass::<6>(group, xs, inp, panel, k0, k1),
+                        1 => many_pass::<1>(group, xs, inp, panel, k0, k1, ahead),
+                        2 => many_pass::<2>(group, xs, inp, panel, k0, k1, ahead),
+                        3 => many_pass::<3>(group, xs, inp, panel, k0, k1, ahead),
+                        4 => many_pass::<4>(group, xs, inp, panel, k0, k1, ahead),
+                        5 => many_pass::<5>(group, xs, inp, panel, k0, k1, ahead),
+                        _ => many_pass::<6>(group, xs, inp, panel, k0, k1, ahead),
                     }
                 }
                 t += take;
@@ -692,10 +698,11 @@ unsafe fn panel_many_avx512(
     }
 }
 
-/// One pass of [`panel_many_avx512`]: inputs k0..k1 of the panel into the sums of N rows.
+/// One pass of [`panel_many_avx512`]: inputs k0..k1 of the panel into the sums of N rows, and
+/// a prefetch of the `ahead` panel rows from k1 (spread over the pass).
 ///
 /// # Safety
-/// The CPU has AVX-512F; k1 ≤ inp, `panel` holds inp·64 values and `x` N·inp.
+/// The CPU has AVX-512F; k1 + ahead ≤ inp, `panel` holds inp·64 values and `x` N·inp.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
 unsafe fn many_pass<const N: usize>(
@@ -705,6 +712,7 @@ unsafe fn many_pass<const N: usize>(
     panel: &[f32],
     k0: usize,
     k1: usize,
+    ahead: usize,
 ) {
     use std::arch::x86_64::*;
     debug_assert!(sums.len() == N && k1 <= inp && panel.len() >= inp * PANEL && x.len() >= N * inp);
@@ -712,6 +720,14 @@ unsafe fn many_pass<const N: usize>(
     let mut s = [[_mm512_setzero_ps(); 4]; N];
     s.copy_from_slice(sums);
     for k in k0..k1 {
+        if k - k0 < ahead {
+            let next = (k1 + k - k0) * PANEL;
+            for line in 0..4 {
+                // SAFETY: row k1 + k - k0 < k1 + ahead ≤ inp is inside the panel; a prefetch
+                // reads nothing into the program.
+                unsafe { _mm_prefetch::<_MM_HINT_T0>(w.add(next + 16 * line).cast()) };
+            }
+        }
         // SAFETY: k < k1 ≤ inp, so the 64 values of row k of the panel are readable.
         let wk: [__m512; 4] =
             std::array::from_fn(|v| unsafe { _mm512_loadu_ps(w.add(k * PANEL + 16 * v)) });
