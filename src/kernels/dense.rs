@@ -753,83 +753,6 @@ fn accumulate(sums: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
     }
 }
 
-/// y[n, out] = x[n, inp] · wᵀ, with w [out, inp] row-major (the lm_head, which is also the
-/// embedding table when tied and so keeps the checkpoint layout).
-pub fn matmul_t(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
-    if n == 1 {
-        // One dot product per contiguous row of w, rows split across tasks.
-        assert!(x.len() >= inp && w.len() >= out * inp && y.len() >= out);
-        let one = |(blk, yb): (usize, &mut [f32])| {
-            for (i, v) in yb.iter_mut().enumerate() {
-                let j = blk * 256 + i;
-                *v = dot(&w[j * inp..(j + 1) * inp], &x[..inp]);
-            }
-        };
-        if out * inp >= PARALLEL_WORK {
-            y[..out].par_chunks_mut(256).enumerate().for_each(one);
-        } else {
-            y[..out].chunks_mut(256).enumerate().for_each(one);
-        }
-        return;
-    }
-    gemm_rows(x, n, inp, w, 1, inp as isize, out, y);
-}
-
-/// y[n, out] = x[n, inp] · B where B(k, j) = w[k·w_rs + j·w_cs].
-#[allow(clippy::too_many_arguments)]
-fn gemm_rows(
-    x: &[f32],
-    n: usize,
-    inp: usize,
-    w: &[f32],
-    w_rs: isize,
-    w_cs: isize,
-    out: usize,
-    y: &mut [f32],
-) {
-    assert!(x.len() >= n * inp && w.len() >= out * inp && y.len() >= n * out);
-    if n == 0 || out == 0 {
-        return;
-    }
-    if inp == 0 {
-        y[..n * out].fill(0.0);
-        return;
-    }
-    let threads = rayon::current_num_threads();
-    let par = if threads > 1 {
-        gemm::Parallelism::Rayon(threads)
-    } else {
-        gemm::Parallelism::None
-    };
-    // SAFETY: the three buffers hold at least n·inp, out·inp and n·out values (asserted
-    // above); the strides address exactly those elements: lhs (i, k) = x[i·inp + k],
-    // rhs (k, j) = w[k·w_rs + j·w_cs] (either stride order covers out·inp values),
-    // dst (i, j) = y[i·out + j]. dst does not alias the inputs.
-    unsafe {
-        gemm::gemm(
-            n,
-            out,
-            inp,
-            y.as_mut_ptr(),
-            1,
-            out as isize,
-            false,
-            x.as_ptr(),
-            1,
-            inp as isize,
-            w.as_ptr(),
-            w_cs,
-            w_rs,
-            0.0,
-            1.0,
-            false,
-            false,
-            false,
-            par,
-        );
-    }
-}
-
 /// Sum of products with sixteen independent partial sums, so the compiler can use vector
 /// registers (a single running sum would force one addition at a time).
 #[inline]
@@ -855,39 +778,23 @@ pub fn dot(a: &[f32], b: &[f32]) -> f32 {
 mod tests {
     use super::*;
 
-    /// The head's gemm call strides and the panel layout: y = x·wᵀ against the textbook triple
-    /// loop, for the head layout and the panel layout, one row and several, a partial last
-    /// panel, on one task and on the pool.
+    /// The panel layout: y = x·wᵀ against the textbook triple loop, one row and several, a
+    /// partial last panel, on one task and on the pool.
     #[test]
-    fn matmul_t_is_x_times_w_transposed() {
+    fn matmul_is_x_times_w_transposed() {
         for (n, inp, out) in [(3, 37, 5), (7, 301, 150)] {
             let x: Vec<f32> = (0..n * inp).map(|i| ((i * 7) % 11) as f32 - 5.0).collect();
             let w: Vec<f32> = (0..out * inp)
                 .map(|i| ((i * 5) % 13) as f32 * 0.25)
                 .collect();
+            let wp = pack_panels(&w, out, inp);
             let mut y = vec![0.0; n * out];
-            matmul_t(&x, n, inp, &w, out, &mut y);
+            matmul(&x, n, inp, &wp, out, &mut y);
             for i in 0..n {
                 for j in 0..out {
                     let want: f32 = (0..inp).map(|k| x[i * inp + k] * w[j * inp + k]).sum();
                     assert!((y[i * out + j] - want).abs() < 1e-3, "({i},{j})");
                 }
-            }
-            let wp = pack_panels(&w, out, inp);
-            let mut y2 = vec![0.0; n * out];
-            matmul(&x, n, inp, &wp, out, &mut y2);
-            for (a, b) in y.iter().zip(&y2) {
-                assert!((a - b).abs() < 1e-3);
-            }
-            // The single-row paths (batch-1 decoding).
-            let mut y1 = vec![0.0; out];
-            matmul_t(&x[inp..2 * inp], 1, inp, &w, out, &mut y1);
-            for (a, b) in y1.iter().zip(&y[out..2 * out]) {
-                assert!((a - b).abs() < 1e-3);
-            }
-            matmul(&x[inp..2 * inp], 1, inp, &wp, out, &mut y1);
-            for (a, b) in y1.iter().zip(&y[out..2 * out]) {
-                assert!((a - b).abs() < 1e-3);
             }
         }
     }

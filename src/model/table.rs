@@ -10,7 +10,7 @@
 //! hidden size 4,096), so keeping it 16-bit halves what it takes in memory.
 
 use crate::error::Result;
-use crate::kernels::dense::{self, dot, Half};
+use crate::kernels::dense::{dot, Half};
 use crate::kernels::PARALLEL_WORK;
 use candle_core::{CpuStorage, DType, Storage, Tensor};
 use rayon::prelude::*;
@@ -132,13 +132,11 @@ impl<'a> Rows<'a> {
         dot(self.row(j, x.len(), buf), x)
     }
 
-    /// y[n, rows] = x[n, cols] · tableᵀ: every logit of n hidden vectors. An f32 table runs the
-    /// dense kernel; a 16-bit one widens each row once and dots it with every vector (the
-    /// logits a soft-capped head or a whole-row request needs, memory-bound either way).
+    /// y[n, rows] = x[n, cols] · tableᵀ: every logit of n hidden vectors (the logits a
+    /// soft-capped head or a whole-row request needs). Each row of the table is read once (a
+    /// 16-bit one widened once) and dotted with every vector by [`dot`], so each logit is the
+    /// same at every batch size, and the one [`Rows::dot_row`] gives.
     pub fn matmul_t(&self, x: &[f32], n: usize, cols: usize, rows: usize, y: &mut [f32]) {
-        if let Rows::F32(w) = *self {
-            return dense::matmul_t(x, n, cols, w, rows, y);
-        }
         assert!(x.len() >= n * cols && self.len() >= rows * cols && y.len() >= n * rows);
         // Row-major [rows, n] first, so blocks of rows are contiguous for the tasks.
         let mut by_row = vec![0f32; rows * n];
@@ -190,6 +188,14 @@ mod tests {
         let x: Vec<f32> = (0..n * cols).map(|i| (i as f32 * 0.37).sin()).collect();
         let (mut a, mut b) = (vec![0f32; n * rows], vec![0f32; n * rows]);
         nr.matmul_t(&x, n, cols, rows, &mut a);
+        // The f32 table's logits of n rows at once are each row's alone.
+        let mut all = vec![0f32; n * rows];
+        wr.matmul_t(&x, n, cols, rows, &mut all);
+        for t in 0..n {
+            let mut one = vec![0f32; rows];
+            wr.matmul_t(&x[t * cols..(t + 1) * cols], 1, cols, rows, &mut one);
+            assert_eq!(one, all[t * rows..(t + 1) * rows]);
+        }
         let mut buf = Vec::new();
         for t in 0..n {
             for j in 0..rows {
