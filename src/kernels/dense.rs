@@ -136,6 +136,16 @@ trait PanelRead: Copy + Sync {
     ) -> bool {
         false
     }
+    /// The 64 weights of input k of a panel at `w` as f32, in four vectors whose lanes hold the
+    /// columns [`PanelRead::lane_column`] gives (for [`panel_many_avx512`]).
+    ///
+    /// # Safety
+    /// The panel at `w` has more than k inputs; the CPU has AVX-512F and the caller is compiled
+    /// for it.
+    #[cfg(target_arch = "x86_64")]
+    unsafe fn row_avx512(w: *const Self, k: usize) -> [std::arch::x86_64::__m512; 4];
+    /// The column (0..64) in lane `lane` of vector `v` of [`PanelRead::row_avx512`].
+    fn lane_column(v: usize, lane: usize) -> usize;
 }
 
 impl PanelRead for f32 {
@@ -145,6 +155,17 @@ impl PanelRead for f32 {
     }
     fn as_f32(panel: &[f32], f: impl FnOnce(&[f32])) {
         f(panel);
+    }
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn row_avx512(w: *const f32, k: usize) -> [std::arch::x86_64::__m512; 4] {
+        // SAFETY: the 64 values of input k are readable (the caller's promise).
+        std::array::from_fn(|v| unsafe {
+            std::arch::x86_64::_mm512_loadu_ps(w.add(k * PANEL + 16 * v))
+        })
+    }
+    fn lane_column(v: usize, lane: usize) -> usize {
+        16 * v + lane
     }
 }
 
@@ -177,6 +198,17 @@ impl<H: Half> PanelRead for H {
         }
         FEW_ROWS
     }
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn row_avx512(w: *const H, k: usize) -> [std::arch::x86_64::__m512; 4] {
+        // SAFETY: the 64 values of input k are readable, AVX-512F (the caller's promise).
+        let ([a, b], [c, d]) =
+            unsafe { (H::widen32(w.add(k * PANEL)), H::widen32(w.add(k * PANEL + 32))) };
+        [a, b, c, d]
+    }
+    fn lane_column(v: usize, lane: usize) -> usize {
+        32 * (v / 2) + H::column(v % 2, lane)
+    }
 }
 
 /// The weights of a linear layer in the panel layout, however they are held: the seam between
@@ -206,6 +238,22 @@ pub trait Panels: Sync {
     unsafe fn rows_avx512(&self, _acc: &mut [[f32; PANEL]], _x: &[f32], _p: usize) -> bool {
         false
     }
+    /// The many-rows sums of panel `p` ([`panel_many_avx512`]) read from the stored values;
+    /// false when the format has no such loop (the product then gets the panel as f32 from
+    /// [`Panels::whole`]).
+    ///
+    /// # Safety
+    /// The CPU has AVX-512F.
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn many_avx512(
+        &self,
+        _x: &[f32],
+        _p: usize,
+        _emit: &mut dyn FnMut(usize, &[f32; PANEL]),
+    ) -> bool {
+        false
+    }
 }
 
 /// A panel-layout slice of f32 or 16-bit values with its input size.
@@ -232,6 +280,21 @@ impl<T: PanelRead> Panels for Stored<'_, T> {
         let panel = &self.w[p * self.inp * PANEL..(p + 1) * self.inp * PANEL];
         // SAFETY: the caller's promise, passed on.
         unsafe { T::rows_avx512(panel, acc, x, self.inp) }
+    }
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn many_avx512(
+        &self,
+        x: &[f32],
+        p: usize,
+        emit: &mut dyn FnMut(usize, &[f32; PANEL]),
+    ) -> bool {
+        let panel = &self.w[p * self.inp * PANEL..(p + 1) * self.inp * PANEL];
+        assert!(self.inp > 0 && x.len().is_multiple_of(self.inp));
+        // SAFETY: the CPU has AVX-512F (the caller's promise); the panel holds inp·64 values
+        // and x whole rows (asserted).
+        unsafe { panel_many_avx512(panel, x, self.inp, emit) };
+        true
     }
 }
 
@@ -275,15 +338,16 @@ fn products<W: Panels>(x: &[f32], n: usize, inp: usize, w: &W, out: usize, y: &m
             }
             return;
         }
-        w.whole(p, &mut |panel| {
-            panel_many(panel, &x[..n * inp], inp, &mut |t, sums| {
-                // SAFETY: columns j0..j0 + width of each output row belong to this task, and
-                // t < n.
-                unsafe {
-                    std::ptr::copy_nonoverlapping(sums.as_ptr(), yc.get().add(t * out + j0), width);
-                }
-            });
-        });
+        let mut emit = |t: usize, sums: &[f32; PANEL]| {
+            // SAFETY: columns j0..j0 + width of each output row belong to this task, and t < n.
+            unsafe { std::ptr::copy_nonoverlapping(sums.as_ptr(), yc.get().add(t * out + j0), width) };
+        };
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: the CPU has AVX-512F (checked first).
+        if features().avx512f && unsafe { w.many_avx512(&x[..n * inp], p, &mut emit) } {
+            return;
+        }
+        w.whole(p, &mut |panel| panel_many(panel, &x[..n * inp], inp, &mut emit));
     };
     let panels = out.div_ceil(PANEL);
     if n * inp * out >= PARALLEL_WORK {
@@ -640,8 +704,8 @@ type RowSums = [std::arch::x86_64::__m512; 4];
 /// The CPU has AVX-512F; `panel` holds inp·64 values and `x` a whole number of rows of `inp`.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
-unsafe fn panel_many_avx512(
-    panel: &[f32],
+unsafe fn panel_many_avx512<T: PanelRead>(
+    panel: &[T],
     x: &[f32],
     inp: usize,
     emit: &mut dyn FnMut(usize, &[f32; PANEL]),
@@ -674,12 +738,12 @@ unsafe fn panel_many_avx512(
                 // SAFETY: as this function's; k1 ≤ inp, k1 + ahead ≤ inp.
                 unsafe {
                     match take {
-                        1 => many_pass::<1>(group, xs, inp, panel, k0, k1, ahead),
-                        2 => many_pass::<2>(group, xs, inp, panel, k0, k1, ahead),
-                        3 => many_pass::<3>(group, xs, inp, panel, k0, k1, ahead),
-                        4 => many_pass::<4>(group, xs, inp, panel, k0, k1, ahead),
-                        5 => many_pass::<5>(group, xs, inp, panel, k0, k1, ahead),
-                        _ => many_pass::<6>(group, xs, inp, panel, k0, k1, ahead),
+                        1 => many_pass::<T, 1>(group, xs, inp, panel, k0, k1, ahead),
+                        2 => many_pass::<T, 2>(group, xs, inp, panel, k0, k1, ahead),
+                        3 => many_pass::<T, 3>(group, xs, inp, panel, k0, k1, ahead),
+                        4 => many_pass::<T, 4>(group, xs, inp, panel, k0, k1, ahead),
+                        5 => many_pass::<T, 5>(group, xs, inp, panel, k0, k1, ahead),
+                        _ => many_pass::<T, 6>(group, xs, inp, panel, k0, k1, ahead),
                     }
                 }
                 t += take;
@@ -689,8 +753,12 @@ unsafe fn panel_many_avx512(
         for (t, s) in sums[..rows].iter().enumerate() {
             let mut row = [0f32; PANEL];
             for (v, s) in s.iter().enumerate() {
-                // SAFETY: `row` holds 64 values, 16 from 16·v.
-                unsafe { _mm512_storeu_ps(row.as_mut_ptr().add(16 * v), *s) };
+                let mut lanes = [0f32; 16];
+                // SAFETY: `lanes` holds 16 values.
+                unsafe { _mm512_storeu_ps(lanes.as_mut_ptr(), *s) };
+                for (lane, value) in lanes.into_iter().enumerate() {
+                    row[T::lane_column(v, lane)] = value;
+                }
             }
             emit(g0 + t, &row);
         }
@@ -705,11 +773,11 @@ unsafe fn panel_many_avx512(
 /// The CPU has AVX-512F; k1 + ahead ≤ inp, `panel` holds inp·64 values and `x` N·inp.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
-unsafe fn many_pass<const N: usize>(
+unsafe fn many_pass<T: PanelRead, const N: usize>(
     sums: &mut [RowSums],
     x: &[f32],
     inp: usize,
-    panel: &[f32],
+    panel: &[T],
     k0: usize,
     k1: usize,
     ahead: usize,
@@ -721,16 +789,16 @@ unsafe fn many_pass<const N: usize>(
     s.copy_from_slice(sums);
     for k in k0..k1 {
         if k - k0 < ahead {
-            let next = (k1 + k - k0) * PANEL;
-            for line in 0..4 {
-                // SAFETY: row k1 + k - k0 < k1 + ahead ≤ inp is inside the panel; a prefetch
+            // The 64 values of input k1 + k - k0: one cache line per 16 bytes of a value.
+            let next = w.wrapping_add((k1 + k - k0) * PANEL).cast::<u8>();
+            for line in 0..size_of::<T>() {
+                // SAFETY: input k1 + k - k0 < k1 + ahead ≤ inp is inside the panel; a prefetch
                 // reads nothing into the program.
-                unsafe { _mm_prefetch::<_MM_HINT_T0>(w.add(next + 16 * line).cast()) };
+                unsafe { _mm_prefetch::<_MM_HINT_T0>(next.add(64 * line).cast()) };
             }
         }
-        // SAFETY: k < k1 ≤ inp, so the 64 values of row k of the panel are readable.
-        let wk: [__m512; 4] =
-            std::array::from_fn(|v| unsafe { _mm512_loadu_ps(w.add(k * PANEL + 16 * v)) });
+        // SAFETY: k < k1 ≤ inp; AVX-512F is this function's promise.
+        let wk = unsafe { T::row_avx512(w, k) };
         for (t, s) in s.iter_mut().enumerate() {
             // SAFETY: t < N and k < inp, so t·inp + k < N·inp ≤ x.len().
             let xt = unsafe { _mm512_set1_ps(*xp.add(t * inp + k)) };
@@ -865,11 +933,12 @@ mod tests {
 
     /// Every batch size sums every row as the scalar loop above does, so a row's result is
     /// bit for bit the one it gets alone (which is what lets rows of several model variants
-    /// share a step, and a batch change nothing in any answer): f32 and bf16, the few-rows loop
-    /// (1-4 rows, 8 for 16-bit on AVX-512), the many-rows loop (its groups of 24 rows and 3-row
-    /// passes, a partial last group, spans of 256 inputs and an odd last input), partial
-    /// panels, one task and the pool. Values spread over several binades, so that a product
-    /// rounded before its add differs from the fused one (checked: the unfused loop fails).
+    /// share a step, and a batch change nothing in any answer): f32, bf16 and f16, the
+    /// few-rows loop (1-4 rows, 8 for 16-bit on AVX-512), the many-rows loop (groups of up to
+    /// 24 rows in passes of up to 6, a partial last group, spans of 64 inputs and a partial
+    /// last span), partial panels, one task and the pool. Values spread over several binades,
+    /// so that a product rounded before its add differs from the fused one (checked: the
+    /// unfused loop fails).
     #[test]
     fn every_batch_sums_each_row_in_the_documented_order() {
         for (n, inp, out) in [
@@ -902,6 +971,13 @@ mod tests {
             matmul_half(&x, n, inp, &bp, out, &mut got);
             let want = documented_sums(&x, n, inp, &wide, out);
             assert_eq!(bits(&got), bits(&want), "bf16 n {n} inp {inp} out {out}");
+            let h: Vec<half::f16> = raw.iter().map(|&v| half::f16::from_f32(v)).collect();
+            let wide: Vec<f32> = h.iter().map(|v| v.to_f32()).collect();
+            let mut hp = vec![half::f16::ZERO; panel_len(out, inp)];
+            pack_panels_into(&h, out, inp, &mut hp, 0);
+            matmul_half(&x, n, inp, &hp, out, &mut got);
+            let want = documented_sums(&x, n, inp, &wide, out);
+            assert_eq!(bits(&got), bits(&want), "f16 n {n} inp {inp} out {out}");
         }
     }
 
