@@ -4,9 +4,12 @@
 //! A linear layer's [out, inp] matrix is stored in panels of 64 output columns
 //! ([`pack_panels_into`]): each panel is one contiguous run that a product reads front to back,
 //! so the weights are never repacked per call (repacking would read and write every weight
-//! once more per decoding step). A few rows (small-batch decoding) read each panel once for all
-//! rows with the panel's 64 sums per row in registers ([`panel_rows`]); more rows go through a
-//! loop that holds six rows' sums at a time ([`panel_many`]).
+//! once more per decoding step). On AVX-512, f32 and 16-bit panels go through one loop at every
+//! batch size ([`panel_many_avx512`]): rows in groups of up to 24 read each panel once, a span
+//! of 64 inputs at a time held in the first-level cache while passes of up to six rows, their
+//! sums in registers, go over it. Block-quantised panels, and every panel on other CPUs, are
+//! read as f32 pieces by a few-rows loop ([`panel_rows`]) or as a whole f32 panel by the
+//! many-rows one ([`panel_many`]).
 //!
 //! Every output is summed the same way whatever the batch: for each row and output column, one
 //! chain over the inputs in order, from zero, each step a fused multiply-add (x·w + sum rounded
@@ -100,11 +103,9 @@ unsafe impl Sync for Columns {}
 /// y[n, out] = x[n, inp] · W, with W in the panel layout ([`pack_panels_into`]), one task per
 /// panel on the rayon pool.
 ///
-/// Up to [`FEW_ROWS`] rows (small-batch decoding) read each panel once, front to back, with
-/// the panel's 64 sums per row in registers or the first-level cache ([`panel_rows`]); more
-/// rows go through [`panel_many`]. Either way each row is summed as it would be alone (see the
-/// module's summary), and each output is computed by one task in a fixed order, so the result
-/// depends neither on the thread count nor on the batch.
+/// Each row is summed as it would be alone (see the module's summary), and each output is
+/// computed by one task in a fixed order, so the result depends neither on the thread count
+/// nor on the batch.
 pub fn matmul(x: &[f32], n: usize, inp: usize, w: &[f32], out: usize, y: &mut [f32]) {
     assert!(w.len() >= panel_len(out, inp));
     products(x, n, inp, &Stored { w, inp }, out, y);
@@ -116,26 +117,6 @@ trait PanelRead: Copy + Sync {
     fn piece<'a>(src: &'a [Self], buf: &'a mut [f32]) -> &'a [f32];
     /// Calls `f` on the panel as f32 values (many rows).
     fn as_f32(panel: &[Self], f: impl FnOnce(&[f32]));
-    /// Rows up to which a product takes the few-rows loop (see [`FEW_ROWS`]).
-    fn few_rows() -> usize {
-        FEW_ROWS
-    }
-    /// The few-rows sums of `panel` ([inp, 64]) straight from the stored values, widened in
-    /// registers ([`half_rows_avx512`]); false when the format has no such loop (f32 is read
-    /// in place anyway).
-    ///
-    /// # Safety
-    /// The CPU has AVX-512F.
-    #[cfg(target_arch = "x86_64")]
-    #[inline(always)]
-    unsafe fn rows_avx512(
-        _panel: &[Self],
-        _acc: &mut [[f32; PANEL]],
-        _x: &[f32],
-        _inp: usize,
-    ) -> bool {
-        false
-    }
     /// The 64 weights of input k of a panel at `w` as f32, in four vectors whose lanes hold the
     /// columns [`PanelRead::lane_column`] gives (for [`panel_many_avx512`]).
     ///
@@ -184,26 +165,14 @@ impl<H: Half> PanelRead for H {
     }
     #[cfg(target_arch = "x86_64")]
     #[inline(always)]
-    unsafe fn rows_avx512(panel: &[H], acc: &mut [[f32; PANEL]], x: &[f32], inp: usize) -> bool {
-        assert!(acc.len() <= HALF_ROWS);
-        assert!(panel.len() >= inp * PANEL && x.len() >= acc.len() * inp);
-        // SAFETY: the CPU has AVX-512F (the caller's promise); the lengths are asserted.
-        unsafe { half_rows_avx512(acc, x, inp, panel) };
-        true
-    }
-    fn few_rows() -> usize {
-        #[cfg(target_arch = "x86_64")]
-        if features().avx512f {
-            return HALF_ROWS;
-        }
-        FEW_ROWS
-    }
-    #[cfg(target_arch = "x86_64")]
-    #[inline(always)]
     unsafe fn row_avx512(w: *const H, k: usize) -> [std::arch::x86_64::__m512; 4] {
         // SAFETY: the 64 values of input k are readable, AVX-512F (the caller's promise).
-        let ([a, b], [c, d]) =
-            unsafe { (H::widen32(w.add(k * PANEL)), H::widen32(w.add(k * PANEL + 32))) };
+        let ([a, b], [c, d]) = unsafe {
+            (
+                H::widen32(w.add(k * PANEL)),
+                H::widen32(w.add(k * PANEL + 32)),
+            )
+        };
         [a, b, c, d]
     }
     fn lane_column(v: usize, lane: usize) -> usize {
@@ -223,24 +192,10 @@ pub trait Panels: Sync {
     fn piece<'a>(&'a self, p: usize, k0: usize, k1: usize, buf: &'a mut [f32]) -> &'a [f32];
     /// Calls `f` on panel `p` as f32 values, [inp, 64].
     fn whole(&self, p: usize, f: &mut dyn FnMut(&[f32]));
-    /// Rows up to which a product over this format takes the few-rows loop: [`FEW_ROWS`], or
-    /// [`HALF_ROWS`] for 16-bit weights on AVX-512, whose loop holds more rows.
-    fn few_rows(&self) -> usize {
-        FEW_ROWS
-    }
-    /// The few-rows sums of panel `p` (`acc.len()` rows of `x`) by the format's own loop,
-    /// bit for bit those of [`panel_rows`]'s; false when it has none.
-    ///
-    /// # Safety
-    /// The CPU has AVX-512F.
-    #[cfg(target_arch = "x86_64")]
-    #[inline(always)]
-    unsafe fn rows_avx512(&self, _acc: &mut [[f32; PANEL]], _x: &[f32], _p: usize) -> bool {
-        false
-    }
-    /// The many-rows sums of panel `p` ([`panel_many_avx512`]) read from the stored values;
+    /// The sums of panel `p` for every row of `x` ([`panel_many_avx512`]) read from the
+    /// stored values, at any batch size;    /// The many-rows sums of panel `p` ([`panel_many_avx512`]) read from the stored values;
     /// false when the format has no such loop (the product then gets the panel as f32 from
-    /// [`Panels::whole`]).
+    /// [`Panels::piece`] or [`Panels::whole`]).
     ///
     /// # Safety
     /// The CPU has AVX-512F.
@@ -271,16 +226,6 @@ impl<T: PanelRead> Panels for Stored<'_, T> {
     fn whole(&self, p: usize, f: &mut dyn FnMut(&[f32])) {
         T::as_f32(&self.w[p * self.inp * PANEL..(p + 1) * self.inp * PANEL], f);
     }
-    fn few_rows(&self) -> usize {
-        T::few_rows()
-    }
-    #[cfg(target_arch = "x86_64")]
-    #[inline(always)]
-    unsafe fn rows_avx512(&self, acc: &mut [[f32; PANEL]], x: &[f32], p: usize) -> bool {
-        let panel = &self.w[p * self.inp * PANEL..(p + 1) * self.inp * PANEL];
-        // SAFETY: the caller's promise, passed on.
-        unsafe { T::rows_avx512(panel, acc, x, self.inp) }
-    }
     #[cfg(target_arch = "x86_64")]
     #[inline(always)]
     unsafe fn many_avx512(
@@ -308,14 +253,10 @@ pub fn with_panel_buffer(len: usize, f: impl FnOnce(&mut [f32])) {
     });
 }
 
-/// Rows up to which a product reads each panel once for all rows with the one-row loop
-/// ([`panel_rows`]) instead of [`panel_many`]: small batches, where decoding waits on memory
-/// and the panel is best read once. Either loop sums each row as at batch 1.
+/// Rows up to which a product over f32 pieces (block-quantised panels; any panel without
+/// AVX-512) reads each panel once for all rows with [`panel_rows`] instead of [`panel_many`]:
+/// small batches, where decoding waits on memory. Either loop sums each row as at batch 1.
 pub const FEW_ROWS: usize = 4;
-
-/// [`FEW_ROWS`] for 16-bit weights on AVX-512 ([`half_rows_avx512`]), whose loop widens each
-/// weight once for up to eight rows (two variants' rows at batch 4).
-pub const HALF_ROWS: usize = 8;
 
 /// y[n, out] = x[n, inp] · W over the panels of `w`, one task per panel (see [`matmul`]).
 fn products<W: Panels>(x: &[f32], n: usize, inp: usize, w: &W, out: usize, y: &mut [f32]) {
@@ -327,27 +268,28 @@ fn products<W: Panels>(x: &[f32], n: usize, inp: usize, w: &W, out: usize, y: &m
     let one = |p: usize| {
         let j0 = p * PANEL;
         let width = PANEL.min(out - j0);
-        if n <= w.few_rows() {
-            let mut acc = [[0f32; PANEL]; HALF_ROWS];
-            panel_rows(&mut acc[..n], &x[..n * inp], inp, w, p);
-            for (t, a) in acc[..n].iter().enumerate() {
-                // SAFETY: columns j0..j0 + width of each output row belong to this task.
-                unsafe {
-                    std::ptr::copy_nonoverlapping(a.as_ptr(), yc.get().add(t * out + j0), width);
-                }
-            }
-            return;
-        }
         let mut emit = |t: usize, sums: &[f32; PANEL]| {
             // SAFETY: columns j0..j0 + width of each output row belong to this task, and t < n.
-            unsafe { std::ptr::copy_nonoverlapping(sums.as_ptr(), yc.get().add(t * out + j0), width) };
+            unsafe {
+                std::ptr::copy_nonoverlapping(sums.as_ptr(), yc.get().add(t * out + j0), width)
+            };
         };
         #[cfg(target_arch = "x86_64")]
         // SAFETY: the CPU has AVX-512F (checked first).
         if features().avx512f && unsafe { w.many_avx512(&x[..n * inp], p, &mut emit) } {
             return;
         }
-        w.whole(p, &mut |panel| panel_many(panel, &x[..n * inp], inp, &mut emit));
+        if n <= FEW_ROWS {
+            let mut acc = [[0f32; PANEL]; FEW_ROWS];
+            panel_rows(&mut acc[..n], &x[..n * inp], inp, w, p);
+            for (t, a) in acc[..n].iter().enumerate() {
+                emit(t, a);
+            }
+            return;
+        }
+        w.whole(p, &mut |panel| {
+            panel_many(panel, &x[..n * inp], inp, &mut emit)
+        });
     };
     let panels = out.div_ceil(PANEL);
     if n * inp * out >= PARALLEL_WORK {
@@ -426,11 +368,11 @@ thread_local! {
 }
 
 /// As [`matmul`], with W stored 16-bit in the panel layout and widened inside the product:
-/// bit for bit the result of [`matmul`] on the widened weights. Up to [`FEW_ROWS`] rows widen
-/// each weight in a register just before its multiply and add on AVX-512 ([`half_rows_avx512`]),
-/// or else stream each panel through a small buffer in pieces of [`PIECE_ROWS`] rows; more
-/// rows widen the whole panel once per call (into a per-thread buffer) and run the same
-/// many-rows loop as the f32 product.
+/// bit for bit the result of [`matmul`] on the widened weights. On AVX-512 each weight is
+/// widened in a register just before its multiply-add ([`panel_many_avx512`]); otherwise up
+/// to [`FEW_ROWS`] rows stream each panel through a small buffer in pieces of [`PIECE_ROWS`]
+/// rows, and more rows widen the whole panel once per call (into a per-thread buffer) and run
+/// the same many-rows loop as the f32 product.
 pub fn matmul_half<H: Half>(x: &[f32], n: usize, inp: usize, w: &[H], out: usize, y: &mut [f32]) {
     assert!(w.len() >= panel_len(out, inp));
     products(x, n, inp, &Stored { w, inp }, out, y);
@@ -442,8 +384,7 @@ pub fn matmul_panels<W: Panels>(x: &[f32], n: usize, inp: usize, w: &W, out: usi
     products(x, n, inp, w, out, y);
 }
 
-/// Rows of a panel taken at a time by the few-rows product: an even number (so the pairing of
-/// rows in [`accumulate`] is the one of the whole panel), 8 KB of f32 that stay in the
+/// Rows of a panel taken at a time by the few-rows product: 8 KB of f32 that stay in the
 /// first-level cache.
 pub const PIECE_ROWS: usize = 32;
 
@@ -491,6 +432,10 @@ unsafe fn panel_rows_fma<W: Panels>(
     panel_rows_any(acc, x, inp, w, p);
 }
 
+/// [`panel_rows_any`] compiled for AVX-512.
+///
+/// # Safety
+/// The CPU has AVX-512F.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
 unsafe fn panel_rows_avx512<W: Panels>(
@@ -500,10 +445,6 @@ unsafe fn panel_rows_avx512<W: Panels>(
     w: &W,
     p: usize,
 ) {
-    // SAFETY: the CPU has AVX-512F (this function's promise).
-    if unsafe { w.rows_avx512(acc, x, p) } {
-        return;
-    }
     panel_rows_any(acc, x, inp, w, p);
 }
 
@@ -545,108 +486,6 @@ fn panel_rows_body<W: Panels, const N: usize>(
         k0 = k1;
     }
     acc[..N].copy_from_slice(&sums);
-}
-
-/// [`panel_rows_body`] for a 16-bit panel and up to [`HALF_ROWS`] rows, with each weight
-/// widened in a register just before its multiply-add instead of a piece being widened into a
-/// buffer and read back (a store and a load of every value, in a conversion loop compiled for
-/// the baseline CPU). The sums are the same, in the same order (one chain of fused
-/// multiply-adds per row and output, in input order), so the result is bit for bit that of the
-/// f32 product over the widened panel (tested below), and each row's that of the row alone.
-///
-/// The panel is walked in spans of [`HALF_SPAN`] inputs; in each, the 32 columns of each half
-/// of the panel, and the rows four at a time, so that one pass keeps at most 8 sums, 2 weight
-/// vectors and an input in registers, and the span's weights are still in the first-level
-/// cache when the next pass reads them.
-///
-/// # Safety
-/// The CPU has AVX-512F; `panel` holds inp·64 values, `x` acc.len()·inp, and acc.len() ≤
-/// [`HALF_ROWS`].
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx512f")]
-unsafe fn half_rows_avx512<H: Half>(acc: &mut [[f32; PANEL]], x: &[f32], inp: usize, panel: &[H]) {
-    use std::arch::x86_64::*;
-    let n = acc.len();
-    debug_assert!(n <= HALF_ROWS && panel.len() >= inp * PANEL && x.len() >= n * inp);
-    // Sums per row, half of the panel and vector: [row][half][vector].
-    let mut sums = [[[_mm512_setzero_ps(); 2]; 2]; HALF_ROWS];
-    let mut k0 = 0;
-    while k0 < inp {
-        let k1 = (k0 + HALF_SPAN).min(inp);
-        for half in 0..2 {
-            let mut t0 = 0;
-            while t0 < n {
-                let rows = (n - t0).min(4);
-                let group = &mut sums[t0..t0 + rows];
-                let xs = &x[t0 * inp..(t0 + rows) * inp];
-                // SAFETY: as this function's.
-                unsafe {
-                    match rows {
-                        1 => half_pass::<H, 1>(group, xs, inp, panel, half, k0, k1),
-                        2 => half_pass::<H, 2>(group, xs, inp, panel, half, k0, k1),
-                        3 => half_pass::<H, 3>(group, xs, inp, panel, half, k0, k1),
-                        _ => half_pass::<H, 4>(group, xs, inp, panel, half, k0, k1),
-                    }
-                }
-                t0 += rows;
-            }
-        }
-        k0 = k1;
-    }
-    for (t, row) in acc.iter_mut().enumerate() {
-        for half in 0..2 {
-            for v in 0..2 {
-                let mut sum = [0f32; 16];
-                // SAFETY: `sum` holds 16 values.
-                unsafe { _mm512_storeu_ps(sum.as_mut_ptr(), sums[t][half][v]) };
-                for (lane, s) in sum.into_iter().enumerate() {
-                    row[32 * half + H::column(v, lane)] = s;
-                }
-            }
-        }
-    }
-}
-
-/// Inputs per span of [`half_rows_avx512`]: 8 KB of bf16 weights.
-const HALF_SPAN: usize = 64;
-
-/// One pass of [`half_rows_avx512`]: inputs k0..k1 of columns 32·half..32·half + 32 into the
-/// sums of N rows ([row][half][vector]).
-///
-/// # Safety
-/// As [`half_rows_avx512`]; k1 ≤ inp, and `x` holds N·inp values.
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx512f")]
-unsafe fn half_pass<H: Half, const N: usize>(
-    sums: &mut [[[std::arch::x86_64::__m512; 2]; 2]],
-    x: &[f32],
-    inp: usize,
-    panel: &[H],
-    half: usize,
-    k0: usize,
-    k1: usize,
-) {
-    use std::arch::x86_64::*;
-    debug_assert!(sums.len() == N && k1 <= inp && panel.len() >= inp * PANEL);
-    let w = panel.as_ptr();
-    let mut s = [[_mm512_setzero_ps(); 2]; N];
-    for (t, s) in s.iter_mut().enumerate() {
-        *s = sums[t][half];
-    }
-    for k in k0..k1 {
-        // SAFETY: k < k1 ≤ inp, so row k of the panel, 64 values at w + 64k, is readable and
-        // so are its 32 values from 32·half; AVX-512F is this function's promise.
-        let wk = unsafe { H::widen32(w.add(k * PANEL + 32 * half)) };
-        for (t, s) in s.iter_mut().enumerate() {
-            let xt = _mm512_set1_ps(x[t * inp + k]);
-            for (s, wv) in s.iter_mut().zip(wk) {
-                *s = _mm512_fmadd_ps(xt, wv, *s);
-            }
-        }
-    }
-    for (t, s) in s.into_iter().enumerate() {
-        sums[t][half] = s;
-    }
 }
 
 /// Rows of a batch that [`panel_many`] takes through a panel together: their sums (24 rows of
@@ -934,11 +773,11 @@ mod tests {
     /// Every batch size sums every row as the scalar loop above does, so a row's result is
     /// bit for bit the one it gets alone (which is what lets rows of several model variants
     /// share a step, and a batch change nothing in any answer): f32, bf16 and f16, the
-    /// few-rows loop (1-4 rows, 8 for 16-bit on AVX-512), the many-rows loop (groups of up to
-    /// 24 rows in passes of up to 6, a partial last group, spans of 64 inputs and a partial
-    /// last span), partial panels, one task and the pool. Values spread over several binades,
-    /// so that a product rounded before its add differs from the fused one (checked: the
-    /// unfused loop fails).
+    /// many-rows loop (groups of up to 24 rows in passes of up to 6, a partial last group,
+    /// spans of 64 inputs and a partial last span) and the portable few-rows loop over f32
+    /// pieces (what block-quantised panels and CPUs without AVX-512 use), partial panels, one
+    /// task and the pool. Values spread over several binades, so that a product rounded before
+    /// its add differs from the fused one (checked: the unfused loop fails).
     #[test]
     fn every_batch_sums_each_row_in_the_documented_order() {
         for (n, inp, out) in [
@@ -966,6 +805,23 @@ mod tests {
             matmul(&x, n, inp, &pack_panels(&raw, out, inp), out, &mut got);
             let want = documented_sums(&x, n, inp, &raw, out);
             assert_eq!(bits(&got), bits(&want), "f32 n {n} inp {inp} out {out}");
+            // The portable few-rows loop, panel by panel, up to four rows at a time.
+            let wp = pack_panels(&raw, out, inp);
+            let stored = Stored { w: &wp, inp };
+            for t0 in (0..n).step_by(FEW_ROWS) {
+                let rows = (n - t0).min(FEW_ROWS);
+                for p in 0..out.div_ceil(PANEL) {
+                    let mut acc = [[0f32; PANEL]; FEW_ROWS];
+                    let xs = &x[t0 * inp..(t0 + rows) * inp];
+                    panel_rows_any(&mut acc[..rows], xs, inp, &stored, p);
+                    for (t, a) in acc[..rows].iter().enumerate() {
+                        let cols = p * PANEL..(p * PANEL + PANEL).min(out);
+                        let w0 = (t0 + t) * out;
+                        let want_cols = &want[w0 + cols.start..w0 + cols.end];
+                        assert_eq!(bits(&a[..cols.len()]), bits(want_cols), "portable n {n}");
+                    }
+                }
+            }
             let mut bp = vec![half::bf16::ZERO; panel_len(out, inp)];
             pack_panels_into(&b, out, inp, &mut bp, 0);
             matmul_half(&x, n, inp, &bp, out, &mut got);
