@@ -2,7 +2,7 @@
 # Speed of the f32 matrix product every linear layer runs (examples/product_speed.rs), at the
 # batch sizes of decoding (1-32 rows) and of a prompt step (100 rows), on a 1024 × 4096 and a
 # 4096 × 1024 matrix (16 MB: the shapes of the 0.5B-class benchmark model's feed-forward
-# layers), next to the f32 fused multiply-add peak of this machine (bench/peer/fma_peak.c),
+# layers) and a 1024 × 16384 one (64 MB, beyond the caches), next to the f32 fused multiply-add peak of this machine (bench/peer/fma_peak.c),
 # all in this one run.
 #
 #   bench/kernels.sh                       # this build, 2 threads
@@ -18,7 +18,7 @@ trap 'rm -rf "$work"' EXIT
 gcc -O3 -march=native -fopenmp "$here/peer/fma_peak.c" -o "$work/fma_peak"
 echo "$(date -u +%FT%TZ) load: $(cut -d' ' -f1-3 /proc/loadavg); f32 fused multiply-add peak ($threads threads): $(OMP_NUM_THREADS="$threads" "$work/fma_peak")"
 for rows in ${ROWS:-1 4 16 32 100}; do
-  for shape in "1024 4096" "4096 1024"; do
+  for shape in "1024 4096" "4096 1024" "1024 16384"; do
     calls=$((rows >= 16 ? 50 : 200))
     for bin in ${BEFORE:-} "$root/target/release/examples/product_speed"; do
       echo "$(RAYON_NUM_THREADS="$threads" "$bin" "$rows" $shape "$calls")  $bin"
