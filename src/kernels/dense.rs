@@ -14,10 +14,10 @@
 //! Every output is summed the same way whatever the batch: for each row and output column, one
 //! chain over the inputs in order, from zero, each step a fused multiply-add (x·w + sum rounded
 //! once, IEEE 754 `fusedMultiplyAdd`). A loop keeps many outputs' chains going at once (64
-//! columns of up to six rows), so no step waits on the one before. Each output is computed by one task, so results do not depend on the thread count, and
-//! a row's result does not depend on the other rows of its batch: the decoder's batched output
-//! equals its batch-1 output bit for bit, and rows of several model variants can share one
-//! step. Where the CPU has no fused multiply-add instruction, `f32::mul_add` computes the same
+//! columns of up to six rows), so no step waits on the one before. Each output is computed by
+//! one task, so results do not depend on the thread count, and a row's result does not depend
+//! on the other rows of its batch: the decoder's batched output equals its batch-1 output bit
+//! for bit, and rows of several model variants can share one step. Where the CPU has no fused multiply-add instruction, `f32::mul_add` computes the same
 //! value in software (slowly), so the result does not depend on the CPU either.
 //!
 //! Checkpoints stored in bf16 or f16 keep their weights 16-bit in the same panel layout
@@ -193,9 +193,8 @@ pub trait Panels: Sync {
     /// Calls `f` on panel `p` as f32 values, [inp, 64].
     fn whole(&self, p: usize, f: &mut dyn FnMut(&[f32]));
     /// The sums of panel `p` for every row of `x` ([`panel_many_avx512`]) read from the
-    /// stored values, at any batch size;    /// The many-rows sums of panel `p` ([`panel_many_avx512`]) read from the stored values;
-    /// false when the format has no such loop (the product then gets the panel as f32 from
-    /// [`Panels::piece`] or [`Panels::whole`]).
+    /// stored values, at any batch size; false when the format has no such loop (the product
+    /// then gets the panel as f32 from [`Panels::piece`] or [`Panels::whole`]).
     ///
     /// # Safety
     /// The CPU has AVX-512F.
@@ -262,6 +261,11 @@ pub const FEW_ROWS: usize = 4;
 fn products<W: Panels>(x: &[f32], n: usize, inp: usize, w: &W, out: usize, y: &mut [f32]) {
     assert!(x.len() >= n * inp && y.len() >= n * out);
     if n == 0 || out == 0 {
+        return;
+    }
+    if inp == 0 {
+        // Empty sums.
+        y[..n * out].fill(0.0);
         return;
     }
     let yc = Columns(y.as_mut_ptr());
@@ -775,14 +779,16 @@ mod tests {
     /// share a step, and a batch change nothing in any answer): f32, bf16 and f16, the
     /// many-rows loop (groups of up to 24 rows in passes of up to 6, a partial last group,
     /// spans of 64 inputs and a partial last span) and the portable few-rows loop over f32
-    /// pieces (what block-quantised panels and CPUs without AVX-512 use), partial panels, one
-    /// task and the pool. Values spread over several binades, so that a product rounded before
-    /// its add differs from the fused one (checked: the unfused loop fails).
+    /// pieces (what block-quantised panels and CPUs without AVX-512 use), partial panels, no
+    /// inputs at all, one task and the pool. Values spread over several binades, so that a
+    /// product rounded before its add differs from the fused one (checked: the unfused loop
+    /// fails).
     #[test]
     fn every_batch_sums_each_row_in_the_documented_order() {
         for (n, inp, out) in [
             (1, 37, 5),
             (2, 37, 5),
+            (3, 0, 5),
             (3, 301, 150),
             (4, 64, 64),
             (4, 2048, 300),
