@@ -72,42 +72,30 @@ def permute(w, n_head):
     return w.reshape(n_head, 2, w.shape[0] // n_head // 2, *w.shape[1:]).swapaxes(1, 2).reshape(w.shape)
 
 
-def q4k_blocks(rows, cols, rng):
-    """Seeded random q4_k blocks: random codes and 6-bit scales, f16 d and dmin."""
-    block, size = gguf.GGML_QUANT_SIZES[Q.Q4_K]
+def k_blocks(t, rows, cols, rng):
+    """Seeded random blocks of the k-quant type t (q3_k, q4_k, q5_k or q6_k): random codes,
+    high-bit masks and packed 6-bit scales, then the fields that need sizes of their own: the
+    f16 d (and dmin), around values giving weights of about the checkpoint's size, and q6_k's
+    8-bit scales in -32..31."""
+    block, size = gguf.GGML_QUANT_SIZES[t]
     n = rows * cols // block
     b = rng.integers(0, 256, size=(n, size), dtype=np.uint8)
-    half = lambda base: (base * rng.uniform(0.5, 1.5, size=n)).astype(np.float16).view(np.uint8).reshape(n, 2)  # noqa: E731
-    b[:, 0:2], b[:, 2:4] = half(0.06 / 945), half(0.03 / 63)
-    return b.reshape(rows, cols // block * size)
 
+    def f16(base):
+        """n f16 values between 0.5 and 1.5 times base, as their bytes."""
+        return (base * rng.uniform(0.5, 1.5, size=n)).astype(np.float16).view(np.uint8).reshape(n, 2)
 
-def q6k_blocks(rows, cols, rng):
-    """Seeded random q6_k blocks: random codes, 8-bit scales in -32..31, f16 d."""
-    block, size = gguf.GGML_QUANT_SIZES[Q.Q6_K]
-    n = rows * cols // block
-    b = rng.integers(0, 256, size=(n, size), dtype=np.uint8)
-    b[:, 192:208] = rng.integers(-32, 32, size=(n, 16), dtype=np.int8).view(np.uint8)
-    b[:, 208:210] = (0.02 / 32 / 16 * rng.uniform(0.5, 1.5, size=n)).astype(np.float16).view(np.uint8).reshape(n, 2)
-    return b.reshape(rows, cols // block * size)
-
-
-def q3k_blocks(rows, cols, rng):
-    """Seeded random q3_k blocks: random codes, high-bit masks and 6-bit scales, f16 d."""
-    block, size = gguf.GGML_QUANT_SIZES[Q.Q3_K]
-    n = rows * cols // block
-    b = rng.integers(0, 256, size=(n, size), dtype=np.uint8)
-    b[:, 108:110] = (0.02 / 32 / 4 * rng.uniform(0.5, 1.5, size=n)).astype(np.float16).view(np.uint8).reshape(n, 2)
-    return b.reshape(rows, cols // block * size)
-
-
-def q5k_blocks(rows, cols, rng):
-    """Seeded random q5_k blocks: random codes and 6-bit scales, f16 d and dmin."""
-    block, size = gguf.GGML_QUANT_SIZES[Q.Q5_K]
-    n = rows * cols // block
-    b = rng.integers(0, 256, size=(n, size), dtype=np.uint8)
-    half = lambda base: (base * rng.uniform(0.5, 1.5, size=n)).astype(np.float16).view(np.uint8).reshape(n, 2)  # noqa: E731
-    b[:, 0:2], b[:, 2:4] = half(0.06 / 1953), half(0.03 / 63)
+    if t == Q.Q4_K:
+        b[:, 0:2], b[:, 2:4] = f16(0.06 / 945), f16(0.03 / 63)
+    elif t == Q.Q5_K:
+        b[:, 0:2], b[:, 2:4] = f16(0.06 / 1953), f16(0.03 / 63)
+    elif t == Q.Q6_K:
+        b[:, 192:208] = rng.integers(-32, 32, size=(n, 16), dtype=np.int8).view(np.uint8)
+        b[:, 208:210] = f16(0.02 / 32 / 16)
+    elif t == Q.Q3_K:
+        b[:, 108:110] = f16(0.02 / 32 / 4)
+    else:
+        raise ValueError(f"not a k-quant type written here: {t!r}")
     return b.reshape(rows, cols // block * size)
 
 
@@ -191,7 +179,6 @@ def main():
     q4 = gguf_writer(a.out / "random-05b-q4_k.gguf.tmp", eos)
     q4m = gguf_writer(a.out / "random-05b-q4_k_m.gguf.tmp", eos)
     q3m = gguf_writer(a.out / "random-05b-q3_k_m.gguf.tmp", eos)
-    make = {Q.Q3_K: q3k_blocks, Q.Q4_K: q4k_blocks, Q.Q5_K: q5k_blocks}
     rng, codes = np.random.default_rng(a.seed), np.random.default_rng(a.seed + 1)
     h, d = S["hidden"], S["hidden"] // S["heads"]
     for hf, name, shape in layout:
@@ -213,14 +200,14 @@ def main():
             q4m.add_tensor(name, q, raw_dtype=Q.Q8_0)
             q3m.add_tensor(name, q, raw_dtype=Q.Q8_0)
             continue
-        q4.add_tensor(name, q4k_blocks(shape[0], shape[1], codes), raw_dtype=Q.Q4_K)
+        q4.add_tensor(name, k_blocks(Q.Q4_K, shape[0], shape[1], codes), raw_dtype=Q.Q4_K)
         layer = int(name.split(".")[1])
         if name.endswith(("attn_v.weight", "ffn_down.weight")) and more_bits(layer):
-            q4m.add_tensor(name, q6k_blocks(shape[0], shape[1], codes), raw_dtype=Q.Q6_K)
+            q4m.add_tensor(name, k_blocks(Q.Q6_K, shape[0], shape[1], codes), raw_dtype=Q.Q6_K)
         else:
-            q4m.add_tensor(name, q4k_blocks(shape[0], shape[1], codes), raw_dtype=Q.Q4_K)
+            q4m.add_tensor(name, k_blocks(Q.Q4_K, shape[0], shape[1], codes), raw_dtype=Q.Q4_K)
         t = q3k_m_type(name, layer)
-        q3m.add_tensor(name, make[t](shape[0], shape[1], codes), raw_dtype=t)
+        q3m.add_tensor(name, k_blocks(t, shape[0], shape[1], codes), raw_dtype=t)
     f32.close()
     b16.close()
     for w, t in [(q8, "q8_0"), (q4, "q4_k"), (q4m, "q4_k_m"), (q3m, "q3_k_m")]:
