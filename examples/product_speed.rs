@@ -11,15 +11,9 @@ use liftgate::kernels::dense::{matmul, pack_panels_into, panel_len};
 use std::time::Instant;
 
 fn main() {
-    let args: Vec<usize> = std::env::args()
-        .skip(1)
-        .map(|a| {
-            a.parse()
-                .expect("ROWS INPUTS OUTPUTS CALLS, each a whole number")
-        })
-        .collect();
-    let [n, inp, out, calls] = args[..] else {
-        eprintln!("usage: product_speed ROWS INPUTS OUTPUTS CALLS");
+    let args: Option<Vec<usize>> = std::env::args().skip(1).map(|a| a.parse().ok()).collect();
+    let Some([n, inp, out, calls]) = args.and_then(|a| <[usize; 4]>::try_from(a).ok()) else {
+        eprintln!("usage: product_speed ROWS INPUTS OUTPUTS CALLS (four whole numbers)");
         std::process::exit(2);
     };
     let w: Vec<f32> = (0..out * inp)
