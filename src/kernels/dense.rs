@@ -553,40 +553,94 @@ unsafe fn panel_many_avx512<T: PanelRead>(
     inp: usize,
     emit: &mut dyn FnMut(usize, &[f32; PANEL]),
 ) {
+    debug_assert!(panel.len() >= inp * PANEL);
+    // Every span is read where it is stored; the first pass over a span fetches the next span
+    // ahead of its use.
+    let mut span = |_k0: usize, k1: usize| (panel.as_ptr(), (k1 + MANY_SPAN).min(inp) - k1);
+    // SAFETY: as this function's; `span` gives the panel itself, which holds every input.
+    unsafe { many_rows_avx512::<T>(x, inp, MANY_GROUP, emit, &mut span) };
+}
+
+/// Rows up to which [`panel_many_spans_avx512`] takes a batch through each span in one group
+/// (their sums, 16 KB, and the span, 16 KB, fit the first-level cache together), so each span
+/// is written out once.
+pub const SPAN_ROWS: usize = 64;
+
+/// [`panel_many_avx512`] over a panel that is not stored as f32 or 16-bit values (GGUF blocks),
+/// for at most [`SPAN_ROWS`] rows: `fill(k0, k1, buf)` writes inputs k0..k1 of the panel as f32
+/// values into `buf` ([k1 - k0, 64]), one span of [`MANY_SPAN`] inputs at a time (k0 a multiple
+/// of it), and every row passes over it while it is in the first-level cache, so the f32
+/// values of the whole panel are never written out. Each row is summed exactly as over the
+/// whole panel in f32.
+///
+/// # Safety
+/// The CPU has AVX-512F; `x` holds a whole number of rows of `inp`, at most [`SPAN_ROWS`];
+/// `fill` writes every value of the span it is asked for.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+pub(super) unsafe fn panel_many_spans_avx512(
+    x: &[f32],
+    inp: usize,
+    emit: &mut dyn FnMut(usize, &[f32; PANEL]),
+    fill: &mut dyn FnMut(usize, usize, &mut [f32]),
+) {
+    let mut buf = [0f32; MANY_SPAN * PANEL];
+    let mut span = |k0: usize, k1: usize| {
+        fill(k0, k1, &mut buf[..(k1 - k0) * PANEL]);
+        // Input k of the span at buf + 64(k - k0); nothing to fetch ahead.
+        (buf.as_ptr().wrapping_sub(k0 * PANEL), 0)
+    };
+    // SAFETY: as this function's; `span` gives inputs k0..k1 at base + 64k, inside `buf`.
+    unsafe { many_rows_avx512::<f32>(x, inp, SPAN_ROWS, emit, &mut span) };
+}
+
+/// The loops of [`panel_many_avx512`], rows in groups of at most `most` (≤ [`SPAN_ROWS`]);
+/// `span(k0, k1)` gives `(base, ahead)`: input k's 64 values (k0 ≤ k < k1) at base + 64k, and
+/// how many inputs from k1 on may be prefetched from there during the first pass.
+///
+/// # Safety
+/// The CPU has AVX-512F; `x` holds a whole number of rows of `inp`; the inputs `span` promises
+/// are readable until it is called again.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn many_rows_avx512<T: PanelRead>(
+    x: &[f32],
+    inp: usize,
+    most: usize,
+    emit: &mut dyn FnMut(usize, &[f32; PANEL]),
+    span: &mut dyn FnMut(usize, usize) -> (*const T, usize),
+) {
     use std::arch::x86_64::*;
+    assert!(inp > 0 && x.len().is_multiple_of(inp) && (1..=SPAN_ROWS).contains(&most));
     let n = x.len() / inp;
-    let mut sums: [RowSums; MANY_GROUP] = [[_mm512_setzero_ps(); 4]; MANY_GROUP];
+    let mut sums: [RowSums; SPAN_ROWS] = [[_mm512_setzero_ps(); 4]; SPAN_ROWS];
     // Rows are dealt out evenly, to groups and within a group to passes (32 rows: two groups
     // of 16, each three passes of 6, 5 and 5), so no pass is left with one or two rows, which
     // would load each weight vector for too few multiply-adds.
     let even_share = |left: usize, most: usize| left.div_ceil(left.div_ceil(most));
     let mut g0 = 0;
     while g0 < n {
-        let rows = even_share(n - g0, MANY_GROUP);
+        let rows = even_share(n - g0, most);
         sums[..rows].fill([_mm512_setzero_ps(); 4]);
         let mut k0 = 0;
         while k0 < inp {
             let k1 = (k0 + MANY_SPAN).min(inp);
+            let (w, ahead) = span(k0, k1);
             let mut t = 0;
             while t < rows {
                 let take = even_share(rows - t, 6);
                 let group = &mut sums[t..t + take];
                 let xs = &x[(g0 + t) * inp..(g0 + t + take) * inp];
-                // The first pass over a span fetches the next span ahead of its use.
-                let ahead = if t == 0 {
-                    (k1..(k1 + MANY_SPAN).min(inp)).len()
-                } else {
-                    0
-                };
-                // SAFETY: as this function's; k1 ≤ inp, k1 + ahead ≤ inp.
+                let ahead = if t == 0 { ahead } else { 0 };
+                // SAFETY: as this function's; inputs k0..k1, and `ahead` from k1, at w.
                 unsafe {
                     match take {
-                        1 => many_pass::<T, 1>(group, xs, inp, panel, k0, k1, ahead),
-                        2 => many_pass::<T, 2>(group, xs, inp, panel, k0, k1, ahead),
-                        3 => many_pass::<T, 3>(group, xs, inp, panel, k0, k1, ahead),
-                        4 => many_pass::<T, 4>(group, xs, inp, panel, k0, k1, ahead),
-                        5 => many_pass::<T, 5>(group, xs, inp, panel, k0, k1, ahead),
-                        _ => many_pass::<T, 6>(group, xs, inp, panel, k0, k1, ahead),
+                        1 => many_pass::<T, 1>(group, xs, inp, w, k0, k1, ahead),
+                        2 => many_pass::<T, 2>(group, xs, inp, w, k0, k1, ahead),
+                        3 => many_pass::<T, 3>(group, xs, inp, w, k0, k1, ahead),
+                        4 => many_pass::<T, 4>(group, xs, inp, w, k0, k1, ahead),
+                        5 => many_pass::<T, 5>(group, xs, inp, w, k0, k1, ahead),
+                        _ => many_pass::<T, 6>(group, xs, inp, w, k0, k1, ahead),
                     }
                 }
                 t += take;
@@ -609,25 +663,27 @@ unsafe fn panel_many_avx512<T: PanelRead>(
     }
 }
 
-/// One pass of [`panel_many_avx512`]: inputs k0..k1 of the panel into the sums of N rows, and
-/// a prefetch of the `ahead` panel rows from k1 (spread over the pass).
+/// One pass of [`panel_many_avx512`]: inputs k0..k1 of the panel at `w` (input k at w + 64k)
+/// into the sums of N rows, and a prefetch of the `ahead` inputs from k1 (spread over the
+/// pass).
 ///
 /// # Safety
-/// The CPU has AVX-512F; k1 + ahead ≤ inp, `panel` holds inp·64 values and `x` N·inp.
+/// The CPU has AVX-512F; inputs k0..k1 are readable at `w`, k1 + ahead ≤ inp, and `x` holds
+/// N·inp values.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
 unsafe fn many_pass<T: PanelRead, const N: usize>(
     sums: &mut [RowSums],
     x: &[f32],
     inp: usize,
-    panel: &[T],
+    w: *const T,
     k0: usize,
     k1: usize,
     ahead: usize,
 ) {
     use std::arch::x86_64::*;
-    debug_assert!(sums.len() == N && k1 <= inp && panel.len() >= inp * PANEL && x.len() >= N * inp);
-    let (w, xp) = (panel.as_ptr(), x.as_ptr());
+    debug_assert!(sums.len() == N && k1 + ahead <= inp && x.len() >= N * inp);
+    let xp = x.as_ptr();
     let mut s = [[_mm512_setzero_ps(); 4]; N];
     s.copy_from_slice(sums);
     for k in k0..k1 {
@@ -635,12 +691,12 @@ unsafe fn many_pass<T: PanelRead, const N: usize>(
             // The 64 values of input k1 + k - k0: one cache line per 16 bytes of a value.
             let next = w.wrapping_add((k1 + k - k0) * PANEL).cast::<u8>();
             for line in 0..size_of::<T>() {
-                // SAFETY: input k1 + k - k0 < k1 + ahead ≤ inp is inside the panel; a prefetch
-                // reads nothing into the program.
+                // SAFETY: a prefetch reads nothing into the program (and input
+                // k1 + k - k0 < k1 + ahead is inside the panel).
                 unsafe { _mm_prefetch::<_MM_HINT_T0>(next.add(64 * line).cast()) };
             }
         }
-        // SAFETY: k < k1 ≤ inp; AVX-512F is this function's promise.
+        // SAFETY: input k (k0 ≤ k < k1) is readable at w; AVX-512F is this function's promise.
         let wk = unsafe { T::row_avx512(w, k) };
         for (t, s) in s.iter_mut().enumerate() {
             // SAFETY: t < N and k < inp, so t·inp + k < N·inp ≤ x.len().

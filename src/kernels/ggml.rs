@@ -38,7 +38,9 @@
 //!   w = (d · sc) · (q − 32).
 //! - `f32`, `f16`, `bf16`: one value each, widened exactly.
 
-use super::dense::{with_panel_buffer, Panels, PANEL, PIECE_ROWS};
+#[cfg(target_arch = "x86_64")]
+use super::dense::panel_many_spans_avx512;
+use super::dense::{with_panel_buffer, Panels, PANEL, PIECE_ROWS, SPAN_ROWS};
 #[cfg(target_arch = "x86_64")]
 use super::simd::features;
 use half::f16;
@@ -1280,6 +1282,37 @@ impl Panels for GgmlMatrix {
             f(buf);
         });
     }
+
+    /// A regrouped panel's product of a batch (up to [`SPAN_ROWS`] rows) on AVX-512: each span
+    /// of the panel is dequantised once into a buffer that stays in the first-level cache while
+    /// the rows pass over it, with the bytes of the next span prefetched (the same values as
+    /// [`Panels::whole`] gives, so the same sums). Panels of stored rows, and prompt steps of
+    /// more rows, keep the whole-panel path, which dequantises the panel once for all rows.
+    #[cfg(target_arch = "x86_64")]
+    #[inline(always)]
+    unsafe fn many_avx512(
+        &self,
+        x: &[f32],
+        p: usize,
+        emit: &mut dyn FnMut(usize, &[f32; PANEL]),
+    ) -> bool {
+        let panel = match self.panels.get(p) {
+            Some(Panel::Rows(_)) | None => return false,
+            Some(_) if x.len() > SPAN_ROWS * self.inp => return false,
+            Some(panel) => panel,
+        };
+        let groups = self.inp / GROUP;
+        let mut fill = |k0: usize, k1: usize, buf: &mut [f32]| {
+            for g in k1 / GROUP..(2 * k1 - k0).div_ceil(GROUP).min(groups) {
+                panel.prefetch_group(g);
+            }
+            regrouped_piece(panel, k0, k1, buf);
+        };
+        // SAFETY: the CPU has AVX-512F (the caller's promise); `x` holds whole rows (the
+        // product's); `fill` writes every value of inputs k0..k1 (`regrouped_piece`).
+        unsafe { panel_many_spans_avx512(x, self.inp, emit, &mut fill) };
+        true
+    }
 }
 
 #[cfg(test)]
@@ -1548,6 +1581,20 @@ pub(super) mod tests {
             // Regrouped panels of the 2-bit and 3-bit k-quants, likewise.
             (1, 512, vec![(GgmlType::Q2K, 64), (GgmlType::Q3K, 64)]),
             (9, 256, vec![(GgmlType::Q3K, 128), (GgmlType::Q2K, 70)]),
+            // Batches read span by span (up to SPAN_ROWS rows in one group; a last span of 32
+            // inputs when the inputs are not a multiple of 64) and a prompt step past them
+            // (the whole-panel path): the same sums.
+            (33, 96, vec![(GgmlType::Q8_0, 70)]),
+            (
+                SPAN_ROWS,
+                160,
+                vec![(GgmlType::Q4_1, 64), (GgmlType::Q5_0, 64)],
+            ),
+            (
+                SPAN_ROWS + 1,
+                256,
+                vec![(GgmlType::Q4K, 64), (GgmlType::Q6K, 64)],
+            ),
         ] {
             let mut m = GgmlMatrix::new(inp);
             let mut dense = Vec::new();

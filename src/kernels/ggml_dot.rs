@@ -1,19 +1,20 @@
-//! The batch-1 product over a GGUF matrix ([`GgmlMatrix`]) with the dequantisation inside the
-//! loop of multiply-adds.
+//! The product of one to four rows over a GGUF matrix ([`GgmlMatrix`]) with the dequantisation
+//! inside the loop of multiply-adds.
 //!
 //! [`crate::kernels::dense`]'s products read a block-quantised panel through the `Panels` seam:
-//! 32 inputs of the panel are dequantised into a buffer, then the buffer is multiplied and
-//! added into the sums. At batch 1 that costs a store and a load of every f32 value on top of
+//! inputs of the panel are dequantised into a buffer, then the buffer is multiplied and added
+//! into the sums. For a few rows that costs a store and a load of every f32 value on top of
 //! the arithmetic, and the arithmetic, not memory, limits a core (two cores decode a q8_0 file
 //! at about half the triad bandwidth that way). Here each input's 64 values are computed into
-//! registers ([`GroupRows::row`]) and multiplied into the sums at once.
+//! registers ([`GroupRows::row`]) and multiplied into every row's sums at once (measured with
+//! `bench/kernels.sh`: about 1.25-1.45x the seam's rate at two and four rows).
 //!
 //! The sums are those of `dense`'s products, in the same order: for each output lane, one chain
 //! over the inputs in order, each step a fused multiply-add. So this product is bit for bit
 //! `dense::matmul_panels` over the same matrix (tested below), whatever the thread count, and
 //! a row's answers do not depend on its batch.
 
-use super::dense::{matmul_panels, panel_rows, PANEL};
+use super::dense::{matmul_panels, panel_rows, FEW_ROWS, PANEL};
 use super::ggml::{GgmlMatrix, GroupRows, GroupVisitor, Panel, GROUP};
 #[cfg(target_arch = "x86_64")]
 use super::simd::features;
@@ -25,32 +26,42 @@ use rayon::prelude::*;
 const AHEAD: usize = 2;
 
 impl GgmlMatrix {
-    /// y[n, out] = x[n, inp] · Wᵀ, bit for bit [`matmul_panels`] over this matrix. One row
-    /// (batch-1 decoding) runs the fused loop of this module, one task per panel; more rows
-    /// go through [`matmul_panels`].
+    /// y[n, out] = x[n, inp] · Wᵀ, bit for bit [`matmul_panels`] over this matrix. Up to
+    /// [`FEW_ROWS`] rows (decoding one to four answers at a time) run the fused loop of this
+    /// module, one task per panel; more rows go through [`matmul_panels`].
     pub fn matmul(&self, x: &[f32], n: usize, y: &mut [f32]) {
-        if n != 1 {
+        if n == 0 || n > FEW_ROWS {
             return matmul_panels(x, n, self.inp, self, self.out, y);
         }
         let (inp, out) = (self.inp, self.out);
-        assert!(x.len() >= inp && y.len() >= out);
-        let x = &x[..inp];
-        let one = |(p, yp): (usize, &mut [f32])| {
-            let mut acc = [0f32; PANEL];
-            self.panel_dot(p, x, &mut acc);
-            yp.copy_from_slice(&acc[..yp.len()]);
+        assert!(x.len() >= n * inp && y.len() >= n * out);
+        let x = &x[..n * inp];
+        let yc = Columns(y.as_mut_ptr());
+        let one = |p: usize| {
+            let mut acc = [[0f32; PANEL]; FEW_ROWS];
+            self.panel_dot(p, x, &mut acc[..n]);
+            let (j0, width) = (p * PANEL, PANEL.min(out - p * PANEL));
+            for (t, a) in acc[..n].iter().enumerate() {
+                // SAFETY: columns j0..j0 + width of each output row belong to this task, and
+                // t < n, so t·out + j0 + width ≤ n·out ≤ y.len() (asserted).
+                unsafe {
+                    std::ptr::copy_nonoverlapping(a.as_ptr(), yc.get().add(t * out + j0), width)
+                };
+            }
         };
-        if inp * out >= PARALLEL_WORK {
-            y[..out].par_chunks_mut(PANEL).enumerate().for_each(one);
+        let panels = out.div_ceil(PANEL);
+        if n * inp * out >= PARALLEL_WORK {
+            (0..panels).into_par_iter().for_each(one);
         } else {
-            y[..out].chunks_mut(PANEL).enumerate().for_each(one);
+            (0..panels).for_each(one);
         }
     }
 
-    /// acc[l] = Σₖ x[k]·W[64p + l][k], summed as `dense`'s few-rows loop sums one row.
-    fn panel_dot(&self, p: usize, x: &[f32], acc: &mut [f32; PANEL]) {
+    /// acc[t][l] = Σₖ x[t·inp + k]·W[64p + l][k] for the acc.len() ≤ [`FEW_ROWS`] rows of `x`,
+    /// each summed as `dense`'s few-rows loop sums one row.
+    fn panel_dot(&self, p: usize, x: &[f32], acc: &mut [[f32; PANEL]]) {
         match self.panels.get(p) {
-            Some(Panel::Rows(_)) | None => self.stored_dot(p, x, acc),
+            Some(Panel::Rows(_)) | None => panel_rows(acc, x, self.inp, self, p),
             Some(panel) => {
                 #[cfg(target_arch = "x86_64")]
                 if features().avx512f {
@@ -65,17 +76,27 @@ impl GgmlMatrix {
                     unsafe { regrouped_dot_fma(panel, x, acc) };
                     return;
                 }
-                regrouped_dot::<false>(panel, None, x, acc);
+                regrouped_dot_rows::<false>(panel, None, x, acc);
             }
         }
     }
+}
 
-    /// [`GgmlMatrix::panel_dot`] for a panel of stored rows: `dense`'s few-rows loop over the
-    /// values dequantised value by value, 32 inputs at a time.
-    fn stored_dot(&self, p: usize, x: &[f32], acc: &mut [f32; PANEL]) {
-        panel_rows(std::slice::from_mut(acc), x, self.inp, self, p);
+/// A pointer to the output of [`GgmlMatrix::matmul`], shared by tasks that write disjoint
+/// columns.
+#[derive(Clone, Copy)]
+struct Columns(*mut f32);
+
+impl Columns {
+    /// The pointer (a method, so a closure captures the `Sync` wrapper, not the raw pointer).
+    fn get(self) -> *mut f32 {
+        self.0
     }
 }
+
+// SAFETY: the tasks sharing it write disjoint columns of the output.
+unsafe impl Send for Columns {}
+unsafe impl Sync for Columns {}
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
@@ -83,9 +104,9 @@ unsafe fn regrouped_dot_avx512(
     panel: &Panel,
     next: Option<&Panel>,
     x: &[f32],
-    acc: &mut [f32; PANEL],
+    acc: &mut [[f32; PANEL]],
 ) {
-    regrouped_dot::<true>(panel, next, x, acc);
+    regrouped_dot_rows::<true>(panel, next, x, acc);
 }
 
 /// [`regrouped_dot`]'s portable form compiled for AVX2 with fused multiply-add.
@@ -94,28 +115,47 @@ unsafe fn regrouped_dot_avx512(
 /// The CPU has AVX2 and FMA.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2,fma")]
-unsafe fn regrouped_dot_fma(panel: &Panel, x: &[f32], acc: &mut [f32; PANEL]) {
-    regrouped_dot::<false>(panel, None, x, acc);
+unsafe fn regrouped_dot_fma(panel: &Panel, x: &[f32], acc: &mut [[f32; PANEL]]) {
+    regrouped_dot_rows::<false>(panel, None, x, acc);
 }
 
-/// [`GgmlMatrix::panel_dot`] for a regrouped panel; `next` is the panel whose first groups are
-/// prefetched near the end (the panel a task usually takes next).
+/// One copy of [`regrouped_dot`] per row count, so the sums of one to four rows stay in
+/// registers.
 #[inline(always)]
-fn regrouped_dot<const AVX512: bool>(
+fn regrouped_dot_rows<const AVX512: bool>(
     panel: &Panel,
     next: Option<&Panel>,
     x: &[f32],
-    acc: &mut [f32; PANEL],
+    acc: &mut [[f32; PANEL]],
 ) {
-    /// The sums of the 64 lanes.
-    struct Dot<'a> {
+    match acc.len() {
+        1 => regrouped_dot::<AVX512, 1>(panel, next, x, acc),
+        2 => regrouped_dot::<AVX512, 2>(panel, next, x, acc),
+        3 => regrouped_dot::<AVX512, 3>(panel, next, x, acc),
+        _ => regrouped_dot::<AVX512, FEW_ROWS>(panel, next, x, acc),
+    }
+}
+
+/// [`GgmlMatrix::panel_dot`] for a regrouped panel and N rows of `x`: each input's 64 values
+/// are computed once and multiplied into every row's sums; `next` is the panel whose first
+/// groups are prefetched near the end (the panel a task usually takes next).
+#[inline(always)]
+fn regrouped_dot<const AVX512: bool, const N: usize>(
+    panel: &Panel,
+    next: Option<&Panel>,
+    x: &[f32],
+    acc: &mut [[f32; PANEL]],
+) {
+    /// The sums of the 64 lanes of each row.
+    struct Dot<'a, const N: usize> {
         panel: &'a Panel,
         next: Option<&'a Panel>,
         groups: usize,
+        inp: usize,
         x: &'a [f32],
-        sums: [f32; PANEL],
+        sums: [[f32; PANEL]; N],
     }
-    impl GroupVisitor for Dot<'_> {
+    impl<const N: usize> GroupVisitor for Dot<'_, N> {
         #[inline(always)]
         fn visit<R: GroupRows>(&mut self, g: usize, rows: &R) {
             let ahead = g + AHEAD;
@@ -124,26 +164,31 @@ fn regrouped_dot<const AVX512: bool>(
             } else if let Some(next) = self.next {
                 next.prefetch_group(ahead - self.groups);
             }
-            let xs = &self.x[g * GROUP..(g + 1) * GROUP];
             let mut w = [0f32; PANEL];
-            for (k, &xk) in xs.iter().enumerate() {
+            for k in 0..GROUP {
                 rows.row(k, &mut w);
-                for (s, &wl) in self.sums.iter_mut().zip(&w) {
-                    *s = xk.mul_add(wl, *s);
+                for (t, sums) in self.sums.iter_mut().enumerate() {
+                    let xk = self.x[t * self.inp + g * GROUP + k];
+                    for (s, &wl) in sums.iter_mut().zip(&w) {
+                        *s = xk.mul_add(wl, *s);
+                    }
                 }
             }
         }
     }
-    let groups = x.len() / GROUP;
+    assert!(acc.len() == N && x.len().is_multiple_of(N));
+    let inp = x.len() / N;
+    let groups = inp / GROUP;
     let mut dot = Dot {
         panel,
         next,
         groups,
+        inp,
         x,
-        sums: [0f32; PANEL],
+        sums: [[0f32; PANEL]; N],
     };
     panel.for_groups::<AVX512, _>(0, groups, &mut dot);
-    *acc = dot.sums;
+    acc.copy_from_slice(&dot.sums);
 }
 
 #[cfg(test)]
@@ -153,7 +198,7 @@ mod tests {
     use crate::kernels::ggml::tests::{blocks, extreme_blocks, push_keeping_values};
     use crate::kernels::ggml::GgmlType;
 
-    /// The fused batch-1 product is bit for bit the product through the `Panels` seam, and so
+    /// The fused product of one to four rows is bit for bit the product through the `Panels` seam, and so
     /// the f32 product over the values the value-by-value path gives (itself checked against
     /// the gguf package and candle): every regrouped type (q2_k and q3_k among them), random and
     /// extreme scales (the largest finite f16, subnormals, signed zeros; q6_k's scales at -128
@@ -197,31 +242,38 @@ mod tests {
                 };
                 push_keeping_values(&mut m, t, rows, b, &mut dense);
             }
-            let what = format!("{parts:?} inp {inp} extreme {extreme}");
-            let x: Vec<f32> = (0..inp)
+            let x: Vec<f32> = (0..FEW_ROWS * inp)
                 .map(|i| ((i * 5) % 17) as f32 * 0.21 - 1.3)
                 .collect();
-            let (mut fused, mut seam) = (vec![0.0; m.out], vec![0.0; m.out]);
-            m.matmul(&x, 1, &mut fused);
-            matmul_panels(&x, 1, inp, &m, m.out, &mut seam);
-            assert_eq!(bits(&fused), bits(&seam), "{what}");
+            let out = m.out;
+            for n in 1..=FEW_ROWS {
+                let what = format!("{parts:?} inp {inp} extreme {extreme} rows {n}");
+                let x = &x[..n * inp];
+                let (mut fused, mut seam) = (vec![0.0; n * out], vec![0.0; n * out]);
+                m.matmul(x, n, &mut fused);
+                matmul_panels(x, n, inp, &m, out, &mut seam);
+                assert_eq!(bits(&fused), bits(&seam), "{what}");
+                // The portable form of the fused loop too (this CPU may run the AVX-512 one).
+                for (p, panel) in m.panels.iter().enumerate() {
+                    if matches!(panel, Panel::Rows(_)) {
+                        continue;
+                    }
+                    let mut acc = [[0f32; PANEL]; FEW_ROWS];
+                    regrouped_dot_rows::<false>(panel, None, x, &mut acc[..n]);
+                    for (t, a) in acc[..n].iter().enumerate() {
+                        let at = t * out + p * PANEL;
+                        assert_eq!(
+                            bits(a),
+                            bits(&seam[at..at + PANEL]),
+                            "portable {what} panel {p} row {t}"
+                        );
+                    }
+                }
+            }
             // The seam's product against the f32 product over the dequantised values (NaN-free:
             // the extreme scales are finite, but their products can overflow to infinities,
             // which compare by their bits too).
-            let out = m.out;
             assert_panels_equal_dense(&m, &dense, 1, inp, out);
-            // The portable form of the fused loop too (this CPU may run the AVX-512 one).
-            for (p, panel) in m.panels.iter().enumerate() {
-                let mut acc = [0f32; PANEL];
-                if !matches!(panel, Panel::Rows(_)) {
-                    regrouped_dot::<false>(panel, None, &x, &mut acc);
-                    assert_eq!(
-                        bits(&acc),
-                        bits(&seam[p * PANEL..(p + 1) * PANEL]),
-                        "portable {what} panel {p}"
-                    );
-                }
-            }
         }
     }
 }
