@@ -13,19 +13,6 @@
 use liftgate::kernels::ggml::{GgmlMatrix, GgmlType};
 use std::time::Instant;
 
-const TYPES: [GgmlType; 10] = [
-    GgmlType::Q4_0,
-    GgmlType::Q4_1,
-    GgmlType::Q5_0,
-    GgmlType::Q5_1,
-    GgmlType::Q8_0,
-    GgmlType::Q2K,
-    GgmlType::Q3K,
-    GgmlType::Q4K,
-    GgmlType::Q5K,
-    GgmlType::Q6K,
-];
-
 fn usage() -> ! {
     eprintln!(
         "usage: gguf_product_speed TYPE ROWS INPUTS OUTPUTS MATRICES CALLS \
@@ -52,7 +39,11 @@ fn main() {
     if args.len() != 6 {
         usage();
     }
-    let Some(t) = TYPES.iter().copied().find(|t| t.name() == args[0]) else {
+    // The block types: every type liftgate reads whose blocks hold more than one value.
+    let Some(t) = (0..64)
+        .filter_map(|id| GgmlType::from_id(id).ok())
+        .find(|t| t.block().0 > 1 && t.name() == args[0])
+    else {
         usage();
     };
     let nums: Option<Vec<usize>> = args[1..].iter().map(|a| a.parse().ok()).collect();

@@ -85,18 +85,19 @@ pub(crate) fn assert_panels_equal_dense<W: Panels>(
     assert_eq!(bits(&want), bits(&got), "n {n} inp {inp} out {out}");
 }
 
-/// A pointer to the output of [`matmul`], shared by tasks that write disjoint columns.
+/// A pointer to the output of a product, shared by tasks that write disjoint columns.
 #[derive(Clone, Copy)]
-struct Columns(*mut f32);
+pub(super) struct Columns(pub(super) *mut f32);
 
 impl Columns {
-    fn get(self) -> *mut f32 {
+    /// The pointer (a method, so a closure captures the `Sync` wrapper, not the raw pointer).
+    pub(super) fn get(self) -> *mut f32 {
         self.0
     }
 }
 
-// SAFETY: `matmul`'s tasks write disjoint sets of columns through it, and the buffer outlives
-// them (they end before `matmul` returns).
+// SAFETY: a product's tasks write disjoint sets of columns through it, and the buffer outlives
+// them (they end before the product returns).
 unsafe impl Send for Columns {}
 unsafe impl Sync for Columns {}
 

@@ -768,6 +768,25 @@ struct Q4KRows<'a, const FIVE: bool, const FMA: bool> {
 impl<const FIVE: bool, const FMA: bool> GroupRows for Q4KRows<'_, FIVE, FMA> {
     #[inline(always)]
     fn row(&self, k: usize, w: &mut [f32; PANEL]) {
+        #[cfg(target_arch = "x86_64")]
+        if FMA && !FIVE {
+            use std::arch::x86_64::*;
+            // SAFETY: `FMA` is true only in code compiled for and run on AVX-512F; the loads
+            // and stores stay inside the 64 values of `dj`, `mj` and `w`.
+            unsafe {
+                let codes = nibble_codes_avx512(&self.q[k * 32..], code_table_avx512(0.0));
+                for (v, code) in codes.into_iter().enumerate() {
+                    // (d · sc) · code − dmin · m, one rounding (see `exact_mul_add`).
+                    let value = _mm512_fmsub_ps(
+                        _mm512_loadu_ps(self.dj.as_ptr().add(16 * v)),
+                        code,
+                        _mm512_loadu_ps(self.mj.as_ptr().add(16 * v)),
+                    );
+                    _mm512_storeu_ps(w.as_mut_ptr().add(16 * v), value);
+                }
+            }
+            return;
+        }
         let mut c = [0u32; PANEL];
         codes5::<FIVE>(
             &self.q[k * 32..],
@@ -778,6 +797,56 @@ impl<const FIVE: bool, const FMA: bool> GroupRows for Q4KRows<'_, FIVE, FMA> {
             // (d · sc) · code is exact: one rounding, that of the subtraction.
             w[l] = exact_mul_add::<FMA>(self.dj[l], c[l] as f32, -self.mj[l]);
         }
+    }
+}
+
+/// The 64 4-bit codes of one input (its 32 bytes of nibbles, see [`Panel`]) as f32 values
+/// looked up in `table` (16 values: code c gives table[c]), in four vectors of rows 0..16,
+/// 16..32, 32..48 and 48..64. The lookup is a lane permute, which reads only an index's low
+/// four bits, so the bytes need no masking (the high nibble is shifted down first): one
+/// widening, one shift and two permutes per 32 values, where a mask, a widening and a
+/// conversion per 16 were.
+///
+/// # Safety
+/// The CPU has AVX-512F and the caller is compiled for it.
+#[cfg(target_arch = "x86_64")]
+#[inline(always)]
+unsafe fn nibble_codes_avx512(
+    nibbles: &[u8],
+    table: std::arch::x86_64::__m512,
+) -> [std::arch::x86_64::__m512; 4] {
+    use std::arch::x86_64::*;
+    let nibbles = &nibbles[..32];
+    // SAFETY: AVX-512F (this function's promise); the loads stay inside `nibbles`.
+    unsafe {
+        let b0 = _mm512_cvtepu8_epi32(_mm_loadu_si128(nibbles.as_ptr().cast()));
+        let b1 = _mm512_cvtepu8_epi32(_mm_loadu_si128(nibbles.as_ptr().add(16).cast()));
+        [
+            _mm512_permutexvar_ps(b0, table),
+            _mm512_permutexvar_ps(b1, table),
+            _mm512_permutexvar_ps(_mm512_srli_epi32::<4>(b0), table),
+            _mm512_permutexvar_ps(_mm512_srli_epi32::<4>(b1), table),
+        ]
+    }
+}
+
+/// The table of [`nibble_codes_avx512`] that gives each code less `offset` as an f32.
+///
+/// # Safety
+/// The CPU has AVX-512F and the caller is compiled for it.
+#[cfg(target_arch = "x86_64")]
+#[inline(always)]
+unsafe fn code_table_avx512(offset: f32) -> std::arch::x86_64::__m512 {
+    use std::arch::x86_64::*;
+    // SAFETY: AVX-512F (this function's promise).
+    unsafe {
+        _mm512_sub_ps(
+            _mm512_setr_ps(
+                0.0, 1.0, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0, 9.0, 10.0, 11.0, 12.0, 13.0, 14.0,
+                15.0,
+            ),
+            _mm512_set1_ps(offset),
+        )
     }
 }
 
@@ -793,6 +862,28 @@ struct Q4Rows<'a, const MIN: bool, const FIVE: bool, const FMA: bool> {
 impl<const MIN: bool, const FIVE: bool, const FMA: bool> GroupRows for Q4Rows<'_, MIN, FIVE, FMA> {
     #[inline(always)]
     fn row(&self, k: usize, w: &mut [f32; PANEL]) {
+        #[cfg(target_arch = "x86_64")]
+        if FMA && !FIVE {
+            use std::arch::x86_64::*;
+            // SAFETY: `FMA` is true only in code compiled for and run on AVX-512F; the loads
+            // and stores stay inside the 64 values of `d`, `m` and `w`.
+            unsafe {
+                let offset = if MIN { 0.0 } else { 8.0 };
+                let codes = nibble_codes_avx512(&self.q[k * 32..], code_table_avx512(offset));
+                for (v, code) in codes.into_iter().enumerate() {
+                    let d = _mm512_loadu_ps(self.d.as_ptr().add(16 * v));
+                    let value = if MIN {
+                        // d · code + m, one rounding (see `exact_mul_add`).
+                        _mm512_fmadd_ps(d, code, _mm512_loadu_ps(self.m.as_ptr().add(16 * v)))
+                    } else {
+                        // d · (code − 8), the code less 8 exact in the table.
+                        _mm512_mul_ps(d, code)
+                    };
+                    _mm512_storeu_ps(w.as_mut_ptr().add(16 * v), value);
+                }
+            }
+            return;
+        }
         let mut c = [0u32; PANEL];
         codes5::<FIVE>(
             &self.q[k * 32..],
@@ -921,7 +1012,10 @@ fn k_scales<const AVX512: bool>(dm: &[f16], sm: &[u8], g: usize) -> ([f32; PANEL
     let s = g * GROUP / QK_K;
     let d = widened::<AVX512>(&dm[2 * s * PANEL..]);
     let dmin = widened::<AVX512>(&dm[(2 * s + 1) * PANEL..]);
-    let (sc, m) = (&sm[2 * g * PANEL..], &sm[(2 * g + 1) * PANEL..]);
+    // Arrays of 64, not open slices: the loop below then has no bounds to check and is
+    // compiled to vector instructions whole.
+    let lanes = |at: usize| -> &[u8; PANEL] { sm[at..at + PANEL].try_into().expect("64 lanes") };
+    let (sc, m) = (lanes(2 * g * PANEL), lanes((2 * g + 1) * PANEL));
     let (mut dj, mut mj) = ([0f32; PANEL], [0f32; PANEL]);
     for l in 0..PANEL {
         dj[l] = d[l] * sc[l] as f32;

@@ -14,7 +14,7 @@
 //! `dense::matmul_panels` over the same matrix (tested below), whatever the thread count, and
 //! a row's answers do not depend on its batch.
 
-use super::dense::{matmul_panels, panel_rows, FEW_ROWS, PANEL};
+use super::dense::{matmul_panels, panel_rows, Columns, FEW_ROWS, PANEL};
 use super::ggml::{GgmlMatrix, GroupRows, GroupVisitor, Panel, GROUP};
 #[cfg(target_arch = "x86_64")]
 use super::simd::features;
@@ -81,22 +81,6 @@ impl GgmlMatrix {
         }
     }
 }
-
-/// A pointer to the output of [`GgmlMatrix::matmul`], shared by tasks that write disjoint
-/// columns.
-#[derive(Clone, Copy)]
-struct Columns(*mut f32);
-
-impl Columns {
-    /// The pointer (a method, so a closure captures the `Sync` wrapper, not the raw pointer).
-    fn get(self) -> *mut f32 {
-        self.0
-    }
-}
-
-// SAFETY: the tasks sharing it write disjoint columns of the output.
-unsafe impl Send for Columns {}
-unsafe impl Sync for Columns {}
 
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
