@@ -557,8 +557,11 @@ unsafe fn panel_many_avx512<T: PanelRead>(
     debug_assert!(panel.len() >= inp * PANEL);
     // Every span is read where it is stored; the first pass over a span fetches the next span
     // ahead of its use.
-    let mut span = |_k0: usize, k1: usize| (panel.as_ptr(), (k1 + MANY_SPAN).min(inp) - k1);
-    // SAFETY: as this function's; `span` gives the panel itself, which holds every input.
+    let mut span = |k0: usize, k1: usize| {
+        let at = panel[k0 * PANEL..].as_ptr();
+        (at, (k1 + MANY_SPAN).min(inp) - k1)
+    };
+    // SAFETY: as this function's; `span` points into the panel, which holds every input.
     unsafe { many_rows_avx512::<T>(x, inp, MANY_GROUP, emit, &mut span) };
 }
 
@@ -568,15 +571,15 @@ unsafe fn panel_many_avx512<T: PanelRead>(
 pub const SPAN_ROWS: usize = 64;
 
 /// [`panel_many_avx512`] over a panel that is not stored as f32 or 16-bit values (GGUF blocks),
-/// for at most [`SPAN_ROWS`] rows: `fill(k0, k1, buf)` writes inputs k0..k1 of the panel as f32
+/// taking up to [`SPAN_ROWS`] rows through each span together: `fill(k0, k1, buf)` writes inputs k0..k1 of the panel as f32
 /// values into `buf` ([k1 - k0, 64]), one span of [`MANY_SPAN`] inputs at a time (k0 a multiple
 /// of it), and every row passes over it while it is in the first-level cache, so the f32
 /// values of the whole panel are never written out. Each row is summed exactly as over the
-/// whole panel in f32.
+/// whole panel in f32. (More rows are taken in groups, each span written out again for each.)
 ///
 /// # Safety
-/// The CPU has AVX-512F; `x` holds a whole number of rows of `inp`, at most [`SPAN_ROWS`];
-/// `fill` writes every value of the span it is asked for.
+/// The CPU has AVX-512F; `x` holds a whole number of rows of `inp`; `fill` writes every value
+/// of the span it is asked for.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
 pub(super) unsafe fn panel_many_spans_avx512(
@@ -588,16 +591,16 @@ pub(super) unsafe fn panel_many_spans_avx512(
     let mut buf = [0f32; MANY_SPAN * PANEL];
     let mut span = |k0: usize, k1: usize| {
         fill(k0, k1, &mut buf[..(k1 - k0) * PANEL]);
-        // Input k of the span at buf + 64(k - k0); nothing to fetch ahead.
-        (buf.as_ptr().wrapping_sub(k0 * PANEL), 0)
+        // Input k0 first; nothing to fetch ahead.
+        (buf.as_ptr(), 0)
     };
-    // SAFETY: as this function's; `span` gives inputs k0..k1 at base + 64k, inside `buf`.
+    // SAFETY: as this function's; `span` gives inputs k0..k1 in `buf`, input k0 first.
     unsafe { many_rows_avx512::<f32>(x, inp, SPAN_ROWS, emit, &mut span) };
 }
 
 /// The loops of [`panel_many_avx512`], rows in groups of at most `most` (≤ [`SPAN_ROWS`]);
-/// `span(k0, k1)` gives `(base, ahead)`: input k's 64 values (k0 ≤ k < k1) at base + 64k, and
-/// how many inputs from k1 on may be prefetched from there during the first pass.
+/// `span(k0, k1)` gives `(at, ahead)`: input k's 64 values (k0 ≤ k < k1) at at + 64(k − k0),
+/// and how many inputs from k1 on follow them there, to be prefetched during the first pass.
 ///
 /// # Safety
 /// The CPU has AVX-512F; `x` holds a whole number of rows of `inp`; the inputs `span` promises
@@ -633,7 +636,7 @@ unsafe fn many_rows_avx512<T: PanelRead>(
                 let group = &mut sums[t..t + take];
                 let xs = &x[(g0 + t) * inp..(g0 + t + take) * inp];
                 let ahead = if t == 0 { ahead } else { 0 };
-                // SAFETY: as this function's; inputs k0..k1, and `ahead` from k1, at w.
+                // SAFETY: as this function's; inputs k0..k1 at w, input k0 first.
                 unsafe {
                     match take {
                         1 => many_pass::<T, 1>(group, xs, inp, w, k0, k1, ahead),
@@ -664,9 +667,9 @@ unsafe fn many_rows_avx512<T: PanelRead>(
     }
 }
 
-/// One pass of [`panel_many_avx512`]: inputs k0..k1 of the panel at `w` (input k at w + 64k)
-/// into the sums of N rows, and a prefetch of the `ahead` inputs from k1 (spread over the
-/// pass).
+/// One pass of [`panel_many_avx512`]: inputs k0..k1 of the panel at `w` (input k at
+/// w + 64(k − k0)) into the sums of N rows, and a prefetch of the `ahead` inputs that follow
+/// them (spread over the pass).
 ///
 /// # Safety
 /// The CPU has AVX-512F; inputs k0..k1 are readable at `w`, k1 + ahead ≤ inp, and `x` holds
@@ -690,15 +693,16 @@ unsafe fn many_pass<T: PanelRead, const N: usize>(
     for k in k0..k1 {
         if k - k0 < ahead {
             // The 64 values of input k1 + k - k0: one cache line per 16 bytes of a value.
-            let next = w.wrapping_add((k1 + k - k0) * PANEL).cast::<u8>();
+            let next = w.wrapping_add((k1 - k0 + k - k0) * PANEL).cast::<u8>();
             for line in 0..size_of::<T>() {
                 // SAFETY: a prefetch reads nothing into the program (and input
                 // k1 + k - k0 < k1 + ahead is inside the panel).
                 unsafe { _mm_prefetch::<_MM_HINT_T0>(next.add(64 * line).cast()) };
             }
         }
-        // SAFETY: input k (k0 ≤ k < k1) is readable at w; AVX-512F is this function's promise.
-        let wk = unsafe { T::row_avx512(w, k) };
+        // SAFETY: input k (k0 ≤ k < k1) is readable at w, its place k - k0; AVX-512F is this
+        // function's promise.
+        let wk = unsafe { T::row_avx512(w, k - k0) };
         for (t, s) in s.iter_mut().enumerate() {
             // SAFETY: t < N and k < inp, so t·inp + k < N·inp ≤ x.len().
             let xt = unsafe { _mm512_set1_ps(*xp.add(t * inp + k)) };
