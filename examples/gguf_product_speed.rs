@@ -52,7 +52,11 @@ fn main() {
     };
     let (per, size) = t.block();
     if n == 0 || inp == 0 || out == 0 || mats == 0 || !inp.is_multiple_of(per) {
-        eprintln!("gguf_product_speed: INPUTS must be a positive multiple of {per} for {}, and ROWS, OUTPUTS, MATRICES positive", t.name());
+        eprintln!(
+            "gguf_product_speed: INPUTS must be a positive multiple of {per} for {}, and ROWS, \
+             OUTPUTS, MATRICES positive",
+            t.name()
+        );
         std::process::exit(2);
     }
     // A small xorshift stream: the same bytes on every run.

@@ -17,8 +17,9 @@
 //! columns of up to six rows), so no step waits on the one before. Each output is computed by
 //! one task, so results do not depend on the thread count, and a row's result does not depend
 //! on the other rows of its batch: the decoder's batched output equals its batch-1 output bit
-//! for bit, and rows of several model variants can share one step. Where the CPU has no fused multiply-add instruction, `f32::mul_add` computes the same
-//! value in software (slowly), so the result does not depend on the CPU either.
+//! for bit, and rows of several model variants can share one step. Where the CPU has no fused
+//! multiply-add instruction, `f32::mul_add` computes the same value in software (slowly), so
+//! the result does not depend on the CPU either.
 //!
 //! Checkpoints stored in bf16 or f16 keep their weights 16-bit in the same panel layout
 //! ([`matmul_half`]): each weight is widened to f32 inside the product, just before its
@@ -571,11 +572,12 @@ unsafe fn panel_many_avx512<T: PanelRead>(
 pub const SPAN_ROWS: usize = 64;
 
 /// [`panel_many_avx512`] over a panel that is not stored as f32 or 16-bit values (GGUF blocks),
-/// taking up to [`SPAN_ROWS`] rows through each span together: `fill(k0, k1, buf)` writes inputs k0..k1 of the panel as f32
-/// values into `buf` ([k1 - k0, 64]), one span of [`MANY_SPAN`] inputs at a time (k0 a multiple
-/// of it), and every row passes over it while it is in the first-level cache, so the f32
-/// values of the whole panel are never written out. Each row is summed exactly as over the
-/// whole panel in f32. (More rows are taken in groups, each span written out again for each.)
+/// taking up to [`SPAN_ROWS`] rows through each span together: `fill(k0, k1, buf)` writes
+/// inputs k0..k1 of the panel as f32 values into `buf` ([k1 - k0, 64]), one span of
+/// [`MANY_SPAN`] inputs at a time (k0 a multiple of it), and every row passes over it while it
+/// is in the first-level cache, so the f32 values of the whole panel are never written out.
+/// Each row is summed exactly as over the whole panel in f32. (More rows are taken in groups,
+/// each span written out again for each.)
 ///
 /// # Safety
 /// The CPU has AVX-512F; `x` holds a whole number of rows of `inp`; `fill` writes every value

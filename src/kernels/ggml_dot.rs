@@ -182,12 +182,13 @@ mod tests {
     use crate::kernels::ggml::tests::{blocks, extreme_blocks, push_keeping_values};
     use crate::kernels::ggml::GgmlType;
 
-    /// The fused product of one to four rows is bit for bit the product through the `Panels` seam, and so
-    /// the f32 product over the values the value-by-value path gives (itself checked against
-    /// the gguf package and candle): every regrouped type (q2_k and q3_k among them), random and
-    /// extreme scales (the largest finite f16, subnormals, signed zeros; q6_k's scales at -128
-    /// and 127, q3_k's at -32 and 31, q2_k's scales and mins at 0 and 15), two full panels and
-    /// a tail of stored rows, panels of several types, on one task and on the pool.
+    /// The fused product of one to four rows is bit for bit the product through the `Panels`
+    /// seam, and so the f32 product over the values the value-by-value path gives (itself
+    /// checked against the gguf package and candle): every regrouped type (q2_k and q3_k among
+    /// them), random and extreme scales (the largest finite f16, subnormals, signed zeros;
+    /// q6_k's scales at -128 and 127, q3_k's at -32 and 31, q2_k's scales and mins at 0 and
+    /// 15), two full panels and a tail of stored rows, panels of several types, on one task
+    /// and on the pool.
     #[test]
     fn fused_product_equals_the_product_over_dequantised_values() {
         let regrouped = crate::kernels::ggml::tests::REGROUPED;
