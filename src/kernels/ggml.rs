@@ -769,12 +769,15 @@ impl<const FIVE: bool, const FMA: bool> GroupRows for Q4KRows<'_, FIVE, FMA> {
     #[inline(always)]
     fn row(&self, k: usize, w: &mut [f32; PANEL]) {
         #[cfg(target_arch = "x86_64")]
-        if FMA && !FIVE {
+        if FMA {
             use std::arch::x86_64::*;
             // SAFETY: `FMA` is true only in code compiled for and run on AVX-512F; the loads
             // and stores stay inside the 64 values of `dj`, `mj` and `w`.
             unsafe {
-                let codes = nibble_codes_avx512(&self.q[k * 32..], code_table_avx512(0.0));
+                let mut codes = nibble_codes_avx512(&self.q[k * 32..], code_table_avx512(0.0));
+                if FIVE {
+                    fifth_bits_avx512(&mut codes, self.five[k]);
+                }
                 for (v, code) in codes.into_iter().enumerate() {
                     // (d · sc) · code − dmin · m, one rounding (see `exact_mul_add`).
                     let value = _mm512_fmsub_ps(
@@ -850,6 +853,25 @@ unsafe fn code_table_avx512(offset: f32) -> std::arch::x86_64::__m512 {
     }
 }
 
+/// Adds each row's fifth bit (`five`: bit r for row r) to its code from
+/// [`nibble_codes_avx512`]: 16 more in the lanes whose bit is set, one add under a mask of 16
+/// bits per vector. Codes and sums are small integers, so the f32 adds are exact.
+///
+/// # Safety
+/// The CPU has AVX-512F and the caller is compiled for it.
+#[cfg(target_arch = "x86_64")]
+#[inline(always)]
+unsafe fn fifth_bits_avx512(codes: &mut [std::arch::x86_64::__m512; 4], five: u64) {
+    use std::arch::x86_64::*;
+    // SAFETY: AVX-512F (this function's promise).
+    unsafe {
+        let sixteen = _mm512_set1_ps(16.0);
+        for (v, code) in codes.iter_mut().enumerate() {
+            *code = _mm512_mask_add_ps(*code, (five >> (16 * v)) as u16, *code, sixteen);
+        }
+    }
+}
+
 /// A q4_0 group, d · (code − 8), or with `MIN` a q4_1 group, d · code + m; with `FIVE` a q5_0
 /// group, d · (code − 16), or a q5_1 group, d · code + m. `FMA`: see [`exact_mul_add`].
 struct Q4Rows<'a, const MIN: bool, const FIVE: bool, const FMA: bool> {
@@ -863,20 +885,28 @@ impl<const MIN: bool, const FIVE: bool, const FMA: bool> GroupRows for Q4Rows<'_
     #[inline(always)]
     fn row(&self, k: usize, w: &mut [f32; PANEL]) {
         #[cfg(target_arch = "x86_64")]
-        if FMA && !FIVE {
+        if FMA {
             use std::arch::x86_64::*;
             // SAFETY: `FMA` is true only in code compiled for and run on AVX-512F; the loads
             // and stores stay inside the 64 values of `d`, `m` and `w`.
             unsafe {
-                let offset = if MIN { 0.0 } else { 8.0 };
-                let codes = nibble_codes_avx512(&self.q[k * 32..], code_table_avx512(offset));
+                let offset = match (MIN, FIVE) {
+                    (true, _) => 0.0,
+                    (false, false) => 8.0,
+                    (false, true) => 16.0,
+                };
+                let mut codes = nibble_codes_avx512(&self.q[k * 32..], code_table_avx512(offset));
+                if FIVE {
+                    fifth_bits_avx512(&mut codes, self.five[k]);
+                }
                 for (v, code) in codes.into_iter().enumerate() {
                     let d = _mm512_loadu_ps(self.d.as_ptr().add(16 * v));
                     let value = if MIN {
                         // d · code + m, one rounding (see `exact_mul_add`).
                         _mm512_fmadd_ps(d, code, _mm512_loadu_ps(self.m.as_ptr().add(16 * v)))
                     } else {
-                        // d · (code − 8), the code less 8 exact in the table.
+                        // d · (code − 8), or d · (code − 16) with `FIVE`, the code less its
+                        // offset exact in the table.
                         _mm512_mul_ps(d, code)
                     };
                     _mm512_storeu_ps(w.as_mut_ptr().add(16 * v), value);
@@ -903,16 +933,46 @@ impl<const MIN: bool, const FIVE: bool, const FMA: bool> GroupRows for Q4Rows<'_
 }
 
 /// A q6_k group: (d · sc) · (code − 32), with the scale of inputs 0..16 or 16..32 of the group
-/// (d · sc computed once per group).
-struct Q6KRows<'a> {
+/// (d · sc computed once per group). `AVX512`: the caller is compiled for and runs on
+/// AVX-512F, and the codes are looked up in lane permutes.
+struct Q6KRows<'a, const AVX512: bool> {
     ds: [[f32; PANEL]; 2],
     q: &'a [u8],
     hi: &'a [u32],
 }
 
-impl GroupRows for Q6KRows<'_> {
+impl<const AVX512: bool> GroupRows for Q6KRows<'_, AVX512> {
     #[inline(always)]
     fn row(&self, k: usize, w: &mut [f32; PANEL]) {
+        #[cfg(target_arch = "x86_64")]
+        if AVX512 {
+            use std::arch::x86_64::*;
+            // SAFETY: `AVX512` is true only in code compiled for and run on AVX-512F; the
+            // loads and stores stay inside the 64 values of `ds[k / 16]` and `w`, and the four
+            // words of `hi` are indexed within its bounds.
+            unsafe {
+                // The low four bits less 32, looked up; then the top two bits of row 16j + i,
+                // at bits 2i..2i + 2 of word j, shifted down to lane i's low bits and looked up
+                // in a table of 16 · (their value), which ignores the bits above the pair.
+                let codes = nibble_codes_avx512(&self.q[k * 32..], code_table_avx512(32.0));
+                let shifts =
+                    _mm512_setr_epi32(0, 2, 4, 6, 8, 10, 12, 14, 16, 18, 20, 22, 24, 26, 28, 30);
+                let top = _mm512_setr_ps(
+                    0.0, 16.0, 32.0, 48.0, 0.0, 16.0, 32.0, 48.0, 0.0, 16.0, 32.0, 48.0, 0.0, 16.0,
+                    32.0, 48.0,
+                );
+                let words = &self.hi[k * 4..k * 4 + 4];
+                let ds = &self.ds[k / 16];
+                for (v, code) in codes.into_iter().enumerate() {
+                    let pairs = _mm512_srlv_epi32(_mm512_set1_epi32(words[v] as i32), shifts);
+                    // code − 32, exact (small integers).
+                    let code = _mm512_add_ps(code, _mm512_permutexvar_ps(pairs, top));
+                    let value = _mm512_mul_ps(_mm512_loadu_ps(ds.as_ptr().add(16 * v)), code);
+                    _mm512_storeu_ps(w.as_mut_ptr().add(16 * v), value);
+                }
+            }
+            return;
+        }
         let mut c = [0u32; PANEL];
         codes5::<false>(&self.q[k * 32..], 0, &mut c);
         let words = &self.hi[k * 4..k * 4 + 4];
@@ -954,6 +1014,36 @@ fn codes2<const HIGH: bool>(pairs: &[u8], high: u64, out: &mut [u32; PANEL]) {
     }
 }
 
+/// The 64 2-bit codes of one input (its 16 bytes, see [`codes2`]) less `offset`, as f32
+/// values in four vectors of rows 0..16, 16..32, 32..48 and 48..64: the bytes widened once,
+/// shifted down to each row's pair and looked up in a lane permute of a table of 16 entries
+/// (t & 3) − offset, which ignores the bits above the pair.
+///
+/// # Safety
+/// The CPU has AVX-512F and the caller is compiled for it.
+#[cfg(target_arch = "x86_64")]
+#[inline(always)]
+unsafe fn pair_codes_avx512(pairs: &[u8], offset: f32) -> [std::arch::x86_64::__m512; 4] {
+    use std::arch::x86_64::*;
+    let pairs = &pairs[..16];
+    // SAFETY: AVX-512F (this function's promise); the load stays inside `pairs`.
+    unsafe {
+        let b = _mm512_cvtepu8_epi32(_mm_loadu_si128(pairs.as_ptr().cast()));
+        let table = _mm512_sub_ps(
+            _mm512_setr_ps(
+                0.0, 1.0, 2.0, 3.0, 0.0, 1.0, 2.0, 3.0, 0.0, 1.0, 2.0, 3.0, 0.0, 1.0, 2.0, 3.0,
+            ),
+            _mm512_set1_ps(offset),
+        );
+        [
+            _mm512_permutexvar_ps(b, table),
+            _mm512_permutexvar_ps(_mm512_srli_epi32::<2>(b), table),
+            _mm512_permutexvar_ps(_mm512_srli_epi32::<4>(b), table),
+            _mm512_permutexvar_ps(_mm512_srli_epi32::<6>(b), table),
+        ]
+    }
+}
+
 /// A q2_k group: (d · sc) · code − (dmin · m), with the scale and min of inputs 0..16 or
 /// 16..32 of the group (the products d · sc and dmin · m computed once per group). `FMA`: see
 /// [`exact_mul_add`].
@@ -966,6 +1056,26 @@ struct Q2KRows<'a, const FMA: bool> {
 impl<const FMA: bool> GroupRows for Q2KRows<'_, FMA> {
     #[inline(always)]
     fn row(&self, k: usize, w: &mut [f32; PANEL]) {
+        #[cfg(target_arch = "x86_64")]
+        if FMA {
+            use std::arch::x86_64::*;
+            // SAFETY: `FMA` is true only in code compiled for and run on AVX-512F; the loads
+            // and stores stay inside the 64 values of `dl[k / 16]`, `ml[k / 16]` and `w`.
+            unsafe {
+                let codes = pair_codes_avx512(&self.q[k * 16..], 0.0);
+                let (dl, ml) = (&self.dl[k / 16], &self.ml[k / 16]);
+                for (v, code) in codes.into_iter().enumerate() {
+                    // (d · sc) · code − dmin · m, one rounding (see above and below).
+                    let value = _mm512_fmsub_ps(
+                        _mm512_loadu_ps(dl.as_ptr().add(16 * v)),
+                        code,
+                        _mm512_loadu_ps(ml.as_ptr().add(16 * v)),
+                    );
+                    _mm512_storeu_ps(w.as_mut_ptr().add(16 * v), value);
+                }
+            }
+            return;
+        }
         let mut c = [0u32; PANEL];
         codes2::<false>(&self.q[k * 16..], 0, &mut c);
         let (dl, ml) = (&self.dl[k / 16], &self.ml[k / 16]);
@@ -979,16 +1089,35 @@ impl<const FMA: bool> GroupRows for Q2KRows<'_, FMA> {
 
 /// A q3_k group: (d · (sc − 32)) · (ql − 4·(1 − hbit)), the code an integer as in the
 /// reference (see [`codes2`]), with the scale of inputs 0..16 or 16..32 of the group
-/// (d · (sc − 32) computed once per group).
-struct Q3KRows<'a> {
+/// (d · (sc − 32) computed once per group). `AVX512`: as in [`Q6KRows`].
+struct Q3KRows<'a, const AVX512: bool> {
     dl: [[f32; PANEL]; 2],
     q: &'a [u8],
     hbit: &'a [u64],
 }
 
-impl GroupRows for Q3KRows<'_> {
+impl<const AVX512: bool> GroupRows for Q3KRows<'_, AVX512> {
     #[inline(always)]
     fn row(&self, k: usize, w: &mut [f32; PANEL]) {
+        #[cfg(target_arch = "x86_64")]
+        if AVX512 {
+            use std::arch::x86_64::*;
+            // SAFETY: `AVX512` is true only in code compiled for and run on AVX-512F; the
+            // loads and stores stay inside the 64 values of `dl[k / 16]` and `w`.
+            unsafe {
+                // ql − 4 looked up, then 4 more where the row's high-mask bit is set: the
+                // reference's ql − 4·(1 − hbit), small integers, exact.
+                let mut codes = pair_codes_avx512(&self.q[k * 16..], 4.0);
+                let (four, hbit) = (_mm512_set1_ps(4.0), self.hbit[k]);
+                let dl = &self.dl[k / 16];
+                for (v, code) in codes.iter_mut().enumerate() {
+                    *code = _mm512_mask_add_ps(*code, (hbit >> (16 * v)) as u16, *code, four);
+                    let value = _mm512_mul_ps(_mm512_loadu_ps(dl.as_ptr().add(16 * v)), *code);
+                    _mm512_storeu_ps(w.as_mut_ptr().add(16 * v), value);
+                }
+            }
+            return;
+        }
         let mut c = [0u32; PANEL];
         codes2::<true>(&self.q[k * 16..], self.hbit[k], &mut c);
         let dl = &self.dl[k / 16];
@@ -1135,7 +1264,7 @@ impl Panel {
             },
             Panel::Q6K { d, sc, q, hi } => {
                 for g in g0..g1 {
-                    let rows = Q6KRows {
+                    let rows = Q6KRows::<AVX512> {
                         ds: signed_scales::<AVX512>(d, sc, g),
                         q: &q[g * GROUP * 32..(g + 1) * GROUP * 32],
                         hi: &hi[g * GROUP * 4..(g + 1) * GROUP * 4],
@@ -1162,7 +1291,7 @@ impl Panel {
             }
             Panel::Q3K { d, sc, q, hbit } => {
                 for g in g0..g1 {
-                    let rows = Q3KRows {
+                    let rows = Q3KRows::<AVX512> {
                         dl: signed_scales::<AVX512>(d, sc, g),
                         q: &q[g * GROUP * 16..(g + 1) * GROUP * 16],
                         hbit: &hbit[g * GROUP..(g + 1) * GROUP],
