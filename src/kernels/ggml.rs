@@ -677,7 +677,8 @@ impl Panel {
         }
     }
 
-    fn bytes(&self) -> usize {
+    /// The bytes of the panel's codes and scales.
+    pub(super) fn bytes(&self) -> usize {
         match self {
             Panel::Q8 { d, q } => 2 * d.len() + q.len(),
             Panel::Q4K { dm, sm, q, five } => 2 * dm.len() + sm.len() + q.len() + 8 * five.len(),

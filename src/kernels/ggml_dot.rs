@@ -21,9 +21,11 @@ use super::simd::features;
 use super::PARALLEL_WORK;
 use rayon::prelude::*;
 
-/// Groups ahead of the one being multiplied whose bytes are prefetched: about 4 KB of q8_0
-/// codes, a few hundred nanoseconds of work, more than a memory access takes.
-const AHEAD: usize = 2;
+/// Bytes of a panel ahead of the group being multiplied that are prefetched, rounded down to
+/// whole groups (at least two): two groups of q8_0 (4.3 KB), five of q4_k (5.9 KB). Measured
+/// on `bench/gguf.sh`'s files at batch 1, alternating runs: two groups of q4_k (2.4 KB) were
+/// too few, six decode it 5-10% faster; six of q8_0 (13 KB) decode it 6% slower than two.
+const AHEAD_BYTES: usize = 6144;
 
 impl GgmlMatrix {
     /// y[n, out] = x[n, inp] · Wᵀ, bit for bit [`matmul_panels`] over this matrix. Up to
@@ -135,6 +137,8 @@ fn regrouped_dot<const AVX512: bool, const N: usize>(
         panel: &'a Panel,
         next: Option<&'a Panel>,
         groups: usize,
+        /// Groups ahead whose bytes are prefetched ([`AHEAD_BYTES`]).
+        ahead: usize,
         inp: usize,
         x: &'a [f32],
         sums: [[f32; PANEL]; N],
@@ -142,7 +146,7 @@ fn regrouped_dot<const AVX512: bool, const N: usize>(
     impl<const N: usize> GroupVisitor for Dot<'_, N> {
         #[inline(always)]
         fn visit<R: GroupRows>(&mut self, g: usize, rows: &R) {
-            let ahead = g + AHEAD;
+            let ahead = g + self.ahead;
             if ahead < self.groups {
                 self.panel.prefetch_group(ahead);
             } else if let Some(next) = self.next {
@@ -167,6 +171,7 @@ fn regrouped_dot<const AVX512: bool, const N: usize>(
         panel,
         next,
         groups,
+        ahead: (AHEAD_BYTES * groups / panel.bytes().max(1)).max(2),
         inp,
         x,
         sums: [[0f32; PANEL]; N],
