@@ -1066,7 +1066,8 @@ impl<const FMA: bool> GroupRows for Q2KRows<'_, FMA> {
                 let codes = pair_codes_avx512(&self.q[k * 16..], 0.0);
                 let (dl, ml) = (&self.dl[k / 16], &self.ml[k / 16]);
                 for (v, code) in codes.into_iter().enumerate() {
-                    // (d · sc) · code − dmin · m, one rounding (see above and below).
+                    // (d · sc) · code − dmin · m, one rounding: the product is exact (see
+                    // the portable loop below).
                     let value = _mm512_fmsub_ps(
                         _mm512_loadu_ps(dl.as_ptr().add(16 * v)),
                         code,

@@ -23,8 +23,9 @@ use rayon::prelude::*;
 
 /// Bytes of a panel ahead of the group being multiplied that are prefetched, rounded down to
 /// whole groups (at least two): two groups of q8_0 (4.3 KB), five of q4_k (5.9 KB). Measured
-/// on `bench/gguf.sh`'s files at batch 1, alternating runs: two groups of q4_k (2.4 KB) were
-/// too few, six decode it 5-10% faster; six of q8_0 (13 KB) decode it 6% slower than two.
+/// on `bench/gguf.sh`'s files at batch 1, medians of alternating runs: two groups of q4_k
+/// (2.4 KB) were too few, six decoded it 5-9% faster and five (this rule) 14%; six of q8_0
+/// (13 KB) decoded it 6% slower than two.
 const AHEAD_BYTES: usize = 6144;
 
 impl GgmlMatrix {
