@@ -958,10 +958,7 @@ impl<const AVX512: bool> GroupRows for Q6KRows<'_, AVX512> {
                 let codes = nibble_codes_avx512(&self.q[k * 32..], code_table_avx512(32.0));
                 let shifts =
                     _mm512_setr_epi32(0, 2, 4, 6, 8, 10, 12, 14, 16, 18, 20, 22, 24, 26, 28, 30);
-                let top = _mm512_setr_ps(
-                    0.0, 16.0, 32.0, 48.0, 0.0, 16.0, 32.0, 48.0, 0.0, 16.0, 32.0, 48.0, 0.0, 16.0,
-                    32.0, 48.0,
-                );
+                let top = pair_table_avx512(16.0, 0.0);
                 let words = &self.hi[k * 4..k * 4 + 4];
                 let ds = &self.ds[k / 16];
                 for (v, code) in codes.into_iter().enumerate() {
@@ -1015,10 +1012,31 @@ fn codes2<const HIGH: bool>(pairs: &[u8], high: u64, out: &mut [u32; PANEL]) {
     }
 }
 
+/// A table of 16 f32 entries, entry t = (t & 3) · scale − offset, for a lane permute whose
+/// indices hold a 2-bit value in their low bits and other bits above it (ignored this way):
+/// q2_k's and q3_k's codes, q6_k's top two bits. Small integers, so exact.
+///
+/// # Safety
+/// The CPU has AVX-512F and the caller is compiled for it.
+#[cfg(target_arch = "x86_64")]
+#[inline(always)]
+unsafe fn pair_table_avx512(scale: f32, offset: f32) -> std::arch::x86_64::__m512 {
+    use std::arch::x86_64::*;
+    // SAFETY: AVX-512F (this function's promise).
+    unsafe {
+        _mm512_fmsub_ps(
+            _mm512_setr_ps(
+                0.0, 1.0, 2.0, 3.0, 0.0, 1.0, 2.0, 3.0, 0.0, 1.0, 2.0, 3.0, 0.0, 1.0, 2.0, 3.0,
+            ),
+            _mm512_set1_ps(scale),
+            _mm512_set1_ps(offset),
+        )
+    }
+}
+
 /// The 64 2-bit codes of one input (its 16 bytes, see [`codes2`]) less `offset`, as f32
 /// values in four vectors of rows 0..16, 16..32, 32..48 and 48..64: the bytes widened once,
-/// shifted down to each row's pair and looked up in a lane permute of a table of 16 entries
-/// (t & 3) − offset, which ignores the bits above the pair.
+/// shifted down to each row's pair and looked up in [`pair_table_avx512`].
 ///
 /// # Safety
 /// The CPU has AVX-512F and the caller is compiled for it.
@@ -1030,12 +1048,7 @@ unsafe fn pair_codes_avx512(pairs: &[u8], offset: f32) -> [std::arch::x86_64::__
     // SAFETY: AVX-512F (this function's promise); the load stays inside `pairs`.
     unsafe {
         let b = _mm512_cvtepu8_epi32(_mm_loadu_si128(pairs.as_ptr().cast()));
-        let table = _mm512_sub_ps(
-            _mm512_setr_ps(
-                0.0, 1.0, 2.0, 3.0, 0.0, 1.0, 2.0, 3.0, 0.0, 1.0, 2.0, 3.0, 0.0, 1.0, 2.0, 3.0,
-            ),
-            _mm512_set1_ps(offset),
-        );
+        let table = pair_table_avx512(1.0, offset);
         [
             _mm512_permutexvar_ps(b, table),
             _mm512_permutexvar_ps(_mm512_srli_epi32::<2>(b), table),
