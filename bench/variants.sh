@@ -21,6 +21,9 @@ trap 'rm -rf "$work"' EXIT
 head -n 8 "$root/eval-sets/ferry-faq.jsonl" >"$work/q.jsonl"
 # "answered N questions: T new tokens in S s": tokens and seconds of the answering alone.
 tokens_secs() { sed -n 's/^answered [0-9]* questions: \([0-9]*\) new tokens in \([0-9.]*\) s.*/\1 \2/p' "$1"; }
+# "decoding steps S s (N steps, T new tokens, ...)": the steps after the prompt's, where
+# variants share the weight reads (the prompt steps are bound by arithmetic either way).
+step_tokens_secs() { sed -n 's/.*decoding steps \([0-9.]*\) s ([0-9]* steps, \([0-9]*\) new tokens.*/\2 \1/p' "$1"; }
 echo "checkpoint: $(du -h "$model/model.safetensors" | cut -f1), adapter rank 16 on every linear layer"
 for batch in ${BATCHES:-1 2 4}; do
 for bin in ${BEFORE:-} "$root/target/release/liftgate"; do
@@ -33,9 +36,13 @@ for bin in ${BEFORE:-} "$root/target/release/liftgate"; do
   /usr/bin/time -f "%M" -o "$work/rss" "$bin" vet --model "$model" --adapter "$adapter" --report "$work/rep" --no-history \
     --resamples 1000 "${common[@]}" 2>"$work/e3" >/dev/null || true
   read -r t3 s3 < <(tokens_secs "$work/e3")
+  read -r d1 e1 < <(step_tokens_secs "$work/e1")
+  read -r d2 e2 < <(step_tokens_secs "$work/e2")
+  read -r d3 e3 < <(step_tokens_secs "$work/e3")
   cmp -s <(sed 's/"ms":[0-9]*//' "$work/tuned.jsonl") <(sed 's/"ms":[0-9]*//' "$work/rep/candidate.answers.jsonl") && same=same || same=DIFFERENT
-  awk -v who="$bin" -v b="$batch" -v t1="$t1" -v s1="$s1" -v t2="$t2" -v s2="$s2" -v t3="$t3" -v s3="$s3" -v same="$same" -v rss="$(tail -n 1 "$work/rss")" 'BEGIN {
+  awk -v who="$bin" -v b="$batch" -v t1="$t1" -v s1="$s1" -v t2="$t2" -v s2="$s2" -v t3="$t3" -v s3="$s3" -v d1="$d1" -v e1="$e1" -v d2="$d2" -v e2="$e2" -v d3="$d3" -v e3="$e3" -v same="$same" -v rss="$(tail -n 1 "$work/rss")" 'BEGIN {
     one = (t1 + t2) / (s1 + s2); both = t3 / s3;
-    printf "%s batch %d: one after the other %.1f tokens/s, together %.1f tokens/s (%.2fx), peak RSS together %d MiB, answers %s\n", who, b, one, both, both / one, rss / 1024, same }'
+    step1 = (d1 + d2) / (e1 + e2); step2 = d3 / e3;
+    printf "%s batch %d: one after the other %.1f tokens/s, together %.1f tokens/s (%.2fx); decoding steps alone %.1f against %.1f tokens/s (%.2fx); peak RSS together %d MiB, answers %s\n", who, b, one, both, both / one, step1, step2, step2 / step1, rss / 1024, same }'
 done
 done

@@ -235,7 +235,11 @@ impl<T: PanelRead> Panels for Stored<'_, T> {
         p: usize,
         emit: &mut dyn FnMut(usize, &[f32; PANEL]),
     ) -> bool {
-        let panel = &self.w[p * self.inp * PANEL..(p + 1) * self.inp * PANEL];
+        // The panel and, when there is one, the first span of the next: a task's panels are
+        // mostly consecutive, so its last span's pass fetches what the next one starts with.
+        let start = p * self.inp * PANEL;
+        let end = ((p + 1) * self.inp + MANY_SPAN) * PANEL;
+        let panel = &self.w[start..end.min(self.w.len())];
         assert!(self.inp > 0 && x.len().is_multiple_of(self.inp));
         // SAFETY: the CPU has AVX-512F (the caller's promise); the panel holds inp·64 values
         // and x whole rows (asserted).
@@ -557,10 +561,11 @@ unsafe fn panel_many_avx512<T: PanelRead>(
 ) {
     debug_assert!(panel.len() >= inp * PANEL);
     // Every span is read where it is stored; the first pass over a span fetches the next span
-    // ahead of its use.
+    // ahead of its use (the last span, whatever of the next panel `panel` goes on to).
+    let readable = panel.len() / PANEL;
     let mut span = |k0: usize, k1: usize| {
         let at = panel[k0 * PANEL..].as_ptr();
-        (at, (k1 + MANY_SPAN).min(inp) - k1)
+        (at, (k1 + MANY_SPAN).min(readable) - k1)
     };
     // SAFETY: as this function's; `span` points into the panel, which holds every input.
     unsafe { many_rows_avx512::<T>(x, inp, MANY_GROUP, emit, &mut span) };
@@ -674,7 +679,8 @@ unsafe fn many_rows_avx512<T: PanelRead>(
 /// them (spread over the pass).
 ///
 /// # Safety
-/// The CPU has AVX-512F; inputs k0..k1 are readable at `w`, k1 + ahead ≤ inp, and `x` holds
+/// The CPU has AVX-512F; inputs k0..k1 are readable at `w`, so are the `ahead` values that
+/// follow them in memory (the rest of the panel, or the next one's start), and `x` holds
 /// N·inp values.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
@@ -688,7 +694,7 @@ unsafe fn many_pass<T: PanelRead, const N: usize>(
     ahead: usize,
 ) {
     use std::arch::x86_64::*;
-    debug_assert!(sums.len() == N && k1 + ahead <= inp && x.len() >= N * inp);
+    debug_assert!(sums.len() == N && x.len() >= N * inp);
     let xp = x.as_ptr();
     let mut s = [[_mm512_setzero_ps(); 4]; N];
     s.copy_from_slice(sums);
@@ -698,7 +704,7 @@ unsafe fn many_pass<T: PanelRead, const N: usize>(
             let next = w.wrapping_add((k1 - k0 + k - k0) * PANEL).cast::<u8>();
             for line in 0..size_of::<T>() {
                 // SAFETY: a prefetch reads nothing into the program (and input
-                // k1 + k - k0 < k1 + ahead is inside the panel).
+                // k1 + k - k0 < k1 + ahead is readable: the panel or the next one's start).
                 unsafe { _mm_prefetch::<_MM_HINT_T0>(next.add(64 * line).cast()) };
             }
         }
@@ -728,9 +734,31 @@ fn accumulate(sums: &mut [f32; PANEL], x: &[f32], panel: &[f32]) {
 }
 
 /// Sum of products with sixteen independent partial sums, so the compiler can use vector
-/// registers (a single running sum would force one addition at a time).
+/// registers (a single running sum would force one addition at a time). With AVX-512 (found at
+/// run time) the loop is compiled for 16-wide vectors; the sum is the same either way: each
+/// step a multiply, then an add, in the same order.
 #[inline]
 pub fn dot(a: &[f32], b: &[f32]) -> f32 {
+    #[cfg(target_arch = "x86_64")]
+    if features().avx512f {
+        // SAFETY: the CPU has AVX-512F (checked just above).
+        return unsafe { dot_avx512(a, b) };
+    }
+    dot_any(a, b)
+}
+
+/// [`dot_any`] compiled for AVX-512.
+///
+/// # Safety
+/// The CPU has AVX-512F.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn dot_avx512(a: &[f32], b: &[f32]) -> f32 {
+    dot_any(a, b)
+}
+
+#[inline(always)]
+fn dot_any(a: &[f32], b: &[f32]) -> f32 {
     let n = a.len().min(b.len());
     let (a, b) = (&a[..n], &b[..n]);
     let mut acc = [0f32; 16];
@@ -746,6 +774,57 @@ pub fn dot(a: &[f32], b: &[f32]) -> f32 {
         s += x * y;
     }
     acc.iter().sum::<f32>() + s
+}
+
+/// u[i·w + j] = Σᵣ z[i·rank + r]·bt[r·stride + j] for the m = z.len() / rank rows of `z` and
+/// the w = u.len() / m columns of `u`: the second product of a low-rank term, (x·Aᵀ)·Bᵀ, over
+/// a block of B's outputs (`bt` is Bᵀ from the block's first output on, `stride` its row
+/// length). Each sum runs over r in order, a multiply then an add per step, so it does not
+/// depend on the block or on how many rows come with it. Vectorised along the outputs (with
+/// AVX-512 when the CPU has it, the same sums).
+pub fn low_rank_outputs(z: &[f32], rank: usize, bt: &[f32], stride: usize, u: &mut [f32]) {
+    #[cfg(target_arch = "x86_64")]
+    if features().avx512f {
+        // SAFETY: the CPU has AVX-512F (checked just above).
+        unsafe { low_rank_outputs_avx512(z, rank, bt, stride, u) };
+        return;
+    }
+    low_rank_outputs_any(z, rank, bt, stride, u);
+}
+
+/// [`low_rank_outputs_any`] compiled for AVX-512.
+///
+/// # Safety
+/// The CPU has AVX-512F.
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn low_rank_outputs_avx512(
+    z: &[f32],
+    rank: usize,
+    bt: &[f32],
+    stride: usize,
+    u: &mut [f32],
+) {
+    low_rank_outputs_any(z, rank, bt, stride, u);
+}
+
+#[inline(always)]
+fn low_rank_outputs_any(z: &[f32], rank: usize, bt: &[f32], stride: usize, u: &mut [f32]) {
+    if rank == 0 || z.is_empty() {
+        u.fill(0.0);
+        return;
+    }
+    let m = z.len() / rank;
+    let w = u.len() / m;
+    for (zi, ui) in z.chunks_exact(rank).zip(u.chunks_exact_mut(w)) {
+        ui.fill(0.0);
+        for (r, &zr) in zi.iter().enumerate() {
+            let br = &bt[r * stride..r * stride + w];
+            for (uo, &b) in ui.iter_mut().zip(br) {
+                *uo += zr * b;
+            }
+        }
+    }
 }
 
 #[cfg(test)]
@@ -912,6 +991,65 @@ mod tests {
             let a: Vec<f32> = (0..n).map(|i| i as f32).collect();
             let want: f32 = a.iter().map(|v| v * v).sum();
             assert_eq!(dot(&a, &a), want, "length {n}");
+        }
+    }
+
+    /// The dispatched dot (16-wide vectors where the CPU has AVX-512) sums exactly as the
+    /// portable loop does, on values whose sums round differently in another order.
+    #[test]
+    fn dot_is_the_portable_sum_bit_for_bit() {
+        for n in [3, 16, 33, 250, 2048] {
+            let a: Vec<f32> = (0..n)
+                .map(|i| ((i * 7919) % 1013) as f32 * 1.37e-3 - 0.6)
+                .collect();
+            let b: Vec<f32> = (0..n)
+                .map(|i| ((i * 104_729) % 977) as f32 * 2.9e-2 - 13.0)
+                .collect();
+            assert_eq!(
+                dot(&a, &b).to_bits(),
+                dot_any(&a, &b).to_bits(),
+                "length {n}"
+            );
+        }
+    }
+
+    /// The low-rank term's second product against the plain loop, Σᵣ z·Bᵀ in r order, a
+    /// multiply then an add per step: every row, every block of outputs (a partial last one
+    /// included), bit for bit.
+    #[test]
+    fn low_rank_outputs_sum_each_output_over_the_rank_in_order() {
+        let (m, rank, out) = (3, 5, 70);
+        let z: Vec<f32> = (0..m * rank)
+            .map(|i| ((i * 37) % 19) as f32 * 0.31 - 2.7)
+            .collect();
+        let bt: Vec<f32> = (0..rank * out)
+            .map(|i| ((i * 53) % 101) as f32 * 1.3e-2 - 0.65)
+            .collect();
+        let bits = |v: &[f32]| v.iter().map(|f| f.to_bits()).collect::<Vec<_>>();
+        let mut want = vec![0f32; m * out];
+        for i in 0..m {
+            for o in 0..out {
+                let mut u = 0f32;
+                for r in 0..rank {
+                    u += z[i * rank + r] * bt[r * out + o];
+                }
+                want[i * out + o] = u;
+            }
+        }
+        for block in [16, 32, 70] {
+            for o0 in (0..out).step_by(block) {
+                let width = block.min(out - o0);
+                let mut u = vec![f32::NAN; m * width];
+                low_rank_outputs(&z, rank, &bt[o0..], out, &mut u);
+                for i in 0..m {
+                    let w = &want[i * out + o0..i * out + o0 + width];
+                    assert_eq!(
+                        bits(&u[i * width..(i + 1) * width]),
+                        bits(w),
+                        "block {block} at {o0}"
+                    );
+                }
+            }
         }
     }
 }

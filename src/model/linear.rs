@@ -8,7 +8,7 @@ use crate::error::{Error, Result};
 use crate::kernels::bf16::Bf16Matrix;
 use crate::kernels::blocks::CodeMatrix;
 use crate::kernels::dense::{
-    dot, matmul, matmul_half, matmul_panels, pack_panels_into, panel_len, Half,
+    dot, low_rank_outputs, matmul, matmul_half, matmul_panels, pack_panels_into, panel_len, Half,
 };
 use crate::kernels::ggml::{GgmlMatrix, GgmlType};
 use crate::kernels::nf4::{self, Codebook, Quantised};
@@ -289,41 +289,62 @@ impl Linear {
                 }
             }
         }
-        if self.terms.is_empty() {
+        for term in &self.terms {
+            self.add_low_rank(term, x, n, y, rows);
+        }
+    }
+
+    /// Adds one variant's low-rank term, s·((x·Aᵀ)·Bᵀ + b_B), to the outputs of its rows (peft's
+    /// order of operations), all of the variant's rows together: each row of A and of Bᵀ is
+    /// read once for all of them.
+    fn add_low_rank(&self, term: &Term, x: &[f32], n: usize, y: &mut [f32], rows: &[usize]) {
+        let lr = &term.lr;
+        let sel: Vec<usize> = (0..n)
+            .filter(|&t| rows.get(t) == Some(&term.variant))
+            .collect();
+        let (m, rank, inp) = (sel.len(), lr.rank, self.inp);
+        if m == 0 || rank == 0 {
             return;
         }
-        let one = |(t, yr): (usize, &mut [f32])| {
-            let xr = &x[t * self.inp..(t + 1) * self.inp];
-            let mut z = Vec::new();
-            for term in self
-                .terms
-                .iter()
-                .filter(|tm| rows.get(t) == Some(&tm.variant))
-            {
-                let lr = &term.lr;
-                // z = x·Aᵀ, then u = z·Bᵀ + b_B, then y += u·s (peft's order of operations).
-                z.clear();
-                z.extend(lr.a.chunks_exact(lr.inp).map(|ar| dot(ar, xr)));
-                let dst = &mut yr[term.at..term.at + lr.out];
-                for (o, (v, br)) in dst.iter_mut().zip(lr.b.chunks_exact(lr.rank)).enumerate() {
-                    let mut u = dot(br, &z);
+        let big = m * rank * inp.max(lr.out) >= PARALLEL_WORK;
+        // z = x·Aᵀ, [m, rank]: one task per row of A.
+        let za = |ar: &[f32]| -> Vec<f32> {
+            sel.iter()
+                .map(|&t| dot(ar, &x[t * inp..(t + 1) * inp]))
+                .collect()
+        };
+        let zt: Vec<Vec<f32>> = if big {
+            lr.a.par_chunks_exact(inp).map(za).collect()
+        } else {
+            lr.a.chunks_exact(inp).map(za).collect()
+        };
+        let z: Vec<f32> = (0..m)
+            .flat_map(|i| zt.iter().map(move |zr| zr[i]))
+            .collect();
+        // u = z·Bᵀ, [m, out], in blocks of outputs ([m, width] each, one task per block).
+        const BLOCK: usize = 256;
+        let mut u = vec![0f32; m * lr.out];
+        let fill = |(b, ub): (usize, &mut [f32])| {
+            low_rank_outputs(&z, rank, &lr.bt[b * BLOCK..], lr.out, ub);
+        };
+        if big {
+            u.par_chunks_mut(m * BLOCK).enumerate().for_each(fill);
+        } else {
+            u.chunks_mut(m * BLOCK).enumerate().for_each(fill);
+        }
+        for (b, ub) in u.chunks(m * BLOCK).enumerate() {
+            let width = ub.len() / m;
+            let o0 = b * BLOCK;
+            for (&t, ui) in sel.iter().zip(ub.chunks_exact(width)) {
+                let dst = &mut y[t * self.out + term.at + o0..][..width];
+                for (o, (v, &uo)) in dst.iter_mut().zip(ui).enumerate() {
+                    let mut uo = uo;
                     if let Some(bb) = &lr.b_bias {
-                        u += bb[o];
+                        uo += bb[o0 + o];
                     }
-                    *v += u * lr.scaling;
+                    *v += uo * lr.scaling;
                 }
             }
-        };
-        let per_row: usize = self
-            .terms
-            .iter()
-            .map(|t| t.lr.rank * (t.lr.inp + t.lr.out))
-            .sum();
-        let y = &mut y[..n * self.out];
-        if n > 1 && n * per_row >= PARALLEL_WORK {
-            y.par_chunks_mut(self.out).enumerate().for_each(one);
-        } else {
-            y.chunks_mut(self.out).enumerate().for_each(one);
         }
     }
 }

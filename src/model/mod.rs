@@ -308,8 +308,15 @@ fn merged(
 /// NaN or Inf in an unmerged adapter's factors is refused naming its weights file.
 fn check_terms_finite(adapter: &lora::Adapter, terms: &[lora::LowRank]) -> Result<()> {
     for t in terms {
-        for (key, values) in [(&t.keys.0, &t.a), (&t.keys.1, &t.b)] {
+        // Bᵀ is held, so its flat index is turned back into B's ([out, rank]) for the message.
+        let b_index = |i: usize| (i % t.out) * t.rank + i / t.out;
+        let a_index = |i: usize| i;
+        for (key, values, index) in [
+            (&t.keys.0, &t.a, &a_index as &dyn Fn(usize) -> usize),
+            (&t.keys.1, &t.bt, &b_index),
+        ] {
             if let Some((i, v)) = weights::first_non_finite(values) {
+                let i = index(i);
                 return Err(Error::field(
                     adapter.weights_path(),
                     None,

@@ -24,8 +24,8 @@ pub struct LowRank {
     pub out: usize,
     /// A [rank, inp], row-major.
     pub a: Vec<f32>,
-    /// B [out, rank], row-major.
-    pub b: Vec<f32>,
+    /// B transposed, Bᵀ [rank, out], row-major: the term's products run along the outputs.
+    pub bt: Vec<f32>,
     /// lora_B's bias [out] (`lora_bias`), added before the scaling.
     pub b_bias: Option<Vec<f32>>,
     /// s = α/r (α/√r with rsLoRA), as f32: torch multiplies the f32 output by the Python float
@@ -63,7 +63,7 @@ pub fn unmerged(
             inp,
             out,
             a: flat(&lora.a)?,
-            b: flat(&lora.b)?,
+            bt: flat(&lora.b.t()?)?,
             b_bias: lora.b_bias.as_ref().map(|(_, t)| flat(t)).transpose()?,
             scaling: lora.scaling as f32,
         });
