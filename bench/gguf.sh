@@ -13,8 +13,8 @@
 #   BEFORE=path bench/gguf.sh                       # another liftgate binary on the same files
 #   CONFIGS="q8_0 q4_k" bench/gguf.sh               # some of f32 bf16 q8_0 q4_k q4_k_m q3_k_m
 #
-# No llama.cpp column: no registry package installs a llama.cpp CPU build here without compiling
-# it (README, "GGUF speed").
+# No llama.cpp column: llama.cpp needs a file that carries its tokenizer, which these random-init
+# files lack; bench/llama_cpp.sh compares the two on a real GGUF file (README, "GGUF speed").
 #
 # First run (or a GGUF file missing): writes the model (~3.6 GB: bench/models/random-05b-{f32,bf16}/
 # and random-05b-{q8_0,q4_k,q4_k_m,q3_k_m}.gguf, git-ignored; remove them when done) with
