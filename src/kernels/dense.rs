@@ -550,7 +550,8 @@ type RowSums = [std::arch::x86_64::__m512; 4];
 /// loop is bound by the multiply-adds rather than by loads.
 ///
 /// # Safety
-/// The CPU has AVX-512F; `panel` holds inp·64 values and `x` a whole number of rows of `inp`.
+/// The CPU has AVX-512F; `panel` holds inp·64 values (any more are only fetched ahead) and `x` a
+/// whole number of rows of `inp`.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
 unsafe fn panel_many_avx512<T: PanelRead>(
@@ -561,7 +562,8 @@ unsafe fn panel_many_avx512<T: PanelRead>(
 ) {
     debug_assert!(panel.len() >= inp * PANEL);
     // Every span is read where it is stored; the first pass over a span fetches the next span
-    // ahead of its use (the last span, whatever of the next panel `panel` goes on to).
+    // ahead of its use, and the last span's first pass fetches whatever `panel` holds past the
+    // panel (the start of the next one).
     let readable = panel.len() / PANEL;
     let mut span = |k0: usize, k1: usize| {
         let at = panel[k0 * PANEL..].as_ptr();
@@ -995,7 +997,7 @@ mod tests {
     }
 
     /// The dispatched dot (16-wide vectors where the CPU has AVX-512) sums exactly as the
-    /// portable loop does, on values whose sums round differently in another order.
+    /// portable loop does, bit for bit, on lengths with and without a remainder.
     #[test]
     fn dot_is_the_portable_sum_bit_for_bit() {
         for n in [3, 16, 33, 250, 2048] {
