@@ -11,15 +11,17 @@ import json
 import sys
 from pathlib import Path
 
-import gguf
+ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT / "tests" / "reference"))
+from gguf_copy import copy_tensors_and_close, writer_from  # noqa: E402
 
-DEMO = Path(__file__).resolve().parents[2] / "demo" / "models" / "base" / "tokenizer.json"
+DEMO = ROOT / "demo" / "models" / "base" / "tokenizer.json"
 
 
 def main():
     src, dst = sys.argv[1], sys.argv[2]
     tok = json.loads(DEMO.read_text())
-    reader = gguf.GGUFReader(src)
+    reader, writer = writer_from(src, dst)
     n = int(reader.fields["llama.vocab_size"].contents())
     tokens = [f"<unused{i}>" for i in range(n)]
     types = [5] * n  # unused
@@ -28,26 +30,12 @@ def main():
     for a in tok["added_tokens"]:
         tokens[a["id"]], types[a["id"]] = a["content"], 3 if a["special"] else 4
     merges = [m if isinstance(m, str) else " ".join(m) for m in tok["model"]["merges"]]
-    writer = gguf.GGUFWriter(dst, reader.fields["general.architecture"].contents())
-    for field in reader.fields.values():
-        if field.name == gguf.Keys.General.ARCHITECTURE or field.name.startswith("GGUF."):
-            continue
-        val_type = field.types[0]
-        sub_type = field.types[-1] if val_type == gguf.GGUFValueType.ARRAY else None
-        writer.add_key_value(field.name, field.contents(), val_type, sub_type=sub_type)
     writer.add_tokenizer_model("gpt2")
     writer.add_tokenizer_pre("gpt-2")
     writer.add_token_list(tokens)
     writer.add_token_types(types)
     writer.add_token_merges(merges)
-    for t in reader.tensors:
-        writer.add_tensor_info(t.name, t.data.shape, t.data.dtype, t.data.nbytes, t.tensor_type)
-    writer.write_header_to_file()
-    writer.write_kv_data_to_file()
-    writer.write_ti_data_to_file()
-    for t in reader.tensors:
-        writer.write_tensor_data(t.data, tensor_endianess=reader.endianess)
-    writer.close()
+    copy_tensors_and_close(reader, writer)
 
 
 if __name__ == "__main__":

@@ -60,8 +60,8 @@ import sys
 import tempfile
 from pathlib import Path
 
-import gguf
 import transformers
+from gguf_copy import copy_tensors_and_close, writer_from
 from transformers import AutoTokenizer
 
 transformers.logging.set_verbosity_error()
@@ -128,17 +128,9 @@ def write_with_tokenizer(src: Path, dst: Path, runner: str, pre: str, bos, add_b
                          user_defined=()) -> None:
     tok_json = json.loads((RUNNER / runner / "model" / "tokenizer.json").read_text())
     tokens, types = token_types(tok_json, set(user_defined))
-    reader = gguf.GGUFReader(str(src))
-    arch = reader.fields["general.architecture"].contents()
-    writer = gguf.GGUFWriter(str(dst), arch)
-    for field in reader.fields.values():
-        if field.name == gguf.Keys.General.ARCHITECTURE or field.name.startswith("GGUF."):
-            continue
-        if field.name.startswith("tokenizer.") and field.name != "tokenizer.ggml.eos_token_id":
-            continue
-        val_type = field.types[0]
-        sub_type = field.types[-1] if val_type == gguf.GGUFValueType.ARRAY else None
-        writer.add_key_value(field.name, field.contents(), val_type, sub_type=sub_type)
+    reader, writer = writer_from(
+        src, dst, skip=lambda name: name.startswith("tokenizer.") and name != "tokenizer.ggml.eos_token_id"
+    )
     writer.add_tokenizer_model("gpt2")
     writer.add_tokenizer_pre(pre)
     writer.add_token_list(tokens)
@@ -153,21 +145,6 @@ def write_with_tokenizer(src: Path, dst: Path, runner: str, pre: str, bos, add_b
     if template is not None:
         writer.add_chat_template(template)
     copy_tensors_and_close(reader, writer)
-
-
-def copy_tensors_and_close(reader, writer, tensors=True):
-    """Writes the header and metadata gathered in `writer`, then `reader`'s tensors unchanged
-    (none when `tensors` is false)."""
-    tensors = reader.tensors if tensors else []
-    for tensor in tensors:
-        writer.add_tensor_info(tensor.name, tensor.data.shape, tensor.data.dtype, tensor.data.nbytes,
-                               tensor.tensor_type)
-    writer.write_header_to_file()
-    writer.write_kv_data_to_file()
-    writer.write_ti_data_to_file()
-    for tensor in tensors:
-        writer.write_tensor_data(tensor.data, tensor_endianess=reader.endianess)
-    writer.close()
 
 
 SPM_PIECES = [
@@ -201,17 +178,7 @@ def spm_vocabulary() -> tuple[list, list, list]:
 def spm_writer(src: Path, dst: Path):
     """A reader of `src` and a writer of `dst` holding `src`'s model metadata (its architecture
     kept) without its tokenizer keys or vocabulary size: the caller adds its own vocabulary."""
-    reader = gguf.GGUFReader(str(src))
-    writer = gguf.GGUFWriter(str(dst), reader.fields["general.architecture"].contents())
-    for field in reader.fields.values():
-        if field.name == gguf.Keys.General.ARCHITECTURE or field.name.startswith("GGUF."):
-            continue
-        if field.name.startswith("tokenizer.") or field.name.endswith(".vocab_size"):
-            continue
-        val_type = field.types[0]
-        sub_type = field.types[-1] if val_type == gguf.GGUFValueType.ARRAY else None
-        writer.add_key_value(field.name, field.contents(), val_type, sub_type=sub_type)
-    return reader, writer
+    return writer_from(src, dst, skip=lambda name: name.startswith("tokenizer.") or name.endswith(".vocab_size"))
 
 
 def write_spm(src: Path, dst: Path, add_bos, template) -> None:
