@@ -89,6 +89,19 @@
 //! of one or two words ("Euros!") leads in like courtesy. "I'm not here to tell you what to do"
 //! is a saying that declines nothing (`NOT_DECLINES`).
 //!
+//! With the question known, also: a command ("Make me a weekly meal plan.") answered by "you
+//! can't" and the command's own verb opening a sentence ("You can't make a weekly meal plan.")
+//! is denied to the asker, where a rule stated to a question ("Can I make a booking ...?")
+//! is not; the question's words echoed in the first sentence lead in when that sentence has
+//! "sorry" ("You're looking for a key to your bicycle, I'm sorry to hear that.") or the
+//! question is a command; after the assistant has described or framed itself, "not to" and
+//! words naming what was asked exclude it ("designed to talk to people, not to open doors");
+//! and an offer of a thing ("However, I can provide you with a daily plan that includes
+//! vegetarian options", `THING_OFFER_HEADS`) takes a decline back when the thing, up to a
+//! word such as "that", "which" or "to" (`OFFER_OBJECT_ENDS`), names what was asked. With or
+//! without it, "but I'll try" or "but I can help with that" after a decline takes it back
+//! (`TAKE_BACKS`), and a one-word exclamation ("Awesome, I'm sorry ...") is courtesy.
+//!
 //! So an answer that merely contains "sorry" ("Sorry for the wait: the 7:40 crossing runs
 //! daily") or that apologises and then answers is not a refusal. Precision and recall on the
 //! labelled sets `tests/fixtures/refusal_*.jsonl` (invented answers and real model output) are
@@ -506,6 +519,12 @@ const COURTESY_WORDS: &[&str] = &[
     "say",
     "let",
     "know",
+    // One-word exclamations and "sorry to hear that" before a decline.
+    "awesome",
+    "wow",
+    "ah",
+    "sure",
+    "hear",
 ];
 
 /// Words that, after a contrast word, show the answer redirects or restates its scope rather
@@ -580,6 +599,32 @@ const OFFER_HEADS: &[&str] = &[
     "we can certainly assist with",
     "we can certainly help you with",
     "we can certainly help with",
+];
+
+/// Offers of a thing rather than of help, after a contrast word and with the question known:
+/// "However, I can provide you with a daily plan that includes vegetarian options" asked for a
+/// vegetarian meal plan. Unlike [`OFFER_HEADS`], the hedge rule
+/// still reads what follows as content when the offer rule does not take the decline back.
+const THING_OFFER_HEADS: &[&str] = &[
+    "i can provide you with",
+    "i can offer you",
+    "i can give you",
+];
+
+/// Words that end the thing an offer names: "a daily plan that includes ..." names "a daily
+/// plan", "some information about divorce, which can be found ..." names "divorce".
+const OFFER_OBJECT_ENDS: &[&str] = &["that", "which", "who", "where", "including", "such", "to"];
+
+/// What, after a contrast word, takes a decline back as a whole: "I'm not familiar with the
+/// phrase, but I can help with that"; "I'm not sure what to say, but I'll try."
+const TAKE_BACKS: &[&str] = &[
+    "i will try",
+    "i will do my best",
+    "i can help with that",
+    "i can help you with that",
+    "i can assist with that",
+    "i can assist you with that",
+    "i can do that",
 ];
 
 /// Words that make an offer generic, so that it redirects rather than takes a decline back:
@@ -1151,6 +1196,10 @@ pub struct RefusalDetector {
     own_inability: Trie,
     /// [`HERE_OFFER_HEADS`], offers with or without a contrast word when the question is known.
     here_offer_head: Trie,
+    /// [`TAKE_BACKS`], after a contrast word.
+    take_back: Trie,
+    /// [`THING_OFFER_HEADS`], after a contrast word.
+    thing_offer_head: Trie,
     courtesy: HashSet<&'static str, BuildHasherDefault<FxHasher>>,
 }
 
@@ -1207,6 +1256,10 @@ impl Default for RefusalDetector {
         own_inability.insert_phrases(OWN_LIMITS);
         let mut here_offer_head = Trie::new();
         here_offer_head.insert_phrases(HERE_OFFER_HEADS);
+        let mut take_back = Trie::new();
+        take_back.insert_phrases(TAKE_BACKS);
+        let mut thing_offer_head = Trie::new();
+        thing_offer_head.insert_phrases(THING_OFFER_HEADS);
         RefusalDetector {
             opening,
             anywhere,
@@ -1220,6 +1273,8 @@ impl Default for RefusalDetector {
             helpful_info_offer,
             own_inability,
             here_offer_head,
+            take_back,
+            thing_offer_head,
             courtesy: COURTESY_WORDS.iter().copied().collect(),
         }
     }
@@ -1283,7 +1338,15 @@ impl RefusalDetector {
                     || self_described
                     || n.question_end[i]
                     || n.interjection_end[i]
-                    || (numbering && i > n.sentence_start[i]);
+                    || (numbering && i > n.sentence_start[i])
+                    || (n.sentence_start[i] == 0
+                        && question.get().is_some_and(|a| {
+                            a.echoed_in(&n.toks[..i])
+                                && (a.is_command()
+                                    || n.toks[..i]
+                                        .iter()
+                                        .any(|t| matches!(t, Tok::Word(w) if w == "sorry")))
+                        }));
                 numbering = true;
                 framed_lead |= lead_in && (framed || self_described);
                 all_courtesy = true;
@@ -1316,7 +1379,14 @@ impl RefusalDetector {
                     && matches!(n.toks.first(), Some(Tok::Word(w)) if w == "no" || w == "yes");
                 if let (None, false) = (found, yes_or_no) {
                     if let Some(asked) = question.get() {
-                        found = self.limit_on_asked(asked, &n.toks, i);
+                        found = self
+                            .limit_on_asked(asked, &n.toks, i)
+                            .or_else(|| asked.denied_to_asker(&n.toks, i))
+                            .or_else(|| {
+                                (framed || framed_lead || self_described)
+                                    .then(|| asked.excluded_from_scope(&n.toks, i))
+                                    .flatten()
+                            });
                     }
                 }
             }
@@ -1541,6 +1611,11 @@ impl RefusalDetector {
         else {
             return false;
         };
+        if let Some(e) = self.take_back.match_at(toks, c + 1) {
+            if !self.declines_in(&toks[e..]) {
+                return true;
+            }
+        }
         if asked.is_some()
             && (self.offer_head.match_at(toks, c + 1).is_some()
                 || self.info_offer_head.match_at(toks, c + 1).is_some())
@@ -1601,6 +1676,11 @@ impl RefusalDetector {
                     self.specific_offer_after_head(&self.offer_head, toks, k)
                         .or_else(|| {
                             asked.and_then(|_| {
+                                self.specific_offer_after_head(&self.thing_offer_head, toks, k)
+                            })
+                        })
+                        .or_else(|| {
+                            asked.and_then(|_| {
                                 self.specific_offer_after_head(&self.info_offer_head, toks, k)
                             })
                         })
@@ -1654,7 +1734,10 @@ impl RefusalDetector {
     ) -> Option<(&'t [Tok<'a>], usize)> {
         let e = heads.match_at(toks, k)?;
         let stop = (e..toks.len())
-            .find(|&j| matches!(toks[j], Tok::End))
+            .find(|&j| match &toks[j] {
+                Tok::End => true,
+                Tok::Word(w) => j > e && OFFER_OBJECT_ENDS.contains(&w.as_ref()),
+            })
             .unwrap_or(toks.len());
         specific(&toks[e..stop]).then_some((&toks[e..stop], stop))
     }
@@ -1777,6 +1860,39 @@ const OWN_LIMITS: &[&str] = &[
 /// Only offers addressed to the asker: "I'm here to assist with booking" states the assistant's
 /// scope.
 const HERE_OFFER_HEADS: &[&str] = &["i am here to help you with", "i am here to assist you with"];
+
+/// Verbs that open a command for something to be made, told or done ("Make me a meal plan.",
+/// "Tell me how to ...").
+const COMMAND_VERBS: &[&str] = &[
+    "make",
+    "write",
+    "tell",
+    "give",
+    "generate",
+    "create",
+    "draft",
+    "compose",
+    "list",
+    "explain",
+    "describe",
+    "translate",
+    "find",
+    "plan",
+    "show",
+    "send",
+    "calculate",
+    "summarise",
+    "summarize",
+    "design",
+    "argue",
+    "predict",
+    "pretend",
+    "recommend",
+    "suggest",
+    "sing",
+    "read",
+    "draw",
+];
 
 /// How many words after a limit or a role denial name its object.
 const ASKED_OBJECT_WORDS: usize = 5;
@@ -1977,6 +2093,9 @@ impl<'q> LazyAsked<'q> {
 #[derive(Debug, Clone, Default)]
 pub struct Asked {
     stems: Vec<String>,
+    /// When the question is a command ("Make me a weekly meal plan."; [`Asked::new`]), the
+    /// stems of all its words, verbs of asking included.
+    command: Vec<String>,
 }
 
 impl Asked {
@@ -2012,7 +2131,66 @@ impl Asked {
                 stems.push(st.into_owned());
             }
         }
-        Asked { stems }
+        // A command: no question mark, and a sentence that opens with a verb of asking for
+        // something to be made or told ([`COMMAND_VERBS`]).
+        let mut opens = true;
+        let mut commands = false;
+        for (tok, _) in &toks {
+            match tok {
+                Tok::Word(w) => {
+                    commands |= opens && COMMAND_VERBS.contains(&w.as_ref());
+                    opens = false;
+                }
+                Tok::End => opens = true,
+            }
+        }
+        let command = if commands && !question.contains('?') {
+            toks.iter()
+                .filter_map(|(t, _)| match t {
+                    Tok::Word(w) => Some(stem(w).into_owned()),
+                    Tok::End => None,
+                })
+                .collect()
+        } else {
+            Vec::new()
+        };
+        Asked { stems, command }
+    }
+
+    /// With a command for a question, "you can't" and the command's own verb opening a
+    /// sentence denies the asker what was commanded: "Make me a weekly meal plan." answered
+    /// "You can't make a weekly meal plan." (a rule stated to a question such as "Can I bring
+    /// a stove?" is no command's answer). Where the matched words end.
+    fn denied_to_asker(&self, toks: &[Tok], i: usize) -> Option<usize> {
+        let word = |j: usize| match toks.get(j) {
+            Some(Tok::Word(w)) => Some(w.as_ref()),
+            _ => None,
+        };
+        let opens = i == 0 || matches!(toks[i - 1], Tok::End);
+        let verb = word(i + 3)?;
+        (opens
+            && (word(i), word(i + 1), word(i + 2)) == (Some("you"), Some("can"), Some("not"))
+            && self.command.iter().any(|q| *q == stem(verb)))
+        .then_some(i + 4)
+    }
+
+    /// After the assistant has described or framed itself, "not to" and words naming what was
+    /// asked exclude it from its scope: "I'm designed to talk to people, not to open doors"
+    /// asked how to open a car door. Where the matched words end.
+    fn excluded_from_scope(&self, toks: &[Tok], i: usize) -> Option<usize> {
+        if !matches!((toks.get(i), toks.get(i + 1)), (Some(Tok::Word(a)), Some(Tok::Word(b))) if a == "not" && b == "to")
+        {
+            return None;
+        }
+        let end = (i + 2..toks.len().min(i + 2 + ASKED_OBJECT_WORDS))
+            .find(|&j| matches!(toks[j], Tok::End))
+            .unwrap_or(toks.len().min(i + 2 + ASKED_OBJECT_WORDS));
+        self.named_in(&toks[i + 2..end]).then_some(end)
+    }
+
+    /// Whether the question is a command ("Make me a weekly meal plan.").
+    fn is_command(&self) -> bool {
+        !self.command.is_empty()
     }
 
     /// Whether the question has no content words (or is unknown).
