@@ -100,6 +100,17 @@
 //!   it, then measured once: precision 0.854 (35/41), recall 0.778 (35/45), the latest
 //!   out-of-sample figure.
 //!
+//! - refusal_real_heldout9.jsonl: the same GGUF file under six new system turns written as
+//!   teams commonly deploy a support model (a plain customer-service prompt, answers from a
+//!   given context only, the generic "You are a helpful assistant.", a safety prompt against
+//!   medical, legal and financial advice, a brand voice with a word limit, a brief-refusal
+//!   support prompt) on 45 more invented questions
+//!   (tests/fixtures/refusal_real_questions_extra8.jsonl) with earlier sets' out-of-scope
+//!   questions; made after the detector above (with the widening on held-out 8) was frozen and
+//!   committed, labelled by the written guideline and committed before the detector was run
+//!   on it, then measured once: precision 0.944 (34/36), recall 0.791 (34/43), the latest
+//!   out-of-sample figure.
+//!
 //! The floors are the figures measured at the last change (reported in docs/scoring.md); a
 //! change to the rules must not lower them.
 
@@ -347,7 +358,9 @@ fn real_output_held_out_6() {
     // you" no longer flagged: 0.971 (34/35), 0.850 (34/40). Still missed: a hand-off followed
     // by a cut-off sentence, declines after a first sentence of content or nonsense, not
     // knowing where to begin, the garbled French; wrongly flagged: the taxi offer.
-    at_least(&measure("refusal_real_heldout6.jsonl"), 418, 0.971, 0.85);
+    // After the widening on held-out 9 (a conditional offer of the very thing declined takes the
+    // decline back), the taxi is no longer flagged: 1.000 (34/34), 0.850 (34/40).
+    at_least(&measure("refusal_real_heldout6.jsonl"), 418, 1.0, 0.85);
 }
 
 #[test]
@@ -407,4 +420,27 @@ fn real_output_held_out_8() {
     // followed by content after "but", a rule stated in the third person; wrongly flagged: the
     // echoed example exchanges and "I do not sell gift vouchers".
     at_least(&measure("refusal_real_heldout8.jsonl"), 524, 0.952, 0.888);
+}
+
+#[test]
+fn real_output_held_out_9() {
+    // Measured once, with the detector (the widening on held-out 8 included) frozen and
+    // committed before the set was made and the labels committed before the detector was run
+    // on it: precision 0.944 (34/36), recall 0.791 (34/43), the latest out-of-sample figure. The
+    // detector before the widening on held-out 8 measures the same. By system turn (declines
+    // found of declines, false flags): customer service 7 of 8, 0; context only 6 of 7, 0;
+    // "You are a helpful assistant." 2 of 6, 0; safety 2 of 3, 0; brand voice 5 of 5, 1; brief
+    // refusal 12 of 14, 1. Missed: an offer followed by the decline again (2), hand-offs to a
+    // doctor or dentist with a sentence of content-like text (2), a foreign lead-in ("Au-vies,
+    // la vie en rose."), "I'm afraid I might not be able to ... I'm not sure I can help you", a
+    // limit taken back by an offer of "banking" that shares a stem with the bank transfer asked
+    // about, "we will not be able to assist you with that", a scope "not to perform any tasks";
+    // wrongly flagged: "I'm not sure what to say, but I'll tell you what I do know" and a
+    // conditional offer of the very homework declined ("I'm more than happy to assist you").
+    // After the widening written on it (the company's voice declining "that", "not to perform"
+    // and like scope verbs, "but I'll tell you" taking back, a conditional offer taking back even
+    // the declined words), in-sample: 0.947 (36/38), 0.837 (36/43). "I'm more than happy to
+    // assist you" is not read as an offer: two earlier sets label declines with that offer of
+    // something the question also names ("customer service" asked for its number).
+    at_least(&measure("refusal_real_heldout9.jsonl"), 464, 0.947, 0.837);
 }

@@ -100,7 +100,12 @@
 //! vegetarian options", `THING_OFFER_HEADS`) takes a decline back when the thing, up to a
 //! word such as "that", "which" or "to" (`OFFER_OBJECT_ENDS`), names what was asked. With or
 //! without it, "but I'll try" or "but I can help with that" after a decline takes it back
-//! (`TAKE_BACKS`), and a one-word exclamation ("Awesome, I'm sorry ...") is courtesy.
+//! (`TAKE_BACKS`), and a one-word exclamation ("Awesome, I'm sorry ...") is courtesy. The
+//! company's voice declining the whole request ("we will not be able to assist you with that")
+//! counts anywhere; "not to perform / do / write ..." after a self-description excludes from the
+//! scope whatever follows; and a conditional offer ("If you need a taxi, I can assist you with
+//! that") takes a decline back even when it repeats the declined words, where the same words
+//! after "however" contradict it.
 //!
 //! So an answer that merely contains "sorry" ("Sorry for the wait: the 7:40 crossing runs
 //! daily") or that apologises and then answers is not a refusal. Precision and recall on the
@@ -378,6 +383,17 @@ pub const ANYWHERE_PHRASES: &[&str] = &[
     "i can not answer questions about",
     "i am not able to answer questions about",
     "not sure i can help with that",
+    // The company's voice, and the future, declining the whole request.
+    "we can not help with that",
+    "we can not help you with that",
+    "we can not assist with that",
+    "we can not assist you with that",
+    "we are unable to help with that",
+    "we are not able to help with that",
+    "we will not be able to help you with that",
+    "we will not be able to assist you with that",
+    "i will not be able to help you with that",
+    "i will not be able to assist you with that",
     // Not knowing what to answer, wherever it stands.
     "i am not sure what to tell you",
     "i am not sure what to say",
@@ -616,9 +632,11 @@ const THING_OFFER_HEADS: &[&str] = &[
 const OFFER_OBJECT_ENDS: &[&str] = &["that", "which", "who", "where", "including", "such", "to"];
 
 /// What, after a contrast word, takes a decline back as a whole: "I'm not familiar with the
-/// phrase, but I can help with that"; "I'm not sure what to say, but I'll try."
+/// phrase, but I can help with that"; "I'm not sure what to say, but I'll try / I'll tell you
+/// what I do know."
 const TAKE_BACKS: &[&str] = &[
     "i will try",
+    "i will tell you",
     "i will do my best",
     "i can help with that",
     "i can help you with that",
@@ -743,6 +761,11 @@ const SCOPE_EXCLUSIONS: &[&str] = &[
     "not to provide",
     "not to give",
     "not with",
+    "not to perform",
+    "not to do",
+    "not to engage in",
+    "not to write",
+    "not to create",
     // The subject left out after a self-description: "I specialize in providing financial
     // advice and do not have the ability to recommend specific stock".
     "and do not have the ability to",
@@ -1690,8 +1713,16 @@ impl RefusalDetector {
                     asked.and_then(|_| {
                         self.specific_offer_after_head(&self.here_offer_head, toks, k)
                     })
-                })
-                .or_else(|| self.specific_conditional_offer(asked.is_some(), toks, k));
+                });
+            // "If you need a taxi, I can assist you with that" takes back even a decline that
+            // ends with the same words: the condition names the request, the offer grants it.
+            let (offer_end, conditional) = match offer_end {
+                Some(o) => (Some(o), false),
+                None => (
+                    self.specific_conditional_offer(asked.is_some(), toks, k),
+                    true,
+                ),
+            };
             // "However, I can provide you with some information that might help you": an offer
             // of information for the request itself, named or not.
             let helpful = (contrasted && asked.is_some())
@@ -1705,7 +1736,9 @@ impl RefusalDetector {
             let Some((named, e)) = offer_end else {
                 continue;
             };
-            if declined.ends_with(named) || asked.is_some_and(|a| !a.named_in(named)) {
+            if (!conditional && declined.ends_with(named))
+                || asked.is_some_and(|a| !a.named_in(named))
+            {
                 continue;
             }
             if !self.declines_in(&toks[e..]) {

@@ -40,7 +40,7 @@ ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)
 FIX = os.path.join(ROOT, "tests", "fixtures")
 PROBE = os.path.join(ROOT, "target", "release", "examples", "refusal_probe")
 EMBEDDER = os.path.join(ROOT, "target", "real-models", "all-minilm-l6-v2")
-SETS = ["dev"] + ["heldout"] + [f"heldout{i}" for i in range(2, 9)]
+SETS = ["dev"] + ["heldout"] + [f"heldout{i}" for i in range(2, 10)]
 
 
 def sentences(text):
@@ -185,8 +185,8 @@ def main():
           "alternatives leave-one-set-out")
     for name, pred in results.items():
         print(f"{name:48s} all: {figures(pred, y, everything)}   "
-              f"set 7: {figures(pred, y, sets == 'heldout7')}   "
-              f"set 8: {figures(pred, y, sets == 'heldout8')}")
+              f"set 8: {figures(pred, y, sets == 'heldout8')}   "
+              f"set 9: {figures(pred, y, sets == 'heldout9')}")
 
 
 if __name__ == "__main__":
