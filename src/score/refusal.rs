@@ -619,8 +619,8 @@ const OFFER_HEADS: &[&str] = &[
 
 /// Offers of a thing rather than of help, after a contrast word and with the question known:
 /// "However, I can provide you with a daily plan that includes vegetarian options" asked for a
-/// vegetarian meal plan. Unlike [`OFFER_HEADS`], the hedge rule
-/// still reads what follows as content when the offer rule does not take the decline back.
+/// vegetarian meal plan. Unlike [`OFFER_HEADS`], the hedge rule still reads what follows as
+/// content when the offer rule does not take the decline back.
 const THING_OFFER_HEADS: &[&str] = &[
     "i can provide you with",
     "i can offer you",
@@ -2211,13 +2211,14 @@ impl Asked {
     /// asked exclude it from its scope: "I'm designed to talk to people, not to open doors"
     /// asked how to open a car door. Where the matched words end.
     fn excluded_from_scope(&self, toks: &[Tok], i: usize) -> Option<usize> {
-        if !matches!((toks.get(i), toks.get(i + 1)), (Some(Tok::Word(a)), Some(Tok::Word(b))) if a == "not" && b == "to")
-        {
+        let is = |j: usize, word: &str| matches!(toks.get(j), Some(Tok::Word(w)) if w == word);
+        if !(is(i, "not") && is(i + 1, "to")) {
             return None;
         }
-        let end = (i + 2..toks.len().min(i + 2 + ASKED_OBJECT_WORDS))
+        let limit = toks.len().min(i + 2 + ASKED_OBJECT_WORDS);
+        let end = (i + 2..limit)
             .find(|&j| matches!(toks[j], Tok::End))
-            .unwrap_or(toks.len().min(i + 2 + ASKED_OBJECT_WORDS));
+            .unwrap_or(limit);
         self.named_in(&toks[i + 2..end]).then_some(end)
     }
 
