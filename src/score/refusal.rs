@@ -1475,10 +1475,7 @@ impl RefusalDetector {
     /// What one sentence (`sent`, without its end) is to the bare-decline rule
     /// ([`RefusalDetector::declines_bare`]).
     fn bare_sentence(&self, asked: Option<&Asked>, sent: &[Tok], first: bool) -> Bare {
-        let word = |j: usize| match sent.get(j) {
-            Some(Tok::Word(w)) => Some(w.as_ref()),
-            _ => None,
-        };
+        let word = |j: usize| word_at(sent, j);
         let profession_within = |from: usize, words: usize| {
             (from..sent.len().min(from + words))
                 .map_while(word)
@@ -1789,10 +1786,7 @@ impl RefusalDetector {
         k: usize,
     ) -> Option<(&'t [Tok<'a>], usize)> {
         let mut e = self.offer_condition.match_at(toks, k)?;
-        let word = |j: usize| match toks.get(j) {
-            Some(Tok::Word(w)) => Some(w.as_ref()),
-            _ => None,
-        };
+        let word = |j: usize| word_at(toks, j);
         if matches!(word(e), Some("assistance" | "help")) && word(e + 1) == Some("with") {
             e += 2;
         }
@@ -2195,10 +2189,7 @@ impl Asked {
     /// "You can't make a weekly meal plan." (a rule stated to a question such as "Can I bring
     /// a stove?" is no command's answer). Where the matched words end.
     fn denied_to_asker(&self, toks: &[Tok], i: usize) -> Option<usize> {
-        let word = |j: usize| match toks.get(j) {
-            Some(Tok::Word(w)) => Some(w.as_ref()),
-            _ => None,
-        };
+        let word = |j: usize| word_at(toks, j);
         let opens = i == 0 || matches!(toks[i - 1], Tok::End);
         let verb = word(i + 3)?;
         (opens
@@ -2211,8 +2202,7 @@ impl Asked {
     /// asked exclude it from its scope: "I'm designed to talk to people, not to open doors"
     /// asked how to open a car door. Where the matched words end.
     fn excluded_from_scope(&self, toks: &[Tok], i: usize) -> Option<usize> {
-        let is = |j: usize, word: &str| matches!(toks.get(j), Some(Tok::Word(w)) if w == word);
-        if !(is(i, "not") && is(i + 1, "to")) {
+        if (word_at(toks, i), word_at(toks, i + 1)) != (Some("not"), Some("to")) {
             return None;
         }
         let limit = toks.len().min(i + 2 + ASKED_OBJECT_WORDS);
@@ -2328,6 +2318,14 @@ fn specific(named: &[Tok]) -> bool {
             Tok::Word(w) => !GENERIC_OFFER_WORDS.contains(&w.as_ref()),
             Tok::End => false,
         })
+}
+
+/// The word at `j`, if `toks` has one there (not a sentence end).
+fn word_at<'t>(toks: &'t [Tok], j: usize) -> Option<&'t str> {
+    match toks.get(j) {
+        Some(Tok::Word(w)) => Some(w.as_ref()),
+        _ => None,
+    }
 }
 
 /// A word that links a clause to an opening phrase ("..., so I can't advise on that").
