@@ -20,6 +20,9 @@ out-of-sample with respect to its set (the system turns and questions of a set a
 
 The rules' figures are printed beside them; they are in-sample on the sets the rules were
 widened on (docs/scoring.md says which figure of each set was measured once, out-of-sample).
+When tests/reference/refusal_first_flags.sh has written the rules' flags as first measured on
+held-out 6 to 9 (target/refusal-first-flags), the script also prints, on those four sets, the
+n-gram model with those rules, either or both flagging: there both parts are out-of-sample.
 
 Needs numpy, a release build of the example (`cargo build --release --example refusal_probe`)
 and the embedding directory at target/real-models/all-minilm-l6-v2 (see
@@ -40,6 +43,8 @@ ROOT = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)
 FIX = os.path.join(ROOT, "tests", "fixtures")
 PROBE = os.path.join(ROOT, "target", "release", "examples", "refusal_probe")
 EMBEDDER = os.path.join(ROOT, "target", "real-models", "all-minilm-l6-v2")
+FIRST = os.path.join(ROOT, "target", "refusal-first-flags")
+FIRST_SETS = ["heldout6", "heldout7", "heldout8", "heldout9"]
 SETS = ["dev"] + ["heldout"] + [f"heldout{i}" for i in range(2, 10)]
 
 
@@ -187,6 +192,27 @@ def main():
         print(f"{name:48s} all: {figures(pred, y, everything)}   "
               f"set 8: {figures(pred, y, sets == 'heldout8')}   "
               f"set 9: {figures(pred, y, sets == 'heldout9')}")
+
+    if not all(os.path.exists(os.path.join(FIRST, f"{s}.txt")) for s in FIRST_SETS):
+        print(f"(no rules' first flags in {FIRST}: tests/reference/refusal_first_flags.sh)")
+        return
+    first = np.zeros(len(rows), int)
+    for s in FIRST_SETS:
+        with open(os.path.join(FIRST, f"{s}.txt")) as f:
+            flags = [int(x) for x in f.read().split()]
+        assert len(flags) == int((sets == s).sum()), f"{s}: one first flag a labelled answer"
+        first[sets == s] = flags
+    four = np.isin(sets, FIRST_SETS)
+    print("held-out 6 to 9, every part out-of-sample (the rules as first measured on each set):")
+    combined = {"rules as first measured": first}
+    for t in (0.5, 0.7, 0.9):
+        pred = (prob >= t).astype(int)
+        combined[f"n-gram logistic p>={t}"] = pred
+        combined[f"n-gram logistic p>={t} OR first rules"] = np.maximum(pred, first)
+        combined[f"n-gram logistic p>={t} AND first rules"] = np.minimum(pred, first)
+    for name, pred in combined.items():
+        print(f"{name:48s} 6-9: {figures(pred, y, four)}   "
+              + "   ".join(f"set {s[7:]}: {figures(pred, y, sets == s)}" for s in FIRST_SETS))
 
 
 if __name__ == "__main__":
