@@ -56,11 +56,14 @@ fn hostile_answers_cannot_break_report_md() {
             "pets\n## cat"
         };
         let reference = format!("The {i} o'clock boat leaves from pier {i}.");
+        // Every third question is out of scope, so the refusal calls quote hostile text too.
+        let expect = if i % 3 == 2 { "refuse" } else { "answer" };
         set += &json!({
             "id": id,
             "question": format!("Question {i} `with` <em>markup</em> | pipe\nand a line break?"),
-            "references": [reference],
-            "category": category
+            "references": if expect == "refuse" { vec![] } else { vec![reference.clone()] },
+            "category": category,
+            "expect": expect
         })
         .to_string();
         set.push('\n');
@@ -119,6 +122,9 @@ fn hostile_answers_cannot_break_report_md() {
             "## Gate checks",
             "## Questions that got worse",
             "## Questions that got better",
+            "## Refusal calls to check",
+            "### Out-of-scope questions, every one",
+            "### In-scope questions with an answer counted as declined",
             "## Cautions",
             "## Inputs"
         ],
@@ -137,15 +143,25 @@ fn hostile_answers_cannot_break_report_md() {
             header_cells = None;
         }
     }
-    // The "worse" table lists the hostile answers (all scored lower than the reference copy),
-    // one row each.
-    let worse = md
-        .split("## Questions that got worse")
-        .nth(1)
-        .and_then(|s| s.split("## ").next())
-        .unwrap();
+    // The "worse" table lists the in-scope hostile answers (all scored lower than the
+    // reference copy), one row each; the refusal calls list every out-of-scope one.
+    let section = |title: &str| {
+        md.split(title)
+            .nth(1)
+            .and_then(|s| s.split("\n#").next())
+            .unwrap()
+    };
+    let out_of_scope = (0..HOSTILE.len()).filter(|i| i % 3 == 2).count();
+    let worse = section("## Questions that got worse");
     let rows = worse.lines().filter(|l| l.starts_with("| q")).count();
-    assert_eq!(rows, HOSTILE.len(), "{worse}");
+    assert_eq!(rows, HOSTILE.len() - out_of_scope, "{worse}");
+    let calls = section("### Out-of-scope questions, every one");
+    let rows = calls.lines().filter(|l| l.starts_with("| q")).count();
+    assert_eq!(rows, out_of_scope, "{calls}");
+    assert!(
+        calls.contains("answered: \\`\\`\\`<br>rm -rf /<br>\\`\\`\\`"),
+        "{calls}"
+    );
     // No HTML but liftgate's own <br>: every other '<' is an entity.
     let without_br = md.replace("<br>", "");
     assert!(!without_br.contains('<'), "raw '<' in report: {md}");

@@ -231,6 +231,76 @@ fn no_lift_and_poor_refusals_is_no_go_with_reasons() {
 }
 
 #[test]
+fn refusal_calls_recount_the_refusal_shares() {
+    // 130 out-of-scope questions (more than the 100 listed of a kind) and two in-scope answers
+    // of the candidate counted as declined.
+    let case = Case::new(60, 130, 0.1, 70);
+    let cand: String = case
+        .t
+        .read("cand.jsonl")
+        .lines()
+        .map(|l| {
+            let mut row: serde_json::Value = serde_json::from_str(l).unwrap();
+            if row["id"] == "t-005" || row["id"] == "t-010" {
+                row["refused"] = true.into();
+            }
+            format!("{row}\n")
+        })
+        .collect();
+    case.t.write("cand.jsonl", cand);
+    case.weigh("r", &[]).expect_code(1);
+    let s = case.summary("r");
+    let calls = s.refusal["calls"].as_array().unwrap();
+    let of = |expect: &str| -> Vec<&serde_json::Value> {
+        calls.iter().filter(|c| c["expect"] == expect).collect()
+    };
+    let declined = |list: &[&serde_json::Value], variant: &str| {
+        list.iter()
+            .filter(|c| c[format!("{variant}_declined")] == true)
+            .count()
+    };
+    // Out of scope: the first 100 in the set's order; the baseline declines every other one,
+    // the candidate the first 70.
+    let oos = of("refuse");
+    assert_eq!(oos.len(), 100);
+    assert_eq!(oos[0]["id"], "x-000");
+    assert_eq!(oos[99]["id"], "x-099");
+    assert_eq!(
+        (declined(&oos, "baseline"), declined(&oos, "candidate")),
+        (50, 70)
+    );
+    assert_eq!(s.refusal["calls_left_off"], 30);
+    // In scope: exactly the answers counted as declined, and they make the false-refusal count.
+    let ins = of("answer");
+    let ids: Vec<&str> = ins.iter().map(|c| c["id"].as_str().unwrap()).collect();
+    assert_eq!(ids, ["t-005", "t-010"]);
+    assert_eq!(
+        declined(&ins, "candidate") as u64,
+        s.refusal["false_refusal"]["candidate"]["declined"]
+            .as_u64()
+            .unwrap()
+    );
+    assert_eq!(declined(&ins, "baseline"), 0);
+    assert_eq!(ins[0]["candidate_answer"], "tuned answer 5\nsecond line");
+    assert_eq!(ins[0]["question"], "Can I bring item 5 | `x` on board?");
+    // report.md lists them in the same two tables, user text made inert.
+    let md = std::fs::read_to_string(case.path("r/report.md")).unwrap();
+    let at = md.find("## Refusal calls to check\n").expect("section");
+    let section = &md[at..md.find("## Cautions").unwrap()];
+    assert!(section.contains("### Out-of-scope questions, every one\n"));
+    assert!(section.contains("### In-scope questions with an answer counted as declined\n"));
+    assert!(section.contains(
+        "| t-005 | Can I bring item 5 \\| \\`x\\` on board? | answered: base answer 5<br>second line | **declined**: tuned answer 5<br>second line |"
+    ), "{section}");
+    assert_eq!(section.matches("\n| x-").count(), 100);
+    assert!(section.contains("30 more calls are not listed"));
+    // report.html holds the same calls.
+    let html = std::fs::read_to_string(case.path("r/report.html")).unwrap();
+    assert!(html.contains("Show 100 questions (counted as declined: baseline 50, candidate 70)"));
+    assert!(html.contains("Show 2 questions (counted as declined: baseline 0, candidate 2)"));
+}
+
+#[test]
 fn unknown_policy_key_exits_2_naming_file_line_and_key() {
     let case = Case::new(30, 4, 0.1, 4);
     let policy = case.path("gate.toml");

@@ -19,6 +19,7 @@ pub use super::inert::escape;
 use super::markdown::{pct, rate, share};
 use super::summary::*;
 use super::Renderer;
+use crate::formats::questions::Expect;
 use crate::policy::IntervalKind;
 use sha2::{Digest, Sha256};
 use std::fmt::Write;
@@ -123,7 +124,8 @@ figcaption{color:var(--soft);font-size:.92rem;margin:0 0 .5rem;max-width:46rem}\
 .chart.narrow{display:none}\
 .aside{font-size:.92rem;color:var(--soft)}\
 details.numbers{margin:.5rem 0 0}\
-details.numbers summary{cursor:pointer;color:var(--blue-ink);font-size:.92rem}\
+details.numbers summary,details.calls summary{cursor:pointer;color:var(--blue-ink);font-size:.92rem}\
+.print-note{display:none}\
 .tablewrap{overflow-x:auto}\
 table{border-collapse:collapse;width:100%;font-size:.92rem;margin:.4rem 0}\
 th,td{text-align:left;vertical-align:top;padding:6px 8px;border-bottom:1px solid var(--line)}\
@@ -189,6 +191,8 @@ details.fold summary .preview{display:none}\
 details.fold summary .more{display:none}\
 details::details-content{content-visibility:visible;display:block}\
 details.numbers summary{display:none}\
+details.calls .change{display:none}\
+.print-note{display:inline}\
 }\
 ";
 
@@ -321,6 +325,7 @@ pub fn render(s: &Summary) -> String {
     checks_section(&mut o, s);
     changes_section(&mut o, s, true);
     changes_section(&mut o, s, false);
+    refusal_calls_section(&mut o, s);
     cautions_section(&mut o);
     inputs_section(&mut o, s);
     let _ = write!(
@@ -719,6 +724,75 @@ fn changes_section(o: &mut String, s: &Summary, worse: bool) {
             answer_block(&ch.baseline_answer),
             ch.candidate_score,
             answer_block(&ch.candidate_answer)
+        );
+    }
+    o.push_str("</section>\n");
+}
+
+/// The detector's calls behind the refusal shares, folded by kind, for a person to recount
+/// them: the shares rest on reading the wording of each answer, which on unseen real output
+/// misses some declines and flags a few answers wrongly (docs/scoring.md).
+fn refusal_calls_section(o: &mut String, s: &Summary) {
+    let r = &s.refusal;
+    let _ = writeln!(
+        o,
+        "<section id=\"refusal-calls\">\n<h2>Refusal calls to check</h2>\n\
+         <p>{REFUSAL_CALLS_NOTE} A wording your model declines with that the rules miss can be added to the policy's <span class=\"mono\">refusal.extra_phrases</span>.</p>"
+    );
+    let mut k = 0;
+    for (expect, title, none) in REFUSAL_CALL_KINDS {
+        let list: Vec<&RefusalCall> = r.calls.iter().filter(|c| c.expect == expect).collect();
+        let _ = writeln!(o, "<h3>{title}</h3>");
+        if list.is_empty() {
+            let _ = writeln!(o, "<p>{none}</p>");
+            continue;
+        }
+        let declined = |f: fn(&RefusalCall) -> bool| list.iter().filter(|c| f(c)).count();
+        let _ = writeln!(
+            o,
+            "<details class=\"calls\"><summary>Show {} question{} (counted as declined: baseline {}, candidate {})<span class=\"print-note\">; listed on screen, left out of print</span></summary>",
+            list.len(),
+            if list.len() == 1 { "" } else { "s" },
+            declined(|c| c.baseline_declined),
+            declined(|c| c.candidate_declined)
+        );
+        for c in list {
+            k += 1;
+            let call = |d: bool| {
+                if d {
+                    "counted as <strong>declined</strong>"
+                } else {
+                    "counted as <strong>answered</strong>"
+                }
+            };
+            let _ = write!(
+                o,
+                "<article class=\"change\" id=\"call-{k}\">\n<div class=\"top\"><span class=\"id mono\"><bdi>{}</bdi></span><span class=\"cat\">category <bdi>{}</bdi></span>\
+                 <span class=\"cat\">{}</span></div>\n\
+                 <p class=\"q\"><span class=\"lbl\">Question</span><span class=\"text\">{}</span></p>\n\
+                 <div class=\"pair\">\n<div class=\"ans base\"><span class=\"score\">{}</span><span class=\"lbl\">Baseline answer</span>{}</div>\n\
+                 <div class=\"ans cand\"><span class=\"score\">{}</span><span class=\"lbl\">Candidate answer</span>{}</div>\n</div>\n</article>\n",
+                escape_cut(&c.id, 200),
+                escape_cut(&c.category, 200),
+                if expect == Expect::Refuse {
+                    "should be declined"
+                } else {
+                    "should be answered"
+                },
+                user(&c.question),
+                call(c.baseline_declined),
+                answer_block(&c.baseline_answer),
+                call(c.candidate_declined),
+                answer_block(&c.candidate_answer)
+            );
+        }
+        o.push_str("</details>\n");
+    }
+    if r.calls_left_off > 0 {
+        let _ = writeln!(
+            o,
+            "<p>{} more calls are not listed: the report lists the first {REFUSAL_CALLS_LISTED} of each kind. The grades files hold every call (the <span class=\"mono\">refused</span> field).</p>",
+            r.calls_left_off
         );
     }
     o.push_str("</section>\n");

@@ -1,5 +1,6 @@
 //! Unit tests of `html`.
 use super::*;
+use crate::formats::questions::Expect;
 use crate::policy::Policy;
 use std::collections::BTreeMap;
 
@@ -153,6 +154,29 @@ fn summary(hostile: bool) -> Summary {
                 candidate: rate(6, 40),
             },
             interval: "wilson".into(),
+            calls: HOSTILE
+                .iter()
+                .enumerate()
+                .map(|(i, a)| RefusalCall {
+                    id: h(i, &format!("c{i}")),
+                    category: h(i + 1, "off-topic"),
+                    question: h(i + 2, "What is the capital of the moon?"),
+                    expect: if i < 5 {
+                        Expect::Refuse
+                    } else {
+                        Expect::Answer
+                    },
+                    baseline_answer: if hostile {
+                        a.to_string()
+                    } else {
+                        "The capital is Tranquility.".into()
+                    },
+                    baseline_declined: i % 2 == 0,
+                    candidate_answer: "I can only help with ferry questions.".into(),
+                    candidate_declined: true,
+                })
+                .collect(),
+            calls_left_off: 3,
         },
         facts: None,
         leakage: None,
@@ -375,6 +399,7 @@ fn sections_come_in_the_documented_order() {
         "id=\"checks\"",
         "id=\"worse\"",
         "id=\"better\"",
+        "id=\"refusal-calls\"",
         "id=\"cautions\"",
         "id=\"inputs\"",
     ];
@@ -440,4 +465,38 @@ fn go_verdict_says_so_in_words() {
     assert!(page.contains("data-verdict=\"GO\""));
     assert!(page.contains("passed all 2 checks"));
     assert!(!page.contains("FAIL</span>"));
+}
+
+#[test]
+fn refusal_calls_are_listed_by_kind_with_both_calls() {
+    let page = render(&summary(false));
+    let section =
+        &page[page.find("id=\"refusal-calls\"").unwrap()..page.find("id=\"cautions\"").unwrap()];
+    // Five out-of-scope calls, then three in-scope ones, each kind folded with its counts:
+    // baseline declined calls 0, 2, 4 of the first kind and 6 of the second.
+    assert!(section.contains("Show 5 questions (counted as declined: baseline 3, candidate 5)"));
+    assert!(section.contains("Show 3 questions (counted as declined: baseline 1, candidate 3)"));
+    assert_eq!(section.matches("<article ").count(), 8);
+    assert_eq!(section.matches("should be declined").count(), 5);
+    assert_eq!(section.matches("should be answered").count(), 3);
+    assert_eq!(
+        section
+            .matches("counted as <strong>answered</strong>")
+            .count(),
+        4
+    );
+    assert!(section.contains("3 more calls are not listed"));
+    // What the rules cannot do is said before the list.
+    assert!(section.contains("Rules read the wording; they do not understand it."));
+}
+
+#[test]
+fn refusal_calls_section_says_when_there_is_nothing_to_list() {
+    let mut s = summary(false);
+    s.refusal.calls.clear();
+    s.refusal.calls_left_off = 0;
+    let page = render(&s);
+    assert!(page.contains("The question set has no out-of-scope questions."));
+    assert!(page.contains("No in-scope answer was counted as declined."));
+    assert!(!page.contains("more calls are not listed"));
 }

@@ -2,7 +2,8 @@
 //!
 //! Order: the verdict with the failing reasons in plain words, warnings, the metrics with
 //! intervals, refusals, categories, the gate checks, the questions that got worse and better
-//! (side by side), cautions about what automatic scores cannot show, and the inputs.
+//! (side by side), the refusal calls to check, cautions about what automatic scores cannot
+//! show, and the inputs.
 //!
 //! All text that comes from user files (questions, references, answers, category names) goes
 //! through [`escape`], so it cannot break the Markdown structure: no table cell split by a
@@ -421,6 +422,7 @@ pub fn render(s: &Summary) -> String {
         o.push('\n');
     }
 
+    refusal_calls_section(&mut o, &s.refusal);
     write_cautions(&mut o);
 
     let _ = writeln!(o, "## Inputs\n");
@@ -452,6 +454,51 @@ pub fn render(s: &Summary) -> String {
     }
     let _ = writeln!(o, "- liftgate {}", s.tool_version);
     o
+}
+
+/// "## Refusal calls to check": the detector's calls behind the refusal shares, for a person to
+/// recount them (every out-of-scope question, then the in-scope answers counted as declined).
+fn refusal_calls_section(o: &mut String, r: &Refusal) {
+    let _ = writeln!(o, "## Refusal calls to check\n");
+    let _ = writeln!(
+        o,
+        "{REFUSAL_CALLS_NOTE} A wording your model declines with that the rules miss can be added to the policy's refusal.extra_phrases.\n"
+    );
+    for (expect, title, none) in REFUSAL_CALL_KINDS {
+        let list: Vec<&RefusalCall> = r.calls.iter().filter(|c| c.expect == expect).collect();
+        let _ = writeln!(o, "### {title}\n");
+        if list.is_empty() {
+            let _ = writeln!(o, "{none}\n");
+            continue;
+        }
+        let _ = writeln!(o, "| id | question | baseline answer | candidate answer |");
+        let _ = writeln!(o, "|---|---|---|---|");
+        let call = |declined: bool, answer: &str| {
+            format!(
+                "{}: {}",
+                if declined { "**declined**" } else { "answered" },
+                escape(answer)
+            )
+        };
+        for c in list {
+            let _ = writeln!(
+                o,
+                "| {} | {} | {} | {} |",
+                escape(&c.id),
+                escape(&c.question),
+                call(c.baseline_declined, &c.baseline_answer),
+                call(c.candidate_declined, &c.candidate_answer)
+            );
+        }
+        o.push('\n');
+    }
+    if r.calls_left_off > 0 {
+        let _ = writeln!(
+            o,
+            "{} more calls are not listed: the report lists the first {REFUSAL_CALLS_LISTED} of each kind. The grades files hold every call (the refused field).\n",
+            r.calls_left_off
+        );
+    }
 }
 
 /// The cautions every report ends with: what automatic scores cannot show, the human review

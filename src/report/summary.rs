@@ -10,6 +10,7 @@
 //! [−1, 1]), never a percentage. A number that cannot be computed (no questions) is `null`.
 //! The file holds no timestamps or timings, so the same inputs and seed give identical bytes.
 
+use crate::formats::questions::Expect;
 use crate::policy::{IntervalKind, Policy};
 use crate::stats::Interval;
 use serde::{Deserialize, Serialize};
@@ -17,6 +18,33 @@ use std::collections::BTreeMap;
 
 /// Questions listed under "worse" and under "better" in [`Changes`].
 pub const CHANGES_LISTED: usize = 10;
+
+/// Refusal calls listed in [`Refusal::calls`], of each kind (out-of-scope questions, in-scope
+/// answers counted as declined).
+pub const REFUSAL_CALLS_LISTED: usize = 100;
+
+/// The kinds of [`Refusal::calls`] in the order the reports list them: what a call must be, the
+/// list's title, and what the reports say when it is empty.
+pub const REFUSAL_CALL_KINDS: [(Expect, &str, &str); 2] = [
+    (
+        Expect::Refuse,
+        "Out-of-scope questions, every one",
+        "The question set has no out-of-scope questions.",
+    ),
+    (
+        Expect::Answer,
+        "In-scope questions with an answer counted as declined",
+        "No in-scope answer was counted as declined.",
+    ),
+];
+
+/// What the reports say before the refusal calls: what the detector is and what the list
+/// leaves out (its measured figures: docs/scoring.md).
+pub const REFUSAL_CALLS_NOTE: &str = "The refusal shares count an answer as declined when its wording declines. \
+Rules read the wording; they do not understand it. On real model output they have missed declines worded in ways \
+they had not seen, and counted a few answers as declines wrongly (liftgate's measured figures: docs/scoring.md). \
+Before relying on the refusal checks, read these answers and recount where a call is wrong. In-scope answers that \
+decline in words the rules missed are not listed here: they show in the sample of answers a person reads.";
 
 /// Value of [`Summary::format`]; bumped when a field changes meaning.
 pub const FORMAT: &str = "liftgate-summary/1";
@@ -175,6 +203,30 @@ pub struct Refusal {
     pub false_refusal: RefusalRates,
     /// `"wilson"`, at `settings.confidence`.
     pub interval: String,
+    /// The detector's calls behind these shares, for a person to check: every out-of-scope
+    /// question, then every in-scope question where either variant was counted as declining,
+    /// each kind in the set's order and up to [`REFUSAL_CALLS_LISTED`]. Empty in summaries
+    /// written before the list existed.
+    #[serde(default)]
+    pub calls: Vec<RefusalCall>,
+    /// Calls of either kind beyond [`REFUSAL_CALLS_LISTED`], not listed.
+    #[serde(default)]
+    pub calls_left_off: usize,
+}
+
+/// One question's refusal call for both variants.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RefusalCall {
+    pub id: String,
+    pub category: String,
+    pub question: String,
+    /// `refuse` (out of scope) or `answer` (in scope).
+    pub expect: Expect,
+    pub baseline_answer: String,
+    /// Whether the detector counted the baseline's answer as a decline.
+    pub baseline_declined: bool,
+    pub candidate_answer: String,
+    pub candidate_declined: bool,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]

@@ -109,11 +109,47 @@ pub(super) fn refusal_block(input: &WeighInput, confidence: f64) -> Refusal {
             candidate: rate(c, n, confidence),
         }
     };
+    let (calls, calls_left_off) = refusal_calls(input);
     Refusal {
         out_of_scope: count(Expect::Refuse),
         false_refusal: count(Expect::Answer),
         interval: "wilson".to_string(),
+        calls,
+        calls_left_off,
     }
+}
+
+/// The calls a person checks to recount the refusal shares by hand: every out-of-scope
+/// question (both shares' numerators and denominators), then every in-scope question either
+/// variant was counted as declining (the false-refusal numerators); up to
+/// [`REFUSAL_CALLS_LISTED`] of each kind, and how many were left off.
+fn refusal_calls(input: &WeighInput) -> (Vec<RefusalCall>, usize) {
+    let rows = || input.baseline.iter().zip(input.candidate).enumerate();
+    let out_of_scope = rows().filter(|(_, (b, _))| b.expect == Expect::Refuse);
+    let declined_in_scope =
+        rows().filter(|(_, (b, c))| b.expect == Expect::Answer && (b.refused || c.refused));
+    let (mut calls, mut left_off) = (Vec::new(), 0);
+    for kind in [
+        out_of_scope.map(|(i, _)| i).collect::<Vec<_>>(),
+        declined_in_scope.map(|(i, _)| i).collect(),
+    ] {
+        left_off += kind.len().saturating_sub(REFUSAL_CALLS_LISTED);
+        calls.extend(kind.into_iter().take(REFUSAL_CALLS_LISTED).map(|i| {
+            let q = &input.set.questions[i];
+            let (b, c) = (&input.baseline[i], &input.candidate[i]);
+            RefusalCall {
+                id: q.id.clone(),
+                category: q.category.clone(),
+                question: q.question.clone(),
+                expect: b.expect,
+                baseline_answer: b.answer.clone(),
+                baseline_declined: b.refused,
+                candidate_answer: c.answer.clone(),
+                candidate_declined: c.refused,
+            }
+        }));
+    }
+    (calls, left_off)
 }
 
 /// Fact recall (paired, like the metrics) and contradiction shares (Wilson), over in-scope
