@@ -500,3 +500,17 @@ fn refusal_calls_section_says_when_there_is_nothing_to_list() {
     assert!(page.contains("No in-scope answer was counted as declined."));
     assert!(!page.contains("more calls are not listed"));
 }
+
+#[test]
+fn summaries_written_before_the_refusal_calls_still_read() {
+    // summary.json files from before the calls were listed (kept in run histories) have no
+    // `refusal.calls` or `refusal.calls_left_off`: they read as an empty list.
+    let mut v = serde_json::to_value(summary(false)).unwrap();
+    let refusal = v["refusal"].as_object_mut().unwrap();
+    assert!(refusal.remove("calls").is_some() && refusal.remove("calls_left_off").is_some());
+    let s: Summary = serde_json::from_value(v).unwrap();
+    assert!(s.refusal.calls.is_empty());
+    assert_eq!(s.refusal.calls_left_off, 0);
+    let page = render(&s);
+    assert!(page.contains("The question set has no out-of-scope questions."));
+}
